@@ -1,0 +1,95 @@
+"""The ``pycnoctl`` command line: one entry point, one module per verb.
+
+Each verb lives in its own module exposing ``add_parser(subparsers)``, which registers the verb
+and sets ``func`` (taking the parsed args, returning an exit code).  Modules are imported
+only when their verb is used, so ``pycnoctl compute`` does not pay for the web stack.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import importlib.util
+import sys
+from collections.abc import Sequence
+
+# verb -> module that implements it
+VERBS: dict[str, str] = {
+    "compute": "pycnoctl.controller.cmd_compute",
+    "run": "pycnoctl.controller.cmd_run",
+    "check": "pycnoctl.controller.cmd_check",
+    "analyze": "pycnoctl.controller.cmd_analyze",
+    "probe": "pycnoctl.drivers.cmd_probe",
+    "calibrate": "pycnoctl.controller.cmd_calibrate",
+    "runs": "pycnoctl.controller.cmd_runs",
+    "show": "pycnoctl.controller.cmd_show",
+    "serve": "pycnoctl.controller.cmd_serve",
+    "submit": "pycnoctl.controller.cmd_client",
+    "status": "pycnoctl.controller.cmd_client",
+    "watch": "pycnoctl.controller.cmd_client",
+    "abort": "pycnoctl.controller.cmd_client",
+    "reset": "pycnoctl.controller.cmd_client",
+    "queue": "pycnoctl.controller.cmd_client",
+}
+
+
+class UsageError(Exception):
+    """Bad input from the user: reported as one line, exit code 2, no traceback."""
+
+
+def _available() -> dict[str, str]:
+    out = {}
+    for verb, mod in VERBS.items():
+        try:
+            spec = importlib.util.find_spec(mod)
+        except ModuleNotFoundError:
+            spec = None
+        if spec is not None:
+            out[verb] = mod
+    return out
+
+
+def build_parser(verbs: dict[str, str] | None = None) -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="pycnoctl",
+        description="Run, simulate and analyse gas-expansion pycnometer measurements.",
+    )
+    parser.add_argument("--version", action="store_true", help="print the version and exit")
+    sub = parser.add_subparsers(dest="verb", metavar="VERB")
+    seen: set[str] = set()
+    for verb, mod in (verbs if verbs is not None else _available()).items():
+        if mod in seen:
+            continue
+        seen.add(mod)
+        importlib.import_module(mod).add_parser(sub)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    verbs = _available()
+    # Import only the module for the verb asked for (all of them for --help).
+    wanted = {v: m for v, m in verbs.items() if argv and v == argv[0]}
+    selected = {v: m for v, m in verbs.items() if m in wanted.values()} if wanted else verbs
+    parser = build_parser(selected)
+    args = parser.parse_args(argv)
+    if args.version:
+        from importlib.metadata import version
+
+        print(version("pycnoctl"))
+        return 0
+    if not getattr(args, "func", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args.func(args) or 0)
+    except UsageError as exc:
+        print(f"pycnoctl {args.verb}: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,196 @@
+"""Safe YAML loading that remembers where every value came from.
+
+Sequence, instrument and simulator files are edited by hand, so a mistake must be reported as
+``file:line:col: message`` before anything touches hardware, and all mistakes at once.  Loading
+is deliberately strict: no tags, no anchors or aliases (no alias bombs), no duplicate keys,
+UTF-8 only, and a size cap.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, TypeVar
+
+import yaml
+from pydantic import BaseModel, ValidationError
+
+MAX_BYTES = 256 * 1024
+
+Loc = tuple[str | int, ...]
+M = TypeVar("M", bound=BaseModel)
+
+_PLAIN_TAGS = {
+    "tag:yaml.org,2002:str",
+    "tag:yaml.org,2002:int",
+    "tag:yaml.org,2002:float",
+    "tag:yaml.org,2002:bool",
+    "tag:yaml.org,2002:null",
+    "tag:yaml.org,2002:map",
+    "tag:yaml.org,2002:seq",
+}
+
+
+@dataclass(frozen=True)
+class Problem:
+    """One mistake in an input file, with its position (1-based line and column)."""
+
+    file: str
+    line: int
+    col: int
+    message: str
+
+    def __str__(self) -> str:
+        return f"{self.file}:{self.line}:{self.col}: {self.message}"
+
+
+class ConfigError(Exception):
+    """Every problem found in one input file."""
+
+    def __init__(self, problems: Iterable[Problem]) -> None:
+        self.problems = list(problems)
+        super().__init__("\n".join(str(p) for p in self.problems))
+
+
+@dataclass
+class Document:
+    """Plain data from a YAML file plus the position of every key and value."""
+
+    name: str
+    data: Any
+    marks: dict[Loc, tuple[int, int]] = field(default_factory=dict)
+
+    def where(self, loc: Loc) -> tuple[int, int]:
+        """Position of loc, or of its nearest ancestor that has one."""
+        loc = tuple(loc)
+        while loc:
+            if loc in self.marks:
+                return self.marks[loc]
+            loc = loc[:-1]
+        return self.marks.get((), (1, 1))
+
+    def problem(self, loc: Loc, message: str) -> Problem:
+        line, col = self.where(loc)
+        return Problem(self.name, line, col, message)
+
+
+class _StrictLoader(yaml.SafeLoader):
+    """A SafeLoader that refuses anchors and aliases as soon as it meets them."""
+
+    def compose_node(self, parent, index):  # type: ignore[no-untyped-def]
+        if self.check_event(yaml.AliasEvent):
+            event = self.peek_event()
+            raise yaml.MarkedYAMLError(None, None, "aliases are not allowed", event.start_mark)
+        event = self.peek_event()
+        anchor = getattr(event, "anchor", None)
+        if anchor is not None:
+            raise yaml.MarkedYAMLError(None, None, "anchors are not allowed", event.start_mark)
+        return super().compose_node(parent, index)
+
+
+def _pos(mark: yaml.Mark) -> tuple[int, int]:
+    return mark.line + 1, mark.column + 1
+
+
+def _build(node: yaml.Node, loc: Loc, doc: Document, problems: list[Problem], loader: _StrictLoader) -> Any:
+    doc.marks[loc] = _pos(node.start_mark)
+    if node.tag not in _PLAIN_TAGS:
+        line, col = _pos(node.start_mark)
+        problems.append(Problem(doc.name, line, col, f"tag {node.tag!r} is not allowed"))
+        return None
+    if isinstance(node, yaml.MappingNode):
+        out: dict[Any, Any] = {}
+        for key_node, value_node in node.value:
+            if not isinstance(key_node, yaml.ScalarNode):
+                line, col = _pos(key_node.start_mark)
+                problems.append(Problem(doc.name, line, col, "keys must be plain scalars"))
+                continue
+            key = loader.construct_object(key_node)
+            if key in out:
+                line, col = _pos(key_node.start_mark)
+                problems.append(Problem(doc.name, line, col, f"duplicate key {key!r}"))
+                continue
+            doc.marks[(*loc, key)] = _pos(key_node.start_mark)
+            out[key] = _build(value_node, (*loc, key), doc, problems, loader)
+            doc.marks[(*loc, key)] = _pos(key_node.start_mark)
+        return out
+    if isinstance(node, yaml.SequenceNode):
+        return [_build(item, (*loc, i), doc, problems, loader) for i, item in enumerate(node.value)]
+    return loader.construct_object(node)
+
+
+def parse_text(text: str, name: str = "<string>") -> Document:
+    """Parse YAML text strictly; raises ConfigError listing every problem found."""
+    loader = _StrictLoader(text)
+    try:
+        try:
+            root = loader.get_single_node()
+        except yaml.MarkedYAMLError as exc:
+            mark = exc.problem_mark or exc.context_mark
+            line, col = _pos(mark) if mark else (1, 1)
+            raise ConfigError([Problem(name, line, col, exc.problem or str(exc))]) from None
+        except yaml.YAMLError as exc:
+            raise ConfigError([Problem(name, 1, 1, str(exc))]) from None
+        doc = Document(name, None)
+        if root is None:
+            raise ConfigError([Problem(name, 1, 1, "the file is empty")])
+        problems: list[Problem] = []
+        doc.data = _build(root, (), doc, problems, loader)
+    finally:
+        loader.dispose()
+    if problems:
+        raise ConfigError(problems)
+    return doc
+
+
+def load_file(path: str | Path, max_bytes: int = MAX_BYTES) -> Document:
+    """Read and parse a YAML file, refusing oversize or non-UTF-8 input."""
+    p = Path(path)
+    name = str(path)
+    try:
+        size = p.stat().st_size
+    except OSError as exc:
+        raise ConfigError([Problem(name, 1, 1, f"cannot read: {exc.strerror or exc}")]) from None
+    if size > max_bytes:
+        raise ConfigError([Problem(name, 1, 1, f"file is {size} bytes; the limit is {max_bytes}")])
+    raw = p.read_bytes()
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        col = exc.start - (raw.rfind(b"\n", 0, exc.start) + 1) + 1
+        raise ConfigError([Problem(name, line, col, "not valid UTF-8")]) from None
+    return parse_text(text, name)
+
+
+def _message(err: dict[str, Any]) -> str:
+    loc = ".".join(str(x) for x in err["loc"])
+    msg = err["msg"]
+    if err["type"] == "extra_forbidden":
+        return f"unknown key {err['loc'][-1]!r}"
+    if err["type"] == "missing":
+        return f"missing key {err['loc'][-1]!r}" if err["loc"] else "missing value"
+    return f"{loc}: {msg}" if loc else msg
+
+
+def _strip_loc(loc: tuple[Any, ...]) -> Loc:
+    """Drop pydantic's discriminator and validator tags so the location matches the YAML path."""
+    return tuple(x for x in loc if not (isinstance(x, str) and "[" in x))
+
+
+def validate(model: type[M], doc: Document, context: dict[str, Any] | None = None) -> M:
+    """Validate doc against a pydantic model; problems come back with their file positions."""
+    try:
+        return model.model_validate(doc.data, context=context)
+    except ValidationError as exc:
+        problems = []
+        for err in exc.errors():
+            loc = _strip_loc(tuple(err["loc"]))
+            problems.append(doc.problem(loc, _message({**err, "loc": loc})))
+        raise ConfigError(problems) from None
+
+
+def load_model(model: type[M], path: str | Path, context: dict[str, Any] | None = None) -> M:
+    """Load a YAML file into a validated model, or raise ConfigError with every position."""
+    return validate(model, load_file(path), context)
