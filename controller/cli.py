@@ -57,7 +57,7 @@ def build_parser(verbs: dict[str, str] | None = None) -> argparse.ArgumentParser
     parser.add_argument("--version", action="store_true", help="print the version and exit")
     sub = parser.add_subparsers(dest="verb", metavar="VERB")
     seen: set[str] = set()
-    for verb, mod in (verbs if verbs is not None else _available()).items():
+    for mod in (verbs if verbs is not None else _available()).values():
         if mod in seen:
             continue
         seen.add(mod)
