@@ -1,0 +1,214 @@
+"""Units at the edges: parse user text ('1.4 bar', '25 degC', '10 cm3') into SI floats, and format back.
+
+Why: every value entering pycnoctl (command line, sequence files, configs) may carry a unit; inside,
+everything is a plain float in SI (Pa, m^3, K, kg, s).  One shared pint registry does the conversion,
+so a pressure typed in psi and one typed in kPa give bit-for-bit comparable numbers.
+
+A bare number takes the parser's default unit.  Temperatures in degC/degF are converted as absolute
+temperatures (25 degC -> 298.15 K); use :func:`parse_temperature_difference` for uncertainties and
+steps, where 0.1 degC means 0.1 K.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from typing import Any
+
+import pint
+
+#: The one registry of the project.  Offset units (degC) are only ever built as Quantity(value, unit).
+ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
+Q_ = ureg.Quantity
+
+
+class UnitError(ValueError):
+    """Text that is not a number with a unit of the expected kind."""
+
+
+# dimension name -> (pint dimensionality, SI unit, article+noun for messages)
+_DIMENSIONS: dict[str, tuple[str, str, str]] = {
+    "pressure": ("[pressure]", "Pa", "a pressure"),
+    "volume": ("[volume]", "m**3", "a volume"),
+    "temperature": ("[temperature]", "K", "a temperature"),
+    "temperature_difference": ("[temperature]", "K", "a temperature difference"),
+    "mass": ("[mass]", "kg", "a mass"),
+    "duration": ("[time]", "s", "a duration"),
+    "rate": ("[pressure]/[time]", "Pa/s", "a pressure rate"),
+    "length": ("[length]", "m", "a length"),
+    "density": ("[density]", "kg/m**3", "a density"),
+    "fraction": ("[]", "", "a fraction"),
+}
+_ALIAS_DIM = {"time": "duration", "dimensionless": "fraction", "pressure_rate": "rate"}
+
+_NUMBER_UNIT = re.compile(
+    r"^\s*(?P<num>[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?)\s*(?P<unit>.*?)\s*$"
+)
+# 'cm3' -> 'cm**3', 'm2' -> 'm**2' (a unit symbol directly followed by a power digit)
+_POWER_DIGIT = re.compile(r"(?<=[A-Za-z])([23])(?![A-Za-z0-9])")
+_REPLACE = (("°C", "degC"), ("℃", "degC"), ("°F", "degF"), ("°", "deg"), ("³", "**3"), ("²", "**2"),
+            ("µ", "u"), ("μ", "u"))
+_OFFSET_UNITS = {"degree_Celsius": "kelvin", "degree_Fahrenheit": "degree_Rankine"}
+
+
+def _clean_unit(unit: str) -> str:
+    for old, new in _REPLACE:
+        unit = unit.replace(old, new)
+    unit = unit.replace("^", "**")
+    return _POWER_DIGIT.sub(r"**\1", unit)
+
+
+def _dim_key(dimension: str) -> str:
+    key = dimension.strip().lower()
+    key = _ALIAS_DIM.get(key, key)
+    if key not in _DIMENSIONS:
+        raise UnitError(f"unknown dimension {dimension!r}; known: {', '.join(_DIMENSIONS)}")
+    return key
+
+
+def to_quantity(value: Any, default_unit: str, *, difference: bool = False) -> pint.Quantity:
+    """Text, number or Quantity -> Quantity of this registry (bare numbers get ``default_unit``)."""
+    if isinstance(value, pint.Quantity):
+        if value._REGISTRY is not ureg:  # another registry: go through its unit string
+            value = Q_(value.magnitude, str(value.units))
+        return value
+    if isinstance(value, bool):
+        raise UnitError(f"{value!r} is not a number")
+    if isinstance(value, int | float):
+        magnitude, unit = float(value), default_unit
+    else:
+        text = str(value)
+        m = _NUMBER_UNIT.match(text)
+        if not m:
+            raise UnitError(f"{text!r} is not a number with a unit")
+        magnitude = float(m.group("num"))
+        unit = _clean_unit(m.group("unit")) or default_unit
+    if not math.isfinite(magnitude):
+        raise UnitError(f"{value!r} is not a finite number")
+    try:
+        units = ureg.parse_units(unit) if unit else ureg.dimensionless
+    except (pint.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError, TypeError,
+            ValueError, SyntaxError) as exc:
+        raise UnitError(f"{value!r}: unknown unit {unit!r}") from exc
+    if difference:
+        # a temperature step in degC is a step in K; map offset units onto their delta units
+        name = str(units)
+        if name in _OFFSET_UNITS:
+            units = ureg.parse_units(_OFFSET_UNITS[name])
+    return Q_(magnitude, units)
+
+
+def parse_quantity(value: Any, dimension: str, *, default_unit: str | None = None) -> float:
+    """Parse ``value`` as the named dimension and return the SI magnitude.
+
+    ``dimension`` is one of: pressure, volume, temperature, temperature_difference, mass, duration
+    (time), rate (Pa/s), length, density, fraction.  ``default_unit`` applies to bare numbers
+    (SI when not given).
+    """
+    key = _dim_key(dimension)
+    dimensionality, si_unit, noun = _DIMENSIONS[key]
+    q = to_quantity(value, default_unit if default_unit is not None else si_unit,
+                    difference=(key == "temperature_difference"))
+    if not q.check(dimensionality):
+        raise UnitError(f"{_show(value)} is not {noun}")
+    try:
+        out = float(q.to(si_unit).magnitude) if si_unit else float(q.to("").magnitude)
+    except pint.DimensionalityError as exc:  # pragma: no cover - check() already guards this
+        raise UnitError(f"{_show(value)} is not {noun}") from exc
+    if not math.isfinite(out):
+        raise UnitError(f"{_show(value)} is not a finite number")
+    return out
+
+
+def _show(value: Any) -> str:
+    return repr(value) if isinstance(value, str) else repr(str(value))
+
+
+def parse_pressure(value: Any, *, default_unit: str = "bar") -> float:
+    """Pressure in Pa (as given: absolute or gauge is the caller's business)."""
+    return parse_quantity(value, "pressure", default_unit=default_unit)
+
+
+def parse_volume(value: Any, *, default_unit: str = "cm**3") -> float:
+    """Volume in m^3."""
+    return parse_quantity(value, "volume", default_unit=default_unit)
+
+
+def parse_temperature(value: Any, *, default_unit: str = "degC") -> float:
+    """Absolute temperature in K (bare numbers are degC)."""
+    out = parse_quantity(value, "temperature", default_unit=default_unit)
+    if out <= 0.0:
+        raise UnitError(f"{_show(value)} is at or below absolute zero")
+    return out
+
+
+def parse_temperature_difference(value: Any, *, default_unit: str = "K") -> float:
+    """Temperature step or uncertainty in K; '0.1 degC' means 0.1 K."""
+    return parse_quantity(value, "temperature_difference", default_unit=default_unit)
+
+
+def parse_mass(value: Any, *, default_unit: str = "g") -> float:
+    """Mass in kg (bare numbers are grams)."""
+    return parse_quantity(value, "mass", default_unit=default_unit)
+
+
+def parse_duration(value: Any, *, default_unit: str = "s") -> float:
+    """Duration in s."""
+    return parse_quantity(value, "duration", default_unit=default_unit)
+
+
+def parse_rate(value: Any, *, default_unit: str = "Pa/s") -> float:
+    """Pressure rate of change in Pa/s."""
+    return parse_quantity(value, "rate", default_unit=default_unit)
+
+
+def parse_length(value: Any, *, default_unit: str = "mm") -> float:
+    """Length in m (bare numbers are millimetres)."""
+    return parse_quantity(value, "length", default_unit=default_unit)
+
+
+def parse_density(value: Any, *, default_unit: str = "g/cm**3") -> float:
+    """Density in kg/m^3 (bare numbers are g/cm^3)."""
+    return parse_quantity(value, "density", default_unit=default_unit)
+
+
+def parse_fraction(value: Any) -> float:
+    """Dimensionless fraction: '0.05 %' -> 0.0005, '2 ppm' -> 2e-6, '0.01' -> 0.01."""
+    return parse_quantity(value, "fraction", default_unit="")
+
+
+_GAUGE_SUFFIX = re.compile(r"\s*(?:\((?P<g1>g|gauge|a|abs|absolute)\)|\b(?P<g2>gauge|absolute|abs))\s*$",
+                           re.IGNORECASE)
+
+
+def parse_pressure_spec(value: Any, *, default_unit: str = "bar") -> tuple[float, bool | None]:
+    """Pressure with an optional reference tag: '1.4 bar gauge', '1.4 bar(g)', '2.4 bar abs'.
+
+    Returns (Pa, gauge) where gauge is True/False when tagged and None when not.
+    """
+    if not isinstance(value, str):
+        return parse_pressure(value, default_unit=default_unit), None
+    m = _GAUGE_SUFFIX.search(value)
+    if not m:
+        return parse_pressure(value, default_unit=default_unit), None
+    tag = (m.group("g1") or m.group("g2")).lower()
+    gauge = tag in ("g", "gauge")
+    return parse_pressure(value[: m.start()], default_unit=default_unit), gauge
+
+
+def format_quantity(value_si: float, dimension: str, unit: str, *, digits: int = 6) -> str:
+    """SI float -> '12.3456 cm³' style text in the requested unit (significant digits)."""
+    key = _dim_key(dimension)
+    _, si_unit, _ = _DIMENSIONS[key]
+    if key == "temperature":
+        q = Q_(value_si, "K").to(unit)
+    else:
+        q = Q_(value_si, si_unit or "").to(unit)
+    return f"{q.magnitude:.{digits}g} {q.units:~P}".rstrip()
+
+
+def convert(value_si: float, dimension: str, unit: str) -> float:
+    """SI float -> magnitude in ``unit`` (e.g. convert(1e-6, 'volume', 'cm^3') == 1.0)."""
+    key = _dim_key(dimension)
+    _, si_unit, _ = _DIMENSIONS[key]
+    return float(Q_(value_si, si_unit or "").to(_clean_unit(unit)).magnitude)
