@@ -200,10 +200,7 @@ def format_quantity(value_si: float, dimension: str, unit: str, *, digits: int =
     """SI float -> '12.3456 cm³' style text in the requested unit (significant digits)."""
     key = _dim_key(dimension)
     _, si_unit, _ = _DIMENSIONS[key]
-    if key == "temperature":
-        q = Q_(value_si, "K").to(unit)
-    else:
-        q = Q_(value_si, si_unit or "").to(unit)
+    q = Q_(value_si, si_unit or "").to(_clean_unit(unit))
     return f"{q.magnitude:.{digits}g} {q.units:~P}".rstrip()
 
 

@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import math
 
-from pycnoctl.controller.gas import R, Gas, get_gas
+from pycnoctl.controller.gas import Gas, R, get_gas
 
 DEFAULT_T: float = 293.15
 MODES: tuple[str, ...] = ("sample_first", "reference_first")
