@@ -1,0 +1,119 @@
+"""A pressure gauge that answers a text query: query string, reply regex, linear scaling, unit.
+
+read() never raises for a bad sample: a silent gauge, a reply that does not parse, a 'NaN'
+or an 'overrange' word, or a value outside the rated span all come back as an invalid
+Reading with the reason, so the interlocks see "no usable pressure", never a number.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import re
+from dataclasses import dataclass
+
+from pycnoctl.controller.units import parse_pressure
+from pycnoctl.drivers.base import DeviceDisconnected, DeviceError, DeviceTimeout, Reading, Validity
+from pycnoctl.drivers.clock import Clock, WallClock
+from pycnoctl.drivers.relay_ascii import FrameTemplate
+from pycnoctl.drivers.transports import Transport
+
+log = logging.getLogger(__name__)
+
+
+def pascal_per(unit: str) -> float:
+    """Pa in one `unit` (any pint pressure unit: 'kPa', 'bar', 'psi', 'mbar', 'torr', ...)."""
+    return parse_pressure(1.0, default_unit=unit)
+
+
+@dataclass(frozen=True)
+class GaugeFormat:
+    """How one kind of gauge is asked and how its reply is read."""
+
+    query: str = "P?\\n"
+    regex: str = r"^P\s+(?P<value>\S+)"
+    unit: str = "kPa"  # unit of the scaled value
+    gain: float = 1.0  # pressure = raw * gain + offset, in `unit`
+    offset: float = 0.0
+    overrange_words: tuple[str, ...] = ("OVER", "UNDER", "OVERRANGE", "UNDERRANGE", "OR", "UR")
+    nan_words: tuple[str, ...] = ("NAN", "NaN", "nan", "----", "ERR")
+    range_min: float | None = None  # Pa, in the reading's reference (gauge or absolute)
+    range_max: float | None = None  # Pa
+    timeout: float | None = None  # s; None uses the transport's
+
+
+def classify_text(raw: str, fmt: GaugeFormat, pa_per_unit: float,
+                  rx: re.Pattern[str]) -> tuple[float, Validity, str]:
+    """Reply text -> (Pa, validity, detail).  Pure, so it is tested without a device."""
+    text = raw.strip()
+    m = rx.search(text)
+    if not m:
+        return math.nan, Validity.GARBLED, f"reply {raw!r} does not match {rx.pattern!r}"
+    token = m.group("value")
+    upper = token.upper()
+    if upper in {w.upper() for w in fmt.overrange_words}:
+        return math.nan, Validity.OUT_OF_RANGE, f"gauge says {token!r}"
+    if token in fmt.nan_words or upper in {w.upper() for w in fmt.nan_words}:
+        return math.nan, Validity.NAN, f"gauge says {token!r}"
+    try:
+        raw_value = float(token)
+    except ValueError:
+        return math.nan, Validity.GARBLED, f"value {token!r} is not a number"
+    if not math.isfinite(raw_value):
+        if math.isnan(raw_value):
+            return math.nan, Validity.NAN, f"gauge says {token!r}"
+        return math.nan, Validity.OUT_OF_RANGE, f"gauge says {token!r}"
+    pa = (raw_value * fmt.gain + fmt.offset) * pa_per_unit
+    if fmt.range_min is not None and pa < fmt.range_min:
+        return math.nan, Validity.OUT_OF_RANGE, f"{pa:.6g} Pa below the rated {fmt.range_min:.6g} Pa"
+    if fmt.range_max is not None and pa > fmt.range_max:
+        return math.nan, Validity.OUT_OF_RANGE, f"{pa:.6g} Pa above the rated {fmt.range_max:.6g} Pa"
+    return pa, Validity.VALID, ""
+
+
+class AsciiGauge:
+    """A PressureSensor on a Transport."""
+
+    def __init__(self, transport: Transport, *, fmt: GaugeFormat | None = None, name: str = "pressure",
+                 clock: Clock | None = None, absolute: bool = False) -> None:
+        self.transport = transport
+        self.fmt = fmt or GaugeFormat()
+        self.name = name
+        self.clock = clock or WallClock()
+        self.absolute = absolute
+        self._query = FrameTemplate.parse(self.fmt.query, ()).render()
+        self._rx = re.compile(self.fmt.regex)
+        if "value" not in self._rx.groupindex:
+            raise ValueError(f"gauge regex {self.fmt.regex!r} needs a named group (?P<value>...)")
+        self._pa = pascal_per(self.fmt.unit)
+        self.last_error: DeviceError | None = None
+
+    def read(self) -> Reading:
+        t0 = self.clock.now()
+        try:
+            reply = self.transport.query(self._query, self.fmt.timeout)
+        except DeviceTimeout as exc:
+            return self._bad(t0, Validity.TIMEOUT, exc)
+        except DeviceDisconnected as exc:
+            return self._bad(t0, Validity.DISCONNECTED, exc)
+        except DeviceError as exc:
+            return self._bad(t0, Validity.GARBLED, exc)
+        t = 0.5 * (t0 + self.clock.now())
+        text = reply.decode("ascii", "replace")
+        value, validity, detail = classify_text(text, self.fmt, self._pa, self._rx)
+        if validity is not Validity.VALID:
+            log.debug("%s: %s (%s)", self.name, validity.value, detail)
+            return Reading.invalid("Pa", t, validity, detail)
+        self.last_error = None
+        return Reading(value, "Pa", t)
+
+    def _bad(self, t0: float, validity: Validity, exc: DeviceError) -> Reading:
+        self.last_error = exc
+        log.debug("%s: %s", self.name, exc)
+        return Reading.invalid("Pa", 0.5 * (t0 + self.clock.now()), validity, str(exc))
+
+    def reconnect(self) -> None:
+        self.transport.reopen()
+
+    def close(self) -> None:
+        self.transport.close()

@@ -1,0 +1,128 @@
+"""A pressure transducer read over Modbus (TCP or RTU) from one or two registers.
+
+Industrial transducers and panel meters often publish the pressure as a holding or input
+register: a 16-bit integer with a fixed scale, or a 32-bit integer/float split over two
+registers whose word order varies by maker.  All of that is config; read() never raises.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass
+from typing import Any, Literal
+
+from pymodbus.client import ModbusSerialClient, ModbusTcpClient
+from pymodbus.exceptions import ConnectionException, ModbusException, ModbusIOException
+
+from pycnoctl.drivers.base import Reading, Validity
+from pycnoctl.drivers.clock import Clock, WallClock
+from pycnoctl.drivers.gauge_ascii import pascal_per
+
+log = logging.getLogger(__name__)
+
+DataType = Literal["int16", "uint16", "int32", "uint32", "float32"]
+_DATATYPES = {
+    "int16": ModbusTcpClient.DATATYPE.INT16,
+    "uint16": ModbusTcpClient.DATATYPE.UINT16,
+    "int32": ModbusTcpClient.DATATYPE.INT32,
+    "uint32": ModbusTcpClient.DATATYPE.UINT32,
+    "float32": ModbusTcpClient.DATATYPE.FLOAT32,
+}
+
+
+@dataclass(frozen=True)
+class RegisterMap:
+    """Where the value sits and how to turn it into a pressure."""
+
+    address: int
+    table: Literal["holding", "input"] = "holding"
+    datatype: DataType = "int16"
+    word_order: Literal["big", "little"] = "big"
+    device_id: int = 1
+    gain: float = 1.0  # pressure = raw * gain + offset, in `unit`
+    offset: float = 0.0
+    unit: str = "kPa"
+    range_min: float | None = None  # Pa
+    range_max: float | None = None  # Pa
+
+    @property
+    def count(self) -> int:
+        return 1 if self.datatype in ("int16", "uint16") else 2
+
+
+def decode(registers: list[int], regmap: RegisterMap) -> float:
+    """Registers -> raw number, with pymodbus's own converter."""
+    value = ModbusTcpClient.convert_from_registers(
+        registers, _DATATYPES[regmap.datatype], word_order=regmap.word_order)
+    return float(value)  # type: ignore[arg-type]
+
+
+class ModbusGauge:
+    """A PressureSensor on a pymodbus synchronous client."""
+
+    def __init__(self, client: Any, regmap: RegisterMap, *, name: str = "pressure",
+                 clock: Clock | None = None) -> None:
+        self.client = client
+        self.regmap = regmap
+        self.name = name
+        self.clock = clock or WallClock()
+        self._pa = pascal_per(regmap.unit)
+
+    @classmethod
+    def tcp(cls, host: str, port: int, regmap: RegisterMap, *, timeout: float = 1.0,
+            **kw: Any) -> ModbusGauge:
+        return cls(ModbusTcpClient(host, port=port, timeout=timeout, retries=0), regmap, **kw)
+
+    @classmethod
+    def rtu(cls, port: str, regmap: RegisterMap, *, baudrate: int = 19200, timeout: float = 1.0,
+            **kw: Any) -> ModbusGauge:
+        return cls(ModbusSerialClient(port, baudrate=baudrate, timeout=timeout, retries=0), regmap, **kw)
+
+    def _read_registers(self) -> Any:
+        r = self.regmap
+        if not self.client.connected and not self.client.connect():
+            raise ConnectionException(f"cannot connect to {self.client.comm_params.host}")
+        fn = self.client.read_holding_registers if r.table == "holding" else self.client.read_input_registers
+        return fn(r.address, count=r.count, device_id=r.device_id)
+
+    def read(self) -> Reading:
+        t0 = self.clock.now()
+        try:
+            response = self._read_registers()
+        except ConnectionException as exc:
+            return self._bad(t0, Validity.DISCONNECTED, f"{self.name}: {exc}")
+        except ModbusIOException as exc:
+            return self._bad(t0, Validity.TIMEOUT, f"{self.name}: {exc}")
+        except ModbusException as exc:
+            return self._bad(t0, Validity.GARBLED, f"{self.name}: {exc}")
+        except OSError as exc:
+            return self._bad(t0, Validity.DISCONNECTED, f"{self.name}: {exc}")
+        t = 0.5 * (t0 + self.clock.now())
+        if response.isError():
+            return self._bad(t, Validity.GARBLED, f"{self.name}: device answered with exception {response!r}")
+        regs = list(getattr(response, "registers", []) or [])
+        if len(regs) != self.regmap.count:
+            detail = f"{self.name}: {len(regs)} registers, expected {self.regmap.count}"
+            return self._bad(t, Validity.GARBLED, detail)
+        raw = decode(regs, self.regmap)
+        if math.isnan(raw):
+            return self._bad(t, Validity.NAN, f"{self.name}: register holds NaN")
+        if not math.isfinite(raw):
+            return self._bad(t, Validity.OUT_OF_RANGE, f"{self.name}: register holds {raw}")
+        pa = (raw * self.regmap.gain + self.regmap.offset) * self._pa
+        r = self.regmap
+        if (r.range_min is not None and pa < r.range_min) or (r.range_max is not None and pa > r.range_max):
+            return self._bad(t, Validity.OUT_OF_RANGE, f"{self.name}: {pa:.6g} Pa outside the rated span")
+        return Reading(pa, "Pa", t)
+
+    def _bad(self, t: float, validity: Validity, detail: str) -> Reading:
+        log.debug("%s", detail)
+        return Reading.invalid("Pa", t, validity, detail)
+
+    def reconnect(self) -> None:
+        self.client.close()
+        self.client.connect()
+
+    def close(self) -> None:
+        self.client.close()
