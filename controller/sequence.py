@@ -1,0 +1,584 @@
+"""Sequence files (format ``pycnoctl-sequence/1``): the model, its validation and the shipped files.
+
+Why: a sequence is edited by hand and then drives valves and pressures, so nothing may reach the
+instrument until the whole file is proven sound, and every mistake must be reported at once as
+``file:line:col: message``.  The YAML is read strictly by :mod:`pycnoctl.controller.yamlio`;
+values with units become SI floats through :mod:`pycnoctl.controller.units` (pressures are gauge).
+
+Validation happens in three layers:
+
+1. field types and ranges (pydantic, ``extra='forbid'``), each error at its key;
+2. cross-field rules (``discard < count``, ``min_time <= max_time``, kind-specific sections...),
+   computed by small rule functions so that each problem points at the exact key it is about,
+   and so that they are reported together with the field errors of *other* sections;
+3. :func:`check_against_instrument`, the rules that need the instrument config (names of the
+   expansion volumes, the overpressure limit, the gas).
+
+``load_sequence`` runs 1 and 2 and returns a frozen :class:`Sequence` that remembers its file
+(``seq.path``), the exact text read (``seq.raw_text``, recorded by the engine in the run summary)
+and the positioned document (``seq.doc``, used by :func:`check_against_instrument`).
+"""
+
+from __future__ import annotations
+
+import importlib.resources
+import math
+from collections.abc import Callable, Iterable
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from pydantic import (
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    PrivateAttr,
+    StrictBool,
+    StrictInt,
+    StrictStr,
+    ValidationError,
+    ValidationInfo,
+    field_validator,
+    model_validator,
+)
+from pydantic_core import PydanticCustomError
+
+from pycnoctl.controller import units
+from pycnoctl.controller.gas import GASES, UnknownGas, get_gas
+from pycnoctl.controller.yamlio import ConfigError, Document, Loc, Problem, load_file, validate
+
+FORMAT = "pycnoctl-sequence/1"
+
+#: Kinds whose cycles fill the cell and expand into an expansion volume.
+EXPANDING_KINDS = ("measure", "calibrate")
+
+#: Default share of max_pressure kept free between a setpoint (plus overshoot) and the trip limit.
+DEFAULT_MARGIN = 0.10
+
+# Context key: defer cross-field rules to load_sequence, which positions each one at its key.
+_DEFER = "defer_rules"
+
+
+# --------------------------------------------------------------------------- unit-carrying types
+
+
+def _adapter(parse: Callable[[Any], float]) -> Callable[[Any], float]:
+    """Wrap a units parser so a bad value becomes one clean pydantic error with the parser's words."""
+
+    def convert(value: Any) -> float:
+        if isinstance(value, bool) or value is None or isinstance(value, dict | list):
+            raise PydanticCustomError("unit", "expected a number or a 'number unit' string, got {v}",
+                                      {"v": type(value).__name__ if value is not None else "nothing"})
+        try:
+            out = parse(value)
+        except units.UnitError as exc:
+            raise PydanticCustomError("unit", "{m}", {"m": str(exc)}) from None
+        except Exception:  # pint's unit parser can raise odd errors on odd text; it is user input
+            raise PydanticCustomError("unit", "cannot read {v!r} as a number with a unit",
+                                      {"v": str(value)[:60]}) from None
+        if not math.isfinite(out):
+            raise PydanticCustomError("unit", "value is not a finite number", {})
+        return out
+
+    return convert
+
+
+Pressure = Annotated[float, BeforeValidator(_adapter(units.parse_pressure))]  # Pa, bare number = bar
+Duration = Annotated[float, BeforeValidator(_adapter(units.parse_duration))]  # s, bare number = s
+Volume = Annotated[float, BeforeValidator(_adapter(units.parse_volume))]  # m^3, bare number = cm^3
+Rate = Annotated[float, BeforeValidator(_adapter(units.parse_rate))]  # Pa/s, bare number = Pa/s
+Fraction = Annotated[float, BeforeValidator(_adapter(units.parse_fraction))]  # 1, '0.05 %' = 5e-4
+Mass = Annotated[float, BeforeValidator(_adapter(units.parse_mass))]  # kg, bare number = g
+
+
+def _auto_or_rate(value: Any) -> Any:
+    if isinstance(value, str) and value.strip() == "auto":
+        return "auto"
+    return _adapter(units.parse_rate)(value)
+
+
+DriftLimit = Annotated[Literal["auto"] | float, BeforeValidator(_auto_or_rate)]
+
+Rule = tuple[Loc, str]
+
+
+class _Strict(BaseModel):
+    """Base of every section: unknown keys are errors, values are frozen once checked."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+def _raise_rules(rules: list[Rule], info: ValidationInfo) -> None:
+    """Inside a model validator: report rule breaks unless load_sequence will position them itself."""
+    if rules and not (info.context or {}).get(_DEFER):
+        raise ValueError("; ".join(msg for _, msg in rules))
+
+
+# --------------------------------------------------------------------------- sections
+
+
+class Purge(_Strict):
+    """Flush the cell with the working gas: fill to ``pressure``, hold, vent; ``pulses`` times."""
+
+    pulses: StrictInt = Field(5, ge=0, le=50)
+    pressure: Pressure = Field(gt=0)
+    hold: Duration = Field(2.0, gt=0)
+    vent: Duration = Field(3.0, gt=0)
+
+
+class Fill(_Strict):
+    """Charge the sample cell to the gauge target P1."""
+
+    target: Pressure = Field(gt=0)
+    timeout: Duration = Field(60.0, gt=0)
+    overshoot: Pressure = Field(5000.0, ge=0)  # 0.05 bar
+
+    @model_validator(mode="after")
+    def _rules(self, info: ValidationInfo) -> Fill:
+        _raise_rules(fill_rules(self), info)
+        return self
+
+
+def fill_rules(f: Fill) -> list[Rule]:
+    if f.overshoot >= f.target:
+        return [(("overshoot",), "overshoot must be smaller than the fill target")]
+    return []
+
+
+class Settle(_Strict):
+    """When a pressure counts as settled: a sliding-window slope below ``max_drift``."""
+
+    window: Duration = Field(10.0, gt=0)
+    max_drift: DriftLimit = "auto"
+    min_time: Duration = Field(5.0, ge=0)
+    max_time: Duration = Field(300.0, gt=0)
+    extrapolate: StrictBool = False
+    on_timeout: Literal["fault", "accept"] = "fault"
+
+    @field_validator("max_drift")
+    @classmethod
+    def _positive_drift(cls, v: str | float) -> str | float:
+        if v != "auto" and not v > 0:  # type: ignore[operator]
+            raise PydanticCustomError("range", "max_drift must be above 0 Pa/s (or 'auto')", {})
+        return v
+
+    @model_validator(mode="after")
+    def _rules(self, info: ValidationInfo) -> Settle:
+        _raise_rules(settle_rules(self), info)
+        return self
+
+
+def settle_rules(s: Settle, keys: Iterable[str] | None = None) -> list[Rule]:
+    """Cross-field rules of a settle; ``keys`` (those written in an override) picks the key to blame."""
+    present = set(keys) if keys is not None else None
+
+    def at(a: str, b: str) -> Loc:
+        if present is None or a in present or b not in present:
+            return (a,)
+        return (b,)
+
+    out: list[Rule] = []
+    if s.min_time > s.max_time:
+        out.append((at("min_time", "max_time"),
+                    f"min_time ({s.min_time:g} s) must not exceed max_time ({s.max_time:g} s)"))
+    if s.window > s.max_time:
+        out.append((at("window", "max_time"),
+                    f"window ({s.window:g} s) must not exceed max_time ({s.max_time:g} s)"))
+    return out
+
+
+class SettleOverride(_Strict):
+    """The keys a settle_filled / settle_expanded block may set (all optional)."""
+
+    window: Duration | None = Field(None, gt=0)
+    max_drift: DriftLimit | None = None
+    min_time: Duration | None = Field(None, ge=0)
+    max_time: Duration | None = Field(None, gt=0)
+    extrapolate: StrictBool | None = None
+    on_timeout: Literal["fault", "accept"] | None = None
+
+
+class Expand(_Strict):
+    """Which expansion volume to open after the first settle."""
+
+    volume: StrictStr = Field("auto", min_length=1, max_length=64)
+    sample_estimate: Volume | None = Field(None, gt=0)
+
+
+class Vent(_Strict):
+    """Return to the vented baseline between cycles."""
+
+    time: Duration = Field(5.0, gt=0)
+    timeout: Duration = Field(60.0, gt=0)
+    baseline_tolerance: Pressure = Field(1000.0, gt=0)  # 1 kPa
+
+    @model_validator(mode="after")
+    def _rules(self, info: ValidationInfo) -> Vent:
+        _raise_rules(vent_rules(self), info)
+        return self
+
+
+def vent_rules(v: Vent) -> list[Rule]:
+    if v.time > v.timeout:
+        return [(("time",), f"time ({v.time:g} s) must not exceed timeout ({v.timeout:g} s)")]
+    return []
+
+
+class Converge(_Strict):
+    """Early-stop test: the last ``last`` kept volumes all lie within ``within`` of their mean."""
+
+    last: StrictInt = Field(2, ge=2)
+    within: Fraction = Field(0.001, gt=0, le=0.10)  # 0.1 % each side of the mean = 0.2 % apart
+
+
+class Cycles(_Strict):
+    """How many fill/expand/vent cycles, and how many early ones are left out of the result."""
+
+    count: StrictInt = Field(1, ge=1, le=1000)
+    discard: StrictInt = Field(0, ge=0)
+    converge: Converge | None = None
+    stop_on_converge: StrictBool = False
+
+    @model_validator(mode="after")
+    def _rules(self, info: ValidationInfo) -> Cycles:
+        _raise_rules(cycles_rules(self), info)
+        return self
+
+
+def cycles_rules(c: Cycles) -> list[Rule]:
+    out: list[Rule] = []
+    if c.discard >= c.count:
+        out.append((("discard",), f"discard ({c.discard}) must be less than count ({c.count})"))
+    elif c.converge is not None and c.converge.last > c.count - c.discard:
+        out.append((("converge", "last"),
+                    f"converge.last ({c.converge.last}) exceeds the kept cycles "
+                    f"(count - discard = {c.count - c.discard})"))
+    if c.stop_on_converge and c.converge is None:
+        out.append((("stop_on_converge",), "stop_on_converge needs a converge block"))
+    return out
+
+
+class LeakCheck(_Strict):
+    """Pressurise, settle, hold closed and fail the run if the pressure falls faster than max_rate."""
+
+    pressure: Pressure = Field(gt=0)
+    hold: Duration = Field(gt=0)
+    max_rate: Rate = Field(gt=0)
+
+
+class SampleDefaults(_Strict):
+    """Sample data that may instead come from the command line."""
+
+    mass: Mass | None = Field(None, gt=0)
+    bulk_volume: Volume | None = Field(None, gt=0)
+
+
+# --------------------------------------------------------------------------- the sequence
+
+
+class Sequence(_Strict):
+    """A validated sequence; all values SI floats (pressures gauge, Pa).
+
+    ``settle_filled`` and ``settle_expanded`` are the *effective* settles: ``settle`` with the
+    keys written in the file's override block replacing its own.
+    """
+
+    format: Literal["pycnoctl-sequence/1"]
+    name: StrictStr = Field(min_length=1, max_length=80)
+    description: StrictStr = Field("", max_length=2000)
+    kind: Literal["measure", "calibrate", "leak_check", "purge"]
+    gas: StrictStr = "helium"
+    purge: Purge | None = None
+    fill: Fill = Field(default_factory=lambda: Fill(target=1.3e5))
+    settle: Settle = Field(default_factory=Settle)
+    # None -> validated into a copy of settle (validate_default runs the merge below)
+    settle_filled: Settle = Field(None, validate_default=True)  # type: ignore[assignment]
+    settle_expanded: Settle = Field(None, validate_default=True)  # type: ignore[assignment]
+    expand: Expand = Field(default_factory=Expand)
+    vent: Vent = Field(default_factory=Vent)
+    cycles: Cycles = Field(default_factory=Cycles)
+    leak_check: LeakCheck | None = None
+    sample_defaults: SampleDefaults = Field(default_factory=SampleDefaults)
+
+    _path: Path | None = PrivateAttr(default=None)
+    _raw_text: str | None = PrivateAttr(default=None)
+    _doc: Document | None = PrivateAttr(default=None)
+
+    @field_validator("gas")
+    @classmethod
+    def _known_gas(cls, v: str) -> str:
+        try:
+            return get_gas(v).name
+        except UnknownGas:
+            raise PydanticCustomError("gas", "unknown gas {g!r}; choose one of: {names}",
+                                      {"g": v, "names": ", ".join(GASES)}) from None
+
+    @field_validator("settle_filled", "settle_expanded", mode="before")
+    @classmethod
+    def _merge_settle(cls, v: Any, info: ValidationInfo) -> Any:
+        """Effective settle = the base settle with the override's keys replacing its own."""
+        if v is None:
+            v = {}
+        if not isinstance(v, dict):
+            return v  # let the Settle type report it
+        base = info.data.get("settle")
+        if not isinstance(base, Settle):  # the base itself is invalid and already reported
+            base = Settle()
+        merged = base.model_dump()
+        merged.update(v)
+        return merged
+
+    @model_validator(mode="after")
+    def _rules(self, info: ValidationInfo) -> Sequence:
+        _raise_rules(kind_rules(self.model_dump(exclude_unset=True)), info)
+        return self
+
+    # ---- what load_sequence remembers
+    @property
+    def path(self) -> Path | None:
+        """The file this sequence was loaded from (None when built in code)."""
+        return self._path
+
+    @property
+    def raw_text(self) -> str | None:
+        """The exact text of the file as read (for the run record)."""
+        return self._raw_text
+
+    @property
+    def doc(self) -> Document | None:
+        """The parsed document with key positions (for positioned problems later)."""
+        return self._doc
+
+    @property
+    def expands(self) -> bool:
+        return self.kind in EXPANDING_KINDS
+
+
+def kind_rules(data: Any) -> list[Rule]:
+    """Sections each kind needs, decided on plain data (raw YAML or a dumped model); never raises."""
+    if not isinstance(data, dict):
+        return []
+    kind = data.get("kind")
+    if not isinstance(kind, str):
+        return []
+    out: list[Rule] = []
+    if kind in EXPANDING_KINDS:
+        for key in ("fill", "expand", "cycles"):
+            if data.get(key) is None:
+                out.append((("kind",), f"kind {kind} needs a '{key}' section"))
+        expand = data.get("expand")
+        if isinstance(expand, dict) and expand.get("volume", "auto") == "auto" \
+                and expand.get("sample_estimate") is None:
+            loc: Loc = ("expand", "volume") if "volume" in expand else ("expand",)
+            out.append((loc, "volume 'auto' needs expand.sample_estimate (the expected sample volume)"))
+    elif kind == "leak_check":
+        if data.get("leak_check") is None:
+            out.append((("kind",), "kind leak_check needs a 'leak_check' section"))
+    elif kind == "purge":
+        purge = data.get("purge")
+        if purge is None:
+            out.append((("kind",), "kind purge needs a 'purge' section"))
+        elif isinstance(purge, dict) and type(purge.get("pulses")) is int and purge["pulses"] == 0:
+            out.append((("purge", "pulses"), "kind purge needs at least one pulse"))
+    return out
+
+
+# --------------------------------------------------------------------------- loading
+
+
+def _section_rules(data: Any) -> list[Rule]:
+    """Cross-field rules of every section that is valid on its own (invalid ones are reported already)."""
+    if not isinstance(data, dict):
+        return []
+    ctx = {_DEFER: True}
+    out: list[Rule] = list(kind_rules(data))
+
+    def check(key: str, model: type[BaseModel], rules: Callable[[Any], list[Rule]]) -> None:
+        raw = data.get(key)
+        if raw is None:
+            return
+        try:
+            m = model.model_validate(raw, context=ctx)
+        except (ValidationError, TypeError, ValueError):
+            return
+        out.extend(((key, *loc), msg) for loc, msg in rules(m))
+
+    check("fill", Fill, fill_rules)
+    check("vent", Vent, vent_rules)
+    check("cycles", Cycles, cycles_rules)
+    check("settle", Settle, settle_rules)
+
+    # overrides: judge the merged settle, blaming a key written in the override where possible
+    base_raw = data.get("settle")
+    base: Settle | None = Settle()
+    if base_raw is not None:
+        try:
+            base = Settle.model_validate(base_raw, context=ctx)
+        except (ValidationError, TypeError, ValueError):
+            base = None
+    for key in ("settle_filled", "settle_expanded"):
+        raw = data.get(key)
+        if not raw or not isinstance(raw, dict) or base is None:
+            continue
+        try:
+            over = SettleOverride.model_validate(raw, context=ctx)
+        except (ValidationError, TypeError, ValueError):
+            continue
+        merged = base.model_copy(update=over.model_dump(exclude_none=True))
+        for loc, msg in settle_rules(merged, keys=over.model_fields_set):
+            out.append(((key, *loc), f"{msg} (after merging with settle)"))
+    return out
+
+
+def _problem_key(p: Problem) -> tuple[int, int, str]:
+    return (p.line, p.col, p.message)
+
+
+def load_sequence(path: str | Path) -> Sequence:
+    """Load and check a sequence file; raises ConfigError listing every problem with file:line:col."""
+    doc = load_file(path)  # strict YAML: size cap, UTF-8, no tags/aliases/duplicates
+    problems: list[Problem] = []
+    seq: Sequence | None = None
+    try:
+        seq = validate(Sequence, doc, context={_DEFER: True})
+    except ConfigError as exc:
+        problems.extend(exc.problems)
+    problems.extend(doc.problem(loc, msg) for loc, msg in _section_rules(doc.data))
+    if problems or seq is None:
+        unique = {_problem_key(p): p for p in problems}
+        raise ConfigError(sorted(unique.values(), key=_problem_key))
+    seq._path = Path(path)
+    seq._raw_text = Path(path).read_text(encoding="utf-8")
+    seq._doc = doc
+    return seq
+
+
+# --------------------------------------------------------------------------- instrument checks
+
+
+def check_against_instrument(
+    seq: Sequence,
+    *,
+    expansion_volumes: Iterable[str],
+    max_pressure: float,
+    gas: str | None,
+    doc: Document | None = None,
+    margin: float = DEFAULT_MARGIN,
+) -> tuple[list[Problem], list[str]]:
+    """Rules that need the instrument: expansion-volume names, pressures under the trip, the gas.
+
+    Every pressurising setpoint plus ``fill.overshoot`` (the overshoot allowance applies to every
+    fill: the measurement fill, each purge pulse and the leak-check fill) must stay at or below
+    ``max_pressure * (1 - margin)``; all pressures are gauge, Pa.  Returns (problems, warnings);
+    problems are positioned in ``doc`` (default: the document the sequence was loaded from).
+    """
+    if not (max_pressure > 0 and math.isfinite(max_pressure)):
+        raise ValueError(f"max_pressure must be a positive pressure in Pa, got {max_pressure!r}")
+    if not 0 <= margin < 1:
+        raise ValueError(f"margin must be in [0, 1), got {margin!r}")
+    d = doc if doc is not None else seq.doc
+    name = str(seq.path) if seq.path is not None else f"<sequence {seq.name}>"
+
+    def problem(loc: Loc, msg: str) -> Problem:
+        return d.problem(loc, msg) if d is not None else Problem(name, 1, 1, msg)
+
+    problems: list[Problem] = []
+    warnings: list[str] = []
+    names = list(expansion_volumes)
+    if seq.expands:
+        if seq.expand.volume == "auto":
+            if not names:
+                problems.append(problem(("expand", "volume"), "the instrument has no expansion volume"))
+        elif seq.expand.volume not in names:
+            problems.append(problem(("expand", "volume"),
+                                    f"unknown expansion volume {seq.expand.volume!r}; the instrument has: "
+                                    f"{', '.join(names) or 'none'}"))
+
+    limit = max_pressure * (1.0 - margin)
+    over = seq.fill.overshoot
+    setpoints: list[tuple[Loc, str, float]] = []
+    if seq.expands:
+        setpoints.append((("fill", "target"), "fill.target", seq.fill.target))
+    if seq.purge is not None and seq.purge.pulses > 0:
+        setpoints.append((("purge", "pressure"), "purge.pressure", seq.purge.pressure))
+    if seq.kind == "leak_check" and seq.leak_check is not None:
+        setpoints.append((("leak_check", "pressure"), "leak_check.pressure", seq.leak_check.pressure))
+    for loc, label, p in setpoints:
+        if p + over > limit:
+            problems.append(problem(loc, (
+                f"{label} {p / 1e5:.4g} bar + overshoot {over / 1e5:.3g} bar exceeds "
+                f"{limit / 1e5:.4g} bar (max_pressure {max_pressure / 1e5:.4g} bar less a "
+                f"{margin * 100:g} % margin)")))
+
+    if gas is not None:
+        try:
+            inst_gas = get_gas(gas).name
+        except UnknownGas:
+            warnings.append(f"the instrument's gas {gas!r} is unknown; the sequence asks for {seq.gas}")
+        else:
+            if inst_gas != seq.gas:
+                warnings.append(f"the sequence is written for {seq.gas} but the instrument runs {inst_gas}")
+    return problems, warnings
+
+
+# --------------------------------------------------------------------------- shipped files
+
+
+class SequenceNotFound(FileNotFoundError):
+    """A sequence name or path that is neither a file nor a shipped sequence."""
+
+
+def list_shipped() -> dict[str, Path]:
+    """Shipped sequences by name (the file stem), from the pycnoctl.sequences package data."""
+    root = importlib.resources.files("pycnoctl.sequences")
+    out = {}
+    for entry in root.iterdir():
+        if entry.name.endswith(".yaml") and entry.is_file():
+            out[entry.name[: -len(".yaml")]] = Path(str(entry))
+    return dict(sorted(out.items()))
+
+
+def resolve_sequence(name_or_path: str | Path) -> Path:
+    """An existing file path is used as is; a bare name ('quick-demo' or 'quick-demo.yaml') is shipped."""
+    p = Path(name_or_path)
+    if p.is_file():
+        return p
+    text = str(name_or_path)
+    if "/" not in text and "\\" not in text:
+        stem = text[: -len(".yaml")] if text.endswith(".yaml") else text
+        shipped = list_shipped()
+        if stem in shipped:
+            return shipped[stem]
+        raise SequenceNotFound(f"no sequence file {text!r} and no shipped sequence of that name; "
+                               f"shipped: {', '.join(shipped)}")
+    raise SequenceNotFound(f"no sequence file {text!r}")
+
+
+# --------------------------------------------------------------------------- static duration
+
+
+def _settle_time(s: Settle, typical: float | None) -> float:
+    t = max(s.min_time, s.window) if typical is None else typical
+    return min(max(t, 0.0), s.max_time)
+
+
+def estimate_duration(seq: Sequence, *, fill_time: float = 5.0, settle_typical: float | None = None) -> float:
+    """Static estimate of instrument time in s, before any run (the engine's dry run gives the real one).
+
+    Each settle is taken as ``settle_typical`` or else the earliest it can be accepted,
+    max(min_time, window), never beyond max_time; each fill takes ``fill_time``; valves switch
+    instantly.  Purge: pulses x (fill + hold + vent).  Measure/calibrate: every cycle runs
+    (converge may stop earlier) as fill + settle_filled + settle_expanded + vent.time.  Leak check:
+    fill + settle_filled + hold + vent.time.
+    """
+    total = 0.0
+    if seq.purge is not None:
+        total += seq.purge.pulses * (fill_time + seq.purge.hold + seq.purge.vent)
+    if seq.expands:
+        per_cycle = (fill_time + _settle_time(seq.settle_filled, settle_typical)
+                     + _settle_time(seq.settle_expanded, settle_typical) + seq.vent.time)
+        total += seq.cycles.count * per_cycle
+    elif seq.kind == "leak_check" and seq.leak_check is not None:
+        total += (fill_time + _settle_time(seq.settle_filled, settle_typical)
+                  + seq.leak_check.hold + seq.vent.time)
+    return total
