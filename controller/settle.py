@@ -1,0 +1,495 @@
+"""Deciding when the gas in a chamber has settled after a fill or an expansion.
+
+After a fill the gas is warm and the pressure falls; after an expansion it is cold and the
+pressure rises.  Both relax roughly as P(t) = Pinf + A exp(-t/tau).  The detector keeps a
+sliding window of samples, fits a straight line to it with running sums (O(1) per sample), and
+declares the gas settled when the slope is small enough:
+
+* a fixed limit ``max_drift`` (Pa/s), or
+* the adaptive rule of methods.md: the offset still to come from an exponential is
+  |dP/dt| * tau, so accept when |dP/dt| < k * u_p / tau, tau taken from an exponential fit
+  over the window (refitted at most once per ``fit_interval`` of sample time, and again at
+  decision time).
+
+The recorded pressure is the regression line evaluated at the window's end (better than one
+sample: it averages the noise), or, when ``extrapolate`` is on and the exponential fit is
+sound, the fitted Pinf.  Pure code: no I/O, no clock; the caller passes sample times.
+"""
+
+from __future__ import annotations
+
+import enum
+import math
+from collections import deque
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = [
+    "ExpFit",
+    "SettleCriteria",
+    "SettleDetector",
+    "SettleStatus",
+    "fit_exponential",
+    "fit_exponential_detail",
+    "three_point_extrapolation",
+]
+
+
+class SettleStatus(enum.Enum):
+    WAITING = "waiting"
+    SETTLED = "settled"
+    TIMED_OUT = "timed_out"
+
+
+@dataclass(frozen=True)
+class SettleCriteria:
+    """When to call a chamber settled.
+
+    window: s of samples in the regression; max_drift: Pa/s, or None for the adaptive rule
+    |dP/dt| < drift_k * u_p / tau (u_p: standard uncertainty of one pressure reading, Pa);
+    min_time / max_time: s since the detector's t0; extrapolate: record the fitted Pinf when
+    the exponential fit is sound.
+    """
+
+    window: float
+    max_drift: float | None
+    min_time: float
+    max_time: float
+    extrapolate: bool
+    drift_k: float = 1.0
+    u_p: float | None = None
+    fit_interval: float = 1.0  # s of sample time between exponential refits (adaptive rule)
+
+    def __post_init__(self) -> None:
+        if not (self.window > 0 and math.isfinite(self.window)):
+            raise ValueError(f"window must be a positive number of seconds, got {self.window!r}")
+        if self.max_drift is not None and not self.max_drift > 0:
+            raise ValueError(f"max_drift must be > 0 Pa/s or None, got {self.max_drift!r}")
+        if self.max_drift is None and not (self.u_p is not None and self.u_p > 0):
+            raise ValueError("the adaptive drift rule (max_drift=None) needs u_p > 0 Pa")
+        if not self.drift_k > 0:
+            raise ValueError(f"drift_k must be > 0, got {self.drift_k!r}")
+        if self.min_time < 0 or not self.max_time > 0 or self.max_time < self.min_time:
+            raise ValueError(f"need 0 <= min_time <= max_time, got {self.min_time!r}, {self.max_time!r}")
+        if not self.fit_interval > 0:
+            raise ValueError("fit_interval must be > 0 s")
+
+
+# ----------------------------------------------------------------------------- exponential fits
+
+
+def three_point_extrapolation(p0: float, p1: float, p2: float, spacing: float) -> tuple[float, float]:
+    """Pinf and tau of P = Pinf + A exp(-t/tau) through three equally spaced samples.
+
+    Pinf = (p0 p2 - p1^2)/(p0 + p2 - 2 p1), tau = D / ln((p0 - p1)/(p1 - p2)) (methods.md).
+    Raises ValueError when the three points are not on a decaying exponential.
+    """
+    if not spacing > 0:
+        raise ValueError("spacing must be > 0")
+    d1 = p0 - p1
+    d2 = p1 - p2
+    denom = d1 - d2  # = p0 + p2 - 2 p1
+    if d1 == 0 or d2 == 0 or denom == 0:
+        raise ValueError("points are flat or on a straight line: no finite asymptote")
+    ratio = d1 / d2
+    if ratio <= 1.0:  # opposite signs (not monotonic) or growing steps
+        raise ValueError("points do not decay toward an asymptote")
+    p_inf = (p0 * p2 - p1 * p1) / denom
+    tau = spacing / math.log(ratio)
+    return float(p_inf), float(tau)
+
+
+@dataclass(frozen=True)
+class ExpFit:
+    """Least-squares fit of p = p_inf + amplitude * exp(-(t - t_ref)/tau), t_ref = first sample time."""
+
+    p_inf: float
+    amplitude: float
+    tau: float
+    residual_sd: float
+    u_p_inf: float  # standard error of p_inf (nan when there are no spare degrees of freedom)
+    u_amplitude: float
+    t_ref: float
+    n: int
+    interior: bool  # the best tau lies strictly inside the search range (not a boundary)
+    sound: bool  # fit can be trusted for extrapolation (see _is_sound)
+
+
+def _ssr_for_tau(s: np.ndarray, y: np.ndarray, tau: float) -> tuple[float, float, float]:
+    """Residual sum of squares and (a, b) of y = a + b exp(-s/tau), solved linearly."""
+    e = np.exp(-s / tau)
+    ec = e - e.mean()
+    yc = y - y.mean()
+    see = float(ec @ ec)
+    if see <= 1e-300:
+        return float(yc @ yc), float(y.mean()), 0.0
+    sey = float(ec @ yc)
+    b = sey / see
+    a = float(y.mean()) - b * float(e.mean())
+    ssr = max(float(yc @ yc) - b * sey, 0.0)
+    return ssr, a, b
+
+
+def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[float]) -> ExpFit:
+    """Fit p = p_inf + A exp(-(t - t[0])/tau) by least squares.
+
+    For each trial tau the model is linear in (p_inf, A), so only tau is searched: a log-spaced
+    grid, golden-section refinement of the best bracket, then Gauss-Newton polishing of all three
+    parameters, whose Jacobian also gives the standard errors.  No scipy needed.
+    """
+    t_arr = np.asarray(t, dtype=float)
+    p_arr = np.asarray(p, dtype=float)
+    if t_arr.shape != p_arr.shape or t_arr.ndim != 1:
+        raise ValueError("t and p must be 1-D arrays of equal length")
+    n = t_arr.size
+    if n < 3:
+        raise ValueError("an exponential fit needs at least three samples")
+    if not (np.all(np.isfinite(t_arr)) and np.all(np.isfinite(p_arr))):
+        raise ValueError("non-finite sample in fit")
+    t_ref = float(t_arr[0])
+    s = t_arr - t_ref
+    span = float(s[-1] - s[0])
+    steps = np.diff(s)
+    if span <= 0 or np.any(steps <= 0):
+        raise ValueError("sample times must increase")
+    # condition the pressures: centre and scale
+    p_mid = float(p_arr.mean())
+    p_scale = float(np.ptp(p_arr)) or 1.0
+    y = (p_arr - p_mid) / p_scale
+
+    tau_lo = max(float(np.min(steps)) * 0.25, span * 1e-4)
+    tau_hi = span * 100.0
+    grid = np.geomspace(tau_lo, tau_hi, 90)
+    ssr = np.array([_ssr_for_tau(s, y, g)[0] for g in grid])
+    k = int(np.argmin(ssr))
+    interior = 0 < k < grid.size - 1
+    lo = math.log(grid[max(k - 1, 0)])
+    hi = math.log(grid[min(k + 1, grid.size - 1)])
+    golden = (math.sqrt(5.0) - 1.0) / 2.0
+    c = hi - golden * (hi - lo)
+    d = lo + golden * (hi - lo)
+    fc = _ssr_for_tau(s, y, math.exp(c))[0]
+    fd = _ssr_for_tau(s, y, math.exp(d))[0]
+    for _ in range(80):
+        if hi - lo < 1e-12:
+            break
+        if fc < fd:
+            hi, d, fd = d, c, fc
+            c = hi - golden * (hi - lo)
+            fc = _ssr_for_tau(s, y, math.exp(c))[0]
+        else:
+            lo, c, fc = c, d, fd
+            d = lo + golden * (hi - lo)
+            fd = _ssr_for_tau(s, y, math.exp(d))[0]
+    tau = math.exp((lo + hi) / 2.0)
+    f_best, a, b = _ssr_for_tau(s, y, tau)
+
+    # Gauss-Newton polish on (a, b, tau) and covariance from the Jacobian
+    jac = np.empty((n, 3))
+    for _ in range(8):
+        e = np.exp(-s / tau)
+        jac[:, 0] = 1.0
+        jac[:, 1] = e
+        jac[:, 2] = b * s / (tau * tau) * e
+        r = y - (a + b * e)
+        try:
+            step, *_ = np.linalg.lstsq(jac, r, rcond=None)
+        except np.linalg.LinAlgError:
+            break
+        new_tau = tau + step[2]
+        if not (new_tau > 0 and math.isfinite(new_tau)):
+            break
+        trial = y - (a + step[0] + (b + step[1]) * np.exp(-s / new_tau))
+        f_new = float(trial @ trial)
+        if f_new > f_best * (1 + 1e-12) + 1e-300:
+            break
+        a, b, tau, f_best = a + step[0], b + step[1], new_tau, f_new
+        if abs(step[2]) < 1e-12 * tau:
+            break
+
+    e = np.exp(-s / tau)
+    jac[:, 0] = 1.0
+    jac[:, 1] = e
+    jac[:, 2] = b * s / (tau * tau) * e
+    dof = n - 3
+    resid = y - (a + b * e)
+    ssr_final = float(resid @ resid)
+    resid_sd = math.sqrt(ssr_final / dof) if dof > 0 else 0.0
+    u_a = u_b = math.nan
+    if dof > 0:
+        try:
+            cov = np.linalg.inv(jac.T @ jac) * (ssr_final / dof)
+            u_a = math.sqrt(max(cov[0, 0], 0.0))
+            u_b = math.sqrt(max(cov[1, 1], 0.0))
+        except np.linalg.LinAlgError:
+            pass
+    interior = interior and tau_lo < tau < tau_hi
+    fit = ExpFit(
+        p_inf=float(p_mid + p_scale * a),
+        amplitude=float(p_scale * b),
+        tau=float(tau),
+        residual_sd=p_scale * resid_sd,
+        u_p_inf=p_scale * u_a,
+        u_amplitude=p_scale * u_b,
+        t_ref=t_ref,
+        n=n,
+        interior=bool(interior),
+        sound=False,
+    )
+    return _with_soundness(fit, span)
+
+
+def _with_soundness(fit: ExpFit, span: float) -> ExpFit:
+    """A fit is sound for extrapolation when the exponential is resolved, not just a bent line.
+
+    Required: tau strictly inside the search range and no longer than 3 window spans (beyond
+    that Pinf is a guess far outside the data), at least two spare degrees of freedom, the
+    amplitude at least 3 standard errors from zero, and a finite standard error of Pinf.
+    """
+    sound = (
+        fit.interior
+        and fit.tau <= 3.0 * span
+        and fit.n >= 5
+        and math.isfinite(fit.u_p_inf)
+        and math.isfinite(fit.u_amplitude)
+        and abs(fit.amplitude) > 3.0 * fit.u_amplitude
+    )
+    return ExpFit(**{**fit.__dict__, "sound": bool(sound)})
+
+
+def fit_exponential(
+    t: np.ndarray | list[float], p: np.ndarray | list[float]
+) -> tuple[float, float, float, float]:
+    """(p_inf, amplitude, tau, residual_sd) of p = p_inf + amplitude exp(-(t - t[0])/tau).
+
+    The amplitude is referred to the first sample time t[0] (so large clock values do not overflow).
+    """
+    f = fit_exponential_detail(t, p)
+    return f.p_inf, f.amplitude, f.tau, f.residual_sd
+
+
+# ----------------------------------------------------------------------------- the detector
+
+
+class SettleDetector:
+    """Feeds on valid gauge-pressure samples and says when the gas has settled.
+
+    The decision is final: once SETTLED or TIMED_OUT, further samples are ignored and the
+    estimate stays the one taken at decision time.  Regression sums run over the sliding window
+    (added on arrival, subtracted on eviction, recomputed from scratch once per window length
+    of evictions so rounding cannot build up): O(1) amortised per sample.
+    """
+
+    def __init__(self, criteria: SettleCriteria, t0: float) -> None:
+        self.criteria = criteria
+        self.t0 = float(t0)
+        self._buf: deque[tuple[float, float]] = deque()
+        self._evicted = 0
+        self._status = SettleStatus.WAITING
+        self._t_last = math.nan
+        self._decided_at: float | None = None
+        self._fit: ExpFit | None = None
+        self._fit_t: float = -math.inf  # sample time of the last exponential fit
+        self._sound_tau: float | None = None
+        self._threshold: float | None = criteria.max_drift
+        self._frozen: tuple[float, float, float, float, str] | None = None  # est, u, drift, u_drift, how
+        self._reset_sums(self.t0, math.nan)
+
+    # -- running sums --------------------------------------------------------------------------
+    def _reset_sums(self, t_ref: float, p_ref: float) -> None:
+        self._tr, self._pr = t_ref, p_ref
+        self._n = 0
+        self._sx = self._sy = self._sxx = self._sxy = self._syy = 0.0
+
+    def _add(self, t: float, p: float, sign: float) -> None:
+        x = t - self._tr
+        y = p - self._pr
+        self._n += int(sign)
+        self._sx += sign * x
+        self._sy += sign * y
+        self._sxx += sign * x * x
+        self._sxy += sign * x * y
+        self._syy += sign * y * y
+
+    def _resync(self) -> None:
+        t_first, p_first = self._buf[0]
+        self._reset_sums(t_first, p_first)
+        for t, p in self._buf:
+            self._add(t, p, 1.0)
+        self._evicted = 0
+
+    def _regression(self) -> tuple[float, float, float, float]:
+        """(value at window end, its SE, slope, slope SE) from the running sums."""
+        n = self._n
+        if n < 2:
+            return math.nan, math.nan, math.nan, math.nan
+        xbar = self._sx / n
+        ybar = self._sy / n
+        sxx = self._sxx - self._sx * xbar
+        sxy = self._sxy - self._sx * ybar
+        syy = self._syy - self._sy * ybar
+        if sxx <= 0:
+            return ybar + self._pr, math.nan, math.nan, math.nan
+        slope = sxy / sxx
+        x_end = self._t_last - self._tr
+        value = self._pr + ybar + slope * (x_end - xbar)
+        if n < 3:
+            return value, math.nan, slope, math.nan
+        s2 = max(syy - slope * sxy, 0.0) / (n - 2)
+        u_value = math.sqrt(s2 * (1.0 / n + (x_end - xbar) ** 2 / sxx))
+        u_slope = math.sqrt(s2 / sxx)
+        return value, u_value, slope, u_slope
+
+    # -- exponential fit over the window ------------------------------------------------------
+    def _refit(self) -> ExpFit | None:
+        if len(self._buf) < 5:
+            return None
+        arr = np.array(self._buf)
+        try:
+            fit = fit_exponential_detail(arr[:, 0], arr[:, 1])
+        except ValueError:
+            fit = None
+        self._fit = fit
+        self._fit_t = self._t_last
+        if fit is not None and fit.sound:
+            self._sound_tau = fit.tau
+        return fit
+
+    def _adaptive_threshold(self) -> float:
+        """k u_p / tau; tau from the latest sound fit, else the window length.
+
+        Using the window when no exponential is resolved means: over one window the pressure
+        may move no more than k u_p.  (A trace with tau much longer than the window looks like
+        a straight line and its remaining offset cannot be known from the window alone.)
+        """
+        c = self.criteria
+        assert c.u_p is not None
+        tau = self._sound_tau if self._sound_tau is not None else c.window
+        return c.drift_k * c.u_p / tau
+
+    # -- feeding -------------------------------------------------------------------------------
+    def feed(self, t: float, p: float) -> SettleStatus:
+        """Add one valid gauge-pressure sample (Pa) taken at time t (s); returns the status."""
+        if self._status is not SettleStatus.WAITING:
+            return self._status
+        t = float(t)
+        p = float(p)
+        if not (math.isfinite(t) and math.isfinite(p)):
+            raise ValueError("settle detector takes only valid, finite samples")
+        if self._buf and t <= self._t_last:
+            raise ValueError(f"sample time {t} does not advance past {self._t_last}")
+        c = self.criteria
+        if not self._buf:
+            self._reset_sums(t, p)
+        self._buf.append((t, p))
+        self._t_last = t
+        self._add(t, p, 1.0)
+        edge = t - c.window * (1.0 + 1e-9)
+        while self._buf[0][0] < edge:
+            ot, op = self._buf.popleft()
+            self._add(ot, op, -1.0)
+            self._evicted += 1
+        if self._evicted >= max(len(self._buf), 16):
+            self._resync()
+
+        elapsed = t - self.t0
+        window_full = elapsed >= c.window * (1.0 - 1e-9) and self._n >= 3
+        if window_full and elapsed >= c.min_time and self._check_drift():
+            self._decide(SettleStatus.SETTLED)
+        elif elapsed >= c.max_time:
+            self._decide(SettleStatus.TIMED_OUT)
+        return self._status
+
+    def _check_drift(self) -> bool:
+        c = self.criteria
+        _, _, slope, _ = self._regression()
+        if not math.isfinite(slope):
+            return False
+        if c.max_drift is not None:
+            self._threshold = c.max_drift
+            return abs(slope) < c.max_drift
+        if self._t_last - self._fit_t >= c.fit_interval:
+            self._refit()
+        self._threshold = self._adaptive_threshold()
+        if abs(slope) >= self._threshold:
+            return False
+        if self._fit_t != self._t_last:  # confirm with a fit on the current window
+            self._refit()
+            self._threshold = self._adaptive_threshold()
+        return abs(slope) < self._threshold
+
+    def _decide(self, status: SettleStatus) -> None:
+        self._status = status
+        self._decided_at = self._t_last
+        value, u_value, slope, u_slope = self._regression()
+        how = "regression"
+        if self.criteria.extrapolate:
+            fit = self._fit if self._fit_t == self._t_last else self._refit()
+            if fit is not None and fit.sound:
+                value, u_value, how = fit.p_inf, fit.u_p_inf, "extrapolated"
+        self._frozen = (value, u_value, slope, u_slope, how)
+
+    # -- results -------------------------------------------------------------------------------
+    def _current(self) -> tuple[float, float, float, float, str]:
+        if self._frozen is not None:
+            return self._frozen
+        return (*self._regression(), "regression")
+
+    @property
+    def status(self) -> SettleStatus:
+        return self._status
+
+    @property
+    def estimate(self) -> float:
+        """The pressure to record (Pa): regression at the window end, or the fitted Pinf."""
+        return self._current()[0]
+
+    @property
+    def u_estimate(self) -> float:
+        """Standard error of ``estimate`` (Pa), from the regression (or fit) residuals."""
+        return self._current()[1]
+
+    @property
+    def drift(self) -> float:
+        """Regression slope over the window (Pa/s)."""
+        return self._current()[2]
+
+    @property
+    def drift_se(self) -> float:
+        return self._current()[3]
+
+    @property
+    def method(self) -> str:
+        """'regression' or 'extrapolated': how ``estimate`` was obtained."""
+        return self._current()[4]
+
+    @property
+    def threshold(self) -> float | None:
+        """The drift limit last applied (Pa/s)."""
+        return self._threshold
+
+    @property
+    def elapsed(self) -> float:
+        t = self._decided_at if self._decided_at is not None else self._t_last
+        return t - self.t0 if math.isfinite(t) else 0.0
+
+    @property
+    def decided_at(self) -> float | None:
+        return self._decided_at
+
+    @property
+    def n_window(self) -> int:
+        return len(self._buf)
+
+    @property
+    def fit(self) -> ExpFit | None:
+        return self._fit
+
+    @property
+    def tau(self) -> float | None:
+        return self._fit.tau if self._fit is not None else None
+
+    @property
+    def p_inf(self) -> float | None:
+        return self._fit.p_inf if self._fit is not None else None
