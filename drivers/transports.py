@@ -111,6 +111,11 @@ class SerialTransport:
     # -- I/O --------------------------------------------------------------------------------
     def write(self, data: bytes) -> None:
         with self.lock:
+            self._write(data)
+            log.debug("%s: sent %r", self.name, data)
+
+    def _write(self, data: bytes) -> None:
+        with self.lock:
             port = self._live(data)
             try:
                 port.reset_input_buffer()  # a late reply to an earlier query must not be read as ours
@@ -120,7 +125,6 @@ class SerialTransport:
                 raise DeviceTimeout(self.name, "write timed out", data) from exc
             except (serial.SerialException, OSError) as exc:
                 raise self._lost(exc, data) from exc
-            log.debug("%s: sent %r", self.name, data)
 
     def _with_timeout(self, timeout: float | None, fn: Any) -> bytes:
         port = self._port
@@ -161,7 +165,7 @@ class SerialTransport:
 
     def query(self, data: bytes, timeout: float | None = None) -> bytes:
         with self.lock:
-            self.write(data)
+            self._write(data)
             try:
                 reply = self.readline(timeout, command=data)
             except DeviceError as exc:
@@ -251,12 +255,16 @@ class VisaTransport:
 
     def write(self, data: bytes) -> None:
         with self.lock:
+            self._write(data)
+            log.debug("%s: sent %r", self.name, data)
+
+    def _write(self, data: bytes) -> None:
+        with self.lock:
             inst = self._live(data)
             try:
-                inst.write(data.decode("ascii"))
+                inst.write(data.decode("ascii").rstrip(self.write_termination or None))
             except Exception as exc:
                 raise self._error(exc, data) from exc
-            log.debug("%s: sent %r", self.name, data)
 
     def readline(self, timeout: float | None = None, *, command: bytes | None = None) -> bytes:
         with self.lock:
@@ -285,7 +293,7 @@ class VisaTransport:
 
     def query(self, data: bytes, timeout: float | None = None) -> bytes:
         with self.lock:
-            self.write(data)
+            self._write(data)
             try:
                 reply = self.readline(timeout, command=data)
             except DeviceError as exc:
