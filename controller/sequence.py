@@ -36,6 +36,7 @@ from pydantic import (
     StrictBool,
     StrictInt,
     StrictStr,
+    TypeAdapter,
     ValidationError,
     ValidationInfo,
     field_validator,
@@ -62,20 +63,24 @@ _DEFER = "defer_rules"
 # --------------------------------------------------------------------------- unit-carrying types
 
 
+def _err(kind: str, text: str) -> PydanticCustomError:
+    """A pydantic error whose message is exactly ``text`` (no template formatting of user input)."""
+    return PydanticCustomError(kind, "{m}", {"m": text})
+
+
 def _adapter(parse: Callable[[Any], float]) -> Callable[[Any], float]:
     """Wrap a units parser so a bad value becomes one clean pydantic error with the parser's words."""
 
     def convert(value: Any) -> float:
         if isinstance(value, bool) or value is None or isinstance(value, dict | list):
-            raise PydanticCustomError("unit", "expected a number or a 'number unit' string, got {v}",
-                                      {"v": type(value).__name__ if value is not None else "nothing"})
+            got = "nothing" if value is None else type(value).__name__
+            raise _err("unit", f"expected a number or a 'number unit' text, got {got}")
         try:
             out = parse(value)
         except units.UnitError as exc:
-            raise PydanticCustomError("unit", "{m}", {"m": str(exc)}) from None
+            raise _err("unit", str(exc)) from None
         except Exception:  # pint's unit parser can raise odd errors on odd text; it is user input
-            raise PydanticCustomError("unit", "cannot read {v!r} as a number with a unit",
-                                      {"v": str(value)[:60]}) from None
+            raise _err("unit", f"cannot read {str(value)[:60]!r} as a number with a unit") from None
         if not math.isfinite(out):
             raise PydanticCustomError("unit", "value is not a finite number", {})
         return out
@@ -114,6 +119,10 @@ def _raise_rules(rules: list[Rule], info: ValidationInfo) -> None:
         raise ValueError("; ".join(msg for _, msg in rules))
 
 
+def _has(v: dict[str, Any], *keys: str) -> bool:
+    return all(v.get(k) is not None for k in keys)
+
+
 # --------------------------------------------------------------------------- sections
 
 
@@ -135,12 +144,13 @@ class Fill(_Strict):
 
     @model_validator(mode="after")
     def _rules(self, info: ValidationInfo) -> Fill:
-        _raise_rules(fill_rules(self), info)
+        _raise_rules(fill_rules(dict(self)), info)
         return self
 
 
-def fill_rules(f: Fill) -> list[Rule]:
-    if f.overshoot >= f.target:
+def fill_rules(v: dict[str, Any]) -> list[Rule]:
+    """Cross-field rules of fill, on the field values that are valid (any may be missing)."""
+    if _has(v, "overshoot", "target") and v["overshoot"] >= v["target"]:
         return [(("overshoot",), "overshoot must be smaller than the fill target")]
     return []
 
@@ -164,26 +174,17 @@ class Settle(_Strict):
 
     @model_validator(mode="after")
     def _rules(self, info: ValidationInfo) -> Settle:
-        _raise_rules(settle_rules(self), info)
+        _raise_rules([(loc, msg) for loc, _, msg in settle_rules(dict(self))], info)
         return self
 
 
-def settle_rules(s: Settle, keys: Iterable[str] | None = None) -> list[Rule]:
-    """Cross-field rules of a settle; ``keys`` (those written in an override) picks the key to blame."""
-    present = set(keys) if keys is not None else None
-
-    def at(a: str, b: str) -> Loc:
-        if present is None or a in present or b not in present:
-            return (a,)
-        return (b,)
-
-    out: list[Rule] = []
-    if s.min_time > s.max_time:
-        out.append((at("min_time", "max_time"),
-                    f"min_time ({s.min_time:g} s) must not exceed max_time ({s.max_time:g} s)"))
-    if s.window > s.max_time:
-        out.append((at("window", "max_time"),
-                    f"window ({s.window:g} s) must not exceed max_time ({s.max_time:g} s)"))
+def settle_rules(v: dict[str, Any]) -> list[tuple[Loc, Loc, str]]:
+    """Cross-field rules of a settle as (blamed key, other key, message)."""
+    out: list[tuple[Loc, Loc, str]] = []
+    for short in ("min_time", "window"):
+        if _has(v, short, "max_time") and v[short] > v["max_time"]:
+            out.append(((short,), ("max_time",),
+                        f"{short} ({v[short]:g} s) must not exceed max_time ({v['max_time']:g} s)"))
     return out
 
 
@@ -214,13 +215,13 @@ class Vent(_Strict):
 
     @model_validator(mode="after")
     def _rules(self, info: ValidationInfo) -> Vent:
-        _raise_rules(vent_rules(self), info)
+        _raise_rules(vent_rules(dict(self)), info)
         return self
 
 
-def vent_rules(v: Vent) -> list[Rule]:
-    if v.time > v.timeout:
-        return [(("time",), f"time ({v.time:g} s) must not exceed timeout ({v.timeout:g} s)")]
+def vent_rules(v: dict[str, Any]) -> list[Rule]:
+    if _has(v, "time", "timeout") and v["time"] > v["timeout"]:
+        return [(("time",), f"time ({v['time']:g} s) must not exceed timeout ({v['timeout']:g} s)")]
     return []
 
 
@@ -228,7 +229,14 @@ class Converge(_Strict):
     """Early-stop test: the last ``last`` kept volumes all lie within ``within`` of their mean."""
 
     last: StrictInt = Field(2, ge=2)
-    within: Fraction = Field(0.001, gt=0, le=0.10)  # 0.1 % each side of the mean = 0.2 % apart
+    within: Fraction = 0.001  # 0.1 % each side of the mean = 0.2 % apart
+
+    @field_validator("within")
+    @classmethod
+    def _within_range(cls, v: float) -> float:
+        if not 0 < v <= 0.10:
+            raise _err("range", f"within must be above 0 and at most 10 %, got {v * 100:g} %")
+        return v
 
 
 class Cycles(_Strict):
@@ -241,19 +249,22 @@ class Cycles(_Strict):
 
     @model_validator(mode="after")
     def _rules(self, info: ValidationInfo) -> Cycles:
-        _raise_rules(cycles_rules(self), info)
+        _raise_rules(cycles_rules(dict(self)), info)
         return self
 
 
-def cycles_rules(c: Cycles) -> list[Rule]:
+def cycles_rules(v: dict[str, Any]) -> list[Rule]:
     out: list[Rule] = []
-    if c.discard >= c.count:
-        out.append((("discard",), f"discard ({c.discard}) must be less than count ({c.count})"))
-    elif c.converge is not None and c.converge.last > c.count - c.discard:
-        out.append((("converge", "last"),
-                    f"converge.last ({c.converge.last}) exceeds the kept cycles "
-                    f"(count - discard = {c.count - c.discard})"))
-    if c.stop_on_converge and c.converge is None:
+    conv = v.get("converge")
+    last = conv.get("last") if isinstance(conv, dict) else getattr(conv, "last", None)
+    if _has(v, "discard", "count"):
+        count, discard = v["count"], v["discard"]
+        if discard >= count:
+            out.append((("discard",), f"discard ({discard}) must be less than count ({count})"))
+        elif last is not None and last > count - discard:
+            out.append((("converge", "last"),
+                        f"last ({last}) exceeds the kept cycles (count - discard = {count - discard})"))
+    if v.get("stop_on_converge") is True and "converge" in v and conv is None:
         out.append((("stop_on_converge",), "stop_on_converge needs a converge block"))
     return out
 
@@ -310,8 +321,7 @@ class Sequence(_Strict):
         try:
             return get_gas(v).name
         except UnknownGas:
-            raise PydanticCustomError("gas", "unknown gas {g!r}; choose one of: {names}",
-                                      {"g": v, "names": ", ".join(GASES)}) from None
+            raise _err("gas", f"unknown gas {v!r}; choose one of: {', '.join(GASES)}") from None
 
     @field_validator("settle_filled", "settle_expanded", mode="before")
     @classmethod
@@ -386,47 +396,67 @@ def kind_rules(data: Any) -> list[Rule]:
 # --------------------------------------------------------------------------- loading
 
 
+_ADAPTERS: dict[tuple[type[BaseModel], str], TypeAdapter[Any]] = {}
+
+
+def _field_adapter(model: type[BaseModel], name: str) -> TypeAdapter[Any]:
+    key = (model, name)
+    if key not in _ADAPTERS:
+        info = model.model_fields[name]
+        _ADAPTERS[key] = TypeAdapter(Annotated[info.annotation, *info.metadata])  # type: ignore[misc]
+    return _ADAPTERS[key]
+
+
+def _partial(model: type[BaseModel], raw: Any) -> dict[str, Any]:
+    """Validate field by field: the values that are valid on their own, defaults for absent keys.
+
+    This lets cross-field rules run even when a neighbouring key of the same section is wrong,
+    so a file's problems all come out in one pass.  Nested sections come back as plain dicts.
+    """
+    out: dict[str, Any] = {}
+    if not isinstance(raw, dict):
+        return out
+    for name, info in model.model_fields.items():
+        if name in raw:
+            sub = raw[name]
+            ann = info.annotation
+            nested = next((t for t in (ann, *getattr(ann, "__args__", ())) if isinstance(t, type)
+                           and issubclass(t, BaseModel)), None)
+            if nested is not None and isinstance(sub, dict):
+                out[name] = _partial(nested, sub)
+                continue
+            try:
+                out[name] = _field_adapter(model, name).validate_python(sub, context={_DEFER: True})
+            except (ValidationError, TypeError, ValueError):
+                continue
+        elif not info.is_required():
+            out[name] = info.get_default(call_default_factory=True)
+    return out
+
+
 def _section_rules(data: Any) -> list[Rule]:
-    """Cross-field rules of every section that is valid on its own (invalid ones are reported already)."""
+    """Cross-field rules on the valid parts of plain data; each rule is positioned at its key."""
     if not isinstance(data, dict):
         return []
-    ctx = {_DEFER: True}
     out: list[Rule] = list(kind_rules(data))
-
-    def check(key: str, model: type[BaseModel], rules: Callable[[Any], list[Rule]]) -> None:
-        raw = data.get(key)
-        if raw is None:
-            return
-        try:
-            m = model.model_validate(raw, context=ctx)
-        except (ValidationError, TypeError, ValueError):
-            return
-        out.extend(((key, *loc), msg) for loc, msg in rules(m))
-
-    check("fill", Fill, fill_rules)
-    check("vent", Vent, vent_rules)
-    check("cycles", Cycles, cycles_rules)
-    check("settle", Settle, settle_rules)
-
-    # overrides: judge the merged settle, blaming a key written in the override where possible
-    base_raw = data.get("settle")
-    base: Settle | None = Settle()
-    if base_raw is not None:
-        try:
-            base = Settle.model_validate(base_raw, context=ctx)
-        except (ValidationError, TypeError, ValueError):
-            base = None
+    for key, model, rules in (("fill", Fill, fill_rules), ("vent", Vent, vent_rules),
+                              ("cycles", Cycles, cycles_rules)):
+        if isinstance(data.get(key), dict):
+            out.extend(((key, *loc), msg) for loc, msg in rules(_partial(model, data[key])))
+    base = _partial(Settle, data.get("settle") if data.get("settle") is not None else {})
+    if isinstance(data.get("settle"), dict):
+        out.extend((("settle", *loc), msg) for loc, _, msg in settle_rules(base))
     for key in ("settle_filled", "settle_expanded"):
         raw = data.get(key)
-        if not raw or not isinstance(raw, dict) or base is None:
+        if not isinstance(raw, dict) or not raw:
             continue
-        try:
-            over = SettleOverride.model_validate(raw, context=ctx)
-        except (ValidationError, TypeError, ValueError):
-            continue
-        merged = base.model_copy(update=over.model_dump(exclude_none=True))
-        for loc, msg in settle_rules(merged, keys=over.model_fields_set):
-            out.append(((key, *loc), f"{msg} (after merging with settle)"))
+        over = {k: v for k, v in _partial(SettleOverride, raw).items() if v is not None and k in raw}
+        merged = {**base, **over}
+        for loc, other, msg in settle_rules(merged):
+            # blame the override only for a break it takes part in; a break of settle is reported there
+            if loc[0] in over or other[0] in over:
+                blamed = loc if loc[0] in over else other
+                out.append(((key, *blamed), f"{msg} (after merging with settle)"))
     return out
 
 
@@ -443,7 +473,8 @@ def load_sequence(path: str | Path) -> Sequence:
         seq = validate(Sequence, doc, context={_DEFER: True})
     except ConfigError as exc:
         problems.extend(exc.problems)
-    problems.extend(doc.problem(loc, msg) for loc, msg in _section_rules(doc.data))
+    problems.extend(doc.problem(loc, f"{'.'.join(map(str, loc))}: {msg}")
+                    for loc, msg in _section_rules(doc.data))
     if problems or seq is None:
         unique = {_problem_key(p): p for p in problems}
         raise ConfigError(sorted(unique.values(), key=_problem_key))
