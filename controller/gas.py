@@ -31,8 +31,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-#: Molar gas constant, J/(mol K), CODATA 2018 (exact since the 2019 SI redefinition).
-R: float = 8.314462618
+#: Molar gas constant, J/(mol K): N_A k with both exact since the 2019 SI (CODATA 2018 prints it
+#: as 8.314462618...; the product keeps all digits).
+R: float = 6.02214076e23 * 1.380649e-23
 
 #: Reference temperature of the virial fits, K.
 T_FIT: float = 298.15
