@@ -1,0 +1,130 @@
+"""Unit parsing against outside conversion factors (scipy.constants, CODATA/SI definitions)."""
+
+from __future__ import annotations
+
+import pint
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+scipy_constants = pytest.importorskip("scipy.constants")
+
+from pycnoctl.controller import units as u  # noqa: E402
+from pycnoctl.controller.units import UnitError  # noqa: E402
+
+C = scipy_constants
+
+
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [
+        ("1.4 bar", 1.4 * C.bar),  # source: scipy.constants.bar
+        ("241.325 kPa", 241.325e3),
+        ("1 atm", C.atm),  # scipy.constants.atm = 101325 Pa
+        ("20 psi", 20 * C.psi),  # scipy.constants.psi
+        ("760 torr", 760 * C.torr),
+        ("5 mbar", 5e-3 * C.bar),
+        ("1.4", 1.4 * C.bar),  # bare number: default unit bar
+        (2.5, 2.5 * C.bar),
+        ("1e5 Pa", 1e5),
+    ],
+)
+def test_parse_pressure(text, expected):
+    assert u.parse_pressure(text) == pytest.approx(expected, rel=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [
+        ("25 degC", C.zero_Celsius + 25),  # source: scipy.constants.zero_Celsius
+        ("25 °C", C.zero_Celsius + 25),
+        ("25", C.zero_Celsius + 25),  # bare number: degC
+        ("-5 degC", C.zero_Celsius - 5),
+        ("77 degF", C.convert_temperature(77, "F", "K")),  # scipy.constants.convert_temperature
+        ("300 K", 300.0),
+    ],
+)
+def test_parse_temperature(text, expected):
+    assert u.parse_temperature(text) == pytest.approx(expected, rel=1e-12)
+
+
+def test_temperature_difference_is_a_step_not_an_absolute():
+    assert u.parse_temperature_difference("0.1 degC") == pytest.approx(0.1)
+    assert u.parse_temperature_difference("0.1 K") == pytest.approx(0.1)
+    assert u.parse_temperature_difference("0.9 degF") == pytest.approx(0.5)  # 1 degF step = 5/9 K (SI def.)
+    with pytest.raises(UnitError, match="below absolute zero"):
+        u.parse_temperature("-300 degC")
+
+
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [("10 cm^3", 1e-5), ("10 cm3", 1e-5), ("10 cm**3", 1e-5), ("10 mL", 1e-5), ("10", 1e-5),
+     ("10 cm³", 1e-5), ("1 L", C.liter), ("5 µL", 5e-9), ("1 mm3", 1e-9)],
+)
+def test_parse_volume(text, expected):
+    assert u.parse_volume(text) == pytest.approx(expected, rel=1e-12)
+
+
+def test_other_parsers():
+    assert u.parse_mass("2.5 g") == pytest.approx(2.5 * C.gram)
+    assert u.parse_mass("2.5") == pytest.approx(2.5e-3)
+    assert u.parse_mass("1 lb") == pytest.approx(C.pound)
+    assert u.parse_duration("2 min") == pytest.approx(2 * C.minute)
+    assert u.parse_duration("1.5 h") == pytest.approx(1.5 * C.hour)
+    assert u.parse_rate("0.5 Pa/s") == pytest.approx(0.5)
+    assert u.parse_rate("3 mbar/min") == pytest.approx(3e-3 * C.bar / C.minute)
+    assert u.parse_length("25.4 mm") == pytest.approx(C.inch)
+    assert u.parse_length("1 in") == pytest.approx(C.inch)
+    assert u.parse_density("2.329 g/cm^3") == pytest.approx(2329.0)
+    assert u.parse_fraction("0.05 %") == pytest.approx(0.0005)
+    assert u.parse_fraction("2 ppm") == pytest.approx(2e-6)
+    assert u.parse_fraction("0.01") == pytest.approx(0.01)
+    assert u.parse_quantity("3 mbar", "pressure") == pytest.approx(300.0)
+    assert u.parse_quantity("3", "time") == pytest.approx(3.0)  # bare number in SI when no default
+
+
+def test_pint_quantities_pass_through_even_from_another_registry():
+    assert u.parse_pressure(u.Q_(2, "bar")) == pytest.approx(2e5)
+    other = pint.UnitRegistry()
+    assert u.parse_pressure(other.Quantity(1, "atm")) == pytest.approx(C.atm)
+
+
+@pytest.mark.parametrize(
+    ("fn", "text", "message"),
+    [
+        (u.parse_pressure, "3 kg", "'3 kg' is not a pressure"),
+        (u.parse_volume, "1 m2", "is not a volume"),
+        (u.parse_temperature, "5 bar", "is not a temperature"),
+        (u.parse_pressure, "abc", "not a number with a unit"),
+        (u.parse_pressure, "1 foo", "unknown unit 'foo'"),
+        (u.parse_pressure, "", "not a number"),
+        (u.parse_pressure, "nan bar", "not a number"),
+        (u.parse_fraction, "3 s", "not a fraction"),
+    ],
+)
+def test_errors_are_unit_errors_with_clear_messages(fn, text, message):
+    with pytest.raises(UnitError, match=message):
+        fn(text)
+    assert issubclass(UnitError, ValueError)
+
+
+def test_gauge_tags():
+    assert u.parse_pressure_spec("1.4 bar gauge") == (pytest.approx(1.4e5), True)
+    assert u.parse_pressure_spec("1.4 bar(g)") == (pytest.approx(1.4e5), True)
+    assert u.parse_pressure_spec("2.4 bar abs") == (pytest.approx(2.4e5), False)
+    assert u.parse_pressure_spec("2.4 bar") == (pytest.approx(2.4e5), None)
+
+
+def test_formatting_round_trip():
+    assert u.format_quantity(1.2345678e-5, "volume", "cm^3") == "12.3457 cm³"
+    assert u.format_quantity(298.15, "temperature", "degC") == "25 °C"
+    assert u.convert(1e-6, "volume", "cm3") == pytest.approx(1.0)
+
+
+@given(st.floats(min_value=1e3, max_value=1e7, allow_nan=False))
+def test_pressure_unit_invariance(pa):
+    # the same pressure typed in four units parses to the same Pa (factors: scipy.constants)
+    texts = [f"{pa!r} Pa", f"{pa / 1e3!r} kPa", f"{pa / C.bar!r} bar", f"{pa / C.psi!r} psi"]
+    values = [u.parse_pressure(t) for t in texts]
+    for v in values:
+        assert v == pytest.approx(pa, rel=1e-12)
