@@ -10,9 +10,10 @@ from __future__ import annotations
 import logging
 import math
 import re
+from collections.abc import Callable
 from dataclasses import dataclass
 
-from pycnoctl.controller.units import parse_pressure
+from pycnoctl.controller.units import parse_pressure, parse_temperature
 from pycnoctl.drivers.base import DeviceDisconnected, DeviceError, DeviceTimeout, Reading, Validity
 from pycnoctl.drivers.clock import Clock, WallClock
 from pycnoctl.drivers.relay_ascii import FrameTemplate
@@ -37,14 +38,25 @@ class GaugeFormat:
     offset: float = 0.0
     overrange_words: tuple[str, ...] = ("OVER", "UNDER", "OVERRANGE", "UNDERRANGE", "OR", "UR")
     nan_words: tuple[str, ...] = ("NAN", "NaN", "nan", "----", "ERR")
-    range_min: float | None = None  # Pa, in the reading's reference (gauge or absolute)
-    range_max: float | None = None  # Pa
+    range_min: float | None = None  # SI (Pa or K), in the reading's reference (gauge or absolute)
+    range_max: float | None = None
     timeout: float | None = None  # s; None uses the transport's
 
 
-def classify_text(raw: str, fmt: GaugeFormat, pa_per_unit: float,
+def si_converter(quantity: str, unit: str) -> tuple[Callable[[float], float], str]:
+    """A function from a value in `unit` to SI, and the SI unit name (Pa or K)."""
+    if quantity == "pressure":
+        factor = pascal_per(unit)
+        return (lambda x: x * factor), "Pa"
+    if quantity == "temperature":
+        parse_temperature(1.0, default_unit=unit)  # fail early on a bad unit
+        return (lambda x: parse_temperature(x, default_unit=unit)), "K"
+    raise ValueError(f"quantity must be 'pressure' or 'temperature', not {quantity!r}")
+
+
+def classify_text(raw: str, fmt: GaugeFormat, to_si: Callable[[float], float],
                   rx: re.Pattern[str]) -> tuple[float, Validity, str]:
-    """Reply text -> (Pa, validity, detail).  Pure, so it is tested without a device."""
+    """Reply text -> (SI value, validity, detail).  Pure, so it is tested without a device."""
     text = raw.strip()
     m = rx.search(text)
     if not m:
@@ -63,19 +75,22 @@ def classify_text(raw: str, fmt: GaugeFormat, pa_per_unit: float,
         if math.isnan(raw_value):
             return math.nan, Validity.NAN, f"gauge says {token!r}"
         return math.nan, Validity.OUT_OF_RANGE, f"gauge says {token!r}"
-    pa = (raw_value * fmt.gain + fmt.offset) * pa_per_unit
-    if fmt.range_min is not None and pa < fmt.range_min:
-        return math.nan, Validity.OUT_OF_RANGE, f"{pa:.6g} Pa below the rated {fmt.range_min:.6g} Pa"
-    if fmt.range_max is not None and pa > fmt.range_max:
-        return math.nan, Validity.OUT_OF_RANGE, f"{pa:.6g} Pa above the rated {fmt.range_max:.6g} Pa"
-    return pa, Validity.VALID, ""
+    try:
+        si = to_si(raw_value * fmt.gain + fmt.offset)
+    except ValueError as exc:  # e.g. a temperature below absolute zero
+        return math.nan, Validity.OUT_OF_RANGE, str(exc)
+    if fmt.range_min is not None and si < fmt.range_min:
+        return math.nan, Validity.OUT_OF_RANGE, f"{si:.6g} below the rated {fmt.range_min:.6g} (SI)"
+    if fmt.range_max is not None and si > fmt.range_max:
+        return math.nan, Validity.OUT_OF_RANGE, f"{si:.6g} above the rated {fmt.range_max:.6g} (SI)"
+    return si, Validity.VALID, ""
 
 
 class AsciiGauge:
-    """A PressureSensor on a Transport."""
+    """A PressureSensor (or, with quantity='temperature', a Thermometer) on a Transport."""
 
     def __init__(self, transport: Transport, *, fmt: GaugeFormat | None = None, name: str = "pressure",
-                 clock: Clock | None = None, absolute: bool = False) -> None:
+                 clock: Clock | None = None, absolute: bool = False, quantity: str = "pressure") -> None:
         self.transport = transport
         self.fmt = fmt or GaugeFormat()
         self.name = name
@@ -85,7 +100,7 @@ class AsciiGauge:
         self._rx = re.compile(self.fmt.regex)
         if "value" not in self._rx.groupindex:
             raise ValueError(f"gauge regex {self.fmt.regex!r} needs a named group (?P<value>...)")
-        self._pa = pascal_per(self.fmt.unit)
+        self._to_si, self.si_unit = si_converter(quantity, self.fmt.unit)
         self.last_error: DeviceError | None = None
 
     def read(self) -> Reading:
@@ -100,17 +115,17 @@ class AsciiGauge:
             return self._bad(t0, Validity.GARBLED, exc)
         t = 0.5 * (t0 + self.clock.now())
         text = reply.decode("ascii", "replace")
-        value, validity, detail = classify_text(text, self.fmt, self._pa, self._rx)
+        value, validity, detail = classify_text(text, self.fmt, self._to_si, self._rx)
         if validity is not Validity.VALID:
             log.debug("%s: %s (%s)", self.name, validity.value, detail)
-            return Reading.invalid("Pa", t, validity, detail)
+            return Reading.invalid(self.si_unit, t, validity, detail)
         self.last_error = None
-        return Reading(value, "Pa", t)
+        return Reading(value, self.si_unit, t)
 
     def _bad(self, t0: float, validity: Validity, exc: DeviceError) -> Reading:
         self.last_error = exc
         log.debug("%s: %s", self.name, exc)
-        return Reading.invalid("Pa", 0.5 * (t0 + self.clock.now()), validity, str(exc))
+        return Reading.invalid(self.si_unit, 0.5 * (t0 + self.clock.now()), validity, str(exc))
 
     def reconnect(self) -> None:
         self.transport.reopen()
