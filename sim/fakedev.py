@@ -30,7 +30,7 @@ from pathlib import Path
 from typing import Literal, Protocol
 
 from pycnoctl.controller.units import convert
-from pycnoctl.drivers.base import PressureSensor, Reading, Validity, ValveBank
+from pycnoctl.drivers.base import DeviceTimeout, PressureSensor, Reading, Validity, ValveBank
 
 log = logging.getLogger(__name__)
 
@@ -100,6 +100,56 @@ class ScriptedSensor:
 
     def close(self) -> None:
         return None
+
+
+class ScriptedTransport:
+    """A Transport replaying an expected dialogue: a list of (sent, reply) byte pairs.
+
+    A reply of None means the device stays silent (DeviceTimeout); a sent frame that differs from
+    the next expected one fails with AssertionError naming both, so protocol tests read as a table.
+    """
+
+    def __init__(self, dialogue: list[tuple[bytes, bytes | None]], name: str = "scripted") -> None:
+        self.dialogue = list(dialogue)
+        self.name = name
+        self.lock = threading.RLock()
+        self.sent: list[bytes] = []
+        self.reopened = 0
+
+    def _next(self, data: bytes) -> bytes | None:
+        self.sent.append(data)
+        if not self.dialogue:
+            raise AssertionError(f"{self.name}: unexpected {data!r} after the end of the dialogue")
+        want, reply = self.dialogue.pop(0)
+        if data != want:
+            raise AssertionError(f"{self.name}: sent {data!r}, expected {want!r}")
+        return reply
+
+    def write(self, data: bytes) -> None:
+        reply = self._next(data)
+        if reply:
+            raise AssertionError(f"{self.name}: {data!r} was written without reading its reply {reply!r}")
+
+    def query(self, data: bytes, timeout: float | None = None) -> bytes:
+        reply = self._next(data)
+        if reply is None:
+            raise DeviceTimeout(self.name, "no reply", data)
+        return reply.rstrip(b"\n").rstrip(b"\r")
+
+    def readline(self, timeout: float | None = None) -> bytes:
+        raise DeviceTimeout(self.name, "no reply")
+
+    def read_exact(self, size: int, timeout: float | None = None) -> bytes:
+        raise DeviceTimeout(self.name, "no reply")
+
+    def reopen(self) -> None:
+        self.reopened += 1
+
+    def close(self) -> None:
+        return None
+
+    def done(self) -> bool:
+        return not self.dialogue
 
 
 # -- firmware ---------------------------------------------------------------------------------
