@@ -147,6 +147,11 @@ def compute(args: argparse.Namespace) -> dict[str, Any]:
         "budget": [_row(row) for row in budget.as_table()],
         "warnings": [],
     }
+    if u_p > 0.1 * abs(p1 - pa):
+        out["warnings"].append(
+            f"--u-p is {u_p:.6g} Pa, more than 10 % of the fill pressure above ambient; bare numbers are "
+            "bar (write e.g. '50 Pa')"
+        )
     if not 0.0 < vs <= vc:
         out["warnings"].append(
             f"sample volume {vs / CM3:.6g} cm^3 lies outside (0, Vc = {vc / CM3:.6g} cm^3]: "

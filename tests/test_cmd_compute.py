@@ -120,6 +120,13 @@ def test_out_of_range_volume_warns(capsys):
     assert rc == 0 and "warning" in out
 
 
+def test_huge_pressure_uncertainty_warns(capsys):
+    # a bare --u-p is in bar, so '--u-p 50' is 50 bar: warned, not silently used
+    rc = main(["compute", "--cell-volume", "10", "--expansion-volume", "7", "--p1", "1.4", "--p2", "0.58",
+               "--gauge", "--u-p", "50"])
+    assert rc == 0 and "--u-p" in capsys.readouterr().out
+
+
 def test_console_script_subprocess():
     exe = Path("/work/venv/bin/pycnoctl")
     if not exe.exists():

@@ -178,3 +178,28 @@ def test_porosity_vs_uncertainties_package():
     # source: uncertainties package; porosity = 1 - Vs/Vb (ASM Handbook)
     ref = 1 - unc.ufloat(12, 0.01) / unc.ufloat(20, 0.05)
     assert u == pytest.approx(ref.std_dev, rel=1e-9)
+
+
+def _print_figures() -> None:  # pragma: no cover - `python tests/test_uncertainty.py --figures`
+    p2 = expansion_pressure(VS, P1, PA, VC, VR)
+    b = cycle_volume_budget(P1, p2, PA, VC, VR, u_p1=U_P, u_p2=U_P, u_pa=20.0, cov_cal=COV)
+    vc, vr = unc.correlated_values([VC, VR], COV)
+    p1u, p2u, pau = unc.ufloat(P1, U_P), unc.ufloat(p2, U_P), unc.ufloat(PA, 20.0)
+    ref = vc - vr / ((p1u - pau) / (p2u - pau) - 1)
+    rng = np.random.default_rng(20240601)
+    n = 200_000
+    vcs, vrs = rng.multivariate_normal([VC, VR], COV, size=n).T
+    p1s, p2s, pas = rng.normal(P1, U_P, n), rng.normal(p2, U_P, n), rng.normal(PA, 20.0, n)
+    mc = vcs - vrs / ((p1s - pas) / (p2s - pas) - 1)
+    print(f"ideal gas: u_c = {b.combined / CM3:.5g} cm^3, uncertainties/analytic = "
+          f"{ref.std_dev / b.combined:.6f}, Monte Carlo (200k)/analytic = {mc.std(ddof=1) / b.combined:.4f}")
+    xs = np.linspace(0.3, 5.0, 47001)
+    fs = np.array([f_factor(x) for x in xs])
+    print(f"f(x) minimum at x = {xs[fs.argmin()]:.4f}, f = {fs.min():.4f}")
+
+
+if __name__ == "__main__":
+    import sys
+
+    if "--figures" in sys.argv:
+        _print_figures()

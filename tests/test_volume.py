@@ -218,3 +218,24 @@ def test_volume_invariant_to_pressure_unit(p1_bar, frac):
     for v in volumes:
         assert v == pytest.approx(volumes[0], rel=1e-9)
     assert volumes[0] == pytest.approx(frac * vc, rel=1e-9)
+
+
+def _print_figures() -> None:  # pragma: no cover - `python tests/test_volume.py --figures`
+    vc, vr, t = 10 * CM3, 7 * CM3, 298.15
+    p1 = PA + 1.4e5
+    print("Vc=10, Vr=7 cm^3, P1g=1.4 bar, 298.15 K; true P2 from CoolProp Dmolar mass balance")
+    for vs_cm3 in (5.0, 2.0):
+        for name, fluid in FLUIDS.items():
+            vs = vs_cm3 * CM3
+            p2 = coolprop_p2(fluid, vs, p1, PA, vc, vr, t, t, t)
+            ideal = sample_volume(p1, p2, PA, vc, vr) / vs - 1
+            real = sample_volume(p1, p2, PA, vc, vr, gas=name, t1=t) / vs - 1
+            print(f"  Vs={vs_cm3:.0f} cm^3 {name:9s} ideal error {100 * ideal:+.4f} %"
+                  f"   corrected {real:+.1e}")
+
+
+if __name__ == "__main__":
+    import sys
+
+    if "--figures" in sys.argv:
+        _print_figures()
