@@ -1,0 +1,513 @@
+"""SQLite catalog of runs, cycles, calibrations and the run queue.
+
+Durability: WAL journal with synchronous=FULL, so a transaction that returned from commit
+survives a process kill and a power loss.  Every write is one short ``BEGIN IMMEDIATE ...
+COMMIT`` transaction; Ctrl-C (SIGINT) arriving during one is held back and delivered right
+after the commit, so it never tears a write.  The signal handler swap happens only in the main
+thread (Python allows signal.signal nowhere else); other threads rely on the lock alone.
+
+Thread safety: one Catalog object holds one connection guarded by a re-entrant lock; any
+thread may call any method.  Several processes may open the same file (SQLite's own locking;
+busy_timeout 5 s).
+
+The catalog never stores paths: a run's folder is a plain name under the daemon's data root,
+and run IDs are only those this module issued (``is_run_id`` checks the form strictly).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as _dt
+import json
+import re
+import secrets
+import signal
+import sqlite3
+import threading
+from collections.abc import Callable, Iterable, Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+SCHEMA_VERSION = 1
+STATUSES = ("queued", "running", "completed", "fault", "aborted", "interrupted")
+TERMINAL = frozenset({"completed", "fault", "aborted", "interrupted"})
+_ALLOWED = {
+    "queued": {"running", "aborted", "fault", "interrupted"},
+    "running": TERMINAL,
+}
+_RUN_ID = re.compile(r"^R(\d{8})T(\d{6})Z-([0-9a-f]{6})$")
+_CAL_ID = re.compile(r"^C(\d{8})T(\d{6})Z-([0-9a-f]{6})$")
+_FOLDER = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,79}$")
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL);
+CREATE TABLE IF NOT EXISTS calibrations (
+    id TEXT PRIMARY KEY,
+    created TEXT NOT NULL,
+    expansion_volume TEXT NOT NULL,
+    gas TEXT NOT NULL,
+    fill_pressure REAL,
+    temperature REAL,
+    operator TEXT,
+    vc REAL NOT NULL,
+    vr REAL NOT NULL,
+    cov TEXT,
+    spheres TEXT,
+    residuals TEXT,
+    payload TEXT
+);
+CREATE INDEX IF NOT EXISTS calibrations_by_volume ON calibrations (expansion_volume, gas, created);
+CREATE TABLE IF NOT EXISTS runs (
+    id TEXT PRIMARY KEY,
+    created TEXT NOT NULL,
+    sample_id TEXT,
+    sequence_name TEXT,
+    kind TEXT NOT NULL,
+    status TEXT NOT NULL CHECK (status IN ('queued','running','completed','fault','aborted','interrupted')),
+    started TEXT,
+    ended TEXT,
+    folder TEXT,
+    volume_m3 REAL,
+    u_volume_m3 REAL,
+    density REAL,
+    mass REAL,
+    message TEXT,
+    calibration_id TEXT REFERENCES calibrations (id)
+);
+CREATE INDEX IF NOT EXISTS runs_by_created ON runs (created);
+CREATE INDEX IF NOT EXISTS runs_by_sample ON runs (sample_id, created);
+CREATE INDEX IF NOT EXISTS runs_by_status ON runs (status);
+CREATE TABLE IF NOT EXISTS cycles (
+    run_id TEXT NOT NULL REFERENCES runs (id) ON DELETE CASCADE,
+    idx INTEGER NOT NULL,
+    p1 REAL,
+    p2 REAL,
+    volume REAL,
+    kept INTEGER NOT NULL,
+    PRIMARY KEY (run_id, idx)
+);
+CREATE TABLE IF NOT EXISTS queue (
+    position INTEGER PRIMARY KEY AUTOINCREMENT,
+    run_id TEXT NOT NULL UNIQUE REFERENCES runs (id),
+    request TEXT NOT NULL
+);
+"""
+
+
+class CatalogError(Exception):
+    """A request the catalog refuses (unknown run, bad status change, foreign ID)."""
+
+
+def _utc(dt: _dt.datetime | None = None) -> str:
+    dt = dt or _dt.datetime.now(_dt.UTC)
+    if dt.tzinfo is None:
+        raise ValueError("naive datetime: give a timezone-aware time")
+    return dt.astimezone(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def _time_arg(x: _dt.datetime | str | None) -> str | None:
+    if x is None or isinstance(x, str):
+        return x
+    return _utc(x)
+
+
+def _issue(prefix: str) -> str:
+    now = _dt.datetime.now(_dt.UTC)
+    return f"{prefix}{now:%Y%m%dT%H%M%S}Z-{secrets.token_hex(3)}"
+
+
+def _valid_stamp(m: re.Match[str] | None) -> bool:
+    if m is None:
+        return False
+    try:
+        _dt.datetime.strptime(m.group(1) + m.group(2), "%Y%m%d%H%M%S")
+    except ValueError:
+        return False
+    return True
+
+
+def is_run_id(s: object) -> bool:
+    """True only for IDs of the form new_run_id issues, e.g. R20250314T101500Z-1a2b3c."""
+    return isinstance(s, str) and _valid_stamp(_RUN_ID.fullmatch(s))
+
+
+def is_calibration_id(s: object) -> bool:
+    return isinstance(s, str) and _valid_stamp(_CAL_ID.fullmatch(s))
+
+
+@dataclass(frozen=True)
+class RunRow:
+    id: str
+    created: str
+    sample_id: str | None
+    sequence_name: str | None
+    kind: str
+    status: str
+    started: str | None
+    ended: str | None
+    folder: str | None
+    volume_m3: float | None
+    u_volume_m3: float | None  # expanded uncertainty
+    density: float | None
+    mass: float | None
+    message: str | None
+    calibration_id: str | None
+
+
+@dataclass(frozen=True)
+class CycleRow:
+    run_id: str
+    idx: int
+    p1: float | None
+    p2: float | None
+    volume: float | None
+    kept: bool
+
+
+@dataclass(frozen=True)
+class CalibrationRecord:
+    """Chamber volumes from one calibration; id and created are filled in by put_calibration."""
+
+    expansion_volume: str
+    gas: str
+    vc: float
+    vr: float
+    fill_pressure: float | None = None
+    temperature: float | None = None
+    operator: str | None = None
+    cov: Any = None
+    spheres: Any = None
+    residuals: Any = None
+    payload: Any = None
+    id: str | None = None
+    created: str | None = None
+
+
+@dataclass(frozen=True)
+class QueueEntry:
+    position: int
+    run_id: str
+    request: dict
+
+
+class _DeferSigint:
+    """Hold SIGINT during a commit (main thread only) and deliver it afterwards."""
+
+    def __init__(self) -> None:
+        self.pending: tuple[int, Any] | None = None
+        self.old: Any = None
+        self.active = False
+
+    def __enter__(self) -> _DeferSigint:
+        if threading.current_thread() is threading.main_thread():
+            try:
+                self.old = signal.signal(signal.SIGINT, self._hold)
+                self.active = True
+            except ValueError:  # not the main interpreter
+                self.active = False
+        return self
+
+    def _hold(self, signum: int, frame: Any) -> None:
+        self.pending = (signum, frame)
+
+    def __exit__(self, *exc: object) -> None:
+        if not self.active:
+            return
+        signal.signal(signal.SIGINT, self.old)
+        if self.pending is None:
+            return
+        signum, frame = self.pending
+        if callable(self.old):
+            self.old(signum, frame)
+        elif self.old == signal.SIG_DFL:
+            signal.raise_signal(signal.SIGINT)
+
+
+class Catalog:
+    """The runs database. Open once per process; methods are safe to call from any thread."""
+
+    def __init__(self, path: Path | str) -> None:
+        self.path = Path(path)
+        self._lock = threading.RLock()
+        self._before_commit: Callable[[], None] | None = None  # test hook: runs inside the held section
+        self._con = sqlite3.connect(
+            str(self.path), isolation_level=None, check_same_thread=False, timeout=5.0
+        )
+        self._con.row_factory = sqlite3.Row
+        mode = self._con.execute("PRAGMA journal_mode=WAL").fetchone()[0]
+        if str(mode).lower() != "wal":
+            raise CatalogError(f"{self.path}: WAL journal mode refused (got {mode!r})")
+        self._con.execute("PRAGMA synchronous=FULL")
+        self._con.execute("PRAGMA foreign_keys=ON")
+        self._con.execute("PRAGMA busy_timeout=5000")
+        with self._write() as con:
+            for stmt in _SCHEMA.split(";"):
+                if stmt.strip():
+                    con.execute(stmt)
+            row = con.execute("SELECT version FROM schema_version").fetchone()
+            if row is None:
+                con.execute("INSERT INTO schema_version (version) VALUES (?)", (SCHEMA_VERSION,))
+            elif row[0] > SCHEMA_VERSION:
+                raise CatalogError(
+                    f"{self.path}: schema version {row[0]} is newer than this software ({SCHEMA_VERSION})"
+                )
+
+    # ------------------------------------------------------------------ plumbing
+    @contextlib.contextmanager
+    def _write(self) -> Iterator[sqlite3.Connection]:
+        """One short write transaction; SIGINT is deferred until it has committed or rolled back."""
+        with self._lock, _DeferSigint():
+            con = self._con
+            con.execute("BEGIN IMMEDIATE")
+            try:
+                yield con
+                if self._before_commit is not None:
+                    self._before_commit()
+                con.execute("COMMIT")
+            except BaseException:
+                with contextlib.suppress(sqlite3.Error):
+                    con.execute("ROLLBACK")
+                raise
+
+    def _read(self, sql: str, args: Iterable[Any] = ()) -> list[sqlite3.Row]:
+        with self._lock:
+            return self._con.execute(sql, tuple(args)).fetchall()
+
+    def close(self) -> None:
+        with self._lock:
+            self._con.close()
+
+    def __enter__(self) -> Catalog:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def integrity_check(self) -> str:
+        return str(self._read("PRAGMA integrity_check")[0][0])
+
+    def schema_version(self) -> int:
+        return int(self._read("SELECT version FROM schema_version")[0][0])
+
+    # ------------------------------------------------------------------ runs
+    def new_run_id(self) -> str:
+        """Issue a fresh run ID not yet in the catalog."""
+        while True:
+            rid = _issue("R")
+            if not self._read("SELECT 1 FROM runs WHERE id = ?", (rid,)):
+                return rid
+
+    def create_run(
+        self,
+        *,
+        kind: str,
+        sample_id: str | None = None,
+        sequence_name: str | None = None,
+        status: str = "queued",
+        run_id: str | None = None,
+        folder: str | None = None,
+        calibration_id: str | None = None,
+        message: str | None = None,
+    ) -> str:
+        """Insert a run row (queued or running) and return its ID; issues one unless given."""
+        if status not in ("queued", "running"):
+            raise CatalogError(f"a new run starts queued or running, not {status!r}")
+        if not kind:
+            raise CatalogError("run kind is required")
+        rid = run_id if run_id is not None else self.new_run_id()
+        if not is_run_id(rid):
+            raise CatalogError(f"{rid!r} is not a run ID issued by this catalog")
+        folder = rid if folder is None else folder
+        if not _FOLDER.fullmatch(folder) or ".." in folder:
+            raise CatalogError(f"folder {folder!r} must be a plain relative name")
+        now = _utc()
+        with self._write() as con:
+            con.execute(
+                "INSERT INTO runs (id, created, sample_id, sequence_name, kind, status, started, folder,"
+                " calibration_id, message) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (rid, now, sample_id, sequence_name, kind, status, now if status == "running" else None,
+                 folder, calibration_id, message),
+            )
+        return rid
+
+    def _check_transition(self, con: sqlite3.Connection, run_id: str, status: str) -> str:
+        if status not in STATUSES:
+            raise CatalogError(f"unknown status {status!r}")
+        row = con.execute("SELECT status FROM runs WHERE id = ?", (run_id,)).fetchone()
+        if row is None:
+            raise CatalogError(f"no run {run_id!r}")
+        old = row[0]
+        if old != status and status not in _ALLOWED.get(old, set()):
+            raise CatalogError(f"run {run_id}: status {old!r} cannot become {status!r}")
+        return old
+
+    def update_status(self, run_id: str, status: str, message: str | None = None) -> None:
+        """Move a run along queued -> running -> completed/fault/aborted/interrupted."""
+        now = _utc()
+        with self._write() as con:
+            self._check_transition(con, run_id, status)
+            con.execute(
+                "UPDATE runs SET status = ?, message = COALESCE(?, message),"
+                " started = CASE WHEN ? = 'running' AND started IS NULL THEN ? ELSE started END,"
+                " ended = CASE WHEN ? IN ('completed','fault','aborted','interrupted') AND ended IS NULL"
+                " THEN ? ELSE ended END WHERE id = ?",
+                (status, message, status, now, status, now, run_id),
+            )
+
+    def finish_run(
+        self,
+        run_id: str,
+        status: str,
+        *,
+        volume_m3: float | None = None,
+        u_volume_m3: float | None = None,
+        density: float | None = None,
+        mass: float | None = None,
+        message: str | None = None,
+        calibration_id: str | None = None,
+    ) -> None:
+        """Record the end of a run and its results in one transaction."""
+        if status not in TERMINAL:
+            raise CatalogError(f"finish_run needs a terminal status, not {status!r}")
+        now = _utc()
+        with self._write() as con:
+            self._check_transition(con, run_id, status)
+            con.execute(
+                "UPDATE runs SET status = ?, ended = COALESCE(ended, ?), volume_m3 = ?, u_volume_m3 = ?,"
+                " density = ?, mass = ?, message = COALESCE(?, message),"
+                " calibration_id = COALESCE(?, calibration_id) WHERE id = ?",
+                (status, now, volume_m3, u_volume_m3, density, mass, message, calibration_id, run_id),
+            )
+
+    def add_cycle(
+        self, run_id: str, idx: int, p1: float | None, p2: float | None, volume: float | None, kept: bool
+    ) -> None:
+        """Insert or replace one cycle's result (kept may be revised after outlier checks)."""
+        with self._write() as con:
+            con.execute(
+                "INSERT INTO cycles (run_id, idx, p1, p2, volume, kept) VALUES (?, ?, ?, ?, ?, ?)"
+                " ON CONFLICT (run_id, idx) DO UPDATE SET p1 = excluded.p1, p2 = excluded.p2,"
+                " volume = excluded.volume, kept = excluded.kept",
+                (run_id, int(idx), p1, p2, volume, 1 if kept else 0),
+            )
+
+    def get_cycles(self, run_id: str) -> list[CycleRow]:
+        rows = self._read("SELECT * FROM cycles WHERE run_id = ? ORDER BY idx", (run_id,))
+        return [CycleRow(r["run_id"], r["idx"], r["p1"], r["p2"], r["volume"], bool(r["kept"])) for r in rows]
+
+    def get_run(self, run_id: str) -> RunRow | None:
+        if not is_run_id(run_id):
+            return None
+        rows = self._read("SELECT * FROM runs WHERE id = ?", (run_id,))
+        return RunRow(**dict(rows[0])) if rows else None
+
+    def list_runs(
+        self,
+        sample: str | None = None,
+        status: str | Iterable[str] | None = None,
+        since: _dt.datetime | str | None = None,
+        until: _dt.datetime | str | None = None,
+        limit: int = 100,
+    ) -> list[RunRow]:
+        """Runs newest first; since/until compare the creation time (UTC, inclusive/exclusive)."""
+        where, args = [], []
+        if sample is not None:
+            where.append("sample_id = ?")
+            args.append(sample)
+        if status is not None:
+            sts = [status] if isinstance(status, str) else list(status)
+            bad = [s for s in sts if s not in STATUSES]
+            if bad:
+                raise CatalogError(f"unknown status {bad[0]!r}")
+            where.append(f"status IN ({','.join('?' * len(sts))})")
+            args.extend(sts)
+        if since is not None:
+            where.append("created >= ?")
+            args.append(_time_arg(since))
+        if until is not None:
+            where.append("created < ?")
+            args.append(_time_arg(until))
+        sql = "SELECT * FROM runs"
+        if where:
+            sql += " WHERE " + " AND ".join(where)
+        sql += " ORDER BY created DESC, id DESC LIMIT ?"
+        args.append(int(limit))
+        return [RunRow(**dict(r)) for r in self._read(sql, args)]
+
+    def mark_interrupted_on_startup(self) -> list[str]:
+        """Runs left 'running' by a dead daemon become 'interrupted'; nothing is resumed."""
+        now = _utc()
+        with self._write() as con:
+            ids = [r[0] for r in con.execute("SELECT id FROM runs WHERE status = 'running' ORDER BY created")]
+            con.execute(
+                "UPDATE runs SET status = 'interrupted', ended = COALESCE(ended, ?),"
+                " message = 'daemon stopped while running; not resumed' WHERE status = 'running'",
+                (now,),
+            )
+        return ids
+
+    # ------------------------------------------------------------------ calibrations
+    def put_calibration(self, cal: CalibrationRecord) -> str:
+        cid = cal.id or _issue("C")
+        if not is_calibration_id(cid):
+            raise CatalogError(f"{cid!r} is not a calibration ID")
+        created = cal.created or _utc()
+
+        def js(x: Any) -> str | None:
+            return None if x is None else json.dumps(x, allow_nan=False)
+
+        with self._write() as con:
+            con.execute(
+                "INSERT INTO calibrations (id, created, expansion_volume, gas, fill_pressure, temperature,"
+                " operator, vc, vr, cov, spheres, residuals, payload) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
+                (cid, created, cal.expansion_volume, cal.gas, cal.fill_pressure, cal.temperature,
+                 cal.operator, float(cal.vc), float(cal.vr), js(cal.cov), js(cal.spheres),
+                 js(cal.residuals), js(cal.payload)),
+            )
+        return cid
+
+    @staticmethod
+    def _cal(row: sqlite3.Row) -> CalibrationRecord:
+        d = dict(row)
+        for k in ("cov", "spheres", "residuals", "payload"):
+            d[k] = None if d[k] is None else json.loads(d[k])
+        return CalibrationRecord(**d)
+
+    def get_calibration(self, cal_id: str) -> CalibrationRecord | None:
+        rows = self._read("SELECT * FROM calibrations WHERE id = ?", (cal_id,))
+        return self._cal(rows[0]) if rows else None
+
+    def latest_calibration(self, expansion_volume: str, gas: str) -> CalibrationRecord | None:
+        rows = self._read(
+            "SELECT * FROM calibrations WHERE expansion_volume = ? AND gas = ?"
+            " ORDER BY created DESC, id DESC LIMIT 1",
+            (expansion_volume, gas),
+        )
+        return self._cal(rows[0]) if rows else None
+
+    # ------------------------------------------------------------------ queue
+    def queue_push(self, run_id: str, request: dict) -> int:
+        """Append a queued run's request; returns its queue position."""
+        text = json.dumps(request, allow_nan=False)
+        with self._write() as con:
+            cur = con.execute("INSERT INTO queue (run_id, request) VALUES (?, ?)", (run_id, text))
+            return int(cur.lastrowid or 0)
+
+    def queue_pop(self) -> QueueEntry | None:
+        """Remove and return the head of the queue (one transaction: never handed out twice)."""
+        with self._write() as con:
+            row = con.execute("SELECT * FROM queue ORDER BY position LIMIT 1").fetchone()
+            if row is None:
+                return None
+            con.execute("DELETE FROM queue WHERE position = ?", (row["position"],))
+        return QueueEntry(row["position"], row["run_id"], json.loads(row["request"]))
+
+    def queue_list(self) -> list[QueueEntry]:
+        rows = self._read("SELECT * FROM queue ORDER BY position")
+        return [QueueEntry(r["position"], r["run_id"], json.loads(r["request"])) for r in rows]
+
+    def queue_remove(self, run_id: str) -> bool:
+        with self._write() as con:
+            cur = con.execute("DELETE FROM queue WHERE run_id = ?", (run_id,))
+            return cur.rowcount > 0
