@@ -88,7 +88,8 @@ def test_safe_state_keeps_going_after_a_busy_reply():
 def test_unplugged_board_fails_safe_state_fast_and_reconnects():
     bank = MemoryValveBank(("inlet", "vent", "small"), {"vent": True})
     with FakeDevice(RelayFirmware.for_board(bank, CHANNELS)) as dev:
-        guard = GuardedValveBank(AsciiRelayBoard(SerialTransport(dev.url, timeout=0.3), CHANNELS), roles=ROLES)
+        board = AsciiRelayBoard(SerialTransport(dev.url, timeout=0.3), CHANNELS)
+        guard = GuardedValveBank(board, roles=ROLES)
         guard.set_valves({"vent": False})
         guard.set_valves({"inlet": True})  # filling
         dev.unplug()  # USB cable pulled mid-fill
