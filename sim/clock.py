@@ -1,0 +1,43 @@
+"""The simulator's clock: simulated time (sleep advances it) or real time since start.
+
+Why one class: the bench advances its physics lazily to ``clock.now()`` before every read or valve
+change, so the same code serves fast simulated runs (tests, sequence trials) and the real-time
+daemon with its dashboard.  Implements the Clock protocol of drivers/clock.py.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+
+
+class SimClock:
+    """Simulated time (default) or wall time since construction (``realtime=True``). Thread-safe."""
+
+    def __init__(self, start: float = 0.0, *, realtime: bool = False) -> None:
+        self.realtime = realtime
+        self._start = float(start)
+        self._t = float(start)
+        self._wall0 = time.monotonic()
+        self._lock = threading.Lock()
+
+    def now(self) -> float:
+        if self.realtime:
+            return self._start + (time.monotonic() - self._wall0)
+        return self._t
+
+    def sleep(self, dt: float) -> None:
+        if dt <= 0:
+            return
+        if self.realtime:
+            time.sleep(dt)
+            return
+        with self._lock:
+            self._t += dt
+
+    def advance_to(self, t: float) -> None:
+        """Simulated mode: jump forward to t (never backwards)."""
+        if self.realtime:
+            raise RuntimeError("a real-time clock cannot be moved")
+        with self._lock:
+            self._t = max(self._t, float(t))

@@ -1,0 +1,407 @@
+"""The simulator config: the simulated instrument's truth, validated like every other input.
+
+Why a separate model: the sim config says what the instrument *is* (true volumes, leaks, faults),
+while the instrument the engine sees is derived from it (roles, chambers, limits).  Every value may
+carry a unit ('12 cm^3', '22 degC', '0.3 mm'); inside everything is SI.  Unknown keys are refused,
+and cross-references (valve ends, fault targets) are checked with file:line:col positions.
+See sim/README.md for the format with examples.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
+
+from pycnoctl.controller.gas import get_gas
+from pycnoctl.controller.units import (
+    UnitError,
+    parse_duration,
+    parse_length,
+    parse_pressure,
+    parse_rate,
+    parse_temperature,
+    parse_temperature_difference,
+    parse_volume,
+    to_quantity,
+)
+from pycnoctl.controller.yamlio import ConfigError, Document, Loc, load_file, validate
+
+CONFIG_DIR = Path(__file__).resolve().parent / "configs"
+DEFAULT_CONFIG = CONFIG_DIR / "clean.yaml"
+RESERVED_NODES = ("supply", "ambient")
+DEVICES = ("valves", "pressure", "thermometer", "barometer")
+
+
+def _si(value: Any, default_unit: str, si_unit: str, noun: str) -> float:
+    """Parse a quantity of a kind the shared parsers do not cover (conductance, frequency, K/s)."""
+    q = to_quantity(value, default_unit, difference=True)
+    try:
+        out = float(q.to(si_unit).magnitude)
+    except Exception as exc:
+        raise UnitError(f"{value!r} is not {noun}") from exc
+    if not math.isfinite(out):
+        raise UnitError(f"{value!r} is not a finite number")
+    return out
+
+
+def _nonneg(f):  # type: ignore[no-untyped-def]
+    def check(v: Any) -> float:
+        out = f(v)
+        if out < 0.0:
+            raise ValueError(f"must not be negative, got {v!r}")
+        return out
+    return check
+
+
+def _pos(f):  # type: ignore[no-untyped-def]
+    def check(v: Any) -> float:
+        out = f(v)
+        if out <= 0.0:
+            raise ValueError(f"must be positive, got {v!r}")
+        return out
+    return check
+
+
+Pressure = Annotated[float, BeforeValidator(lambda v: parse_pressure(v))]
+PosPressure = Annotated[float, BeforeValidator(_pos(lambda v: parse_pressure(v)))]
+NonNegPressure = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_pressure(v)))]
+Temperature = Annotated[float, BeforeValidator(lambda v: parse_temperature(v))]
+TempDiff = Annotated[float, BeforeValidator(lambda v: parse_temperature_difference(v))]
+NonNegTempDiff = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_temperature_difference(v)))]
+PosVolume = Annotated[float, BeforeValidator(_pos(lambda v: parse_volume(v)))]
+NonNegVolume = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_volume(v)))]
+PosDuration = Annotated[float, BeforeValidator(_pos(lambda v: parse_duration(v)))]
+NonNegDuration = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_duration(v)))]
+PosLength = Annotated[float, BeforeValidator(_pos(lambda v: parse_length(v)))]
+Rate = Annotated[float, BeforeValidator(lambda v: parse_rate(v))]
+PosRate = Annotated[float, BeforeValidator(_pos(lambda v: parse_rate(v)))]
+Conductance = Annotated[
+    float, BeforeValidator(_nonneg(lambda v: _si(v, "m**3/s", "m**3/s", "a conductance (volume/time)")))
+]
+Frequency = Annotated[float, BeforeValidator(_pos(lambda v: _si(v, "Hz", "Hz", "a frequency")))]
+TempRate = Annotated[float, BeforeValidator(lambda v: _si(v, "K/s", "K/s", "a temperature rate"))]
+Fraction = Annotated[float, Field(gt=0.0, le=1.0)]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class Wave(_Strict):
+    """A slow sinusoidal swing (daily cycle of a lab, air-conditioning)."""
+
+    amplitude: float = 0.0  # SI of the quantity it modulates (parsed by the owner)
+    period: PosDuration = 3600.0
+
+
+class PressureWave(Wave):
+    amplitude: NonNegPressure = 0.0
+
+
+class TemperatureWave(Wave):
+    amplitude: NonNegTempDiff = 0.0
+
+
+class Lab(_Strict):
+    temperature: Temperature = 295.15
+    pressure: PosPressure = 101325.0
+    temperature_drift: TempRate = 0.0
+    temperature_wave: TemperatureWave | None = None
+    pressure_drift: Rate = 0.0
+    pressure_wave: PressureWave | None = None
+
+
+class Supply(_Strict):
+    set_pressure: PosPressure = 1.4e5  # gauge, what the regulator delivers
+    cylinder_pressure: PosPressure = 150e5  # gauge, the ceiling of a failed regulator
+    temperature: Temperature | None = None  # default: lab temperature
+
+
+class Volume(_Strict):
+    volume: PosVolume
+    thermal_tau: PosDuration | None = 3.0  # None (null) = adiabatic walls
+
+
+class Sample(_Strict):
+    solid_volume: NonNegVolume = 0.0
+    pore_volume: NonNegVolume = 0.0  # open pores that fill slowly
+    pore_tau: PosDuration = 60.0  # pore pressure relaxes to a steady cell pressure with this time constant
+    pore_thermal_tau: PosDuration = 0.5
+
+
+class Restriction(_Strict):
+    between: tuple[str, str]
+    diameter: PosLength = 1e-3
+    cd: Fraction = 0.7
+
+
+class Valve(Restriction):
+    role: Literal["inlet", "vent", "expansion", "other"] = "other"
+    leak: Conductance = 0.0  # past the closed seat
+
+
+class Relief(_Strict):
+    node: str = "cell"
+    set_pressure: PosPressure  # gauge
+    reseat: PosPressure | None = None  # gauge; default 0.9 x set
+    diameter: PosLength = 1.5e-3
+    cd: Fraction = 0.7
+
+
+class SensorBase(_Strict):
+    noise: float = 0.0
+    zero_offset: float = 0.0
+    resolution: float = 0.0
+    update_rate: Frequency = 100.0
+    lag: NonNegDuration = 0.0
+
+
+class PressureInstrument(SensorBase):
+    node: str = "cell"
+    kind: Literal["gauge", "absolute"] = "gauge"
+    full_scale: PosPressure = 3.5e5
+    range_min: Pressure = 0.0
+    noise: NonNegPressure = 0.0
+    zero_offset: Pressure = 0.0
+    resolution: NonNegPressure = 0.0
+
+
+class ThermometerInstrument(SensorBase):
+    at: str = "wall"  # 'wall' (lab/wall temperature) or a node name (gas temperature)
+    noise: NonNegTempDiff = 0.0
+    zero_offset: TempDiff = 0.0
+    resolution: NonNegTempDiff = 0.0
+    update_rate: Frequency = 10.0
+
+
+class BarometerInstrument(SensorBase):
+    noise: NonNegPressure = 0.0
+    zero_offset: Pressure = 0.0
+    resolution: NonNegPressure = 0.0
+    update_rate: Frequency = 10.0
+
+
+class Instruments(_Strict):
+    pressure: PressureInstrument = PressureInstrument()
+    thermometer: ThermometerInstrument | None = ThermometerInstrument()
+    barometer: BarometerInstrument | None = BarometerInstrument()
+
+
+class OnOpening(_Strict):
+    valve: str
+    count: Annotated[int, Field(ge=1)] = 1
+
+
+class OnPressure(_Strict):
+    node: str = "cell"
+    pressure: Pressure  # gauge
+
+
+FaultKind = Literal[
+    "valve_stuck", "valve_leak", "regulator_failure", "transducer", "disconnect",
+    "ambient_step", "lab_temperature_step",
+]
+TransducerMode = Literal["frozen", "silent", "garbled", "nan", "drifting"]
+
+
+class Fault(_Strict):
+    """One scheduled failure.  Trigger: ``at`` a time, ``on_opening`` the Nth opening of a valve, or
+    ``on_pressure_above`` a gauge pressure at a node; then ``delay``; it clears after ``duration``."""
+
+    kind: FaultKind
+    at: NonNegDuration | None = None
+    on_opening: OnOpening | None = None
+    on_pressure_above: OnPressure | None = None
+    delay: NonNegDuration = 0.0
+    duration: PosDuration | None = None
+    valve: str | None = None  # valve_stuck, valve_leak
+    open: bool = True  # valve_stuck: stuck open (True) or closed (False)
+    conductance: Conductance | None = None  # valve_leak
+    rate: PosRate | None = None  # regulator_failure: rise of the delivered pressure
+    mode: TransducerMode | None = None  # transducer
+    drift_rate: Rate = 0.0  # transducer 'drifting': zero drift
+    device: Literal["valves", "pressure", "thermometer", "barometer"] | None = None  # disconnect
+    pressure_step: Pressure | None = None  # ambient_step
+    temperature_step: TempDiff | None = None  # lab_temperature_step
+
+
+class Nominal(_Strict):
+    """Volumes the instrument believes in (e.g. a deliberately wrong calibration); default: the truth."""
+
+    cell: PosVolume | None = None
+    expansion: dict[str, PosVolume] = {}
+
+
+class SimLimits(_Strict):
+    """Interlock limits for the derived instrument (gauge pressures); unset ones take defaults."""
+
+    max_pressure: PosPressure | None = None
+    relief_setting: PosPressure | None = None
+    max_rise_rate: PosRate | None = None
+    invalid_trip_pressure: PosPressure | None = None
+    stale_after: PosDuration | None = None
+    frozen_after: PosDuration | None = None
+    closed_inlet_rise: PosPressure | None = None
+    closed_inlet_window: PosDuration | None = None
+    vent_baseline_tolerance: PosPressure | None = None
+    vent_timeout: PosDuration | None = None
+
+
+class Solver(_Strict):
+    """Integration controls: accuracy of the dense output and of the flow steps."""
+
+    rel_moles: Annotated[float, Field(gt=0.0, le=0.2)] = 0.02
+    interp_tol: PosPressure = 1.0  # Pa, error of interpolating pressure between steps
+    max_step: PosDuration = 10.0
+    first_step: PosDuration = 1e-3
+
+
+class SimConfig(_Strict):
+    name: str = "simulated pycnometer"
+    description: str = ""
+    seed: int = 0
+    gas: str = "helium"
+    cell: str = "cell"  # which volume is the sample cell
+    lab: Lab = Lab()
+    supply: Supply = Supply()
+    volumes: dict[str, Volume]
+    sample: Sample = Sample()
+    valves: dict[str, Valve]
+    links: list[Restriction] = []  # always-open restrictions (fittings, frits) between volumes
+    relief: Relief | None = None
+    instruments: Instruments = Instruments()
+    initial_open: list[str] = []
+    faults: list[Fault] = []
+    nominal: Nominal | None = None
+    limits: SimLimits = SimLimits()
+    sample_period: PosDuration = 0.1
+    solver: Solver = Solver()
+
+    # -- cross-reference checks, each with the YAML path it concerns
+    def problems(self) -> list[tuple[Loc, str]]:
+        out: list[tuple[Loc, str]] = []
+        try:
+            get_gas(self.gas)
+        except ValueError as exc:
+            out.append((("gas",), str(exc)))
+        nodes = set(self.volumes) | set(RESERVED_NODES)
+        for name in self.volumes:
+            if name in RESERVED_NODES:
+                out.append((("volumes", name), f"{name!r} is reserved (the supply and ambient are built in)"))
+            if name.endswith(".pores"):
+                out.append((("volumes", name), "names ending in '.pores' are reserved"))
+        if self.cell not in self.volumes:
+            out.append((("cell",), f"the cell {self.cell!r} is not one of the volumes"))
+        else:
+            s = self.sample
+            if s.solid_volume + s.pore_volume >= self.volumes[self.cell].volume:
+                out.append((("sample",), "solid plus pore volume must be smaller than the cell volume"))
+        roles: dict[str, list[str]] = {"inlet": [], "vent": [], "expansion": []}
+        for vname, v in self.valves.items():
+            a, b = v.between
+            for k, end in enumerate(v.between):
+                if end not in nodes:
+                    out.append((("valves", vname, "between", k), f"unknown node {end!r}"))
+            if a == b:
+                out.append((("valves", vname, "between"), "a valve needs two different ends"))
+            if v.role in roles:
+                roles[v.role].append(vname)
+            ends = {a, b}
+            if v.role == "inlet" and "supply" not in ends:
+                out.append((("valves", vname, "role"), "an inlet valve connects the supply"))
+            if v.role == "vent" and "ambient" not in ends:
+                out.append((("valves", vname, "role"), "a vent valve connects to ambient"))
+            if v.role == "expansion" and (self.cell not in ends or ends & set(RESERVED_NODES)):
+                out.append((("valves", vname, "role"),
+                            f"an expansion valve joins the cell {self.cell!r} and an expansion volume"))
+        for role in ("inlet", "vent"):
+            if len(roles[role]) != 1:
+                out.append((("valves",), f"exactly one valve with role {role!r} is needed, "
+                                         f"found {len(roles[role])}"))
+        for k, lk in enumerate(self.links):
+            for j, end in enumerate(lk.between):
+                if end not in self.volumes:
+                    out.append((("links", k, "between", j), f"unknown volume {end!r}"))
+        if self.relief is not None and self.relief.node not in self.volumes:
+            out.append((("relief", "node"), f"unknown volume {self.relief.node!r}"))
+        ins = self.instruments
+        if ins.pressure.node not in self.volumes:
+            out.append((("instruments", "pressure", "node"), f"unknown volume {ins.pressure.node!r}"))
+        if ins.pressure.full_scale <= ins.pressure.range_min:
+            out.append((("instruments", "pressure", "full_scale"), "must be above range_min"))
+        th = ins.thermometer
+        if th is not None and th.at != "wall" and th.at not in self.volumes:
+            out.append((("instruments", "thermometer", "at"), f"'wall' or a volume, not {th.at!r}"))
+        for k, name in enumerate(self.initial_open):
+            if name not in self.valves:
+                out.append((("initial_open", k), f"unknown valve {name!r}"))
+        if self.nominal is not None:
+            for name in self.nominal.expansion:
+                if name not in self.expansion_volumes().values():
+                    out.append((("nominal", "expansion", name), f"{name!r} is not an expansion volume"))
+        for k, f in enumerate(self.faults):
+            out.extend(_fault_problems(self, k, f))
+        return out
+
+    def expansion_volumes(self) -> dict[str, str]:
+        """valve name -> expansion volume name, for valves with role 'expansion'."""
+        out = {}
+        for vname, v in self.valves.items():
+            if v.role == "expansion":
+                a, b = v.between
+                out[vname] = b if a == self.cell else a
+        return out
+
+
+def _fault_problems(cfg: SimConfig, k: int, f: Fault) -> list[tuple[Loc, str]]:
+    loc: Loc = ("faults", k)
+    out: list[tuple[Loc, str]] = []
+    triggers = [x for x in (f.at, f.on_opening, f.on_pressure_above) if x is not None]
+    if len(triggers) > 1:
+        out.append((loc, "give one trigger: at, on_opening or on_pressure_above"))
+    if f.on_opening is not None and f.on_opening.valve not in cfg.valves:
+        out.append(((*loc, "on_opening", "valve"), f"unknown valve {f.on_opening.valve!r}"))
+    if f.on_pressure_above is not None and f.on_pressure_above.node not in cfg.volumes:
+        out.append(((*loc, "on_pressure_above", "node"), f"unknown volume {f.on_pressure_above.node!r}"))
+    need: dict[str, tuple[str, ...]] = {
+        "valve_stuck": ("valve",), "valve_leak": ("valve", "conductance"), "regulator_failure": ("rate",),
+        "transducer": ("mode",), "disconnect": ("device",), "ambient_step": ("pressure_step",),
+        "lab_temperature_step": ("temperature_step",),
+    }
+    for key in need[f.kind]:
+        if getattr(f, key) is None:
+            out.append((loc, f"a {f.kind} fault needs {key!r}"))
+    if f.valve is not None and f.valve not in cfg.valves:
+        out.append(((*loc, "valve"), f"unknown valve {f.valve!r}"))
+    return out
+
+
+def check(cfg: SimConfig) -> SimConfig:
+    """Raise ValueError listing cross-reference problems of a config built in code."""
+    probs = cfg.problems()
+    if probs:
+        raise ValueError("; ".join(f"{'.'.join(map(str, loc))}: {msg}" for loc, msg in probs))
+    return cfg
+
+
+def load_sim_config(path: str | Path | None = None) -> SimConfig:
+    """Load and validate a simulator config (None: the shipped clean default); ConfigError on problems."""
+    doc: Document = load_file(DEFAULT_CONFIG if path is None else path)
+    cfg = validate(SimConfig, doc)
+    probs = cfg.problems()
+    if probs:
+        raise ConfigError([doc.problem(loc, msg) for loc, msg in probs])
+    return cfg
+
+
+def shipped_configs() -> dict[str, Path]:
+    """Name -> path of the configs shipped in sim/configs."""
+    return {p.stem: p for p in sorted(CONFIG_DIR.glob("*.yaml"))}
+
+
+def config_from_dict(data: dict[str, Any]) -> SimConfig:
+    """Validate a config given as plain data (tests, programmatic use)."""
+    return check(SimConfig.model_validate(data))

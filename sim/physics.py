@@ -1,0 +1,457 @@
+"""Gas-network physics: lumped volumes joined by restrictions, with mass and energy balances.
+
+Why this shape: a pycnometer is a handful of rigid volumes and valves, so a lumped model is exact
+enough, and small enough to integrate in pure Python far faster than real time.
+
+Model (textbook lumped-parameter gas dynamics):
+- Each volume node holds n (mol) and U (J).  Caloric model: ideal gas, U = n cv T with
+  cv = R/(gamma-1) and cp = gamma cv (the real-gas departure of U is of order B*rho ~ 1e-3 for helium
+  at 2 bar and is neglected).  Thermal model P-n-T: the virial EOS of controller.gas,
+  P = Z rho R T with Z(P, T) from Gas.Z, so n = P V / (Z R T) exactly as the measurement core counts.
+- Fixed nodes (the regulated supply, ambient) are infinite reservoirs at a given P and T.
+- Restrictions: an orifice (isentropic nozzle, choked below the critical pressure ratio, subsonic
+  above it, blended to a linear law within ``LINEAR_BAND`` of equal pressures where the nozzle law's
+  infinite slope is unphysical), or a linear conductance C (m^3/s, molar flow C*dp/(R T_up)) used
+  for leaks and for the pore sub-volume of a porous sample.
+- Flow carries the molar enthalpy cp*T_up of the upstream gas: the downstream gas heats on filling,
+  the upstream gas cools as it expands (first law for open control volumes).
+- Each node relaxes toward its wall temperature at constant volume with time constant tau
+  (Newton's law of cooling, h*A lumped as n*cv/tau); tau=None means adiabatic walls.
+
+Integration (operator splitting per step): first the exact exponential heat exchange of each node,
+then one linearly implicit (backward Euler) flow step over all open restrictions, each linearised by
+its secant conductance.  Backward Euler is L-stable, so the stiff millisecond orifice flows never
+limit the step once pressures have equalised; the transfers are applied pairwise, so moles and
+energy are conserved to round-off.  The caller picks the step: :meth:`GasNetwork.max_step` bounds the
+relative change of moles per step (accuracy of fast flows and of the adiabatic temperature changes)
+and the step of a node that both flows and exchanges heat (accuracy of the splitting).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+from pycnoctl.controller.gas import Gas, R
+
+#: Within this relative pressure difference the nozzle law is replaced by a linear one (laminar-like
+#: approach to equilibrium).  Its flow at the band edge is kept, so the law stays continuous.
+LINEAR_BAND: float = 0.005
+#: A gas within this many kelvin of its wall temperature is taken as settled (snapped to it).
+SNAP_K: float = 1e-9
+
+
+def critical_pressure_ratio(gamma: float) -> float:
+    """p_down/p_up below which an isentropic nozzle is choked: (2/(gamma+1))^(gamma/(gamma-1))."""
+    return (2.0 / (gamma + 1.0)) ** (gamma / (gamma - 1.0))
+
+
+def choked_mass_flux_factor(gamma: float) -> float:
+    """sqrt(gamma) (2/(gamma+1))^((gamma+1)/(2(gamma-1))): m_dot = Cd A p0 factor / sqrt(R_s T0)."""
+    return math.sqrt(gamma) * (2.0 / (gamma + 1.0)) ** ((gamma + 1.0) / (2.0 * (gamma - 1.0)))
+
+
+def nozzle_mass_flow(cda: float, p_up: float, t_up: float, p_down: float, gamma: float,
+                     r_specific: float) -> float:
+    """Isentropic nozzle mass flow (kg/s, >= 0) through effective area cda = Cd*A (m^2).
+
+    Choked: Cd A p0 sqrt(gamma/(R_s T0)) (2/(gamma+1))^((gamma+1)/(2(gamma-1)));
+    subsonic: Cd A p0 sqrt(2 gamma/((gamma-1) R_s T0) (r^(2/gamma) - r^((gamma+1)/gamma))).
+    Within LINEAR_BAND of r = 1 the flow falls linearly to zero.
+    """
+    if p_up <= 0.0 or p_down >= p_up:
+        return 0.0
+    r = p_down / p_up
+    if r <= critical_pressure_ratio(gamma):
+        return cda * p_up * choked_mass_flux_factor(gamma) / math.sqrt(r_specific * t_up)
+    r_edge = 1.0 - LINEAR_BAND
+    rr = min(r, r_edge)
+    psi = rr ** (2.0 / gamma) - rr ** ((gamma + 1.0) / gamma)
+    m = cda * p_up * math.sqrt(2.0 * gamma / ((gamma - 1.0) * r_specific * t_up) * max(psi, 0.0))
+    if r > r_edge:
+        m *= (1.0 - r) / LINEAR_BAND
+    return m
+
+
+@dataclass
+class Node:
+    """A gas volume.  ``fixed`` nodes are reservoirs whose P, T are imposed from outside."""
+
+    name: str
+    volume: float  # m^3 of gas space
+    tau: float | None = None  # thermal time constant to the wall, s; None = adiabatic
+    fixed: bool = False
+    hidden: bool = False  # not a place a sensor can sit (pore space)
+
+
+@dataclass
+class Link:
+    """A restriction between nodes a and b.
+
+    When ``open`` and cda > 0 it is an orifice; otherwise, if conductance > 0, a linear
+    conductance (a leak past a closed valve seat, or a pore throat).  A relief link opens when the
+    gauge pressure of a over b exceeds ``relief_set`` and reseats below ``relief_reseat``.
+    """
+
+    name: str
+    a: int
+    b: int
+    cda: float = 0.0  # Cd * A, m^2
+    conductance: float = 0.0  # m^3/s
+    open: bool = False
+    relief_set: float | None = None
+    relief_reseat: float = 0.0
+
+    @property
+    def active(self) -> bool:
+        return (self.open and self.cda > 0.0) or self.conductance > 0.0 or self.relief_set is not None
+
+
+@dataclass
+class NetworkState:
+    """Everything needed to roll the network back to a committed time."""
+
+    n: list[float]
+    U: list[float]
+    relief_open: list[bool]
+
+
+@dataclass
+class GasNetwork:
+    """The integrator.  Indices into ``nodes``/``links`` are stable; names map through ``index``."""
+
+    gas: Gas
+    nodes: list[Node]
+    links: list[Link] = field(default_factory=list)
+    rel_moles: float = 0.02  # largest relative change of moles in a node per step
+    coupling: float = 0.1  # step limit, in thermal time constants, for a node both flowing and relaxing
+    thermal_tol: float = 1e-4  # K: below this deviation from the wall the coupling limit is lifted
+
+    def __post_init__(self) -> None:
+        g = self.gas
+        self.gamma = g.gamma
+        self.cv = R / (g.gamma - 1.0)
+        self.cp = g.gamma * self.cv
+        self.r_specific = R / g.molar_mass
+        self.index = {nd.name: i for i, nd in enumerate(self.nodes)}
+        k = len(self.nodes)
+        self.n = [0.0] * k
+        self.U = [0.0] * k
+        self.P = [0.0] * k
+        self.T = [0.0] * k
+        self.Z = [1.0] * k
+        self.wall = [293.15] * k
+        self.steps = 0
+        self._fixed = [nd.fixed for nd in self.nodes]
+        self._var = [i for i, nd in enumerate(self.nodes) if not nd.fixed]
+        self._refresh_active()
+
+    # ----------------------------------------------------------------- state
+    def _refresh_active(self) -> None:
+        self._active = [lk for lk in self.links if lk.active]
+
+    def set_open(self, link: int, is_open: bool) -> None:
+        self.links[link].open = bool(is_open)
+        self._refresh_active()
+
+    def set_conductance(self, link: int, conductance: float) -> None:
+        self.links[link].conductance = max(0.0, float(conductance))
+        self._refresh_active()
+
+    def eos_pressure(self, n: float, temp: float, volume: float) -> tuple[float, float]:
+        """(P, Z) of n mol at temp in volume, inverting n = P V/(Z(P,T) R T) exactly."""
+        rho = n / volume
+        g = self.gas
+        if g.is_ideal or rho == 0.0:
+            return rho * R * temp, 1.0
+        b = g.B(temp)
+        a = (g.C(temp) - b * b) * rho * rho
+        q = 1.0 - b * rho
+        z = 2.0 / (q + math.sqrt(q * q - 4.0 * a))
+        return z * rho * R * temp, z
+
+    def init_node(self, i: int, pressure: float, temp: float) -> None:
+        """Fill variable node i with gas at (pressure, temp)."""
+        nd = self.nodes[i]
+        if nd.fixed:
+            self.set_fixed(i, pressure, temp)
+            return
+        n = self.gas.moles(pressure, nd.volume, temp)
+        self.n[i] = n
+        self.U[i] = n * self.cv * temp
+        self._update(i)
+
+    def set_fixed(self, i: int, pressure: float, temp: float) -> None:
+        self.P[i] = pressure
+        self.T[i] = temp
+        self.Z[i] = 1.0
+
+    def set_walls(self, temp: float) -> None:
+        for i in self._var:
+            self.wall[i] = temp
+
+    def _update(self, i: int) -> None:
+        n = self.n[i]
+        if n <= 0.0:
+            self.P[i], self.T[i], self.Z[i] = 0.0, self.wall[i], 1.0
+            return
+        t = self.U[i] / (n * self.cv)
+        self.T[i] = t
+        self.P[i], self.Z[i] = self.eos_pressure(n, t, self.nodes[i].volume)
+
+    def snapshot(self) -> NetworkState:
+        relief = [lk.open for lk in self.links if lk.relief_set is not None]
+        return NetworkState(list(self.n), list(self.U), relief)
+
+    def restore(self, s: NetworkState) -> None:
+        self.n[:] = s.n
+        self.U[:] = s.U
+        it = iter(s.relief_open)
+        for lk in self.links:
+            if lk.relief_set is not None:
+                lk.open = next(it)
+        for i in self._var:
+            self._update(i)
+
+    def total_moles(self) -> float:
+        return math.fsum(self.n[i] for i in self._var)
+
+    def total_energy(self) -> float:
+        return math.fsum(self.U[i] for i in self._var)
+
+    # ----------------------------------------------------------------- flow
+    def link_flow(self, lk: Link) -> tuple[int, int, float]:
+        """(upstream, downstream, molar flow mol/s >= 0) of a link at the present state."""
+        P = self.P
+        up, dn = (lk.a, lk.b) if P[lk.a] >= P[lk.b] else (lk.b, lk.a)
+        p_up, p_dn = P[up], P[dn]
+        if p_up <= p_dn:
+            return up, dn, 0.0
+        t_up = self.T[up]
+        if lk.open and lk.cda > 0.0:
+            f = nozzle_mass_flow(lk.cda, p_up, t_up, p_dn, self.gamma, self.r_specific) / self.gas.molar_mass
+        else:
+            f = 0.0
+        if lk.conductance > 0.0:
+            f += lk.conductance * (p_up - p_dn) / (R * t_up)
+        return up, dn, f
+
+    def _equilibrium_transfer(self, up: int, dn: int) -> float:
+        """Moles that would equalise the two pressures, moving gas at the upstream temperature.
+
+        For an ideal gas P = (gamma-1) U / V, so moving dn mol at T_up changes each pressure by
+        gamma Z R T_up dn / V: the pair equilibrium is then exact (linear in dn).
+        """
+        t_up = self.T[up]
+        k = 0.0
+        if not self._fixed[up]:
+            k += self.gamma * self.Z[up] * R * t_up / self.nodes[up].volume
+        if not self._fixed[dn]:
+            k += self.gamma * self.Z[dn] * R * t_up / self.nodes[dn].volume
+        if k == 0.0:
+            return math.inf
+        return (self.P[up] - self.P[dn]) / k
+
+    def _update_relief(self) -> None:
+        for lk in self._active:
+            if lk.relief_set is None:
+                continue
+            dp = self.P[lk.a] - self.P[lk.b]
+            lk.open = dp > lk.relief_set or (lk.open and dp > lk.relief_reseat)
+
+    def flowing(self) -> bool:
+        """True when some active link carries gas now (used to skip work when nothing flows)."""
+        for lk in self._active:
+            if lk.relief_set is not None and not lk.open:
+                continue
+            if self.P[lk.a] != self.P[lk.b]:
+                return True
+        return False
+
+    def link_conductance(self, lk: Link) -> tuple[int, int, float]:
+        """(upstream, downstream, secant conductance g = flow/dp in mol/(s Pa)) at the present state."""
+        P, T = self.P, self.T
+        up, dn = (lk.a, lk.b) if P[lk.a] >= P[lk.b] else (lk.b, lk.a)
+        p_up = P[up]
+        t_up = T[up]
+        dp = p_up - P[dn]
+        g = 0.0
+        if lk.open and lk.cda > 0.0 and p_up > 0.0:
+            band = LINEAR_BAND * p_up
+            if dp > band:
+                g = nozzle_mass_flow(lk.cda, p_up, t_up, P[dn], self.gamma, self.r_specific) / dp
+            else:  # linear law: the flow at the band edge over the band
+                g = nozzle_mass_flow(lk.cda, p_up, t_up, p_up - band, self.gamma, self.r_specific) / band
+            g /= self.gas.molar_mass
+        if lk.conductance > 0.0:
+            g += lk.conductance / (R * t_up)
+        return up, dn, g
+
+    def _flow_step(self, h: float) -> bool:
+        """Move gas over all active links for h seconds by a linearly implicit (backward Euler) step.
+
+        Each link is linearised by its secant conductance g; moving dm mol at T_up changes a node's
+        pressure by gamma Z R T_up dm / V (exact for an ideal gas), which gives a small diagonally
+        dominant linear system for the end-of-step pressures.  The resulting transfers are applied
+        pairwise, so moles and energy are conserved to round-off whatever the step.
+        """
+        P, T, n, U, Z = self.P, self.T, self.n, self.U, self.Z
+        fixed = self._fixed
+        nodes = self.nodes
+        gamma = self.gamma
+        links = []
+        pos: dict[int, int] = {}
+        for lk in self._active:
+            if lk.relief_set is not None and not lk.open:
+                continue
+            up, dn, g = self.link_conductance(lk)
+            if g <= 0.0 or P[up] == P[dn]:
+                continue
+            links.append((up, dn, h * g, T[up]))
+            for i in (up, dn):
+                if not fixed[i] and i not in pos:
+                    pos[i] = len(pos)
+        if not links:
+            return False
+        m = len(pos)
+        A = [[0.0] * m for _ in range(m)]
+        rhs = [0.0] * m
+        for i, k in pos.items():
+            A[k][k] = 1.0
+            rhs[k] = P[i]
+        for up, dn, c, t_up in links:
+            # dm = c (P'_up - P'_dn);  P'_up = P_up - al_up dm;  P'_dn = P_dn + al_dn dm
+            if not fixed[up]:
+                ku = pos[up]
+                al = gamma * Z[up] * R * t_up / nodes[up].volume * c
+                A[ku][ku] += al
+                if fixed[dn]:
+                    rhs[ku] += al * P[dn]
+                else:
+                    A[ku][pos[dn]] -= al
+            if not fixed[dn]:
+                kd = pos[dn]
+                al = gamma * Z[dn] * R * t_up / nodes[dn].volume * c
+                A[kd][kd] += al
+                if fixed[up]:
+                    rhs[kd] += al * P[up]
+                else:
+                    A[kd][pos[up]] -= al
+        x = _solve_dominant(A, rhs)
+        pnew = {i: x[k] for i, k in pos.items()}
+        cp, cv = self.cp, self.cv
+        for up, dn, c, _t in links:
+            pu = P[up] if fixed[up] else pnew[up]
+            pd = P[dn] if fixed[dn] else pnew[dn]
+            dm = c * (pu - pd)
+            if dm < 0.0:  # the flow reversed over the step: move gas the other way
+                up, dn, dm = dn, up, -dm
+            if not fixed[up]:
+                dm = min(dm, 0.5 * n[up])
+            de = cp * T[up] * dm
+            if not fixed[up]:
+                n[up] -= dm
+                U[up] -= de
+            if not fixed[dn]:
+                n[dn] += dm
+                U[dn] += de
+        for i in pos:
+            T[i] = U[i] / (n[i] * cv)
+        return True
+
+    def max_step(self, h: float) -> float:
+        """Shorten h so that no node's moles change by more than rel_moles in one step, and so that
+        a node exchanging heat while joined through an open orifice takes steps of at most
+        ``coupling`` times its thermal time constant (the heat/flow splitting is only first-order
+        accurate in h/tau; a closed node's heat exchange is exact at any step)."""
+        eps = self.rel_moles
+        n = self.n
+        fixed = self._fixed
+        nodes = self.nodes
+        for lk in self._active:
+            if lk.relief_set is not None and not lk.open:
+                continue
+            if lk.open and lk.cda > 0.0:
+                for i in (lk.a, lk.b):
+                    tau = nodes[i].tau
+                    if tau is not None and not fixed[i] and abs(self.T[i] - self.wall[i]) > self.thermal_tol:
+                        h = min(h, self.coupling * tau)
+            up, dn, f = self.link_flow(lk)
+            if f <= 0.0:
+                continue
+            dneq = self._equilibrium_transfer(up, dn)
+            if fixed[up]:
+                nmin = n[dn]
+            elif fixed[dn]:
+                nmin = n[up]
+            else:
+                nmin = min(n[up], n[dn])
+            allowed = eps * nmin
+            if dneq <= allowed:
+                continue
+            if math.isinf(dneq):
+                continue
+            # dneq (1 - exp(-h f/dneq)) <= allowed
+            h = min(h, -(dneq / f) * math.log1p(-allowed / dneq))
+        return h
+
+    def step(self, h: float) -> bool:
+        """Advance the state by h seconds (heat exchange, then the flows in sequence, then the EOS).
+
+        Returns False when nothing changed (no flow, every node at its wall temperature).
+        """
+        self.steps += 1
+        P, T, n, U = self.P, self.T, self.n, self.U
+        nodes = self.nodes
+        cv = self.cv
+        self._update_relief()
+        touched = False
+        # heat exchange first, so that the flows below also settle the pressure differences it makes
+        wall = self.wall
+        for i in self._var:
+            tau = nodes[i].tau
+            ni = n[i]
+            if tau is None or ni <= 0.0:
+                continue
+            t_old = U[i] / (ni * cv)
+            dev = t_old - wall[i]
+            if dev == 0.0:
+                continue
+            dev *= math.exp(-h / tau)
+            if abs(dev) < SNAP_K:
+                dev = 0.0
+            t_new = wall[i] + dev
+            U[i] = ni * cv * t_new
+            T[i] = t_new
+            P[i] *= t_new / t_old  # linearised (exact if ideal); the EOS below makes it exact
+            touched = True
+        if self._flow_step(h):
+            touched = True
+        if touched:
+            for i in self._var:
+                self._update(i)
+        return touched
+
+
+def _solve_dominant(A: list[list[float]], b: list[float]) -> list[float]:
+    """Gaussian elimination without pivoting (A is diagonally dominant); A and b are overwritten."""
+    m = len(b)
+    for k in range(m):
+        piv = A[k][k]
+        rowk = A[k]
+        for i in range(k + 1, m):
+            f = A[i][k]
+            if f != 0.0:
+                f /= piv
+                rowi = A[i]
+                for j in range(k + 1, m):
+                    rowi[j] -= f * rowk[j]
+                b[i] -= f * b[k]
+    x = [0.0] * m
+    for k in range(m - 1, -1, -1):
+        acc = b[k]
+        rowk = A[k]
+        for j in range(k + 1, m):
+            acc -= rowk[j] * x[j]
+        x[k] = acc / rowk[k]
+    return x
