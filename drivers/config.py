@@ -14,7 +14,16 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, BeforeValidator, ConfigDict, Discriminator, Field, Tag, model_validator
+from pydantic import (
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Discriminator,
+    Field,
+    Tag,
+    field_validator,
+    model_validator,
+)
 
 from pycnoctl.controller import units, yamlio
 from pycnoctl.drivers.base import DeviceError, PressureSensor, Thermometer, ValveBank
@@ -84,6 +93,14 @@ def _template(value: Any) -> str:
 Template = Annotated[str, BeforeValidator(_template)]
 
 
+def _pressure_unit(unit: str) -> str:
+    try:
+        units.parse_pressure(1.0, default_unit=unit)
+    except units.UnitError:
+        raise ValueError(f"{unit!r} is not a pressure unit (e.g. kPa, bar, psi, mbar, torr)") from None
+    return unit
+
+
 class Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
@@ -128,14 +145,15 @@ class AsciiRelayDevice(SerialLink):
     commands: RelayCommandsModel = RelayCommandsModel()
     valves: dict[str, ValveChannel] = Field(min_length=1)
 
-    @model_validator(mode="after")
-    def _distinct_channels(self) -> AsciiRelayDevice:
+    @field_validator("valves")
+    @classmethod
+    def _distinct_channels(cls, valves: dict[str, ValveChannel]) -> dict[str, ValveChannel]:
         seen: dict[int, str] = {}
-        for name, v in self.valves.items():
+        for name, v in valves.items():
             if v.channel in seen:
                 raise ValueError(f"valves {seen[v.channel]!r} and {name!r} are both on relay {v.channel}")
             seen[v.channel] = name
-        return self
+        return valves
 
     def valve_names(self) -> tuple[str, ...]:
         return tuple(self.valves)
@@ -163,13 +181,7 @@ class AsciiGaugeDevice(SerialLink):
     overrange_words: list[str] = list(GaugeFormat.overrange_words)
     nan_words: list[str] = list(GaugeFormat.nan_words)
 
-    @model_validator(mode="after")
-    def _unit_ok(self) -> AsciiGaugeDevice:
-        try:
-            units.parse_pressure(1.0, default_unit=self.unit)
-        except units.UnitError as exc:
-            raise ValueError(f"unit: {exc}") from None
-        return self
+    _unit_ok = field_validator("unit")(classmethod(lambda cls, u: _pressure_unit(u)))
 
     def fmt(self) -> GaugeFormat:
         r = self.range or RangeModel()
@@ -248,11 +260,9 @@ class ModbusDevice(Strict):
             raise ValueError("a tcp link needs host and an integer port")
         if self.link == "rtu" and not isinstance(self.port, str):
             raise ValueError("an rtu link needs port: the serial device path")
-        try:
-            units.parse_pressure(1.0, default_unit=self.unit)
-        except units.UnitError as exc:
-            raise ValueError(f"unit: {exc}") from None
         return self
+
+    _unit_ok = field_validator("unit")(classmethod(lambda cls, u: _pressure_unit(u)))
 
     def span(self) -> tuple[float | None, float | None]:
         r = self.range or RangeModel()

@@ -18,6 +18,12 @@ from typing import Any, Protocol, runtime_checkable
 
 import serial
 
+try:  # pyserial's flush() on a dead pty/tty raises termios.error, which is not an OSError
+    from termios import error as _TermiosError
+except ImportError:  # pragma: no cover - not on POSIX
+    class _TermiosError(Exception):  # type: ignore[no-redef]
+        pass
+
 from pycnoctl.drivers.base import DeviceDisconnected, DeviceError, DeviceTimeout
 
 log = logging.getLogger(__name__)
@@ -91,7 +97,7 @@ class SerialTransport:
         if port is not None:
             try:
                 port.close()
-            except (serial.SerialException, OSError) as exc:
+            except (serial.SerialException, OSError, _TermiosError) as exc:
                 log.debug("%s: close failed: %s", self.name, exc)
 
     @property
@@ -123,7 +129,7 @@ class SerialTransport:
                 port.flush()
             except serial.SerialTimeoutException as exc:
                 raise DeviceTimeout(self.name, "write timed out", data) from exc
-            except (serial.SerialException, OSError) as exc:
+            except (serial.SerialException, OSError, _TermiosError) as exc:
                 raise self._lost(exc, data) from exc
 
     def _with_timeout(self, timeout: float | None, fn: Any) -> bytes:
@@ -144,7 +150,7 @@ class SerialTransport:
             self._live(command)
             try:
                 raw = self._with_timeout(timeout, lambda p: p.read_until(self.eol))
-            except (serial.SerialException, OSError) as exc:
+            except (serial.SerialException, OSError, _TermiosError) as exc:
                 raise self._lost(exc, command) from exc
             if not raw.endswith(self.eol):
                 what = "no reply" if not raw else "partial reply"
@@ -157,7 +163,7 @@ class SerialTransport:
             self._live(command)
             try:
                 raw = self._with_timeout(timeout, lambda p: p.read(size))
-            except (serial.SerialException, OSError) as exc:
+            except (serial.SerialException, OSError, _TermiosError) as exc:
                 raise self._lost(exc, command) from exc
             if len(raw) != size:
                 raise DeviceTimeout(self.name, f"{len(raw)} of {size} bytes", command, raw or None)
