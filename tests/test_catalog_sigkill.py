@@ -63,18 +63,23 @@ def _run_and_kill(args: list[str], delay: float) -> list[str]:
     env = dict(os.environ, PYTHONUNBUFFERED="1")
     proc = subprocess.Popen([sys.executable, "-c", *args], stdout=subprocess.PIPE, env=env)
     assert proc.stdout is not None
-    first = proc.stdout.readline()
-    assert first.strip() == b"ready", first
-    deadline = time.monotonic() + delay
+    fd = proc.stdout.fileno()  # raw reads only: a buffered readline would hide data from os.read
     out = b""
-    fd = proc.stdout.fileno()
+    while b"\n" not in out:
+        chunk = os.read(fd, 1 << 16)
+        assert chunk, "writer died before it was ready"
+        out += chunk
+    first, out = out.split(b"\n", 1)
+    assert first == b"ready", first
+    deadline = time.monotonic() + delay
     while (left := deadline - time.monotonic()) > 0:  # drain while it writes, so the pipe never fills
         r, _, _ = select.select([fd], [], [], left)
         if r:
             out += os.read(fd, 1 << 16)
     proc.send_signal(signal.SIGKILL)
     proc.wait()
-    out += proc.stdout.read()
+    while chunk := os.read(fd, 1 << 16):
+        out += chunk
     proc.stdout.close()
     lines = out.decode().split("\n")
     return lines[:-1]  # the last element is empty or an unfinished acknowledgement
