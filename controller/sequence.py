@@ -23,10 +23,12 @@ from __future__ import annotations
 
 import importlib.resources
 import math
+import re
 from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
+import yaml
 from pydantic import (
     BaseModel,
     BeforeValidator,
@@ -46,9 +48,12 @@ from pydantic_core import PydanticCustomError
 
 from pycnoctl.controller import units
 from pycnoctl.controller.gas import GASES, UnknownGas, get_gas
-from pycnoctl.controller.yamlio import ConfigError, Document, Loc, Problem, load_file, validate
+from pycnoctl.controller.yamlio import ConfigError, Document, Loc, Problem, load_file
 
 FORMAT = "pycnoctl-sequence/1"
+
+# PyYAML counts these as line breaks in its marks
+_YAML_BREAK = re.compile("\r\n|[\r\n\x85\u2028\u2029]")
 
 #: Kinds whose cycles fill the cell and expand into an expansion volume.
 EXPANDING_KINDS = ("measure", "calibrate")
@@ -464,15 +469,73 @@ def _problem_key(p: Problem) -> tuple[int, int, str]:
     return (p.line, p.col, p.message)
 
 
+def _yaml_loc(data: Any, loc: tuple[Any, ...], *, keep_last: bool) -> Loc:
+    """The part of a pydantic error location that is a path in the data (drops union/validator tags).
+
+    ``keep_last`` keeps a final element that is not in the data: the name of a missing key, for the
+    message (the position then falls back to its parent).
+    """
+    out: list[str | int] = []
+    node = data
+    for n, part in enumerate(loc):
+        in_dict = isinstance(node, dict) and part in node
+        if in_dict or (isinstance(node, list) and isinstance(part, int) and 0 <= part < len(node)):
+            out.append(part)
+            node = node[part]
+        elif keep_last and n == len(loc) - 1:
+            out.append(part)
+        else:
+            node = None
+    return tuple(out)
+
+
+def _positioned(doc: Document, exc: ValidationError) -> list[Problem]:
+    """pydantic errors -> problems at the key they concern, in the wording yamlio uses."""
+    out = []
+    for err in exc.errors():
+        loc = _yaml_loc(doc.data, tuple(err["loc"]), keep_last=err["type"] == "missing")
+        dotted = ".".join(map(str, loc))
+        if err["type"] == "extra_forbidden":
+            msg = f"unknown key {loc[-1]!r}" if loc else "unknown key"
+        elif err["type"] == "missing":
+            msg = f"missing key {loc[-1]!r}" if loc else "missing value"
+        elif err["type"] == "invalid_key":
+            msg = f"key {err.get('input')!r} is not text"
+        else:
+            msg = f"{dotted}: {err['msg']}" if dotted else err["msg"]
+        out.append(doc.problem(loc, msg))
+    return out
+
+
+def _reader_problem(path: str | Path, exc: yaml.reader.ReaderError) -> Problem:
+    """Position a character PyYAML refuses (NUL, other control characters) that yamlio lets escape."""
+    text = Path(path).read_bytes().decode("utf-8", errors="replace")
+    i = min(max(exc.position, 0), len(text))
+    breaks = list(_YAML_BREAK.finditer(text, 0, i))  # count lines as PyYAML marks do
+    line = len(breaks) + 1
+    col = i - (breaks[-1].end() if breaks else 0) + 1
+    ch = exc.character if isinstance(exc.character, int) else ord(str(exc.character)[:1] or "\0")
+    return Problem(str(path), line, col, f"character U+{ch:04X} is not allowed in YAML")
+
+
 def load_sequence(path: str | Path) -> Sequence:
     """Load and check a sequence file; raises ConfigError listing every problem with file:line:col."""
-    doc = load_file(path)  # strict YAML: size cap, UTF-8, no tags/aliases/duplicates
+    try:
+        doc = load_file(path)  # strict YAML: size cap, UTF-8, no tags/aliases/duplicates
+    except yaml.reader.ReaderError as exc:
+        raise ConfigError([_reader_problem(path, exc)]) from None
+    except yaml.MarkedYAMLError as exc:  # e.g. a tag on a mapping key, which yamlio constructs unchecked
+        mark = exc.problem_mark or exc.context_mark
+        line, col = (mark.line + 1, mark.column + 1) if mark else (1, 1)
+        raise ConfigError([Problem(str(path), line, col, exc.problem or str(exc))]) from None
+    except yaml.YAMLError as exc:
+        raise ConfigError([Problem(str(path), 1, 1, str(exc))]) from None
     problems: list[Problem] = []
     seq: Sequence | None = None
     try:
-        seq = validate(Sequence, doc, context={_DEFER: True})
-    except ConfigError as exc:
-        problems.extend(exc.problems)
+        seq = Sequence.model_validate(doc.data, context={_DEFER: True})
+    except ValidationError as exc:
+        problems.extend(_positioned(doc, exc))
     problems.extend(doc.problem(loc, f"{'.'.join(map(str, loc))}: {msg}")
                     for loc, msg in _section_rules(doc.data))
     if problems or seq is None:
