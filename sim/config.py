@@ -253,10 +253,13 @@ class SimLimits(_Strict):
 class Solver(_Strict):
     """Integration controls: accuracy of the dense output and of the flow steps."""
 
-    rel_moles: Annotated[float, Field(gt=0.0, le=0.2)] = 0.02
-    interp_tol: PosPressure = 1.0  # Pa, error of interpolating pressure between steps
+    rel_moles: Annotated[float, Field(gt=0.0, le=0.2)] = 0.08
+    interp_tol: PosPressure = 2.0  # Pa, error of interpolating pressure between steps...
+    interp_rel: Annotated[float, Field(ge=0.0, le=1.0)] = 0.02  # ...or this share of the step's change
     max_step: PosDuration = 10.0
     first_step: PosDuration = 1e-3
+    coupling: Annotated[float, Field(gt=0.0, le=10.0)] = 0.5  # step / thermal tau while flowing and relaxing
+    thermal_tol: NonNegTempDiff = 1e-3  # K from the wall below which that limit is lifted
 
 
 class SimConfig(_Strict):

@@ -434,6 +434,7 @@ class FakeDevice:
         except (BlockingIOError, OSError):
             return
         conn.setblocking(True)
+        conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)  # replies go out at once
         self._conn = conn
 
     def _refuse(self) -> None:

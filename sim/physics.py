@@ -346,9 +346,13 @@ class GasNetwork:
             dm = c * (pu - pd)
             if dm < 0.0:  # the flow reversed over the step: move gas the other way
                 up, dn, dm = dn, up, -dm
+            t_flow = T[up]
             if not fixed[up]:
                 dm = min(dm, 0.5 * n[up])
-            de = cp * T[up] * dm
+                # the donor cools isentropically while it empties: carry its mean temperature over
+                # the step (second-order accurate in dm/n), not the start value
+                t_flow *= 1.0 - 0.5 * (gamma - 1.0) * dm / n[up]
+            de = cp * t_flow * dm
             if not fixed[up]:
                 n[up] -= dm
                 U[up] -= de

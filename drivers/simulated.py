@@ -1,0 +1,203 @@
+"""In-process drivers over the simulator bench, and the simulated Instrument.
+
+Why: every engine and driver test, and a user trying a sequence before touching hardware, needs
+an Instrument whose devices behave like real ones, failures included.  These drivers implement
+the role protocols of drivers/base.py and translate the bench's sensor modes into validities.
+
+What a real board can and cannot tell is kept: ``read_back`` reports the *commanded* relay
+states (a relay board knows its coils, not whether a valve seat moved), so a stuck valve is NOT
+visible there - the engine must infer it from the pressure.  A frozen transducer returns the same
+value as VALID, as a real one would; detecting it is the engine's job.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from pathlib import Path
+
+from pycnoctl.drivers.base import DeviceDisconnected, DeviceError, Reading, Validity
+from pycnoctl.drivers.instrument import Chambers, Instrument, Limits, ValveRoles
+from pycnoctl.sim.bench import SensorSample, SimBench
+from pycnoctl.sim.clock import SimClock
+from pycnoctl.sim.config import SimConfig, load_sim_config
+
+_VALIDITY = {
+    "ok": Validity.VALID,
+    "frozen": Validity.VALID,  # indistinguishable from a steady reading
+    "silent": Validity.TIMEOUT,
+    "garbled": Validity.GARBLED,
+    "nan": Validity.NAN,
+    "disconnected": Validity.DISCONNECTED,
+    "out_of_range": Validity.OUT_OF_RANGE,
+}
+
+
+def sample_to_reading(sample: SensorSample, unit: str, device: str) -> Reading:
+    """Map a bench sample to a Reading with the validity a real driver would give it."""
+    validity = _VALIDITY.get(sample.mode, Validity.GARBLED)
+    if validity is Validity.VALID and math.isfinite(sample.value):
+        return Reading(sample.value, unit, sample.t)
+    return Reading.invalid(unit, sample.t, validity, f"{device}: {sample.mode}")
+
+
+class SimValveBank:
+    """The simulated relay board.  Raises DeviceDisconnected while its board is unplugged."""
+
+    name = "valves"
+
+    def __init__(self, bench: SimBench) -> None:
+        self._bench = bench
+        self._closed = False
+
+    @property
+    def valve_names(self) -> tuple[str, ...]:
+        return self._bench.valve_names
+
+    def _check(self, command: str) -> None:
+        if self._closed:
+            raise DeviceDisconnected(self.name, "driver is closed", command)
+        if not self._bench.connected("valves"):
+            raise DeviceDisconnected(self.name, "relay board not responding (unplugged)", command)
+
+    def set_valves(self, states: Mapping[str, bool]) -> None:
+        unknown = [n for n in states if n not in self._bench.valve_names]
+        if unknown:
+            raise DeviceError(self.name, f"no such valve(s): {', '.join(map(repr, unknown))}")
+        self._check(f"set {dict(states)}")
+        self._bench.set_valves(states)
+
+    def commanded(self) -> dict[str, bool]:
+        return self._bench.commanded()
+
+    def read_back(self) -> dict[str, bool] | None:
+        """The relay states the board reports: the commanded ones (a stuck seat is invisible)."""
+        self._check("read back")
+        return self._bench.commanded()
+
+    def close(self) -> None:
+        self._closed = True
+
+
+class _SimSensor:
+    unit = ""
+    device = ""
+
+    def __init__(self, bench: SimBench, name: str | None = None) -> None:
+        self._bench = bench
+        self.name = name or self.device
+        self._closed = False
+
+    def _sample(self) -> SensorSample:  # pragma: no cover - overridden
+        raise NotImplementedError
+
+    def read(self) -> Reading:
+        if self._closed:
+            return Reading.invalid(self.unit, self._bench.clock.now(), Validity.DISCONNECTED, "closed")
+        return sample_to_reading(self._sample(), self.unit, self.name)
+
+    def close(self) -> None:
+        self._closed = True
+
+
+class SimPressureSensor(_SimSensor):
+    """The transducer: gauge or absolute (see ``is_gauge``), Pa."""
+
+    unit = "Pa"
+    device = "pressure"
+
+    @property
+    def is_gauge(self) -> bool:
+        return self._bench.pressure_is_gauge
+
+    def _sample(self) -> SensorSample:
+        return self._bench.read_pressure()
+
+
+class SimThermometer(_SimSensor):
+    unit = "K"
+    device = "thermometer"
+
+    def _sample(self) -> SensorSample:
+        return self._bench.read_thermometer()
+
+
+class SimBarometer(_SimSensor):
+    unit = "Pa"
+    device = "barometer"
+
+    def _sample(self) -> SensorSample:
+        return self._bench.read_barometer()
+
+
+def _roles(cfg: SimConfig) -> ValveRoles:
+    inlet = next(n for n, v in cfg.valves.items() if v.role == "inlet")
+    vent = next(n for n, v in cfg.valves.items() if v.role == "vent")
+    expansion = {vol: valve for valve, vol in cfg.expansion_volumes().items()}
+    other = tuple(n for n, v in cfg.valves.items() if v.role == "other")
+    return ValveRoles(inlet=inlet, vent=vent, expansion=expansion, other=other)
+
+
+def _cell_side_volume(cfg: SimConfig) -> float:
+    """The cell plus every volume joined to it by an always-open link (its dead volume)."""
+    seen = {cfg.cell}
+    grew = True
+    while grew:
+        grew = False
+        for lk in cfg.links:
+            a, b = lk.between
+            if (a in seen) != (b in seen):
+                seen |= {a, b}
+                grew = True
+    return sum(cfg.volumes[n].volume for n in seen)
+
+
+def _chambers(cfg: SimConfig) -> Chambers:
+    cell = _cell_side_volume(cfg)
+    expansion = {vol: cfg.volumes[vol].volume for vol in cfg.expansion_volumes().values()}
+    nom = cfg.nominal
+    if nom is not None:
+        if nom.cell is not None:
+            cell = nom.cell
+        expansion.update(nom.expansion)
+    return Chambers(cell=cell, expansion=expansion)
+
+
+def sim_limits(cfg: SimConfig) -> Limits:
+    """Limits from the config's ``limits`` section; relief setting defaults to the relief valve (or the
+    transducer's full scale), max pressure to 90 % of it."""
+    lim = cfg.limits
+    relief = lim.relief_setting
+    if relief is None:
+        relief = cfg.relief.set_pressure if cfg.relief is not None else cfg.instruments.pressure.full_scale
+    max_p = lim.max_pressure if lim.max_pressure is not None else 0.9 * relief
+    extra = {k: v for k, v in lim.model_dump().items()
+             if v is not None and k not in ("max_pressure", "relief_setting")}
+    return Limits(max_pressure=max_p, relief_setting=relief, **extra)
+
+
+def build_sim_instrument(
+    config: SimConfig | str | Path | None = None, *, realtime: bool = False
+) -> Instrument:
+    """An Instrument over a fresh simulator bench; ``extras['sim']`` is the bench (the truth)."""
+    cfg = config if isinstance(config, SimConfig) else load_sim_config(config)
+    bench = SimBench(cfg, SimClock(realtime=realtime))
+    ins = cfg.instruments
+    return Instrument(
+        name=cfg.name,
+        valves=SimValveBank(bench),
+        pressure=SimPressureSensor(bench),
+        clock=bench.clock,
+        roles=_roles(cfg),
+        chambers=_chambers(cfg),
+        limits=sim_limits(cfg),
+        pressure_is_gauge=bench.pressure_is_gauge,
+        thermometer=SimThermometer(bench) if ins.thermometer is not None else None,
+        barometer=SimBarometer(bench) if ins.barometer is not None else None,
+        sample_period=cfg.sample_period,
+        pressure_u=max(ins.pressure.noise, ins.pressure.resolution / math.sqrt(12.0), 1.0),
+        temperature_u=max(ins.thermometer.noise if ins.thermometer else 0.05, 0.01),
+        ambient_nominal=cfg.lab.pressure,
+        gas=cfg.gas,
+        extras={"sim": bench},
+    )
