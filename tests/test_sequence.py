@@ -599,3 +599,41 @@ def test_resolve_sequence(tmp_path: Path) -> None:
         sq.resolve_sequence("no-such-sequence")
     with pytest.raises(FileNotFoundError):
         sq.resolve_sequence(tmp_path / "missing.yaml")
+
+
+# ----------------------------------------------------------------------------- found by the fuzzer
+
+
+def test_nul_character_positioned(tmp_path: Path) -> None:
+    text = edit("name: test-run", "name: test\x00run")
+    line, col, msg = only(write(tmp_path, text))
+    assert (line, col) == pos(text, "\x00")
+    assert "U+0000" in msg
+
+
+def test_nul_after_carriage_return_counts_the_line_as_yaml_does(tmp_path: Path) -> None:
+    # YAML 1.1 "line break characters" include a lone CR [M: section number from memory, 5.4], so the
+    # NUL sits at line 2, column 1
+    line, col, _ = only(write(tmp_path, "\r\x00"))
+    assert (line, col) == (2, 1)
+
+
+def test_tag_on_a_mapping_key_positioned(tmp_path: Path) -> None:
+    text = edit("settle_filled: {}", "settle_filled: {!tag }")
+    line, col, msg = only(write(tmp_path, text))
+    assert (line, col) == pos(text, "!tag")
+    assert "!tag" in msg
+
+
+def test_unknown_key_with_brackets_keeps_its_name(tmp_path: Path) -> None:
+    text = GOOD + "([x]: 1\n"
+    line, col, msg = only(write(tmp_path, text))
+    assert (line, col) == pos(text, "([x]")
+    assert msg == "unknown key '([x]'"
+
+
+def test_non_text_key_positioned(tmp_path: Path) -> None:
+    text = edit("  count: 8", "  count: 8\n  12: 3")
+    line, col, msg = only(write(tmp_path, text))
+    assert (line, col) == pos(text, "12: 3")
+    assert "12" in msg
