@@ -98,13 +98,17 @@ def exercise_valves(inst: Instrument) -> list[dict[str, Any]]:
             try:
                 t0 = time.perf_counter()
                 inst.valves.set_valves({roles.inlet: False, valve: target})
-                step["ms"] = 1e3 * (time.perf_counter() - t0)
+                step["ms"] = round(1e3 * (time.perf_counter() - t0), 3)
                 seen = inst.valves.read_back()
                 step["read_back"] = None if seen is None else seen.get(valve)
                 inst.valves.set_valves({valve: not target})
                 step["ok"] = True
             except ForbiddenValveState as exc:
                 step.update(ok=False, refused=str(exc))
+            except DeviceError as exc:  # stop walking; the safe state below still runs
+                step.update(ok=False, error=str(exc))
+                steps.append(step)
+                break
             steps.append(step)
     finally:
         try:

@@ -584,8 +584,9 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Clock | None = None, sim_b
         opened.close_all()
         raise
     extras: dict[str, object] = {"config": cfg}
-    if sim is not None:
-        extras["sim"] = sim
+    if sim is not None:  # the simulator's own extras (extras['sim'] is its bench), and its instrument
+        extras.update(sim.extras)
+        extras["sim_instrument"] = sim
     return Instrument(
         name=cfg.name, valves=guarded, pressure=pressure, clock=clk, roles=roles, chambers=chambers,
         limits=limits, pressure_is_gauge=cfg.pressure_is_gauge if not isinstance(cfg.pressure, SimDevice)
