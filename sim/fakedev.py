@@ -204,6 +204,8 @@ class RelayFirmware:
 
     def handle(self, request: bytes) -> Reply:
         self._last = self._monotonic()
+        if len(request.rstrip(b"\r\n")) > 64:
+            return b"ERR 1 line too long\n"
         words = request.decode("ascii", "replace").strip().split()
         if not words:
             return b"ERR 1 empty command\n"
