@@ -73,6 +73,7 @@ def test_firmware_dialogue_and_errors():
     assert fw.handle(b"RELAY 9 ON\n").startswith(b"ERR 3")
     assert fw.handle(b"RELAY 1 MAYBE\n").startswith(b"ERR 2")
     assert fw.handle(b"FLY\n").startswith(b"ERR 1")
+    assert fw.handle(b"RELAY 1 ON" + b" " * 60 + b"\n").startswith(b"ERR 1")  # over 64 characters
     assert fw.handle(b"ALLOFF\n") == b"OK\n"
     assert bank.commanded() == {"inlet": False, "vent": True}
     assert fw.handle(b"STATE?\n") == b"STATE 0000\n"
