@@ -107,3 +107,16 @@ def test_readme_documents_every_key() -> None:
     text = README.read_text(encoding="utf-8")
     missing = [k for k in _keys(sq.Sequence) if f"`{k.rsplit('.', 1)[-1]}`" not in text]
     assert missing == []
+
+
+@pytest.mark.parametrize("name", SHIPPED)
+def test_shipped_file_fits_the_clean_simulator(name: str) -> None:
+    simulated = pytest.importorskip("pycnoctl.drivers.simulated")
+    inst = simulated.build_sim_instrument(None)  # the clean demo instrument
+    try:
+        names, max_p, gas = list(inst.roles.expansion), inst.limits.max_pressure, inst.gas
+    finally:
+        inst.close()
+    assert set(DEMO_VOLUMES) <= set(names)
+    seq = sq.load_sequence(sq.resolve_sequence(name))
+    assert sq.check_against_instrument(seq, expansion_volumes=names, max_pressure=max_p, gas=gas) == ([], [])
