@@ -48,7 +48,7 @@ from pydantic_core import PydanticCustomError
 
 from pycnoctl.controller import units
 from pycnoctl.controller.gas import GASES, UnknownGas, get_gas
-from pycnoctl.controller.yamlio import ConfigError, Document, Loc, Problem, load_file
+from pycnoctl.controller.yamlio import MAX_BYTES, ConfigError, Document, Loc, Problem, load_file
 
 FORMAT = "pycnoctl-sequence/1"
 
@@ -519,7 +519,15 @@ def _reader_problem(path: str | Path, exc: yaml.reader.ReaderError) -> Problem:
 
 
 def load_sequence(path: str | Path) -> Sequence:
-    """Load and check a sequence file; raises ConfigError listing every problem with file:line:col."""
+    """Load and check a sequence file; raises ConfigError listing every problem with file:line:col.
+
+    The returned model keeps ``path``, ``raw_text`` (exactly the text that was validated) and ``doc``.
+    """
+    try:
+        with open(path, "rb") as fh:
+            before = fh.read(MAX_BYTES + 1)
+    except OSError:
+        before = None  # load_file reports the unreadable file
     try:
         doc = load_file(path)  # strict YAML: size cap, UTF-8, no tags/aliases/duplicates
     except yaml.reader.ReaderError as exc:
@@ -541,8 +549,14 @@ def load_sequence(path: str | Path) -> Sequence:
     if problems or seq is None:
         unique = {_problem_key(p): p for p in problems}
         raise ConfigError(sorted(unique.values(), key=_problem_key))
+    try:
+        after = Path(path).read_bytes()
+    except OSError:
+        after = None
+    if after is None or after != before:  # edited while we read it: what we checked is not what is there
+        raise ConfigError([Problem(str(path), 1, 1, "the file changed while it was being read; load it again")])
     seq._path = Path(path)
-    seq._raw_text = Path(path).read_text(encoding="utf-8")
+    seq._raw_text = after.decode("utf-8")
     seq._doc = doc
     return seq
 

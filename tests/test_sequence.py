@@ -637,3 +637,17 @@ def test_non_text_key_positioned(tmp_path: Path) -> None:
     line, col, msg = only(write(tmp_path, text))
     assert (line, col) == pos(text, "12: 3")
     assert "12" in msg
+
+
+def test_file_edited_while_loading_is_refused(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    path = write(tmp_path, GOOD)
+    real = sq.load_file
+
+    def load_then_edit(p):  # type: ignore[no-untyped-def]
+        doc = real(p)
+        path.write_text(edit("  target: 1.30 bar", "  target: 1.70 bar"), encoding="utf-8")
+        return doc
+
+    monkeypatch.setattr(sq, "load_file", load_then_edit)
+    line, col, msg = only(path)
+    assert (line, col) == (1, 1) and "changed" in msg
