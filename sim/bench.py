@@ -117,9 +117,9 @@ class SimBench:
             links.append(Link("pores", idx[cfg.cell], len(nodes) - 1, conductance=s.pore_volume / s.pore_tau))
         if cfg.relief is not None:
             r = cfg.relief
-            links.append(Link("relief", idx[r.node], AMBIENT, cda=r.cd * math.pi * r.diameter**2 / 4.0,
+            links.append(Link("relief", idx[r.node], AMBIENT, relief_cda=r.cd * math.pi * r.diameter**2 / 4.0,
                               relief_set=r.set_pressure,
-                              relief_reseat=r.reseat if r.reseat is not None else 0.9 * r.set_pressure))
+                              relief_reseat=r.reseat if r.reseat is not None else 0.95 * r.set_pressure))
         sv = cfg.solver
         self.net = GasNetwork(self.gas, nodes, links, rel_moles=sv.rel_moles, coupling=sv.coupling,
                               thermal_tol=sv.thermal_tol)

@@ -146,7 +146,7 @@ class Valve(Restriction):
 class Relief(_Strict):
     node: str = "cell"
     set_pressure: PosPressure  # gauge
-    reseat: PosPressure | None = None  # gauge; default 0.9 x set
+    reseat: PosPressure | None = None  # gauge, where it starts to lift; default 0.95 x set (full lift at set)
     diameter: PosLength = 1.5e-3
     cd: Fraction = 0.7
 

@@ -89,8 +89,8 @@ class Link:
     """A restriction between nodes a and b.
 
     When ``open`` and cda > 0 it is an orifice; otherwise, if conductance > 0, a linear
-    conductance (a leak past a closed valve seat, or a pore throat).  A relief link opens when the
-    gauge pressure of a over b exceeds ``relief_set`` and reseats below ``relief_reseat``.
+    conductance (a leak past a closed valve seat, or a pore throat).  A relief link starts to lift
+    at ``relief_reseat`` (gauge of a over b) and is fully open (``relief_cda``) at ``relief_set``.
     """
 
     name: str
@@ -101,6 +101,7 @@ class Link:
     open: bool = False
     relief_set: float | None = None
     relief_reseat: float = 0.0
+    relief_cda: float = 0.0  # full-lift effective area of a relief link
 
     @property
     def active(self) -> bool:
@@ -126,6 +127,7 @@ class GasNetwork:
     rel_moles: float = 0.02  # largest relative change of moles in a node per step
     coupling: float = 0.1  # step limit, in thermal time constants, for a node both flowing and relaxing
     thermal_tol: float = 1e-4  # K: below this deviation from the wall the coupling limit is lifted
+    relief_step: float = 2e-3  # s, longest step while a relief valve is near or in its lift range
 
     def __post_init__(self) -> None:
         g = self.gas
@@ -253,11 +255,16 @@ class GasNetwork:
         return (self.P[up] - self.P[dn]) / k
 
     def _update_relief(self) -> None:
+        """Proportional relief: closed below the reseat pressure, lifting linearly to full bore at
+        the set pressure (a smooth law, so the implicit flow step cannot make it chatter)."""
         for lk in self._active:
             if lk.relief_set is None:
                 continue
             dp = self.P[lk.a] - self.P[lk.b]
-            lk.open = dp > lk.relief_set or (lk.open and dp > lk.relief_reseat)
+            span = max(lk.relief_set - lk.relief_reseat, 1.0)
+            lift = min(max((dp - lk.relief_reseat) / span, 0.0), 1.0)
+            lk.open = lift > 0.0
+            lk.cda = lk.relief_cda * lift
 
     def flowing(self) -> bool:
         """True when some active link carries gas now (used to skip work when nothing flows)."""
@@ -373,8 +380,13 @@ class GasNetwork:
         fixed = self._fixed
         nodes = self.nodes
         for lk in self._active:
-            if lk.relief_set is not None and not lk.open:
-                continue
+            if lk.relief_set is not None:
+                # the lift follows the pressure explicitly: resolve that feedback loop finely
+                dp = self.P[lk.a] - self.P[lk.b]
+                if dp > lk.relief_reseat - 0.02 * (lk.relief_set - lk.relief_reseat):
+                    h = min(h, self.relief_step)
+                if not lk.open:
+                    continue
             if lk.open and lk.cda > 0.0:
                 for i in (lk.a, lk.b):
                     tau = nodes[i].tau
