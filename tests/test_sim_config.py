@@ -1,0 +1,86 @@
+"""Simulator config: shipped files load; bad files give file:line:col problems."""
+
+from __future__ import annotations
+
+import pytest
+
+from pycnoctl.controller.yamlio import ConfigError
+from pycnoctl.sim.config import load_sim_config, shipped_configs
+
+
+def test_shipped_configs_load():
+    names = set(shipped_configs())
+    assert {"clean", "noisy", "leaky", "regulator_failure"} <= names
+    for path in shipped_configs().values():
+        cfg = load_sim_config(path)
+        assert cfg.volumes and cfg.valves
+
+
+def test_default_is_clean_and_in_si():
+    cfg = load_sim_config(None)
+    assert cfg.volumes["cell"].volume == pytest.approx(12e-6)  # '12 cm^3'
+    assert cfg.lab.temperature == pytest.approx(295.15)  # '22 degC'
+    assert cfg.supply.set_pressure == pytest.approx(1.4e5)  # '1.4 bar'
+    assert cfg.valves["inlet"].diameter == pytest.approx(0.25e-3)  # '0.25 mm'
+
+
+def _problems(tmp_path, text):
+    p = tmp_path / "bad.yaml"
+    p.write_text(text, encoding="utf-8")
+    with pytest.raises(ConfigError) as ei:
+        load_sim_config(p)
+    return ei.value.problems
+
+
+BASE = """\
+gas: helium
+volumes:
+  cell: {volume: 12 cm^3}
+  small: {volume: 8 cm^3}
+valves:
+  inlet: {role: inlet, between: [supply, cell]}
+  vent: {role: vent, between: [cell, ambient]}
+  exp: {role: expansion, between: [cell, small]}
+"""
+
+
+def test_base_is_valid(tmp_path):
+    p = tmp_path / "ok.yaml"
+    p.write_text(BASE, encoding="utf-8")
+    assert load_sim_config(p).expansion_volumes() == {"exp": "small"}
+
+
+def test_unknown_key_located(tmp_path):
+    probs = _problems(tmp_path, BASE + "colour: blue\n")
+    assert [(p.line, p.col) for p in probs] == [(9, 1)]
+    assert "unknown key 'colour'" in probs[0].message
+
+
+def test_wrong_unit_located(tmp_path):
+    probs = _problems(tmp_path, BASE.replace("small: {volume: 8 cm^3}", "small: {volume: 8 bar}"))
+    assert len(probs) == 1 and probs[0].line == 4
+    assert "volume" in probs[0].message
+
+
+def test_negative_volume_located(tmp_path):
+    probs = _problems(tmp_path, BASE.replace("cell: {volume: 12 cm^3}", "cell: {volume: -12 cm^3}"))
+    assert len(probs) == 1 and probs[0].line == 3
+    assert "positive" in probs[0].message
+
+
+def test_unknown_node_located(tmp_path):
+    probs = _problems(tmp_path, BASE.replace("between: [cell, small]", "between: [cell, smal]"))
+    lines = {p.line for p in probs}
+    assert 8 in lines
+    assert any("unknown node 'smal'" in p.message for p in probs)
+    assert str(probs[0]).startswith(str(tmp_path / "bad.yaml") + ":8:")
+
+
+def test_fault_needs_its_fields(tmp_path):
+    probs = _problems(tmp_path, BASE + "faults:\n  - {kind: valve_leak, valve: exp, at: 10 s}\n")
+    assert probs[0].line == 10 and "conductance" in probs[0].message
+
+
+def test_sample_must_fit_the_cell(tmp_path):
+    probs = _problems(tmp_path, BASE + "sample: {solid_volume: 13 cm^3}\n")
+    assert probs[0].line == 9 and "smaller than the cell" in probs[0].message
