@@ -7,12 +7,12 @@ import time
 
 import numpy as np
 import pytest
-from sim_helpers import closed, fill, make
 
 from pycnoctl.drivers.clock import Clock
 from pycnoctl.sim.bench import SimBench
 from pycnoctl.sim.clock import SimClock
 from pycnoctl.sim.sensors import SensorModel
+from pycnoctl.sim.testing import closed, fill, make
 
 
 def _pressure_cfg(**p):

@@ -7,12 +7,12 @@ import math
 import numpy as np
 import pytest
 import scipy.constants as sc
-from sim_helpers import closed, fill, make
 
 from pycnoctl.controller.gas import get_gas
 from pycnoctl.controller.volume import expansion_pressure
 from pycnoctl.sim.bench import SimBench
 from pycnoctl.sim.physics import GasNetwork, Link, Node, critical_pressure_ratio, nozzle_mass_flow
+from pycnoctl.sim.testing import closed, fill, make
 
 HE = get_gas("helium")
 IDEAL = get_gas("ideal")

@@ -5,7 +5,6 @@ from __future__ import annotations
 import math
 
 import pytest
-from sim_helpers import make
 
 from pycnoctl.drivers.base import (
     Barometer,
@@ -19,6 +18,7 @@ from pycnoctl.drivers.base import (
 from pycnoctl.drivers.instrument import Instrument
 from pycnoctl.drivers.simulated import build_sim_instrument
 from pycnoctl.sim.config import shipped_configs
+from pycnoctl.sim.testing import make
 
 
 def test_instrument_from_clean_config():

@@ -1,4 +1,4 @@
-"""Shared helpers for the simulator tests: configs derived from the shipped clean bench."""
+"""Helpers for tests and quick experiments: configs derived from the shipped clean bench."""
 
 from __future__ import annotations
 
