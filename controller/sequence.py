@@ -23,12 +23,10 @@ from __future__ import annotations
 
 import importlib.resources
 import math
-import re
 from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-import yaml
 from pydantic import (
     BaseModel,
     BeforeValidator,
@@ -52,8 +50,6 @@ from pycnoctl.controller.yamlio import MAX_BYTES, ConfigError, Document, Loc, Pr
 
 FORMAT = "pycnoctl-sequence/1"
 
-# PyYAML counts these as line breaks in its marks
-_YAML_BREAK = re.compile("\r\n|[\r\n\x85\u2028\u2029]")
 
 #: Kinds whose cycles fill the cell and expand into an expansion volume.
 EXPANDING_KINDS = ("measure", "calibrate")
@@ -194,7 +190,7 @@ def settle_rules(v: dict[str, Any]) -> list[tuple[Loc, Loc, str]]:
 
 
 class SettleOverride(_Strict):
-    """The keys a settle_filled / settle_expanded block may set (all optional)."""
+    """The keys a settle_filled / settle_expanded / settle_baseline block may set (all optional)."""
 
     window: Duration | None = Field(None, gt=0)
     max_drift: DriftLimit | None = None
@@ -295,7 +291,8 @@ class SampleDefaults(_Strict):
 class Sequence(_Strict):
     """A validated sequence; all values SI floats (pressures gauge, Pa).
 
-    ``settle_filled`` and ``settle_expanded`` are the *effective* settles: ``settle`` with the
+    ``settle_filled``, ``settle_expanded`` and ``settle_baseline`` (the vented system closed before each
+    fill) are the *effective* settles: ``settle`` with the
     keys written in the file's override block replacing its own.
     """
 
@@ -310,6 +307,7 @@ class Sequence(_Strict):
     # None -> validated into a copy of settle (validate_default runs the merge below)
     settle_filled: Settle = Field(None, validate_default=True)  # type: ignore[assignment]
     settle_expanded: Settle = Field(None, validate_default=True)  # type: ignore[assignment]
+    settle_baseline: Settle = Field(None, validate_default=True)  # type: ignore[assignment]
     expand: Expand = Field(default_factory=Expand)
     vent: Vent = Field(default_factory=Vent)
     cycles: Cycles = Field(default_factory=Cycles)
@@ -328,7 +326,7 @@ class Sequence(_Strict):
         except UnknownGas:
             raise _err("gas", f"unknown gas {v!r}; choose one of: {', '.join(GASES)}") from None
 
-    @field_validator("settle_filled", "settle_expanded", mode="before")
+    @field_validator("settle_filled", "settle_expanded", "settle_baseline", mode="before")
     @classmethod
     def _merge_settle(cls, v: Any, info: ValidationInfo) -> Any:
         """Effective settle = the base settle with the override's keys replacing its own."""
@@ -451,7 +449,7 @@ def _section_rules(data: Any) -> list[Rule]:
     base = _partial(Settle, data.get("settle") if data.get("settle") is not None else {})
     if isinstance(data.get("settle"), dict):
         out.extend((("settle", *loc), msg) for loc, _, msg in settle_rules(base))
-    for key in ("settle_filled", "settle_expanded"):
+    for key in ("settle_filled", "settle_expanded", "settle_baseline"):
         raw = data.get(key)
         if not isinstance(raw, dict) or not raw:
             continue
@@ -507,17 +505,6 @@ def _positioned(doc: Document, exc: ValidationError) -> list[Problem]:
     return out
 
 
-def _reader_problem(path: str | Path, exc: yaml.reader.ReaderError) -> Problem:
-    """Position a character PyYAML refuses (NUL, other control characters) that yamlio lets escape."""
-    text = Path(path).read_bytes().decode("utf-8", errors="replace")
-    i = min(max(exc.position, 0), len(text))
-    breaks = list(_YAML_BREAK.finditer(text, 0, i))  # count lines as PyYAML marks do
-    line = len(breaks) + 1
-    col = i - (breaks[-1].end() if breaks else 0) + 1
-    ch = exc.character if isinstance(exc.character, int) else ord(str(exc.character)[:1] or "\0")
-    return Problem(str(path), line, col, f"character U+{ch:04X} is not allowed in YAML")
-
-
 def load_sequence(path: str | Path) -> Sequence:
     """Load and check a sequence file; raises ConfigError listing every problem with file:line:col.
 
@@ -528,16 +515,7 @@ def load_sequence(path: str | Path) -> Sequence:
             before = fh.read(MAX_BYTES + 1)
     except OSError:
         before = None  # load_file reports the unreadable file
-    try:
-        doc = load_file(path)  # strict YAML: size cap, UTF-8, no tags/aliases/duplicates
-    except yaml.reader.ReaderError as exc:
-        raise ConfigError([_reader_problem(path, exc)]) from None
-    except yaml.MarkedYAMLError as exc:  # e.g. a tag on a mapping key, which yamlio constructs unchecked
-        mark = exc.problem_mark or exc.context_mark
-        line, col = (mark.line + 1, mark.column + 1) if mark else (1, 1)
-        raise ConfigError([Problem(str(path), line, col, exc.problem or str(exc))]) from None
-    except yaml.YAMLError as exc:
-        raise ConfigError([Problem(str(path), 1, 1, str(exc))]) from None
+    doc = load_file(path)  # strict YAML: size cap, UTF-8, no tags/aliases/duplicates, positioned reader errors
     problems: list[Problem] = []
     seq: Sequence | None = None
     try:

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 import re
+import tokenize
 from typing import Any
 
 import pint
@@ -88,7 +89,7 @@ def to_quantity(value: Any, default_unit: str, *, difference: bool = False) -> p
     try:
         units = ureg.parse_units(unit) if unit else ureg.dimensionless
     except (pint.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError, TypeError,
-            ValueError, SyntaxError) as exc:
+            ValueError, SyntaxError, ArithmeticError, tokenize.TokenError) as exc:
         raise UnitError(f"{value!r}: unknown unit {unit!r}") from exc
     if difference:
         # a temperature step in degC is a step in K; map offset units onto their delta units

@@ -8,6 +8,7 @@ UTF-8 only, and a size cap.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -93,6 +94,27 @@ def _pos(mark: yaml.Mark) -> tuple[int, int]:
     return mark.line + 1, mark.column + 1
 
 
+#: What PyYAML counts as a line break when it marks positions (YAML 1.1 line-break characters).
+_YAML_BREAK = re.compile("\r\n|[\n\r\x85\u2028\u2029]")
+
+
+def _reader_pos(text: str, exc: BaseException) -> tuple[int, int]:
+    """Position of a reader error (it carries a character offset, not a mark), counted as PyYAML counts."""
+    offset = getattr(exc, "position", None)
+    if not isinstance(offset, int):
+        return 1, 1
+    i = min(max(offset, 0), len(text))
+    breaks = list(_YAML_BREAK.finditer(text, 0, i))
+    return len(breaks) + 1, i - (breaks[-1].end() if breaks else 0) + 1
+
+
+def _reader_message(exc: BaseException) -> str:
+    if isinstance(exc, yaml.reader.ReaderError):
+        ch = exc.character if isinstance(exc.character, int) else ord(str(exc.character)[:1] or "\0")
+        return f"character U+{ch:04X} is not allowed in YAML"
+    return str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+
+
 def _build(node: yaml.Node, loc: Loc, doc: Document, problems: list[Problem], loader: _StrictLoader) -> Any:
     doc.marks[loc] = _pos(node.start_mark)
     if node.tag not in _PLAIN_TAGS:
@@ -102,9 +124,11 @@ def _build(node: yaml.Node, loc: Loc, doc: Document, problems: list[Problem], lo
     if isinstance(node, yaml.MappingNode):
         out: dict[Any, Any] = {}
         for key_node, value_node in node.value:
-            if not isinstance(key_node, yaml.ScalarNode):
+            if not isinstance(key_node, yaml.ScalarNode) or key_node.tag not in _PLAIN_TAGS:
                 line, col = _pos(key_node.start_mark)
-                problems.append(Problem(doc.name, line, col, "keys must be plain scalars"))
+                what = "keys must be plain scalars" if not isinstance(key_node, yaml.ScalarNode) \
+                    else f"tag {key_node.tag!r} is not allowed"
+                problems.append(Problem(doc.name, line, col, what))
                 continue
             key = loader.construct_object(key_node)
             if key in out:
@@ -122,7 +146,12 @@ def _build(node: yaml.Node, loc: Loc, doc: Document, problems: list[Problem], lo
 
 def parse_text(text: str, name: str = "<string>") -> Document:
     """Parse YAML text strictly; raises ConfigError listing every problem found."""
-    loader = _StrictLoader(text)
+    try:
+        loader = _StrictLoader(text)
+    except yaml.YAMLError as exc:  # e.g. a NUL or other non-printable character, found by the reader
+        mark = getattr(exc, "problem_mark", None)
+        line, col = _pos(mark) if mark else _reader_pos(text, exc)
+        raise ConfigError([Problem(name, line, col, _reader_message(exc))]) from None
     try:
         try:
             root = loader.get_single_node()
@@ -131,7 +160,8 @@ def parse_text(text: str, name: str = "<string>") -> Document:
             line, col = _pos(mark) if mark else (1, 1)
             raise ConfigError([Problem(name, line, col, exc.problem or str(exc))]) from None
         except yaml.YAMLError as exc:
-            raise ConfigError([Problem(name, 1, 1, str(exc))]) from None
+            line, col = _reader_pos(text, exc)
+            raise ConfigError([Problem(name, line, col, _reader_message(exc))]) from None
         doc = Document(name, None)
         if root is None:
             raise ConfigError([Problem(name, 1, 1, "the file is empty")])
@@ -167,16 +197,21 @@ def load_file(path: str | Path, max_bytes: int = MAX_BYTES) -> Document:
 def _message(err: dict[str, Any]) -> str:
     loc = ".".join(str(x) for x in err["loc"])
     msg = err["msg"]
-    if err["type"] == "extra_forbidden":
+    if err["type"] == "extra_forbidden" and err["loc"]:
         return f"unknown key {err['loc'][-1]!r}"
     if err["type"] == "missing":
         return f"missing key {err['loc'][-1]!r}" if err["loc"] else "missing value"
     return f"{loc}: {msg}" if loc else msg
 
 
-def _strip_loc(loc: tuple[Any, ...]) -> Loc:
-    """Drop pydantic's discriminator and validator tags so the location matches the YAML path."""
-    return tuple(x for x in loc if not (isinstance(x, str) and "[" in x))
+def _strip_loc(loc: tuple[Any, ...], doc: Document) -> Loc:
+    """Drop pydantic's validator and union tags (never keys of the document) so loc is the YAML path."""
+    out: list[Any] = []
+    for x in loc:
+        if isinstance(x, str) and "[" in x and (*out, x) not in doc.marks:
+            continue
+        out.append(x)
+    return tuple(out)
 
 
 def validate(model: type[M], doc: Document, context: dict[str, Any] | None = None) -> M:
@@ -186,7 +221,7 @@ def validate(model: type[M], doc: Document, context: dict[str, Any] | None = Non
     except ValidationError as exc:
         problems = []
         for err in exc.errors():
-            loc = _strip_loc(tuple(err["loc"]))
+            loc = _strip_loc(tuple(err["loc"]), doc)
             problems.append(doc.problem(loc, _message({**err, "loc": loc})))
         raise ConfigError(problems) from None
 
