@@ -13,6 +13,8 @@ import importlib.util
 import sys
 from collections.abc import Sequence
 
+from pycnoctl.controller.yamlio import ConfigError
+
 # verb -> module that implements it
 VERBS: dict[str, str] = {
     "compute": "pycnoctl.controller.cmd_compute",
@@ -83,6 +85,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     try:
         return int(args.func(args) or 0)
+    except ConfigError as exc:  # problems in an input file: one positioned line each
+        for problem in exc.problems:
+            print(problem, file=sys.stderr)
+        return 2
     except UsageError as exc:
         print(f"pycnoctl {args.verb}: error: {exc}", file=sys.stderr)
         return 2

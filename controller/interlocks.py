@@ -61,6 +61,7 @@ SAMPLE_KINDS = (OVERPRESSURE, RISE_RATE, INVALID_PRESSURISED, STALE, FROZEN, INL
 EXTERNAL_KINDS = (
     "fill_timeout",
     "vent_timeout",
+    "settle_timeout",
     "valve_command_failed",
     "device_error",
     "exception",
