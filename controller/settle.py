@@ -60,6 +60,7 @@ class SettleCriteria:
     drift_k: float = 1.0
     u_p: float | None = None
     fit_interval: float = 1.0  # s of sample time between exponential refits (adaptive rule)
+    hold: float | None = None  # s the drift rule must hold without a break; None -> half the window
 
     def __post_init__(self) -> None:
         if not (self.window > 0 and math.isfinite(self.window)):
@@ -74,6 +75,14 @@ class SettleCriteria:
             raise ValueError(f"need 0 <= min_time <= max_time, got {self.min_time!r}, {self.max_time!r}")
         if not self.fit_interval > 0:
             raise ValueError("fit_interval must be > 0 s")
+        if self.hold is not None and not (self.hold >= 0 and math.isfinite(self.hold)):
+            raise ValueError(f"hold must be a finite number of seconds >= 0, got {self.hold!r}")
+
+    @property
+    def hold_time(self) -> float:
+        """How long the slope must stay under the limit: a window sliding over a turning point (a
+        pressure that rises, peaks and falls again) sees a near-zero slope for a moment only."""
+        return self.window / 2 if self.hold is None else self.hold
 
 
 # ----------------------------------------------------------------------------- exponential fits
@@ -293,6 +302,7 @@ class SettleDetector:
         self._fit_t: float = -math.inf  # sample time of the last exponential fit
         self._sound_tau: float | None = None
         self._threshold: float | None = criteria.max_drift
+        self._quiet_since: float | None = None  # first sample of the current unbroken run under the limit
         self._frozen: tuple[float, float, float, float, str] | None = None  # est, u, drift, u_drift, how
         self._reset_sums(self.t0, math.nan)
 
@@ -395,7 +405,13 @@ class SettleDetector:
 
         elapsed = t - self.t0
         window_full = elapsed >= c.window * (1.0 - 1e-9) and self._n >= 3
-        if window_full and elapsed >= c.min_time and self._check_drift():
+        quiet = window_full and self._check_drift()
+        if not quiet:
+            self._quiet_since = None
+        elif self._quiet_since is None:
+            self._quiet_since = t
+        held = quiet and self._quiet_since is not None and t - self._quiet_since >= c.hold_time * (1.0 - 1e-9)
+        if held and elapsed >= c.min_time:
             self._decide(SettleStatus.SETTLED)
         elif elapsed >= c.max_time:
             self._decide(SettleStatus.TIMED_OUT)

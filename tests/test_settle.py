@@ -129,8 +129,9 @@ def test_fixed_drift_decision_time_matches_model(seed):
     p = model(t, 1.2e5, amp, tau) + rng.normal(0.0, 10.0, t.size)
     det = SettleDetector(SettleCriteria(window, d, 0.0, 120.0, False), t0=0.0)
     assert run(det, t, p) is SettleStatus.SETTLED
-    # the regression slope over [t - w, t] describes the derivative inside the window
-    assert t_star <= det.decided_at <= t_star + window
+    # the regression slope over [t - w, t] describes the derivative inside the window, and the rule
+    # must then hold for hold_time without a break
+    assert t_star <= det.decided_at <= t_star + window + det.criteria.hold_time
     assert abs(det.drift) < d
 
 
@@ -146,8 +147,26 @@ def test_adaptive_decision_time_matches_model(seed):
         SettleCriteria(window, None, 0.0, 200.0, False, drift_k=k, u_p=u_p), t0=0.0
     )
     assert run(det, t, p) is SettleStatus.SETTLED
-    assert t_star <= det.decided_at <= t_star + window
+    assert t_star <= det.decided_at <= t_star + window + det.criteria.hold_time
     assert det.tau is not None
+
+
+def test_turning_point_is_not_taken_for_settled():
+    # A closed, vented volume warms (rise, tau 2 s) while a slower loss pulls it back down (tau 8 s):
+    # the trace peaks and falls. A window centred on the peak has a near-zero slope for a moment;
+    # the hold rule must wait until the fall itself is below the limit (common practice: a settle
+    # decision needs the drift criterion to persist, not just to be crossed once).
+    t = np.arange(0.0, 120.0, DT)
+    p = 1700.0 - 2000.0 * np.exp(-t / 2.0) + 60.0 * (1 - np.exp(-t / 2.0)) * np.exp(-t / 8.0)
+    slope = np.gradient(p, t)
+    d = 0.2
+    det = SettleDetector(SettleCriteria(10.0, d, 0.0, 120.0, False), t0=0.0)
+    assert run(det, t, p) is SettleStatus.SETTLED
+    peak = t[int(np.argmax(p))]
+    assert det.decided_at > peak + 10.0
+    # by the decision the true derivative, not only the window average, is within a few times the limit
+    i = int(round(det.decided_at / DT))
+    assert abs(slope[i]) < 3 * d
 
 
 def test_estimate_is_unbiased_within_its_standard_error():
