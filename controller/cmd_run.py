@@ -1,6 +1,7 @@
 """``pycnoctl run``: one measurement, with a live terminal view and a stored record.
 
-Exit codes: 0 completed, 2 bad input, 3 fault (an interlock or a sequence failure), 4 aborted.
+Exit codes: 0 completed, 2 bad input, 3 fault (an interlock or a sequence failure), 4 aborted,
+5 a leak check that found a leak.
 Ctrl-C aborts into the safe state; the record up to that moment is kept.
 """
 
@@ -97,6 +98,8 @@ def main(args: argparse.Namespace) -> int:
         print(json.dumps(summary, indent=2))
     else:
         print_summary(summary, root / "runs" / summary["run_id"])
+    if summary["status"] == "completed" and summary.get("leak_ok") is False:
+        return 5
     return EXIT.get(summary["status"], 3)
 
 

@@ -82,7 +82,8 @@ class CycleData:
 
     index: int
     volume_name: str
-    baseline: float = math.nan  # zero of the cycle: mean gauge at the end of vent
+    baseline: float = math.nan  # zero of the cycle: settled gauge of the closed, vented system
+    u_baseline: float = math.nan
     ambient: float = math.nan  # Pa absolute at the baseline
     t_ambient: float = math.nan  # K of the gas trapped at baseline
     p1: float = math.nan
@@ -98,6 +99,18 @@ class CycleData:
     fill_time: float = math.nan
     leak_rate: float = math.nan
     flags: list[str] = field(default_factory=list)
+
+
+def settled_u(det: SettleDetector) -> float:
+    """Standard uncertainty of a settled pressure: the window regression's own, plus what is left of
+    the relaxation. An exponential still drifting at dP/dt has |dP/dt|*tau to go (methods: drift
+    criterion); taken as a rectangular bound (divide by sqrt 3), tau from a sound fit of the window,
+    else three windows (the longest time constant a window can resolve)."""
+    fit = det.fit
+    tau = fit.tau if fit is not None and fit.sound else 3.0 * det.criteria.window
+    drift = det.drift if math.isfinite(det.drift) else 0.0
+    u_reg = det.u_estimate if math.isfinite(det.u_estimate) else 0.0
+    return math.hypot(u_reg, abs(drift) * tau / math.sqrt(3.0))
 
 
 class SequenceFault(Exception):
@@ -133,7 +146,9 @@ class RunEngine:
         self._now = 0.0
         self._detector: SettleDetector | None = None
         self._vent_window: list[tuple[float, float, float, float]] = []  # (t, gauge, ambient, temp K)
-        self._baseline = (math.nan, math.nan, math.nan)  # gauge zero, ambient Pa, gas K of the next cycle
+        self._baseline = (math.nan, math.nan, math.nan, math.nan)  # zero, its u, ambient Pa, gas K
+        self.warnings: list[str] = []
+        self._warned: set[str] = set()
         self._temps: list[float] = []
         self._purge_pulse = 0
         self._purge_step = "fill"
@@ -246,7 +261,7 @@ class RunEngine:
     def on_enter_fill(self) -> None:
         base = self._baseline
         self.current = CycleData(index=len(self.cycles) + 1, volume_name=self.volume_name,
-                                 baseline=base[0], ambient=base[1], t_ambient=base[2])
+                                 baseline=base[0], u_baseline=base[1], ambient=base[2], t_ambient=base[3])
         self.cycles.append(self.current)
         self.emit("cycle", {"cycle": self.current.index, "baseline": base[0]})
         # Every expansion volume is shut during the fill; the chosen one opens at expand.
@@ -324,9 +339,9 @@ class RunEngine:
 
     def _step_vent(self, s: Sample) -> None:
         vent = self.seq.vent
-        elapsed = self._elapsed()
-        if elapsed < vent.time:
+        if self._elapsed() < vent.time:
             return
+        elapsed = self._elapsed()
         vented = math.isfinite(s.gauge) and abs(s.gauge) <= vent.baseline_tolerance
         if not vented:
             if elapsed > vent.timeout:
@@ -356,16 +371,24 @@ class RunEngine:
         if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not math.isfinite(det.estimate)):
             raise SequenceFault("settle_timeout", f"the vented system did not settle within {settle.max_time:g} s "
                                 f"(drift {det.drift:.3g} Pa/s) - a leaking inlet or a thermal transient")
+        counts = len(self.cycles) + 1 > self.seq.cycles.discard  # discarded cycles may start unsettled
+        if abs(det.estimate) > self.seq.vent.baseline_tolerance and counts and "baseline" not in self._warned:
+            self._warned.add("baseline")
+            self.warnings.append(
+                f"cycle {len(self.cycles) + 1}: the closed, vented system settled {det.estimate:.0f} Pa above "
+                "ambient - gas cooled by the vent warming up, or a sample giving off gas; a longer vent.time "
+                "lets it reach the wall temperature while still open (the volume stays right either way)")
+            self.emit("warning", {"message": self.warnings[-1]})
         recent = self._vent_window[-20:]
         temps = [w[3] for w in recent if math.isfinite(w[3])]
-        self._baseline = (det.estimate, sum(w[2] for w in recent) / len(recent),
+        self._baseline = (det.estimate, settled_u(det), sum(w[2] for w in recent) / len(recent),
                           sum(temps) / len(temps) if temps else math.nan)
         self._fire("zeroed")
 
     def _step_fill(self, s: Sample) -> None:
         cyc = self.current
         assert cyc is not None
-        target = self._fill_target() + cyc.baseline
+        target = self._fill_target()  # gauge above ambient, as the sequence states it
         if math.isfinite(s.gauge) and s.gauge >= target:
             cyc.fill_time = self._elapsed()
             self._fire("filled")
@@ -398,7 +421,7 @@ class RunEngine:
                                     "or a thermal transient")
             cyc.flags.append(f"unsettled_p{which}")
         temp = sum(self._temps[-20:]) / len(self._temps[-20:]) if self._temps else math.nan
-        values = {"p": det.estimate - cyc.baseline, "u": det.u_estimate, "t": temp,
+        values = {"p": det.estimate - cyc.baseline, "u": settled_u(det), "t": temp,
                   "time": det.elapsed, "drift": det.drift}
         if which == "1":
             cyc.p1, cyc.u_p1, cyc.t1, cyc.settle1_time, cyc.drift1 = values.values()

@@ -22,6 +22,7 @@ class CyclePressures(Protocol):
     index: int
     volume_name: str
     baseline: float
+    u_baseline: float
     ambient: float
     t_ambient: float
     p1: float
@@ -76,11 +77,14 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
     p1, p2 = pa + cyc.p1, pa + cyc.p2
     u_p1 = math.hypot(u_p, cyc.u_p1 if math.isfinite(cyc.u_p1) else 0.0)
     u_p2 = math.hypot(u_p, cyc.u_p2 if math.isfinite(cyc.u_p2) else 0.0)
+    # An error in the cycle's zero shifts both gauge pressures alike: the same as an error in the
+    # initial pressure of the expansion volume with P1, P2 held, which is how the budget takes Pa.
+    u_pa = cyc.u_baseline if math.isfinite(cyc.u_baseline) else 0.0
     t1, t2, ta = _temp(cyc.t1), _temp(cyc.t2), _temp(cyc.t_ambient)
     flags = list(cyc.flags)
     try:
         budget = uncertainty.cycle_volume_budget(
-            p1, p2, pa, chambers.vc, chambers.vr, u_p1=u_p1, u_p2=u_p2, cov_cal=chambers.cov,
+            p1, p2, pa, chambers.vc, chambers.vr, u_p1=u_p1, u_p2=u_p2, u_pa=u_pa, cov_cal=chambers.cov,
             t1=t1, t2=t2, ta=ta, u_t=u_t if t1 is not None else 0.0, gas=gas,
         )
         volume, u_volume = budget.value, budget.combined

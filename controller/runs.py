@@ -136,7 +136,7 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
         "ended_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(ended)),
         "instrument_time_s": t1 - t0,
         "wall_time_s": ended - started,
-        "warnings": list(prepared.warnings),
+        "warnings": list(prepared.warnings) + list(engine.warnings),
         "fault": {"kind": engine.fault_kind, "message": engine.reason} if engine.state == "fault" else None,
         "abort_reason": engine.reason if engine.state == "aborted" else None,
         "cycles": [c.as_dict() for c in cycles],

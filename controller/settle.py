@@ -440,10 +440,11 @@ class SettleDetector:
         self._decided_at = self._t_last
         value, u_value, slope, u_slope = self._regression()
         how = "regression"
-        if self.criteria.extrapolate:
-            fit = self._fit if self._fit_t == self._t_last else self._refit()
-            if fit is not None and fit.sound:
-                value, u_value, how = fit.p_inf, fit.u_p_inf, "extrapolated"
+        # one fit at decision time even without extrapolation: its tau tells how much relaxation
+        # is left beyond the window (the engine adds |drift|*tau to the estimate's uncertainty)
+        fit = self._fit if self._fit_t == self._t_last else self._refit()
+        if self.criteria.extrapolate and fit is not None and fit.sound:
+            value, u_value, how = fit.p_inf, fit.u_p_inf, "extrapolated"
         self._frozen = (value, u_value, slope, u_slope, how)
 
     # -- results -------------------------------------------------------------------------------

@@ -17,6 +17,7 @@ from collections.abc import Mapping
 from pathlib import Path
 
 from pycnoctl.drivers.base import DeviceDisconnected, DeviceError, Reading, Validity
+from pycnoctl.drivers.guarded import GuardedValveBank
 from pycnoctl.drivers.instrument import Chambers, Instrument, Limits, ValveRoles
 from pycnoctl.sim.bench import SensorSample, SimBench
 from pycnoctl.sim.clock import SimClock
@@ -183,12 +184,13 @@ def build_sim_instrument(
     cfg = config if isinstance(config, SimConfig) else load_sim_config(config)
     bench = SimBench(cfg, SimClock(realtime=realtime))
     ins = cfg.instruments
+    roles = _roles(cfg)
     return Instrument(
         name=cfg.name,
-        valves=SimValveBank(bench),
+        valves=GuardedValveBank(SimValveBank(bench), roles=roles),
         pressure=SimPressureSensor(bench),
         clock=bench.clock,
-        roles=_roles(cfg),
+        roles=roles,
         chambers=_chambers(cfg),
         limits=sim_limits(cfg),
         pressure_is_gauge=bench.pressure_is_gauge,

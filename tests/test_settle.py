@@ -165,7 +165,7 @@ def test_turning_point_is_not_taken_for_settled():
     peak = t[int(np.argmax(p))]
     assert det.decided_at > peak + 10.0
     # by the decision the true derivative, not only the window average, is within a few times the limit
-    i = int(round(det.decided_at / DT))
+    i = round(det.decided_at / DT)
     assert abs(slope[i]) < 3 * d
 
 

@@ -21,7 +21,7 @@ def test_default_is_clean_and_in_si():
     assert cfg.volumes["cell"].volume == pytest.approx(12e-6)  # '12 cm^3'
     assert cfg.lab.temperature == pytest.approx(295.15)  # '22 degC'
     assert cfg.supply.set_pressure == pytest.approx(1.4e5)  # '1.4 bar'
-    assert cfg.valves["inlet"].diameter == pytest.approx(0.25e-3)  # '0.25 mm'
+    assert cfg.valves["inlet"].diameter == pytest.approx(0.05e-3)  # '0.05 mm' metering restrictor
 
 
 def _problems(tmp_path, text):

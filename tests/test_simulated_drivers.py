@@ -10,6 +10,7 @@ from pycnoctl.drivers.base import (
     Barometer,
     DeviceDisconnected,
     DeviceError,
+    ForbiddenValveState,
     PressureSensor,
     Thermometer,
     Validity,
@@ -59,11 +60,13 @@ def test_valves_and_read_back_show_commanded_not_stuck_truth():
     assert ins.valves.read_back()["vent"] is False  # a relay board reports its coil
     assert ins.extras["sim"].actual_valves()["vent"] is True  # the seat is stuck open
     with pytest.raises(DeviceError):
-        ins.valves.set_valves({"nonexistent": True})
+        ins.valves.inner.set_valves({"nonexistent": True})  # the board itself
+    with pytest.raises(ForbiddenValveState):
+        ins.valves.set_valves({"nonexistent": True})  # the guard refuses it before the board sees it
 
 
 def test_fill_reading_and_safe_state():
-    ins = build_sim_instrument()
+    ins = build_sim_instrument(make())  # the fast-inlet test bench
     ins.valves.set_valves({"vent": False, "exp_small": False, "exp_large": False, "inlet": True})
     ins.clock.sleep(3.0)
     r = ins.pressure.read()
@@ -112,7 +115,7 @@ def test_out_of_range_reading():
 
 def test_valve_board_disconnect_raises():
     ins = build_sim_instrument(make(faults=[{"kind": "disconnect", "device": "valves", "at": "1 s"}]))
-    ins.valves.set_valves({"inlet": False})
+    ins.valves.set_valves({"inlet": False, "vent": False})
     ins.clock.sleep(1.5)
     with pytest.raises(DeviceDisconnected):
         ins.valves.set_valves({"inlet": True})
