@@ -178,11 +178,11 @@ def sim_limits(cfg: SimConfig) -> Limits:
 
 
 def build_sim_instrument(
-    config: SimConfig | str | Path | None = None, *, realtime: bool = False
+    config: SimConfig | str | Path | None = None, *, realtime: bool = False, speed: float = 1.0
 ) -> Instrument:
     """An Instrument over a fresh simulator bench; ``extras['sim']`` is the bench (the truth)."""
     cfg = config if isinstance(config, SimConfig) else load_sim_config(config)
-    bench = SimBench(cfg, SimClock(realtime=realtime))
+    bench = SimBench(cfg, SimClock(realtime=realtime, speed=speed))
     ins = cfg.instruments
     roles = _roles(cfg)
     return Instrument(

@@ -12,10 +12,17 @@ import time
 
 
 class SimClock:
-    """Simulated time (default) or wall time since construction (``realtime=True``). Thread-safe."""
+    """Simulated time (default) or wall time since construction (``realtime=True``). Thread-safe.
 
-    def __init__(self, start: float = 0.0, *, realtime: bool = False) -> None:
+    ``speed`` scales a real-time clock: 10 runs the simulated instrument ten times faster than the
+    wall clock while it still paces itself (demonstrations, browser tests of the dashboard).
+    """
+
+    def __init__(self, start: float = 0.0, *, realtime: bool = False, speed: float = 1.0) -> None:
+        if not speed > 0:
+            raise ValueError(f"speed must be positive, got {speed!r}")
         self.realtime = realtime
+        self.speed = float(speed)
         self._start = float(start)
         self._t = float(start)
         self._wall0 = time.monotonic()
@@ -23,14 +30,14 @@ class SimClock:
 
     def now(self) -> float:
         if self.realtime:
-            return self._start + (time.monotonic() - self._wall0)
+            return self._start + (time.monotonic() - self._wall0) * self.speed
         return self._t
 
     def sleep(self, dt: float) -> None:
         if dt <= 0:
             return
         if self.realtime:
-            time.sleep(dt)
+            time.sleep(dt / self.speed)
             return
         with self._lock:
             self._t += dt
