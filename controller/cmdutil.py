@@ -17,6 +17,8 @@ def add_instrument_args(p: argparse.ArgumentParser, *, realtime: bool = True) ->
     if realtime:
         p.add_argument("--realtime", action="store_true",
                        help="with --sim: run the simulator in real time instead of as fast as possible")
+        p.add_argument("--speed", type=float, default=1.0, metavar="FACTOR",
+                       help="with --sim --realtime: simulated seconds per wall second (default 1)")
 
 
 def add_data_arg(p: argparse.ArgumentParser) -> None:
@@ -34,7 +36,11 @@ def open_instrument(args: argparse.Namespace, *, default_sim: bool = False) -> I
         if getattr(args, "sim", None) is not None or default_sim:
             from pycnoctl.drivers.simulated import build_sim_instrument
 
-            return build_sim_instrument(args.sim or None, realtime=bool(getattr(args, "realtime", False)))
+            speed = float(getattr(args, "speed", 1.0) or 1.0)
+            if speed <= 0:
+                raise UsageError("--speed: must be positive")
+            return build_sim_instrument(args.sim or None, realtime=bool(getattr(args, "realtime", False)),
+                                        speed=speed)
     except FileNotFoundError as exc:
         raise UsageError(str(exc)) from None
     raise UsageError("name the hardware with --instrument CONFIG, or use --sim [SIMCONFIG]")

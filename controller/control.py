@@ -32,8 +32,13 @@ class Recorder(Protocol):
 class Controller:
     """Acquisition, interlocks and sequencing for one instrument."""
 
-    def __init__(self, instrument: Instrument) -> None:
+    #: Trips after which a reset first reopens the devices (by their stable paths).
+    COMMUNICATION_TRIPS = frozenset({"device_error", "valve_command_failed", "stale", "invalid_pressurised"})
+
+    def __init__(self, instrument: Instrument, *, readback_interval: float = 1.0) -> None:
         self.instrument = instrument
+        self.readback_interval = readback_interval  # s between valve read-backs (board alive, relays right)
+        self._readback_due = -math.inf
         self.monitor = InterlockMonitor(
             instrument.limits, instrument.roles, act=instrument.safe_state, on_trip=self._on_trip
         )
@@ -95,6 +100,22 @@ class Controller:
         self.index += 1
         return Sample(self.index, t, pressure, gauge, self._ambient, self._temp, valves)
 
+    def _check_valves(self, t: float) -> str | None:
+        """Read the relays back now and then: a board that has gone silent, or relays that do not
+        match what was commanded, must not wait for the next valve command to be noticed."""
+        if t < self._readback_due:
+            return None
+        self._readback_due = t + self.readback_interval
+        valves = self.instrument.valves
+        try:
+            back = valves.read_back()
+        except DeviceError as exc:
+            return f"valve board not answering: {exc}"
+        if back is None:
+            return None
+        wrong = sorted(k for k, v in valves.commanded().items() if k in back and back[k] != v)
+        return f"relays disagree with their commands: {', '.join(wrong)}" if wrong else None
+
     def tick(self) -> Sample:
         """One sample through the whole path: sensors -> interlocks -> record -> sequence."""
         s = self.acquire()
@@ -103,6 +124,10 @@ class Controller:
         state = engine.state if engine is not None else "idle"
         trip = self.monitor.observe(Observation(t=s.t, reading=s.pressure, gauge=s.gauge,
                                                 valves=s.valves, phase=state))
+        if trip is None and self.monitor.latched is None:
+            problem = self._check_valves(s.t)
+            if problem is not None:
+                trip = self.monitor.trip_external("device_error", s.t, problem)
         if self.recorder is not None:
             try:
                 self.recorder.sample(s.t, state, engine.cycle_number if engine else None, s.valves,
@@ -117,8 +142,9 @@ class Controller:
             engine.to_fault(trip.kind, trip.message, s.t)
         elif engine is not None and not engine.terminal:
             self._advance(engine, s)
-        self.emit("sample", {"t": s.t, "gauge": s.gauge, "valid": s.pressure.validity.value,
-                             "state": engine.state if engine else "idle", "valves": s.valves})
+        if self.listeners:  # the fast path of a simulated run has none
+            self.emit("sample", {"t": s.t, "gauge": s.gauge, "valid": s.pressure.validity.value,
+                                 "state": engine.state if engine else "idle", "valves": s.valves})
         return s
 
     def _advance(self, engine: RunEngine, s: Sample) -> None:
@@ -178,7 +204,13 @@ class Controller:
         return engine.state
 
     def reset(self) -> bool:
-        """Operator reset of a latched interlock, accepted only once the condition is gone."""
+        """Operator reset of a latched interlock, accepted only once the condition is gone.
+
+        After a communication fault the devices are reopened first (by their stable paths)."""
+        latched = self.monitor.latched
+        if latched is not None and latched.kind in self.COMMUNICATION_TRIPS:
+            result = self.instrument.reconnect()
+            self.emit("reconnect", {"result": result})
         s = self.acquire()
         ok = self.monitor.reset(Observation(t=s.t, reading=s.pressure, gauge=s.gauge,
                                             valves=s.valves, phase="idle"))

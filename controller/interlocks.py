@@ -41,7 +41,7 @@ import logging
 import math
 import struct
 from collections import deque
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -107,6 +107,17 @@ def _slope(t: np.ndarray, p: np.ndarray) -> float:
     tc = t - t.mean()
     den = float(tc @ tc)
     return float(tc @ (p - p.mean())) / den if den > 0 else math.nan
+
+
+def _slope_pairs(pairs: Iterable[tuple[float, float]]) -> float:
+    """Least-squares slope of a few (t, p) pairs in plain Python: on the every-sample path numpy's
+    per-call overhead on three points costs more than the arithmetic."""
+    pts = list(pairs)
+    n = len(pts)
+    mt = sum(t for t, _ in pts) / n
+    mp = sum(p for _, p in pts) / n
+    den = sum((t - mt) ** 2 for t, _ in pts)
+    return sum((t - mt) * (p - mp) for t, p in pts) / den if den > 0 else math.nan
 
 
 @dataclass
@@ -310,8 +321,7 @@ class InterlockMonitor:
         while len(h.rise) > self.rise_samples:
             h.rise.popleft()
         if len(h.rise) == self.rise_samples:
-            arr = np.array(h.rise)
-            rate = _slope(arr[:, 0], arr[:, 1])
+            rate = _slope_pairs(h.rise)
             if math.isfinite(rate) and rate > lim.max_rise_rate:
                 return _Condition(
                     RISE_RATE,

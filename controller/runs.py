@@ -132,6 +132,8 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
         "software": {"name": "pycnoctl", "version": _version()},
         "gas": seq.gas,
         "expansion_volume": prepared.expansion_volume,
+        "expansion_volume_choice": "request" if req.expansion_volume else (
+            "auto" if seq.expand.volume == "auto" else "sequence"),
         "started_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(started)),
         "ended_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(ended)),
         "instrument_time_s": t1 - t0,
@@ -190,6 +192,13 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
     recorder = RunRecorder(root, run_id, inst.valves.valve_names,
                            meta={"sample_id": req.sample_id, "sequence": seq.name, "operator": req.operator,
                                  "expansion_volume": prepared.expansion_volume})
+    cal_use = None
+    if seq.kind == "measure":  # compute with the latest calibration of this volume and gas; warn on mismatch
+        from pycnoctl.controller.calib_workflow import use_latest_calibration
+
+        cal_use = use_latest_calibration(inst, catalog, expansion_volume=prepared.expansion_volume, gas=seq.gas,
+                                         fill_target=seq.fill.target)
+        prepared.warnings.extend(cal_use.warnings)
     engine = RunEngine(seq, inst, expansion_volume=prepared.expansion_volume)
     started, t0 = time.time(), inst.clock.now()
     for w in prepared.warnings:
@@ -206,6 +215,12 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
         summary = summarize(run_id, prepared, engine, inst, started=started, ended=time.time(),
                             t0=t0, t1=inst.clock.now())
         try:
+            if cal_use is not None:
+                late = cal_use.after_run(summary)
+                for w in late:
+                    recorder.event("warning", inst.clock.now(), w)
+                summary["warnings"].extend(late)
+                summary["calibration"]["record"] = _jsonable(cal_use.describe())
             recorder.write_cycles([_cycle_record(c) for c in summary["cycles"]])
             recorder.write_summary(
                 sequence=summary["sequence"], sequence_text=seq.raw_text or "",

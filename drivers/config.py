@@ -26,10 +26,10 @@ from pydantic import (
 )
 
 from pycnoctl.controller import units, yamlio
-from pycnoctl.drivers.base import DeviceError, PressureSensor, Thermometer, ValveBank
+from pycnoctl.drivers.base import PressureSensor, Thermometer, ValveBank
 from pycnoctl.drivers.clock import Clock, WallClock
 from pycnoctl.drivers.gauge_ascii import AsciiGauge, GaugeFormat
-from pycnoctl.drivers.guarded import GuardedValveBank, safe_state, violations
+from pycnoctl.drivers.guarded import GuardedValveBank, violations
 from pycnoctl.drivers.instrument import Chambers, Instrument, Limits, ValveRoles
 from pycnoctl.drivers.relay_ascii import AsciiRelayBoard, Channel, FrameTemplate, RelayCommands, unescape
 from pycnoctl.drivers.transports import SerialTransport, Transport, VisaTransport
@@ -597,23 +597,5 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Clock | None = None, sim_b
 
 
 def reconnect_instrument(inst: Instrument) -> dict[str, str | None]:
-    """Operator reset after a communication fault: reopen every device by its (stable) path,
-    then assert the safe state.  Returns role -> None (ok) or the error text; never raises."""
-    result: dict[str, str | None] = {}
-    for role in ("valves", "pressure", "thermometer", "barometer"):
-        dev = getattr(inst, role)
-        fn = getattr(dev, "reconnect", None) if dev is not None else None
-        if fn is None:
-            continue
-        try:
-            fn()
-            result[role] = None
-        except DeviceError as exc:
-            result[role] = str(exc)
-    try:
-        safe_state(inst.valves, inst.roles)
-    except DeviceError as exc:
-        result["safe_state"] = str(exc)
-    else:
-        result["safe_state"] = None
-    return result
+    """Operator reset after a communication fault (see Instrument.reconnect); never raises."""
+    return inst.reconnect()

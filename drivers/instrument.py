@@ -106,6 +106,23 @@ class Instrument:
             return False
         return True
 
+    def reconnect(self) -> dict[str, str | None]:
+        """Operator reset after a communication fault: reopen each device that can (by its stable
+        path), then assert the safe state. Returns role -> None (ok) or the error; never raises."""
+        result: dict[str, str | None] = {}
+        for role in ("valves", "pressure", "thermometer", "barometer"):
+            dev = getattr(self, role)
+            fn = getattr(dev, "reconnect", None) if dev is not None else None
+            if fn is None:
+                continue
+            try:
+                fn()
+                result[role] = None
+            except DeviceError as exc:
+                result[role] = str(exc)
+        result["safe_state"] = None if self.safe_state() else "safe state not confirmed"
+        return result
+
     def close(self) -> None:
         """Safe state, then release every device (errors on release are logged, not raised)."""
         self.safe_state()

@@ -1,0 +1,182 @@
+"""Full-stack figures for the sequence engine on the simulator.
+
+1. speed: a standard 8-cycle grain-volume run with purge on the clean simulated instrument, the
+   whole stack (drivers, interlocks, state machine, settle detection, run record, catalog):
+   simulated seconds per wall second, and ticks per second.
+2. settle detection against a fixed-wait settle at equal accuracy: instrument time to a result.
+3. interlock reaction when the regulator fails: samples from the first sample over the limit to
+   the trip, the wall time from taking that reading to the safe-state command (p99, max), and the
+   peak pressure against the limit.
+
+Run: python bench/bench_engine.py [--repeat N] [--events N]
+"""
+
+from __future__ import annotations
+
+import argparse
+import copy
+import logging
+import statistics
+import tempfile
+import time
+from pathlib import Path
+
+import yaml
+
+from pycnoctl.controller.catalog import Catalog
+from pycnoctl.controller.control import Controller
+from pycnoctl.controller.runs import RunRequest, execute, prepare
+from pycnoctl.controller.sequence import resolve_sequence
+from pycnoctl.drivers.simulated import build_sim_instrument
+from pycnoctl.sim.config import config_from_dict, shipped_configs
+
+
+def run_once(seq: str | Path, sim: object = None) -> tuple[dict, float]:
+    inst = build_sim_instrument(sim)
+    truth = inst.extras["sim"].config.sample.solid_volume
+    with tempfile.TemporaryDirectory() as tmp:
+        cat = Catalog(Path(tmp) / "c.sqlite")
+        controller = Controller(inst)
+        prepared = prepare(RunRequest(seq), inst)
+        w0 = time.perf_counter()
+        summary = execute(prepared, controller, root=Path(tmp) / "runs", catalog=cat)
+        wall = time.perf_counter() - w0
+        summary["ticks"] = controller.index
+        cat.close()
+    inst.close()
+    summary["truth_cm3"] = truth * 1e6
+    return summary, wall
+
+
+def speed(repeat: int) -> None:
+    print("== full-stack speed: grain-volume (purge + 8 cycles), clean simulator")
+    ratios, rates = [], []
+    for _ in range(repeat):
+        s, wall = run_once("grain-volume")
+        ratios.append(s["instrument_time_s"] / wall)
+        rates.append(s["ticks"] / wall)
+    s_time = s["instrument_time_s"]
+    print(f"   instrument time {s_time:.0f} s; wall {s_time / statistics.median(ratios):.3f} s (median of {repeat})")
+    med = statistics.median(ratios)
+    print(f"   speed ratio: {med:,.0f}x real time (min {min(ratios):,.0f}x, max {max(ratios):,.0f}x)")
+    print(f"   ticks/s: {statistics.median(rates):,.0f}")
+
+
+def _fixed_wait(seconds: float) -> Path:
+    data = yaml.safe_load(resolve_sequence("grain-volume").read_text())
+    for key in ("settle", "settle_filled", "settle_expanded", "settle_baseline"):
+        data[key] = {} if key != "settle" else data["settle"]
+    data["settle"].update({"window": "2 s", "max_drift": "1e9 Pa/s", "min_time": f"{seconds} s",
+                           "max_time": f"{seconds + 1} s"})
+    data["name"] = f"fixed-wait-{seconds:g}"
+    path = Path(tempfile.mkstemp(suffix=".yaml")[1])
+    path.write_text(yaml.safe_dump(data))
+    return path
+
+
+def settle_vs_fixed() -> None:
+    print("== settle detection vs fixed-wait settle (noisy simulator: thermal transients, porous sample)")
+    noisy = shipped_configs()["noisy"]
+    det, _ = run_once("grain-volume", noisy)
+    err_det = abs(det["volume_cm3"] - det["truth_cm3"]) / det["truth_cm3"]
+    print(f"   detector: {det['instrument_time_s']:.0f} s instrument time, error {err_det * 100:.4f} %")
+    found = None
+    for wait in (20, 40, 60, 90, 120, 180, 240, 300, 420):
+        path = _fixed_wait(wait)
+        s, _ = run_once(path, noisy)
+        path.unlink()
+        if s["volume_cm3"] is None:
+            print(f"   fixed {wait:>3} s: {s['status']}")
+            continue
+        err = abs(s["volume_cm3"] - s["truth_cm3"]) / s["truth_cm3"]
+        print(f"   fixed {wait:>3} s: {s['instrument_time_s']:.0f} s instrument time, error {err * 100:.4f} %")
+        if err <= err_det and found is None:
+            found = s["instrument_time_s"]
+    if found:
+        ratio = found / det["instrument_time_s"]
+        print(f"   ratio at equal accuracy: fixed wait takes {ratio:.2f}x the detector's time")
+    else:
+        print("   no fixed wait up to 420 s reached the detector's accuracy")
+
+
+def interlock_reaction(events: int) -> None:
+    print(f"== overpressure interlock, regulator failing to cylinder pressure ({events} runs, failure times varied)")
+    base = yaml.safe_load(shipped_configs()["regulator_failure"].read_text())
+    base.setdefault("limits", {})["max_rise_rate"] = "1e9 Pa/s"  # let overpressure, not rate of rise, act
+    samples_late, react_ms, overshoot, kinds = [], [], [], {}
+    for i in range(events):
+        data = copy.deepcopy(base)
+        for f in data.get("faults", []):  # a ruptured regulator: the supply goes to cylinder pressure
+            f["delay"] = f"{0.05 + 0.013 * i:.3f} s"
+            f["rate"] = "50 bar/s"
+        inst = build_sim_instrument(config_from_dict(data))
+        lim = inst.limits.max_pressure
+        act = inst.safe_state
+        stamp: dict[str, float] = {}
+
+        def timed_act(act=act, stamp=stamp) -> bool:
+            stamp["act"] = time.perf_counter()
+            return act()
+
+        controller = Controller(inst)
+        controller.monitor._act = timed_act  # measure when the safe state is commanded
+        read = inst.pressure.read
+
+        def timed_read(read=read, stamp=stamp):
+            stamp["read"] = time.perf_counter()
+            return read()
+
+        inst.pressure.read = timed_read  # type: ignore[method-assign]
+        prepared = prepare(RunRequest("quick-demo"), inst)
+        from pycnoctl.controller.engine import RunEngine
+
+        engine = RunEngine(prepared.sequence, inst, expansion_volume=prepared.expansion_volume)
+        controller.start(engine)
+        first_over = None
+        peak = prev = 0.0
+        step_rise = 0.0
+        while not engine.terminal and inst.clock.now() < 600:
+            s = controller.tick()
+            if s.gauge == s.gauge:
+                peak = max(peak, s.gauge)
+                if first_over is None and s.gauge > lim:
+                    first_over, step_rise = s.index, s.gauge - prev
+                prev = s.gauge
+            inst.clock.sleep(inst.sample_period)
+        trip = controller.monitor.latched
+        inst.close()
+        kinds[trip.kind if trip else engine.state] = kinds.get(trip.kind if trip else engine.state, 0) + 1
+        if trip is None or trip.kind != "overpressure" or first_over is None:
+            continue
+        samples_late.append(trip.sample_index + 1 - first_over)
+        react_ms.append((stamp["act"] - stamp["read"]) * 1e3)
+        overshoot.append((peak - lim, step_rise))
+    print(f"   outcomes: {kinds}")
+    if not react_ms:
+        print("   no overpressure trips")
+        return
+    react_ms.sort()
+    p99 = react_ms[min(len(react_ms) - 1, int(0.99 * len(react_ms)))]
+    print(f"   trips: {len(react_ms)}; samples after the first over-limit sample: max {max(samples_late)}")
+    print(f"   reading -> safe-state command: p99 {p99:.3f} ms, max {react_ms[-1]:.3f} ms")
+    over = [o for o, _ in overshoot]
+    ratio = max(o / r for o, r in overshoot if r > 0)
+    print(f"   peak above the limit: median {statistics.median(over):.0f} Pa, max {max(over):.0f} Pa; "
+          f"largest overshoot / rise of the tripping sample: {ratio:.2f} (<= 1: within one sample's rise)")
+
+
+def main() -> None:
+    logging.disable(logging.CRITICAL)  # the trips are the point here, not their log lines
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--repeat", type=int, default=5)
+    ap.add_argument("--events", type=int, default=100)
+    ap.add_argument("--skip-settle", action="store_true")
+    args = ap.parse_args()
+    speed(args.repeat)
+    if not args.skip_settle:
+        settle_vs_fixed()
+    interlock_reaction(args.events)
+
+
+if __name__ == "__main__":
+    main()
