@@ -34,7 +34,7 @@ from typing import Any, Protocol
 import numpy as np
 
 from pycnoctl.controller.calibration import CalibrationError, CalibrationFit, chi2_quantile, sphere_volume
-from pycnoctl.controller.catalog import Catalog, CalibrationRecord
+from pycnoctl.controller.catalog import CalibrationRecord, Catalog
 from pycnoctl.controller.units import UnitError, parse_duration, parse_length, parse_volume
 from pycnoctl.controller.volume import VolumeError, expansion_ratio
 from pycnoctl.drivers.instrument import ChamberCalibration, Instrument
@@ -330,6 +330,7 @@ def record_for(fit: CalibrationFit, name: str, spheres: Sequence[Sphere], points
                  "chi2_limit": chi2_quantile(1.0 - alpha, fit.dof) if fit.dof > 0 else None,
                  "a": fit.a, "b": fit.b, "cov_ab": fit.cov_ab.tolist(), "n_points": fit.n_runs,
                  "sequence": sequence.name, "fill_target_pa": sequence.fill.target, "run_ids": list(run_ids),
+                 "fill_pressure_range_pa": [min(p.p1 - p.pa for p in points), max(p.p1 - p.pa for p in points)],
                  "method": "GLS of y = Vg/Vr on the inserted volume, sphere errors correlated per step"},
     )
 
@@ -474,12 +475,15 @@ class CalibrationUse:
         t1s = [c["t1_k"] for c in kept if c.get("t1_k") is not None]
         target_warned = any("fill pressure" in w for w in self.warnings)
         if p1s and r.fill_pressure and not target_warned:
+            # The settled P1 depends on the load (a fuller cell fills faster and cools more after the
+            # fill), so a run is compared with the range of P1 the calibration itself saw.
             p1 = float(np.mean(p1s))
-            rel = p1 / r.fill_pressure - 1.0
-            if abs(rel) > self.policy.fill_tolerance:
-                out.append(f"fill pressure {p1 / 1e5:.4f} bar differs from the calibration's {r.fill_pressure / 1e5:.4f}"
-                           f" bar by {100 * rel:+.1f} % (tolerance {100 * self.policy.fill_tolerance:g} %): "
-                           "non-ideality no longer cancels; calibrate at the run's fill pressure")
+            lo, hi = (r.payload or {}).get("fill_pressure_range_pa") or (r.fill_pressure, r.fill_pressure)
+            tol = self.policy.fill_tolerance
+            if not lo * (1.0 - tol) <= p1 <= hi * (1.0 + tol):
+                seen = f"{lo / 1e5:.4f} bar" if lo == hi else f"{lo / 1e5:.4f}-{hi / 1e5:.4f} bar"
+                out.append(f"fill pressure {p1 / 1e5:.4f} bar lies outside the calibration's {seen} by more than "
+                           f"{100 * tol:g} %: non-ideality no longer cancels; calibrate at the run's fill pressure")
         if t1s and r.temperature:
             dt = float(np.mean(t1s)) - r.temperature
             if abs(dt) > self.policy.temperature_tolerance:
