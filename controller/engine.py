@@ -164,20 +164,10 @@ class RunEngine:
             auto_transitions=False,
             queued=True,
             after_state_change="_after_state_change",
-            on_exception="_on_exception",
         )
-        self._pending_exc: BaseException | None = None
 
     # ----- machine plumbing -------------------------------------------------------------------
     state: str  # set by transitions
-
-    def _on_exception(self, event: Any) -> None:
-        """Invalid triggers are programming slips: log them; anything else goes to the controller."""
-        exc = event.error
-        if isinstance(exc, MachineError):
-            log.error("ignored invalid trigger in state %s: %s", self.state, exc)
-            return
-        self._pending_exc = exc
 
     def _after_state_change(self) -> None:
         self.t_state = self._now
@@ -209,10 +199,14 @@ class RunEngine:
         self.instrument.valves.set_valves(states)
 
     def _fire(self, trigger: str) -> None:
-        getattr(self, trigger)()
-        if self._pending_exc is not None:
-            exc, self._pending_exc = self._pending_exc, None
-            raise exc
+        """Fire a trigger. An invalid one is a programming slip: logged, the state stays. Anything an
+        entry callback raises (a refused or failed valve command) goes up to the controller, which
+        trips; the machine then already stands in the new state, which is why faults are reachable
+        from every state."""
+        try:
+            self.machine.events[trigger].trigger(self)
+        except MachineError as exc:
+            log.error("ignored invalid trigger %r in state %s: %s", trigger, self.state, exc)
 
     # ----- public control ---------------------------------------------------------------------
     def begin(self, t: float) -> None:
