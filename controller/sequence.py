@@ -46,7 +46,7 @@ from pydantic_core import PydanticCustomError
 
 from pycnoctl.controller import units
 from pycnoctl.controller.gas import GASES, UnknownGas, get_gas
-from pycnoctl.controller.yamlio import MAX_BYTES, ConfigError, Document, Loc, Problem, load_file
+from pycnoctl.controller.yamlio import MAX_BYTES, ConfigError, Document, Loc, Problem, load_file, parse_text
 
 FORMAT = "pycnoctl-sequence/1"
 
@@ -505,17 +505,7 @@ def _positioned(doc: Document, exc: ValidationError) -> list[Problem]:
     return out
 
 
-def load_sequence(path: str | Path) -> Sequence:
-    """Load and check a sequence file; raises ConfigError listing every problem with file:line:col.
-
-    The returned model keeps ``path``, ``raw_text`` (exactly the text that was validated) and ``doc``.
-    """
-    try:
-        with open(path, "rb") as fh:
-            before = fh.read(MAX_BYTES + 1)
-    except OSError:
-        before = None  # load_file reports the unreadable file
-    doc = load_file(path)  # strict YAML: size cap, UTF-8, no tags/aliases/duplicates, positioned reader errors
+def _validated(doc: Document) -> Sequence:
     problems: list[Problem] = []
     seq: Sequence | None = None
     try:
@@ -527,6 +517,32 @@ def load_sequence(path: str | Path) -> Sequence:
     if problems or seq is None:
         unique = {_problem_key(p): p for p in problems}
         raise ConfigError(sorted(unique.values(), key=_problem_key))
+    return seq
+
+
+def sequence_from_text(text: str, name: str = "<stored sequence>") -> Sequence:
+    """A sequence from its text, checked exactly like a file (a run record keeps the text it ran)."""
+    if len(text.encode("utf-8")) > MAX_BYTES:
+        raise ConfigError([Problem(name, 1, 1, f"sequence text is larger than {MAX_BYTES} bytes")])
+    doc = parse_text(text, name)
+    seq = _validated(doc)
+    seq._raw_text = text
+    seq._doc = doc
+    return seq
+
+
+def load_sequence(path: str | Path) -> Sequence:
+    """Load and check a sequence file; raises ConfigError listing every problem with file:line:col.
+
+    The returned model keeps ``path``, ``raw_text`` (exactly the text that was validated) and ``doc``.
+    """
+    try:
+        with open(path, "rb") as fh:
+            before = fh.read(MAX_BYTES + 1)
+    except OSError:
+        before = None  # load_file reports the unreadable file
+    doc = load_file(path)  # strict YAML: size cap, UTF-8, no tags/aliases/duplicates, positioned reader errors
+    seq = _validated(doc)
     try:
         after = Path(path).read_bytes()
     except OSError:

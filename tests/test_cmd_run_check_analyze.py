@@ -1,0 +1,144 @@
+"""The run, check and analyze verbs end to end, through the CLI entry point and as processes."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+from pycnoctl.controller.cli import main
+from pycnoctl.controller.records import load_run
+from pycnoctl.controller.volume import expansion_ratio
+from pycnoctl.sim.config import shipped_configs
+
+PYCNOCTL = [sys.executable, "-m", "pycnoctl.controller.cli"]
+
+
+def run_json(capsys, *args: str) -> tuple[int, dict]:
+    code = main(["run", *args, "--json"])
+    return code, json.loads(capsys.readouterr().out)
+
+
+def test_run_json_has_the_documented_fields(tmp_path, capsys):
+    code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path), "--mass", "19.62 g",
+                         "--sample", "AL-0417")
+    assert code == 0 and out["status"] == "completed"
+    for key in ("volume_cm3", "volume_u_cm3", "density_g_cm3", "cycles", "fault"):
+        assert key in out
+    assert out["fault"] is None
+    assert out["density_g_cm3"] == pytest.approx(19.62 / out["volume_cm3"], rel=1e-9)
+    assert {"p1_gauge_pa", "p2_gauge_pa", "volume_cm3"} <= set(out["cycles"][0])
+    assert (tmp_path / "runs" / out["run_id"] / "trace.csv").exists()
+
+
+def test_run_exit_code_on_fault(tmp_path, capsys):
+    code, out = run_json(capsys, "quick-demo", "--sim", str(shipped_configs()["regulator_failure"]),
+                         "--data", str(tmp_path))
+    assert code == 3 and out["status"] == "fault"
+    assert out["fault"]["kind"] == "rise_rate" and out["volume_cm3"] is None
+
+
+def test_run_refuses_a_bad_sequence_with_positions_and_touches_nothing(tmp_path, capsys):
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("format: pycnoctl-sequence/1\nname: x\nkind: measure\nfill:\n  target: 1.3 kg\n"
+                   "  timeout: 30 s\nexpand: {volume: small}\ncycles: {count: 3, discard: 5}\n")
+    code = main(["run", str(bad), "--sim", "--data", str(tmp_path / "data")])
+    err = capsys.readouterr().err
+    assert code == 2
+    lines = [ln for ln in err.splitlines() if ln.startswith(str(bad))]
+    assert any(":5:" in ln and "pressure" in ln for ln in lines)  # '1.3 kg' at line 5
+    assert any(":8:" in ln for ln in lines)  # discard >= count on line 8
+    assert not (tmp_path / "data" / "runs").exists()
+
+
+def test_check_reports_validity_and_expected_duration(capsys):
+    assert main(["check", "quick-demo", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["dry_run"]["status"] == "completed"
+    assert 60 < out["dry_run"]["expected_duration_s"] < 900
+    assert out["dry_run"]["volume_cm3"] == pytest.approx(5.0, rel=2e-3)
+
+
+def test_check_dry_run_fault_and_static_only(capsys):
+    assert main(["check", "grain-volume", "--sim", str(shipped_configs()["leaky"])]) == 3
+    assert "settle_timeout" in capsys.readouterr().out
+    assert main(["check", "grain-volume", "--no-dry-run"]) == 0
+    assert "dry run" not in capsys.readouterr().out
+
+
+def test_check_against_a_hardware_config_opens_no_port(capsys):
+    root = Path(__file__).resolve().parents[1]
+    cfg = root / "drivers" / "instruments" / "usb-relay-serial-gauge.yaml"
+    assert main(["check", "quick-demo", "--instrument", str(cfg), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["dry_run"]["status"] == "completed"
+
+
+def test_analyze_reproduces_the_stored_run_and_applies_a_new_calibration(tmp_path, capsys):
+    code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
+    rid = out["run_id"]
+    assert main(["analyze", rid, "--data", str(tmp_path), "--json"]) == 0
+    re = json.loads(capsys.readouterr().out)
+    assert re["volume_cm3"] == out["volume_cm3"]  # same samples, same rules: the same number
+    assert [c["volume_cm3"] for c in re["cycles"]] == [c["volume_cm3"] for c in out["cycles"]]
+    # a newer calibration: Vs = Vc - Vr * y with the recorded pressures (methods: working equation)
+    assert main(["analyze", rid, "--data", str(tmp_path), "--json", "--cell-volume", "12.02 cm^3",
+                 "--expansion-volume", "8.01 cm^3"]) == 0
+    newer = json.loads(capsys.readouterr().out)
+    for c_new, c_old in zip(newer["cycles"], out["cycles"], strict=True):
+        y = expansion_ratio(c_old["ambient_pa"] + c_old["p1_gauge_pa"], c_old["ambient_pa"] + c_old["p2_gauge_pa"],
+                            c_old["ambient_pa"], gas="helium", t1=c_old["t1_k"], t2=c_old["t2_k"], ta=c_old["ta_k"])
+        assert c_new["volume_cm3"] == pytest.approx(12.02 - 8.01 * y, rel=1e-9)
+    assert main(["analyze", "R20990101T000000Z-000000", "--data", str(tmp_path)]) == 2
+
+
+def _start(tmp_path: Path, *extra: str) -> subprocess.Popen:
+    env = {**os.environ, "PYTHONUNBUFFERED": "1"}
+    return subprocess.Popen([*PYCNOCTL, "run", "grain-volume", "--sim", "--realtime", "--speed", "40",
+                             "--data", str(tmp_path), "--json", *extra],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env)
+
+
+def _wait_for_rows(tmp_path: Path, rows: int, timeout: float = 30.0) -> Path:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        for trace in (tmp_path / "runs").glob("*/trace.csv") if (tmp_path / "runs").exists() else []:
+            if trace.read_text().count("\n") > rows:
+                return trace.parent
+        time.sleep(0.05)
+    raise AssertionError("the run did not start")
+
+
+def test_ctrl_c_aborts_into_the_safe_state_and_keeps_the_record(tmp_path):
+    proc = _start(tmp_path)
+    folder = _wait_for_rows(tmp_path, 150)
+    proc.send_signal(signal.SIGINT)
+    out, _ = proc.communicate(timeout=30)
+    assert proc.returncode == 4
+    summary = json.loads(out)
+    assert summary["status"] == "aborted"
+    run = load_run(folder)
+    last = {k: run.trace[k][-1] for k in ("state", "valve_inlet", "valve_vent")}
+    assert last == {"state": "aborted", "valve_inlet": 0, "valve_vent": 1}
+    assert run.summary["results"]["status"] == "aborted"
+
+
+def test_sigkill_mid_run_leaves_a_readable_trace_and_a_consistent_catalog(tmp_path):
+    proc = _start(tmp_path)
+    folder = _wait_for_rows(tmp_path, 300)
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.communicate(timeout=10)
+    run = load_run(folder)  # tolerates a torn last line
+    assert run.n_samples >= 300
+    assert run.summary is None  # it never got to write one
+    con = sqlite3.connect(tmp_path / "catalog.sqlite")
+    assert con.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    status = con.execute("SELECT status FROM runs WHERE id = ?", (folder.name,)).fetchone()[0]
+    assert status == "running"  # the next start of the daemon marks it interrupted, never resumes it
+    con.close()
