@@ -81,7 +81,7 @@ def test_check_against_a_hardware_config_opens_no_port(capsys):
 
 
 def test_analyze_reproduces_the_stored_run_and_applies_a_new_calibration(tmp_path, capsys):
-    code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
+    _code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
     rid = out["run_id"]
     assert main(["analyze", rid, "--data", str(tmp_path), "--json"]) == 0
     re = json.loads(capsys.readouterr().out)
