@@ -130,6 +130,9 @@ def render_figure(run: StoredRun, png: Path) -> Path:
             hi = max(v + u, *(q[1] + (q[2] or 0.0) for q in pts))
             cx.set_ylim(lo - 0.15 * (hi - lo), hi + 0.15 * (hi - lo))
         cx.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
+    from matplotlib.ticker import MaxNLocator
+
+    cx.xaxis.set_major_locator(MaxNLocator(integer=True))
     cx.set_xlabel("cycle")
     cx.set_ylabel("volume / cm³")
     png.parent.mkdir(parents=True, exist_ok=True)
