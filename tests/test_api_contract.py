@@ -1,0 +1,225 @@
+"""API contract: what each endpoint returns, against an in-process daemon on the fast simulator.
+
+The simulator's clock runs as fast as the CPU allows here, so a whole quick-demo run takes well
+under a second of wall time.  Physical checks compare with the simulator's own truth (its
+configured solid volume), which is the outside reference for a measurement on the simulator.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+from starlette.testclient import TestClient
+
+from pycnoctl.controller.api import create_app
+from pycnoctl.controller.catalog import is_run_id
+from pycnoctl.controller.daemon import Daemon
+from pycnoctl.controller.records import load_run
+from pycnoctl.controller.security import Policy
+from pycnoctl.controller.sequence import list_shipped
+from pycnoctl.drivers.simulated import build_sim_instrument
+
+BASE = "http://127.0.0.1:8765"
+pytestmark = pytest.mark.filterwarnings("ignore:Using `httpx` with `starlette.testclient`")
+
+
+@pytest.fixture
+def daemon(tmp_path: Path) -> Iterator[Daemon]:
+    inst = build_sim_instrument(None)
+    d = Daemon(inst, tmp_path / "data")
+    d.start()
+    yield d
+    d.stop()
+    d.catalog.close()
+    inst.close()
+
+
+@pytest.fixture
+def client(daemon: Daemon) -> Iterator[TestClient]:
+    with TestClient(create_app(daemon, Policy(port=8765)), base_url=BASE) as c:
+        yield c
+
+
+def wait_status(client: TestClient, run_id: str, want: set[str], timeout: float = 20.0) -> dict:
+    t_end = time.monotonic() + timeout
+    while time.monotonic() < t_end:
+        r = client.get(f"/api/runs/{run_id}").json()
+        if r["status"] in want:
+            return r
+        time.sleep(0.05)
+    raise AssertionError(f"run {run_id} did not reach {want}: {r['status']}")
+
+
+def test_status_describes_the_instrument_and_shows_the_safe_state(client: TestClient, daemon: Daemon) -> None:
+    s = client.get("/api/status").json()
+    assert s["activity"] == "idle" and s["state"] == "idle"
+    inst = s["instrument"]
+    roles = daemon.instrument.roles
+    assert inst["roles"]["inlet"] == roles.inlet and inst["roles"]["vent"] == roles.vent
+    assert inst["roles"]["expansion"] == dict(roles.expansion)
+    # the clean simulator config: 12 cm^3 cell, 8 and 20 cm^3 expansion volumes (sim/configs/clean.yaml)
+    assert inst["chambers"]["cell_cm3"] == pytest.approx(12.0)
+    assert inst["chambers"]["expansion_cm3"] == pytest.approx({"small": 8.0, "large": 20.0})
+    # safe state (safety.md): inlet closed, vent and every expansion valve open - as the daemon reports it
+    time.sleep(0.1)
+    s = client.get("/api/status").json()
+    assert s["valves"] == roles.safe_state()
+    assert s["interlock"] == {"latched": False}
+    assert s["queue"] == {"length": 0, "paused": False, "paused_reason": None}
+    assert s["pressure"]["valid"] == "valid"
+    assert s["loop"]["running"] is True
+
+
+def test_a_queued_run_completes_with_the_simulators_volume(client: TestClient, daemon: Daemon) -> None:
+    r = client.post("/api/runs", json={"sequence": "quick-demo", "sample_id": "TILE-07", "mass": "10.0 g",
+                                       "operator": "demo"})
+    assert r.status_code == 201, r.text
+    out = r.json()
+    rid = out["run_id"]
+    assert is_run_id(rid) and r.headers["location"] == f"/api/runs/{rid}"
+    row = wait_status(client, rid, {"completed", "fault", "aborted"})
+    assert row["status"] == "completed", row
+    truth = daemon.instrument.extras["sim"].config.sample.solid_volume * 1e6  # cm^3, the simulator's truth
+    # the measured volume agrees with the truth within its expanded uncertainty (GUM, k=2)
+    assert abs(row["volume_cm3"] - truth) <= row["volume_u_cm3"]
+    assert row["summary"]["density_g_cm3"] == pytest.approx(10.0 / row["volume_cm3"], rel=1e-9)
+    csv = client.get(f"/api/runs/{rid}/trace.csv")
+    assert csv.status_code == 200 and csv.headers["content-type"].startswith("text/csv")
+    assert csv.text.splitlines()[0].startswith("t,state,cycle")
+    stored = load_run(daemon.data / "runs" / rid)
+    assert stored.n_samples == len(csv.text.splitlines()) - 1
+    summ = client.get(f"/api/runs/{rid}/summary.json").json()
+    assert summ["run_id"] == rid and summ["results"]["status"] == "completed"
+    listed = client.get("/api/runs", params={"sample": "TILE-07"}).json()["runs"]
+    assert [x["run_id"] for x in listed] == [rid]
+    assert client.get("/api/runs", params={"status": "fault"}).json()["runs"] == []
+    last = client.get("/api/status").json()["last_run"]
+    assert last["run_id"] == rid and last["status"] == "completed"
+
+
+def test_sequence_text_is_accepted_and_problems_are_positioned(client: TestClient) -> None:
+    text = list_shipped()["quick-demo"].read_text(encoding="utf-8").replace("count: 3", "count: 2")
+    r = client.post("/api/runs", json={"sequence_text": text, "sample_id": "TEXT-1"})
+    assert r.status_code == 201, r.text
+    row = wait_status(client, r.json()["run_id"], {"completed", "fault", "aborted"})
+    assert row["status"] == "completed"
+    bad = text.replace("count: 2", "count: lots")
+    r = client.post("/api/runs", json={"sequence_text": bad})
+    assert r.status_code == 422
+    problems = r.json()["problems"]
+    line = next(i for i, ln in enumerate(bad.splitlines(), 1) if "count: lots" in ln)
+    assert any(p.startswith(f"<submitted>:{line}:") for p in problems), problems
+
+
+@pytest.mark.parametrize("name", ["/etc/passwd", "../sequences/quick-demo", "quick-demo/../x", "catalog.sqlite",
+                                  "no-such-sequence"])
+def test_sequence_names_are_never_paths(client: TestClient, name: str) -> None:
+    r = client.post("/api/runs", json={"sequence": name})
+    assert r.status_code == 422
+    assert "no shipped sequence" in r.json()["error"]
+
+
+def test_bad_requests_are_refused_before_anything_is_queued(client: TestClient, daemon: Daemon) -> None:
+    for body, code in [({"sequence": "quick-demo", "mass": "-3 g"}, 422),
+                       ({"sequence": "quick-demo", "mass": "3 s"}, 400),
+                       ({"sequence": "quick-demo", "colour": "red"}, 400), ({}, 422),
+                       ({"sequence": "quick-demo", "sequence_text": "x"}, 422), ([1, 2], 400),
+                       ({"sequence": "quick-demo", "expansion_volume": "huge"}, 422)]:
+        r = client.post("/api/runs", json=body)
+        assert r.status_code == code, (body, r.text)
+    assert daemon.catalog.list_runs() == []
+
+
+def test_queue_removal_and_pause(client: TestClient, daemon: Daemon) -> None:
+    assert client.post("/api/queue/pause").json()["paused"] is True
+    rid = client.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
+    q = client.get("/api/queue").json()
+    assert [i["run_id"] for i in q["items"]] == [rid] and q["paused"]
+    time.sleep(0.2)
+    assert client.get(f"/api/runs/{rid}").json()["status"] == "queued"  # paused: not started
+    assert client.delete(f"/api/queue/{rid}").status_code == 200
+    assert client.get(f"/api/runs/{rid}").json()["status"] == "aborted"
+    assert client.delete(f"/api/queue/{rid}").status_code == 409
+    assert client.get("/api/queue").json()["items"] == []
+    rid2 = client.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
+    assert client.post("/api/queue/resume").json()["paused"] is False
+    assert wait_status(client, rid2, {"completed"})["status"] == "completed"
+
+
+def test_reset_refused_with_reason_while_the_condition_lasts(client: TestClient, daemon: Daemon) -> None:
+    assert client.post("/api/abort").status_code == 409  # nothing runs
+    r = client.post("/api/reset")
+    assert r.status_code == 200 and r.json()["message"] == "nothing was latched"
+    # trip an interlock from inside the control thread (as a failing check would), with the sensor gone
+    bench = daemon.instrument.extras["sim"]
+    bench.inject({"kind": "disconnect", "device": "pressure"})
+    daemon.call(lambda c: c.monitor.trip_external("device_error", c.instrument.clock.now(), "test trip"))
+    s = client.get("/api/status").json()
+    assert s["interlock"]["latched"] and s["interlock"]["kind"] == "device_error"
+    assert s["activity"] == "tripped"
+    r = client.post("/api/reset")
+    assert r.status_code == 409
+    assert "not valid" in r.json()["reason"]
+    # a queued run does not start while latched
+    rid = client.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
+    time.sleep(0.2)
+    assert client.get(f"/api/runs/{rid}").json()["status"] == "queued"
+    assert client.delete(f"/api/queue/{rid}").status_code == 200
+
+
+def test_reset_accepted_once_the_condition_is_gone(client: TestClient, daemon: Daemon) -> None:
+    daemon.call(lambda c: c.monitor.trip_external("device_error", c.instrument.clock.now(), "test trip"))
+    time.sleep(0.05)
+    r = client.post("/api/reset")
+    assert r.status_code == 200 and r.json()["message"] == "cleared device_error"
+    assert client.get("/api/status").json()["interlock"] == {"latched": False}
+
+
+def test_openapi_document_and_docs_page(client: TestClient) -> None:
+    spec = client.get("/api/openapi.json").json()
+    assert spec["openapi"].startswith("3.")
+    for path in ("/api/status", "/api/runs", "/api/runs/{run_id}", "/api/runs/{run_id}/trace.csv",
+                 "/api/runs/{run_id}/summary.json", "/api/runs/{run_id}/report", "/api/queue/{run_id}",
+                 "/api/abort", "/api/reset", "/api/events"):
+        assert path in spec["paths"], path
+    assert "post" in spec["paths"]["/api/runs"] and "delete" in spec["paths"]["/api/queue/{run_id}"]
+    page = client.get("/api/docs")
+    assert page.status_code == 200 and "/api/reset" in page.text
+
+
+def test_report_endpoint(client: TestClient, daemon: Daemon) -> None:
+    rid = client.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
+    wait_status(client, rid, {"completed"})
+    r = client.get(f"/api/runs/{rid}/report")
+    if importlib.util.find_spec("pycnoctl.controller.report") is None:
+        assert r.status_code == 404 and "not available" in r.json()["error"]
+    else:
+        assert r.status_code == 200 and r.headers["content-type"].startswith("text/html")
+
+
+def test_dashboard_and_static_files_are_served_locally(client: TestClient) -> None:
+    page = client.get("/")
+    assert page.status_code == 200 and "/static/app.js" in page.text
+    assert "http://" not in page.text and "https://" not in page.text  # no external assets
+    for name in ("app.js", "style.css"):
+        r = client.get(f"/static/{name}")
+        assert r.status_code == 200
+        assert "https://" not in r.text and "//cdn" not in r.text
+    tr = client.get("/api/trace").json()
+    assert len(tr["t"]) == len(tr["gauge_pa"])
+    assert "quick-demo" in client.get("/api/sequences").json()["sequences"]
+
+
+def test_events_are_valid_json_with_no_nan(daemon: Daemon, client: TestClient) -> None:
+    client.post("/api/runs", json={"sequence": "quick-demo"})
+    time.sleep(0.5)
+    items, _ = daemon.bus.since(0, limit=5000)
+    kinds = {k for _, k, _ in items}
+    assert {"queue", "run_started", "state", "sample", "cycle_done", "run_finished"} <= kinds
+    for _, _, data in items:
+        json.dumps(data, allow_nan=False)
