@@ -10,11 +10,15 @@ from __future__ import annotations
 import importlib.util
 import json
 import time
+import warnings
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
-from starlette.testclient import TestClient
+
+with warnings.catch_warnings():  # starlette 1.x nags about httpx; the client works
+    warnings.simplefilter("ignore", DeprecationWarning)
+    from starlette.testclient import TestClient
 
 from pycnoctl.controller.api import create_app
 from pycnoctl.controller.catalog import is_run_id
@@ -25,7 +29,6 @@ from pycnoctl.controller.sequence import list_shipped
 from pycnoctl.drivers.simulated import build_sim_instrument
 
 BASE = "http://127.0.0.1:8765"
-pytestmark = pytest.mark.filterwarnings("ignore:Using `httpx` with `starlette.testclient`")
 
 
 @pytest.fixture
