@@ -25,6 +25,7 @@ VERBS: dict[str, str] = {
     "calibrate": "pycnoctl.controller.cmd_calibrate",
     "runs": "pycnoctl.controller.cmd_runs",
     "show": "pycnoctl.controller.cmd_show",
+    "report": "pycnoctl.controller.cmd_report",
     "serve": "pycnoctl.controller.cmd_serve",
     "submit": "pycnoctl.controller.cmd_client",
     "status": "pycnoctl.controller.cmd_client",

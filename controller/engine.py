@@ -454,7 +454,7 @@ class RunEngine:
             kept = [c for c in self.cycle_results() if c.kept]
             conv = self.seq.cycles.converge
             if self.seq.cycles.stop_on_converge and results.has_converged(
-                [c.volume for c in kept], conv.last, conv.within
+                [c.volume_m3 for c in kept], conv.last, conv.within
             ):
                 self.converged_early = True
 

@@ -142,7 +142,9 @@ def run_result(cycles: Sequence[CycleResult], *, converge: Any = None, mass: flo
     conv = None
     if converge is not None:
         conv = has_converged(vols, converge.last, converge.within)
-    out = stats.outliers(vols) if len(vols) >= 3 else []
+    # a cycle is an outlier only against a spread it could show: the scale is at least the cycles' own u
+    floor = float(np.median([c.u_volume_m3 for c in kept]))
+    out = stats.outliers(vols, floor=floor) if len(vols) >= 3 else []
     res = RunResult(
         n_cycles=len(cycles), n_kept=len(kept), volume_m3=budget.value, sd_m3=st.sd, rsd=st.rsd,
         u_volume_m3=budget.combined, U_volume_m3=budget.expanded, k=budget.k, converged=conv,

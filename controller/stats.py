@@ -63,21 +63,25 @@ def converged(volumes: Sequence[float], *, last_k: int, within_fraction: float) 
     return bool(np.all(np.abs(tail - mean) <= within_fraction * abs(mean)))
 
 
-def robust_z(volumes: Sequence[float]) -> np.ndarray:
+def robust_z(volumes: Sequence[float], *, floor: float = 0.0) -> np.ndarray:
     """Robust z-scores (x - median) / (1.4826 MAD); falls back to the mean absolute deviation about
-    the median when more than half the values coincide (MAD = 0); all zero when every value does."""
+    the median when more than half the values coincide (MAD = 0); all zero when every value does.
+
+    ``floor`` bounds the scale from below: cycles that agree far better than each one can be known
+    (a clean simulator repeats itself to 1e-9) must not make a 1e-8 difference an outlier."""
     x = np.asarray(volumes, dtype=float)
     med = float(np.median(x))
     dev = np.abs(x - med)
     scale = MAD_TO_SIGMA * float(np.median(dev))
     if scale == 0.0:
         scale = MEANAD_TO_SIGMA * float(dev.mean())
+    scale = max(scale, floor)
     if scale == 0.0:
         return np.zeros_like(x)
     return (x - med) / scale
 
 
-def outliers(volumes: Sequence[float], *, z: float = 3.5) -> list[int]:
+def outliers(volumes: Sequence[float], *, z: float = 3.5, floor: float = 0.0) -> list[int]:
     """Indices whose robust z-score (median/MAD rule) exceeds ``z`` in magnitude.
 
     Median and MAD are not dragged by the outlier itself, unlike mean/sd, so one bad cycle in five
@@ -85,4 +89,4 @@ def outliers(volumes: Sequence[float], *, z: float = 3.5) -> list[int]:
     """
     if len(volumes) < 3:
         return []
-    return [int(i) for i in np.flatnonzero(np.abs(robust_z(volumes)) > z)]
+    return [int(i) for i in np.flatnonzero(np.abs(robust_z(volumes, floor=floor)) > z)]

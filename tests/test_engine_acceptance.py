@@ -226,3 +226,17 @@ def test_abort_keeps_the_record_and_the_safe_state(tmp_path):
     assert run.n_samples > 600 and run.trace["state"][-1] == "aborted"
     assert catalog.get_run(summary["run_id"]).status == "aborted"
     assert math.isnan(run.trace["pressure_pa"][0]) is False
+
+
+def test_stop_on_converge_ends_the_run_early(tmp_path):
+    from pycnoctl.controller.sequence import resolve_sequence
+
+    data = yaml.safe_load(resolve_sequence("grain-volume").read_text(encoding="utf-8"))
+    data["cycles"].update({"count": 8, "discard": 2, "stop_on_converge": True,
+                           "converge": {"last": 3, "within": "0.05 %"}})
+    seq = tmp_path / "converge.yaml"
+    seq.write_text(yaml.safe_dump(data), encoding="utf-8")
+    summary, *_ = measure(tmp_path / "run", str(seq))
+    assert summary["status"] == "completed" and summary["converged"] is True
+    assert len(summary["cycles"]) == 5  # two discarded, then three that agree
+    assert summary["outliers"] == []

@@ -60,3 +60,14 @@ def test_outliers_median_mad_rule():
     assert outliers([5.0, 5.0, 5.0, 5.0, 5.3]) == [4]  # MAD = 0 -> mean-absolute-deviation fallback
     assert outliers([5.0, 5.0, 5.0]) == []
     assert outliers([1.0, 9.0]) == []  # too few to judge
+
+
+def test_outliers_need_a_deviation_the_cycles_could_show():
+    # six cycles that agree to 1e-9 cm^3 (a clean simulator) against a per-cycle u of 1.6e-3 cm^3:
+    # without the floor the MAD rule calls the 1e-9 differences outliers (common practice: an outlier
+    # must stand out against the measurement's own uncertainty)
+    a = 4.999941
+    vols = [a, a + 1e-9, a - 1e-9, a + 2e-9, a - 2e-9, a + 2e-8]
+    assert outliers(vols) != []
+    assert outliers(vols, floor=1.6e-3) == []
+    assert outliers([*vols[:5], 5.02], floor=1.6e-3) == [5]
