@@ -12,6 +12,7 @@ With --sim the simulator runs in real time (--speed 10 runs it ten times faster 
 from __future__ import annotations
 
 import argparse
+import signal
 import sys
 import threading
 import time
@@ -65,6 +66,7 @@ def main(args: argparse.Namespace) -> int:
     else:
         instrument = open_instrument(args)
     server: dict[str, Any] = {}
+    caught: list[int] = []
     failure: dict[str, BaseException] = {}
 
     def on_fatal(exc: BaseException) -> None:
@@ -90,6 +92,10 @@ def main(args: argparse.Namespace) -> int:
                 sd_notify("READY=1")
 
         threading.Thread(target=announce, name="announce", daemon=True).start()
+        # uvicorn restores the handlers it found and re-raises the signal it caught after its own
+        # shutdown; ours only note it, so the safe-state shutdown below always runs.
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            signal.signal(sig, lambda signum, frame: caught.append(signum))
         srv.run()
         daemon.stop()
         daemon.catalog.close()
@@ -100,7 +106,7 @@ def main(args: argparse.Namespace) -> int:
         print(f"pycnoctl serve: control loop failed: {failure['exc']!r}; instrument left in the safe state",
               file=sys.stderr)
         return 1
-    return 0
+    return 130 if signal.SIGINT in caught else 0
 
 
 def _url_host(host: str) -> str:
