@@ -115,8 +115,8 @@ class LiveView:
         self.seq = prepared.sequence
         self.expected = estimate_duration(self.seq)
         self.state, self.cycle, self.gauge, self.t0, self.t = "idle", 0, float("nan"), None, 0.0
-        self.last_volume: str = "-"
         self.message = ""
+        self._cycle_t: list[float] = []  # instrument time at each cycle start
         self._live: Any = None
         self._next = 0.0
 
@@ -137,6 +137,7 @@ class LiveView:
             self.state = data["state"]
         elif kind == "cycle":
             self.cycle = data["cycle"]
+            self._cycle_t.append(self.t)
         elif kind == "trip":
             self.message = f"INTERLOCK {data['interlock']}: {data['message']}"
         elif kind == "settled" and data.get("which") == "p2":
@@ -151,12 +152,18 @@ class LiveView:
 
         elapsed = self.t - (self.t0 or self.t)
         table = Table.grid(padding=(0, 2))
+        left = max(self.expected - elapsed, 0.0)
+        if len(self._cycle_t) >= 2 and self.seq.expands:  # measured pace beats the static estimate
+            per_cycle = (self._cycle_t[-1] - self._cycle_t[0]) / (len(self._cycle_t) - 1)
+            left = max(per_cycle * (self.seq.cycles.count - len(self._cycle_t) + 1) - (self.t - self._cycle_t[-1]),
+                       0.0)
         table.add_row("sequence", f"{self.seq.name} ({self.seq.kind})")
         table.add_row("state", f"[bold]{self.state}[/]")
         table.add_row("pressure", f"{self.gauge / 1e5:8.5f} bar gauge" if self.gauge == self.gauge else "invalid")
         if self.seq.expands:
             table.add_row("cycle", f"{self.cycle} of {self.seq.cycles.count}")
-        table.add_row("instrument time", f"{elapsed:7.1f} s (about {max(self.expected - elapsed, 0):.0f} s left)")
+        remaining = f"about {left:.0f} s left" if left > 0 else "estimating time left"
+        table.add_row("instrument time", f"{elapsed:7.1f} s ({remaining})")
         if self.message:
             table.add_row("", self.message)
         return table

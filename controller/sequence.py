@@ -670,7 +670,8 @@ def estimate_duration(seq: Sequence, *, fill_time: float = 5.0, settle_typical: 
     Each settle is taken as ``settle_typical`` or else the earliest it can be accepted,
     max(min_time, window), never beyond max_time; each fill takes ``fill_time``; valves switch
     instantly.  Purge: pulses x (fill + hold + vent).  Measure/calibrate: every cycle runs
-    (converge may stop earlier) as fill + settle_filled + settle_expanded + vent.time.  Leak check:
+    (converge may stop earlier) as fill + settle_filled + settle_expanded + vent.time + the baseline
+    settle.  Leak check:
     fill + settle_filled + hold + vent.time.
     """
     total = 0.0
@@ -678,7 +679,8 @@ def estimate_duration(seq: Sequence, *, fill_time: float = 5.0, settle_typical: 
         total += seq.purge.pulses * (fill_time + seq.purge.hold + seq.purge.vent)
     if seq.expands:
         per_cycle = (fill_time + _settle_time(seq.settle_filled, settle_typical)
-                     + _settle_time(seq.settle_expanded, settle_typical) + seq.vent.time)
+                     + _settle_time(seq.settle_expanded, settle_typical) + seq.vent.time
+                     + _settle_time(seq.settle_baseline, settle_typical))
         total += seq.cycles.count * per_cycle
     elif seq.kind == "leak_check" and seq.leak_check is not None:
         total += (fill_time + _settle_time(seq.settle_filled, settle_typical)

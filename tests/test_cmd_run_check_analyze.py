@@ -105,7 +105,7 @@ def _start(tmp_path: Path, *extra: str) -> subprocess.Popen:
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env)
 
 
-def _wait_for_rows(tmp_path: Path, rows: int, timeout: float = 30.0) -> Path:
+def _wait_for_rows(tmp_path: Path, rows: int, timeout: float = 120.0) -> Path:
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         for trace in (tmp_path / "runs").glob("*/trace.csv") if (tmp_path / "runs").exists() else []:

@@ -582,10 +582,11 @@ def test_estimate_duration_follows_its_documented_formula(tmp_path: Path) -> Non
     purge = 3 * (5.0 + 2 + 3)  # pulses x (fill + hold + vent)
     filled = max(5, 10)  # max(min_time, window) of settle_filled
     expanded = max(5, 20)  # settle_expanded overrides window to 20 s
-    assert sq.estimate_duration(seq) == pytest.approx(purge + 8 * (5.0 + filled + expanded + 5))
-    # a typical settle replaces both settles, clamped to max_time
+    baseline = max(5, 10)  # the baseline settle takes the base settle
+    assert sq.estimate_duration(seq) == pytest.approx(purge + 8 * (5.0 + filled + expanded + 5 + baseline))
+    # a typical settle replaces every settle, clamped to max_time
     assert sq.estimate_duration(seq, fill_time=2.0, settle_typical=1000.0) == pytest.approx(
-        3 * (2.0 + 5) + 8 * (2.0 + 300 + 300 + 5))
+        3 * (2.0 + 5) + 8 * (2.0 + 300 + 300 + 5 + 300))
 
 
 def test_resolve_sequence(tmp_path: Path) -> None:
