@@ -228,6 +228,7 @@ function renderStatus(s) {
   $("btn-reset").disabled = !s.interlock.latched;
   $("btn-resume").classList.toggle("hidden", !s.queue.paused);
   if (cur) renderRun(cur);
+  renderLast(cur ? null : s.last_run);
   $("queue-state").textContent = s.queue.paused ? "(paused)" : "";
 }
 
@@ -235,6 +236,19 @@ function renderPressure(gauge, state, valves) {
   $("p-big").textContent = gauge === null || gauge === undefined ? "invalid" : fmtBar(gauge, 4);
   $("state").textContent = (state || "--").replace("_", " ");
   updateSchematic(valves, gauge);
+}
+
+function renderLast(last) {
+  const box = $("last");
+  box.classList.toggle("hidden", !last);
+  if (!last) return;
+  let html = `<div class="cap">last run · ${esc(last.sample_id || "no sample ID")} · ${esc(last.sequence)} · ` +
+    `<span class="status ${esc(last.status)}">${esc(last.status)}</span></div>`;
+  if (last.volume_cm3 != null) html += `<div class="big">${pm(last.volume_cm3, last.volume_u_cm3, 4)} cm³</div>`;
+  if (last.density_g_cm3 != null) html += `<div class="big">${pm(last.density_g_cm3, last.density_u_g_cm3, 4)} g/cm³</div>`;
+  if (last.volume_cm3 != null) html += `<div class="cap">expanded uncertainty, k = ${last.k ?? 2}</div>`;
+  if (last.message) html += `<div class="cap">${esc(last.message)}</div>`;
+  box.innerHTML = html;
 }
 
 function renderRun(cur) {
