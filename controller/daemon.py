@@ -238,7 +238,7 @@ class Daemon:
         self._stop = threading.Event()
         self._abort = threading.Event()
         self._thread: threading.Thread | None = None
-        self._last_sample_pub = -math.inf
+        self._next_sample_pub = -math.inf
         self._last_trace_t = -math.inf
         self._watchdog = watchdog_interval()
         self._watchdog_due = 0.0
@@ -676,8 +676,8 @@ class Daemon:
             if cur is not None and isinstance(t, (int, float)):
                 cur["elapsed_s"] = t - cur["t_start"]
         self._ping_watchdog()
-        if wall - self._last_sample_pub >= SAMPLE_EVENT_INTERVAL:
-            self._last_sample_pub = wall
+        if wall >= self._next_sample_pub:  # a schedule, not a gap: <= 10/s on average, none lost to jitter
+            self._next_sample_pub = max(self._next_sample_pub + SAMPLE_EVENT_INTERVAL, wall - SAMPLE_EVENT_INTERVAL / 2)
             self.trace.append((float(t) if t is not None else math.nan, gauge))
             self.bus.publish("sample", {"t": t, "gauge_pa": gauge, "valid": data.get("valid"),
                                         "state": data.get("state"), "valves": dict(data.get("valves") or {})})
