@@ -177,9 +177,11 @@ class Controller:
             trip = self.monitor.trip_external("valve_command_failed", self.instrument.clock.now(), str(exc))
             engine.to_fault(trip.kind if trip else "exception", str(exc), self.instrument.clock.now())
 
-    def run_until_done(self, should_stop: Callable[[], bool] = lambda: False,
+    def run_until_done(self, should_stop: Callable[[], bool | str] = lambda: False,
                        max_duration: float | None = None) -> str:
-        """Tick at the sample period until the active run ends; returns its final state."""
+        """Tick at the sample period until the active run ends; returns its final state.
+
+        ``should_stop`` is asked before every tick; True (or a reason, as text) aborts the run."""
         engine = self.engine
         assert engine is not None
         clock = self.instrument.clock
@@ -187,8 +189,9 @@ class Controller:
         t_end = clock.now() + max_duration if max_duration else math.inf
         due = clock.now()
         while not engine.terminal:
-            if should_stop():
-                engine.request_abort("stopped by the operator", clock.now())
+            stop = should_stop()
+            if stop:
+                engine.request_abort(stop if isinstance(stop, str) else "stopped by the operator", clock.now())
                 break
             self.tick()
             if clock.now() > t_end:

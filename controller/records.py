@@ -10,9 +10,11 @@ root/<run_id>/
 Crash guarantee.  Every trace row and event line is written and then ``flush()``-ed, so it is
 in the operating system's page cache before ``sample()``/``event()`` returns: a crash of the
 process (exception, SIGKILL) loses at most the row in flight, which ``load_run`` drops as a
-torn tail.  ``os.fsync`` runs on the trace at most every ``fsync_interval`` seconds (wall time)
-and always on events (they are rare), on ``sync()`` and on ``close()``: a power loss or kernel
-crash loses at most the trace rows of the last ``fsync_interval`` seconds.  cycles.csv,
+torn tail.  ``os.fsync`` runs on trace and events every ``fsync_interval`` seconds (wall time),
+promptly after every event, on ``sync()`` and on ``close()``: a power loss or kernel crash loses
+at most the last ``fsync_interval`` seconds.  By default the periodic and per-event fsyncs run in
+a background thread, because one fsync can take a hundred milliseconds on a busy disk and must not
+delay the control loop's tick; an fsync error found there is raised by the next ``sample()``.  cycles.csv,
 summary.json and meta.json are replaced atomically (write a temporary file, fsync, os.replace,
 fsync the folder): a reader sees the old or the new file, never a mixture.
 
@@ -31,6 +33,7 @@ import json
 import math
 import os
 import re
+import threading
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -187,6 +190,7 @@ class RunRecorder:
         *,
         fsync_interval: float = 1.0,
         wall_clock: Callable[[], float] = time.monotonic,
+        sync_in_background: bool = True,
     ) -> None:
         if not _SAFE_NAME.match(run_id) or ".." in run_id:
             raise ValueError(f"run id {run_id!r} is not a safe folder name")
@@ -232,6 +236,7 @@ class RunRecorder:
         except OSError as exc:
             raise RecordWriteError("trace/events files", self.folder, exc) from exc
         self._last_sync = self._clock()
+        self._syncer = _Syncer((self._trace, self._events), fsync_interval) if sync_in_background else None
 
     # ------------------------------------------------------------------ raw trace
     @property
@@ -258,13 +263,16 @@ class RunRecorder:
         else:
             row += [repr(float(temperature.value)), temperature.validity.value]
         row += ["nan" if ambient_pa is None else repr(float(ambient_pa)), _clean_text(note)]
+        if self._syncer is not None and self._syncer.error is not None:
+            raise RecordWriteError("background fsync", self.trace_path, self._syncer.error)
         try:
             self._csv.writerow(row)
             self._trace.flush()
-            now = self._clock()
-            if now - self._last_sync >= self.fsync_interval:
-                os.fsync(self._trace.fileno())
-                self._last_sync = now
+            if self._syncer is None:
+                now = self._clock()
+                if now - self._last_sync >= self.fsync_interval:
+                    os.fsync(self._trace.fileno())
+                    self._last_sync = now
         except (OSError, ValueError) as exc:  # ValueError: file already closed
             raise RecordWriteError(f"trace sample t={t!r}", self.trace_path, exc) from exc
         self._n_samples += 1
@@ -280,11 +288,15 @@ class RunRecorder:
             line = _dumps(rec, allow_nan=True)
             self._events.write(line + "\n")
             self._events.flush()
-            os.fsync(self._events.fileno())
-            if kind == "state":
+            if self._syncer is not None:
                 self._trace.flush()
-                os.fsync(self._trace.fileno())
-                self._last_sync = self._clock()
+                self._syncer.request()
+            else:
+                os.fsync(self._events.fileno())
+                if kind == "state":
+                    self._trace.flush()
+                    os.fsync(self._trace.fileno())
+                    self._last_sync = self._clock()
         except (OSError, ValueError) as exc:
             raise RecordWriteError(f"event {kind!r} t={t!r}", self.events_path, exc) from exc
         except TypeError as exc:
@@ -354,6 +366,9 @@ class RunRecorder:
             return
         self._closed = True
         err: BaseException | None = None
+        if self._syncer is not None:
+            self._syncer.stop()
+            err = self._syncer.error
         for fh in (self._trace, self._events):
             try:
                 fh.flush()
@@ -371,6 +386,43 @@ class RunRecorder:
 
     def __exit__(self, *exc: object) -> None:
         self.close()
+
+
+class _Syncer:
+    """fsyncs the open record files every interval and whenever asked, off the caller's thread."""
+
+    def __init__(self, files: Sequence[Any], interval: float) -> None:
+        self._files = tuple(files)
+        self._interval = interval
+        self._kick = threading.Event()
+        self._stopping = False
+        self.error: BaseException | None = None
+        self.count = 0
+        self._thread = threading.Thread(target=self._run, name="record-fsync", daemon=True)
+        self._thread.start()
+
+    def request(self) -> None:
+        self._kick.set()
+
+    def _run(self) -> None:
+        while True:
+            self._kick.wait(self._interval)
+            self._kick.clear()
+            if self._stopping:
+                return
+            for fh in self._files:
+                try:
+                    os.fsync(fh.fileno())
+                except ValueError:  # closed under us at shutdown
+                    return
+                except OSError as exc:
+                    self.error = self.error or exc
+            self.count += 1
+
+    def stop(self) -> None:
+        self._stopping = True
+        self._kick.set()
+        self._thread.join(timeout=10.0)
 
 
 # ---------------------------------------------------------------------------- reading back

@@ -178,7 +178,7 @@ def _version() -> str:
 
 
 def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalog: Catalog,
-            run_id: str | None = None, should_stop: Callable[[], bool] = lambda: False,
+            run_id: str | None = None, should_stop: Callable[[], bool | str] = lambda: False,
             max_duration: float | None = None) -> dict[str, Any]:
     """Drive one run to its end on the controller; returns the summary that was stored."""
     inst = controller.instrument

@@ -10,6 +10,7 @@ import importlib.metadata
 import json
 import math
 import os
+import time
 
 import numpy as np
 import pytest
@@ -101,7 +102,7 @@ def test_missing_cycles_and_summary_after_a_crash_are_tolerated(tmp_path):
 
 def test_trace_fsync_at_most_every_interval_and_on_state_change(tmp_path, monkeypatch):
     wall = FakeWall()
-    rec = make(tmp_path, fsync_interval=1.0, wall_clock=wall)
+    rec = make(tmp_path, fsync_interval=1.0, wall_clock=wall, sync_in_background=False)
     synced: list[int] = []
     real = os.fsync
     monkeypatch.setattr(records.os, "fsync", lambda fd: (synced.append(fd), real(fd))[1])
@@ -114,6 +115,26 @@ def test_trace_fsync_at_most_every_interval_and_on_state_change(tmp_path, monkey
     rec.event("state", 5.0, "fill -> settle")
     assert synced.count(trace_fd) == n + 1
     rec.close()
+
+
+def test_background_fsync_keeps_the_caller_off_the_disk(tmp_path, monkeypatch):
+    import threading
+
+    callers: list[int] = []
+    real = os.fsync
+    monkeypatch.setattr(records.os, "fsync", lambda fd: (callers.append(threading.get_ident()), real(fd))[1])
+    rec = make(tmp_path, fsync_interval=0.05)
+    me = threading.get_ident()
+    callers.clear()  # creating the folder makes meta.json and the header durable, in the caller
+    for k in range(30):
+        rec.sample(k * 0.1, "fill", 1, {}, Reading(1e5, "Pa", k * 0.1))
+        if k % 10 == 0:
+            rec.event("state", k * 0.1, "tick")
+        time.sleep(0.01)
+    assert me not in callers  # sample() and event() never wait for the disk
+    assert len(callers) >= 4  # the syncer ran on its interval and on the events
+    rec.close()
+    assert callers.count(me) == 2  # close() makes both files durable itself
 
 
 def test_disk_full_on_trace_raises_record_write_error(tmp_path):
