@@ -240,3 +240,36 @@ def test_stop_on_converge_ends_the_run_early(tmp_path):
     assert summary["status"] == "completed" and summary["converged"] is True
     assert len(summary["cycles"]) == 5  # two discarded, then three that agree
     assert summary["outliers"] == []
+
+
+def test_inlet_stuck_closed_times_out_the_fill(tmp_path):
+    # a transducer with some noise: a perfectly quiet one would (rightly) trip as frozen first
+    cfg = make(faults=[{"kind": "valve_stuck", "valve": "inlet", "open": False, "at": "0 s"}],
+               instruments={"pressure": {"node": "cell", "kind": "gauge", "full_scale": "3.5 bar",
+                                         "noise": "0.05 mbar"}})
+    summary, bench, _, _ = measure(tmp_path, "quick-demo", cfg)
+    assert summary["status"] == "fault" and summary["fault"]["kind"] == "fill_timeout"
+    assert bench.actual_valves()["vent"] is True
+
+
+def test_vent_stuck_closed_times_out_the_vent(tmp_path):
+    # the vent seat sticks shut after the first measurement fill; the run must not fill again on top
+    cfg = make(faults=[{"kind": "valve_stuck", "valve": "vent", "open": False,
+                        "on_opening": {"valve": "inlet", "count": 3}, "delay": "1 s"}])
+    summary, bench, _, controller = measure(tmp_path, "quick-demo", cfg)
+    assert summary["status"] == "fault" and summary["fault"]["kind"] == "vent_timeout"
+    assert bench.actual_valves()["inlet"] is False
+    assert controller.reset() is False  # still pressurised: the operator must vent by hand first
+
+
+def test_a_silent_transducer_while_vented_goes_stale(tmp_path):
+    inst = build_sim_instrument(make(faults=[{"kind": "transducer", "mode": "silent", "at": "3 s"}]))
+    controller = Controller(inst)
+    trip = None
+    while trip is None and inst.clock.now() < 10.0:  # idle: no run, the interlocks still watch
+        controller.tick()
+        trip = controller.monitor.latched
+        inst.clock.sleep(inst.sample_period)
+    assert trip is not None and trip.kind == "stale"
+    # stale_after after the last valid sample (taken one period before the transducer fell silent)
+    assert 3.0 + inst.limits.stale_after - inst.sample_period <= trip.t <= 3.0 + inst.limits.stale_after
