@@ -69,7 +69,7 @@ EXTERNAL_KINDS = (
 )
 
 
-@dataclass(frozen=True)
+@dataclass(slots=True)  # made on every tick: slots, not frozen (a frozen __init__ is markedly slower)
 class Observation:
     """One pressure sample as the interlocks see it: the reading, its gauge value, the valves."""
 
@@ -112,12 +112,19 @@ def _slope(t: np.ndarray, p: np.ndarray) -> float:
 def _slope_pairs(pairs: Iterable[tuple[float, float]]) -> float:
     """Least-squares slope of a few (t, p) pairs in plain Python: on the every-sample path numpy's
     per-call overhead on three points costs more than the arithmetic."""
-    pts = list(pairs)
-    n = len(pts)
-    mt = sum(t for t, _ in pts) / n
-    mp = sum(p for _, p in pts) / n
-    den = sum((t - mt) ** 2 for t, _ in pts)
-    return sum((t - mt) * (p - mp) for t, p in pts) / den if den > 0 else math.nan
+    n = st = sp = stt = stp = 0.0
+    t0 = None
+    for t_abs, p in pairs:
+        if t0 is None:
+            t0 = t_abs
+        t = t_abs - t0  # shifted: a daemon's clock reaches 1e6 s, where t*t would cancel badly
+        n += 1.0
+        st += t
+        sp += p
+        stt += t * t
+        stp += t * p
+    den = n * stt - st * st
+    return (n * stp - st * sp) / den if den > 0 else math.nan
 
 
 @dataclass

@@ -391,9 +391,14 @@ class RunRecorder:
 class _Syncer:
     """fsyncs the open record files every interval and whenever asked, off the caller's thread."""
 
+    #: Requests closer together than this share one fsync: a burst of events (a fast simulated run
+    #: changes state many times a second) must not turn into an fsync storm that stalls the writer.
+    MIN_GAP = 0.25
+
     def __init__(self, files: Sequence[Any], interval: float) -> None:
         self._files = tuple(files)
         self._interval = interval
+        self._last = time.monotonic()
         self._kick = threading.Event()
         self._stopping = False
         self.error: BaseException | None = None
@@ -407,9 +412,14 @@ class _Syncer:
     def _run(self) -> None:
         while True:
             self._kick.wait(self._interval)
-            self._kick.clear()
             if self._stopping:
                 return
+            gap = time.monotonic() - self._last
+            if gap < self.MIN_GAP:
+                time.sleep(self.MIN_GAP - gap)
+                if self._stopping:
+                    return
+            self._kick.clear()
             for fh in self._files:
                 try:
                     os.fsync(fh.fileno())
@@ -418,6 +428,7 @@ class _Syncer:
                 except OSError as exc:
                     self.error = self.error or exc
             self.count += 1
+            self._last = time.monotonic()
 
     def stop(self) -> None:
         self._stopping = True

@@ -342,6 +342,14 @@ class SettleDetector:
             self._add(t, p, 1.0)
         self._evicted = 0
 
+    def _slope(self) -> float:
+        """Just the regression slope: what the every-sample drift check needs."""
+        n = self._n
+        if n < 2:
+            return math.nan
+        sxx = self._sxx - self._sx * self._sx / n
+        return (self._sxy - self._sx * self._sy / n) / sxx if sxx > 0 else math.nan
+
     def _regression(self) -> tuple[float, float, float, float]:
         """(value at window end, its SE, slope, slope SE) from the running sums."""
         n = self._n
@@ -432,7 +440,7 @@ class SettleDetector:
 
     def _check_drift(self) -> bool:
         c = self.criteria
-        _, _, slope, _ = self._regression()
+        slope = self._slope()
         if not math.isfinite(slope):
             return False
         if c.max_drift is not None:
