@@ -36,9 +36,9 @@ def bench_catalog(folder: Path, n: int) -> list[float]:
     return out
 
 
-def bench_trace(folder: Path, n: int, fsync_interval: float) -> list[float]:
-    rec = RunRecorder(folder, f"trace-{fsync_interval:g}", ["inlet", "vent", "exp_small"], {},
-                      fsync_interval=fsync_interval)
+def bench_trace(folder: Path, n: int, fsync_interval: float, background: bool) -> list[float]:
+    rec = RunRecorder(folder, f"trace-{fsync_interval:g}-{int(background)}", ["inlet", "vent", "exp_small"], {},
+                      fsync_interval=fsync_interval, sync_in_background=background)
     valves = {"inlet": True, "vent": False, "exp_small": False}
     temp = Reading(296.15, "K", 0.0)
     out = []
@@ -63,9 +63,12 @@ def main() -> None:
         print(f"  mean {statistics.mean(c) * 1e3:.3f} ms   p50 {_pct(c, 0.5) * 1e3:.3f} ms   "
               f"p99 {_pct(c, 0.99) * 1e3:.3f} ms   max {max(c) * 1e3:.3f} ms")
         print(f"  share of a 100 ms sample period (mean): {statistics.mean(c) / 0.1 * 100:.2f} %")
-        for interval in (1.0, 0.0):
-            tr = bench_trace(folder, args.n, interval)
-            what = "flush per row, fsync <= 1/s" if interval else "flush + fsync every row"
+        for interval, background, what in (
+            (1.0, True, "flush per row in the caller, fsync <= 1/s in the background (default)"),
+            (1.0, False, "flush per row, fsync <= 1/s in the caller"),
+            (0.0, False, "flush + fsync every row in the caller"),
+        ):
+            tr = bench_trace(folder, args.n, interval, background)
             print(f"trace append ({what}), n={args.n}:")
             print(f"  mean {statistics.mean(tr) * 1e6:.1f} us   p99 {_pct(tr, 0.99) * 1e6:.1f} us   "
                   f"max {max(tr) * 1e6:.1f} us")
