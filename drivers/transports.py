@@ -52,7 +52,25 @@ class Transport(Protocol):
     def close(self) -> None: ...
 
 
-class SerialTransport:
+class _LineQuery:
+    """One command, one reply line, under the transport's lock; logged once either way."""
+
+    name: str
+    lock: threading.RLock
+
+    def query(self, data: bytes, timeout: float | None = None) -> bytes:
+        with self.lock:
+            self._write(data)  # type: ignore[attr-defined]
+            try:
+                reply = self.readline(timeout, command=data)  # type: ignore[attr-defined]
+            except DeviceError as exc:
+                log.debug("%s: sent %r, got %s", self.name, data, type(exc).__name__)
+                raise
+            log.debug("%s: sent %r, got %r", self.name, data, reply)
+            return reply
+
+
+class SerialTransport(_LineQuery):
     """A pyserial port opened with serial_for_url: a device path, socket://host:port or loop://."""
 
     def __init__(self, url: str, *, name: str | None = None, baudrate: int = 9600,
@@ -169,19 +187,9 @@ class SerialTransport:
                 raise DeviceTimeout(self.name, f"{len(raw)} of {size} bytes", command, raw or None)
             return raw
 
-    def query(self, data: bytes, timeout: float | None = None) -> bytes:
-        with self.lock:
-            self._write(data)
-            try:
-                reply = self.readline(timeout, command=data)
-            except DeviceError as exc:
-                log.debug("%s: sent %r, got %s", self.name, data, type(exc).__name__)
-                raise
-            log.debug("%s: sent %r, got %r", self.name, data, reply)
-            return reply
 
 
-class VisaTransport:
+class VisaTransport(_LineQuery):
     """A pyvisa message-based resource (default backend pyvisa-py '@py'; tests use '@sim').
 
     Replies are read as whole messages, so the VISA read termination does the framing.
@@ -297,13 +305,3 @@ class VisaTransport:
                 raise self._error(exc, command) from exc
             return bytes(raw)
 
-    def query(self, data: bytes, timeout: float | None = None) -> bytes:
-        with self.lock:
-            self._write(data)
-            try:
-                reply = self.readline(timeout, command=data)
-            except DeviceError as exc:
-                log.debug("%s: sent %r, got %s", self.name, data, type(exc).__name__)
-                raise
-            log.debug("%s: sent %r, got %r", self.name, data, reply)
-            return reply
