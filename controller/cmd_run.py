@@ -63,15 +63,15 @@ def main(args: argparse.Namespace) -> int:
     request = request_from_args(args)
     instrument = open_instrument(args)
     try:
+        root = data_dir(args.data)
+        root.mkdir(parents=True, exist_ok=True)
+        catalog = Catalog(root / "catalog.sqlite")
         try:
-            prepared = prepare(request, instrument)
+            prepared = prepare(request, instrument, catalog)
         except SequenceNotFound as exc:
             raise UsageError(str(exc)) from None
         except ValueError as exc:
             raise UsageError(str(exc)) from None
-        root = data_dir(args.data)
-        root.mkdir(parents=True, exist_ok=True)
-        catalog = Catalog(root / "catalog.sqlite")
         controller = Controller(instrument)
         view = None if (args.json or args.quiet) else LiveView(prepared, sys.stderr)
         if view is not None:

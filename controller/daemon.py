@@ -513,7 +513,7 @@ class Daemon:
                         operator=request.get("operator") or "", expansion_volume=request.get("expansion_volume"),
                         note=request.get("note") or "")
         try:
-            return prepare(rr, self.instrument)
+            return prepare(rr, self.instrument, self.catalog)
         except ConfigError as exc:
             if request.get("sequence") is None:
                 with contextlib.suppress(OSError):

@@ -23,7 +23,7 @@ from pycnoctl.controller.engine import RunEngine
 from pycnoctl.controller.records import RecordWriteError, RunRecorder
 from pycnoctl.controller.sequence import Sequence, check_against_instrument, load_sequence, resolve_sequence
 from pycnoctl.controller.yamlio import ConfigError
-from pycnoctl.drivers.instrument import Instrument
+from pycnoctl.drivers.instrument import ChamberCalibration, Instrument
 
 
 def data_dir(explicit: str | Path | None = None) -> Path:
@@ -53,8 +53,10 @@ class PreparedRun:
     warnings: list[str] = field(default_factory=list)
 
 
-def prepare(request: RunRequest, instrument: Instrument) -> PreparedRun:
-    """Load and check the sequence against the instrument; ConfigError lists every problem."""
+def prepare(request: RunRequest, instrument: Instrument, catalog: Catalog | None = None) -> PreparedRun:
+    """Load and check the sequence against the instrument; ConfigError lists every problem.
+
+    With a catalog, an automatic expansion-volume choice weighs the calibrated volumes."""
     seq = load_sequence(resolve_sequence(request.sequence))
     names = list(instrument.roles.expansion)
     problems, warnings = check_against_instrument(
@@ -65,8 +67,14 @@ def prepare(request: RunRequest, instrument: Instrument) -> PreparedRun:
     choice = request.expansion_volume or seq.expand.volume
     if choice == "auto":
         estimate = seq.expand.sample_estimate
-        volumes = {n: instrument.chambers.for_expansion(n).vr for n in names}
-        cell = instrument.chambers.cell
+        cal = {n: instrument.chambers.for_expansion(n) for n in names}
+        if catalog is not None:
+            for n in names:
+                rec = catalog.latest_calibration(n, seq.gas)
+                if rec is not None:
+                    cal[n] = ChamberCalibration(rec.vc, rec.vr)
+        volumes = {n: c.vr for n, c in cal.items()}
+        cell = sum(c.vc for c in cal.values()) / len(cal)
         if estimate is None or not 0 < estimate < cell:
             choice = max(volumes, key=volumes.__getitem__)
             warnings.append("no usable sample estimate for the advisor; using the largest expansion volume")

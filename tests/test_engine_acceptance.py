@@ -273,3 +273,17 @@ def test_a_silent_transducer_while_vented_goes_stale(tmp_path):
     assert trip is not None and trip.kind == "stale"
     # stale_after after the last valid sample (taken one period before the transducer fell silent)
     assert 3.0 + inst.limits.stale_after - inst.sample_period <= trip.t <= 3.0 + inst.limits.stale_after
+
+
+def test_automatic_expansion_volume_weighs_the_calibrated_volumes(tmp_path):
+    # advisor rule (methods: f(x) smallest near Vr = 1.2 Vg): with a 5 cm^3 sample in a 12 cm^3 cell the
+    # nominal 8 cm^3 'small' volume is the better one; if calibration says the volumes are the other way
+    # round, the choice must follow the calibration, not the nominal numbers
+    from pycnoctl.controller.catalog import CalibrationRecord
+
+    inst = build_sim_instrument()
+    catalog = Catalog(tmp_path / "c.sqlite")
+    assert prepare(RunRequest("grain-volume"), inst, catalog).expansion_volume == "small"
+    catalog.put_calibration(CalibrationRecord("small", "helium", 12e-6, 20e-6))
+    catalog.put_calibration(CalibrationRecord("large", "helium", 12e-6, 8e-6))
+    assert prepare(RunRequest("grain-volume"), inst, catalog).expansion_volume == "large"
