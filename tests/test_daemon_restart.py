@@ -91,12 +91,17 @@ def test_sigkill_mid_run_then_restart(data_dir: Path) -> None:
         second = a.http.post("/api/runs", json={"sequence": "quick-demo", "sample_id": "TILE-NEXT"}).json()["run_id"]
         a.wait(lambda s: s["current_run"] and s["current_run"]["run_id"] == first
                and (s["current_run"].get("elapsed_s") or 0) > 3.0)
+        acked = [a.status()["pressure"]["t"] for _ in range(5)]  # samples the daemon has reported
         os.kill(a.proc.pid, signal.SIGKILL)
         assert a.proc.wait(10) == -signal.SIGKILL
     finally:
         a.close()
     trace_before = load_run(data_dir / "runs" / first)
     assert trace_before.n_samples > 10  # flushed as taken: readable after the kill
+    # no acknowledged sample lost (safety plan figure: 0): a sample is in the trace before it is reported
+    recorded = set(trace_before.trace["t"].tolist())
+    lost = [t for t in acked if t not in recorded]
+    assert lost == [], f"acknowledged samples missing from the trace: {lost}"
 
     b = Serve(data_dir, port)
     try:
