@@ -380,17 +380,25 @@ class Catalog:
                 (status, now, volume_m3, u_volume_m3, density, mass, message, calibration_id, run_id),
             )
 
+    _CYCLE_UPSERT = (
+        "INSERT INTO cycles (run_id, idx, p1, p2, volume, kept) VALUES (?, ?, ?, ?, ?, ?)"
+        " ON CONFLICT (run_id, idx) DO UPDATE SET p1 = excluded.p1, p2 = excluded.p2,"
+        " volume = excluded.volume, kept = excluded.kept"
+    )
+
     def add_cycle(
         self, run_id: str, idx: int, p1: float | None, p2: float | None, volume: float | None, kept: bool
     ) -> None:
         """Insert or replace one cycle's result (kept may be revised after outlier checks)."""
+        self.add_cycles(run_id, [(idx, p1, p2, volume, kept)])
+
+    def add_cycles(
+        self, run_id: str, rows: Iterable[tuple[int, float | None, float | None, float | None, bool]]
+    ) -> None:
+        """Insert or replace several cycles in one transaction (one synchronous commit, not one each)."""
         with self._write() as con:
-            con.execute(
-                "INSERT INTO cycles (run_id, idx, p1, p2, volume, kept) VALUES (?, ?, ?, ?, ?, ?)"
-                " ON CONFLICT (run_id, idx) DO UPDATE SET p1 = excluded.p1, p2 = excluded.p2,"
-                " volume = excluded.volume, kept = excluded.kept",
-                (run_id, int(idx), p1, p2, volume, 1 if kept else 0),
-            )
+            con.executemany(self._CYCLE_UPSERT, [(run_id, int(i), p1, p2, v, 1 if kept else 0)
+                                                 for i, p1, p2, v, kept in rows])
 
     def get_cycles(self, run_id: str) -> list[CycleRow]:
         rows = self._read("SELECT * FROM cycles WHERE run_id = ? ORDER BY idx", (run_id,))

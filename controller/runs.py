@@ -240,8 +240,8 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
             summary["warnings"].append(f"record incomplete: {exc}")
         finally:
             recorder.close()
-        for c in summary["cycles"]:
-            catalog.add_cycle(run_id, c["index"], c["p1_gauge_pa"], c["p2_gauge_pa"], c["volume_m3"], c["kept"])
+        catalog.add_cycles(run_id, [(c["index"], c["p1_gauge_pa"], c["p2_gauge_pa"], c["volume_m3"], c["kept"])
+                                    for c in summary["cycles"]])
         catalog.finish_run(run_id, summary["status"], volume_m3=_m3(summary["volume_cm3"]),
                            u_volume_m3=_m3(summary["volume_u_cm3"]),
                            density=summary["density_g_cm3"] * 1e3 if summary["density_g_cm3"] else None,
