@@ -130,6 +130,7 @@ class RelayCommandsModel(Strict):
     all_off: Template | None = RelayCommands.all_off
     ping: Template | None = RelayCommands.ping
     ping_reply: str = RelayCommands.ping_reply
+    arm_watchdog: Template | None = RelayCommands.arm_watchdog
 
     def build(self) -> RelayCommands:
         return RelayCommands(**self.model_dump())
@@ -144,6 +145,7 @@ class AsciiRelayDevice(SerialLink):
     kind: Literal["ascii_relay"]
     commands: RelayCommandsModel = RelayCommandsModel()
     valves: dict[str, ValveChannel] = Field(min_length=1)
+    watchdog: Seconds | None = None  # arm the board's own watchdog (PROTOCOL.md) with this timeout
 
     @field_validator("valves")
     @classmethod
@@ -560,7 +562,7 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Clock | None = None, sim_b
             dev = cfg.valves
             channels = {n: Channel(v.channel, v.normally == "open") for n, v in dev.valves.items()}
             bank = AsciiRelayBoard(opened.serial_for(dev, "valves"), channels, commands=dev.commands.build(),
-                                   name="valves")
+                                   name="valves", watchdog=dev.watchdog)
             roles = cfg.valve_roles.build()
         unknown = ({roles.inlet, roles.vent} | set(roles.expansion.values())) - set(bank.valve_names)
         if unknown:

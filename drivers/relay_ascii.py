@@ -142,6 +142,7 @@ class RelayCommands:
     all_off: str | None = "ALLOFF\\n"
     ping: str | None = "PING\\n"
     ping_reply: str = r"^PONG$"
+    arm_watchdog: str | None = "WDOG {seconds}\\n"  # how to arm the board's own watchdog, if it has one
 
 
 class AsciiRelayBoard:
@@ -149,7 +150,7 @@ class AsciiRelayBoard:
 
     def __init__(self, transport: Transport, channels: Mapping[str, Channel], *,
                  commands: RelayCommands | None = None, name: str = "relays",
-                 settle: float = 0.0) -> None:
+                 settle: float = 0.0, watchdog: float | None = None) -> None:
         if not channels:
             raise ValueError("a relay board needs at least one valve")
         used: dict[int, str] = {}
@@ -176,6 +177,19 @@ class AsciiRelayBoard:
         self._ping = FrameTemplate.parse(c.ping, ()) if c.ping else None
         self._lock = threading.RLock()
         self._commanded = {v: ch.normally_open for v, ch in self.channels.items()}
+        self.watchdog = watchdog
+        if watchdog:
+            if not c.arm_watchdog:
+                raise ValueError("a watchdog was asked for, but the board has no arm_watchdog command")
+            self._arm = FrameTemplate.parse(c.arm_watchdog, ("seconds",))
+            self.arm_watchdog()
+
+    def arm_watchdog(self) -> None:
+        """Arm the board's own watchdog: without a command for that long it de-energises every relay
+        (inlet closed, vent open on a fail-safe build), e.g. when USB is pulled or the host hangs.
+        The controller's valve read-back, once a second, keeps it fed."""
+        if self.watchdog:
+            self._send(self._arm.render(seconds=f"{self.watchdog:g}"))
 
     @property
     def valve_names(self) -> tuple[str, ...]:
@@ -261,6 +275,7 @@ class AsciiRelayBoard:
         with self._lock:
             # A board that lost power came back de-energised; assume so until commanded.
             self._commanded = {v: ch.normally_open for v, ch in self.channels.items()}
+            self.arm_watchdog()
 
     def close(self) -> None:
         self.transport.close()

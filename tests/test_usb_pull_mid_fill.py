@@ -97,3 +97,35 @@ def test_cable_pulled_mid_fill_fails_safe_latches_and_recovers_only_on_reset(ben
     assert truth.actual_valves()["inlet"] is False and truth.actual_valves()["vent"] is True
     assert engine.state == "fault"  # the run stays ended; a reset never resumes it
     assert controller.tick().pressure.valid
+
+
+def test_armed_board_watchdog_vents_by_itself_when_the_cable_is_pulled(tmp_path):
+    # PROTOCOL.md watchdog: a board armed with WDOG de-energises every relay when it hears nothing
+    # for that long; with the fail-safe build (NC inlet, NO vent) that closes the inlet and vents
+    import time
+
+    sim = build_sim_instrument()
+    names = dict(zip(EXAMPLE_VALVES, sim.valves.valve_names, strict=True))
+    chans = {names[k]: Channel(i + 1, k == "vent") for i, k in enumerate(EXAMPLE_VALVES)}
+    firmware = RelayFirmware.for_board(sim.valves, chans)
+    relay = FakeDevice(firmware, link="pty")
+    gauge = FakeDevice(GaugeFirmware(sim.pressure, unit="kPa"), link="pty")
+    text = EXAMPLE.read_text().replace(RELAY_PORT, relay.url).replace(GAUGE_PORT, gauge.url)
+    text = text.replace("  valves:\n    inlet:", "  watchdog: 0.5 s\n  valves:\n    inlet:", 1)
+    cfg = tmp_path / "usb-wdog.yaml"
+    cfg.write_text(text)
+    inst = build_instrument(load_instrument_config(cfg), clock=sim.clock)
+    try:
+        assert firmware.watchdog == pytest.approx(0.5)  # armed when the board was opened
+        truth = sim.extras["sim"]
+        inst.valves.set_valves({"vent": False, "small": False, "large": False})
+        inst.valves.set_valves({"inlet": True})  # filling
+        assert truth.actual_valves()["inlet"] is True
+        relay.unplug()  # nothing reaches the board any more
+        time.sleep(1.0)  # the board's own clock runs out
+        assert firmware.watchdog_tripped
+        assert truth.actual_valves()["inlet"] is False and truth.actual_valves()["vent"] is True
+    finally:
+        inst.close()
+        relay.close()
+        gauge.close()
