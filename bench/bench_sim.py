@@ -5,7 +5,7 @@ transducer reads the set pressure minus 2 kPa, or 5 s), settle 30 s, expand, set
 At every 0.1 s the pressure transducer is read, as the engine would.  Prints physics steps per
 second, simulated seconds per wall second and the ratio to real time.
 
-    /work/venv/bin/python bench/bench_sim.py [config.yaml] [--repeat N]
+    python bench/bench_sim.py [config.yaml] [--repeat N]
 """
 
 from __future__ import annotations
