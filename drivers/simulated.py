@@ -12,6 +12,7 @@ value as VALID, as a real one would; detecting it is the engine's job.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Mapping
 from pathlib import Path
@@ -177,6 +178,15 @@ def sim_limits(cfg: SimConfig) -> Limits:
     return Limits(max_pressure=max_p, relief_setting=relief, **extra)
 
 
+def _paced_limits(limits: Limits, realtime: bool, speed: float) -> Limits:
+    """A real-time simulator sped up S times turns any pause of the host (a slow disk flush at the
+    start of a run, say) into S times as much instrument time; the stale-reading limit is widened to
+    cover a half-second pause of the host, so the demo does not trip on its own bookkeeping."""
+    if not realtime or speed <= 1.0:
+        return limits
+    return dataclasses.replace(limits, stale_after=max(limits.stale_after, 0.5 * speed))
+
+
 def build_sim_instrument(
     config: SimConfig | str | Path | None = None, *, realtime: bool = False, speed: float = 1.0
 ) -> Instrument:
@@ -192,7 +202,7 @@ def build_sim_instrument(
         clock=bench.clock,
         roles=roles,
         chambers=_chambers(cfg),
-        limits=sim_limits(cfg),
+        limits=_paced_limits(sim_limits(cfg), realtime, speed),
         pressure_is_gauge=bench.pressure_is_gauge,
         thermometer=SimThermometer(bench) if ins.thermometer is not None else None,
         barometer=SimBarometer(bench) if ins.barometer is not None else None,
