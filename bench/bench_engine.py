@@ -16,6 +16,7 @@ from __future__ import annotations
 import argparse
 import copy
 import logging
+import math
 import statistics
 import tempfile
 import time
@@ -167,7 +168,7 @@ def interlock_reaction(events: int) -> None:
         print("   no overpressure trips")
         return
     react_ms.sort()
-    p99 = react_ms[min(len(react_ms) - 1, int(0.99 * len(react_ms)))]
+    p99 = react_ms[max(math.ceil(0.99 * len(react_ms)) - 1, 0)]  # nearest-rank percentile
     print(f"   trips: {len(react_ms)}; samples after the first over-limit sample: max {max(samples_late)}")
     print(f"   reading -> safe-state command: p99 {p99:.3f} ms, max {react_ms[-1]:.3f} ms")
     over = [o for o, _ in overshoot]
