@@ -133,6 +133,15 @@ class CycleRecord:
         return vals
 
 
+def _plain(s: str) -> str:
+    """A trace field as CSV: plain words pass as they are; anything else is quoted by the csv module."""
+    if not s or s.isidentifier():
+        return s
+    buf = io.StringIO()
+    csv.writer(buf, lineterminator="").writerow([_clean_text(s)])
+    return buf.getvalue()
+
+
 def _clean_text(s: str) -> str:
     """Free text goes on one line so a torn row can always be told from a whole one."""
     return s.replace("\r", " ").replace("\n", " ")
@@ -255,18 +264,17 @@ class RunRecorder:
         note: str = "",
     ) -> None:
         """Append one sample row and flush it (an invalid reading is written as nan + its flag)."""
-        row = [repr(float(t)), _clean_text(state), "" if cycle is None else str(int(cycle))]
-        row += ["1" if valves.get(v, False) else "0" for v in self.valve_names]
-        row += [repr(float(pressure.value)), pressure.validity.value]
-        if temperature is None:
-            row += ["nan", "absent"]
-        else:
-            row += [repr(float(temperature.value)), temperature.validity.value]
-        row += ["nan" if ambient_pa is None else repr(float(ambient_pa)), _clean_text(note)]
+        temp = ("nan,absent" if temperature is None
+                else f"{float(temperature.value)!r},{temperature.validity.value}")
+        # one line built directly (every field is a number or a plain word; free text goes through csv)
+        line = (f"{float(t)!r},{_plain(state)},{'' if cycle is None else int(cycle)},"
+                f"{','.join('1' if valves.get(v, False) else '0' for v in self.valve_names)},"
+                f"{float(pressure.value)!r},{pressure.validity.value},{temp},"
+                f"{'nan' if ambient_pa is None else repr(float(ambient_pa))},{_plain(note)}\n")
         if self._syncer is not None and self._syncer.error is not None:
             raise RecordWriteError("background fsync", self.trace_path, self._syncer.error)
         try:
-            self._csv.writerow(row)
+            self._trace.write(line)
             self._trace.flush()
             if self._syncer is None:
                 now = self._clock()

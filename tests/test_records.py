@@ -182,3 +182,15 @@ def test_summary_refuses_unrecordable_objects(tmp_path):
     rec.close()
     assert not (rec.folder / "summary.json").exists()
     assert json.loads((rec.folder / "meta.json").read_text())["run_id"] == rec.run_id
+
+
+def test_free_text_in_a_trace_row_round_trips_as_csv(tmp_path):
+    # RFC 4180 quoting (the csv module) for a note with a comma, quotes and a line break
+    rec = make(tmp_path)
+    note = 'operator said: "ok, go"\nnext'
+    rec.sample(0.1, "fill", 1, {"inlet": True}, Reading(1.5e5, "Pa", 0.1), None, 101325.0, note)
+    rec.sample(0.2, "fill", None, {}, Reading(1.4e5, "Pa", 0.2))
+    rec.close()
+    run = load_run(rec.folder)
+    assert list(run.trace["note"]) == ['operator said: "ok, go" next', ""]
+    assert list(run.trace["pressure_pa"]) == [1.5e5, 1.4e5]
