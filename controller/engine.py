@@ -156,6 +156,7 @@ class RunEngine:
         self._leak_t: list[float] = []
         self._leak_p: list[float] = []
         self.converged_early = False
+        self._steps = {name: getattr(self, f"_step_{name}") for name in ACTIVE if name != "idle"}
         self.machine = Machine(
             model=self,
             states=STATES,
@@ -302,9 +303,9 @@ class RunEngine:
     def step(self, s: Sample) -> None:
         """Advance on one sample (already seen by the interlocks). Never blocks."""
         self._now = s.t
-        if self.terminal or self.state == "idle":
-            return
-        getattr(self, f"_step_{self.state}")(s)
+        step = self._steps.get(self.state)
+        if step is not None:  # idle and the end states have no step
+            step(s)
 
     def _elapsed(self) -> float:
         return self._now - self.t_state

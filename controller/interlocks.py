@@ -274,12 +274,12 @@ class InterlockMonitor:
         h = self._h
         lim = self.limits
         t = float(obs.t)
-        valves = dict(obs.valves)
+        valves = obs.valves
         inlet_open = bool(valves.get(self.roles.inlet, False))
 
         if h.valves != valves:
             h.valves_changed_at = t
-            h.valves = valves
+            h.valves = dict(valves)  # a copy only when something changed: this runs on every sample
             h.leak.clear()
         if inlet_open:
             if h.inlet_open_since is None:
