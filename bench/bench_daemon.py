@@ -14,17 +14,13 @@ from __future__ import annotations
 
 import argparse
 import asyncio
-import socket
 import tempfile
-import threading
 import time
 
 import httpx
-import uvicorn
 
-from pycnoctl.controller.api import create_app
+from pycnoctl.controller.api import serve_in_thread
 from pycnoctl.controller.daemon import Daemon
-from pycnoctl.controller.security import Policy
 from pycnoctl.drivers.simulated import build_sim_instrument
 
 
@@ -79,41 +75,26 @@ def main() -> None:
     args = ap.parse_args()
     n = max(2, min(args.clients, 200))
     secs = max(2.0, min(args.seconds, 60.0))
+    inst = build_sim_instrument(None, realtime=True)
     with tempfile.TemporaryDirectory() as d:
-        inst = build_sim_instrument(None, realtime=True)
         daemon = Daemon(inst, d)
-        with socket.socket() as s:
-            s.bind(("127.0.0.1", 0))
-            port = s.getsockname()[1]
-        server = uvicorn.Server(uvicorn.Config(create_app(daemon, Policy(port=port)), host="127.0.0.1", port=port,
-                                               log_level="warning", lifespan="off", timeout_graceful_shutdown=1))
-        th = threading.Thread(target=server.run, daemon=True)
-        daemon.start()
-        th.start()
-        while not server.started:
-            time.sleep(0.02)
-        url = f"http://127.0.0.1:{port}"
-        time.sleep(1.0)
-        daemon.stats.clear()
-        time.sleep(secs)
-        quiet_ticks = daemon.stats.values()
-        daemon.stats.clear()
-        base_lat = asyncio.run(pollers(url, 1, secs))
-        base_ticks = daemon.stats.values()
-        daemon.stats.clear()
-        counts: list[int] = []
+        with serve_in_thread(daemon) as url:
+            time.sleep(1.0)
+            daemon.stats.clear()
+            time.sleep(secs)
+            quiet_ticks = daemon.stats.values()
+            daemon.stats.clear()
+            base_lat = asyncio.run(pollers(url, 1, secs))
+            base_ticks = daemon.stats.values()
+            daemon.stats.clear()
+            counts: list[int] = []
 
-        async def loaded() -> list[float]:
-            res = await asyncio.gather(pollers(url, n // 2, secs), streamers(url, n - n // 2, secs, counts))
-            return res[0]
+            async def loaded() -> list[float]:
+                res = await asyncio.gather(pollers(url, n // 2, secs), streamers(url, n - n // 2, secs, counts))
+                return res[0]
 
-        load_lat = asyncio.run(loaded())
-        load_ticks = daemon.stats.values()
-        server.should_exit = True
-        th.join(5)
-        daemon.stop()
-        daemon.catalog.close()
-        inst.close()
+            load_lat = asyncio.run(loaded())
+            load_ticks = daemon.stats.values()
     print(f"daemon bench: real-time simulator, sample period {inst.sample_period * 1e3:.0f} ms, {secs:g} s per phase, "
           f"{n} clients under load ({n // 2} status pollers at <= 20/s each, {n - n // 2} event streams)")
     print(line("tick lateness, no clients", quiet_ticks))

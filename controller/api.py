@@ -15,7 +15,10 @@ import importlib
 import importlib.resources
 import json
 import math
-from collections.abc import AsyncIterator
+import socket
+import threading
+import time
+from collections.abc import AsyncIterator, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -311,6 +314,34 @@ _RUN_ID = {"name": "run_id", "in": "path", "required": True,
            "schema": {"type": "string", "pattern": r"^R\d{8}T\d{6}Z-[0-9a-f]{6}$"},
            "description": "a run ID the daemon issued"}
 _ERR = {"description": "error", "content": {"application/json": {"schema": {"$ref": "#/components/schemas/Error"}}}}
+
+
+@contextlib.contextmanager
+def serve_in_thread(daemon: Daemon) -> Iterator[str]:
+    """The daemon and its API on a free loopback port, the server in a thread (tests, benchmarks).
+
+    Yields the base URL; on leaving, the server, the control loop, the catalog and the instrument
+    are shut down in that order."""
+    import uvicorn
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    server = uvicorn.Server(uvicorn.Config(create_app(daemon, Policy(port=port)), host="127.0.0.1", port=port,
+                                           log_level="warning", lifespan="off", timeout_graceful_shutdown=1))
+    th = threading.Thread(target=server.run, daemon=True)
+    daemon.start()
+    th.start()
+    try:
+        while not server.started:
+            time.sleep(0.02)
+        yield f"http://127.0.0.1:{port}"
+    finally:
+        server.should_exit = True
+        th.join(5)
+        daemon.stop()
+        daemon.catalog.close()
+        daemon.instrument.close()
 
 
 def _op(summary: str, desc: str = "", *, params: list[dict[str, Any]] | None = None, body: str | None = None,

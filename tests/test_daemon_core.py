@@ -8,19 +8,16 @@ import logging
 import os
 import socket
 import tempfile
-import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
 
 import httpx
 import pytest
-import uvicorn
 
-from pycnoctl.controller.api import create_app
+from pycnoctl.controller.api import serve_in_thread
 from pycnoctl.controller.catalog import Catalog
 from pycnoctl.controller.daemon import Daemon, EventBus, attach_json_log, sd_notify, watchdog_interval
-from pycnoctl.controller.security import Policy
 from pycnoctl.drivers.simulated import build_sim_instrument
 
 
@@ -144,24 +141,9 @@ def test_a_run_that_does_not_complete_pauses_the_queue(tmp_path: Path) -> None:
 # ----------------------------------------------------------------------------- dropped stream clients
 @pytest.fixture
 def served(tmp_path: Path) -> Iterator[tuple[Daemon, str]]:
-    inst = build_sim_instrument(None, realtime=True)
-    d = Daemon(inst, tmp_path / "data")
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
-    server = uvicorn.Server(uvicorn.Config(create_app(d, Policy(port=port)), host="127.0.0.1", port=port,
-                                           log_level="warning", lifespan="off", timeout_graceful_shutdown=1))
-    th = threading.Thread(target=server.run, daemon=True)
-    d.start()
-    th.start()
-    while not server.started:
-        time.sleep(0.02)
-    yield d, f"http://127.0.0.1:{port}"
-    server.should_exit = True
-    th.join(5)
-    d.stop()
-    d.catalog.close()
-    inst.close()
+    d = Daemon(build_sim_instrument(None, realtime=True), tmp_path / "data")
+    with serve_in_thread(d) as url:
+        yield d, url
 
 
 def _p99(vals: list[float]) -> float:
