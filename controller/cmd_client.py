@@ -15,6 +15,7 @@ from typing import Any
 
 from pycnoctl.controller.cli import UsageError
 from pycnoctl.controller.client import DEFAULT_URL, DaemonClient, DaemonError
+from pycnoctl.controller.cmdutil import add_sample_args
 
 VERBS = ("submit", "status", "watch", "abort", "reset", "queue")
 
@@ -28,12 +29,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("submit", help="queue a run on the daemon", description=__doc__,
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("sequence", help="name of a shipped sequence, or a local sequence file whose text is sent")
-    p.add_argument("--sample", default="", metavar="ID", help="specimen identifier")
-    p.add_argument("--mass", metavar="VALUE", help="specimen mass, e.g. '19.62 g' (default unit g)")
-    p.add_argument("--u-mass", metavar="VALUE", help="standard uncertainty of the mass (default 0.1 mg)")
-    p.add_argument("--bulk-volume", metavar="VALUE", help="bulk (envelope) volume, e.g. '6 cm^3'")
-    p.add_argument("--operator", default="", help="who ran it")
-    p.add_argument("--expansion-volume", metavar="NAME", help="override the sequence's expansion volume")
+    add_sample_args(p, u_mass_default=None)  # the daemon takes 0.1 mg when none is sent
     p.add_argument("--note", default="", help="free text for the record")
     p.add_argument("--json", action="store_true", help="print the daemon's answer as JSON")
     _common(p)

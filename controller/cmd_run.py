@@ -15,7 +15,7 @@ import time
 from typing import Any
 
 from pycnoctl.controller.cli import UsageError
-from pycnoctl.controller.cmdutil import add_data_arg, add_instrument_args, open_instrument
+from pycnoctl.controller.cmdutil import add_data_arg, add_instrument_args, add_sample_args, open_instrument
 
 EXIT = {"completed": 0, "fault": 3, "aborted": 4, "interrupted": 4}
 
@@ -26,13 +26,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("sequence", help="sequence file, or the name of a shipped one (e.g. grain-volume)")
     add_instrument_args(p)
     add_data_arg(p)
-    p.add_argument("--sample", default="", metavar="ID", help="specimen identifier for the record")
-    p.add_argument("--mass", metavar="VALUE", help="specimen mass for the density, e.g. '19.62 g' (default unit g)")
-    p.add_argument("--u-mass", metavar="VALUE", default="0.1 mg",
-                   help="standard uncertainty of the mass (default 0.1 mg)")
-    p.add_argument("--bulk-volume", metavar="VALUE", help="bulk (envelope) volume for the porosity, e.g. '6 cm^3'")
-    p.add_argument("--operator", default="", help="who ran it, for the record")
-    p.add_argument("--expansion-volume", metavar="NAME", help="override the sequence's expansion volume")
+    add_sample_args(p, u_mass_default="0.1 mg")
     p.add_argument("--json", action="store_true", help="print the run summary as JSON instead of tables")
     p.add_argument("--quiet", action="store_true", help="no live view")
     p.set_defaults(func=main)

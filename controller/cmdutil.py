@@ -21,6 +21,17 @@ def add_instrument_args(p: argparse.ArgumentParser, *, realtime: bool = True) ->
                        help="with --sim --realtime: simulated seconds per wall second (default 1)")
 
 
+def add_sample_args(p: argparse.ArgumentParser, *, u_mass_default: str | None) -> None:
+    """What the operator says about the specimen and the run, the same for `run` and `submit`."""
+    p.add_argument("--sample", default="", metavar="ID", help="specimen identifier for the record")
+    p.add_argument("--mass", metavar="VALUE", help="specimen mass for the density, e.g. '19.62 g' (default unit g)")
+    p.add_argument("--u-mass", metavar="VALUE", default=u_mass_default,
+                   help="standard uncertainty of the mass (default 0.1 mg)")
+    p.add_argument("--bulk-volume", metavar="VALUE", help="bulk (envelope) volume for the porosity, e.g. '6 cm^3'")
+    p.add_argument("--operator", default="", help="who ran it, for the record")
+    p.add_argument("--expansion-volume", metavar="NAME", help="override the sequence's expansion volume")
+
+
 def add_data_arg(p: argparse.ArgumentParser) -> None:
     p.add_argument("--data", metavar="DIR",
                    help="folder for run records and the catalog (default $PYCNOCTL_DATA or ./pycnoctl-data)")
