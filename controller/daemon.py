@@ -405,10 +405,6 @@ class Daemon:
             if cmd.future.set_running_or_notify_cancel():
                 cmd.future.set_exception(RuntimeError(why))
 
-    def reset_interlock(self, timeout: float = 5.0) -> tuple[bool, str]:
-        """Operator reset: (accepted, reason). Refused while a run is active or the condition persists."""
-        return self.submit_reset().result(timeout)
-
     def submit_reset(self) -> concurrent.futures.Future[tuple[bool, str]]:
         def do(c: Controller) -> tuple[bool, str]:
             if c.engine is not None and not c.engine.terminal:

@@ -469,10 +469,6 @@ def load_instrument_config(path: str | Path) -> InstrumentConfig:
     return cfg.model_copy(update=updates) if updates else cfg
 
 
-def config_warnings(cfg: InstrumentConfig) -> list[str]:
-    return [f"{'.'.join(map(str, loc)) or '<top>'}: {msg}" for loc, msg in cfg.findings()[1]]
-
-
 # -- building ---------------------------------------------------------------------------------------
 
 class _Opened:

@@ -41,10 +41,3 @@ class SimClock:
             return
         with self._lock:
             self._t += dt
-
-    def advance_to(self, t: float) -> None:
-        """Simulated mode: jump forward to t (never backwards)."""
-        if self.realtime:
-            raise RuntimeError("a real-time clock cannot be moved")
-        with self._lock:
-            self._t = max(self._t, float(t))

@@ -343,10 +343,6 @@ class FakeDevice:
         assert self._listener is not None
         return f"socket://127.0.0.1:{self._listener.getsockname()[1]}"
 
-    @property
-    def pty_path(self) -> str | None:
-        return os.readlink(self._stable) if self.link == "pty" else None
-
     def _open_pty(self) -> None:
         master, slave = os.openpty()
         tty.setraw(slave)

@@ -152,14 +152,6 @@ class GasNetwork:
     def _refresh_active(self) -> None:
         self._active = [lk for lk in self.links if lk.active]
 
-    def set_open(self, link: int, is_open: bool) -> None:
-        self.links[link].open = bool(is_open)
-        self._refresh_active()
-
-    def set_conductance(self, link: int, conductance: float) -> None:
-        self.links[link].conductance = max(0.0, float(conductance))
-        self._refresh_active()
-
     def eos_pressure(self, n: float, temp: float, volume: float) -> tuple[float, float]:
         """(P, Z) of n mol at temp in volume, inverting n = P V/(Z(P,T) R T) exactly."""
         rho = n / volume
@@ -265,15 +257,6 @@ class GasNetwork:
             lift = min(max((dp - lk.relief_reseat) / span, 0.0), 1.0)
             lk.open = lift > 0.0
             lk.cda = lk.relief_cda * lift
-
-    def flowing(self) -> bool:
-        """True when some active link carries gas now (used to skip work when nothing flows)."""
-        for lk in self._active:
-            if lk.relief_set is not None and not lk.open:
-                continue
-            if self.P[lk.a] != self.P[lk.b]:
-                return True
-        return False
 
     def link_conductance(self, lk: Link) -> tuple[int, int, float]:
         """(upstream, downstream, secant conductance g = flow/dp in mol/(s Pa)) at the present state."""
