@@ -173,7 +173,12 @@ def test_a_reset_is_refused_while_the_condition_persists_and_never_restarts(tmp_
     assert controller.monitor.latched is not None
     bench.advance(60.0)  # the fault clears; the system has vented
     assert controller.reset() is True
-    assert controller.engine is None  # nothing restarted
+    for _ in range(50):  # the loop goes on: nothing restarts, no valve leaves the safe state
+        controller.tick()
+        inst = controller.instrument
+        inst.clock.sleep(inst.sample_period)
+    assert controller.engine is None
+    assert bench.actual_valves()["inlet"] is False and bench.actual_valves()["vent"] is True
 
 
 def test_stuck_open_inlet_is_caught(tmp_path):
@@ -201,7 +206,9 @@ def test_state_machine_table_has_no_auto_transitions_and_fault_from_everywhere()
     inst = build_sim_instrument()
     prepared = prepare(RunRequest("grain-volume"), inst)
     engine = RunEngine(prepared.sequence, inst, expansion_volume=prepared.expansion_volume)
-    assert not hasattr(engine, "to_done") and not hasattr(engine, "to_fault_state")
+    # transitions would add to_<state>() for every state; with them off none exists (to_fault is our own
+    # method that goes through the 'fail' trigger)
+    assert not any(hasattr(engine, f"to_{s}") for s in ("idle", "purge", "vent", "fill", "done", "aborted"))
     fail = next(t for t in TRANSITIONS if t["trigger"] == "fail")
     assert set(fail["source"]) == {s for s in engine.machine.states if s not in ("done", "fault", "aborted")}
     engine._fire("filled")  # not a trigger of idle: logged and ignored, the state stays
@@ -225,7 +232,8 @@ def test_abort_keeps_the_record_and_the_safe_state(tmp_path):
     run = load_run(tmp_path / "runs" / summary["run_id"])
     assert run.n_samples > 600 and run.trace["state"][-1] == "aborted"
     assert catalog.get_run(summary["run_id"]).status == "aborted"
-    assert math.isnan(run.trace["pressure_pa"][0]) is False
+    assert set(run.trace["pressure_valid"]) == {"valid"}  # every recorded sample of a healthy run is valid
+    assert not any(math.isnan(p) for p in run.trace["pressure_pa"])
 
 
 def test_stop_on_converge_ends_the_run_early(tmp_path):
