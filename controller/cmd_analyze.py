@@ -67,7 +67,7 @@ def _chambers(args: argparse.Namespace, stored: dict[str, Any], root: Any) -> An
 def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.analysis import reanalyze
     from pycnoctl.controller.records import load_run
-    from pycnoctl.controller.runs import _jsonable, data_dir
+    from pycnoctl.controller.runs import data_dir, jsonable
     from pycnoctl.controller.sequence import load_sequence, resolve_sequence, sequence_from_text
 
     root = data_dir(args.data)
@@ -101,7 +101,7 @@ def main(args: argparse.Namespace) -> int:
 
         rho, u_rho = density(res.volume_m3, res.u_volume_m3, mass * 1e-3, 0.0)
         out["density_g_cm3"], out["density_u_g_cm3"] = rho / 1e3, res.k * u_rho / 1e3
-    out = _jsonable(out)
+    out = jsonable(out)
     if args.save:
         (folder / "reanalysis.json").write_text(json.dumps(out, indent=2) + "\n", encoding="utf-8")
     if args.json:

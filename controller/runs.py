@@ -85,25 +85,26 @@ def prepare(request: RunRequest, instrument: Instrument, catalog: Catalog | None
     return PreparedRun(request, seq, choice, warnings)
 
 
-def _jsonable(x: Any) -> Any:
+def jsonable(x: Any) -> Any:
+    """Plain JSON data from dataclasses, pydantic models, tuples and non-finite floats (as null)."""
     if dataclasses.is_dataclass(x) and not isinstance(x, type):
-        return _jsonable(dataclasses.asdict(x))
+        return jsonable(dataclasses.asdict(x))
     if isinstance(x, dict):
-        return {str(k): _jsonable(v) for k, v in x.items()}
+        return {str(k): jsonable(v) for k, v in x.items()}
     if isinstance(x, (list, tuple)):
-        return [_jsonable(v) for v in x]
+        return [jsonable(v) for v in x]
     if isinstance(x, float) and not math.isfinite(x):
         return None
     if isinstance(x, (str, int, float, bool)) or x is None:
         return x
     if hasattr(x, "model_dump"):
-        return _jsonable(x.model_dump(mode="json"))
+        return jsonable(x.model_dump(mode="json"))
     return str(x)
 
 
 def instrument_description(instrument: Instrument) -> dict[str, Any]:
     """What the record keeps about the instrument: enough to recompute the run later."""
-    return _jsonable({
+    return jsonable({
         "name": instrument.name,
         "gas": instrument.gas,
         "roles": instrument.roles,
@@ -136,7 +137,7 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
         "sequence": {"name": seq.name, "kind": seq.kind, "file": str(seq.path) if seq.path else None,
                      "text": seq.raw_text, "parsed": seq.model_dump(mode="json")},
         "instrument": instrument_description(instrument),
-        "calibration": _jsonable(cal),
+        "calibration": jsonable(cal),
         "software": {"name": "pycnoctl", "version": _version()},
         "gas": seq.gas,
         "expansion_volume": prepared.expansion_volume,
@@ -163,7 +164,7 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
             "volume_cm3": res.volume_m3 * 1e6, "volume_u_cm3": res.U_volume_m3 * 1e6,
             "volume_u_std_cm3": res.u_volume_m3 * 1e6, "k": res.k, "sd_cm3": res.sd_m3 * 1e6,
             "rsd": res.rsd, "converged": res.converged, "outliers": res.outliers, "n_kept": res.n_kept,
-            "budget": _jsonable(res.as_dict()["budget"]),
+            "budget": jsonable(res.as_dict()["budget"]),
         })
         if res.density_kg_m3 is not None:
             out["density_g_cm3"] = res.density_kg_m3 / 1e3
@@ -173,7 +174,7 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
 
             phi, u_phi = porosity(req.bulk_volume, 0.0, res.volume_m3, res.u_volume_m3)
             out["porosity"], out["porosity_u"] = phi, res.k * u_phi
-    return _jsonable(out)
+    return jsonable(out)
 
 
 def _version() -> str:
@@ -228,7 +229,7 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
                 for w in late:
                     recorder.event("warning", inst.clock.now(), w)
                 summary["warnings"].extend(late)
-                summary["calibration"]["record"] = _jsonable(cal_use.describe())
+                summary["calibration"]["record"] = jsonable(cal_use.describe())
             recorder.write_cycles([_cycle_record(c) for c in summary["cycles"]])
             recorder.write_summary(
                 sequence=summary["sequence"], sequence_text=seq.raw_text or "",
