@@ -408,7 +408,7 @@ class _Syncer:
         self._interval = interval
         self._last = time.monotonic()
         self._kick = threading.Event()
-        self._stopping = False
+        self._stop = threading.Event()
         self.error: BaseException | None = None
         self.count = 0
         self._thread = threading.Thread(target=self._run, name="record-fsync", daemon=True)
@@ -420,13 +420,12 @@ class _Syncer:
     def _run(self) -> None:
         while True:
             self._kick.wait(self._interval)
-            if self._stopping:
+            if self._stop.is_set():
                 return
             gap = time.monotonic() - self._last
-            if gap < self.MIN_GAP:
-                time.sleep(self.MIN_GAP - gap)
-                if self._stopping:
-                    return
+            # the coalescing pause waits on the stop flag, so close() is never held up by it
+            if gap < self.MIN_GAP and self._stop.wait(self.MIN_GAP - gap):
+                return
             self._kick.clear()
             for fh in self._files:
                 try:
@@ -439,7 +438,7 @@ class _Syncer:
             self._last = time.monotonic()
 
     def stop(self) -> None:
-        self._stopping = True
+        self._stop.set()
         self._kick.set()
         self._thread.join(timeout=10.0)
 

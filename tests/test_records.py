@@ -138,6 +138,19 @@ def test_background_fsync_keeps_the_caller_off_the_disk(tmp_path, monkeypatch):
     assert callers.count(me) == 2  # close() makes both files durable itself
 
 
+def test_close_does_not_wait_out_the_fsync_coalescing_pause(tmp_path, monkeypatch):
+    # A run that ends right after a state change must not sit in close() until the syncer's
+    # pause between fsyncs is over: with a 30 s pause, close() has to return at once.
+    monkeypatch.setattr(records._Syncer, "MIN_GAP", 30.0)
+    rec = make(tmp_path, fsync_interval=0.01)
+    rec.event("state", 0.0, "fill -> settle")  # the syncer starts its pause
+    time.sleep(0.05)
+    t0 = time.monotonic()
+    rec.close()
+    assert time.monotonic() - t0 < 5.0
+    assert records.load_run(rec.folder).events[-1]["message"] == "fill -> settle"
+
+
 def test_disk_full_on_trace_raises_record_write_error(tmp_path):
     rec = make(tmp_path)
     rec._trace = open("/dev/full", "w", newline="")  # noqa: SIM115 - every write fails with ENOSPC
