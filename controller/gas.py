@@ -29,6 +29,7 @@ same equations of state (5/3 for the monatomic gases).
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 #: Molar gas constant, J/(mol K): N_A k with both exact since the 2019 SI (CODATA 2018 prints it
@@ -98,6 +99,27 @@ class Gas:
     def mass_density(self, P: float, T: float) -> float:
         """Mass density, kg/m^3."""
         return self.molar_mass * self.molar_density(P, T)
+
+
+def virial_function(gas: Gas) -> Callable[[float], tuple[float, float]] | None:
+    """A function T -> (B(T), C(T)) for the gas, or None for an ideal gas.
+
+    Why: the simulator evaluates its equation of state for every volume on every step; one call that
+    shares T_FIT/T between both series (unrolled for the four-term fits of the table) costs a third
+    of two method calls.  The arithmetic is that of Gas.B and Gas.C, to the last bit."""
+    if gas.is_ideal:
+        return None
+    bc, cc = gas.b_coeffs, gas.c_coeffs
+    if len(bc) != 4 or len(cc) != 4:
+        return lambda t: (gas.B(t), gas.C(t))
+    b0, b1, b2, b3 = bc
+    c0, c1, c2, c3 = cc
+
+    def pair(t: float) -> tuple[float, float]:
+        x = T_FIT / t
+        return ((((b3 * x + b2) * x + b1) * x + b0) * _CM3, (((c3 * x + c2) * x + c1) * x + c0) * _CM6)
+
+    return pair
 
 
 _TABLE: dict[str, Gas] = {

@@ -13,7 +13,7 @@ import pytest
 CP = pytest.importorskip("CoolProp.CoolProp")
 scipy_constants = pytest.importorskip("scipy.constants")
 
-from pycnoctl.controller.gas import GASES, T_FIT, R, UnknownGas, get_gas  # noqa: E402
+from pycnoctl.controller.gas import GASES, T_FIT, R, UnknownGas, get_gas, virial_function  # noqa: E402
 
 FLUIDS = {"helium": "Helium", "nitrogen": "Nitrogen", "argon": "Argon", "air": "Air"}
 B_TOL = {"helium": 0.05e-6, "nitrogen": 0.1e-6, "argon": 0.1e-6, "air": 0.1e-6}  # m^3/mol (brief)
@@ -128,3 +128,13 @@ def _refit() -> None:  # pragma: no cover - maintenance helper
 
 if __name__ == "__main__" and "--refit" in sys.argv:
     _refit()
+
+
+def test_virial_function_is_gas_B_and_C_to_the_last_bit():
+    # the simulator's one-call form must count moles exactly as the measurement equations do
+    for name in ("helium", "nitrogen", "argon", "air"):
+        gas = get_gas(name)
+        pair = virial_function(gas)
+        for temp in np.linspace(240.0, 360.0, 97):
+            assert pair(float(temp)) == (gas.B(float(temp)), gas.C(float(temp)))
+    assert virial_function(get_gas("ideal")) is None
