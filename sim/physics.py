@@ -32,7 +32,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
-from pycnoctl.controller.gas import Gas, R
+from pycnoctl.controller.gas import Gas, R, virial_function
 
 #: Within this relative pressure difference the nozzle law is replaced by a linear one (laminar-like
 #: approach to equilibrium).  Its flow at the band edge is kept, so the law stays continuous.
@@ -51,26 +51,58 @@ def choked_mass_flux_factor(gamma: float) -> float:
     return math.sqrt(gamma) * (2.0 / (gamma + 1.0)) ** ((gamma + 1.0) / (2.0 * (gamma - 1.0)))
 
 
+class Nozzle:
+    """The isentropic nozzle law of one gas, with its constants worked out once.
+
+    Why a class: the integrator evaluates the law for every open restriction twice a step, and the
+    exponents, the choked factor and the flow at the edge of the linear band depend only on the gas."""
+
+    __slots__ = ("_choke", "_edge", "_k_sub", "_k_temp", "_r_crit", "_x1", "_x2", "r_specific")
+
+    def __init__(self, gamma: float, r_specific: float) -> None:
+        self.r_specific = r_specific
+        self._r_crit = critical_pressure_ratio(gamma)
+        self._choke = choked_mass_flux_factor(gamma)
+        self._x1 = 2.0 / gamma
+        self._x2 = (gamma + 1.0) / gamma
+        self._k_sub = 2.0 * gamma
+        self._k_temp = (gamma - 1.0) * r_specific
+        r_edge = 1.0 - LINEAR_BAND
+        # subsonic flow at the band edge is cda p_up edge / sqrt(T_up)
+        self._edge = math.sqrt(self._k_sub / self._k_temp * (r_edge**self._x1 - r_edge**self._x2))
+
+    def mass_flow(self, cda: float, p_up: float, t_up: float, p_down: float) -> float:
+        """Mass flow (kg/s, >= 0) through effective area cda = Cd*A (m^2).
+
+        Choked: Cd A p0 sqrt(gamma/(R_s T0)) (2/(gamma+1))^((gamma+1)/(2(gamma-1)));
+        subsonic: Cd A p0 sqrt(2 gamma/((gamma-1) R_s T0) (r^(2/gamma) - r^((gamma+1)/gamma))).
+        Within LINEAR_BAND of r = 1 the flow falls linearly to zero from its value at the band edge.
+        """
+        if p_up <= 0.0 or p_down >= p_up:
+            return 0.0
+        r = p_down / p_up
+        if r <= self._r_crit:
+            return cda * p_up * self._choke / math.sqrt(self.r_specific * t_up)
+        if r >= 1.0 - LINEAR_BAND:
+            return cda * p_up * self._edge / math.sqrt(t_up) * (1.0 - r) / LINEAR_BAND
+        psi = r**self._x1 - r**self._x2
+        return cda * p_up * math.sqrt(self._k_sub / (self._k_temp * t_up) * psi)
+
+    def conductance(self, cda: float, p_up: float, t_up: float, p_down: float) -> float:
+        """Secant conductance, mass flow / (p_up - p_down) in kg/(s Pa), for p_up > 0.
+
+        Within the linear band it is the flow at the band edge over the band, whatever the difference
+        (so it stays finite as the pressures meet)."""
+        dp = p_up - p_down
+        if dp <= LINEAR_BAND * p_up:
+            return cda * self._edge / (LINEAR_BAND * math.sqrt(t_up))
+        return self.mass_flow(cda, p_up, t_up, p_down) / dp
+
+
 def nozzle_mass_flow(cda: float, p_up: float, t_up: float, p_down: float, gamma: float,
                      r_specific: float) -> float:
-    """Isentropic nozzle mass flow (kg/s, >= 0) through effective area cda = Cd*A (m^2).
-
-    Choked: Cd A p0 sqrt(gamma/(R_s T0)) (2/(gamma+1))^((gamma+1)/(2(gamma-1)));
-    subsonic: Cd A p0 sqrt(2 gamma/((gamma-1) R_s T0) (r^(2/gamma) - r^((gamma+1)/gamma))).
-    Within LINEAR_BAND of r = 1 the flow falls linearly to zero.
-    """
-    if p_up <= 0.0 or p_down >= p_up:
-        return 0.0
-    r = p_down / p_up
-    if r <= critical_pressure_ratio(gamma):
-        return cda * p_up * choked_mass_flux_factor(gamma) / math.sqrt(r_specific * t_up)
-    r_edge = 1.0 - LINEAR_BAND
-    rr = min(r, r_edge)
-    psi = rr ** (2.0 / gamma) - rr ** ((gamma + 1.0) / gamma)
-    m = cda * p_up * math.sqrt(2.0 * gamma / ((gamma - 1.0) * r_specific * t_up) * max(psi, 0.0))
-    if r > r_edge:
-        m *= (1.0 - r) / LINEAR_BAND
-    return m
+    """Isentropic nozzle mass flow (kg/s, >= 0) through effective area cda = Cd*A (m^2): see Nozzle."""
+    return Nozzle(gamma, r_specific).mass_flow(cda, p_up, t_up, p_down)
 
 
 @dataclass
@@ -135,7 +167,10 @@ class GasNetwork:
         self.cv = R / (g.gamma - 1.0)
         self.cp = g.gamma * self.cv
         self.r_specific = R / g.molar_mass
+        nozzle = Nozzle(g.gamma, self.r_specific)
+        self._nozzle, self._nozzle_g = nozzle.mass_flow, nozzle.conductance
         self.index = {nd.name: i for i, nd in enumerate(self.nodes)}
+        self._virial = virial_function(g)
         k = len(self.nodes)
         self.n = [0.0] * k
         self.U = [0.0] * k
@@ -145,6 +180,7 @@ class GasNetwork:
         self.wall = [293.15] * k
         self.steps = 0
         self._fixed = [nd.fixed for nd in self.nodes]
+        self._volume = [nd.volume for nd in self.nodes]
         self._var = [i for i, nd in enumerate(self.nodes) if not nd.fixed]
         self._refresh_active()
 
@@ -155,11 +191,10 @@ class GasNetwork:
     def eos_pressure(self, n: float, temp: float, volume: float) -> tuple[float, float]:
         """(P, Z) of n mol at temp in volume, inverting n = P V/(Z(P,T) R T) exactly."""
         rho = n / volume
-        g = self.gas
-        if g.is_ideal or rho == 0.0:
+        if self._virial is None or rho == 0.0:
             return rho * R * temp, 1.0
-        b = g.B(temp)
-        a = (g.C(temp) - b * b) * rho * rho
+        b, c = self._virial(temp)
+        a = (c - b * b) * rho * rho
         q = 1.0 - b * rho
         z = 2.0 / (q + math.sqrt(q * q - 4.0 * a))
         return z * rho * R * temp, z
@@ -173,7 +208,7 @@ class GasNetwork:
         n = self.gas.moles(pressure, nd.volume, temp)
         self.n[i] = n
         self.U[i] = n * self.cv * temp
-        self._update(i)
+        self._update_all()
 
     def set_fixed(self, i: int, pressure: float, temp: float) -> None:
         self.P[i] = pressure
@@ -184,14 +219,19 @@ class GasNetwork:
         for i in self._var:
             self.wall[i] = temp
 
-    def _update(self, i: int) -> None:
-        n = self.n[i]
-        if n <= 0.0:
-            self.P[i], self.T[i], self.Z[i] = 0.0, self.wall[i], 1.0
-            return
-        t = self.U[i] / (n * self.cv)
-        self.T[i] = t
-        self.P[i], self.Z[i] = self.eos_pressure(n, t, self.nodes[i].volume)
+    def _update_all(self) -> None:
+        """Temperature, pressure and Z of every variable node from its moles and energy."""
+        n_, U, P, T, Z, wall, vol = self.n, self.U, self.P, self.T, self.Z, self.wall, self._volume
+        cv = self.cv
+        eos = self.eos_pressure
+        for i in self._var:
+            n = n_[i]
+            if n <= 0.0:
+                P[i], T[i], Z[i] = 0.0, wall[i], 1.0
+                continue
+            t = U[i] / (n * cv)
+            T[i] = t
+            P[i], Z[i] = eos(n, t, vol[i])
 
     def snapshot(self) -> NetworkState:
         relief = [lk.open for lk in self.links if lk.relief_set is not None]
@@ -204,8 +244,7 @@ class GasNetwork:
         for lk in self.links:
             if lk.relief_set is not None:
                 lk.open = next(it)
-        for i in self._var:
-            self._update(i)
+        self._update_all()
 
     def total_moles(self) -> float:
         return math.fsum(self.n[i] for i in self._var)
@@ -222,10 +261,7 @@ class GasNetwork:
         if p_up <= p_dn:
             return up, dn, 0.0
         t_up = self.T[up]
-        if lk.open and lk.cda > 0.0:
-            f = nozzle_mass_flow(lk.cda, p_up, t_up, p_dn, self.gamma, self.r_specific) / self.gas.molar_mass
-        else:
-            f = 0.0
+        f = self._nozzle(lk.cda, p_up, t_up, p_dn) / self.gas.molar_mass if lk.open and lk.cda > 0.0 else 0.0
         if lk.conductance > 0.0:
             f += lk.conductance * (p_up - p_dn) / (R * t_up)
         return up, dn, f
@@ -258,25 +294,6 @@ class GasNetwork:
             lk.open = lift > 0.0
             lk.cda = lk.relief_cda * lift
 
-    def link_conductance(self, lk: Link) -> tuple[int, int, float]:
-        """(upstream, downstream, secant conductance g = flow/dp in mol/(s Pa)) at the present state."""
-        P, T = self.P, self.T
-        up, dn = (lk.a, lk.b) if P[lk.a] >= P[lk.b] else (lk.b, lk.a)
-        p_up = P[up]
-        t_up = T[up]
-        dp = p_up - P[dn]
-        g = 0.0
-        if lk.open and lk.cda > 0.0 and p_up > 0.0:
-            band = LINEAR_BAND * p_up
-            if dp > band:
-                g = nozzle_mass_flow(lk.cda, p_up, t_up, P[dn], self.gamma, self.r_specific) / dp
-            else:  # linear law: the flow at the band edge over the band
-                g = nozzle_mass_flow(lk.cda, p_up, t_up, p_up - band, self.gamma, self.r_specific) / band
-            g /= self.gas.molar_mass
-        if lk.conductance > 0.0:
-            g += lk.conductance / (R * t_up)
-        return up, dn, g
-
     def _flow_step(self, h: float) -> bool:
         """Move gas over all active links for h seconds by a linearly implicit (backward Euler) step.
 
@@ -291,13 +308,22 @@ class GasNetwork:
         gamma = self.gamma
         links = []
         pos: dict[int, int] = {}
+        cond = self._nozzle_g
+        molar_mass = self.gas.molar_mass
         for lk in self._active:
             if lk.relief_set is not None and not lk.open:
                 continue
-            up, dn, g = self.link_conductance(lk)
-            if g <= 0.0 or P[up] == P[dn]:
+            # secant conductance g = flow/dp in mol/(s Pa) at the present state
+            up, dn = (lk.a, lk.b) if P[lk.a] >= P[lk.b] else (lk.b, lk.a)
+            p_up, p_dn, t_up = P[up], P[dn], T[up]
+            if p_up == p_dn:
                 continue
-            links.append((up, dn, h * g, T[up]))
+            g = cond(lk.cda, p_up, t_up, p_dn) / molar_mass if lk.open and lk.cda > 0.0 and p_up > 0.0 else 0.0
+            if lk.conductance > 0.0:
+                g += lk.conductance / (R * t_up)
+            if g <= 0.0:
+                continue
+            links.append((up, dn, h * g, t_up))
             for i in (up, dn):
                 if not fixed[i] and i not in pos:
                     pos[i] = len(pos)
@@ -427,8 +453,7 @@ class GasNetwork:
         if self._flow_step(h):
             touched = True
         if touched:
-            for i in self._var:
-                self._update(i)
+            self._update_all()
         return touched
 
 

@@ -11,7 +11,15 @@ import scipy.constants as sc
 from pycnoctl.controller.gas import get_gas
 from pycnoctl.controller.volume import expansion_pressure
 from pycnoctl.sim.bench import SimBench
-from pycnoctl.sim.physics import GasNetwork, Link, Node, critical_pressure_ratio, nozzle_mass_flow
+from pycnoctl.sim.physics import (
+    LINEAR_BAND,
+    GasNetwork,
+    Link,
+    Node,
+    Nozzle,
+    critical_pressure_ratio,
+    nozzle_mass_flow,
+)
 from pycnoctl.sim.testing import closed, fill, make
 
 HE = get_gas("helium")
@@ -169,6 +177,21 @@ def test_subsonic_nozzle_formula():
     rc = critical_pressure_ratio(g)
     assert nozzle_mass_flow(cda, p0, t0, rc * p0 * 1.000001, g, rs) == pytest.approx(
         nozzle_mass_flow(cda, p0, t0, rc * p0, g, rs), rel=1e-4)
+
+
+def test_linear_band_meets_the_subsonic_law_at_its_edge():
+    # design property (no outside source): the near-equilibrium linear law starts from the subsonic
+    # flow at the band edge, falls linearly to zero, and the implicit step's secant conductance inside
+    # the band is that edge flow over the band
+    nz = Nozzle(HE.gamma, sc.R / HE.molar_mass)
+    cda, p0, t0 = 1e-7, 2e5, 300.0
+    edge = nz.mass_flow(cda, p0, t0, (1 - LINEAR_BAND) * p0)
+    assert edge == pytest.approx(nz.mass_flow(cda, p0, t0, (1 - LINEAR_BAND) * p0 * (1 - 1e-9)), rel=1e-6)
+    assert nz.mass_flow(cda, p0, t0, (1 - 0.5 * LINEAR_BAND) * p0) == pytest.approx(0.5 * edge, rel=1e-9)
+    for dp in (1.0, 100.0, 0.9 * LINEAR_BAND * p0):
+        assert nz.conductance(cda, p0, t0, p0 - dp) == pytest.approx(edge / (LINEAR_BAND * p0), rel=1e-9)
+    dp = 0.3 * p0  # outside the band the secant is the flow over the difference
+    assert nz.conductance(cda, p0, t0, p0 - dp) == pytest.approx(nz.mass_flow(cda, p0, t0, p0 - dp) / dp, rel=1e-12)
 
 
 def test_simulated_choked_inflow_rate():
