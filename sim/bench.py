@@ -14,10 +14,11 @@ threads.
 from __future__ import annotations
 
 import math
+import operator
 import threading
 from collections.abc import Mapping
-from dataclasses import dataclass
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 
@@ -31,12 +32,11 @@ from pycnoctl.sim.sensors import SensorModel
 SUPPLY, AMBIENT = 0, 1
 
 
-@dataclass(frozen=True)
-class SensorSample:
+class SensorSample(NamedTuple):
     """What a sensor delivers: time, value (NaN if none) and the mode it is in.
 
     mode: 'ok', 'frozen' (a stuck but plausible value), 'silent', 'garbled', 'nan', 'disconnected',
-    'out_of_range' (output at a saturation rail).
+    'out_of_range' (output at a saturation rail).  A named tuple: one is made on every read.
     """
 
     t: float
@@ -131,6 +131,8 @@ class SimBench:
         p = cfg.pressure
         span = p.full_scale - p.range_min
         self.p_low, self.p_high = p.range_min - 0.05 * span, p.full_scale + 0.05 * span
+        self.pressure_is_gauge = p.kind == "gauge"
+        self._p_node = self.node_index[p.node]
         self.p_sensor = SensorModel(noise=p.noise, zero_offset=p.zero_offset, resolution=p.resolution,
                                     update_rate=p.update_rate, lag=p.lag, low=self.p_low,
                                     high=self.p_high, rng=np.random.default_rng(seeds[0]))
@@ -218,16 +220,15 @@ class SimBench:
     def _control(self, h: float) -> None:
         """Choose the next step from the curvature of the pressures (interpolation error ~ h^2 P''/8)."""
         p0, p1 = self._P0, self._P1
-        var = self.net._var
-        slopes = [(p1[i] - p0[i]) / h for i in var]
+        slopes = [(p1[i] - p0[i]) / h for i in self.net._var]
         err = 0.0
         if self._slopes is not None:
-            d = max((abs(a - b) for a, b in zip(slopes, self._slopes, strict=True)), default=0.0)
+            d = max(map(abs, map(operator.sub, slopes, self._slopes)), default=0.0)
             err = d * h * h / (4.0 * (h + self._h_prev))
         sv = self.config.solver
         # absolute accuracy for slow drifts; during a fast transient (a 50 kPa jump within 10 ms)
         # a share of the change per step is enough - no transducer resolves that shape anyway
-        dmax = max((abs(s) for s in slopes), default=0.0) * h
+        dmax = max(map(abs, slopes), default=0.0) * h
         tol = max(sv.interp_tol, sv.interp_rel * dmax)
         fac = 2.0 if err <= 0.0 else min(2.0, max(0.2, 0.9 * math.sqrt(tol / err)))
         self._slopes, self._h_prev = slopes, h
@@ -324,6 +325,8 @@ class SimBench:
             for name in states:
                 if name not in self._commanded:
                     raise UnknownValve(name)
+            if all(bool(want) == self._commanded[name] for name, want in states.items()):
+                return  # a command that changes nothing (a repeated safe state) leaves the integration alone
             t = self.clock.now()
             self._cut(t)
             opened = []
@@ -414,9 +417,6 @@ class SimBench:
             self._sync(self.clock.now())
             return self._p_mode
 
-    @property
-    def pressure_is_gauge(self) -> bool:
-        return self.config.instruments.pressure.kind == "gauge"
 
     def read_pressure(self) -> SensorSample:
         """One transducer output now (gauge or absolute per config), Pa."""
@@ -428,9 +428,8 @@ class SimBench:
             mode = self._p_mode
             if mode in ("silent", "garbled", "nan"):
                 return SensorSample(t, math.nan, mode)
-            pcfg = self.config.instruments.pressure
-            x = self._interp(self._P0, self._P1, self.node_index[pcfg.node], t)
-            if pcfg.kind == "gauge":
+            x = self._interp(self._P0, self._P1, self._p_node, t)
+            if self.pressure_is_gauge:
                 x -= self.ambient_pressure(t)
             y = self.p_sensor.sample(t, x)
             if mode == "frozen":
