@@ -7,8 +7,9 @@ root/<run_id>/
   cycles.csv     one row per cycle, rewritten atomically whenever a cycle completes
   summary.json   sequence (parsed model and raw text), instrument, calibration, version, results
 
-Crash guarantee.  Every trace row and event line is written and then ``flush()``-ed, so it is
-in the operating system's page cache before ``sample()``/``event()`` returns: a crash of the
+Crash guarantee.  Every trace row goes to the operating system in one unbuffered write, and
+every event line is written and ``flush()``-ed, so each is in the page cache before
+``sample()``/``event()`` returns: a crash of the
 process (exception, SIGKILL) loses at most the row in flight, which ``load_run`` drops as a
 torn tail.  ``os.fsync`` runs on trace and events every ``fsync_interval`` seconds (wall time),
 promptly after every event, on ``sync()`` and on ``close()``: a power loss or kernel crash loses
@@ -147,6 +148,16 @@ def _clean_text(s: str) -> str:
     return s.replace("\r", " ").replace("\n", " ")
 
 
+def _write_all(fh: Any, data: bytes) -> None:
+    """All of data to an unbuffered file (a raw write may take only part of it)."""
+    view = memoryview(data)
+    while view:
+        n = fh.write(view)
+        if not n:
+            raise OSError(f"write to {getattr(fh, 'name', fh)!r} took no bytes")
+        view = view[n:]
+
+
 def _fsync_dir(path: Path) -> None:
     fd = os.open(path, os.O_RDONLY)
     try:
@@ -234,18 +245,23 @@ class RunRecorder:
         self.trace_path = self.folder / "trace.csv"
         self.events_path = self.folder / "events.jsonl"
         try:
-            # long-lived handles, closed in close()
-            self._trace = open(self.trace_path, "x", encoding="utf-8", newline="")  # noqa: SIM115
+            # long-lived handles, closed in close().  The trace is unbuffered: each row is one
+            # write() straight to the operating system, the cheapest form of "flushed as taken".
+            self._trace = open(self.trace_path, "xb", buffering=0)  # noqa: SIM115
             self._events = open(self.events_path, "x", encoding="utf-8", newline="")  # noqa: SIM115
-            self._csv = csv.writer(self._trace, lineterminator="\n")
-            self._csv.writerow(self.columns)
-            self._trace.flush()
+            header = io.StringIO()
+            csv.writer(header, lineterminator="\n").writerow(self.columns)
+            _write_all(self._trace, header.getvalue().encode())
             os.fsync(self._trace.fileno())
             _fsync_dir(self.folder)
         except OSError as exc:
             raise RecordWriteError("trace/events files", self.folder, exc) from exc
         self._last_sync = self._clock()
         self._syncer = _Syncer((self._trace, self._events), fsync_interval) if sync_in_background else None
+        # the text of fields that seldom change between rows, kept with what it was made from
+        self._valves_seen: dict[str, bool] | None = None
+        self._valves_text = ""
+        self._words: dict[str, str] = {}
 
     # ------------------------------------------------------------------ raw trace
     @property
@@ -266,16 +282,20 @@ class RunRecorder:
         """Append one sample row and flush it (an invalid reading is written as nan + its flag)."""
         temp = ("nan,absent" if temperature is None
                 else f"{float(temperature.value)!r},{temperature.validity.value}")
+        if valves != self._valves_seen:
+            self._valves_seen = dict(valves)
+            self._valves_text = ",".join("1" if valves.get(v, False) else "0" for v in self.valve_names)
+        word = self._words.get(state)
+        if word is None:
+            word = self._words[state] = _plain(state)
         # one line built directly (every field is a number or a plain word; free text goes through csv)
-        line = (f"{float(t)!r},{_plain(state)},{'' if cycle is None else int(cycle)},"
-                f"{','.join('1' if valves.get(v, False) else '0' for v in self.valve_names)},"
+        line = (f"{float(t)!r},{word},{'' if cycle is None else int(cycle)},{self._valves_text},"
                 f"{float(pressure.value)!r},{pressure.validity.value},{temp},"
-                f"{'nan' if ambient_pa is None else repr(float(ambient_pa))},{_plain(note)}\n")
+                f"{'nan' if ambient_pa is None else repr(float(ambient_pa))},{_plain(note) if note else ''}\n")
         if self._syncer is not None and self._syncer.error is not None:
             raise RecordWriteError("background fsync", self.trace_path, self._syncer.error)
         try:
-            self._trace.write(line)
-            self._trace.flush()
+            _write_all(self._trace, line.encode())
             if self._syncer is None:
                 now = self._clock()
                 if now - self._last_sync >= self.fsync_interval:
@@ -297,12 +317,10 @@ class RunRecorder:
             self._events.write(line + "\n")
             self._events.flush()
             if self._syncer is not None:
-                self._trace.flush()
                 self._syncer.request()
             else:
                 os.fsync(self._events.fileno())
                 if kind == "state":
-                    self._trace.flush()
                     os.fsync(self._trace.fileno())
                     self._last_sync = self._clock()
         except (OSError, ValueError) as exc:

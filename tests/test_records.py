@@ -153,8 +153,7 @@ def test_close_does_not_wait_out_the_fsync_coalescing_pause(tmp_path, monkeypatc
 
 def test_disk_full_on_trace_raises_record_write_error(tmp_path):
     rec = make(tmp_path)
-    rec._trace = open("/dev/full", "w", newline="")  # noqa: SIM115 - every write fails with ENOSPC
-    rec._csv = records.csv.writer(rec._trace, lineterminator="\n")
+    rec._trace = open("/dev/full", "wb", buffering=0)  # noqa: SIM115 - every write fails with ENOSPC
     with pytest.raises(RecordWriteError) as ei:
         rec.sample(1.5, "fill", 1, {}, Reading(1e5, "Pa", 1.5))
     assert "trace sample t=1.5" in str(ei.value)
