@@ -153,6 +153,9 @@ def _ssr_grid(s: np.ndarray, y: np.ndarray, taus: np.ndarray) -> np.ndarray:
     return np.maximum(ssr, 0.0)
 
 
+_FINE = 65  # points of the finer grid over the best bracket of the coarse one
+
+
 def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[float], *,
                            precise: bool = True) -> ExpFit:
     """Fit p = p_inf + A exp(-(t - t[0])/tau) by least squares.
@@ -160,8 +163,10 @@ def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[flo
     For each trial tau the model is linear in (p_inf, A), so only tau is searched: a log-spaced
     grid, golden-section refinement of the best bracket, then Gauss-Newton polishing of all three
     parameters, whose Jacobian also gives the standard errors.  No scipy needed.
-    ``precise=False`` stops the search at 0.1 % in tau and skips the polish: enough when only the
-    time constant's size is wanted (the settle uncertainty), at a fraction of the cost.
+    ``precise=False`` takes tau from a finer grid over the best bracket (about 0.1 % in tau, from
+    the vertex of a parabola through its best three points) and skips the golden section and the
+    polish: enough when only the time constant's size is wanted (the settle uncertainty), at a
+    fraction of the cost.
     """
     t_arr = np.asarray(t, dtype=float)
     p_arr = np.asarray(p, dtype=float)
@@ -191,24 +196,38 @@ def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[flo
     interior = 0 < k < grid.size - 1
     lo = math.log(grid[max(k - 1, 0)])
     hi = math.log(grid[min(k + 1, grid.size - 1)])
-    golden = (math.sqrt(5.0) - 1.0) / 2.0
-    c = hi - golden * (hi - lo)
-    d = lo + golden * (hi - lo)
-    fc = _ssr_for_tau(s, y, math.exp(c))[0]
-    fd = _ssr_for_tau(s, y, math.exp(d))[0]
-    tol = 1e-12 if precise else 1e-3
-    for _ in range(80):
-        if hi - lo < tol:
-            break
-        if fc < fd:
-            hi, d, fd = d, c, fc
-            c = hi - golden * (hi - lo)
-            fc = _ssr_for_tau(s, y, math.exp(c))[0]
-        else:
-            lo, c, fc = c, d, fd
-            d = lo + golden * (hi - lo)
-            fd = _ssr_for_tau(s, y, math.exp(d))[0]
-    tau = math.exp((lo + hi) / 2.0)
+    # a finer grid over the bracket narrows it 32 times in one array operation (a golden-section
+    # search needs seven sequential evaluations for that)
+    fine = np.linspace(lo, hi, _FINE)
+    fssr = _ssr_grid(s, y, np.exp(fine))
+    j = int(np.argmin(fssr))
+    lo, hi = float(fine[max(j - 1, 0)]), float(fine[min(j + 1, _FINE - 1)])
+    if precise:
+        golden = (math.sqrt(5.0) - 1.0) / 2.0
+        c = hi - golden * (hi - lo)
+        d = lo + golden * (hi - lo)
+        fc = _ssr_for_tau(s, y, math.exp(c))[0]
+        fd = _ssr_for_tau(s, y, math.exp(d))[0]
+        for _ in range(80):
+            if hi - lo < 1e-12:
+                break
+            if fc < fd:
+                hi, d, fd = d, c, fc
+                c = hi - golden * (hi - lo)
+                fc = _ssr_for_tau(s, y, math.exp(c))[0]
+            else:
+                lo, c, fc = c, d, fd
+                d = lo + golden * (hi - lo)
+                fd = _ssr_for_tau(s, y, math.exp(d))[0]
+        log_tau = (lo + hi) / 2.0
+    else:  # the vertex of the parabola through the fine grid's three best points is close enough
+        log_tau = float(fine[j])
+        if 0 < j < _FINE - 1:
+            f0, f1, f2 = float(fssr[j - 1]), float(fssr[j]), float(fssr[j + 1])
+            curv = f0 - 2.0 * f1 + f2
+            if curv > 0.0:
+                log_tau += 0.5 * (f0 - f2) / curv * float(fine[1] - fine[0])
+    tau = math.exp(log_tau)
     f_best, a, b = _ssr_for_tau(s, y, tau)
 
     # Gauss-Newton polish on (a, b, tau) and covariance from the Jacobian

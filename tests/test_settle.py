@@ -257,3 +257,15 @@ def test_rejects_invalid_or_backward_samples():
         det.feed(0.1, math.nan)
     with pytest.raises(ValueError):
         det.feed(0.0, 1.0)
+
+
+@pytest.mark.parametrize("tau", [0.7, 4.0, 15.0])
+def test_quick_fit_finds_the_same_time_constant_as_the_precise_one(tau):
+    # the settle uncertainty uses the quick fit's tau; it must be the least-squares tau, not a rough one
+    t = np.arange(100) * 0.1 + 1000.0
+    p = 130000 + 50 * np.exp(-(t - t[0]) / tau) + np.random.default_rng(1).normal(0, 0.5, t.size)
+    quick = fit_exponential_detail(t, p, precise=False)
+    full = fit_exponential_detail(t, p, precise=True)
+    assert quick.tau == pytest.approx(full.tau, rel=1e-4)
+    assert quick.tau == pytest.approx(tau, rel=0.05)  # and near the truth, given the noise
+    assert quick.sound and full.sound
