@@ -63,6 +63,7 @@ class SimBench:
         self._temp_step = 0.0
         self._amb_step = 0.0
         self._reg_fail: tuple[float, float] | None = None  # (since, rate)
+        self._boundary: tuple[float, float, float] | None = None  # (lab K, ambient Pa, supply Pa) last set
         self._build_network()
         self._build_sensors()
         self.schedule = FaultSchedule(cfg.faults)
@@ -178,11 +179,15 @@ class SimBench:
         return min(sup.set_pressure + rate * max(t - since, 0.0), ceiling)
 
     def _set_boundary(self, t: float) -> None:
-        net = self.net
         tl = self.lab_temperature(t)
         pa = self.ambient_pressure(t)
+        ps = pa + self.supply_gauge(t)
+        if (tl, pa, ps) == self._boundary:
+            return  # nothing moved since the last call (a lab without drift): twice every step
+        self._boundary = (tl, pa, ps)
+        net = self.net
         ts = self.config.supply.temperature
-        net.set_fixed(SUPPLY, pa + self.supply_gauge(t), tl if ts is None else ts)
+        net.set_fixed(SUPPLY, ps, tl if ts is None else ts)
         net.set_fixed(AMBIENT, pa, tl)
         net.set_walls(tl)
 

@@ -187,6 +187,7 @@ class GasNetwork:
     # ----------------------------------------------------------------- state
     def _refresh_active(self) -> None:
         self._active = [lk for lk in self.links if lk.active]
+        self._relief = [lk for lk in self.links if lk.relief_set is not None]
 
     def eos_pressure(self, n: float, temp: float, volume: float) -> tuple[float, float]:
         """(P, Z) of n mol at temp in volume, inverting n = P V/(Z(P,T) R T) exactly."""
@@ -234,16 +235,13 @@ class GasNetwork:
             P[i], Z[i] = eos(n, t, vol[i])
 
     def snapshot(self) -> NetworkState:
-        relief = [lk.open for lk in self.links if lk.relief_set is not None]
-        return NetworkState(list(self.n), list(self.U), relief)
+        return NetworkState(self.n[:], self.U[:], [lk.open for lk in self._relief])
 
     def restore(self, s: NetworkState) -> None:
         self.n[:] = s.n
         self.U[:] = s.U
-        it = iter(s.relief_open)
-        for lk in self.links:
-            if lk.relief_set is not None:
-                lk.open = next(it)
+        for lk, was_open in zip(self._relief, s.relief_open, strict=True):
+            lk.open = was_open
         self._update_all()
 
     def total_moles(self) -> float:
