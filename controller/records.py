@@ -43,7 +43,7 @@ from typing import Any
 
 import numpy as np
 
-from pycnoctl.drivers.base import Reading
+from pycnoctl.drivers.base import Reading, Validity
 
 __all__ = [
     "CYCLE_COLUMNS",
@@ -56,6 +56,8 @@ __all__ = [
     "trace_columns",
 ]
 
+#: The trace's word for each validity (an enum's .value goes through a descriptor: twice a row)
+_VALIDITY_WORD = {v: v.value for v in Validity}
 _SAFE_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,79}$")
 _VALVE_PREFIX = "valve_"
 
@@ -281,7 +283,7 @@ class RunRecorder:
     ) -> None:
         """Append one sample row and flush it (an invalid reading is written as nan + its flag)."""
         temp = ("nan,absent" if temperature is None
-                else f"{float(temperature.value)!r},{temperature.validity.value}")
+                else f"{float(temperature.value)!r},{_VALIDITY_WORD[temperature.validity]}")
         if valves != self._valves_seen:
             self._valves_seen = dict(valves)
             self._valves_text = ",".join("1" if valves.get(v, False) else "0" for v in self.valve_names)
@@ -290,7 +292,7 @@ class RunRecorder:
             word = self._words[state] = _plain(state)
         # one line built directly (every field is a number or a plain word; free text goes through csv)
         line = (f"{float(t)!r},{word},{'' if cycle is None else int(cycle)},{self._valves_text},"
-                f"{float(pressure.value)!r},{pressure.validity.value},{temp},"
+                f"{float(pressure.value)!r},{_VALIDITY_WORD[pressure.validity]},{temp},"
                 f"{'nan' if ambient_pa is None else repr(float(ambient_pa))},{_plain(note) if note else ''}\n")
         if self._syncer is not None and self._syncer.error is not None:
             raise RecordWriteError("background fsync", self.trace_path, self._syncer.error)
