@@ -451,12 +451,12 @@ class RunEngine:
         assert cyc is not None
         self.current = None
         self.emit("cycle_done", {"cycle": cyc.index})
-        if self.seq.kind == "measure" and self.seq.cycles.converge is not None:
+        cycles = self.seq.cycles
+        # the volumes so far are worked out only when convergence may end the run: every complete
+        # cycle's budget, again at every cycle end, is the costliest step of a simulated run otherwise
+        if self.seq.kind == "measure" and cycles.converge is not None and cycles.stop_on_converge:
             kept = [c for c in self.cycle_results() if c.kept]
-            conv = self.seq.cycles.converge
-            if self.seq.cycles.stop_on_converge and results.has_converged(
-                [c.volume_m3 for c in kept], conv.last, conv.within
-            ):
+            if results.has_converged([c.volume_m3 for c in kept], cycles.converge.last, cycles.converge.within):
                 self.converged_early = True
 
     # ----- results ----------------------------------------------------------------------------
