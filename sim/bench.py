@@ -2,8 +2,9 @@
 
 Why lazy physics: nothing runs in the background.  Before every read or valve change the bench
 advances the physics to ``clock.now()``, so a simulated clock (sleep = jump) and a real-time clock
-share the code.  Steps are adaptive and may reach past ``now``: reads in between interpolate
-linearly (the step controller keeps that interpolation within ``solver.interp_tol`` Pa), and a
+share the code.  Steps are adaptive and may reach past ``now``: reads in between follow
+a parabola through the last three step ends (the step controller keeps its error within
+``solver.interp_tol`` Pa), and a
 valve change inside a step rolls the step back and redoes it up to the change.  So a settled
 system costs a step every ``solver.max_step`` seconds however often it is read.
 
@@ -195,7 +196,9 @@ class SimBench:
     def _reset_control(self) -> None:
         self._h_next = self.config.solver.first_step
         self._slopes: list[float] | None = None
-        self._h_prev = 0.0
+        self._curv: list[float] | None = None
+        self._h_prev = self._h_prev2 = 0.0
+        self._m: tuple[float, list[float], list[float]] | None = None
 
     def _commit(self) -> None:
         self._t0, self._P0, self._T0 = self._t1, self._P1, self._T1
@@ -223,20 +226,44 @@ class SimBench:
         return max(h, 1e-9)
 
     def _control(self, h: float) -> None:
-        """Choose the next step from the curvature of the pressures (interpolation error ~ h^2 P''/8)."""
+        """Choose the next step so that reads between step ends stay within tolerance.
+
+        Reads follow the parabola through this step's ends and the previous step's start
+        (``_interp``); right after a valve change, with no history, a straight line.  How long the
+        next step may be depends on what limits accuracy:
+
+        - a step that moved gas is only first-order accurate, so it is kept as short as a straight
+          line between its ends would need: error ~ |f[t-1, t0, t1]| h^2/4 (the parabola's bend);
+        - a step with every valve path at rest (a closed relaxation) is exact at any length, so only
+          the parabola's own error counts: ~ |f[t-2, t-1, t0, t1]| (h-1 + h/2) h^2/4, the cubic term.
+          It grows like (h/tau)^3 rather than (h/tau)^2, so these steps may be several times longer;
+          their share-of-change tolerance is a quarter of the straight line's, since a longer step
+          changes more.
+        """
         p0, p1 = self._P0, self._P1
         slopes = [(p1[i] - p0[i]) / h for i in self.net._var]
-        err = 0.0
-        if self._slopes is not None:
-            d = max(map(abs, map(operator.sub, slopes, self._slopes)), default=0.0)
-            err = d * h * h / (4.0 * (h + self._h_prev))
+        curv = None
+        err, order, rel = 0.0, 2.0, 1.0
+        if self._slopes is None:
+            self._m = None
+        else:
+            self._m = self._m_next  # the previous step's start: same regime, no cut between
+            hp = self._h_prev
+            curv = [c / (h + hp) for c in map(operator.sub, slopes, self._slopes)]
+            if self._curv is None or self.net.flowed:
+                err = max(map(abs, curv), default=0.0) * h * h / 4.0
+            else:
+                d3 = max(map(abs, map(operator.sub, curv, self._curv)), default=0.0) / (h + hp + self._h_prev2)
+                err, order, rel = d3 * (hp + 0.5 * h) * h * h / 4.0, 3.0, 0.25
         sv = self.config.solver
         # absolute accuracy for slow drifts; during a fast transient (a 50 kPa jump within 10 ms)
         # a share of the change per step is enough - no transducer resolves that shape anyway
         dmax = max(map(abs, slopes), default=0.0) * h
-        tol = max(sv.interp_tol, sv.interp_rel * dmax)
-        fac = 2.0 if err <= 0.0 else min(2.0, max(0.2, 0.9 * math.sqrt(tol / err)))
-        self._slopes, self._h_prev = slopes, h
+        tol = max(sv.interp_tol, rel * sv.interp_rel * dmax)
+        fac = 2.0 if err <= 0.0 else min(2.0, max(0.2, 0.9 * (tol / err) ** (1.0 / order)))
+        self._m_next = (self._t0, p0, self._T0)
+        self._slopes, self._curv = slopes, curv
+        self._h_prev2, self._h_prev = self._h_prev, h
         self._h_next = h * fac
 
     def _sync(self, t: float) -> None:
@@ -258,11 +285,22 @@ class SimBench:
         self._t1 = self._t0  # nothing computed beyond t yet
 
     def _interp(self, a0: list[float], a1: list[float], i: int, t: float) -> float:
-        span = self._t1 - self._t0
+        """Value of node i at t inside the computed step: on the parabola through the previous
+        step's start and this step's ends (a straight line right after a valve change)."""
+        t0 = self._t0
+        span = self._t1 - t0
         if span <= 0.0:
             return a1[i]
-        w = (t - self._t0) / span
-        return a0[i] + (a1[i] - a0[i]) * w
+        s = t - t0
+        y0 = a0[i]
+        slope = (a1[i] - y0) / span
+        m = self._m
+        if m is None:
+            return y0 + slope * s
+        tm, pm, temps = m
+        ym = (pm if a0 is self._P0 else temps)[i]
+        c = (slope - (y0 - ym) / (t0 - tm)) / (span + t0 - tm)
+        return y0 + s * (slope + c * (s - span))
 
     # ------------------------------------------------------------------ faults
     def _handle_due(self, t: float) -> None:

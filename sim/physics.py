@@ -179,6 +179,7 @@ class GasNetwork:
         self.Z = [1.0] * k
         self.wall = [293.15] * k
         self.steps = 0
+        self.flowed = False  # whether the last step moved gas over any link
         self._fixed = [nd.fixed for nd in self.nodes]
         self._volume = [nd.volume for nd in self.nodes]
         self._var = [i for i, nd in enumerate(self.nodes) if not nd.fixed]
@@ -327,6 +328,7 @@ class GasNetwork:
                     pos[i] = len(pos)
         if not links:
             return False
+        self.flowed = True
         m = len(pos)
         A = [[0.0] * m for _ in range(m)]
         rhs = [0.0] * m
@@ -424,6 +426,7 @@ class GasNetwork:
         Returns False when nothing changed (no flow, every node at its wall temperature).
         """
         self.steps += 1
+        self.flowed = False
         P, T, n, U = self.P, self.T, self.n, self.U
         nodes = self.nodes
         cv = self.cv

@@ -144,6 +144,28 @@ def test_thermal_relaxation_time_constant():
     assert -1.0 / _slope(ts, ys) == pytest.approx(tau, rel=0.01)
 
 
+def test_reads_between_steps_follow_the_closed_relaxation():
+    # Newton's law of cooling with the ideal-gas law: a closed cell's pressure is n R T(t) / V with
+    # T(t) - Tw = (T0 - Tw) exp(-t/tau).  The step there is exact at any length, so what a read sees
+    # between steps is the dense output: it must stay within interp_tol plus 0.1 % of the remaining
+    # deviation at every read, also at read times that never fall on a step end.
+    tau = 2.0
+    cfg = make({"volumes": {"cell": {"volume": "12 cm^3", "thermal_tau": f"{tau} s"}},
+                "valves": {"inlet": {"diameter": "1 mm"}}}, gas="ideal")
+    b = SimBench(cfg)
+    fill(b, 0.5)
+    t0, n, temp0, tw = b.clock.now(), b.moles("cell"), b.gas_temperature("cell"), b.wall_temperature()
+    volume = b.net.nodes[b.node_index["cell"]].volume
+    excess = []
+    for _ in range(400):
+        b.advance(0.0731)
+        dev = n * sc.R * (temp0 - tw) * math.exp(-(b.clock.now() - t0) / tau) / volume
+        err = b.pressure("cell") - (n * sc.R * tw / volume + dev)
+        excess.append(abs(err) - 1e-3 * abs(dev))
+    assert dev < 1.0  # relaxed by the end
+    assert max(excess) <= cfg.solver.interp_tol
+
+
 # ------------------------------------------------------------------ compressible flow
 def _choked_formula(cda, p0, t0, gamma, molar_mass):
     # isentropic choked mass flow, standard compressible-flow texts:
