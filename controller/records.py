@@ -150,6 +150,9 @@ def _clean_text(s: str) -> str:
     return s.replace("\r", " ").replace("\n", " ")
 
 
+_UNSET = object()  # a field whose text has not been made yet
+
+
 def _write_all(fh: Any, data: bytes) -> None:
     """All of data to an unbuffered file (a raw write may take only part of it)."""
     view = memoryview(data)
@@ -264,6 +267,10 @@ class RunRecorder:
         self._valves_seen: dict[str, bool] | None = None
         self._valves_text = ""
         self._words: dict[str, str] = {}
+        self._temp_seen: object = _UNSET
+        self._temp_text = ""
+        self._ambient_seen: object = _UNSET
+        self._ambient_text = ""
 
     # ------------------------------------------------------------------ raw trace
     @property
@@ -282,8 +289,13 @@ class RunRecorder:
         note: str = "",
     ) -> None:
         """Append one sample row and flush it (an invalid reading is written as nan + its flag)."""
-        temp = ("nan,absent" if temperature is None
-                else f"{float(temperature.value)!r},{_VALIDITY_WORD[temperature.validity]}")
+        if temperature is not self._temp_seen:  # a thermometer is read a few times a second at most
+            self._temp_seen = temperature
+            self._temp_text = ("nan,absent" if temperature is None
+                               else f"{float(temperature.value)!r},{_VALIDITY_WORD[temperature.validity]}")
+        if ambient_pa is not self._ambient_seen:  # the same object until the barometer is read again
+            self._ambient_seen = ambient_pa
+            self._ambient_text = "nan" if ambient_pa is None else repr(float(ambient_pa))
         if valves != self._valves_seen:
             self._valves_seen = dict(valves)
             self._valves_text = ",".join("1" if valves.get(v, False) else "0" for v in self.valve_names)
@@ -292,8 +304,8 @@ class RunRecorder:
             word = self._words[state] = _plain(state)
         # one line built directly (every field is a number or a plain word; free text goes through csv)
         line = (f"{float(t)!r},{word},{'' if cycle is None else int(cycle)},{self._valves_text},"
-                f"{float(pressure.value)!r},{_VALIDITY_WORD[pressure.validity]},{temp},"
-                f"{'nan' if ambient_pa is None else repr(float(ambient_pa))},{_plain(note) if note else ''}\n")
+                f"{float(pressure.value)!r},{_VALIDITY_WORD[pressure.validity]},{self._temp_text},"
+                f"{self._ambient_text},{_plain(note) if note else ''}\n")
         if self._syncer is not None and self._syncer.error is not None:
             raise RecordWriteError("background fsync", self.trace_path, self._syncer.error)
         try:
