@@ -178,6 +178,9 @@ class GasNetwork:
         self.T = [0.0] * k
         self.Z = [1.0] * k
         self.wall = [293.15] * k
+        # K/s: how fast the walls move over the coming step (a drifting lab); ``wall`` is then their
+        # temperature at the step's middle, and the heat exchange stays exact for a linear drift
+        self.wall_rate = 0.0
         self.steps = 0
         self.flowed = False  # whether the last step moved gas over any link
         self._fixed = [nd.fixed for nd in self.nodes]
@@ -433,20 +436,27 @@ class GasNetwork:
         self._update_relief()
         touched = False
         # heat exchange first, so that the flows below also settle the pressure differences it makes
-        wall = self.wall
+        wall, rate = self.wall, self.wall_rate
         for i in self._var:
             tau = nodes[i].tau
             ni = n[i]
             if tau is None or ni <= 0.0:
                 continue
             t_old = U[i] / (ni * cv)
-            dev = t_old - wall[i]
-            if dev == 0.0:
-                continue
-            dev *= math.exp(-h / tau)
-            if abs(dev) < SNAP_K:
-                dev = 0.0
-            t_new = wall[i] + dev
+            if rate == 0.0:
+                dev = t_old - wall[i]
+                if dev == 0.0:
+                    continue
+                dev *= math.exp(-h / tau)
+                if abs(dev) < SNAP_K:
+                    dev = 0.0
+                t_new = wall[i] + dev
+            else:
+                # Newton cooling towards a wall moving at `rate`: the gas trails it by rate * tau,
+                # and its deviation from that trailing line decays with tau (exact for a ramp)
+                lag = rate * tau
+                half = 0.5 * rate * h
+                t_new = wall[i] + half - lag + (t_old - wall[i] + half + lag) * math.exp(-h / tau)
             U[i] = ni * cv * t_new
             T[i] = t_new
             P[i] *= t_new / t_old  # linearised (exact if ideal); the EOS below makes it exact

@@ -166,6 +166,24 @@ def test_reads_between_steps_follow_the_closed_relaxation():
     assert max(excess) <= cfg.solver.interp_tol
 
 
+def test_closed_cell_lags_a_drifting_lab_by_rate_times_tau():
+    # ramp response of a first-order system (Newton's law of cooling, control-engineering texts):
+    # with the wall at Tw0 + r t, the gas settles to Tw(t) - r tau, and a closed ideal gas's pressure
+    # follows n R T / V.  The wall moves inside every step here, unlike a steady lab.
+    tau, rate = 2.0, 0.01  # s, K/s
+    cfg = make({"volumes": {"cell": {"volume": "12 cm^3", "thermal_tau": f"{tau} s"}},
+                "lab": {"temperature_drift": f"{rate} K/s"}}, gas="ideal")
+    b = SimBench(cfg)
+    closed(b)
+    b.advance(60.0)
+    volume = b.net.nodes[b.node_index["cell"]].volume
+    for _ in range(5):
+        b.advance(7.3)
+        gas_t = b.gas_temperature("cell")
+        assert gas_t == pytest.approx(b.wall_temperature() - rate * tau, abs=1e-3)
+        assert b.pressure("cell") == pytest.approx(b.moles("cell") * sc.R * gas_t / volume, rel=1e-6)
+
+
 # ------------------------------------------------------------------ compressible flow
 def _choked_formula(cda, p0, t0, gamma, molar_mass):
     # isentropic choked mass flow, standard compressible-flow texts:
