@@ -2,10 +2,9 @@
 
 Why lazy physics: nothing runs in the background.  Before every read or valve change the bench
 advances the physics to ``clock.now()``, so a simulated clock (sleep = jump) and a real-time clock
-share the code.  Steps are adaptive and may reach past ``now``: reads in between follow
-a parabola through the last three step ends (the step controller keeps its error within
-``solver.interp_tol`` Pa), and a
-valve change inside a step rolls the step back and redoes it up to the change.  So a settled
+share the code.  Steps are adaptive and may reach past ``now``: reads in between follow a parabola
+through the last three step ends (the step controller keeps its error within ``solver.interp_tol``
+Pa), and a valve change inside a step rolls the step back and redoes it up to the change.  So a settled
 system costs a step every ``solver.max_step`` seconds however often it is read.
 
 Thread-safe: one re-entrant lock guards all state, so byte-level fake devices may read from other
@@ -208,7 +207,11 @@ class SimBench:
         self._slopes: list[float] | None = None
         self._curv: list[float] | None = None
         self._h_prev = self._h_prev2 = 0.0
-        self._m: tuple[float, list[float], list[float]] | None = None
+        # the history point of the step in hand (time, pressures, temperatures): None right after
+        # a cut, when the parabola would reach back across a kink
+        self._tm = 0.0
+        self._Pm: list[float] | None = None
+        self._Tm: list[float] | None = None
 
     def _commit(self) -> None:
         self._t0, self._P0, self._T0 = self._t1, self._P1, self._T1
@@ -262,9 +265,9 @@ class SimBench:
         curv = None
         err, order, rel = 0.0, 2.0, 1.0
         if self._slopes is None:
-            self._m = None
+            self._Pm = self._Tm = None
         else:
-            self._m = self._m_next  # the previous step's start: same regime, no cut between
+            self._tm, self._Pm, self._Tm = self._m_next  # the previous step's start, no cut between
             hp = self._h_prev
             curv = [c / (h + hp) for c in map(operator.sub, slopes, self._slopes)]
             if self._curv is None or self.net.flowed:
@@ -301,9 +304,10 @@ class SimBench:
         self._commit()
         self._t1 = self._t0  # nothing computed beyond t yet
 
-    def _interp(self, a0: list[float], a1: list[float], i: int, t: float) -> float:
-        """Value of node i at t inside the computed step: on the parabola through the previous
-        step's start and this step's ends (a straight line right after a valve change)."""
+    def _interp(self, a0: list[float], a1: list[float], am: list[float] | None, i: int, t: float) -> float:
+        """Value of node i at t inside the computed step, from its values at the step's ends (a0, a1)
+        and at the previous step's start (am): on the parabola through the three, or on the
+        straight line through the ends when there is no such history (right after a cut)."""
         t0 = self._t0
         span = self._t1 - t0
         if span <= 0.0:
@@ -311,12 +315,10 @@ class SimBench:
         s = t - t0
         y0 = a0[i]
         slope = (a1[i] - y0) / span
-        m = self._m
-        if m is None:
+        if am is None:
             return y0 + slope * s
-        tm, pm, temps = m
-        ym = (pm if a0 is self._P0 else temps)[i]
-        c = (slope - (y0 - ym) / (t0 - tm)) / (span + t0 - tm)
+        back = t0 - self._tm
+        c = (slope - (y0 - am[i]) / back) / (span + back)
         return y0 + s * (slope + c * (s - span))
 
     # ------------------------------------------------------------------ faults
@@ -437,7 +439,7 @@ class SimBench:
                 p = self.net.P[i]
                 self._set_boundary(self._t1)
                 return p
-            return self._interp(self._P0, self._P1, i, t)
+            return self._interp(self._P0, self._P1, self._Pm, i, t)
 
     def gauge_pressure(self, node: str) -> float:
         with self._lock:
@@ -448,7 +450,7 @@ class SimBench:
         with self._lock:
             t = self.clock.now()
             self._sync(t)
-            return self._interp(self._T0, self._T1, self.node_index[node], t)
+            return self._interp(self._T0, self._T1, self._Tm, self.node_index[node], t)
 
     def wall_temperature(self) -> float:
         return self.lab_temperature(self.clock.now())
@@ -490,7 +492,7 @@ class SimBench:
             mode = self._p_mode
             if mode in ("silent", "garbled", "nan"):
                 return SensorSample(t, math.nan, mode)
-            x = self._interp(self._P0, self._P1, self._p_node, t)
+            x = self._interp(self._P0, self._P1, self._Pm, self._p_node, t)
             if self.pressure_is_gauge:
                 x -= self.ambient_pressure(t)
             y = self.p_sensor.sample(t, x)
@@ -515,7 +517,7 @@ class SimBench:
             if th.at == "wall":
                 x = self.lab_temperature(t)
             else:
-                x = self._interp(self._T0, self._T1, self.node_index[th.at], t)
+                x = self._interp(self._T0, self._T1, self._Tm, self.node_index[th.at], t)
             return SensorSample(t, self.t_sensor.sample(t, x))
 
     def read_barometer(self) -> SensorSample:
