@@ -128,13 +128,19 @@ def test_energy_conserved_in_closed_adiabatic_expansion():
     assert b.net.total_energy() == pytest.approx(e0, rel=1e-12)
 
 
-def test_thermal_relaxation_time_constant():
-    # Newton's law of cooling: T - Tw decays as exp(-t/tau) in a closed vessel
-    tau = 2.5
+def _hot_closed_cell(tau: float) -> SimBench:
+    """An ideal-gas cell just filled fast through a 1 mm inlet (so its gas is hot), then closed."""
     cfg = make({"volumes": {"cell": {"volume": "12 cm^3", "thermal_tau": f"{tau} s"}},
                 "valves": {"inlet": {"diameter": "1 mm"}}}, gas="ideal")
     b = SimBench(cfg)
     fill(b, 0.5)
+    return b
+
+
+def test_thermal_relaxation_time_constant():
+    # Newton's law of cooling: T - Tw decays as exp(-t/tau) in a closed vessel
+    tau = 2.5
+    b = _hot_closed_cell(tau)
     tw = b.wall_temperature()
     ts, ys = [], []
     for _ in range(60):
@@ -150,10 +156,7 @@ def test_reads_between_steps_follow_the_closed_relaxation():
     # between steps is the dense output: it must stay within interp_tol plus 0.1 % of the remaining
     # deviation at every read, also at read times that never fall on a step end.
     tau = 2.0
-    cfg = make({"volumes": {"cell": {"volume": "12 cm^3", "thermal_tau": f"{tau} s"}},
-                "valves": {"inlet": {"diameter": "1 mm"}}}, gas="ideal")
-    b = SimBench(cfg)
-    fill(b, 0.5)
+    b = _hot_closed_cell(tau)
     t0, n, temp0, tw = b.clock.now(), b.moles("cell"), b.gas_temperature("cell"), b.wall_temperature()
     volume = b.net.nodes[b.node_index["cell"]].volume
     excess = []
@@ -163,7 +166,7 @@ def test_reads_between_steps_follow_the_closed_relaxation():
         err = b.pressure("cell") - (n * sc.R * tw / volume + dev)
         excess.append(abs(err) - 1e-3 * abs(dev))
     assert dev < 1.0  # relaxed by the end
-    assert max(excess) <= cfg.solver.interp_tol
+    assert max(excess) <= b.config.solver.interp_tol
 
 
 def test_closed_cell_lags_a_drifting_lab_by_rate_times_tau():
