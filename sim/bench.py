@@ -229,10 +229,7 @@ class SimBench:
             self._t1 = t0 + h
         else:
             self._set_boundary(t0 + 0.5 * h)
-            rate = (self.lab_temperature(t0 + h) - self.lab_temperature(t0)) / h
-            self.net.wall_rate = rate
-            self.net.step(h)
-            self.net.wall_rate = 0.0
+            self.net.step(h, (self.lab_temperature(t0 + h) - self.lab_temperature(t0)) / h)
             self._t1 = t0 + h
             self._set_boundary(self._t1)
         self._P1, self._T1 = list(self.net.P), list(self.net.T)

@@ -178,9 +178,6 @@ class GasNetwork:
         self.T = [0.0] * k
         self.Z = [1.0] * k
         self.wall = [293.15] * k
-        # K/s: how fast the walls move over the coming step (a drifting lab); ``wall`` is then their
-        # temperature at the step's middle, and the heat exchange stays exact for a linear drift
-        self.wall_rate = 0.0
         self.steps = 0
         self.flowed = False  # whether the last step moved gas over any link
         self._fixed = [nd.fixed for nd in self.nodes]
@@ -423,10 +420,13 @@ class GasNetwork:
             h = min(h, -(dneq / f) * math.log1p(-allowed / dneq))
         return h
 
-    def step(self, h: float) -> bool:
+    def step(self, h: float, wall_rate: float = 0.0) -> bool:
         """Advance the state by h seconds (heat exchange, then the flows in sequence, then the EOS).
 
-        Returns False when nothing changed (no flow, every node at its wall temperature).
+        ``wall_rate`` (K/s) is how fast the walls move over the step (a drifting lab); ``wall`` then
+        holds their temperature at the step's middle, and the heat exchange stays exact for a
+        linear drift.  Returns False when nothing changed (no flow, every node at its wall
+        temperature).
         """
         self.steps += 1
         self.flowed = False
@@ -436,7 +436,7 @@ class GasNetwork:
         self._update_relief()
         touched = False
         # heat exchange first, so that the flows below also settle the pressure differences it makes
-        wall, rate = self.wall, self.wall_rate
+        wall, rate = self.wall, wall_rate
         for i in self._var:
             tau = nodes[i].tau
             ni = n[i]
