@@ -228,7 +228,11 @@ def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[flo
             if curv > 0.0:
                 log_tau += 0.5 * (f0 - f2) / curv * float(fine[1] - fine[0])
     tau = math.exp(log_tau)
-    f_best, a, b = _ssr_for_tau(s, y, tau)
+    _, a, b = _ssr_for_tau(s, y, tau)
+    # the polish compares residual sums computed directly: _ssr_for_tau's shortcut cancels to
+    # round-off (or to its zero floor) near an exact fit and would turn every improving step away
+    resid = y - (a + b * np.exp(-s / tau))
+    f_best = float(resid @ resid)
 
     # Gauss-Newton polish on (a, b, tau) and covariance from the Jacobian
     jac = np.empty((n, 3))
