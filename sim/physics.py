@@ -20,11 +20,12 @@ Model (textbook lumped-parameter gas dynamics):
 
 Integration (operator splitting per step): first the exact exponential heat exchange of each node,
 then one linearly implicit (backward Euler) flow step over all open restrictions, each linearised by
-its secant conductance.  Backward Euler is L-stable, so the stiff millisecond orifice flows never
-limit the step once pressures have equalised; the transfers are applied pairwise, so moles and
-energy are conserved to round-off.  The caller picks the step: :meth:`GasNetwork.max_step` bounds the
-relative change of moles per step (accuracy of fast flows and of the adiabatic temperature changes)
-and the step of a node that both flows and exchanges heat (accuracy of the splitting).
+its secant conductance, predicted once and corrected once (see ``_flow_step``).  Backward Euler is
+L-stable, so the stiff millisecond orifice flows never limit the step once pressures have equalised;
+the transfers are applied pairwise, so moles and energy are conserved to round-off.  The caller
+picks the step: :meth:`GasNetwork.max_step` bounds the relative change of moles per step (accuracy
+of fast flows and of the adiabatic temperature changes) and the step of a node that both flows and
+exchanges heat (accuracy of the splitting).
 """
 
 from __future__ import annotations
@@ -259,11 +260,7 @@ class GasNetwork:
         p_up, p_dn = P[up], P[dn]
         if p_up <= p_dn:
             return up, dn, 0.0
-        t_up = self.T[up]
-        f = self._nozzle(lk.cda, p_up, t_up, p_dn) / self.gas.molar_mass if lk.open and lk.cda > 0.0 else 0.0
-        if lk.conductance > 0.0:
-            f += lk.conductance * (p_up - p_dn) / (R * t_up)
-        return up, dn, f
+        return up, dn, self._link_flow_at(lk, p_up, self.T[up], p_dn)
 
     def _equilibrium_transfer(self, up: int, dn: int) -> float:
         """Moles that would equalise the two pressures, moving gas at the upstream temperature.
@@ -296,79 +293,94 @@ class GasNetwork:
     def _flow_step(self, h: float) -> bool:
         """Move gas over all active links for h seconds by a linearly implicit (backward Euler) step.
 
-        Each link is linearised by its secant conductance g; moving dm mol at T_up changes a node's
-        pressure by gamma Z R T_up dm / V (exact for an ideal gas), which gives a small diagonally
-        dominant linear system for the end-of-step pressures.  The resulting transfers are applied
-        pairwise, so moles and energy are conserved to round-off whatever the step.
+        Each link is linearised by its secant conductance g; moving dm mol of gas at temperature t
+        changes a node's pressure by gamma Z R t dm / V (exact for an ideal gas), which gives a small
+        diagonally dominant linear system for the end-of-step pressures.  It is solved twice:
+
+        1. with each link pointing down the start pressure difference and carrying its donor's
+           start temperature, which predicts the transfers and each node's end temperature;
+        2. with each link pointing the way the prediction flows, linearised by its secant at the
+           predicted end state, and carrying the mean of its donor's start and predicted end
+           temperatures (a donor cools as it empties, a node fed by colder gas cools by mixing:
+           second order in the transfer).
+
+        The second solve is what the transfers apply, so the pressures it predicts are the ones the
+        moved energy makes.  Had the carried temperature been corrected after the solve, or a link
+        that reverses kept its start direction, the end state would sit off the implicit solution
+        by an amount that depends on h; with stiff links that offset shows up as jumps in the
+        pressure from step to step.  Transfers are applied pairwise, so moles and energy are
+        conserved to round-off whatever the step.
         """
-        P, T, n, U, Z = self.P, self.T, self.n, self.U, self.Z
+        P, T, n, U = self.P, self.T, self.n, self.U
         fixed = self._fixed
-        nodes = self.nodes
-        gamma = self.gamma
         links = []
         pos: dict[int, int] = {}
-        cond = self._nozzle_g
-        molar_mass = self.gas.molar_mass
         for lk in self._active:
             if lk.relief_set is not None and not lk.open:
                 continue
-            # secant conductance g = flow/dp in mol/(s Pa) at the present state
             up, dn = (lk.a, lk.b) if P[lk.a] >= P[lk.b] else (lk.b, lk.a)
-            p_up, p_dn, t_up = P[up], P[dn], T[up]
-            if p_up == p_dn:
+            if P[up] == P[dn]:
                 continue
-            g = cond(lk.cda, p_up, t_up, p_dn) / molar_mass if lk.open and lk.cda > 0.0 and p_up > 0.0 else 0.0
-            if lk.conductance > 0.0:
-                g += lk.conductance / (R * t_up)
-            if g <= 0.0:
+            c = self._link_conductance(lk, up, dn)
+            if c <= 0.0:
                 continue
-            links.append((up, dn, h * g, t_up))
+            links.append([up, dn, h * c, T[up], lk, False])
             for i in (up, dn):
                 if not fixed[i] and i not in pos:
                     pos[i] = len(pos)
         if not links:
             return False
         self.flowed = True
-        m = len(pos)
-        A = [[0.0] * m for _ in range(m)]
-        rhs = [0.0] * m
-        for i, k in pos.items():
-            A[k][k] = 1.0
-            rhs[k] = P[i]
-        for up, dn, c, t_up in links:
-            # dm = c (P'_up - P'_dn);  P'_up = P_up - al_up dm;  P'_dn = P_dn + al_dn dm
-            if not fixed[up]:
-                ku = pos[up]
-                al = gamma * Z[up] * R * t_up / nodes[up].volume * c
-                A[ku][ku] += al
-                if fixed[dn]:
-                    rhs[ku] += al * P[dn]
-                else:
-                    A[ku][pos[dn]] -= al
-            if not fixed[dn]:
-                kd = pos[dn]
-                al = gamma * Z[dn] * R * t_up / nodes[dn].volume * c
-                A[kd][kd] += al
-                if fixed[up]:
-                    rhs[kd] += al * P[up]
-                else:
-                    A[kd][pos[up]] -= al
-        x = _solve_dominant(A, rhs)
-        pnew = {i: x[k] for i, k in pos.items()}
         cp, cv = self.cp, self.cv
-        for up, dn, c, _t in links:
-            pu = P[up] if fixed[up] else pnew[up]
-            pd = P[dn] if fixed[dn] else pnew[dn]
-            dm = c * (pu - pd)
-            if dm < 0.0:  # the flow reversed over the step: move gas the other way
+        # predictor: transfers at the start temperatures, and the end temperature they give
+        pnew = self._solve_pressures(links, pos)
+        dn_ = dict.fromkeys(pos, 0.0)
+        du_ = dict.fromkeys(pos, 0.0)
+        for link in links:
+            up, dn, c, t_up, lk, _turned = link
+            dm = c * ((P[up] if fixed[up] else pnew[up]) - (P[dn] if fixed[dn] else pnew[dn]))
+            if dm < 0.0:  # the flow turns round within the step: point the link the way it goes
                 up, dn, dm = dn, up, -dm
-            t_flow = T[up]
+                t_up = T[up]
+                link[:] = up, dn, h * self._link_conductance(lk, up, dn), t_up, lk, True
             if not fixed[up]:
                 dm = min(dm, 0.5 * n[up])
-                # the donor cools isentropically while it empties: carry its mean temperature over
-                # the step (second-order accurate in dm/n), not the start value
-                t_flow *= 1.0 - 0.5 * (gamma - 1.0) * dm / n[up]
-            de = cp * t_flow * dm
+                dn_[up] -= dm
+                du_[up] -= cp * t_up * dm
+            if not fixed[dn]:
+                dn_[dn] += dm
+                du_[dn] += cp * t_up * dm
+        # corrector conductance: the secant at the predicted end state, one step of the iteration
+        # towards the fully implicit flow.  A choked inflow from a fixed node then moves K h to
+        # second order (the start secant falls short by the rise over the step), and a linear
+        # link keeps its conductance, so a quasi-steady balance (heat driving gas out through a
+        # stiff vent) does not depend on the step.
+        t_end = {i: (U[i] + du_[i]) / ((n[i] + dn_[i]) * cv) for i in pos}
+        for link in links:
+            up, dn, _c, _t, lk, turned = link
+            if not fixed[up]:
+                link[3] = 0.5 * (T[up] + t_end[up])
+            if turned or lk.relief_set is not None:
+                # the start secant of a link that turned round stands; so does a relief valve's,
+                # whose lift is held at its start value over the step: its flow at the end state
+                # with that lift would overstate the venting and make the lift chatter
+                continue
+            pu = P[up] if fixed[up] else pnew[up]
+            pd = P[dn] if fixed[dn] else pnew[dn]
+            if pu <= pd:
+                continue
+            f_end = self._link_flow_at(lk, pu, T[up] if fixed[up] else t_end[up], pd)
+            if f_end > 0.0:
+                link[2] = h * f_end / (pu - pd)
+        # corrector: the transfers that are applied
+        pnew = self._solve_pressures(links, pos)
+        for up, dn, c, t_carry, _lk, _turned in links:
+            dm = c * ((P[up] if fixed[up] else pnew[up]) - (P[dn] if fixed[dn] else pnew[dn]))
+            if dm < 0.0:  # turned round again: a flow too small to matter; move it the other way
+                up, dn, dm, t_carry = dn, up, -dm, T[dn]
+            if not fixed[up]:
+                dm = min(dm, 0.5 * n[up])
+            de = cp * t_carry * dm
             if not fixed[up]:
                 n[up] -= dm
                 U[up] -= de
@@ -378,6 +390,54 @@ class GasNetwork:
         for i in pos:
             T[i] = U[i] / (n[i] * cv)
         return True
+
+    def _link_conductance(self, lk: Link, up: int, dn: int) -> float:
+        """Secant conductance (mol/(s Pa)) of a link for flow from up to dn at the present state."""
+        t_up = self.T[up]
+        p_up = self.P[up]
+        g = self._nozzle_g(lk.cda, p_up, t_up, self.P[dn]) / self.gas.molar_mass \
+            if lk.open and lk.cda > 0.0 and p_up > 0.0 else 0.0
+        if lk.conductance > 0.0:
+            g += lk.conductance / (R * t_up)
+        return g
+
+    def _link_flow_at(self, lk: Link, p_up: float, t_up: float, p_dn: float) -> float:
+        """Molar flow (mol/s) of a link from p_up at t_up to p_dn."""
+        f = self._nozzle(lk.cda, p_up, t_up, p_dn) / self.gas.molar_mass if lk.open and lk.cda > 0.0 else 0.0
+        if lk.conductance > 0.0:
+            f += lk.conductance * (p_up - p_dn) / (R * t_up)
+        return f
+
+    def _solve_pressures(self, links: list[list], pos: dict[int, int]) -> dict[int, float]:
+        """End-of-step pressures of the flowing nodes for transfers dm = c (P'_up - P'_dn)."""
+        P, Z, fixed, nodes = self.P, self.Z, self._fixed, self.nodes
+        k_gas = self.gamma * R
+        m = len(pos)
+        A = [[0.0] * m for _ in range(m)]
+        rhs = [0.0] * m
+        for i, k in pos.items():
+            A[k][k] = 1.0
+            rhs[k] = P[i]
+        for up, dn, c, t_up, _lk, _turned in links:
+            # P'_up = P_up - al_up dm;  P'_dn = P_dn + al_dn dm
+            if not fixed[up]:
+                ku = pos[up]
+                al = k_gas * Z[up] * t_up / nodes[up].volume * c
+                A[ku][ku] += al
+                if fixed[dn]:
+                    rhs[ku] += al * P[dn]
+                else:
+                    A[ku][pos[dn]] -= al
+            if not fixed[dn]:
+                kd = pos[dn]
+                al = k_gas * Z[dn] * t_up / nodes[dn].volume * c
+                A[kd][kd] += al
+                if fixed[up]:
+                    rhs[kd] += al * P[up]
+                else:
+                    A[kd][pos[up]] -= al
+        x = _solve_dominant(A, rhs)
+        return {i: x[k] for i, k in pos.items()}
 
     def max_step(self, h: float) -> float:
         """Shorten h so that no node's moles change by more than rel_moles in one step, and so that

@@ -139,7 +139,10 @@ def test_leak_fault_with_duration():
     assert b.pressure("cell") == pytest.approx(p0, rel=1e-9)  # no leak yet
     b.advance(65.0)  # leak active from 60 s to 120 s
     p1 = b.pressure("cell")
-    assert p1 < p0 - 1000.0
+    # isothermal mass balance through a linear leak: the gauge pressure decays at C/V_gas (as in
+    # test_leak_decay_rate_matches_conductance); 3 % allows the leak's own expansion cooling
+    expect = (p0 - b.ambient_pressure()) * (1.0 - math.exp(-60.0 * 1e-9 / 7e-6))
+    assert p0 - p1 == pytest.approx(expect, rel=0.03)
     b.advance(5.0)
     p2 = b.pressure("cell")
     b.advance(30.0)
