@@ -338,7 +338,7 @@ class GasNetwork:
         du_ = dict.fromkeys(pos, 0.0)
         for link in links:
             up, dn, c, t_up, lk, _turned = link
-            dm = c * ((P[up] if fixed[up] else pnew[up]) - (P[dn] if fixed[dn] else pnew[dn]))
+            dm = c * (pnew[up] - pnew[dn])
             if dm < 0.0:  # the flow turns round within the step: point the link the way it goes
                 up, dn, dm = dn, up, -dm
                 t_up = T[up]
@@ -365,8 +365,7 @@ class GasNetwork:
                 # whose lift is held at its start value over the step: its flow at the end state
                 # with that lift would overstate the venting and make the lift chatter
                 continue
-            pu = P[up] if fixed[up] else pnew[up]
-            pd = P[dn] if fixed[dn] else pnew[dn]
+            pu, pd = pnew[up], pnew[dn]
             if pu <= pd:
                 continue
             f_end = self._link_flow_at(lk, pu, T[up] if fixed[up] else t_end[up], pd)
@@ -375,7 +374,7 @@ class GasNetwork:
         # corrector: the transfers that are applied
         pnew = self._solve_pressures(links, pos)
         for up, dn, c, t_carry, _lk, _turned in links:
-            dm = c * ((P[up] if fixed[up] else pnew[up]) - (P[dn] if fixed[dn] else pnew[dn]))
+            dm = c * (pnew[up] - pnew[dn])
             if dm < 0.0:  # turned round again: a flow too small to matter; move it the other way
                 up, dn, dm, t_carry = dn, up, -dm, T[dn]
             if not fixed[up]:
@@ -408,9 +407,10 @@ class GasNetwork:
             f += lk.conductance * (p_up - p_dn) / (R * t_up)
         return f
 
-    def _solve_pressures(self, links: list[list], pos: dict[int, int]) -> dict[int, float]:
-        """End-of-step pressures of the flowing nodes for transfers dm = c (P'_up - P'_dn)."""
-        P, Z, fixed, nodes = self.P, self.Z, self._fixed, self.nodes
+    def _solve_pressures(self, links: list[list], pos: dict[int, int]) -> list[float]:
+        """End-of-step pressures for transfers dm = c (P'_up - P'_dn): every node's, the fixed ones
+        and those no link touches at their present value."""
+        P, Z, fixed, vol = self.P, self.Z, self._fixed, self._volume
         k_gas = self.gamma * R
         m = len(pos)
         A = [[0.0] * m for _ in range(m)]
@@ -422,7 +422,7 @@ class GasNetwork:
             # P'_up = P_up - al_up dm;  P'_dn = P_dn + al_dn dm
             if not fixed[up]:
                 ku = pos[up]
-                al = k_gas * Z[up] * t_up / nodes[up].volume * c
+                al = k_gas * Z[up] * t_up / vol[up] * c
                 A[ku][ku] += al
                 if fixed[dn]:
                     rhs[ku] += al * P[dn]
@@ -430,14 +430,17 @@ class GasNetwork:
                     A[ku][pos[dn]] -= al
             if not fixed[dn]:
                 kd = pos[dn]
-                al = k_gas * Z[dn] * t_up / nodes[dn].volume * c
+                al = k_gas * Z[dn] * t_up / vol[dn] * c
                 A[kd][kd] += al
                 if fixed[up]:
                     rhs[kd] += al * P[up]
                 else:
                     A[kd][pos[up]] -= al
         x = _solve_dominant(A, rhs)
-        return {i: x[k] for i, k in pos.items()}
+        p_end = P[:]
+        for i, k in pos.items():
+            p_end[i] = x[k]
+        return p_end
 
     def max_step(self, h: float) -> float:
         """Shorten h so that no node's moles change by more than rel_moles in one step, and so that

@@ -237,14 +237,21 @@ def test_linear_band_meets_the_subsonic_law_at_its_edge():
     assert nz.conductance(cda, p0, t0, p0 - dp) == pytest.approx(nz.mass_flow(cda, p0, t0, p0 - dp) / dp, rel=1e-12)
 
 
-def test_simulated_choked_inflow_rate():
-    # a reservoir at 10 bar feeding a 1 L vessel at 1 bar through a choked orifice: the simulated
-    # mass inflow over the first millisecond equals the isentropic choked flow
+def _reservoir_feeding_a_vessel() -> tuple[float, GasNetwork]:
+    """A 10 bar helium reservoir at 295 K behind a 0.3 mm orifice (Cd 0.7) into a 1 L adiabatic vessel
+    at 1 bar: choked until the vessel reaches the critical ratio."""
     cda = 0.7 * math.pi * (0.3e-3) ** 2 / 4
     net = GasNetwork(HE, [Node("sup", 1.0, fixed=True), Node("v", 1e-3, tau=None)],
                      [Link("orifice", 0, 1, cda=cda, open=True)])
     net.set_fixed(0, 10e5, 295.0)
     net.init_node(1, 1e5, 295.0)
+    return cda, net
+
+
+def test_simulated_choked_inflow_rate():
+    # a reservoir at 10 bar feeding a 1 L vessel at 1 bar through a choked orifice: the simulated
+    # mass inflow over the first millisecond equals the isentropic choked flow
+    cda, net = _reservoir_feeding_a_vessel()
     n0 = net.n[1]
     for _ in range(10):
         net.step(1e-4)
@@ -256,11 +263,7 @@ def test_choked_fill_moves_the_isentropic_flow_at_long_steps():
     # while choked, the inflow from a fixed reservoir depends on the reservoir alone, so the moles
     # let in grow as K t (isentropic choked flow, as above); a 2 s fill from 1 to 1.9 bar taken in
     # five steps must still let in K t: the start secant alone fell 2 % short here
-    cda = 0.7 * math.pi * (0.3e-3) ** 2 / 4
-    net = GasNetwork(HE, [Node("sup", 1.0, fixed=True), Node("v", 1e-3, tau=None)],
-                     [Link("orifice", 0, 1, cda=cda, open=True)])
-    net.set_fixed(0, 10e5, 295.0)
-    net.init_node(1, 1e5, 295.0)
+    cda, net = _reservoir_feeding_a_vessel()
     n0 = net.n[1]
     for _ in range(5):
         net.step(0.4)
