@@ -13,9 +13,9 @@ import tempfile
 import time
 from pathlib import Path
 
-from pycnoctl.controller.catalog import Catalog
-from pycnoctl.controller.records import RunRecorder
-from pycnoctl.drivers.base import Reading
+from pycnoctl.controller.domain.devices import Reading
+from pycnoctl.controller.record.catalog import Catalog
+from pycnoctl.controller.record.runfolder import RunRecorder
 
 
 def _pct(xs: list[float], q: float) -> float:

@@ -19,8 +19,8 @@ import time
 
 import httpx
 
-from pycnoctl.controller.api import serve_in_thread
-from pycnoctl.controller.daemon import Daemon
+from pycnoctl.controller.service.api import serve_in_thread
+from pycnoctl.controller.service.daemon import Daemon
 from pycnoctl.drivers.simulated import build_sim_instrument
 
 

@@ -24,10 +24,10 @@ from pathlib import Path
 
 import yaml
 
-from pycnoctl.controller.catalog import Catalog
-from pycnoctl.controller.control import Controller
-from pycnoctl.controller.runs import RunRequest, execute, prepare
-from pycnoctl.controller.sequence import resolve_sequence
+from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+from pycnoctl.controller.record.catalog import Catalog
+from pycnoctl.controller.run.control import Controller
+from pycnoctl.controller.run.sequence import resolve_sequence
 from pycnoctl.drivers.simulated import build_sim_instrument
 from pycnoctl.sim.config import config_from_dict, shipped_configs
 
@@ -140,7 +140,7 @@ def interlock_reaction(events: int) -> None:
 
         inst.pressure.read = timed_read  # type: ignore[method-assign]
         prepared = prepare(RunRequest("quick-demo"), inst)
-        from pycnoctl.controller.engine import RunEngine
+        from pycnoctl.controller.run.engine import RunEngine
 
         engine = RunEngine(prepared.sequence, inst, expansion_volume=prepared.expansion_volume)
         controller.start(engine)

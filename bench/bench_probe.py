@@ -14,7 +14,7 @@ import tempfile
 from importlib.resources import files
 from pathlib import Path
 
-from pycnoctl.drivers.cmd_probe import probe
+from pycnoctl.controller.cli.probe import probe
 from pycnoctl.drivers.config import build_instrument, load_instrument_config
 from pycnoctl.drivers.relay_ascii import Channel
 from pycnoctl.drivers.simulated import build_sim_instrument

@@ -25,12 +25,13 @@ from pydantic import (
     model_validator,
 )
 
-from pycnoctl.controller import units, yamlio
-from pycnoctl.drivers.base import PressureSensor, Thermometer, ValveBank
-from pycnoctl.drivers.clock import Clock, WallClock
+from pycnoctl.controller.domain import units, yamlio
+from pycnoctl.controller.domain.clock import Clock, WallClock
+from pycnoctl.controller.domain.devices import PressureSensor, Thermometer, ValveBank
+from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
 from pycnoctl.drivers.gauge_ascii import AsciiGauge, GaugeFormat
 from pycnoctl.drivers.guarded import GuardedValveBank, violations
-from pycnoctl.drivers.instrument import Chambers, Instrument, Limits, ValveRoles
+from pycnoctl.drivers.instrument import Instrument
 from pycnoctl.drivers.relay_ascii import AsciiRelayBoard, Channel, FrameTemplate, RelayCommands, unescape
 from pycnoctl.drivers.transports import SerialTransport, Transport, VisaTransport
 

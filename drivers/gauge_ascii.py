@@ -13,9 +13,9 @@ import re
 from collections.abc import Callable
 from dataclasses import dataclass
 
-from pycnoctl.controller.units import parse_pressure, parse_temperature
-from pycnoctl.drivers.base import DeviceDisconnected, DeviceError, DeviceTimeout, Reading, Validity
-from pycnoctl.drivers.clock import Clock, WallClock
+from pycnoctl.controller.domain.clock import Clock, WallClock
+from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, DeviceTimeout, Reading, Validity
+from pycnoctl.controller.domain.units import parse_pressure, parse_temperature
 from pycnoctl.drivers.relay_ascii import FrameTemplate
 from pycnoctl.drivers.transports import Transport
 

@@ -13,8 +13,8 @@ import logging
 from collections.abc import Iterable, Mapping
 from typing import Any
 
-from pycnoctl.drivers.base import DeviceDisconnected, DeviceError, ForbiddenValveState, ValveBank
-from pycnoctl.drivers.instrument import ValveRoles
+from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, ForbiddenValveState, ValveBank
+from pycnoctl.controller.domain.gaspath import ValveRoles
 
 log = logging.getLogger(__name__)
 

@@ -15,8 +15,8 @@ from typing import Any, Literal
 from pymodbus.client import ModbusSerialClient, ModbusTcpClient
 from pymodbus.exceptions import ConnectionException, ModbusException, ModbusIOException
 
-from pycnoctl.drivers.base import Reading, Validity
-from pycnoctl.drivers.clock import Clock, WallClock
+from pycnoctl.controller.domain.clock import Clock, WallClock
+from pycnoctl.controller.domain.devices import Reading, Validity
 from pycnoctl.drivers.gauge_ascii import pascal_per
 
 log = logging.getLogger(__name__)

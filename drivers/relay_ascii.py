@@ -25,7 +25,7 @@ import threading
 from collections.abc import Mapping
 from dataclasses import dataclass
 
-from pycnoctl.drivers.base import ProtocolError
+from pycnoctl.controller.domain.devices import ProtocolError
 from pycnoctl.drivers.transports import Transport
 
 log = logging.getLogger(__name__)

@@ -17,9 +17,10 @@ import math
 from collections.abc import Mapping
 from pathlib import Path
 
-from pycnoctl.drivers.base import DeviceDisconnected, DeviceError, Reading, Validity
+from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, Reading, Validity
+from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
 from pycnoctl.drivers.guarded import GuardedValveBank
-from pycnoctl.drivers.instrument import Chambers, Instrument, Limits, ValveRoles
+from pycnoctl.drivers.instrument import Instrument
 from pycnoctl.sim.bench import SensorSample, SimBench
 from pycnoctl.sim.clock import SimClock
 from pycnoctl.sim.config import SimConfig, load_sim_config

@@ -24,7 +24,7 @@ except ImportError:  # pragma: no cover - not on POSIX
     class _TermiosError(Exception):  # type: ignore[no-redef]
         pass
 
-from pycnoctl.drivers.base import DeviceDisconnected, DeviceError, DeviceTimeout
+from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, DeviceTimeout
 
 log = logging.getLogger(__name__)
 

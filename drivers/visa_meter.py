@@ -13,8 +13,8 @@ import logging
 import math
 from dataclasses import dataclass
 
-from pycnoctl.drivers.base import DeviceDisconnected, DeviceError, DeviceTimeout, Reading, Validity
-from pycnoctl.drivers.clock import Clock, WallClock
+from pycnoctl.controller.domain.clock import Clock, WallClock
+from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, DeviceTimeout, Reading, Validity
 from pycnoctl.drivers.transports import Transport
 
 log = logging.getLogger(__name__)

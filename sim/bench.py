@@ -22,7 +22,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from pycnoctl.controller.gas import get_gas
+from pycnoctl.controller.domain.gas import get_gas
 from pycnoctl.sim.clock import SimClock
 from pycnoctl.sim.config import DEVICES, Fault, SimConfig, load_sim_config
 from pycnoctl.sim.faults import FaultSchedule, FaultState

@@ -15,8 +15,8 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
 
-from pycnoctl.controller.gas import get_gas
-from pycnoctl.controller.units import (
+from pycnoctl.controller.domain.gas import get_gas
+from pycnoctl.controller.domain.units import (
     UnitError,
     parse_duration,
     parse_length,
@@ -27,7 +27,7 @@ from pycnoctl.controller.units import (
     parse_volume,
     to_quantity,
 )
-from pycnoctl.controller.yamlio import ConfigError, Document, Loc, load_file, validate
+from pycnoctl.controller.domain.yamlio import ConfigError, Document, Loc, load_file, validate
 
 CONFIG_DIR = Path(__file__).resolve().parent / "configs"
 DEFAULT_CONFIG = CONFIG_DIR / "clean.yaml"

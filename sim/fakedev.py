@@ -29,8 +29,8 @@ from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Literal, Protocol
 
-from pycnoctl.controller.units import convert
-from pycnoctl.drivers.base import DeviceTimeout, PressureSensor, Reading, Validity, ValveBank
+from pycnoctl.controller.domain.devices import DeviceTimeout, PressureSensor, Reading, Validity, ValveBank
+from pycnoctl.controller.domain.units import convert
 
 log = logging.getLogger(__name__)
 

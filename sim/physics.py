@@ -33,7 +33,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
-from pycnoctl.controller.gas import Gas, R, virial_function
+from pycnoctl.controller.domain.gas import Gas, R, virial_function
 
 #: Within this relative pressure difference the nozzle law is replaced by a linear one (laminar-like
 #: approach to equilibrium).  Its flow at the band edge is kept, so the law stays continuous.

@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from pycnoctl.controller.advisor import AdviceError, advise, f_factor, predicted_u
-from pycnoctl.controller.uncertainty import cycle_volume_budget
-from pycnoctl.controller.volume import expansion_pressure
+from pycnoctl.controller.maths.advisor import AdviceError, advise, f_factor, predicted_u
+from pycnoctl.controller.maths.uncertainty import cycle_volume_budget
+from pycnoctl.controller.maths.volume import expansion_pressure
 
 CM3 = 1e-6
 PA = 101325.0

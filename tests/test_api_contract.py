@@ -20,12 +20,12 @@ with warnings.catch_warnings():  # starlette 1.x nags about httpx; the client wo
     warnings.simplefilter("ignore", DeprecationWarning)
     from starlette.testclient import TestClient
 
-from pycnoctl.controller.api import create_app
-from pycnoctl.controller.catalog import is_run_id
-from pycnoctl.controller.daemon import Daemon
-from pycnoctl.controller.records import load_run
-from pycnoctl.controller.security import Policy
-from pycnoctl.controller.sequence import list_shipped
+from pycnoctl.controller.record.catalog import is_run_id
+from pycnoctl.controller.record.runfolder import load_run
+from pycnoctl.controller.run.sequence import list_shipped
+from pycnoctl.controller.service.api import create_app
+from pycnoctl.controller.service.daemon import Daemon
+from pycnoctl.controller.service.security import Policy
 from pycnoctl.drivers.simulated import build_sim_instrument
 
 BASE = "http://127.0.0.1:8765"
@@ -199,7 +199,7 @@ def test_report_endpoint(client: TestClient, daemon: Daemon) -> None:
     rid = client.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
     wait_status(client, rid, {"completed"})
     r = client.get(f"/api/runs/{rid}/report")
-    if importlib.util.find_spec("pycnoctl.controller.report") is None:
+    if importlib.util.find_spec("pycnoctl.controller.record.report") is None:
         assert r.status_code == 404 and "not available" in r.json()["error"]
     else:
         assert r.status_code == 200 and r.headers["content-type"].startswith("text/html")

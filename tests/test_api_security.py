@@ -14,9 +14,9 @@ with warnings.catch_warnings():  # starlette 1.x nags about httpx; the client wo
     warnings.simplefilter("ignore", DeprecationWarning)
     from starlette.testclient import TestClient
 
-from pycnoctl.controller.api import create_app
-from pycnoctl.controller.daemon import Daemon
-from pycnoctl.controller.security import COOKIE, Policy, TokenError, load_token, split_host
+from pycnoctl.controller.service.api import create_app
+from pycnoctl.controller.service.daemon import Daemon
+from pycnoctl.controller.service.security import COOKIE, Policy, TokenError, load_token, split_host
 from pycnoctl.drivers.simulated import build_sim_instrument
 
 TOKEN = "s3cret-token-for-the-test-0123456789"

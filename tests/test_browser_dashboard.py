@@ -39,7 +39,7 @@ def daemon_url() -> Iterator[tuple[str, Path]]:
             s.bind(("127.0.0.1", 0))
             port = s.getsockname()[1]
         err = open(Path(d) / "serve.err", "w+")  # noqa: SIM115
-        proc = subprocess.Popen([sys.executable, "-m", "pycnoctl.controller.cli", "serve", "--sim", "--speed",
+        proc = subprocess.Popen([sys.executable, "-m", "pycnoctl.controller.cli.main", "serve", "--sim", "--speed",
                                  str(SPEED), "--data", d, "--port", str(port)], stdout=subprocess.DEVNULL, stderr=err)
         url = f"http://127.0.0.1:{port}"
         t_end = time.monotonic() + 20

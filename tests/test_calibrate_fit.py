@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from uncertainties import ufloat
 
-from pycnoctl.controller.calib_workflow import EMPTY, Point, Sphere, fit_points, parse_sphere, refusal_reason
-from pycnoctl.controller.calibration import CalibrationRun, chi2_quantile, fit_calibration, two_point
+from pycnoctl.controller.jobs.calibration import EMPTY, Point, Sphere, fit_points, parse_sphere, refusal_reason
+from pycnoctl.controller.maths.calibration import CalibrationRun, chi2_quantile, fit_calibration, two_point
 
 PA = 101325.0
 

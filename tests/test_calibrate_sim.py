@@ -8,8 +8,8 @@ from pathlib import Path
 
 import pytest
 
-from pycnoctl.controller import cli
-from pycnoctl.controller.calib_workflow import (
+from pycnoctl.controller.cli import main as cli
+from pycnoctl.controller.jobs.calibration import (
     AGE_RULE,
     CalibrationPolicy,
     SimCellLoader,
@@ -17,9 +17,9 @@ from pycnoctl.controller.calib_workflow import (
     parse_sphere,
     use_latest_calibration,
 )
-from pycnoctl.controller.catalog import CalibrationRecord, Catalog
-from pycnoctl.controller.control import Controller
-from pycnoctl.controller.runs import RunRequest, execute, prepare
+from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+from pycnoctl.controller.record.catalog import CalibrationRecord, Catalog
+from pycnoctl.controller.run.control import Controller
 from pycnoctl.drivers.simulated import build_sim_instrument
 from pycnoctl.sim.config import Nominal, load_sim_config
 

@@ -12,7 +12,7 @@ optimize = pytest.importorskip("scipy.optimize")
 stats = pytest.importorskip("scipy.stats")
 unc = pytest.importorskip("uncertainties")
 
-from pycnoctl.controller.calibration import (  # noqa: E402
+from pycnoctl.controller.maths.calibration import (  # noqa: E402
     CalibrationError,
     CalibrationRun,
     chi2_quantile,
@@ -20,7 +20,7 @@ from pycnoctl.controller.calibration import (  # noqa: E402
     sphere_volume,
     two_point,
 )
-from pycnoctl.controller.volume import expansion_pressure  # noqa: E402
+from pycnoctl.controller.maths.volume import expansion_pressure  # noqa: E402
 
 CM3 = 1e-6
 PA = 101325.0
@@ -140,7 +140,7 @@ def test_real_gas_calibration_on_coolprop_runs():
     assert real.vc == pytest.approx(VC, rel=1e-5) and real.vr == pytest.approx(VR, rel=1e-5)
     ideal = fit_calibration(runs, gas="ideal", u_p=5.0)
     # methods.md [D]: to first order non-ideality rescales Vr by (1 + B P1g/RT)
-    from pycnoctl.controller.gas import R, get_gas
+    from pycnoctl.controller.domain.gas import R, get_gas
 
     b = get_gas("helium").B(t)
     assert ideal.vr / VR - 1 == pytest.approx(b * 1.3e5 / (R * t), rel=0.1)

@@ -12,7 +12,7 @@ import threading
 
 import pytest
 
-from pycnoctl.controller.catalog import (
+from pycnoctl.controller.record.catalog import (
     SCHEMA_VERSION,
     CalibrationRecord,
     Catalog,

@@ -18,13 +18,13 @@ import time
 
 import numpy as np
 
-from pycnoctl.controller.catalog import Catalog
-from pycnoctl.controller.records import load_run
+from pycnoctl.controller.record.catalog import Catalog
+from pycnoctl.controller.record.runfolder import load_run
 
 CATALOG_WRITER = textwrap.dedent(
     """
     import sys
-    from pycnoctl.controller.catalog import Catalog
+    from pycnoctl.controller.record.catalog import Catalog
     cat = Catalog(sys.argv[1])
     print("ready", flush=True)
     i = 0
@@ -43,8 +43,8 @@ TRACE_WRITER = textwrap.dedent(
     """
     import sys
     from pathlib import Path
-    from pycnoctl.controller.records import RunRecorder
-    from pycnoctl.drivers.base import Reading
+    from pycnoctl.controller.record.runfolder import RunRecorder
+    from pycnoctl.controller.domain.devices import Reading
     rec = RunRecorder(Path(sys.argv[1]), sys.argv[2], ["inlet", "vent"], {})
     print("ready", flush=True)
     k = 0

@@ -12,8 +12,8 @@ import pytest
 CP = pytest.importorskip("CoolProp.CoolProp")
 optimize = pytest.importorskip("scipy.optimize")
 
-from pycnoctl.controller.cli import main  # noqa: E402
-from pycnoctl.controller.volume import expansion_pressure  # noqa: E402
+from pycnoctl.controller.cli.main import main  # noqa: E402
+from pycnoctl.controller.maths.volume import expansion_pressure  # noqa: E402
 
 CM3 = 1e-6
 PA = 101325.0

@@ -13,12 +13,12 @@ from pathlib import Path
 
 import pytest
 
-from pycnoctl.controller.cli import main
-from pycnoctl.controller.records import load_run
-from pycnoctl.controller.volume import expansion_ratio
+from pycnoctl.controller.cli.main import main
+from pycnoctl.controller.maths.volume import expansion_ratio
+from pycnoctl.controller.record.runfolder import load_run
 from pycnoctl.sim.config import shipped_configs
 
-PYCNOCTL = [sys.executable, "-m", "pycnoctl.controller.cli"]
+PYCNOCTL = [sys.executable, "-m", "pycnoctl.controller.cli.main"]
 
 
 def run_json(capsys, *args: str) -> tuple[int, dict]:

@@ -9,8 +9,8 @@ from pathlib import Path
 
 import pytest
 
-from pycnoctl.controller import cli
-from pycnoctl.controller.catalog import Catalog
+from pycnoctl.controller.cli import main as cli
+from pycnoctl.controller.record.catalog import Catalog
 
 
 @pytest.fixture()
@@ -76,7 +76,7 @@ def test_show_and_report(tmp_path: Path, capsys: pytest.CaptureFixture[str], mon
     assert rc == 0 and path.name == "report.html" and path.with_suffix(".png").exists()
     assert cli.main(["show", "R20000101T000000Z-000000", "--data", str(tmp_path)]) == 2
     # the report verb (cmd_report), registered here directly
-    parser = cli.build_parser({"report": "pycnoctl.controller.cmd_report"})
+    parser = cli.build_parser({"report": "pycnoctl.controller.cli.report"})
     args = parser.parse_args(["report", "--samples", "TILE-", "--data", str(tmp_path),
                               "--out", str(tmp_path / "set.html")])
     assert args.func(args) == 0 and "TILE-3" in (tmp_path / "set.html").read_text()

@@ -15,9 +15,9 @@ from pathlib import Path
 import httpx
 import pytest
 
-from pycnoctl.controller.api import serve_in_thread
-from pycnoctl.controller.catalog import Catalog
-from pycnoctl.controller.daemon import Daemon, EventBus, attach_json_log, sd_notify, watchdog_interval
+from pycnoctl.controller.record.catalog import Catalog
+from pycnoctl.controller.service.api import serve_in_thread
+from pycnoctl.controller.service.daemon import Daemon, EventBus, attach_json_log, sd_notify, watchdog_interval
 from pycnoctl.drivers.simulated import build_sim_instrument
 
 
@@ -83,7 +83,7 @@ def test_control_loop_pings_the_watchdog(tmp_path: Path, monkeypatch: pytest.Mon
 def test_json_log_lines(tmp_path: Path) -> None:
     h = attach_json_log(tmp_path / "log.jsonl")
     try:
-        logging.getLogger("pycnoctl.controller.daemon").warning("hello %s", "lab",
+        logging.getLogger("pycnoctl.controller.service.daemon").warning("hello %s", "lab",
                                                                  extra={"data": {"event": "x", "v": float("nan")}})
     finally:
         logging.getLogger("pycnoctl").removeHandler(h)

@@ -24,7 +24,7 @@ from pathlib import Path
 import httpx
 import pytest
 
-from pycnoctl.controller.records import load_run
+from pycnoctl.controller.record.runfolder import load_run
 
 SAFE = {"inlet": False, "vent": True, "exp_small": True, "exp_large": True}  # clean sim: ValveRoles.safe_state()
 
@@ -49,7 +49,7 @@ class Serve:
         self.url = f"http://127.0.0.1:{port}"
         self.log = open(data / f"serve-{time.monotonic_ns()}.err", "w+")  # noqa: SIM115
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "pycnoctl.controller.cli", "serve", "--sim", "--speed", str(speed),
+            [sys.executable, "-m", "pycnoctl.controller.cli.main", "serve", "--sim", "--speed", str(speed),
              "--data", str(data), "--port", str(port)], stdout=subprocess.DEVNULL, stderr=self.log)
         self.http = httpx.Client(base_url=self.url, timeout=5.0)
         t_end = time.monotonic() + 20

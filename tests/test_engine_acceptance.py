@@ -15,11 +15,11 @@ from pathlib import Path
 import pytest
 import yaml
 
-from pycnoctl.controller.catalog import Catalog
-from pycnoctl.controller.control import Controller
-from pycnoctl.controller.engine import TRANSITIONS, RunEngine
-from pycnoctl.controller.records import load_run
-from pycnoctl.controller.runs import RunRequest, execute, prepare
+from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+from pycnoctl.controller.record.catalog import Catalog
+from pycnoctl.controller.record.runfolder import load_run
+from pycnoctl.controller.run.control import Controller
+from pycnoctl.controller.run.engine import TRANSITIONS, RunEngine
 from pycnoctl.drivers.simulated import build_sim_instrument
 from pycnoctl.sim.config import config_from_dict, shipped_configs
 
@@ -240,7 +240,7 @@ def test_abort_keeps_the_record_and_the_safe_state(tmp_path):
 
 
 def test_stop_on_converge_ends_the_run_early(tmp_path):
-    from pycnoctl.controller.sequence import resolve_sequence
+    from pycnoctl.controller.run.sequence import resolve_sequence
 
     data = yaml.safe_load(resolve_sequence("grain-volume").read_text(encoding="utf-8"))
     data["cycles"].update({"count": 8, "discard": 2, "stop_on_converge": True,
@@ -290,7 +290,7 @@ def test_automatic_expansion_volume_weighs_the_calibrated_volumes(tmp_path):
     # advisor rule (methods: f(x) smallest near Vr = 1.2 Vg): with a 5 cm^3 sample in a 12 cm^3 cell the
     # nominal 8 cm^3 'small' volume is the better one; if calibration says the volumes are the other way
     # round, the choice must follow the calibration, not the nominal numbers
-    from pycnoctl.controller.catalog import CalibrationRecord
+    from pycnoctl.controller.record.catalog import CalibrationRecord
 
     inst = build_sim_instrument()
     catalog = Catalog(tmp_path / "c.sqlite")

@@ -6,7 +6,7 @@ import time
 
 import pytest
 
-from pycnoctl.drivers.base import Validity
+from pycnoctl.controller.domain.devices import Validity
 from pycnoctl.drivers.gauge_ascii import AsciiGauge, GaugeFormat
 from pycnoctl.drivers.relay_ascii import AsciiRelayBoard, Channel
 from pycnoctl.drivers.transports import SerialTransport

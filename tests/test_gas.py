@@ -13,7 +13,7 @@ import pytest
 CP = pytest.importorskip("CoolProp.CoolProp")
 scipy_constants = pytest.importorskip("scipy.constants")
 
-from pycnoctl.controller.gas import GASES, T_FIT, R, UnknownGas, get_gas, virial_function  # noqa: E402
+from pycnoctl.controller.domain.gas import GASES, T_FIT, R, UnknownGas, get_gas, virial_function  # noqa: E402
 
 FLUIDS = {"helium": "Helium", "nitrogen": "Nitrogen", "argon": "Argon", "air": "Air"}
 B_TOL = {"helium": 0.05e-6, "nitrogen": 0.1e-6, "argon": 0.1e-6, "air": 0.1e-6}  # m^3/mol (brief)

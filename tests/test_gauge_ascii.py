@@ -8,8 +8,8 @@ import re
 import pytest
 import scipy.constants as sc
 
-from pycnoctl.drivers.base import Validity
-from pycnoctl.drivers.clock import ManualClock
+from pycnoctl.controller.domain.clock import ManualClock
+from pycnoctl.controller.domain.devices import Validity
 from pycnoctl.drivers.gauge_ascii import AsciiGauge, GaugeFormat, classify_text, si_converter
 from pycnoctl.drivers.transports import SerialTransport
 from pycnoctl.sim.fakedev import FakeDevice, GaugeFirmware, ScriptedSensor, ScriptedTransport

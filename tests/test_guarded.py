@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import pytest
 
-from pycnoctl.drivers.base import DeviceError, ForbiddenValveState
+from pycnoctl.controller.domain.devices import DeviceError, ForbiddenValveState
+from pycnoctl.controller.domain.gaspath import ValveRoles
 from pycnoctl.drivers.guarded import GuardedValveBank, safe_state
-from pycnoctl.drivers.instrument import ValveRoles
 from pycnoctl.drivers.relay_ascii import AsciiRelayBoard, Channel
 from pycnoctl.drivers.transports import SerialTransport
 from pycnoctl.sim.fakedev import FakeDevice, MemoryValveBank, RelayFirmware, ScriptedTransport

@@ -9,8 +9,8 @@ from pathlib import Path
 import pytest
 import yaml
 
-from pycnoctl.controller.yamlio import ConfigError
-from pycnoctl.drivers.base import ForbiddenValveState, Reading, Validity
+from pycnoctl.controller.domain.devices import ForbiddenValveState, Reading, Validity
+from pycnoctl.controller.domain.yamlio import ConfigError
 from pycnoctl.drivers.config import build_instrument, load_instrument_config, reconnect_instrument
 from pycnoctl.drivers.guarded import GuardedValveBank
 from pycnoctl.sim.fakedev import FakeDevice, GaugeFirmware, MemoryValveBank, RelayFirmware

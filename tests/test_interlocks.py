@@ -14,14 +14,14 @@ import math
 import numpy as np
 import pytest
 
-from pycnoctl.controller.interlocks import (
+from pycnoctl.controller.domain.devices import Reading, Validity
+from pycnoctl.controller.domain.gaspath import Limits, ValveRoles
+from pycnoctl.controller.run.interlocks import (
     EXTERNAL_KINDS,
     InterlockMonitor,
     Observation,
     Trip,
 )
-from pycnoctl.drivers.base import Reading, Validity
-from pycnoctl.drivers.instrument import Limits, ValveRoles
 
 DT = 0.1
 AMBIENT = 101_325.0  # Pa, standard atmosphere (ISO 2533)

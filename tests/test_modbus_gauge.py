@@ -12,8 +12,8 @@ import scipy.constants as sc
 from pymodbus.server import ModbusTcpServer
 from pymodbus.simulator import DataType, SimData, SimDevice
 
-from pycnoctl.drivers.base import Validity
-from pycnoctl.drivers.clock import ManualClock
+from pycnoctl.controller.domain.clock import ManualClock
+from pycnoctl.controller.domain.devices import Validity
 from pycnoctl.drivers.modbus_gauge import ModbusGauge, RegisterMap, decode
 
 

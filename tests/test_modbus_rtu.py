@@ -12,8 +12,8 @@ import tty
 import pytest
 import scipy.constants as sc
 
-from pycnoctl.drivers.base import Validity
-from pycnoctl.drivers.clock import ManualClock
+from pycnoctl.controller.domain.clock import ManualClock
+from pycnoctl.controller.domain.devices import Validity
 from pycnoctl.drivers.modbus_gauge import ModbusGauge, RegisterMap
 
 

@@ -8,9 +8,9 @@ from pathlib import Path
 
 import pytest
 
-from pycnoctl.controller.cli import main
-from pycnoctl.drivers.base import DeviceError
-from pycnoctl.drivers.cmd_probe import probe
+from pycnoctl.controller.cli.main import main
+from pycnoctl.controller.cli.probe import probe
+from pycnoctl.controller.domain.devices import DeviceError
 from pycnoctl.drivers.config import build_instrument, load_instrument_config
 
 pytest.importorskip("pycnoctl.drivers.simulated")

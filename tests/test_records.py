@@ -15,9 +15,9 @@ import time
 import numpy as np
 import pytest
 
-from pycnoctl.controller import records
-from pycnoctl.controller.records import CycleRecord, RecordWriteError, RunRecorder, load_run
-from pycnoctl.drivers.base import Reading, Validity
+from pycnoctl.controller.domain.devices import Reading, Validity
+from pycnoctl.controller.record import runfolder as records
+from pycnoctl.controller.record.runfolder import CycleRecord, RecordWriteError, RunRecorder, load_run
 
 VALVES = ("inlet", "vent", "exp_small")
 

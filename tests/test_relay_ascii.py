@@ -6,7 +6,7 @@ import time
 
 import pytest
 
-from pycnoctl.drivers.base import DeviceDisconnected, DeviceTimeout, ProtocolError
+from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceTimeout, ProtocolError
 from pycnoctl.drivers.relay_ascii import AsciiRelayBoard, Channel, FrameTemplate, RelayCommands, unescape
 from pycnoctl.drivers.transports import SerialTransport
 from pycnoctl.sim.fakedev import (

@@ -12,10 +12,9 @@ import pytest
 from matplotlib import colors
 from matplotlib.image import imread
 
-from pycnoctl.controller.catalog import Catalog
-from pycnoctl.controller.control import Controller
-from pycnoctl.controller.records import load_run
-from pycnoctl.controller.report import (
+from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+from pycnoctl.controller.record.catalog import Catalog
+from pycnoctl.controller.record.report import (
     DPI,
     FIGSIZE,
     PHASE_COLOURS,
@@ -27,7 +26,8 @@ from pycnoctl.controller.report import (
     render_sample_set,
     sample_set,
 )
-from pycnoctl.controller.runs import RunRequest, execute, prepare
+from pycnoctl.controller.record.runfolder import load_run
+from pycnoctl.controller.run.control import Controller
 from pycnoctl.drivers.simulated import build_sim_instrument
 
 

@@ -12,8 +12,8 @@ from pathlib import Path
 import pytest
 from pydantic import ValidationError
 
-from pycnoctl.controller import sequence as sq
-from pycnoctl.controller.yamlio import MAX_BYTES, ConfigError
+from pycnoctl.controller.domain.yamlio import MAX_BYTES, ConfigError
+from pycnoctl.controller.run import sequence as sq
 
 GOOD = """\
 format: pycnoctl-sequence/1

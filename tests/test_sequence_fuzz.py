@@ -25,8 +25,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pycnoctl.controller import sequence as sq
-from pycnoctl.controller.yamlio import ConfigError
+from pycnoctl.controller.domain.yamlio import ConfigError
+from pycnoctl.controller.run import sequence as sq
 
 VALID = sq.list_shipped()["grain-volume"].read_text(encoding="utf-8")
 

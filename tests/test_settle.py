@@ -12,7 +12,7 @@ import math
 import numpy as np
 import pytest
 
-from pycnoctl.controller.settle import (
+from pycnoctl.controller.maths.settle import (
     SettleCriteria,
     SettleDetector,
     SettleStatus,

@@ -9,10 +9,10 @@ from pathlib import Path
 import pytest
 from pydantic import BaseModel
 
-from pycnoctl.controller import sequence as sq
+from pycnoctl.controller.run import sequence as sq
 
 SHIPPED = ("calibration", "grain-volume", "leak-check", "purge-only", "quick-demo")
-README = Path(sq.__file__).resolve().parents[1] / "sequences" / "README.md"
+README = Path(__file__).resolve().parents[1] / "sequences" / "README.md"
 MAX_PRESSURE = 2.0e5  # Pa gauge: the demo instrument's trip limit (relief near 2.5 bar)
 DEMO_VOLUMES = ("small", "large")
 

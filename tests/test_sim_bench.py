@@ -8,7 +8,7 @@ import time
 import numpy as np
 import pytest
 
-from pycnoctl.drivers.clock import Clock
+from pycnoctl.controller.domain.clock import Clock
 from pycnoctl.sim.bench import SimBench
 from pycnoctl.sim.clock import SimClock
 from pycnoctl.sim.sensors import SensorModel

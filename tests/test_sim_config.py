@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from pycnoctl.controller.yamlio import ConfigError
+from pycnoctl.controller.domain.yamlio import ConfigError
 from pycnoctl.sim.config import load_sim_config, shipped_configs
 
 

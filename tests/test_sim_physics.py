@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 import scipy.constants as sc
 
-from pycnoctl.controller.gas import get_gas
-from pycnoctl.controller.volume import expansion_pressure
+from pycnoctl.controller.domain.gas import get_gas
+from pycnoctl.controller.maths.volume import expansion_pressure
 from pycnoctl.sim.bench import SimBench
 from pycnoctl.sim.physics import (
     LINEAR_BAND,

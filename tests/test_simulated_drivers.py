@@ -6,7 +6,7 @@ import math
 
 import pytest
 
-from pycnoctl.drivers.base import (
+from pycnoctl.controller.domain.devices import (
     Barometer,
     DeviceDisconnected,
     DeviceError,

@@ -9,7 +9,7 @@ import pytest
 
 scipy_stats = pytest.importorskip("scipy.stats")
 
-from pycnoctl.controller.stats import MAD_TO_SIGMA, converged, cycle_stats, outliers, robust_z  # noqa: E402
+from pycnoctl.controller.maths.stats import MAD_TO_SIGMA, converged, cycle_stats, outliers, robust_z  # noqa: E402
 
 VOLS = [5.0210, 5.0032, 5.0011, 5.0019, 5.0004, 5.0016]
 

@@ -7,7 +7,7 @@ import threading
 
 import pytest
 
-from pycnoctl.drivers.base import DeviceDisconnected, DeviceTimeout
+from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceTimeout
 from pycnoctl.drivers.transports import SerialTransport, Transport, VisaTransport
 from pycnoctl.sim.fakedev import FakeDevice, GaugeFirmware, ScriptedSensor
 

@@ -11,9 +11,9 @@ import pytest
 CP = pytest.importorskip("CoolProp.CoolProp")
 unc = pytest.importorskip("uncertainties")
 
-from pycnoctl.controller.advisor import X_OPTIMUM, f_factor  # noqa: E402
-from pycnoctl.controller.gas import get_gas  # noqa: E402
-from pycnoctl.controller.uncertainty import (  # noqa: E402
+from pycnoctl.controller.domain.gas import get_gas  # noqa: E402
+from pycnoctl.controller.maths.advisor import X_OPTIMUM, f_factor  # noqa: E402
+from pycnoctl.controller.maths.uncertainty import (  # noqa: E402
     combine_run,
     cycle_volume_budget,
     density,
@@ -22,7 +22,7 @@ from pycnoctl.controller.uncertainty import (  # noqa: E402
     type_a,
     water_density,
 )
-from pycnoctl.controller.volume import expansion_pressure  # noqa: E402
+from pycnoctl.controller.maths.volume import expansion_pressure  # noqa: E402
 
 CM3 = 1e-6
 PA = 101325.0

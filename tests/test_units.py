@@ -9,8 +9,8 @@ from hypothesis import strategies as st
 
 scipy_constants = pytest.importorskip("scipy.constants")
 
-from pycnoctl.controller import units as u  # noqa: E402
-from pycnoctl.controller.units import UnitError  # noqa: E402
+from pycnoctl.controller.domain import units as u  # noqa: E402
+from pycnoctl.controller.domain.units import UnitError  # noqa: E402
 
 C = scipy_constants
 

@@ -14,9 +14,9 @@ from pathlib import Path
 
 import pytest
 
-from pycnoctl.controller.control import Controller
-from pycnoctl.controller.engine import RunEngine
-from pycnoctl.controller.runs import RunRequest, prepare
+from pycnoctl.controller.jobs.measurement import RunRequest, prepare
+from pycnoctl.controller.run.control import Controller
+from pycnoctl.controller.run.engine import RunEngine
 from pycnoctl.drivers.config import build_instrument, load_instrument_config
 from pycnoctl.drivers.relay_ascii import Channel
 from pycnoctl.drivers.simulated import build_sim_instrument

@@ -6,8 +6,8 @@ from importlib.resources import files
 
 import pytest
 
-from pycnoctl.drivers.base import Validity
-from pycnoctl.drivers.clock import ManualClock
+from pycnoctl.controller.domain.clock import ManualClock
+from pycnoctl.controller.domain.devices import Validity
 from pycnoctl.drivers.transports import VisaTransport
 from pycnoctl.drivers.visa_meter import LoopScaling, VisaTransducerMeter
 

@@ -10,8 +10,8 @@ CP = pytest.importorskip("CoolProp.CoolProp")
 optimize = pytest.importorskip("scipy.optimize")
 scipy_constants = pytest.importorskip("scipy.constants")
 
-from pycnoctl.controller.units import parse_pressure  # noqa: E402
-from pycnoctl.controller.volume import (  # noqa: E402
+from pycnoctl.controller.domain.units import parse_pressure  # noqa: E402
+from pycnoctl.controller.maths.volume import (  # noqa: E402
     VolumeError,
     expansion_pressure,
     expansion_ratio,

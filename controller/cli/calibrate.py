@@ -1,0 +1,121 @@
+"""``pycnoctl calibrate``: measure the chamber volumes with the empty cell and reference spheres.
+
+For each step (empty cell, then each --sphere) and each expansion volume the calibration sequence runs
+once; Vc and Vr are fitted by weighted least squares and the calibration is stored in the catalog only
+if its residuals are what the pressure noise explains (chi-square test).  Later runs compute with the
+latest stored calibration of their expansion volume and gas.
+
+Exit codes: 0 stored, 2 bad input, 3 a run faulted, 4 aborted, 6 refused (residuals too large).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from typing import Any
+
+from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args
+from pycnoctl.controller.cli.main import UsageError
+
+EXIT = {"stored": 0, "fault": 3, "aborted": 4, "refused": 6}
+
+
+def add_parser(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("calibrate", help="calibrate the chamber volumes with reference spheres",
+                       description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    add_instrument_args(p)
+    add_data_arg(p)
+    p.add_argument("--sphere", action="append", default=[], metavar="SPEC", required=True,
+                   help="a reference sphere by diameter or volume with its certificate standard uncertainty, "
+                        "e.g. 'D=25.400 mm,u=0.002 mm' or 'V=8.5802 cm^3,u=0.0004 cm^3' (optional name=...); "
+                        "repeat for several")
+    p.add_argument("--expansion-volume", action="append", metavar="NAME",
+                   help="calibrate only this expansion volume (repeatable; default all)")
+    p.add_argument("--sequence", default="calibration", help="calibration sequence (default: the shipped one)")
+    p.add_argument("--operator", default="", help="who calibrated, for the record")
+    p.add_argument("--alpha", type=float, default=0.01,
+                   help="significance of the chi-square refusal test (default 0.01)")
+    p.add_argument("--yes", action="store_true", help="no prompts between steps (the cell is loaded already)")
+    p.add_argument("--json", action="store_true", help="print the outcome as JSON")
+    p.set_defaults(func=main)
+
+
+def main(args: argparse.Namespace) -> int:
+    from pycnoctl.controller.cli.common import open_instrument
+    from pycnoctl.controller.jobs.calibration import (
+        CalibrationError,
+        OperatorCellLoader,
+        SimCellLoader,
+        calibrate,
+        parse_sphere,
+    )
+    from pycnoctl.controller.jobs.measurement import data_dir
+    from pycnoctl.controller.record.catalog import Catalog
+    from pycnoctl.controller.run.sequence import SequenceNotFound
+
+    try:
+        spheres = [parse_sphere(s, f"sphere {i}") for i, s in enumerate(args.sphere, 1)]
+    except ValueError as exc:
+        raise UsageError(f"--sphere: {exc}") from None
+    if not 0.0 < args.alpha < 0.5:
+        raise UsageError("--alpha must lie between 0 and 0.5")
+    say = (lambda text: None) if args.json else (lambda text: print(text, file=sys.stderr))
+    instrument = None
+    if args.sim is not None and not args.instrument:
+        loader: Any = SimCellLoader(args.sim or None, announce=say)
+    else:
+        instrument = open_instrument(args)
+
+        def prompt(text: str) -> None:
+            answer = input(f"{text} (q to stop): ")
+            if answer.strip().lower() in ("q", "quit"):
+                raise KeyboardInterrupt
+
+        loader = OperatorCellLoader(instrument, None if args.yes else prompt)
+    root = data_dir(args.data)
+    root.mkdir(parents=True, exist_ok=True)
+    catalog = Catalog(root / "catalog.sqlite")
+    try:
+        outcome = calibrate(spheres, loader, catalog=catalog, root=root / "runs",
+                            expansion_volumes=args.expansion_volume, sequence=args.sequence,
+                            operator=args.operator, alpha=args.alpha, progress=say)
+    except (CalibrationError, SequenceNotFound) as exc:
+        raise UsageError(str(exc)) from None
+    except ValueError as exc:  # unknown expansion volume and the like
+        raise UsageError(str(exc)) from None
+    finally:
+        catalog.close()
+        if instrument is not None:
+            instrument.close()
+    if args.json:
+        print(json.dumps({"status": outcome.status, "message": outcome.message,
+                          "volumes": [o.as_dict() for o in outcome.outcomes]}, indent=2, default=float))
+    else:
+        print_outcome(outcome)
+    return EXIT.get(outcome.status, 3)
+
+
+def print_outcome(outcome: Any) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    con = Console()
+    table = Table(title="calibration")
+    for col in ("volume", "Vc / cm3", "u(Vc)", "Vr / cm3", "u(Vr)", "r(Vc,Vr)", "chi2 / dof", "result"):
+        table.add_column(col, justify="right")
+    for o in outcome.outcomes:
+        d = o.as_dict()
+        if o.fit is None:
+            table.add_row(o.expansion_volume, "-", "-", "-", "-", "-", "-", "not fitted")
+            continue
+        table.add_row(o.expansion_volume, f"{d['vc_cm3']:.5f}", f"{d['u_vc_cm3']:.5f}", f"{d['vr_cm3']:.5f}",
+                      f"{d['u_vr_cm3']:.5f}", f"{d['corr']:.4f}", f"{d['chi2']:.3g} / {d['dof']}",
+                      "stored" if o.accepted else "[red]REFUSED[/]")
+    con.print(table)
+    con.print("uncertainties are standard (k = 1), from the pressure noise and the sphere certificates")
+    for o in outcome.outcomes:
+        if o.accepted:
+            con.print(f"{o.expansion_volume}: calibration {o.record_id} stored (runs {', '.join(o.run_ids)})")
+        else:
+            con.print(f"[red]{o.expansion_volume}: refused: {o.reason}[/]")

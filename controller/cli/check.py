@@ -1,0 +1,161 @@
+"""``pycnoctl check``: prove a sequence sound before it touches hardware.
+
+First the file itself (types, units, ranges, unknown and duplicate keys: every problem as
+file:line:col), then against the instrument (names, pressures below the interlock limit), then a
+dry run of the whole sequence on the simulator, as fast as the CPU allows, which gives the
+expected duration and shows whether the settle rules and time limits hold.  No valve on real
+hardware is touched: with --instrument the config is only read, and the dry run uses the
+simulator (the config's own when it names one, else the clean default).
+Exit codes: 0 sound, 2 problems in a file, 3 the dry run faulted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import tempfile
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+from pycnoctl.controller.cli.main import UsageError
+from pycnoctl.drivers.instrument import Instrument
+
+
+def add_parser(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("check", help="validate a sequence and dry-run it on the simulator",
+                       description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("sequence", help="sequence file, or the name of a shipped one")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--instrument", metavar="CONFIG", help="check against this instrument config (read only)")
+    g.add_argument("--sim", metavar="SIMCONFIG", help="dry-run on this simulator config")
+    p.add_argument("--no-dry-run", action="store_true", help="only the static checks")
+    p.add_argument("--json", action="store_true", help="print the findings as JSON")
+    p.set_defaults(func=main)
+
+
+def static_check(seq_ref: str, *, expansion_volumes: list[str], max_pressure: float,
+                 gas: str | None) -> tuple[Any, list[str]]:
+    """Load the sequence and check it against the instrument's names and limits (ConfigError on problems)."""
+    from pycnoctl.controller.domain.yamlio import ConfigError
+    from pycnoctl.controller.run.sequence import check_against_instrument, load_sequence, resolve_sequence
+
+    seq = load_sequence(resolve_sequence(seq_ref))
+    problems, warnings = check_against_instrument(seq, expansion_volumes=expansion_volumes,
+                                                  max_pressure=max_pressure, gas=gas)
+    if problems:
+        raise ConfigError(problems)
+    return seq, warnings
+
+
+def dry_run(seq_ref: str, make_instrument: Callable[[], Instrument]) -> dict[str, Any]:
+    """Run the sequence on a fresh simulated instrument at full speed; the record goes to a temporary folder."""
+    from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+    from pycnoctl.controller.record.catalog import Catalog
+    from pycnoctl.controller.run.control import Controller
+
+    instrument = make_instrument()
+    try:
+        prepared = prepare(RunRequest(seq_ref, sample_id="dry-run"), instrument)
+        with tempfile.TemporaryDirectory(prefix="pycnoctl-check-") as tmp:
+            catalog = Catalog(Path(tmp) / "catalog.sqlite")
+            try:
+                return execute(prepared, Controller(instrument), root=Path(tmp) / "runs", catalog=catalog)
+            finally:
+                catalog.close()
+    finally:
+        instrument.close()
+
+
+def _simulated_only(cfg: Any) -> bool:
+    from pycnoctl.drivers.config import SimDevice
+
+    return all(d is None or isinstance(d, SimDevice)
+               for d in (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer))
+
+
+def _facts(inst: Instrument) -> tuple[list[str], float, str]:
+    try:
+        return list(inst.roles.expansion), inst.limits.max_pressure, inst.gas
+    finally:
+        inst.close()
+
+
+def main(args: argparse.Namespace) -> int:
+    from pycnoctl.controller.run.sequence import SequenceNotFound, estimate_duration
+    from pycnoctl.drivers.simulated import build_sim_instrument
+
+    def make() -> Instrument:
+        return build_sim_instrument(args.sim)
+
+    factory: Callable[[], Instrument] | None = make
+    where = str(args.sim) if args.sim else "built-in clean simulator"
+    real_hardware = False
+    try:
+        if args.instrument:
+            from pycnoctl.drivers.config import build_instrument, load_instrument_config
+
+            cfg = load_instrument_config(args.instrument)
+            if _simulated_only(cfg):
+                def factory() -> Instrument:
+                    return build_instrument(cfg)
+
+                where = f"simulator of {args.instrument}"
+                names, max_p, gas = _facts(factory())
+            else:  # real hardware: read the config only, never open a port
+                real_hardware = True
+                names = list(cfg.chambers.expansion) if cfg.chambers else []
+                max_p = cfg.limits.max_pressure if cfg.limits else 0.0
+                gas = cfg.gas
+        else:
+            names, max_p, gas = _facts(make())
+        seq, warnings = static_check(args.sequence, expansion_volumes=names, max_pressure=max_p, gas=gas)
+    except SequenceNotFound as exc:
+        raise UsageError(str(exc)) from None
+    report: dict[str, Any] = {"sequence": seq.name, "file": str(seq.path), "kind": seq.kind, "problems": [],
+                              "warnings": warnings, "static_estimate_s": estimate_duration(seq)}
+    if real_hardware:
+        sim_names = _facts(make())[0]
+        if seq.expands and seq.expand.volume not in ("auto", *sim_names):
+            report["warnings"].append(f"dry run skipped: the built-in simulator has no expansion volume "
+                                      f"{seq.expand.volume!r}")
+            factory = None
+    code = 0
+    if factory is not None and not args.no_dry_run:
+        summary = dry_run(args.sequence, factory)
+        report["dry_run"] = {
+            "simulator": where,
+            "status": summary["status"], "expected_duration_s": summary["instrument_time_s"],
+            "wall_time_s": summary["wall_time_s"], "cycles": len(summary["cycles"]),
+            "volume_cm3": summary["volume_cm3"], "volume_u_cm3": summary["volume_u_cm3"],
+            "fault": summary["fault"], "warnings": summary["warnings"],
+        }
+        code = 0 if summary["status"] == "completed" else 3
+    if args.json:
+        print(json.dumps(report, indent=2))
+    else:
+        _print(report)
+    return code
+
+
+def _print(r: dict[str, Any]) -> None:
+    print(f"{r['file']}: sequence {r['sequence']!r} ({r['kind']}) is valid")
+    for w in r["warnings"]:
+        print(f"warning: {w}")
+    print(f"static estimate: {_dur(r['static_estimate_s'])}")
+    d = r.get("dry_run")
+    if d:
+        print(f"dry run on the {d['simulator']}: {d['status']} after {_dur(d['expected_duration_s'])} of "
+              f"instrument time ({d['wall_time_s']:.2f} s wall), {d['cycles']} cycle(s)")
+        if d["volume_cm3"] is not None:
+            print(f"  simulated result: {d['volume_cm3']:.4f} cm3 +/- {d['volume_u_cm3']:.4f} cm3 (k=2)")
+        if d["fault"]:
+            print(f"  fault ({d['fault']['kind']}): {d['fault']['message']}")
+        for w in d["warnings"]:
+            print(f"  warning: {w}")
+        print(f"expected duration: {_dur(d['expected_duration_s'])}")
+
+
+def _dur(s: float) -> str:
+    m, sec = divmod(round(s), 60)
+    return f"{m} min {sec:02d} s" if m else f"{sec} s"

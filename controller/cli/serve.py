@@ -1,0 +1,113 @@
+"""``pycnoctl serve``: run the instrument service (control loop, run queue, local API, dashboard).
+
+One process owns the instrument.  The control loop runs in its own thread and keeps ticking
+while idle so the interlocks watch the pressure between runs; the HTTP side only asks it.
+The safe state is asserted at start, on SIGTERM/SIGINT and on any unhandled error.
+
+Binds 127.0.0.1 by default.  Any other address needs a token (--token-file, or the
+PYCNOCTL_TOKEN environment variable), which every request must then carry.
+With --sim the simulator runs in real time (--speed 10 runs it ten times faster than the clock).
+"""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import sys
+import threading
+import time
+from typing import Any
+
+from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, open_instrument
+from pycnoctl.controller.cli.main import UsageError
+
+DEFAULT_PORT = 8765
+
+
+def add_parser(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("serve", help="run the instrument service with its local API and dashboard",
+                       description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    add_instrument_args(p, realtime=False)
+    add_data_arg(p)
+    p.add_argument("--host", default="127.0.0.1", help="address to bind (default 127.0.0.1; others need a token)")
+    p.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"TCP port (default {DEFAULT_PORT})")
+    p.add_argument("--token-file", metavar="FILE", help="file holding the API token (mode 600)")
+    p.add_argument("--speed", type=float, default=1.0,
+                   help="with --sim: run the real-time simulator this many times faster than the clock")
+    p.set_defaults(func=main)
+
+
+def main(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    from pycnoctl.controller.jobs.measurement import data_dir
+    from pycnoctl.controller.service.api import create_app
+    from pycnoctl.controller.service.daemon import Daemon, attach_json_log, sd_notify
+    from pycnoctl.controller.service.security import Policy, TokenError, load_token
+
+    if not (args.speed > 0) or args.speed > 1000:
+        raise UsageError("--speed must be in (0, 1000]")
+    if not 0 < args.port < 65536:
+        raise UsageError("--port must be 1..65535")
+    try:
+        policy = Policy(bind_host=args.host, port=args.port, token=load_token(args.token_file))
+    except TokenError as exc:
+        raise UsageError(str(exc)) from None
+    root = data_dir(args.data)
+    root.mkdir(parents=True, exist_ok=True)
+    handler = attach_json_log(root / "daemon.log.jsonl")
+    if args.sim is not None:
+        from pycnoctl.drivers.simulated import build_sim_instrument
+
+        try:
+            instrument = build_sim_instrument(args.sim or None, realtime=True, speed=args.speed)
+        except FileNotFoundError as exc:
+            raise UsageError(str(exc)) from None
+    else:
+        instrument = open_instrument(args)
+    server: dict[str, Any] = {}
+    caught: list[int] = []
+    failure: dict[str, BaseException] = {}
+
+    def on_fatal(exc: BaseException) -> None:
+        failure["exc"] = exc
+        if "server" in server:
+            server["server"].should_exit = True
+
+    try:
+        daemon = Daemon(instrument, root, on_fatal=on_fatal)
+        app = create_app(daemon, policy)
+        config = uvicorn.Config(app, host=args.host, port=args.port, log_level="warning", access_log=False,
+                                lifespan="off", timeout_graceful_shutdown=2)
+        srv = uvicorn.Server(config)
+        server["server"] = srv
+        daemon.start()
+
+        def announce() -> None:
+            while not srv.started and not srv.should_exit:
+                time.sleep(0.05)
+            if srv.started:
+                print(f"pycnoctl serve: listening on http://{_url_host(args.host)}:{args.port}/ "
+                      f"(instrument {instrument.name}, data {root})", file=sys.stderr, flush=True)
+                sd_notify("READY=1")
+
+        threading.Thread(target=announce, name="announce", daemon=True).start()
+        # uvicorn restores the handlers it found and re-raises the signal it caught after its own
+        # shutdown; ours only note it, so the safe-state shutdown below always runs.
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            signal.signal(sig, lambda signum, frame: caught.append(signum))
+        srv.run()
+        daemon.stop()
+        daemon.catalog.close()
+    finally:
+        instrument.close()  # safe state, then release the devices
+        handler.close()
+    if failure:
+        print(f"pycnoctl serve: control loop failed: {failure['exc']!r}; instrument left in the safe state",
+              file=sys.stderr)
+        return 1
+    return 130 if signal.SIGINT in caught else 0
+
+
+def _url_host(host: str) -> str:
+    return f"[{host}]" if ":" in host else host

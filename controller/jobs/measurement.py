@@ -1,0 +1,272 @@
+"""One run from request to stored result: the piece shared by ``run``, ``check``, ``calibrate`` and the daemon.
+
+prepare() proves the sequence sound for this instrument before anything moves; execute() drives the
+controller to the end of the run and writes the record, the summary and the catalog row.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import os
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pycnoctl.controller.domain.gaspath import ChamberCalibration
+from pycnoctl.controller.domain.yamlio import ConfigError
+from pycnoctl.controller.maths import results
+from pycnoctl.controller.maths.advisor import advise
+from pycnoctl.controller.record.catalog import Catalog
+from pycnoctl.controller.record.runfolder import RecordWriteError, RunRecorder
+from pycnoctl.controller.run.control import Controller
+from pycnoctl.controller.run.engine import RunEngine
+from pycnoctl.controller.run.sequence import Sequence, check_against_instrument, load_sequence, resolve_sequence
+from pycnoctl.drivers.instrument import Instrument
+
+
+def data_dir(explicit: str | Path | None = None) -> Path:
+    """Where runs and the catalog live: --data, else $PYCNOCTL_DATA, else ./pycnoctl-data."""
+    return Path(explicit or os.environ.get("PYCNOCTL_DATA") or "pycnoctl-data")
+
+
+@dataclass
+class RunRequest:
+    """What the operator asks for; masses in kg, volumes in m^3."""
+
+    sequence: str | Path
+    sample_id: str = ""
+    mass: float | None = None
+    u_mass: float = 0.0
+    bulk_volume: float | None = None
+    operator: str = ""
+    expansion_volume: str | None = None  # overrides the sequence's choice
+    note: str = ""
+
+
+@dataclass
+class PreparedRun:
+    request: RunRequest
+    sequence: Sequence
+    expansion_volume: str
+    warnings: list[str] = field(default_factory=list)
+
+
+def prepare(request: RunRequest, instrument: Instrument, catalog: Catalog | None = None) -> PreparedRun:
+    """Load and check the sequence against the instrument; ConfigError lists every problem.
+
+    With a catalog, an automatic expansion-volume choice weighs the calibrated volumes."""
+    seq = load_sequence(resolve_sequence(request.sequence))
+    names = list(instrument.roles.expansion)
+    problems, warnings = check_against_instrument(
+        seq, expansion_volumes=names, max_pressure=instrument.limits.max_pressure, gas=instrument.gas
+    )
+    if problems:
+        raise ConfigError(problems)
+    choice = request.expansion_volume or seq.expand.volume
+    if choice == "auto":
+        estimate = seq.expand.sample_estimate
+        cal = {n: instrument.chambers.for_expansion(n) for n in names}
+        if catalog is not None:
+            for n in names:
+                rec = catalog.latest_calibration(n, seq.gas)
+                if rec is not None:
+                    cal[n] = ChamberCalibration(rec.vc, rec.vr)
+        volumes = {n: c.vr for n, c in cal.items()}
+        cell = sum(c.vc for c in cal.values()) / len(cal)
+        if estimate is None or not 0 < estimate < cell:
+            choice = max(volumes, key=volumes.__getitem__)
+            warnings.append("no usable sample estimate for the advisor; using the largest expansion volume")
+        else:
+            choice = advise(estimate, cell, volumes, p1_gauge=seq.fill.target, u_p=instrument.pressure_u).best
+    elif choice not in names:
+        raise ValueError(f"unknown expansion volume {choice!r}; the instrument has: {', '.join(names)}")
+    return PreparedRun(request, seq, choice, warnings)
+
+
+def jsonable(x: Any) -> Any:
+    """Plain JSON data from dataclasses, pydantic models, tuples and non-finite floats (as null)."""
+    if dataclasses.is_dataclass(x) and not isinstance(x, type):
+        return jsonable(dataclasses.asdict(x))
+    if isinstance(x, dict):
+        return {str(k): jsonable(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [jsonable(v) for v in x]
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    if isinstance(x, (str, int, float, bool)) or x is None:
+        return x
+    if hasattr(x, "model_dump"):
+        return jsonable(x.model_dump(mode="json"))
+    return str(x)
+
+
+def instrument_description(instrument: Instrument) -> dict[str, Any]:
+    """What the record keeps about the instrument: enough to recompute the run later."""
+    return jsonable({
+        "name": instrument.name,
+        "gas": instrument.gas,
+        "roles": instrument.roles,
+        "chambers": instrument.chambers,
+        "limits": instrument.limits,
+        "pressure_is_gauge": instrument.pressure_is_gauge,
+        "pressure_u": instrument.pressure_u,
+        "temperature_u": instrument.temperature_u,
+        "sample_period": instrument.sample_period,
+        "config": instrument.extras.get("config"),
+    })
+
+
+def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument: Instrument, *,
+              started: float, ended: float, t0: float, t1: float) -> dict[str, Any]:
+    """The run summary: status, result with uncertainty, every cycle, and everything used to get it."""
+    seq = prepared.sequence
+    req = prepared.request
+    cycles = engine.cycle_results()
+    res = results.run_result(cycles, converge=seq.cycles.converge, mass=req.mass, u_mass=req.u_mass) \
+        if seq.expands else None
+    status = {"done": "completed", "fault": "fault", "aborted": "aborted"}.get(engine.state, "interrupted")
+    cal = instrument.chambers.for_expansion(prepared.expansion_volume)
+    out: dict[str, Any] = {
+        "run_id": run_id,
+        "status": status,
+        "sample_id": req.sample_id,
+        "operator": req.operator,
+        "note": req.note,
+        "sequence": {"name": seq.name, "kind": seq.kind, "file": str(seq.path) if seq.path else None,
+                     "text": seq.raw_text, "parsed": seq.model_dump(mode="json")},
+        "instrument": instrument_description(instrument),
+        "calibration": jsonable(cal),
+        "software": {"name": "pycnoctl", "version": _version()},
+        "gas": seq.gas,
+        "expansion_volume": prepared.expansion_volume,
+        "expansion_volume_choice": "request" if req.expansion_volume else (
+            "auto" if seq.expand.volume == "auto" else "sequence"),
+        "started_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(started)),
+        "ended_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(ended)),
+        "instrument_time_s": t1 - t0,
+        "wall_time_s": ended - started,
+        "warnings": list(prepared.warnings) + list(engine.warnings),
+        "fault": {"kind": engine.fault_kind, "message": engine.reason} if engine.state == "fault" else None,
+        "abort_reason": engine.reason if engine.state == "aborted" else None,
+        "cycles": [c.as_dict() for c in cycles],
+        "mass_g": req.mass * 1e3 if req.mass else None,
+        "volume_cm3": None, "volume_u_cm3": None, "volume_u_std_cm3": None, "k": None,
+        "density_g_cm3": None, "density_u_g_cm3": None, "converged": None,
+    }
+    if seq.kind == "leak_check":
+        rates = [c.leak_rate for c in engine.cycles if math.isfinite(c.leak_rate)]
+        out["leak_rate_pa_s"] = rates[-1] if rates else None
+        out["leak_ok"] = bool(rates) and -rates[-1] <= seq.leak_check.max_rate
+    if res is not None:
+        out.update({
+            "volume_cm3": res.volume_m3 * 1e6, "volume_u_cm3": res.U_volume_m3 * 1e6,
+            "volume_u_std_cm3": res.u_volume_m3 * 1e6, "k": res.k, "sd_cm3": res.sd_m3 * 1e6,
+            "rsd": res.rsd, "converged": res.converged, "outliers": res.outliers, "n_kept": res.n_kept,
+            "budget": jsonable(res.as_dict()["budget"]),
+        })
+        if res.density_kg_m3 is not None:
+            out["density_g_cm3"] = res.density_kg_m3 / 1e3
+            out["density_u_g_cm3"] = (res.U_density_kg_m3 or 0.0) / 1e3
+        if req.bulk_volume and res.volume_m3 > 0:
+            from pycnoctl.controller.maths.uncertainty import porosity
+
+            phi, u_phi = porosity(req.bulk_volume, 0.0, res.volume_m3, res.u_volume_m3)
+            out["porosity"], out["porosity_u"] = phi, res.k * u_phi
+    return jsonable(out)
+
+
+def _version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("pycnoctl")
+    except PackageNotFoundError:
+        return "unknown"
+
+
+def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalog: Catalog,
+            run_id: str | None = None, should_stop: Callable[[], bool | str] = lambda: False,
+            max_duration: float | None = None) -> dict[str, Any]:
+    """Drive one run to its end on the controller; returns the summary that was stored."""
+    inst = controller.instrument
+    seq = prepared.sequence
+    req = prepared.request
+    if run_id is None:
+        run_id = catalog.create_run(kind=seq.kind, sample_id=req.sample_id, sequence_name=seq.name,
+                                    status="running")
+    else:  # issued earlier (the daemon's queue): it moves from queued to running now
+        catalog.update_status(run_id, "running")
+    recorder = RunRecorder(root, run_id, inst.valves.valve_names,
+                           meta={"sample_id": req.sample_id, "sequence": seq.name, "operator": req.operator,
+                                 "expansion_volume": prepared.expansion_volume})
+    cal_use = None
+    if seq.kind == "measure":  # compute with the latest calibration of this volume and gas; warn on mismatch
+        from pycnoctl.controller.jobs.calibration import use_latest_calibration
+
+        cal_use = use_latest_calibration(inst, catalog, expansion_volume=prepared.expansion_volume, gas=seq.gas,
+                                         fill_target=seq.fill.target)
+        prepared.warnings.extend(cal_use.warnings)
+    engine = RunEngine(seq, inst, expansion_volume=prepared.expansion_volume)
+    started, t0 = time.time(), inst.clock.now()
+    for w in prepared.warnings:
+        recorder.event("warning", t0, w)
+    try:
+        controller.start(engine, recorder)
+        controller.run_until_done(should_stop, max_duration)
+    finally:
+        if not engine.terminal:  # an exception escaped the loop: safe state, then keep what we have
+            inst.safe_state()
+            engine.request_abort("controller stopped", inst.clock.now())
+        controller.engine = None
+        controller.recorder = None
+        summary = summarize(run_id, prepared, engine, inst, started=started, ended=time.time(),
+                            t0=t0, t1=inst.clock.now())
+        try:
+            if cal_use is not None:
+                late = cal_use.after_run(summary)
+                for w in late:
+                    recorder.event("warning", inst.clock.now(), w)
+                summary["warnings"].extend(late)
+                summary["calibration"]["record"] = jsonable(cal_use.describe())
+            recorder.write_cycles([_cycle_record(c) for c in summary["cycles"]])
+            recorder.write_summary(
+                sequence=summary["sequence"], sequence_text=seq.raw_text or "",
+                instrument=summary["instrument"], calibration=summary["calibration"],
+                results={k: v for k, v in summary.items()
+                         if k not in ("sequence", "instrument", "calibration")},
+            )
+        except RecordWriteError as exc:
+            summary["warnings"].append(f"record incomplete: {exc}")
+        finally:
+            recorder.close()
+        catalog.add_cycles(run_id, [(c["index"], c["p1_gauge_pa"], c["p2_gauge_pa"], c["volume_m3"], c["kept"])
+                                    for c in summary["cycles"]])
+        catalog.finish_run(run_id, summary["status"], volume_m3=_m3(summary["volume_cm3"]),
+                           u_volume_m3=_m3(summary["volume_u_cm3"]),
+                           density=summary["density_g_cm3"] * 1e3 if summary["density_g_cm3"] else None,
+                           mass=req.mass,
+                           message=(summary["fault"] or {}).get("message") or summary["abort_reason"] or None,
+                           calibration_id=summary["calibration"].get("record_id"))
+    return summary
+
+
+def _cycle_record(c: dict[str, Any]) -> dict[str, Any]:
+    """A summary cycle as a row of cycles.csv (NaN where a value is missing)."""
+    nan = float("nan")
+
+    def f(key: str) -> float:
+        v = c.get(key)
+        return nan if v is None else float(v)
+
+    return {"index": c["index"], "baseline_pa": f("baseline_pa"), "p1_pa": f("p1_gauge_pa"),
+            "p2_pa": f("p2_gauge_pa"), "t1": f("t1_k"), "t2": f("t2_k"), "settle1_s": f("settle1_s"),
+            "settle2_s": f("settle2_s"), "drift1_pa_s": f("drift1_pa_s"), "drift2_pa_s": f("drift2_pa_s"),
+            "volume_m3": f("volume_m3"), "u_volume_m3": f("u_volume_m3"), "flags": c.get("flags", []),
+            "kept": bool(c.get("kept"))}
+
+
+def _m3(cm3: float | None) -> float | None:
+    return None if cm3 is None else cm3 * 1e-6

@@ -1,0 +1,281 @@
+"""Calibration of the cell volume Vc and expansion volume Vr from runs with inserts of known volume.
+
+Why a straight-line fit: for every run the pressures give y = Vg/Vr (see volume.expansion_ratio), and
+Vg = Vc - V_inserted, so y = Vc/Vr - V/Vr is linear in the inserted volume.  A weighted least-squares
+fit y = a + b V gives Vr = -1/b and Vc = -a/b with a covariance that later measurements carry into
+their uncertainty (inverse prediction).  Real gas and temperatures enter through y, so calibrating
+and measuring share one equation.
+
+Weights: u(y_i)^2 = sum over the pressure readings (dy/dp u_p)^2 + (b u(V_i))^2, the noise being in
+y; b comes from the previous iteration (the fit is repeated until b settles).
+
+Covariance: ``cov`` is propagated from the stated uncertainties only (GUM Type B style, not scaled by
+chi-square), so it stays honest when only two or three runs exist.  ``cov_scaled`` multiplies it
+by chi2/dof (Birge-ratio scaling) for use when the scatter is believed over the stated noise.
+``consistent()`` tells the two apart with a chi-square test.  When no pressure uncertainty is
+given at all the fit is unweighted and ``cov`` is estimated from the scatter (needs >= 3 runs).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from pycnoctl.controller.domain.gas import Gas, get_gas
+from pycnoctl.controller.maths.volume import VolumeError, expansion_ratio
+
+
+class CalibrationError(ValueError):
+    """Runs that cannot determine Vc and Vr."""
+
+
+def sphere_volume(diameter_m: float) -> float:
+    """Volume of a sphere, pi d^3 / 6, m^3."""
+    if not (math.isfinite(diameter_m) and diameter_m > 0.0):
+        raise CalibrationError(f"sphere diameter must be positive, got {diameter_m!r} m")
+    return math.pi * diameter_m**3 / 6.0
+
+
+def two_point(r0: float, rk: float, vk: float) -> tuple[float, float]:
+    """Closed form from the gauge ratios r = P1g/P2g (ideal gas, sample_first).
+
+    Empty cell r0, insert of volume vk rk: Vc = vk (rk - 1)/(rk - r0), Vr = Vc (r0 - 1).
+    """
+    if rk == r0:
+        raise CalibrationError("empty and loaded runs give the same ratio: the insert is not seen")
+    vc = vk * (rk - 1.0) / (rk - r0)
+    return vc, vc * (r0 - 1.0)
+
+
+@dataclass
+class CalibrationRun:
+    """One expansion with a known volume in the cell (0 for the empty cell).  SI units."""
+
+    p1: float
+    p2: float
+    pa: float
+    inserted_volume: float
+    t1: float | None = None
+    t2: float | None = None
+    ta: float | None = None
+    u_inserted: float = 0.0
+    u_p: float | None = None  # overrides the fit-wide pressure uncertainty for this run
+
+
+def chi2_quantile(p: float, dof: int) -> float:
+    """Upper-tail chi-square quantile by the Wilson-Hilferty cube-root normal approximation."""
+    if dof <= 0:
+        return math.nan
+    z = _normal_quantile(p)
+    h = 2.0 / (9.0 * dof)
+    return dof * (1.0 - h + z * math.sqrt(h)) ** 3
+
+
+def _normal_quantile(p: float) -> float:
+    """Standard normal quantile (bisection on erf; exact to ~1e-12, fast enough for a few calls)."""
+    if not 0.0 < p < 1.0:
+        raise ValueError("probability must lie in (0, 1)")
+    lo, hi = -40.0, 40.0
+    for _ in range(200):
+        mid = 0.5 * (lo + hi)
+        if 0.5 * (1.0 + math.erf(mid / math.sqrt(2.0))) < p:
+            lo = mid
+        else:
+            hi = mid
+    return 0.5 * (lo + hi)
+
+
+@dataclass
+class CalibrationFit:
+    """Result of :func:`fit_calibration`.  Volumes m^3; ``cov`` is for (vc, vr)."""
+
+    vc: float
+    vr: float
+    cov: np.ndarray
+    cov_scaled: np.ndarray
+    a: float
+    b: float
+    cov_ab: np.ndarray
+    residuals_y: np.ndarray
+    residuals_volume: np.ndarray  # predicted minus known inserted volume, m^3
+    u_y: np.ndarray
+    chi2: float
+    dof: int
+    u_p: float | None
+    n_runs: int
+    gas: str
+    mode: str
+    weighted: bool
+    fill_pressure_gauge: float  # mean p1 - pa over the runs, Pa (calibrate near the run conditions)
+    temperature: float  # mean t1 over the runs, K
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def chi2_per_dof(self) -> float:
+        return self.chi2 / self.dof if self.dof > 0 else math.nan
+
+    @property
+    def u_vc(self) -> float:
+        return math.sqrt(self.cov[0, 0])
+
+    @property
+    def u_vr(self) -> float:
+        return math.sqrt(self.cov[1, 1])
+
+    def consistent(self, alpha: float = 0.01) -> bool:
+        """True unless chi-square exceeds its upper-alpha quantile (scatter beyond the stated noise).
+
+        With no degrees of freedom (two runs) nothing can be tested and the answer is True; an
+        unweighted fit has no stated noise to compare with and is also True.
+        """
+        if self.dof <= 0 or not self.weighted:
+            return True
+        return self.chi2 <= chi2_quantile(1.0 - alpha, self.dof)
+
+    def predict(self, y: float, u_y: float = 0.0, *, scaled: bool = False) -> tuple[float, float]:
+        """Inverse prediction: the volume in the cell that gives ``y``, and its standard uncertainty.
+
+        Includes the calibration covariance; ``u_y`` is the run's own uncertainty in y.
+        """
+        cov_ab = self.cov_ab * (max(self.chi2_per_dof, 0.0) if scaled and self.dof > 0 else 1.0)
+        v = (y - self.a) / self.b
+        grad = np.array([-1.0 / self.b, -(y - self.a) / self.b**2])
+        var = float(grad @ cov_ab @ grad) + (u_y / self.b) ** 2
+        return v, math.sqrt(max(var, 0.0))
+
+    def sample_volume_with_u(
+        self,
+        p1: float,
+        p2: float,
+        pa: float,
+        *,
+        t1: float | None = None,
+        t2: float | None = None,
+        ta: float | None = None,
+        u_p: float = 0.0,
+        u_pa: float = 0.0,
+        scaled: bool = False,
+    ) -> tuple[float, float]:
+        """Volume of an unknown from its pressures, with the calibration and pressure uncertainties."""
+        y = expansion_ratio(p1, p2, pa, gas=self.gas, t1=t1, t2=t2, ta=ta, mode=self.mode)
+        u_y = _u_y_pressures(p1, p2, pa, u_p, u_pa, gas=self.gas, t1=t1, t2=t2, ta=ta, mode=self.mode)
+        return self.predict(y, u_y, scaled=scaled)
+
+
+def _u_y_pressures(p1, p2, pa, u_p, u_pa, **kw) -> float:
+    """Uncertainty of y from independent pressure readings (central differences)."""
+    var = 0.0
+    base = (p1, p2, pa)
+    for i, u in enumerate((u_p, u_p, u_pa)):
+        if u <= 0.0:
+            continue
+        h = max(1e-3 * u, 1e-9 * base[i])
+        up = list(base)
+        dn = list(base)
+        up[i] += h
+        dn[i] -= h
+        d = (expansion_ratio(*up, **kw) - expansion_ratio(*dn, **kw)) / (2.0 * h)
+        var += (d * u) ** 2
+    return math.sqrt(var)
+
+
+def fit_calibration(
+    runs: Sequence[CalibrationRun],
+    *,
+    gas: Gas | str = "ideal",
+    u_p: float | None = None,
+    u_pa: float = 0.0,
+    mode: str = "sample_first",
+) -> CalibrationFit:
+    """Weighted least-squares fit of y = a + b V over the runs; see the module docstring."""
+    g = get_gas(gas)
+    runs = list(runs)
+    if len(runs) < 2:
+        raise CalibrationError(f"need at least 2 runs (empty cell and one insert), got {len(runs)}")
+    volumes = np.array([float(r.inserted_volume) for r in runs])
+    if np.any(volumes < 0.0) or not np.all(np.isfinite(volumes)):
+        raise CalibrationError("inserted volumes must be finite and >= 0")
+    spread = volumes.max() - volumes.min()
+    if spread <= 1e-9 * max(volumes.max(), 1e-12):
+        raise CalibrationError(
+            "need at least 2 distinct inserted volumes (e.g. empty cell and a sphere); all runs used "
+            f"{volumes[0]:.6g} m^3"
+        )
+    ys = np.empty(len(runs))
+    u_yp = np.empty(len(runs))
+    for i, r in enumerate(runs):
+        try:
+            ys[i] = expansion_ratio(r.p1, r.p2, r.pa, gas=g, t1=r.t1, t2=r.t2, ta=r.ta, mode=mode)
+        except VolumeError as exc:
+            raise CalibrationError(f"run {i}: {exc}") from exc
+        up = r.u_p if r.u_p is not None else u_p
+        u_yp[i] = _u_y_pressures(r.p1, r.p2, r.pa, up or 0.0, u_pa, gas=g, t1=r.t1, t2=r.t2, ta=r.ta,
+                                 mode=mode)
+    u_ins = np.array([float(r.u_inserted) for r in runs])
+    weighted = bool(np.all(u_yp > 0.0)) or bool(np.all(np.hypot(u_yp, u_ins) > 0.0))
+    notes: list[str] = []
+    X = np.column_stack([np.ones_like(volumes), volumes])
+
+    # iterate: the insert-volume term of the weights needs the slope b
+    b = (ys[-1] - ys[0]) / (volumes[-1] - volumes[0]) if volumes[-1] != volumes[0] else -1.0 / spread
+    for _ in range(20):
+        u_y = np.hypot(u_yp, b * u_ins)
+        if weighted and np.all(u_y > 0.0):
+            w = 1.0 / u_y**2
+        else:
+            weighted = False
+            w = np.ones_like(ys)
+        xtwx = X.T @ (w[:, None] * X)
+        try:
+            cov_ab = np.linalg.inv(xtwx)
+        except np.linalg.LinAlgError as exc:  # pragma: no cover - guarded by the spread check
+            raise CalibrationError("calibration design is singular") from exc
+        coef = cov_ab @ (X.T @ (w * ys))
+        b_new = float(coef[1])
+        if abs(b_new - b) <= 1e-12 * abs(b_new):
+            b = b_new
+            break
+        b = b_new
+    a, b = float(coef[0]), float(coef[1])
+    if b >= 0.0:
+        raise CalibrationError("y does not fall as the inserted volume rises: check the run data/order")
+    res = ys - (a + b * volumes)
+    dof = len(runs) - 2
+    if weighted:
+        chi2 = float(np.sum(w * res**2))
+    else:
+        notes.append("no pressure uncertainty given: unweighted fit, covariance from the scatter")
+        s2 = float(np.sum(res**2) / dof) if dof > 0 else math.nan
+        cov_ab = cov_ab * s2
+        chi2 = math.nan
+        u_y = np.full_like(ys, math.sqrt(s2) if dof > 0 else math.nan)
+    vc, vr = -a / b, -1.0 / b
+    J = np.array([[-1.0 / b, a / b**2], [0.0, 1.0 / b**2]])
+    cov = J @ cov_ab @ J.T
+    scale = chi2 / dof if (weighted and dof > 0) else 1.0
+    t1s = [r.t1 for r in runs if r.t1 is not None]
+    return CalibrationFit(
+        vc=vc,
+        vr=vr,
+        cov=cov,
+        cov_scaled=cov * scale,
+        a=a,
+        b=b,
+        cov_ab=cov_ab,
+        residuals_y=res,
+        residuals_volume=res / b,
+        u_y=u_y,
+        chi2=chi2,
+        dof=dof,
+        u_p=u_p,
+        n_runs=len(runs),
+        gas=g.name,
+        mode=mode,
+        weighted=weighted,
+        fill_pressure_gauge=float(np.mean([r.p1 - r.pa for r in runs])),
+        temperature=float(np.mean(t1s)) if t1s else 293.15,
+        notes=notes,
+    )

@@ -1,0 +1,168 @@
+"""From measured pressures to cycle volumes and a run result: pure functions, shared by the live
+engine and by ``pycnoctl analyze`` so a stored run recomputes to the same numbers.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass, field
+from typing import Any, Protocol
+
+import numpy as np
+
+from pycnoctl.controller.domain.gaspath import ChamberCalibration
+from pycnoctl.controller.maths import stats, uncertainty
+from pycnoctl.controller.maths.volume import VolumeError
+
+
+class CyclePressures(Protocol):
+    """What a cycle measured (engine.CycleData serves): gauge pressures above the cycle's zero."""
+
+    index: int
+    volume_name: str
+    baseline: float
+    u_baseline: float
+    ambient: float
+    t_ambient: float
+    p1: float
+    u_p1: float
+    t1: float
+    p2: float
+    u_p2: float
+    t2: float
+    flags: list[str]
+
+
+@dataclass
+class CycleResult:
+    index: int
+    volume_name: str
+    baseline_pa: float
+    ambient_pa: float
+    p1_gauge_pa: float
+    p2_gauge_pa: float
+    u_p1_pa: float
+    u_p2_pa: float
+    t1_k: float | None
+    t2_k: float | None
+    ta_k: float | None
+    volume_m3: float
+    u_volume_m3: float  # combined standard uncertainty of this cycle
+    kept: bool
+    flags: list[str] = field(default_factory=list)
+    budget: uncertainty.Budget | None = None
+    settle1_s: float = math.nan
+    settle2_s: float = math.nan
+    drift1_pa_s: float = math.nan
+    drift2_pa_s: float = math.nan
+    fill_s: float = math.nan
+
+    def as_dict(self) -> dict[str, Any]:
+        d = asdict(self)
+        d.pop("budget")
+        d["volume_cm3"] = self.volume_m3 * 1e6
+        d["u_volume_cm3"] = self.u_volume_m3 * 1e6
+        return d
+
+
+def _temp(x: float) -> float | None:
+    return x if math.isfinite(x) else None
+
+
+def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str, u_p: float, u_t: float,
+                 discard: int) -> CycleResult:
+    """Volume of one cycle and its GUM budget (pressures: settle-window SE combined with the sensor's u)."""
+    pa = cyc.ambient
+    p1, p2 = pa + cyc.p1, pa + cyc.p2
+    u_p1 = math.hypot(u_p, cyc.u_p1 if math.isfinite(cyc.u_p1) else 0.0)
+    u_p2 = math.hypot(u_p, cyc.u_p2 if math.isfinite(cyc.u_p2) else 0.0)
+    # An error in the cycle's zero shifts both gauge pressures alike: the same as an error in the
+    # initial pressure of the expansion volume with P1, P2 held, which is how the budget takes Pa.
+    u_pa = cyc.u_baseline if math.isfinite(cyc.u_baseline) else 0.0
+    t1, t2, ta = _temp(cyc.t1), _temp(cyc.t2), _temp(cyc.t_ambient)
+    flags = list(cyc.flags)
+    try:
+        budget = uncertainty.cycle_volume_budget(
+            p1, p2, pa, chambers.vc, chambers.vr, u_p1=u_p1, u_p2=u_p2, u_pa=u_pa, cov_cal=chambers.cov,
+            t1=t1, t2=t2, ta=ta, u_t=u_t if t1 is not None else 0.0, gas=gas,
+        )
+        volume, u_volume = budget.value, budget.combined
+    except VolumeError as exc:
+        budget, volume, u_volume = None, math.nan, math.nan
+        flags.append(f"no volume: {exc}")
+    if math.isfinite(volume) and not 0.0 < volume <= chambers.vc:
+        flags.append("volume outside the cell")
+    return CycleResult(
+        index=cyc.index, volume_name=cyc.volume_name, baseline_pa=cyc.baseline, ambient_pa=pa,
+        p1_gauge_pa=cyc.p1, p2_gauge_pa=cyc.p2, u_p1_pa=u_p1, u_p2_pa=u_p2, t1_k=t1, t2_k=t2, ta_k=ta,
+        volume_m3=volume, u_volume_m3=u_volume, kept=cyc.index > discard and math.isfinite(volume),
+        flags=flags, budget=budget,
+        settle1_s=getattr(cyc, "settle1_time", math.nan), settle2_s=getattr(cyc, "settle2_time", math.nan),
+        drift1_pa_s=getattr(cyc, "drift1", math.nan), drift2_pa_s=getattr(cyc, "drift2", math.nan),
+        fill_s=getattr(cyc, "fill_time", math.nan),
+    )
+
+
+@dataclass
+class RunResult:
+    """The result of a run over its kept cycles."""
+
+    n_cycles: int
+    n_kept: int
+    volume_m3: float
+    sd_m3: float
+    rsd: float
+    u_volume_m3: float  # combined standard uncertainty of the mean
+    U_volume_m3: float  # expanded, k
+    k: float
+    converged: bool | None
+    outliers: list[int]
+    density_kg_m3: float | None = None
+    u_density_kg_m3: float | None = None  # standard
+    U_density_kg_m3: float | None = None  # expanded
+    budget: uncertainty.Budget | None = None
+
+    def as_dict(self) -> dict[str, Any]:
+        d = asdict(self)
+        d.pop("budget")
+        d["budget"] = self.budget.as_table() if self.budget is not None else []
+        return d
+
+
+def run_result(cycles: Sequence[CycleResult], *, converge: Any = None, mass: float | None = None,
+               u_mass: float = 0.0) -> RunResult | None:
+    """Mean volume of the kept cycles with its combined and expanded uncertainty (None when none kept)."""
+    kept = [c for c in cycles if c.kept and c.budget is not None]
+    if not kept:
+        return None
+    vols = [c.volume_m3 for c in kept]
+    st = stats.cycle_stats(vols)
+    budget = uncertainty.combine_run(vols, [c.budget for c in kept])  # type: ignore[misc]
+    conv = None
+    if converge is not None:
+        conv = has_converged(vols, converge.last, converge.within)
+    # a cycle is an outlier only against a spread it could show: the scale is at least the cycles' own u
+    floor = float(np.median([c.u_volume_m3 for c in kept]))
+    out = stats.outliers(vols, floor=floor) if len(vols) >= 3 else []
+    res = RunResult(
+        n_cycles=len(cycles), n_kept=len(kept), volume_m3=budget.value, sd_m3=st.sd, rsd=st.rsd,
+        u_volume_m3=budget.combined, U_volume_m3=budget.expanded, k=budget.k, converged=conv,
+        outliers=[kept[i].index for i in out], budget=budget,
+    )
+    if mass is not None and mass > 0 and budget.value > 0:
+        rho, u_rho = uncertainty.density(budget.value, budget.combined, mass, u_mass)
+        res.density_kg_m3, res.u_density_kg_m3, res.U_density_kg_m3 = rho, u_rho, budget.k * u_rho
+    return res
+
+
+def has_converged(volumes: Sequence[float], last: int, within: float) -> bool:
+    return len(volumes) >= last and stats.converged(volumes, last_k=last, within_fraction=within)
+
+
+def slope(t: Sequence[float], p: Sequence[float]) -> float:
+    """Least-squares slope dp/dt (NaN with fewer than two samples)."""
+    if len(t) < 2:
+        return math.nan
+    tt = np.asarray(t, dtype=float)
+    return float(np.polyfit(tt - tt[0], np.asarray(p, dtype=float), 1)[0])

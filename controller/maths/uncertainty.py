@@ -1,0 +1,249 @@
+"""Uncertainty budgets per the GUM (JCGM 100:2008): law of propagation, first order, k = 2.
+
+Why here and not in the measuring code: the same budget serves the offline calculator, the
+daemon's run reports and the advisor, and it is checked against the `uncertainties` package and a
+JCGM 101:2008 Monte Carlo draw in the tests.
+
+Sensitivities are central differences of volume.sample_volume, so they hold for the real-gas and
+temperature-corrected equation; for the ideal gas they equal the analytic form
+u^2(Vs) = u^2(Vc) + y^2 u^2(Vr) - 2 y cov(Vc,Vr) + Vr^2 [P2g^2 u^2(P1g) + P1g^2 u^2(P2g)]/(P1g - P2g)^4.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from pycnoctl.controller.domain.gas import Gas, get_gas
+from pycnoctl.controller.maths.volume import expansion_ratio, resolve_temperatures, sample_volume
+
+K_DEFAULT = 2.0
+
+
+@dataclass
+class Contribution:
+    """One input: its value, standard uncertainty, sensitivity coefficient and c*u (signed).
+
+    ``variance`` is what the row adds to u_c^2 (c^2 u^2, or 2 c_i c_j cov for a covariance row,
+    which may be negative).  ``kind`` groups rows: calibration, pressure, temperature, repeatability.
+    """
+
+    name: str
+    value: float
+    std_u: float
+    sensitivity: float
+    contribution: float
+    variance: float = math.nan
+    kind: str = ""
+
+    def __post_init__(self) -> None:
+        if math.isnan(self.variance):
+            self.variance = self.contribution**2
+
+
+@dataclass
+class Budget:
+    """Combined standard uncertainty of one quantity and the rows that make it up."""
+
+    quantity: str
+    value: float
+    contributions: list[Contribution]
+    combined: float
+    k: float = K_DEFAULT
+    expanded: float = math.nan
+    unit: str = "m^3"
+    notes: list[str] = field(default_factory=list)
+
+    def __post_init__(self) -> None:
+        if math.isnan(self.expanded):
+            self.expanded = self.k * self.combined
+
+    def as_table(self) -> list[dict[str, float | str]]:
+        """Rows for printing or JSON: name, value, std_u, sensitivity, contribution, share of u_c^2."""
+        total = self.combined**2
+        return [
+            {
+                "name": c.name,
+                "kind": c.kind,
+                "value": c.value,
+                "std_u": c.std_u,
+                "sensitivity": c.sensitivity,
+                "contribution": c.contribution,
+                "variance": c.variance,
+                "share": c.variance / total if total > 0 else math.nan,
+            }
+            for c in self.contributions
+        ]
+
+    def variance_of(self, kind: str) -> float:
+        return sum(c.variance for c in self.contributions if c.kind == kind)
+
+
+def _derivative(fn, x: float, u: float) -> float:
+    h = max(abs(x) * 1e-7, u * 1e-3, 1e-30)
+    return (fn(x + h) - fn(x - h)) / (2.0 * h)
+
+
+def cycle_volume_budget(
+    p1: float,
+    p2: float,
+    pa: float,
+    vc: float,
+    vr: float,
+    *,
+    u_p1: float,
+    u_p2: float,
+    u_pa: float = 0.0,
+    cov_cal: np.ndarray | Sequence[Sequence[float]] | None = None,
+    u_vc: float = 0.0,
+    u_vr: float = 0.0,
+    t1: float | None = None,
+    t2: float | None = None,
+    ta: float | None = None,
+    u_t: float = 0.0,
+    gas: Gas | str = "ideal",
+    mode: str = "sample_first",
+    k: float = K_DEFAULT,
+) -> Budget:
+    """Budget for the sample volume of one expansion.
+
+    ``cov_cal`` (2x2 for (vc, vr), e.g. CalibrationFit.cov) takes precedence over u_vc/u_vr.
+    ``u_t`` is the standard uncertainty of each temperature reading, taken as independent between
+    t1, t2 and ta (drift and non-uniformity; a common thermometer offset cancels and is left out).
+    """
+    g = get_gas(gas)
+    t1_, t2_, ta_ = resolve_temperatures(t1, t2, ta)
+    args = {"p1": p1, "p2": p2, "pa": pa, "vc": vc, "vr": vr, "t1": t1_, "t2": t2_, "ta": ta_}
+
+    def vs_of(**over: float) -> float:
+        a = {**args, **over}
+        return sample_volume(a["p1"], a["p2"], a["pa"], a["vc"], a["vr"], gas=g, t1=a["t1"],
+                             t2=a["t2"], ta=a["ta"], mode=mode)
+
+    value = vs_of()
+    if cov_cal is not None:
+        cov = np.asarray(cov_cal, dtype=float)
+        if cov.shape != (2, 2):
+            raise ValueError("cov_cal must be a 2x2 matrix for (vc, vr)")
+    else:
+        cov = np.diag([u_vc**2, u_vr**2])
+    y = expansion_ratio(p1, p2, pa, gas=g, t1=t1_, t2=t2_, ta=ta_, mode=mode)
+    rows: list[Contribution] = []
+    c_vc, c_vr = 1.0, -y  # exact: Vs = Vc - Vr y
+    u_vc_, u_vr_ = math.sqrt(max(cov[0, 0], 0.0)), math.sqrt(max(cov[1, 1], 0.0))
+    rows.append(Contribution("cell volume Vc", vc, u_vc_, c_vc, c_vc * u_vc_, kind="calibration"))
+    rows.append(Contribution("expansion volume Vr", vr, u_vr_, c_vr, c_vr * u_vr_, kind="calibration"))
+    if cov[0, 1] != 0.0:
+        var = 2.0 * c_vc * c_vr * cov[0, 1]
+        rows.append(Contribution("covariance Vc, Vr", cov[0, 1], math.nan, math.nan,
+                                 math.copysign(math.sqrt(abs(var)), var), variance=var, kind="calibration"))
+    for name, label, x, u, kind in (
+        ("p1", "fill pressure P1", p1, u_p1, "pressure"),
+        ("p2", "expansion pressure P2", p2, u_p2, "pressure"),
+        ("pa", "ambient pressure Pa", pa, u_pa, "pressure"),
+        ("t1", "temperature T1", t1_, u_t, "temperature"),
+        ("t2", "temperature T2", t2_, u_t, "temperature"),
+        ("ta", "temperature Ta", ta_, u_t, "temperature"),
+    ):
+        if u <= 0.0 and kind == "temperature":
+            continue
+        c = _derivative(lambda v, n=name: vs_of(**{n: v}), x, u)
+        rows.append(Contribution(label, x, u, c, c * u, kind=kind))
+    combined = math.sqrt(max(sum(r.variance for r in rows), 0.0))
+    return Budget("sample volume", value, rows, combined, k=k)
+
+
+def type_a(values: Sequence[float]) -> tuple[float, float, float]:
+    """Mean, experimental standard deviation s (n-1) and standard uncertainty of the mean s/sqrt(n).
+
+    One value: s and u_mean are NaN (no Type A evaluation is possible).
+    """
+    x = np.asarray(list(values), dtype=float)
+    if x.size == 0:
+        raise ValueError("type_a needs at least one value")
+    mean = float(x.mean())
+    if x.size < 2:
+        return mean, math.nan, math.nan
+    s = float(x.std(ddof=1))
+    return mean, s, s / math.sqrt(x.size)
+
+
+def combine_run(cycle_volumes: Sequence[float], cycle_budgets: Sequence[Budget]) -> Budget:
+    """Budget of the mean volume of a run of cycles.
+
+    Random part: the cycles' pressure/temperature effects change from cycle to cycle, so they show
+    in the scatter; they are taken as the larger of the Type A u of the mean and the budgets'
+    predicted random u divided by sqrt(n) (a Type A from 3-5 cycles can understate by chance;
+    counting both would count the same noise twice).
+    Calibration part: Vc and Vr are the same numbers in every cycle, so their effect is fully
+    correlated between cycles and does not average down; it enters once, not divided by sqrt(n).
+    """
+    vols = list(cycle_volumes)
+    if len(vols) != len(cycle_budgets) or not vols:
+        raise ValueError("need one budget per cycle volume, at least one cycle")
+    n = len(vols)
+    mean, _s, u_mean = type_a(vols)
+    random_var = float(np.mean([b.combined**2 - b.variance_of("calibration") for b in cycle_budgets]))
+    u_floor = math.sqrt(max(random_var, 0.0) / n)
+    notes = []
+    if math.isnan(u_mean) or u_floor > u_mean:
+        u_rand, label = u_floor, f"repeatability (predicted from the cycle budget, n={n})"
+        notes.append("random part from the per-cycle budget (larger than, or no, Type A scatter)")
+    else:
+        u_rand, label = u_mean, f"repeatability (Type A, s/sqrt(n), n={n})"
+    rows = [Contribution(label, mean, u_rand, 1.0, u_rand, kind="repeatability")]
+    # calibration rows: average over the cycles (the sensitivity -y barely changes between cycles)
+    first = cycle_budgets[0]
+    for j, c in enumerate(first.contributions):
+        if c.kind != "calibration":
+            continue
+        same = [b.contributions[j] for b in cycle_budgets]
+        var = float(np.mean([x.variance for x in same]))
+        sens = float(np.mean([x.sensitivity for x in same]))
+        if math.isfinite(sens) and math.isfinite(c.std_u):
+            contrib = sens * c.std_u
+        else:
+            contrib = math.copysign(math.sqrt(abs(var)), var)
+        rows.append(Contribution(c.name, c.value, c.std_u, sens, contrib, variance=var, kind="calibration"))
+    combined = math.sqrt(max(sum(r.variance for r in rows), 0.0))
+    return Budget("mean sample volume", mean, rows, combined, k=first.k, notes=notes)
+
+
+def density(volume: float, u_volume: float, mass: float, u_mass: float) -> tuple[float, float]:
+    """rho = m/V (kg/m^3) and its standard uncertainty (m and V independent)."""
+    if volume <= 0.0 or mass <= 0.0:
+        raise ValueError("density needs a positive volume and mass")
+    rho = mass / volume
+    return rho, rho * math.hypot(u_mass / mass, u_volume / volume)
+
+
+def water_density(temperature_k: float) -> float:
+    """Density of air-free water at 101.325 kPa, kg/m^3, valid 0-40 C.
+
+    The five-constant rational formula recommended in 2001 for air-free standard mean ocean water:
+    rho = a5 [1 - (t + a1)^2 (t + a2) / (a3 (t + a4))], t in degC (constants from memory [M];
+    the tests compare the formula with CoolProp's IAPWS-95 water).
+    """
+    t = temperature_k - 273.15
+    if not -0.5 <= t <= 40.5:
+        raise ValueError(f"water density formula is valid 0-40 C, got {t:.2f} C")
+    a1, a2, a3, a4, a5 = -3.983035, 301.797, 522528.9, 69.34881, 999.974950
+    return a5 * (1.0 - (t + a1) ** 2 * (t + a2) / (a3 * (t + a4)))
+
+
+def specific_gravity(rho: float, u_rho: float, water_temperature_K: float) -> tuple[float, float]:
+    """Ratio of the density to that of air-free water at the stated temperature (and its u)."""
+    rw = water_density(water_temperature_K)
+    return rho / rw, u_rho / rw
+
+
+def porosity(bulk_volume: float, u_bulk: float, skeletal_volume: float, u_skel: float) -> tuple[float, float]:
+    """phi = 1 - Vs/Vb = pore volume / bulk volume, with u (volumes independent)."""
+    if bulk_volume <= 0.0:
+        raise ValueError("bulk volume must be positive")
+    phi = 1.0 - skeletal_volume / bulk_volume
+    u = math.hypot(u_skel / bulk_volume, skeletal_volume * u_bulk / bulk_volume**2)
+    return phi, u

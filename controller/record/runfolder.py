@@ -1,0 +1,595 @@
+"""The complete raw record of one run, in a folder of plain files that outlive the software.
+
+root/<run_id>/
+  meta.json      written once at creation (atomically): run id, valve names, columns, meta
+  trace.csv      every sample, appended; header then one row per sample
+  events.jsonl   state changes, trips, warnings, operator actions; one JSON object a line
+  cycles.csv     one row per cycle, rewritten atomically whenever a cycle completes
+  summary.json   sequence (parsed model and raw text), instrument, calibration, version, results
+
+Crash guarantee.  Every trace row goes to the operating system in one unbuffered write, and
+every event line is written and ``flush()``-ed, so each is in the page cache before
+``sample()``/``event()`` returns: a crash of the
+process (exception, SIGKILL) loses at most the row in flight, which ``load_run`` drops as a
+torn tail.  ``os.fsync`` runs on trace and events every ``fsync_interval`` seconds (wall time),
+promptly after every event, on ``sync()`` and on ``close()``: a power loss or kernel crash loses
+at most the last ``fsync_interval`` seconds.  By default the periodic and per-event fsyncs run in
+a background thread, because one fsync can take a hundred milliseconds on a busy disk and must not
+delay the control loop's tick; an fsync error found there is raised by the next ``sample()``.  cycles.csv,
+summary.json and meta.json are replaced atomically (write a temporary file, fsync, os.replace,
+fsync the folder): a reader sees the old or the new file, never a mixture.
+
+Any OSError while writing raises RecordWriteError naming what was not saved; the engine treats
+it as fatal (safe state).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import csv
+import dataclasses
+import datetime as _dt
+import io
+import json
+import math
+import os
+import re
+import threading
+import time
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from pycnoctl.controller.domain.devices import Reading, Validity
+
+__all__ = [
+    "CYCLE_COLUMNS",
+    "CycleRecord",
+    "RecordWriteError",
+    "RunRecorder",
+    "StoredRun",
+    "load_run",
+    "software_version",
+    "trace_columns",
+]
+
+#: The trace's word for each validity (an enum's .value goes through a descriptor: twice a row)
+_VALIDITY_WORD = {v: v.value for v in Validity}
+_SAFE_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,79}$")
+_VALVE_PREFIX = "valve_"
+
+
+class RecordWriteError(OSError):
+    """A part of the run record could not be written; ``what`` says which."""
+
+    def __init__(self, what: str, path: Path | str, cause: BaseException | None = None) -> None:
+        self.what = what
+        self.path = str(path)
+        detail = f": {cause}" if cause is not None else ""
+        super().__init__(f"not saved: {what} ({self.path}){detail}")
+
+
+def software_version() -> str:
+    """The installed pycnoctl version, recorded with every run."""
+    try:
+        from importlib.metadata import PackageNotFoundError, version
+    except ImportError:  # pragma: no cover
+        return "unknown"
+    try:
+        return version("pycnoctl")
+    except PackageNotFoundError:
+        return "unknown"
+
+
+def _utc_now() -> str:
+    return _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def trace_columns(valve_names: Sequence[str]) -> list[str]:
+    return (
+        ["t", "state", "cycle"]
+        + [_VALVE_PREFIX + v for v in valve_names]
+        + ["pressure_pa", "pressure_valid", "temperature_k", "temperature_valid", "ambient_pa", "note"]
+    )
+
+
+CYCLE_COLUMNS = [
+    "index", "baseline_pa", "p1_pa", "p2_pa", "t1", "t2", "settle1_s", "settle2_s",
+    "drift1_pa_s", "drift2_pa_s", "volume_m3", "u_volume_m3", "flags", "kept",
+]  # fmt: skip
+
+
+@dataclass
+class CycleRecord:
+    """One fill-expand cycle as recorded (pressures gauge Pa, times s, volume m^3)."""
+
+    index: int
+    baseline_pa: float
+    p1_pa: float
+    p2_pa: float
+    t1: float
+    t2: float
+    settle1_s: float
+    settle2_s: float
+    drift1_pa_s: float
+    drift2_pa_s: float
+    volume_m3: float
+    u_volume_m3: float
+    flags: Sequence[str] = field(default_factory=tuple)
+    kept: bool = True
+
+    def row(self) -> list[str]:
+        vals: list[str] = []
+        for name in CYCLE_COLUMNS:
+            v = getattr(self, name)
+            if name == "flags":
+                vals.append(";".join(str(f) for f in v))
+            elif name == "kept":
+                vals.append("1" if v else "0")
+            elif name == "index":
+                vals.append(str(int(v)))
+            else:
+                vals.append(repr(float(v)))
+        return vals
+
+
+def _plain(s: str) -> str:
+    """A trace field as CSV: plain words pass as they are; anything else is quoted by the csv module."""
+    if not s or s.isidentifier():
+        return s
+    buf = io.StringIO()
+    csv.writer(buf, lineterminator="").writerow([_clean_text(s)])
+    return buf.getvalue()
+
+
+def _clean_text(s: str) -> str:
+    """Free text goes on one line so a torn row can always be told from a whole one."""
+    return s.replace("\r", " ").replace("\n", " ")
+
+
+_UNSET = object()  # a field whose text has not been made yet
+
+
+def _write_all(fh: Any, data: bytes) -> None:
+    """All of data to an unbuffered file (a raw write may take only part of it)."""
+    view = memoryview(data)
+    while view:
+        n = fh.write(view)
+        if not n:
+            raise OSError(f"write to {getattr(fh, 'name', fh)!r} took no bytes")
+        view = view[n:]
+
+
+def _fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _atomic_write(path: Path, data: bytes) -> None:
+    tmp = path.with_name(f".{path.name}.tmp")
+    with open(tmp, "wb") as fh:
+        fh.write(data)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+    _fsync_dir(path.parent)
+
+
+def _json_default(obj: Any) -> Any:
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return dataclasses.asdict(obj)
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    if isinstance(obj, _dt.datetime):
+        return obj.isoformat()
+    if hasattr(obj, "model_dump"):  # pydantic models
+        return obj.model_dump(mode="json")
+    if hasattr(obj, "value") and hasattr(obj, "name"):  # enums
+        return obj.value
+    raise TypeError(f"cannot record {type(obj).__name__} as JSON")
+
+
+def _dumps(obj: Any, **kw: Any) -> str:
+    return json.dumps(obj, default=_json_default, ensure_ascii=False, **kw)
+
+
+class RunRecorder:
+    """Writes one run's folder; every method either saves its data or raises RecordWriteError."""
+
+    def __init__(
+        self,
+        root: Path,
+        run_id: str,
+        valve_names: Sequence[str],
+        meta: dict,
+        *,
+        fsync_interval: float = 1.0,
+        wall_clock: Callable[[], float] = time.monotonic,
+        sync_in_background: bool = True,
+    ) -> None:
+        if not _SAFE_NAME.match(run_id) or ".." in run_id:
+            raise ValueError(f"run id {run_id!r} is not a safe folder name")
+        names = list(valve_names)
+        for v in names:
+            if not re.match(r"^[A-Za-z0-9_-]+$", v):
+                raise ValueError(f"valve name {v!r}: letters, digits, '_' and '-' only")
+        if len(set(names)) != len(names):
+            raise ValueError("duplicate valve names")
+        self.run_id = run_id
+        self.valve_names = tuple(names)
+        self.columns = trace_columns(names)
+        self.folder = Path(root) / run_id
+        self.fsync_interval = fsync_interval
+        self._clock = wall_clock
+        self._closed = False
+        self._n_samples = 0
+        try:
+            Path(root).mkdir(parents=True, exist_ok=True)
+            self.folder.mkdir()
+        except OSError as exc:
+            raise RecordWriteError("run folder", self.folder, exc) from exc
+        self.meta = {
+            "run_id": run_id,
+            "created": _utc_now(),
+            "software_version": software_version(),
+            "valve_names": list(names),
+            "trace_columns": self.columns,
+            "meta": meta,
+        }
+        self._write_atomic("meta.json", (_dumps(self.meta, indent=2) + "\n").encode())
+        self.trace_path = self.folder / "trace.csv"
+        self.events_path = self.folder / "events.jsonl"
+        try:
+            # long-lived handles, closed in close().  The trace is unbuffered: each row is one
+            # write() straight to the operating system, the cheapest form of "flushed as taken".
+            self._trace = open(self.trace_path, "xb", buffering=0)  # noqa: SIM115
+            self._events = open(self.events_path, "x", encoding="utf-8", newline="")  # noqa: SIM115
+            header = io.StringIO()
+            csv.writer(header, lineterminator="\n").writerow(self.columns)
+            _write_all(self._trace, header.getvalue().encode())
+            os.fsync(self._trace.fileno())
+            _fsync_dir(self.folder)
+        except OSError as exc:
+            raise RecordWriteError("trace/events files", self.folder, exc) from exc
+        self._last_sync = self._clock()
+        self._syncer = _Syncer((self._trace, self._events), fsync_interval) if sync_in_background else None
+        # the text of fields that seldom change between rows, kept with what it was made from
+        self._valves_seen: dict[str, bool] | None = None
+        self._valves_text = ""
+        self._words: dict[str, str] = {}
+        self._temp_seen: object = _UNSET
+        self._temp_text = ""
+        self._ambient_seen: object = _UNSET
+        self._ambient_text = ""
+
+    # ------------------------------------------------------------------ raw trace
+    @property
+    def n_samples(self) -> int:
+        return self._n_samples
+
+    def sample(
+        self,
+        t: float,
+        state: str,
+        cycle: int | None,
+        valves: Mapping[str, bool],
+        pressure: Reading,
+        temperature: Reading | None = None,
+        ambient_pa: float | None = None,
+        note: str = "",
+    ) -> None:
+        """Append one sample row and flush it (an invalid reading is written as nan + its flag)."""
+        if temperature is not self._temp_seen:  # a thermometer is read a few times a second at most
+            self._temp_seen = temperature
+            self._temp_text = ("nan,absent" if temperature is None
+                               else f"{float(temperature.value)!r},{_VALIDITY_WORD[temperature.validity]}")
+        if ambient_pa is not self._ambient_seen:  # the same object until the barometer is read again
+            self._ambient_seen = ambient_pa
+            self._ambient_text = "nan" if ambient_pa is None else repr(float(ambient_pa))
+        if valves != self._valves_seen:
+            self._valves_seen = dict(valves)
+            self._valves_text = ",".join("1" if valves.get(v, False) else "0" for v in self.valve_names)
+        word = self._words.get(state)
+        if word is None:
+            word = self._words[state] = _plain(state)
+        # one line built directly (every field is a number or a plain word; free text goes through csv)
+        line = (f"{float(t)!r},{word},{'' if cycle is None else int(cycle)},{self._valves_text},"
+                f"{float(pressure.value)!r},{_VALIDITY_WORD[pressure.validity]},{self._temp_text},"
+                f"{self._ambient_text},{_plain(note) if note else ''}\n")
+        if self._syncer is not None and self._syncer.error is not None:
+            raise RecordWriteError("background fsync", self.trace_path, self._syncer.error)
+        try:
+            _write_all(self._trace, line.encode())
+            if self._syncer is None:
+                now = self._clock()
+                if now - self._last_sync >= self.fsync_interval:
+                    os.fsync(self._trace.fileno())
+                    self._last_sync = now
+        except (OSError, ValueError) as exc:  # ValueError: file already closed
+            raise RecordWriteError(f"trace sample t={t!r}", self.trace_path, exc) from exc
+        self._n_samples += 1
+
+    # ------------------------------------------------------------------ events
+    def event(self, kind: str, t: float | None, message: str = "", **data: Any) -> None:
+        """Append one event line (state change, trip, warning, operator action); flushed and fsynced.
+
+        State changes (kind 'state') also fsync the trace: a phase boundary is always durable.
+        """
+        rec = {"kind": kind, "t": t, "wall": _utc_now(), "message": message, **data}
+        try:
+            line = _dumps(rec, allow_nan=True)
+            self._events.write(line + "\n")
+            self._events.flush()
+            if self._syncer is not None:
+                self._syncer.request()
+            else:
+                os.fsync(self._events.fileno())
+                if kind == "state":
+                    os.fsync(self._trace.fileno())
+                    self._last_sync = self._clock()
+        except (OSError, ValueError) as exc:
+            raise RecordWriteError(f"event {kind!r} t={t!r}", self.events_path, exc) from exc
+        except TypeError as exc:
+            raise ValueError(f"event data not recordable: {exc}") from exc
+
+    # ------------------------------------------------------------------ cycles and summary
+    def write_cycles(self, cycles: Iterable[CycleRecord | Mapping[str, Any]]) -> None:
+        """Rewrite cycles.csv atomically with every cycle so far."""
+        buf = io.StringIO()
+        w = csv.writer(buf, lineterminator="\n")
+        w.writerow(CYCLE_COLUMNS)
+        for c in cycles:
+            rec = c if isinstance(c, CycleRecord) else CycleRecord(**dict(c))
+            w.writerow(rec.row())
+        self._write_atomic("cycles.csv", buf.getvalue().encode())
+
+    def write_summary(
+        self,
+        *,
+        sequence: Mapping[str, Any] | Any,
+        sequence_text: str,
+        instrument: Mapping[str, Any] | Any,
+        calibration: Mapping[str, Any] | Any | None,
+        results: Mapping[str, Any] | Any,
+        extra: Mapping[str, Any] | None = None,
+    ) -> None:
+        """Write summary.json atomically: enough to re-analyse the run without the software's config."""
+        doc = {
+            "run_id": self.run_id,
+            "written": _utc_now(),
+            "software_version": software_version(),
+            "sequence": sequence,
+            "sequence_text": sequence_text,
+            "instrument": instrument,
+            "calibration": calibration,
+            "results": results,
+            **(dict(extra) if extra else {}),
+        }
+        try:
+            text = _dumps(doc, indent=2, allow_nan=True)
+        except TypeError as exc:
+            raise ValueError(f"summary not recordable: {exc}") from exc
+        self._write_atomic("summary.json", (text + "\n").encode())
+
+    def _write_atomic(self, name: str, data: bytes) -> None:
+        path = self.folder / name
+        try:
+            _atomic_write(path, data)
+        except OSError as exc:
+            with contextlib.suppress(OSError):
+                path.with_name(f".{name}.tmp").unlink()
+            raise RecordWriteError(name, path, exc) from exc
+
+    # ------------------------------------------------------------------ durability
+    def sync(self) -> None:
+        """fsync trace and events now (the engine calls this on phase changes too)."""
+        try:
+            for fh in (self._trace, self._events):
+                fh.flush()
+                os.fsync(fh.fileno())
+        except (OSError, ValueError) as exc:
+            raise RecordWriteError("trace/events sync", self.folder, exc) from exc
+        self._last_sync = self._clock()
+
+    def close(self) -> None:
+        if self._closed:
+            return
+        self._closed = True
+        err: BaseException | None = None
+        if self._syncer is not None:
+            self._syncer.stop()
+            err = self._syncer.error
+        for fh in (self._trace, self._events):
+            try:
+                fh.flush()
+                os.fsync(fh.fileno())
+            except (OSError, ValueError) as exc:
+                err = err or exc
+            finally:
+                with contextlib.suppress(OSError):
+                    fh.close()
+        if err is not None:
+            raise RecordWriteError("final flush of trace/events", self.folder, err) from err
+
+    def __enter__(self) -> RunRecorder:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+class _Syncer:
+    """fsyncs the open record files every interval and whenever asked, off the caller's thread."""
+
+    #: Requests closer together than this share one fsync: a burst of events (a fast simulated run
+    #: changes state many times a second) must not turn into an fsync storm that stalls the writer.
+    MIN_GAP = 0.25
+
+    def __init__(self, files: Sequence[Any], interval: float) -> None:
+        self._files = tuple(files)
+        self._interval = interval
+        self._last = time.monotonic()
+        self._kick = threading.Event()
+        self._stop = threading.Event()
+        self.error: BaseException | None = None
+        self.count = 0
+        self._thread = threading.Thread(target=self._run, name="record-fsync", daemon=True)
+        self._thread.start()
+
+    def request(self) -> None:
+        self._kick.set()
+
+    def _run(self) -> None:
+        while True:
+            self._kick.wait(self._interval)
+            if self._stop.is_set():
+                return
+            gap = time.monotonic() - self._last
+            # the coalescing pause waits on the stop flag, so close() is never held up by it
+            if gap < self.MIN_GAP and self._stop.wait(self.MIN_GAP - gap):
+                return
+            self._kick.clear()
+            for fh in self._files:
+                try:
+                    os.fsync(fh.fileno())
+                except ValueError:  # closed under us at shutdown
+                    return
+                except OSError as exc:
+                    self.error = self.error or exc
+            self.count += 1
+            self._last = time.monotonic()
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._kick.set()
+        self._thread.join(timeout=10.0)
+
+
+# ---------------------------------------------------------------------------- reading back
+
+
+@dataclass
+class StoredRun:
+    """A run folder read back: raw trace as numpy arrays (one per column), events, cycles, summary."""
+
+    folder: Path
+    meta: dict
+    trace: dict[str, np.ndarray]
+    events: list[dict]
+    cycles: list[dict]
+    summary: dict | None
+    torn_tail: bool  # the trace's last line was cut short (crash mid-write) and was dropped
+    torn_events: bool
+
+    @property
+    def n_samples(self) -> int:
+        return int(self.trace["t"].size) if "t" in self.trace else 0
+
+    def valves(self) -> dict[str, np.ndarray]:
+        names = self.meta.get("valve_names", [])
+        return {v: self.trace[_VALVE_PREFIX + v].astype(bool) for v in names}
+
+
+_TEXT_COLUMNS = {"state", "pressure_valid", "temperature_valid", "note"}
+
+
+def _read_trace(path: Path, columns: list[str] | None) -> tuple[dict[str, np.ndarray], bool]:
+    try:
+        text = path.read_bytes().decode("utf-8", errors="replace")
+    except FileNotFoundError:
+        return {}, False
+    torn = False
+    if text and not text.endswith("\n"):
+        text = text[: text.rfind("\n") + 1]
+        torn = True
+    rows = list(csv.reader(io.StringIO(text)))
+    if not rows:
+        return {}, torn
+    header = rows[0]
+    if columns is not None and header != columns:
+        raise ValueError(f"{path}: header does not match meta.json trace_columns")
+    body = rows[1:]
+    if body and len(body[-1]) != len(header):  # a torn row that happened to end at a newline
+        body = body[:-1]
+        torn = True
+    bad = [i for i, r in enumerate(body) if len(r) != len(header)]
+    if bad:
+        raise ValueError(f"{path}: malformed row {bad[0] + 2}")
+    out: dict[str, np.ndarray] = {}
+    cols = list(zip(*body, strict=True)) if body else [() for _ in header]
+    for name, col in zip(header, cols, strict=True):
+        if name in _TEXT_COLUMNS:
+            out[name] = np.array(col, dtype=object)
+        elif name == "cycle":
+            out[name] = np.array([int(x) if x else -1 for x in col], dtype=np.int64)
+        elif name.startswith(_VALVE_PREFIX):
+            out[name] = np.array([int(x) for x in col], dtype=np.int8)
+        else:
+            out[name] = np.array([float(x) for x in col], dtype=float)
+    return out, torn
+
+
+def _read_events(path: Path) -> tuple[list[dict], bool]:
+    try:
+        text = path.read_text(encoding="utf-8", errors="replace")
+    except FileNotFoundError:
+        return [], False
+    events = []
+    torn = False
+    lines = text.split("\n")
+    if lines and lines[-1] == "":
+        lines.pop()
+    elif lines:
+        lines.pop()  # no newline: torn
+        torn = True
+    for ln in lines:
+        try:
+            events.append(json.loads(ln))
+        except json.JSONDecodeError:
+            torn = True
+    return events, torn
+
+
+def _read_cycles(path: Path) -> list[dict]:
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        return []
+    rows = list(csv.DictReader(io.StringIO(text)))
+    out = []
+    for r in rows:
+        d: dict[str, Any] = {}
+        for k, v in r.items():
+            if k == "index":
+                d[k] = int(v)
+            elif k == "kept":
+                d[k] = v == "1"
+            elif k == "flags":
+                d[k] = [f for f in v.split(";") if f]
+            else:
+                d[k] = float(v) if v else math.nan
+        out.append(d)
+    return out
+
+
+def load_run(folder: Path | str) -> StoredRun:
+    """Read a run folder back; tolerant of a torn last trace row or event line (crash mid-write)."""
+    folder = Path(folder)
+    meta_path = folder / "meta.json"
+    meta = json.loads(meta_path.read_text(encoding="utf-8")) if meta_path.exists() else {}
+    trace, torn = _read_trace(folder / "trace.csv", meta.get("trace_columns"))
+    events, torn_ev = _read_events(folder / "events.jsonl")
+    cycles = _read_cycles(folder / "cycles.csv")
+    summary_path = folder / "summary.json"
+    summary = json.loads(summary_path.read_text(encoding="utf-8")) if summary_path.exists() else None
+    return StoredRun(folder, meta, trace, events, cycles, summary, torn, torn_ev)

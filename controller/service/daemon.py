@@ -1,0 +1,747 @@
+"""The instrument service core: one control thread owns the drivers; clients only ask.
+
+Why a thread of its own: the interlocks must see every pressure sample whatever the web side
+does, so the tick loop never waits on a client.  Clients talk to it through three thread-safe
+channels only:
+
+* a lock-protected status snapshot the loop refreshes on every sample (``Daemon.snapshot``);
+* an event bus, a ring buffer the loop appends to in O(1) and readers poll by sequence number
+  (a slow or vanished reader costs the loop nothing; it just misses old events);
+* a command queue the loop drains between ticks (interlock reset, anything that touches the
+  drivers), each command answered through a Future.
+
+Runs come from the SQLite catalog's queue, so they survive a restart.  Start-up asserts the safe
+state, marks any run a dead daemon left running as interrupted, never resumes it, and holds the
+queue paused until the operator resumes it.  The queue also pauses after any run that does not
+complete (fault, abort): an operator looks before the next specimen is pressurised.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import contextlib
+import dataclasses
+import json
+import logging
+import math
+import os
+import socket
+import threading
+import time
+from collections import deque
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+from pycnoctl.controller.domain.yamlio import ConfigError, Problem
+from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+from pycnoctl.controller.maths import results
+from pycnoctl.controller.record.catalog import Catalog, is_run_id
+from pycnoctl.controller.run.control import Controller
+from pycnoctl.controller.run.sequence import estimate_duration, list_shipped
+from pycnoctl.drivers.instrument import Instrument
+
+log = logging.getLogger(__name__)
+
+MAX_SEQUENCE_TEXT = 64 * 1024  # bytes of sequence text a client may submit
+SAMPLE_EVENT_INTERVAL = 0.1  # s of wall time between sample events on the bus (<= 10/s)
+TRACE_POINTS = 3000  # decimated (t, gauge) points kept for a dashboard that connects late
+
+
+class SubmitError(Exception):
+    """A run request the daemon refuses; ``problems`` lists file:line:col lines for sequence text."""
+
+    def __init__(self, message: str, problems: list[str] | None = None, status: int = 422) -> None:
+        super().__init__(message)
+        self.problems = problems or []
+        self.status = status
+
+
+# ----------------------------------------------------------------------------- systemd notify
+def sd_notify(message: str) -> bool:
+    """Send one sd_notify datagram (READY=1, WATCHDOG=1, STOPPING=1) when NOTIFY_SOCKET is set."""
+    addr = os.environ.get("NOTIFY_SOCKET")
+    if not addr:
+        return False
+    if addr.startswith("@"):  # abstract namespace
+        addr = "\0" + addr[1:]
+    try:
+        with socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM | socket.SOCK_CLOEXEC) as s:
+            s.sendto(message.encode("ascii"), addr)
+    except OSError as exc:
+        log.warning("sd_notify %s failed: %s", message, exc)
+        return False
+    return True
+
+
+def watchdog_interval() -> float | None:
+    """Half the systemd watchdog period (WATCHDOG_USEC), when one is configured for this process."""
+    usec = os.environ.get("WATCHDOG_USEC")
+    pid = os.environ.get("WATCHDOG_PID")
+    if not usec or (pid and pid != str(os.getpid())):
+        return None
+    try:
+        return max(int(usec) / 2e6, 0.05)
+    except ValueError:
+        return None
+
+
+# ----------------------------------------------------------------------------- structured log
+class JsonLineFormatter(logging.Formatter):
+    """One JSON object a line: time, level, logger, message, and any ``extra={'data': {...}}``."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        out: dict[str, Any] = {
+            "time": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created)) + f".{int(record.msecs):03d}Z",
+            "level": record.levelname.lower(),
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
+        data = getattr(record, "data", None)
+        if isinstance(data, dict):
+            out.update({k: v for k, v in data.items() if k not in out})
+        if record.exc_info:
+            out["exception"] = self.formatException(record.exc_info)
+        return json.dumps(_clean(out), default=str)
+
+
+def attach_json_log(path: Path) -> logging.Handler:
+    """Log everything pycnoctl says (INFO and up) as JSON lines to ``path``, flushed per line."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    handler = logging.FileHandler(path, encoding="utf-8")
+    handler.setFormatter(JsonLineFormatter())
+    handler.setLevel(logging.INFO)
+    root = logging.getLogger("pycnoctl")
+    root.addHandler(handler)
+    if root.level == logging.NOTSET or root.level > logging.INFO:
+        root.setLevel(logging.INFO)
+    return handler
+
+
+# ----------------------------------------------------------------------------- event bus
+class EventBus:
+    """Ring buffer of (seq, kind, data); publish is O(1) under a short lock, readers poll by seq."""
+
+    def __init__(self, maxlen: int = 4096) -> None:
+        self._buf: deque[tuple[int, str, dict[str, Any]]] = deque(maxlen=maxlen)
+        self._seq = 0
+        self._lock = threading.Lock()
+
+    def publish(self, kind: str, data: dict[str, Any]) -> None:
+        with self._lock:
+            self._seq += 1
+            self._buf.append((self._seq, kind, data))
+
+    @property
+    def last_seq(self) -> int:
+        with self._lock:
+            return self._seq
+
+    def since(self, seq: int, limit: int = 500) -> tuple[list[tuple[int, str, dict[str, Any]]], bool]:
+        """Events after ``seq`` (oldest first, at most ``limit``) and whether some were already lost."""
+        with self._lock:
+            if not self._buf or self._seq <= seq:
+                return [], False
+            first = self._buf[0][0]
+            lost = seq + 1 < first
+            start = max(seq + 1 - first, 0)
+            out = [self._buf[i] for i in range(start, min(start + limit, len(self._buf)))]
+        return out, lost
+
+
+# ----------------------------------------------------------------------------- tick statistics
+class LoopStats:
+    """Lateness of the control loop's ticks (wall seconds after they were due)."""
+
+    def __init__(self, maxlen: int = 20000) -> None:
+        self._late: deque[float] = deque(maxlen=maxlen)
+        self._lock = threading.Lock()
+        self.ticks = 0
+
+    def add(self, lateness: float) -> None:
+        with self._lock:
+            self._late.append(lateness)
+            self.ticks += 1
+
+    def clear(self) -> None:
+        with self._lock:
+            self._late.clear()
+
+    def values(self) -> list[float]:
+        with self._lock:
+            return list(self._late)
+
+    def summary(self) -> dict[str, float | int | None]:
+        vals = sorted(self.values())
+        if not vals:
+            return {"ticks": self.ticks, "n": 0, "p50_ms": None, "p99_ms": None, "max_ms": None}
+
+        def q(p: float) -> float:
+            return vals[min(len(vals) - 1, int(p * (len(vals) - 1) + 0.5))] * 1e3
+
+        return {"ticks": self.ticks, "n": len(vals), "p50_ms": q(0.5), "p99_ms": q(0.99), "max_ms": vals[-1] * 1e3}
+
+
+# ----------------------------------------------------------------------------- the daemon
+def _num(x: Any) -> float | None:
+    return float(x) if isinstance(x, (int, float)) and math.isfinite(x) else None
+
+
+def describe_instrument(instrument: Instrument) -> dict[str, Any]:
+    """What a client needs to draw the gas system: chambers (cm^3), valve roles, limits."""
+    roles = instrument.roles
+    ch = instrument.chambers
+    return {
+        "name": instrument.name,
+        "gas": instrument.gas,
+        "pressure_is_gauge": instrument.pressure_is_gauge,
+        "sample_period_s": instrument.sample_period,
+        "max_pressure_pa": instrument.limits.max_pressure,
+        "relief_setting_pa": instrument.limits.relief_setting,
+        "valves": list(instrument.valves.valve_names),
+        "roles": {"inlet": roles.inlet, "vent": roles.vent, "expansion": dict(roles.expansion),
+                  "other": list(roles.other)},
+        "chambers": {
+            "cell_cm3": ch.cell * 1e6,
+            "expansion_cm3": {name: ch.for_expansion(name).vr * 1e6 for name in roles.expansion},
+        },
+        "thermometer": instrument.thermometer is not None,
+        "barometer": instrument.barometer is not None,
+    }
+
+
+@dataclasses.dataclass
+class _Command:
+    fn: Callable[[Controller], Any]
+    future: concurrent.futures.Future[Any]
+
+
+class Daemon:
+    """Owns one instrument: control thread, persistent queue, status snapshot, event bus."""
+
+    def __init__(self, instrument: Instrument, data: Path | str, *, catalog: Catalog | None = None,
+                 on_fatal: Callable[[BaseException], None] | None = None) -> None:
+        self.instrument = instrument
+        self.data = Path(data)
+        self.data.mkdir(parents=True, exist_ok=True)
+        (self.data / "runs").mkdir(exist_ok=True)
+        (self.data / "sequences").mkdir(exist_ok=True)
+        self.catalog = catalog or Catalog(self.data / "catalog.sqlite")
+        self.on_fatal = on_fatal
+        self.bus = EventBus()
+        self.stats = LoopStats()
+        self.description = describe_instrument(instrument)
+        self.trace: deque[tuple[float, float | None]] = deque(maxlen=TRACE_POINTS)
+        self._lock = threading.Lock()
+        self._commands: deque[_Command] = deque()
+        self._wake = threading.Event()
+        self._stop = threading.Event()
+        self._abort = threading.Event()
+        self._thread: threading.Thread | None = None
+        self._next_sample_pub = -math.inf
+        self._last_trace_t = -math.inf
+        self._watchdog = watchdog_interval()
+        self._watchdog_due = 0.0
+        self.failed: BaseException | None = None
+        self._idle_due: float | None = None
+        self._run_wall_last: float | None = None
+        clock = instrument.clock
+        self._realtime = bool(getattr(clock, "realtime", True))  # WallClock has no attribute: real time
+        self._speed = float(getattr(clock, "speed", 1.0)) if self._realtime else 1.0
+        # safe state first, before anything else is looked at (Controller() asserts it too)
+        self.controller = Controller(instrument)
+        self.controller.listeners.append(self._on_event)
+        interrupted = self.catalog.mark_interrupted_on_startup()
+        orphans = self._orphaned_queued()
+        self._snap: dict[str, Any] = {
+            "state": "idle",
+            "activity": "starting",
+            "started_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "safe_state_on_start": True,
+            "pressure": {"gauge_pa": None, "valid": None, "t": None, "ambient_pa": None, "temperature_k": None},
+            "valves": {},
+            "interlock": {"latched": False},
+            "current_run": None,
+            "last_run": None,
+            "queue": {"length": 0, "paused": bool(interrupted or orphans), "paused_reason": None},
+            "interrupted_on_start": interrupted + orphans,
+        }
+        if interrupted or orphans:
+            self._snap["queue"]["paused_reason"] = (
+                f"run {', '.join(interrupted + orphans)} was interrupted when the daemon stopped; "
+                "it is not resumed - check the instrument, then resume the queue")
+            log.warning("runs interrupted by the previous daemon: %s; queue paused",
+                        ", ".join(interrupted + orphans),
+                        extra={"data": {"event": "interrupted_on_start", "runs": interrupted + orphans}})
+        log.info("safe state asserted on start", extra={"data": {"event": "safe_state", "why": "start"}})
+        self._refresh_queue_len()
+
+    def _orphaned_queued(self) -> list[str]:
+        """Runs still 'queued' but gone from the queue table (popped just before a crash): interrupted."""
+        queued = {e.run_id for e in self.catalog.queue_list()}
+        out = []
+        for row in self.catalog.list_runs(status="queued", limit=10000):
+            if row.id not in queued:
+                self.catalog.update_status(row.id, "interrupted", "daemon stopped before the run began; not resumed")
+                out.append(row.id)
+        return out
+
+    # ------------------------------------------------------------------ lifecycle
+    def start(self) -> None:
+        self._thread = threading.Thread(target=self._main, name="pycnoctl-control", daemon=True)
+        self._thread.start()
+
+    def stop(self, timeout: float = 10.0) -> None:
+        """Abort any run, leave the instrument in the safe state and end the control thread."""
+        self._stop.set()
+        self._abort.set()
+        self._wake.set()
+        if self._thread is not None:
+            self._thread.join(timeout)
+        if self.instrument.safe_state():
+            log.info("safe state asserted on stop", extra={"data": {"event": "safe_state", "why": "stop"}})
+        sd_notify("STOPPING=1")
+
+    @property
+    def running(self) -> bool:
+        return self._thread is not None and self._thread.is_alive()
+
+    def _main(self) -> None:
+        try:
+            self._set(activity="idle")
+            while not self._stop.is_set():
+                self._drain_commands()
+                if self._next_run_allowed():
+                    self._run_next()
+                    continue
+                self._idle_tick()
+        except BaseException as exc:  # the loop is the safety: any escape means safe state and exit
+            self.failed = exc
+            log.critical("control loop failed: %s: %s", type(exc).__name__, exc, exc_info=True,
+                         extra={"data": {"event": "control_failed"}})
+            self.instrument.safe_state()
+            self._set(activity="failed", state="stopped")
+            self.bus.publish("daemon", {"activity": "failed", "message": f"{type(exc).__name__}: {exc}"})
+            if self.on_fatal is not None:
+                self.on_fatal(exc)
+        finally:
+            self.instrument.safe_state()
+            self._fail_pending("the control loop has stopped")
+            if not self.failed:
+                self._set(activity="stopped", state="stopped")
+
+    # ------------------------------------------------------------------ idle pacing
+    def _idle_tick(self) -> None:
+        period = self.instrument.sample_period
+        clock = self.instrument.clock
+        if not self._realtime:  # a simulated clock: advance its time one period per short wall wait
+            self.controller.tick()
+            if self._wake.wait(min(period, 0.02)):
+                self._wake.clear()
+            clock.sleep(period)
+            return
+        now = clock.now()
+        due = self._idle_due
+        if due is None or now - due > 5 * period:  # first idle tick, or just back from a run
+            due, measured = now, False
+        else:
+            measured = True
+        if now < due:  # early (woken by a command): wait for the slot, then come back round
+            self._wake.wait((due - now) / self._speed)
+            self._wake.clear()
+            return
+        if measured:
+            self.stats.add((now - due) / self._speed)
+        self.controller.tick()
+        self._idle_due = due + period
+
+    def _ping_watchdog(self) -> None:
+        if self._watchdog is None:
+            return
+        now = time.monotonic()
+        if now >= self._watchdog_due:
+            self._watchdog_due = now + self._watchdog
+            sd_notify("WATCHDOG=1")
+
+    # ------------------------------------------------------------------ commands
+    def call(self, fn: Callable[[Controller], Any], timeout: float = 5.0) -> Any:
+        """Run ``fn(controller)`` in the control thread between ticks and return its result."""
+        if not self.running:
+            raise RuntimeError("the control loop is not running")
+        fut: concurrent.futures.Future[Any] = concurrent.futures.Future()
+        with self._lock:
+            self._commands.append(_Command(fn, fut))
+        self._wake.set()
+        return fut.result(timeout)
+
+    def submit_call(self, fn: Callable[[Controller], Any]) -> concurrent.futures.Future[Any]:
+        """Like call() but returns the Future (an event loop awaits it without blocking)."""
+        fut: concurrent.futures.Future[Any] = concurrent.futures.Future()
+        if not self.running:
+            fut.set_exception(RuntimeError("the control loop is not running"))
+            return fut
+        with self._lock:
+            self._commands.append(_Command(fn, fut))
+        self._wake.set()
+        return fut
+
+    def _drain_commands(self) -> None:
+        while True:
+            with self._lock:
+                if not self._commands:
+                    return
+                cmd = self._commands.popleft()
+            if not cmd.future.set_running_or_notify_cancel():
+                continue
+            try:
+                cmd.future.set_result(cmd.fn(self.controller))
+            except Exception as exc:
+                cmd.future.set_exception(exc)
+
+    def _fail_pending(self, why: str) -> None:
+        with self._lock:
+            pending, self._commands = list(self._commands), deque()
+        for cmd in pending:
+            if cmd.future.set_running_or_notify_cancel():
+                cmd.future.set_exception(RuntimeError(why))
+
+    def submit_reset(self) -> concurrent.futures.Future[tuple[bool, str]]:
+        def do(c: Controller) -> tuple[bool, str]:
+            if c.engine is not None and not c.engine.terminal:
+                return False, "a run is active; nothing is latched while it runs"
+            was = c.monitor.latched
+            if was is None:
+                return True, "nothing was latched"
+            ok = c.reset()
+            why = "" if ok else (c.monitor.last_reset_refusal or "the condition is still present")
+            log.warning("interlock reset %s%s", "accepted" if ok else "refused", f": {why}" if why else "",
+                        extra={"data": {"event": "reset", "accepted": ok, "was": was.kind, "reason": why}})
+            self._refresh_interlock()
+            return ok, (f"cleared {was.kind}" if ok else why)
+
+        return self.submit_call(do)
+
+    def abort(self) -> bool:
+        """Abort the active run (safe state through the engine). False when nothing runs."""
+        with self._lock:
+            active = self._snap.get("current_run") is not None
+        if active:
+            self._abort.set()
+            self._wake.set()
+            log.warning("abort requested", extra={"data": {"event": "abort"}})
+        return active
+
+    def pause(self, reason: str = "paused by the operator") -> None:
+        with self._lock:
+            self._snap["queue"]["paused"] = True
+            self._snap["queue"]["paused_reason"] = reason
+        self.bus.publish("queue", self._queue_event())
+
+    def resume(self) -> None:
+        with self._lock:
+            self._snap["queue"]["paused"] = False
+            self._snap["queue"]["paused_reason"] = None
+        log.info("queue resumed", extra={"data": {"event": "queue_resume"}})
+        self.bus.publish("queue", self._queue_event())
+        self._wake.set()
+
+    # ------------------------------------------------------------------ queue
+    def shipped_sequences(self) -> list[str]:
+        return list(list_shipped())
+
+    def submit(self, *, sequence: str | None = None, sequence_text: str | None = None, sample_id: str = "",
+               mass: float | None = None, u_mass: float = 0.0, bulk_volume: float | None = None,
+               operator: str = "", expansion_volume: str | None = None, note: str = "") -> dict[str, Any]:
+        """Validate a run request against the instrument, queue it and return its issued ID.
+
+        The sequence is a shipped sequence's name or the text of one; never a path on this machine.
+        """
+        if (sequence is None) == (sequence_text is None):
+            raise SubmitError("give exactly one of 'sequence' (a shipped name) or 'sequence_text'")
+        if sequence is not None:
+            shipped = list_shipped()
+            stem = sequence[:-5] if sequence.endswith(".yaml") else sequence
+            if stem not in shipped:
+                raise SubmitError(f"no shipped sequence {sequence!r}; shipped: {', '.join(shipped)}")
+            sequence = stem
+        elif len(sequence_text.encode("utf-8")) > MAX_SEQUENCE_TEXT:  # type: ignore[union-attr]
+            raise SubmitError(f"sequence text over {MAX_SEQUENCE_TEXT} bytes", status=413)
+        if mass is not None and not (math.isfinite(mass) and mass > 0):
+            raise SubmitError("mass must be positive")
+        if bulk_volume is not None and not (math.isfinite(bulk_volume) and bulk_volume > 0):
+            raise SubmitError("bulk volume must be positive")
+        if not (math.isfinite(u_mass) and u_mass >= 0):
+            raise SubmitError("mass uncertainty must be zero or positive")
+        request = {"sequence": sequence, "sequence_text": sequence_text, "sample_id": sample_id, "mass": mass,
+                   "u_mass": u_mass, "bulk_volume": bulk_volume, "operator": operator,
+                   "expansion_volume": expansion_volume, "note": note}
+        run_id = self.catalog.new_run_id()
+        prepared = self._prepare(run_id, request)  # raises SubmitError; nothing is queued then
+        self.catalog.create_run(kind=prepared.sequence.kind, sample_id=sample_id or None,
+                                sequence_name=prepared.sequence.name, status="queued", run_id=run_id)
+        self.catalog.queue_push(run_id, request)
+        log.info("run %s queued (%s, sample %r)", run_id, prepared.sequence.name, sample_id,
+                 extra={"data": {"event": "queued", "run_id": run_id, "sequence": prepared.sequence.name}})
+        self._refresh_queue_len()
+        self.bus.publish("queue", self._queue_event())
+        self._wake.set()
+        return {"run_id": run_id, "sequence": prepared.sequence.name, "kind": prepared.sequence.kind,
+                "expansion_volume": prepared.expansion_volume, "warnings": prepared.warnings,
+                "expected_s": estimate_duration(prepared.sequence)}
+
+    def _sequence_path(self, run_id: str, request: dict[str, Any]) -> Path:
+        if request.get("sequence") is not None:
+            return list_shipped()[request["sequence"]]
+        if not is_run_id(run_id):
+            raise SubmitError("bad run ID")
+        path = self.data / "sequences" / f"{run_id}.yaml"
+        text = request.get("sequence_text") or ""
+        if not path.exists() or path.read_text(encoding="utf-8") != text:
+            tmp = path.with_name(f".{path.name}.tmp")
+            tmp.write_text(text, encoding="utf-8")
+            os.replace(tmp, path)
+        return path
+
+    def _prepare(self, run_id: str, request: dict[str, Any]) -> Any:
+        path = self._sequence_path(run_id, request)
+        rr = RunRequest(path, sample_id=request.get("sample_id") or "", mass=request.get("mass"),
+                        u_mass=request.get("u_mass") or 0.0, bulk_volume=request.get("bulk_volume"),
+                        operator=request.get("operator") or "", expansion_volume=request.get("expansion_volume"),
+                        note=request.get("note") or "")
+        try:
+            return prepare(rr, self.instrument, self.catalog)
+        except ConfigError as exc:
+            if request.get("sequence") is None:
+                with contextlib.suppress(OSError):
+                    path.unlink()
+            raise SubmitError("the sequence has problems", [_problem_text(p, path) for p in exc.problems]) from None
+        except ValueError as exc:
+            raise SubmitError(str(exc)) from None
+
+    def queue(self) -> list[dict[str, Any]]:
+        out = []
+        for e in self.catalog.queue_list():
+            r = e.request
+            out.append({"position": e.position, "run_id": e.run_id,
+                        "sequence": r.get("sequence") or "(submitted text)", "sample_id": r.get("sample_id"),
+                        "operator": r.get("operator"), "mass_g": r["mass"] * 1e3 if r.get("mass") else None})
+        return out
+
+    def remove_queued(self, run_id: str) -> bool:
+        """Take a queued run off the queue (it becomes 'aborted' in the catalog)."""
+        if not self.catalog.queue_remove(run_id):
+            return False
+        with contextlib.suppress(Exception):
+            self.catalog.update_status(run_id, "aborted", "removed from the queue by the operator")
+        log.info("run %s removed from the queue", run_id, extra={"data": {"event": "dequeued", "run_id": run_id}})
+        self._refresh_queue_len()
+        self.bus.publish("queue", self._queue_event())
+        return True
+
+    def _queue_event(self) -> dict[str, Any]:
+        with self._lock:
+            q = dict(self._snap["queue"])
+        return {**q, "items": self.queue()}
+
+    def _refresh_queue_len(self) -> None:
+        n = len(self.catalog.queue_list())
+        with self._lock:
+            self._snap["queue"]["length"] = n
+
+    # ------------------------------------------------------------------ running
+    def _next_run_allowed(self) -> bool:
+        with self._lock:
+            paused = self._snap["queue"]["paused"]
+            n = self._snap["queue"]["length"]
+        return not paused and n > 0 and self.controller.monitor.latched is None and not self._stop.is_set()
+
+    def _run_next(self) -> None:
+        entry = self.catalog.queue_pop()
+        self._refresh_queue_len()
+        if entry is None:
+            return
+        rid, req = entry.run_id, entry.request
+        try:
+            prepared = self._prepare(rid, req)
+        except SubmitError as exc:
+            msg = "; ".join([str(exc), *exc.problems])
+            self.catalog.update_status(rid, "fault", msg)
+            log.error("run %s not started: %s", rid, msg, extra={"data": {"event": "not_started", "run_id": rid}})
+            self.bus.publish("run_finished", {"run_id": rid, "status": "fault", "message": msg})
+            return
+        self._abort.clear()
+        seq = prepared.sequence
+        current = {"run_id": rid, "sample_id": req.get("sample_id"), "operator": req.get("operator"),
+                   "sequence": seq.name, "kind": seq.kind, "expansion_volume": prepared.expansion_volume,
+                   "cycles_total": seq.cycles.count if seq.expands else 0, "cycle": 0, "cycles": [],
+                   "expected_s": estimate_duration(seq), "t_start": self.instrument.clock.now(),
+                   "started_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()), "purge_pulse": None}
+        self._set(current_run=current, activity="running")
+        self.bus.publish("run_started", {k: v for k, v in current.items() if k != "cycles"})
+        self.bus.publish("queue", self._queue_event())
+        log.info("run %s started (%s)", rid, seq.name, extra={"data": {"event": "run_started", "run_id": rid}})
+        self._run_wall_last = None
+        try:
+            summary = execute(prepared, self.controller, root=self.data / "runs", catalog=self.catalog,
+                              run_id=rid, should_stop=self._should_stop)
+        finally:
+            self._run_wall_last = None
+            self._set(current_run=None)
+        brief = brief_result(summary)
+        status = summary["status"]
+        with self._lock:
+            self._snap["last_run"] = brief
+            self._snap["activity"] = "idle"
+        self._refresh_interlock()
+        self.bus.publish("run_finished", brief)
+        log.info("run %s ended: %s", rid, status, extra={"data": {"event": "run_finished", **brief}})
+        if status != "completed" and not self._stop.is_set():
+            self.pause(f"run {rid} ended {status}" + (f" ({brief['message']})" if brief.get("message") else "")
+                       + "; check the instrument, then resume the queue")
+
+    def _should_stop(self) -> bool:
+        # Called by the tick loop on every tick of a run: answer waiting commands (a reset is refused
+        # while running) and honour abort / shutdown.
+        self._drain_commands()
+        return self._abort.is_set() or self._stop.is_set()
+
+    # ------------------------------------------------------------------ listener (control thread)
+    def _on_event(self, kind: str, data: dict[str, Any]) -> None:
+        """Controller listener: O(1) bookkeeping only; never blocks."""
+        if kind == "sample":
+            self._on_sample(data)
+            return
+        self._ping_watchdog()
+        with self._lock:
+            cur = self._snap.get("current_run")
+            if kind == "state":
+                self._snap["state"] = data.get("state")
+            elif kind == "cycle" and cur is not None:
+                cur["cycle"] = data.get("cycle", cur["cycle"])
+            elif kind == "purge_pulse" and cur is not None:
+                cur["purge_pulse"] = f"{data.get('pulse')} of {data.get('of')}"
+        if kind == "cycle_done":
+            data = {**data, **self._cycle_brief(int(data.get("cycle", 0)))}
+            with self._lock:
+                cur = self._snap.get("current_run")
+                if cur is not None:
+                    cur["cycles"] = [*cur["cycles"], data]
+        if kind in ("trip", "reset"):
+            self._refresh_interlock()
+            if kind == "trip":
+                log.error("interlock trip %s: %s", data.get("interlock"), data.get("message"),
+                          extra={"data": {"event": "trip", **{k: v for k, v in data.items() if k != "message"}}})
+        self.bus.publish(kind, _clean(data))
+
+    def _cycle_brief(self, index: int) -> dict[str, Any]:
+        engine = self.controller.engine
+        if engine is None or not 0 < index <= len(engine.cycles):
+            return {}
+        cyc = engine.cycles[index - 1]
+        if not (math.isfinite(cyc.p1) and math.isfinite(cyc.p2)):
+            return {"flags": list(cyc.flags)}
+        try:
+            r = results.cycle_result(cyc, self.instrument.chambers.for_expansion(engine.volume_name),
+                                     gas=engine.seq.gas, u_p=self.instrument.pressure_u,
+                                     u_t=self.instrument.temperature_u, discard=engine.seq.cycles.discard)
+        except Exception as exc:  # a display nicety must never trip the loop
+            return {"flags": [*cyc.flags, f"not computed: {exc}"]}
+        return {"p1_pa": _num(r.p1_gauge_pa), "p2_pa": _num(r.p2_gauge_pa), "volume_cm3": _num(r.volume_m3 * 1e6),
+                "u_volume_cm3": _num(r.u_volume_m3 * 1e6), "kept": bool(r.kept), "flags": list(r.flags)}
+
+    def _on_sample(self, data: dict[str, Any]) -> None:
+        last = self.controller.last
+        gauge = _num(data.get("gauge"))
+        t = data.get("t")
+        wall = time.monotonic()
+        if self.controller.engine is not None and self._realtime:  # run ticks: lateness from spacing
+            prev = self._run_wall_last
+            if prev is not None:
+                self.stats.add(max(wall - prev - self.instrument.sample_period / self._speed, 0.0))
+            self._run_wall_last = wall
+        temp = last.temperature if last is not None else None
+        with self._lock:
+            self._snap["state"] = data.get("state", "idle")
+            self._snap["pressure"] = {
+                "gauge_pa": gauge, "valid": data.get("valid"), "t": t,
+                "ambient_pa": _num(last.ambient) if last is not None else None,
+                "temperature_k": _num(temp.value) if temp is not None and temp.valid else None,
+            }
+            self._snap["valves"] = dict(data.get("valves") or {})
+            cur = self._snap.get("current_run")
+            if cur is not None and isinstance(t, (int, float)):
+                cur["elapsed_s"] = t - cur["t_start"]
+        self._ping_watchdog()
+        if wall >= self._next_sample_pub:  # a schedule, not a gap: <= 10/s on average, none lost to jitter
+            self._next_sample_pub = max(self._next_sample_pub + SAMPLE_EVENT_INTERVAL, wall - SAMPLE_EVENT_INTERVAL / 2)
+            self.trace.append((float(t) if t is not None else math.nan, gauge))
+            self.bus.publish("sample", {"t": t, "gauge_pa": gauge, "valid": data.get("valid"),
+                                        "state": data.get("state"), "valves": dict(data.get("valves") or {})})
+
+    def _refresh_interlock(self) -> None:
+        trip = self.controller.monitor.latched
+        info: dict[str, Any] = {"latched": trip is not None}
+        if trip is not None:
+            info.update({"kind": trip.kind, "message": trip.message, "t": trip.t,
+                         "value": _num(trip.value), "limit": _num(trip.limit)})
+        with self._lock:
+            self._snap["interlock"] = info
+            if trip is not None and self._snap["activity"] == "idle":
+                self._snap["activity"] = "tripped"
+            elif trip is None and self._snap["activity"] == "tripped":
+                self._snap["activity"] = "idle"
+
+    # ------------------------------------------------------------------ snapshot
+    def _set(self, **kv: Any) -> None:
+        with self._lock:
+            self._snap.update(kv)
+        if "activity" in kv:
+            self.bus.publish("daemon", {"activity": kv["activity"]})
+
+    def snapshot(self) -> dict[str, Any]:
+        """A consistent copy of the status for a client (JSON-ready)."""
+        with self._lock:
+            snap = json.loads(json.dumps(self._snap, default=str))
+        snap["instrument"] = self.description
+        snap["loop"] = {"running": self.running, **self.stats.summary(), "realtime": self._realtime,
+                        "speed": self._speed}
+        snap["events_seq"] = self.bus.last_seq
+        return snap
+
+    def recent_trace(self, seconds: float | None = None) -> list[tuple[float, float | None]]:
+        pts = list(self.trace)
+        if seconds is not None and pts:
+            t_end = pts[-1][0]
+            pts = [p for p in pts if p[0] >= t_end - seconds]
+        return pts
+
+
+def brief_result(summary: dict[str, Any]) -> dict[str, Any]:
+    """The few numbers a dashboard shows for a finished run."""
+    keys = ("run_id", "status", "sample_id", "operator", "volume_cm3", "volume_u_cm3", "k", "density_g_cm3",
+            "density_u_g_cm3", "rsd", "n_kept", "porosity", "porosity_u", "leak_rate_pa_s", "leak_ok",
+            "expansion_volume", "started_utc", "ended_utc", "instrument_time_s", "mass_g")
+    out = {k: summary.get(k) for k in keys}
+    out["sequence"] = (summary.get("sequence") or {}).get("name")
+    out["message"] = (summary.get("fault") or {}).get("message") or summary.get("abort_reason")
+    out["warnings"] = list(summary.get("warnings") or [])
+    return _clean(out)
+
+
+def _clean(d: dict[str, Any]) -> dict[str, Any]:
+    """NaN/inf become null so every event is valid JSON."""
+    out: dict[str, Any] = {}
+    for k, v in d.items():
+        if isinstance(v, float) and not math.isfinite(v):
+            out[k] = None
+        elif isinstance(v, dict):
+            out[k] = _clean(v)
+        else:
+            out[k] = v
+    return out
+
+
+def _problem_text(p: Problem, path: Path) -> str:
+    """A problem in submitted text, positioned as <submitted>:line:col (the server path is not shown)."""
+    name = "<submitted>" if Path(p.file).name == path.name else Path(p.file).name
+    return f"{name}:{p.line}:{p.col}: {p.message}"
