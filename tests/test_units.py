@@ -128,3 +128,45 @@ def test_pressure_unit_invariance(pa):
     values = [u.parse_pressure(t) for t in texts]
     for v in values:
         assert v == pytest.approx(pa, rel=1e-12)
+
+
+# ----------------------------------------------------------------------------- the registry-free path
+def _via_pint(value: object, key: str, default_unit: str) -> float:
+    """What the registry alone returns for this value (the fast path bypassed)."""
+    si = u._DIMENSIONS[key][1]
+    q = u.to_quantity(value, default_unit, difference=(key == "temperature_difference"))
+    return float(q.to(si).magnitude)
+
+
+_FINITE = st.floats(allow_nan=False, allow_infinity=False, min_value=-1e12, max_value=1e12)
+
+
+@pytest.mark.parametrize(("unit", "key"), [*u._FAST_FACTORS, ("degC", "temperature")])
+@given(x=_FINITE)
+def test_fast_path_is_bit_for_bit_the_registry(unit: str, key: str, x: float) -> None:
+    text = f"{x!r} {unit}"
+    fast = u._fast_si(text, key, u._DIMENSIONS[key][1])
+    assert fast is not None
+    slow = _via_pint(text, key, u._DIMENSIONS[key][1])
+    assert fast == slow and str(fast) == str(slow)  # equal, including the sign of zero
+    assert u._fast_si(x, key, unit) == _via_pint(x, key, unit)  # a bare number in this default unit
+
+
+def test_fast_path_declines_what_it_does_not_know() -> None:
+    assert u._fast_si("1 furlong", "length", "m") is None  # not in the table: pint decides
+    assert u._fast_si("1 bar", "volume", "m**3") is None  # wrong kind: pint gives the message
+    assert u._fast_si("1e400 bar", "pressure", "Pa") is None  # not finite: pint gives the message
+    assert u._fast_si(True, "pressure", "Pa") is None
+    with pytest.raises(UnitError, match="is not a volume"):
+        u.parse_volume("1 bar")
+
+
+def test_registry_is_built_only_when_needed() -> None:
+    import subprocess
+    import sys
+
+    code = ("import sys; from pycnoctl.controller.domain import units as u; "
+            "v = u.parse_pressure('1.4 bar') + u.parse_volume('10 cm3') + u.parse_temperature('25'); "
+            "print('pint' in sys.modules); u.parse_length('1 furlong'); print('pint' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
+    assert out == ["False", "True"]

@@ -2,7 +2,9 @@
 
 Each verb lives in its own module exposing ``add_parser(subparsers)``, which registers the verb
 and sets ``func`` (taking the parsed args, returning an exit code).  Modules are imported
-only when their verb is used, so ``pycnoctl compute`` does not pay for the web stack.
+only when their verb is used: ``pycnoctl --help`` lists the verbs from the light table below
+(the one-line help each module also registers; a test keeps the two equal), so neither help nor
+``pycnoctl compute`` pays for the web stack, the simulator or the unit registry it does not use.
 """
 
 from __future__ import annotations
@@ -13,27 +15,28 @@ import importlib.util
 import sys
 from collections.abc import Sequence
 
-from pycnoctl.controller.domain.yamlio import ConfigError
-
-# verb -> module that implements it
-VERBS: dict[str, str] = {
-    "compute": "pycnoctl.controller.cli.compute",
-    "run": "pycnoctl.controller.cli.run",
-    "check": "pycnoctl.controller.cli.check",
-    "analyze": "pycnoctl.controller.cli.analyze",
-    "probe": "pycnoctl.controller.cli.probe",
-    "calibrate": "pycnoctl.controller.cli.calibrate",
-    "runs": "pycnoctl.controller.cli.runs",
-    "show": "pycnoctl.controller.cli.show",
-    "report": "pycnoctl.controller.cli.report",
-    "serve": "pycnoctl.controller.cli.serve",
-    "submit": "pycnoctl.controller.cli.client",
-    "status": "pycnoctl.controller.cli.client",
-    "watch": "pycnoctl.controller.cli.client",
-    "abort": "pycnoctl.controller.cli.client",
-    "reset": "pycnoctl.controller.cli.client",
-    "queue": "pycnoctl.controller.cli.client",
+# verb -> (module that implements it, one-line help shown by `pycnoctl --help`)
+VERB_TABLE: dict[str, tuple[str, str]] = {
+    "compute": ("pycnoctl.controller.cli.compute", "compute a sample volume (and density) from pressures, offline"),
+    "run": ("pycnoctl.controller.cli.run", "run a measurement sequence"),
+    "check": ("pycnoctl.controller.cli.check", "validate a sequence and dry-run it on the simulator"),
+    "analyze": ("pycnoctl.controller.cli.analyze", "recompute a stored run from its raw trace"),
+    "probe": ("pycnoctl.controller.cli.probe", "open every device of an instrument and report how it answers"),
+    "calibrate": ("pycnoctl.controller.cli.calibrate", "calibrate the chamber volumes with reference spheres"),
+    "runs": ("pycnoctl.controller.cli.runs", "list runs in the catalog"),
+    "show": ("pycnoctl.controller.cli.show", "show one stored run"),
+    "report": ("pycnoctl.controller.cli.report", "write an HTML report of a run or a sample set"),
+    "serve": ("pycnoctl.controller.cli.serve", "run the instrument service with its local API and dashboard"),
+    "submit": ("pycnoctl.controller.cli.client", "queue a run on the daemon"),
+    "status": ("pycnoctl.controller.cli.client", "one-shot status of the daemon and the instrument"),
+    "watch": ("pycnoctl.controller.cli.client", "live terminal view of the daemon (Ctrl-C to leave; the run goes on)"),
+    "abort": ("pycnoctl.controller.cli.client", "abort the active run (safe state); the queue pauses"),
+    "reset": ("pycnoctl.controller.cli.client",
+              "operator reset of a latched interlock (refused while the condition lasts)"),
+    "queue": ("pycnoctl.controller.cli.client", "list the run queue; remove a run; resume or pause"),
 }
+# verb -> module that implements it
+VERBS: dict[str, str] = {verb: mod for verb, (mod, _) in VERB_TABLE.items()}
 
 
 class UsageError(Exception):
@@ -52,15 +55,25 @@ def _available() -> dict[str, str]:
     return out
 
 
-def build_parser(verbs: dict[str, str] | None = None) -> argparse.ArgumentParser:
+def build_parser(verbs: dict[str, str] | None = None, *, light: bool = False) -> argparse.ArgumentParser:
+    """The parser for these verbs (all available ones by default).
+
+    ``light``: register each verb from VERB_TABLE with its one-line help only, importing nothing;
+    enough for ``pycnoctl --help`` and ``--version``, not for running a verb.
+    """
     parser = argparse.ArgumentParser(
         prog="pycnoctl",
         description="Run, simulate and analyse gas-expansion pycnometer measurements.",
     )
     parser.add_argument("--version", action="store_true", help="print the version and exit")
     sub = parser.add_subparsers(dest="verb", metavar="VERB")
+    chosen = verbs if verbs is not None else _available()
+    if light:
+        for verb in chosen:
+            sub.add_parser(verb, help=VERB_TABLE[verb][1] if verb in VERB_TABLE else None)
+        return parser
     seen: set[str] = set()
-    for mod in (verbs if verbs is not None else _available()).values():
+    for mod in chosen.values():
         if mod in seen:
             continue
         seen.add(mod)
@@ -68,13 +81,21 @@ def build_parser(verbs: dict[str, str] | None = None) -> argparse.ArgumentParser
     return parser
 
 
+def _verb_of(argv: Sequence[str]) -> str | None:
+    """The verb word of a command line: the first word that is not an option (the top-level options
+    take no value)."""
+    return next((a for a in argv if not a.startswith("-")), None)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     verbs = _available()
-    # Import only the module for the verb asked for (all of them for --help).
-    wanted = {v: m for v, m in verbs.items() if argv and v == argv[0]}
-    selected = {v: m for v, m in verbs.items() if m in wanted.values()} if wanted else verbs
-    parser = build_parser(selected)
+    # Import only the module of the verb asked for; without one, list the verbs from the light table.
+    verb = _verb_of(argv)
+    if verb in verbs:
+        parser = build_parser({v: m for v, m in verbs.items() if m == verbs[verb]})
+    else:
+        parser = build_parser(verbs, light=True)
     args = parser.parse_args(argv)
     if args.version:
         from importlib.metadata import version
@@ -86,16 +107,21 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     try:
         return int(args.func(args) or 0)
-    except ConfigError as exc:  # problems in an input file: one positioned line each
-        for problem in exc.problems:
-            print(problem, file=sys.stderr)
-        return 2
     except UsageError as exc:
         print(f"pycnoctl {args.verb}: error: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130
+    except Exception as exc:
+        # problems in an input file: one positioned line each.  yamlio is not imported up front (it
+        # pulls in YAML and pydantic); an exception can only be its ConfigError if it was loaded.
+        yamlio = sys.modules.get("pycnoctl.controller.domain.yamlio")
+        if yamlio is None or not isinstance(exc, yamlio.ConfigError):
+            raise
+        for problem in exc.problems:
+            print(problem, file=sys.stderr)
+        return 2
 
 
 if __name__ == "__main__":

@@ -11,16 +11,33 @@ steps, where 0.1 degC means 0.1 K.
 
 from __future__ import annotations
 
+import functools
 import math
 import re
 import tokenize
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import pint
+if TYPE_CHECKING:
+    import pint
 
-#: The one registry of the project.  Offset units (degC) are only ever built as Quantity(value, unit).
-ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
-Q_ = ureg.Quantity
+
+@functools.cache
+def registry() -> pint.UnitRegistry:
+    """The one registry of the project, built on first use (importing pint and building the registry
+    costs about a quarter of a second: a command that never parses a unit must not pay it).
+    Offset units (degC) are only ever built as Quantity(value, unit)."""
+    import pint
+
+    return pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
+
+
+def __getattr__(name: str) -> Any:
+    # ``units.ureg`` and ``units.Q_`` stay available as before, built on first access
+    if name == "ureg":
+        return registry()
+    if name == "Q_":
+        return registry().Quantity
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 class UnitError(ValueError):
@@ -52,6 +69,52 @@ _REPLACE = (("°C", "degC"), ("℃", "degC"), ("°F", "degF"), ("°", "deg"), ("
 _OFFSET_UNITS = {"degree_Celsius": "kelvin", "degree_Fahrenheit": "degree_Rankine"}
 
 
+# (unit text after _clean_unit, dimension) -> factor to SI: the common units, converted without
+# building the registry.  Each factor is the float the registry itself computes, so x * factor is
+# bit-for-bit what pint returns (tests/test_units.py checks every entry against the registry);
+# any other unit, and every error message, goes through pint.
+_FAST_FACTORS: dict[tuple[str, str], float] = {
+    ("Pa", "pressure"): 1.0, ("kPa", "pressure"): 1000.0, ("MPa", "pressure"): 1000000.0,
+    ("hPa", "pressure"): 100.0, ("bar", "pressure"): 100000.0, ("mbar", "pressure"): 100.0,
+    ("psi", "pressure"): 6894.7572931683635, ("atm", "pressure"): 101325.0, ("torr", "pressure"): 133.32236842105263,
+    ("m**3", "volume"): 1.0, ("cm**3", "volume"): 1.0000000000000002e-06, ("mm**3", "volume"): 1e-09,
+    ("mL", "volume"): 1.0000000000000002e-06, ("ml", "volume"): 1.0000000000000002e-06,
+    ("L", "volume"): 0.0010000000000000002,
+    ("K", "temperature"): 1.0, ("K", "temperature_difference"): 1.0, ("degC", "temperature_difference"): 1.0,
+    ("kg", "mass"): 1.0, ("g", "mass"): 0.001, ("mg", "mass"): 1e-06,
+    ("s", "duration"): 1.0, ("ms", "duration"): 0.001, ("min", "duration"): 60.0, ("h", "duration"): 3600.0,
+    ("m", "length"): 1.0, ("cm", "length"): 0.01, ("mm", "length"): 0.001,
+    ("kg/m**3", "density"): 1.0, ("g/cm**3", "density"): 999.9999999999999,
+    ("Pa/s", "rate"): 1.0, ("", "fraction"): 1.0, ("%", "fraction"): 0.01, ("ppm", "fraction"): 1e-06,
+}
+# absolute temperature in degC: the registry adds the offset to the magnitude (scale 1)
+_DEGC_OFFSET = 273.15
+
+
+def _fast_si(value: Any, key: str, default_unit: str) -> float | None:
+    """SI magnitude of a plain number or 'number unit' text in a common unit; None: ask pint."""
+    if isinstance(value, bool):
+        return None
+    if isinstance(value, int | float):
+        magnitude, unit = float(value), default_unit
+    elif isinstance(value, str):
+        m = _NUMBER_UNIT.match(value)
+        if not m:
+            return None
+        magnitude = float(m.group("num"))
+        unit = _clean_unit(m.group("unit")) or default_unit
+    else:
+        return None
+    if unit == "degC" and key == "temperature":
+        out = magnitude + _DEGC_OFFSET
+    else:
+        factor = _FAST_FACTORS.get((unit, key))
+        if factor is None:
+            return None
+        out = magnitude * factor
+    return out if math.isfinite(out) and math.isfinite(magnitude) else None
+
+
 def _clean_unit(unit: str) -> str:
     for old, new in _REPLACE:
         unit = unit.replace(old, new)
@@ -69,6 +132,10 @@ def _dim_key(dimension: str) -> str:
 
 def to_quantity(value: Any, default_unit: str, *, difference: bool = False) -> pint.Quantity:
     """Text, number or Quantity -> Quantity of this registry (bare numbers get ``default_unit``)."""
+    import pint
+
+    ureg = registry()
+    Q_ = ureg.Quantity
     if isinstance(value, pint.Quantity):
         if value._REGISTRY is not ureg:  # another registry: go through its unit string
             value = Q_(value.magnitude, str(value.units))
@@ -108,6 +175,11 @@ def parse_quantity(value: Any, dimension: str, *, default_unit: str | None = Non
     """
     key = _dim_key(dimension)
     dimensionality, si_unit, noun = _DIMENSIONS[key]
+    fast = _fast_si(value, key, default_unit if default_unit is not None else si_unit)
+    if fast is not None:
+        return fast
+    import pint
+
     q = to_quantity(value, default_unit if default_unit is not None else si_unit,
                     difference=(key == "temperature_difference"))
     if not q.check(dimensionality):
@@ -201,7 +273,7 @@ def format_quantity(value_si: float, dimension: str, unit: str, *, digits: int =
     """SI float -> '12.3456 cm³' style text in the requested unit (significant digits)."""
     key = _dim_key(dimension)
     _, si_unit, _ = _DIMENSIONS[key]
-    q = Q_(value_si, si_unit or "").to(_clean_unit(unit))
+    q = registry().Quantity(value_si, si_unit or "").to(_clean_unit(unit))
     return f"{q.magnitude:.{digits}g} {q.units:~P}".rstrip()
 
 
@@ -209,4 +281,4 @@ def convert(value_si: float, dimension: str, unit: str) -> float:
     """SI float -> magnitude in ``unit`` (e.g. convert(1e-6, 'volume', 'cm^3') == 1.0)."""
     key = _dim_key(dimension)
     _, si_unit, _ = _DIMENSIONS[key]
-    return float(Q_(value_si, si_unit or "").to(_clean_unit(unit)).magnitude)
+    return float(registry().Quantity(value_si, si_unit or "").to(_clean_unit(unit)).magnitude)
