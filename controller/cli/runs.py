@@ -1,8 +1,10 @@
 """``pycnoctl runs``: list the catalog's runs, filtered; as a table, JSON or CSV.
 
---sample takes an exact ID, or a prefix ending in '*' (e.g. 'AL-04*').  --since/--until take a date
+--sample takes an exact ID, or a prefix ending in '*' (e.g. 'AL-04*'; only a final '*' is special, and
+case counts).  --since/--until take a date
 (2025-03-14, UTC midnight) or an ISO time; --until is exclusive.  Volumes in cm^3 (expanded
-uncertainty), densities in g/cm^3, masses in g.
+uncertainty), densities in g/cm^3, masses in g.  --before RUN_ID gives the page after that run (the
+last one listed), so a long listing is read a page at a time.
 """
 
 from __future__ import annotations
@@ -31,6 +33,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--status", action="append", metavar="STATUS",
                    help="completed, fault, aborted, interrupted, running or queued (repeatable)")
     p.add_argument("--limit", type=int, default=50, help="at most this many, newest first (default 50)")
+    p.add_argument("--before", metavar="RUN_ID", help="only runs listed after this one (the next page)")
     out = p.add_mutually_exclusive_group()
     out.add_argument("--json", action="store_true", help="JSON list")
     out.add_argument("--csv", action="store_true", help="CSV export (all matching runs up to --limit)")
@@ -57,19 +60,17 @@ def row_dict(r: Any) -> dict[str, Any]:
 
 
 def query(catalog: Any, *, sample: str | None = None, since: _dt.datetime | None = None,
-          until: _dt.datetime | None = None, status: list[str] | None = None, limit: int = 50) -> list[Any]:
-    """Runs newest first; a sample ending in '*' matches by prefix."""
+          until: _dt.datetime | None = None, status: list[str] | None = None, limit: int = 50,
+          before: str | None = None) -> list[Any]:
+    """Runs newest first; a sample ending in '*' matches by prefix (an index range in the catalog)."""
     from pycnoctl.controller.record.catalog import CatalogError
 
     prefix = sample[:-1] if sample and sample.endswith("*") else None
     try:
-        rows = catalog.list_runs(sample=None if prefix is not None else sample, status=status, since=since,
-                                 until=until, limit=1_000_000 if prefix is not None else limit)
+        return catalog.list_runs(sample=None if prefix is not None else sample, sample_prefix=prefix,
+                                 status=status, since=since, until=until, limit=limit, before=before)
     except CatalogError as exc:
         raise UsageError(str(exc)) from None
-    if prefix is not None:
-        rows = [r for r in rows if (r.sample_id or "").startswith(prefix)][:limit]
-    return rows
 
 
 def main(args: argparse.Namespace) -> int:
@@ -86,7 +87,7 @@ def main(args: argparse.Namespace) -> int:
     until = parse_time(args.until, "--until") if args.until else None
     with Catalog(path) as catalog:
         rows = [row_dict(r) for r in query(catalog, sample=args.sample, since=since, until=until,
-                                             status=args.status, limit=args.limit)]
+                                             status=args.status, limit=args.limit, before=args.before)]
     if args.json:
         print(json.dumps(rows, indent=2))
     elif args.csv:

@@ -17,6 +17,7 @@ and run IDs are only those this module issued (``is_run_id`` checks the form str
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import datetime as _dt
 import json
 import re
@@ -78,6 +79,8 @@ CREATE TABLE IF NOT EXISTS runs (
 CREATE INDEX IF NOT EXISTS runs_by_created ON runs (created);
 CREATE INDEX IF NOT EXISTS runs_by_sample ON runs (sample_id, created);
 CREATE INDEX IF NOT EXISTS runs_by_status ON runs (status);
+CREATE INDEX IF NOT EXISTS runs_by_status_created ON runs (status, created);
+CREATE INDEX IF NOT EXISTS runs_by_sample_order ON runs (sample_id, created, id);
 CREATE TABLE IF NOT EXISTS cycles (
     run_id TEXT NOT NULL REFERENCES runs (id) ON DELETE CASCADE,
     idx INTEGER NOT NULL,
@@ -110,6 +113,24 @@ def _time_arg(x: _dt.datetime | str | None) -> str | None:
     if x is None or isinstance(x, str):
         return x
     return _utc(x)
+
+
+def prefix_bound(prefix: str) -> str | None:
+    """The least string above every string that starts with ``prefix`` (None: no such bound).
+
+    ``prefix <= s < prefix_bound(prefix)`` holds exactly when ``s.startswith(prefix)``: SQLite's
+    BINARY collation compares UTF-8 bytes, whose order is the code-point order Python compares by,
+    so the range runs on the (sample_id, created) index where LIKE (case-folding, '%' and '_'
+    wildcards) and GLOB ('*', '?', '[') would need escaping and could not always use it.
+    """
+    chars = list(prefix)
+    while chars:
+        code = ord(chars.pop()) + 1
+        if code == 0xD800:  # surrogates cannot be stored (not encodable in UTF-8): skip over them
+            code = 0xE000
+        if code <= 0x10FFFF:
+            return "".join(chars) + chr(code)
+    return None
 
 
 def _issue(prefix: str) -> str:
@@ -153,6 +174,10 @@ class RunRow:
     mass: float | None
     message: str | None
     calibration_id: str | None
+
+
+# the runs columns in RunRow's field order, so that a row becomes a RunRow by position (no dict per row)
+_RUN_COLUMNS = ", ".join(f.name for f in dataclasses.fields(RunRow))
 
 
 @dataclass(frozen=True)
@@ -416,32 +441,66 @@ class Catalog:
         status: str | Iterable[str] | None = None,
         since: _dt.datetime | str | None = None,
         until: _dt.datetime | str | None = None,
-        limit: int = 100,
+        limit: int | None = 100,
+        *,
+        sample_prefix: str | None = None,
+        kind: str | None = None,
+        before: str | None = None,
     ) -> list[RunRow]:
-        """Runs newest first; since/until compare the creation time (UTC, inclusive/exclusive)."""
+        """Runs newest first; since/until compare the creation time (UTC, inclusive/exclusive).
+
+        ``sample_prefix``: sample IDs starting with it (case-sensitive, no wildcards), as an index
+        range.  ``before``: a run ID; only runs after it in this order (the next page, found through
+        the index whatever the page number).  ``limit`` None: all matching runs.
+        """
         where, args = [], []
+        # with a sample condition, the sample index leads: '+' keeps SQLite from picking the status
+        # index instead (without statistics it guesses an equality narrower than any range)
+        plus = "+" if sample is not None or sample_prefix else ""
         if sample is not None:
             where.append("sample_id = ?")
             args.append(sample)
+        if sample_prefix:  # '' matches every run, as str.startswith does
+            where.append("sample_id >= ?")
+            args.append(sample_prefix)
+            bound = prefix_bound(sample_prefix)
+            if bound is not None:
+                where.append("sample_id < ?")
+                args.append(bound)
         if status is not None:
             sts = [status] if isinstance(status, str) else list(status)
             bad = [s for s in sts if s not in STATUSES]
             if bad:
                 raise CatalogError(f"unknown status {bad[0]!r}")
-            where.append(f"status IN ({','.join('?' * len(sts))})")
+            where.append(f"{plus}status IN ({','.join('?' * len(sts))})")
             args.extend(sts)
+        if kind is not None:
+            where.append(f"{plus}kind = ?")
+            args.append(kind)
         if since is not None:
             where.append("created >= ?")
             args.append(_time_arg(since))
         if until is not None:
             where.append("created < ?")
             args.append(_time_arg(until))
-        sql = "SELECT * FROM runs"
+        if before is not None:
+            if not self._read("SELECT 1 FROM runs WHERE id = ?", (before,)):
+                raise CatalogError(f"no run {before!r} to page from")
+            where.append("(created, id) < (SELECT created, id FROM runs WHERE id = ?)")
+            args.append(before)
+        sql = f"SELECT {_RUN_COLUMNS} FROM runs"
         if where:
             sql += " WHERE " + " AND ".join(where)
-        sql += " ORDER BY created DESC, id DESC LIMIT ?"
-        args.append(int(limit))
-        return [RunRow(**dict(r)) for r in self._read(sql, args)]
+        order = " ORDER BY created DESC, id DESC"
+        sql += order
+        if limit is not None:
+            sql += " LIMIT ?"
+            args.append(int(limit))
+            if sample_prefix:
+                # the newest page of a prefix range is chosen on the (sample_id, created, id) index
+                # alone; only the rows kept are read from the table
+                sql = f"SELECT {_RUN_COLUMNS} FROM runs WHERE rowid IN ({sql.replace(_RUN_COLUMNS, 'rowid', 1)}){order}"
+        return [RunRow(*r) for r in self._read(sql, args)]
 
     def mark_interrupted_on_startup(self) -> list[str]:
         """Runs left 'running' by a dead daemon become 'interrupted'; nothing is resumed."""

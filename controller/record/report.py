@@ -347,9 +347,7 @@ def sample_set(catalog: Any, *, prefix: str | None = None, run_ids: Sequence[str
     if run_ids is not None:
         rows = [r for r in (catalog.get_run(i) for i in run_ids) if r is not None]
     else:
-        rows = catalog.list_runs(status="completed", limit=1_000_000)
-        if prefix:
-            rows = [r for r in rows if (r.sample_id or "").startswith(prefix)]
+        rows = catalog.list_runs(status="completed", kind="measure", sample_prefix=prefix or None, limit=None)
     groups: dict[str, SampleStats] = {}
     for r in sorted(rows, key=lambda r: r.created):
         if r.status != "completed" or r.kind != "measure":
