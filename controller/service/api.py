@@ -99,12 +99,12 @@ class Api:
                 seq = bus.last_seq
                 yield {"event": "status", "id": str(seq), "data": json.dumps(self.d.snapshot())}
             while True:
-                items, lost = bus.since(seq)
+                items, lost = bus.since_text(seq)  # each event serialised once, shared by every stream
                 if lost:
                     yield {"event": "lost", "data": json.dumps({"message": "some events were missed"})}
-                for s, kind, data in items:
+                for s, kind, text in items:
                     seq = s
-                    yield {"event": kind, "id": str(s), "data": json.dumps(data, default=str)}
+                    yield {"event": kind, "id": str(s), "data": text}
                 if await request.is_disconnected():
                     return
                 await asyncio.sleep(STREAM_POLL)
