@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import importlib.util
+import os
 import sys
 from collections.abc import Sequence
 
@@ -96,7 +97,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130
+    except Exception as exc:  # never a traceback to the user: one line, exit 3 (PYCNOCTL_DEBUG=1 shows it)
+        if os.environ.get("PYCNOCTL_DEBUG"):
+            raise
+        print(f"pycnoctl {args.verb}: failed: {type(exc).__name__}: {exc}", file=sys.stderr)
+        return 3
 
 
-if __name__ == "__main__":
-    sys.exit(main())
+if __name__ == "__main__":  # through the package module, so its UsageError is the one the verbs raise
+    from pycnoctl.controller.cli.main import main as package_main
+
+    sys.exit(package_main())
