@@ -237,3 +237,25 @@ def test_every_valve_is_tried_whatever_one_raises(bad):
     state = board.commanded()
     assert state["vent"] is True and state["large"] is True
     assert state["inlet"] is (bad == "inlet")  # only the broken one is left as it was
+
+
+def test_an_exception_on_every_idle_tick_latches_once_and_keeps_the_valves_safe():
+    from pycnoctl.controller.run.control import Controller
+
+    inst = simulated.build_sim_instrument()
+    truth = inst.extras["sim"]
+    events: list[tuple[str, dict[str, Any]]] = []
+    controller = Controller(inst)
+    controller.listeners.append(lambda kind, data: events.append((kind, data)))
+    inst.valves.set_valves({"vent": False})
+    inst.valves.set_valves({"inlet": True})  # someone left it filling
+    broken = WatchedSensor(inst.pressure, Watch(truth), inject=False)
+    broken.read = lambda: (_ for _ in ()).throw(ValueError("sensor driver bug"))  # type: ignore[method-assign]
+    inst.pressure = broken
+    for _ in range(20):
+        s = controller.tick()
+        assert not s.pressure.valid
+    assert truth.actual_valves()["inlet"] is False and truth.actual_valves()["vent"] is True
+    assert controller.monitor.latched is not None and controller.monitor.latched.kind == "exception"
+    assert [k for k, _ in events if k == "exception"] == ["exception"]
+    assert controller.repeated_failures == 19

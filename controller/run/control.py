@@ -55,6 +55,8 @@ class Controller:
         self._temp_due = -math.inf
         self._record_failed: str | None = None
         self.stage = "idle"  # the part of the tick running now, for the record of an exception
+        self._last_failure: str | None = None
+        self.repeated_failures = 0  # the same exception again while latched: not recorded again
         instrument.safe_state()
 
     # ----- events -----------------------------------------------------------------------------
@@ -175,6 +177,11 @@ class Controller:
         """The one path from an unexpected exception: safe state first (through the interlock, which
         latches), then the exception into the run's events, then the run ended as a fault."""
         message = f"{type(exc).__name__} in {where}: {exc}"
+        if self.monitor.latched is not None and message == self._last_failure:
+            self.repeated_failures += 1  # the same fault every tick (idle, latched): act, but say it once
+            self.instrument.safe_state()
+            return
+        self._last_failure = message
         log.error("unhandled %s", message)
         try:
             self.monitor.trip_external("exception", t, message)  # acts (safe state), records, latches
