@@ -110,3 +110,12 @@ def test_analyze_reads_without_the_lock_but_saves_only_with_it(tmp_path, capsys)
         assert not (data / "runs" / row.id / "reanalysis.json").exists()
     assert main(["analyze", row.id, "--data", str(data), "--save"]) == 0
     assert (data / "runs" / row.id / "reanalysis.json").exists()
+
+
+def test_a_lock_that_cannot_be_taken_is_refused_in_one_line(tmp_path, capsys):
+    data = tmp_path / "data"
+    (data / LOCK_NAME).mkdir(parents=True)  # the lock file cannot be opened (as read-only media would)
+    assert main(["run", "quick-demo", "--sim", "--quiet", "--data", str(data)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "cannot lock the data folder" in err[0]
+    assert not (data / "catalog.sqlite").exists()  # nothing written, no device opened

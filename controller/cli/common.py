@@ -73,6 +73,8 @@ def lock_data_folder(root: Path, verb: str, *, mark_interrupted: bool = True) ->
         lock = acquire(root, f"pycnoctl {verb}")
     except DataFolderBusy as exc:
         raise UsageError(str(exc)) from None
+    except OSError as exc:  # read-only media, no permission: a writer cannot work here
+        raise UsageError(f"cannot lock the data folder {root}: {exc.strerror or exc}") from None
     catalog_path = root / "catalog.sqlite"
     if mark_interrupted and catalog_path.exists():  # the daemon marks them itself (and pauses its queue)
         prev = lock.stale or {}

@@ -1,7 +1,8 @@
 """``pycnoctl run``: one measurement, with a live terminal view and a stored record.
 
-Exit codes: 0 completed, 2 bad input, 3 fault (an interlock or a sequence failure), 4 aborted,
-5 a leak check that found a leak.
+Exit codes: 0 completed, 2 bad input (or the data folder held by another writer), 3 fault (an
+interlock, a sequence failure or an unexpected error: one line on stderr, details in the run's
+events), 4 aborted, 5 a leak check that found a leak.
 Ctrl-C aborts into the safe state; the record up to that moment is kept.
 """
 
