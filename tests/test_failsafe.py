@@ -259,3 +259,49 @@ def test_an_exception_on_every_idle_tick_latches_once_and_keeps_the_valves_safe(
     assert controller.monitor.latched is not None and controller.monitor.latched.kind == "exception"
     assert [k for k, _ in events if k == "exception"] == ["exception"]
     assert controller.repeated_failures == 19
+
+
+def test_a_failure_while_storing_the_run_closes_the_row_as_a_fault_and_the_cli_says_so_in_one_line(
+        tmp_path, capsys, monkeypatch):
+    def broken(self: Catalog, *a: Any, **kw: Any) -> None:
+        raise RuntimeError("catalog bug")
+
+    monkeypatch.setattr(Catalog, "add_cycles", broken)
+    rc = main(["run", "quick-demo", "--sim", "--quiet", "--data", str(tmp_path)])
+    out = capsys.readouterr()
+    assert rc == 3
+    lines = [ln for ln in out.err.splitlines() if ln.strip()]
+    assert len(lines) == 1 and "RuntimeError while storing the run: catalog bug" in lines[0], out.err
+    assert "Traceback" not in out.err + out.out
+    with Catalog(tmp_path / "catalog.sqlite") as cat:
+        (row,) = cat.list_runs()
+    assert row.status == "fault" and "catalog bug" in (row.message or "")
+    events = [json.loads(x) for x in (tmp_path / "runs" / row.id / "events.jsonl").read_text().splitlines()]
+    assert any(e["kind"] == "exception" and e["where"] == "bookkeeping" for e in events)
+
+
+def test_an_exception_from_the_run_loop_itself_takes_the_same_path(tmp_path):
+    from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+    from pycnoctl.controller.run.control import Controller
+
+    inst = simulated.build_sim_instrument()
+    truth = inst.extras["sim"]
+    calls = {"n": 0}
+
+    def should_stop() -> bool:
+        calls["n"] += 1
+        if truth.actual_valves()["inlet"] and truth.gauge_pressure("cell") > 0.3e5:
+            raise KeyError("stop check bug")
+        return False
+
+    with Catalog(tmp_path / "catalog.sqlite") as cat:
+        prepared = prepare(RunRequest("quick-demo"), inst, cat)
+        summary = execute(prepared, Controller(inst), root=tmp_path / "runs", catalog=cat, should_stop=should_stop)
+        row = cat.get_run(summary["run_id"])
+    v = truth.actual_valves()
+    assert v["inlet"] is False and v["vent"] is True
+    assert summary["status"] == "fault" and summary["fault"]["kind"] == "exception"
+    assert row is not None and row.status == "fault" and "KeyError in run loop" in (row.message or "")
+    events = [json.loads(x) for x in (tmp_path / "runs" / row.id / "events.jsonl").read_text().splitlines()]
+    assert any(e["kind"] == "exception" and e["where"] == "run loop" for e in events)
+    inst.close()

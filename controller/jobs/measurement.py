@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import json
 import math
 import os
 import time
@@ -288,11 +289,26 @@ def _close_after_bookkeeping_error(catalog: Catalog, recorder: RunRecorder, run_
     message = f"{type(exc).__name__} while storing the run: {exc}"
     if engine.state == "fault":
         message = f"{engine.fault_kind}: {engine.reason}; then {message}"
-    for step in (lambda: recorder.event("exception", None, message, type=type(exc).__name__, where="bookkeeping"),
+    for step in (lambda: _note_after_close(recorder, message, type(exc).__name__),
                  recorder.close,
                  lambda: catalog.finish_run(run_id, "fault", message=message)):
         with contextlib.suppress(Exception):  # each step on its own: one failing must not keep the row open
             step()
+
+
+def _note_after_close(recorder: RunRecorder, message: str, kind: str) -> None:
+    """The exception into events.jsonl, even if the recorder was closed already (one appended line)."""
+    try:
+        recorder.event("exception", None, message, type=kind, where="bookkeeping")
+        return
+    except Exception:  # closed or broken: append the line directly
+        pass
+    line = json.dumps({"kind": "exception", "t": None, "wall": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+                       "message": message, "type": kind, "where": "bookkeeping"})
+    with open(recorder.events_path, "a", encoding="utf-8") as fh:
+        fh.write(line + "\n")
+        fh.flush()
+        os.fsync(fh.fileno())
 
 
 def _cycle_record(c: dict[str, Any]) -> dict[str, Any]:
