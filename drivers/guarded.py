@@ -10,15 +10,21 @@ the end.  Where the board reports its relays, the read-back is compared with the
 from __future__ import annotations
 
 import logging
+import threading
+import time
 from collections.abc import Iterable, Mapping
 from typing import Any
 
-from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, ForbiddenValveState, ValveBank
+from pycnoctl.controller.domain.devices import DeviceError, ForbiddenValveState, ValveBank
 from pycnoctl.controller.domain.gaspath import ValveRoles
 
 log = logging.getLogger(__name__)
 
 DEFAULT_FORBIDDEN: tuple[frozenset[str], ...] = (frozenset({"inlet", "vent"}),)
+
+#: Seconds the whole safe-state attempt may take: a silent board must not stall the loop for one
+#: time-out per valve.  Commands still pending at the deadline go on in the background.
+SAFE_STATE_DEADLINE = 1.0
 
 
 def forbidden_for_roles(roles: ValveRoles) -> tuple[frozenset[str], ...]:
@@ -53,6 +59,7 @@ class GuardedValveBank:
         self.forbidden: tuple[frozenset[str], ...] = combos
         self.roles = roles
         self.verify = verify
+        self.safe_deadline = SAFE_STATE_DEADLINE
 
     @property
     def valve_names(self) -> tuple[str, ...]:
@@ -79,7 +86,7 @@ class GuardedValveBank:
     def set_valves(self, states: Mapping[str, bool]) -> None:
         target = self.check(states)
         if self.roles is not None and dict(states) == self.roles.safe_state():
-            self._apply_best_effort(_safe_order(states, self.roles))
+            self._apply_best_effort(safe_order(states, self.roles))
         else:
             closes = {k: False for k, v in states.items() if not v}
             opens = {k: True for k, v in states.items() if v}
@@ -91,20 +98,13 @@ class GuardedValveBank:
             self._verify(target)
 
     def _apply_best_effort(self, steps: list[tuple[str, bool]]) -> None:
-        """Try every step even if one fails (a busy board may still take the vent), then raise."""
-        errors: list[DeviceError] = []
-        for name, is_open in steps:
-            try:
-                self.inner.set_valves({name: is_open})
-            except DeviceError as exc:
-                log.error("safe state: %s -> %s failed: %s", name, "open" if is_open else "closed", exc)
-                errors.append(exc)
-                if isinstance(exc, DeviceDisconnected):
-                    break  # the board is gone; further commands would only time out
-        if errors:
-            first = errors[0]
-            message = f"safe state incomplete ({len(errors)} command(s) failed): {first}"
-            raise DeviceError(first.device, message, first.command, first.reply)
+        """Try every step whatever each raises (a busy board may still take the vent), then raise."""
+        failures = apply_steps(self.inner, steps, self.safe_deadline)
+        if failures:
+            detail = "; ".join(f"{name} -> {'open' if is_open else 'closed'}: {why}"
+                               for name, is_open, why in failures)
+            message = f"safe state incomplete ({len(failures)} of {len(steps)} command(s) failed): {detail}"
+            raise DeviceError(getattr(self.inner, "name", "valves"), message)
 
     def _verify(self, target: Mapping[str, bool]) -> None:
         seen = self.inner.read_back()
@@ -144,23 +144,63 @@ def safe_state(bank: ValveBank, roles: ValveRoles) -> dict[str, bool]:
     target = roles.safe_state()
     if isinstance(bank, GuardedValveBank):
         bank.check(target)
-        bank._apply_best_effort(_safe_order(target, roles))
+        bank._apply_best_effort(safe_order(target, roles))
         if bank.verify:
             bank._verify({**bank.commanded(), **target})
     else:
-        errors: list[DeviceError] = []
-        for name, is_open in _safe_order(target, roles):
-            try:
-                bank.set_valves({name: is_open})
-            except DeviceError as exc:
-                errors.append(exc)
-        if errors:
-            raise errors[0]
+        failures = apply_steps(bank, safe_order(target, roles), SAFE_STATE_DEADLINE)
+        if failures:
+            raise DeviceError(getattr(bank, "name", "valves"), f"safe state incomplete: {failures[0][2]}")
     seen = bank.read_back()
     return seen if seen is not None else bank.commanded()
 
 
-def _safe_order(states: Mapping[str, bool], roles: ValveRoles) -> list[tuple[str, bool]]:
+_pending: dict[int, threading.Thread] = {}  # id(bank) -> its latest safe-state worker
+_pending_lock = threading.Lock()
+
+
+def apply_steps(bank: ValveBank, steps: list[tuple[str, bool]], deadline: float) -> list[tuple[str, bool, str]]:
+    """Send each (valve, open) step in order, trying every one whatever the one before raised.
+
+    The steps run in a worker thread and the caller waits at most ``deadline`` seconds for all of
+    them (not per command): a silent board costs one deadline, not one time-out per valve.  Steps
+    the worker has not finished by then are reported as failed and still go on in the background.
+    Returns (valve, open, why) for every step that failed or did not finish in time.
+    """
+    outcome: list[str | None] = ["not attempted before the deadline"] * len(steps)
+    t0 = time.monotonic()
+    with _pending_lock:
+        busy = _pending.get(id(bank))
+    if busy is not None and busy.is_alive():  # an earlier attempt still waits on this board: no pile-up
+        busy.join(deadline)
+        if busy.is_alive():
+            return [(name, is_open, "an earlier safe-state attempt is still waiting for the board")
+                    for name, is_open in steps]
+
+    def work() -> None:
+        for i, (name, is_open) in enumerate(steps):
+            outcome[i] = "still waiting for the board at the deadline"
+            try:
+                bank.set_valves({name: is_open})
+            except Exception as exc:  # any failure: log it and go on to the next valve
+                log.error("safe state: %s -> %s failed: %s: %s", name, "open" if is_open else "closed",
+                          type(exc).__name__, exc)
+                outcome[i] = f"{type(exc).__name__}: {exc}"
+            else:
+                outcome[i] = None
+
+    worker = threading.Thread(target=work, name="safe-state", daemon=True)
+    with _pending_lock:
+        _pending[id(bank)] = worker
+    worker.start()
+    worker.join(max(deadline - (time.monotonic() - t0), 0.0))
+    if worker.is_alive():
+        log.error("safe state: board did not take every command within %.3g s", time.monotonic() - t0)
+    return [(name, is_open, why) for (name, is_open), why in zip(steps, list(outcome), strict=True)
+            if why is not None]
+
+
+def safe_order(states: Mapping[str, bool], roles: ValveRoles) -> list[tuple[str, bool]]:
     """Inlet closed first, then the vent opened, then the rest."""
     first = [roles.inlet, roles.vent]
     order = [k for k in first if k in states] + [k for k in states if k not in first]

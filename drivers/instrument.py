@@ -12,6 +12,7 @@ from dataclasses import dataclass, field
 from pycnoctl.controller.domain.clock import Clock
 from pycnoctl.controller.domain.devices import Barometer, DeviceError, PressureSensor, Thermometer, ValveBank
 from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
+from pycnoctl.drivers.guarded import SAFE_STATE_DEADLINE, GuardedValveBank, apply_steps, safe_order
 
 log = logging.getLogger(__name__)
 
@@ -36,14 +37,26 @@ class Instrument:
     ambient_nominal: float = 101325.0  # Pa, used when no barometer serves
     gas: str = "helium"  # the gas the instrument is plumbed for
     extras: dict[str, object] = field(default_factory=dict)  # e.g. the simulator behind the drivers
+    safe_state_error: str | None = None  # why the last safe-state attempt was not confirmed
 
     def safe_state(self) -> bool:
-        """Assert the safe state; idempotent. Returns False if the board would not take it."""
+        """Assert the safe state; idempotent, never raises. Returns False if it was not confirmed.
+
+        Inlet closed first, then every path to vent opened, each valve tried whatever the one before
+        raised, within one deadline for the whole attempt (drivers.guarded.apply_steps)."""
         try:
-            self.valves.set_valves(self.roles.safe_state())
-        except DeviceError as exc:
-            log.error("safe state not confirmed: %s", exc)
+            if isinstance(self.valves, GuardedValveBank):
+                self.valves.set_valves(self.roles.safe_state())
+            else:
+                failures = apply_steps(self.valves, safe_order(self.roles.safe_state(), self.roles),
+                                       SAFE_STATE_DEADLINE)
+                if failures:
+                    raise DeviceError("valves", f"safe state incomplete: {failures[0][2]}")
+        except Exception as exc:  # whatever the board or the guard raised, the caller gets False
+            log.error("safe state not confirmed: %s: %s", type(exc).__name__, exc)
+            self.safe_state_error = f"{type(exc).__name__}: {exc}"
             return False
+        self.safe_state_error = None
         return True
 
     def reconnect(self) -> dict[str, str | None]:
@@ -58,7 +71,7 @@ class Instrument:
             try:
                 fn()
                 result[role] = None
-            except DeviceError as exc:
+            except Exception as exc:  # a reset reports every device; one failing must not hide the rest
                 result[role] = str(exc)
         result["safe_state"] = None if self.safe_state() else "safe state not confirmed"
         return result

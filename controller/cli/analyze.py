@@ -13,7 +13,7 @@ import json
 import math
 from typing import Any
 
-from pycnoctl.controller.cli.common import add_data_arg, resolve_run_folder
+from pycnoctl.controller.cli.common import add_data_arg, lock_data_folder, resolve_run_folder
 from pycnoctl.controller.cli.main import UsageError
 
 
@@ -102,8 +102,14 @@ def main(args: argparse.Namespace) -> int:
         rho, u_rho = density(res.volume_m3, res.u_volume_m3, mass * 1e-3, 0.0)
         out["density_g_cm3"], out["density_u_g_cm3"] = rho / 1e3, res.k * u_rho / 1e3
     out = jsonable(out)
-    if args.save:
-        (folder / "reanalysis.json").write_text(json.dumps(out, indent=2) + "\n", encoding="utf-8")
+    if args.save:  # a write into a data folder: only with its writer lock (refused while another writer lives)
+        owner = folder.parent.parent if folder.parent.name == "runs" else None
+        lock = lock_data_folder(owner, "analyze --save", mark_interrupted=False) if owner is not None else None
+        try:
+            (folder / "reanalysis.json").write_text(json.dumps(out, indent=2) + "\n", encoding="utf-8")
+        finally:
+            if lock is not None:
+                lock.release()
     if args.json:
         print(json.dumps(out, indent=2))
         return 0

@@ -15,7 +15,7 @@ import json
 import sys
 from typing import Any
 
-from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args
+from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, lock_data_folder
 from pycnoctl.controller.cli.main import UsageError
 
 EXIT = {"stored": 0, "fault": 3, "aborted": 4, "refused": 6}
@@ -42,17 +42,8 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 
 
 def main(args: argparse.Namespace) -> int:
-    from pycnoctl.controller.cli.common import open_instrument
-    from pycnoctl.controller.jobs.calibration import (
-        CalibrationError,
-        OperatorCellLoader,
-        SimCellLoader,
-        calibrate,
-        parse_sphere,
-    )
+    from pycnoctl.controller.jobs.calibration import parse_sphere
     from pycnoctl.controller.jobs.measurement import data_dir
-    from pycnoctl.controller.record.catalog import Catalog
-    from pycnoctl.controller.run.sequence import SequenceNotFound
 
     try:
         spheres = [parse_sphere(s, f"sphere {i}") for i, s in enumerate(args.sphere, 1)]
@@ -61,6 +52,25 @@ def main(args: argparse.Namespace) -> int:
     if not 0.0 < args.alpha < 0.5:
         raise UsageError("--alpha must lie between 0 and 0.5")
     say = (lambda text: None) if args.json else (lambda text: print(text, file=sys.stderr))
+    lock = lock_data_folder(data_dir(args.data), "calibrate")  # before any device is opened
+    try:
+        return _calibrate(args, spheres, say)
+    finally:
+        lock.release()
+
+
+def _calibrate(args: argparse.Namespace, spheres: list[Any], say: Any) -> int:
+    from pycnoctl.controller.cli.common import open_instrument
+    from pycnoctl.controller.jobs.calibration import (
+        CalibrationError,
+        OperatorCellLoader,
+        SimCellLoader,
+        calibrate,
+    )
+    from pycnoctl.controller.jobs.measurement import data_dir
+    from pycnoctl.controller.record.catalog import Catalog
+    from pycnoctl.controller.run.sequence import SequenceNotFound
+
     instrument = None
     if args.sim is not None and not args.instrument:
         loader: Any = SimCellLoader(args.sim or None, announce=say)

@@ -3,9 +3,13 @@
 from __future__ import annotations
 
 import argparse
+import logging
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 from pycnoctl.controller.cli.main import UsageError
+from pycnoctl.controller.record.datalock import DataFolderBusy, DataLock, acquire
 from pycnoctl.drivers.instrument import Instrument
 
 
@@ -35,6 +39,52 @@ def add_sample_args(p: argparse.ArgumentParser, *, u_mass_default: str | None) -
 def add_data_arg(p: argparse.ArgumentParser) -> None:
     p.add_argument("--data", metavar="DIR",
                    help="folder for run records and the catalog (default $PYCNOCTL_DATA or ./pycnoctl-data)")
+
+
+@contextmanager
+def held_log_lines(level: int = logging.WARNING) -> Iterator[list[str]]:
+    """Hold what pycnoctl logs (one line each, no tracebacks) so the verb decides what the user sees:
+    the run's events already keep every detail, a fault is told in one line."""
+    lines: list[str] = []
+
+    class _Hold(logging.Handler):
+        def emit(self, record: logging.LogRecord) -> None:
+            lines.append(record.getMessage().splitlines()[0] if record.getMessage() else "")
+
+    handler = _Hold(level)
+    logger = logging.getLogger("pycnoctl")
+    logger.addHandler(handler)
+    try:
+        yield lines
+    finally:
+        logger.removeHandler(handler)
+
+
+def lock_data_folder(root: Path, verb: str, *, mark_interrupted: bool = True) -> DataLock:
+    """Take the data folder's writer lock before any device is opened; a live owner -> exit 2, one line.
+
+    With the lock held no other writer is alive, so every run still 'running' in the catalog was left
+    by a killed process: it is marked interrupted (never resumed) and one line says so."""
+    import sys
+
+    from pycnoctl.controller.record.catalog import Catalog
+
+    try:
+        lock = acquire(root, f"pycnoctl {verb}")
+    except DataFolderBusy as exc:
+        raise UsageError(str(exc)) from None
+    except OSError as exc:  # read-only media, no permission: a writer cannot work here
+        raise UsageError(f"cannot lock the data folder {root}: {exc.strerror or exc}") from None
+    catalog_path = root / "catalog.sqlite"
+    if mark_interrupted and catalog_path.exists():  # the daemon marks them itself (and pauses its queue)
+        prev = lock.stale or {}
+        who = f"pid {prev.get('pid', '?')}, {prev.get('command', 'an earlier writer')}" if prev else "an earlier writer"
+        with Catalog(catalog_path) as catalog:
+            ids = catalog.mark_interrupted_on_startup(f"{who} stopped while running; not resumed")
+        if ids:
+            print(f"pycnoctl {verb}: run {', '.join(ids)} was left running by {who}; marked interrupted",
+                  file=sys.stderr)
+    return lock
 
 
 def open_instrument(args: argparse.Namespace, *, default_sim: bool = False) -> Instrument:

@@ -12,6 +12,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import importlib.util
+import os
 import sys
 from collections.abc import Sequence
 
@@ -117,12 +118,18 @@ def main(argv: Sequence[str] | None = None) -> int:
         # problems in an input file: one positioned line each.  yamlio is not imported up front (it
         # pulls in YAML and pydantic); an exception can only be its ConfigError if it was loaded.
         yamlio = sys.modules.get("pycnoctl.controller.domain.yamlio")
-        if yamlio is None or not isinstance(exc, yamlio.ConfigError):
+        if yamlio is not None and isinstance(exc, yamlio.ConfigError):
+            for problem in exc.problems:
+                print(problem, file=sys.stderr)
+            return 2
+        # never a traceback to the user: one line, exit 3 (PYCNOCTL_DEBUG=1 shows it)
+        if os.environ.get("PYCNOCTL_DEBUG"):
             raise
-        for problem in exc.problems:
-            print(problem, file=sys.stderr)
-        return 2
+        print(f"pycnoctl {args.verb}: failed: {type(exc).__name__}: {exc}", file=sys.stderr)
+        return 3
 
 
-if __name__ == "__main__":
-    sys.exit(main())
+if __name__ == "__main__":  # through the package module, so its UsageError is the one the verbs raise
+    from pycnoctl.controller.cli.main import main as package_main
+
+    sys.exit(package_main())

@@ -1,7 +1,8 @@
 """``pycnoctl run``: one measurement, with a live terminal view and a stored record.
 
-Exit codes: 0 completed, 2 bad input, 3 fault (an interlock or a sequence failure), 4 aborted,
-5 a leak check that found a leak.
+Exit codes: 0 completed, 2 bad input (or the data folder held by another writer), 3 fault (an
+interlock, a sequence failure or an unexpected error: one line on stderr, details in the run's
+events), 4 aborted, 5 a leak check that found a leak.
 Ctrl-C aborts into the safe state; the record up to that moment is kept.
 """
 
@@ -14,7 +15,14 @@ import sys
 import time
 from typing import Any
 
-from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, add_sample_args, open_instrument
+from pycnoctl.controller.cli.common import (
+    add_data_arg,
+    add_instrument_args,
+    add_sample_args,
+    held_log_lines,
+    lock_data_folder,
+    open_instrument,
+)
 from pycnoctl.controller.cli.main import UsageError
 
 EXIT = {"completed": 0, "fault": 3, "aborted": 4, "interrupted": 4}
@@ -49,16 +57,25 @@ def request_from_args(args: argparse.Namespace) -> Any:
 
 
 def main(args: argparse.Namespace) -> int:
-    from pycnoctl.controller.jobs.measurement import data_dir, execute, prepare
+    from pycnoctl.controller.jobs.measurement import data_dir
+
+    request = request_from_args(args)
+    root = data_dir(args.data)
+    lock = lock_data_folder(root, "run")  # before any device is opened: a second writer touches nothing
+    try:
+        return _run(args, request, root)
+    finally:
+        lock.release()
+
+
+def _run(args: argparse.Namespace, request: Any, root: Any) -> int:
+    from pycnoctl.controller.jobs.measurement import execute, prepare
     from pycnoctl.controller.record.catalog import Catalog
     from pycnoctl.controller.run.control import Controller
     from pycnoctl.controller.run.sequence import SequenceNotFound
 
-    request = request_from_args(args)
     instrument = open_instrument(args)
     try:
-        root = data_dir(args.data)
-        root.mkdir(parents=True, exist_ok=True)
         catalog = Catalog(root / "catalog.sqlite")
         try:
             prepared = prepare(request, instrument, catalog)
@@ -79,8 +96,9 @@ def main(args: argparse.Namespace) -> int:
         try:
             if view is not None:
                 view.start()
-            summary = execute(prepared, controller, root=root / "runs", catalog=catalog,
-                              should_stop=lambda: stop["flag"])
+            with held_log_lines() as logged:
+                summary = execute(prepared, controller, root=root / "runs", catalog=catalog,
+                                  should_stop=lambda: stop["flag"])
         finally:
             signal.signal(signal.SIGINT, old)
             if view is not None:
@@ -92,6 +110,13 @@ def main(args: argparse.Namespace) -> int:
         print(json.dumps(summary, indent=2))
     else:
         print_summary(summary, root / "runs" / summary["run_id"])
+    if summary["status"] == "fault":  # one line on stderr; the details are in the run's events
+        fault = summary.get("fault") or {}
+        print(f"pycnoctl run: run {summary['run_id']} ended in a fault ({fault.get('kind')}): "
+              f"{fault.get('message')}; record {root / 'runs' / summary['run_id']}", file=sys.stderr)
+    else:
+        for line in dict.fromkeys(logged):
+            print(f"pycnoctl run: {line}", file=sys.stderr)
     if summary["status"] == "completed" and summary.get("leak_ok") is False:
         return 5
     return EXIT.get(summary["status"], 3)

@@ -18,7 +18,7 @@ import threading
 import time
 from typing import Any
 
-from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, open_instrument
+from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, lock_data_folder, open_instrument
 from pycnoctl.controller.cli.main import UsageError
 
 DEFAULT_PORT = 8765
@@ -38,11 +38,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 
 
 def main(args: argparse.Namespace) -> int:
-    import uvicorn
-
     from pycnoctl.controller.jobs.measurement import data_dir
-    from pycnoctl.controller.service.api import create_app
-    from pycnoctl.controller.service.daemon import Daemon, attach_json_log, sd_notify
     from pycnoctl.controller.service.security import Policy, TokenError, load_token
 
     if not (args.speed > 0) or args.speed > 1000:
@@ -54,7 +50,19 @@ def main(args: argparse.Namespace) -> int:
     except TokenError as exc:
         raise UsageError(str(exc)) from None
     root = data_dir(args.data)
-    root.mkdir(parents=True, exist_ok=True)
+    lock = lock_data_folder(root, "serve", mark_interrupted=False)  # the daemon marks them and pauses
+    try:
+        return _serve(args, root, policy)
+    finally:
+        lock.release()
+
+
+def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
+    import uvicorn
+
+    from pycnoctl.controller.service.api import create_app
+    from pycnoctl.controller.service.daemon import Daemon, attach_json_log, sd_notify
+
     handler = attach_json_log(root / "daemon.log.jsonl")
     if args.sim is not None:
         from pycnoctl.drivers.simulated import build_sim_instrument

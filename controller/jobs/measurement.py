@@ -6,7 +6,9 @@ controller to the end of the run and writes the record, the summary and the cata
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
+import json
 import math
 import os
 import time
@@ -216,41 +218,97 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
     try:
         controller.start(engine, recorder)
         controller.run_until_done(should_stop, max_duration)
+    except Exception as exc:  # outside a tick (the stop check, the clock): the same guarded path
+        _fail_outside_tick(controller, engine, recorder, exc)
     finally:
-        if not engine.terminal:  # an exception escaped the loop: safe state, then keep what we have
+        if not engine.terminal:  # KeyboardInterrupt and the like: safe state, then keep what we have
             inst.safe_state()
             engine.request_abort("controller stopped", inst.clock.now())
         controller.engine = None
         controller.recorder = None
-        summary = summarize(run_id, prepared, engine, inst, started=started, ended=time.time(),
-                            t0=t0, t1=inst.clock.now())
         try:
-            if cal_use is not None:
-                late = cal_use.after_run(summary)
-                for w in late:
-                    recorder.event("warning", inst.clock.now(), w)
-                summary["warnings"].extend(late)
-                summary["calibration"]["record"] = jsonable(cal_use.describe())
-            recorder.write_cycles([_cycle_record(c) for c in summary["cycles"]])
-            recorder.write_summary(
-                sequence=summary["sequence"], sequence_text=seq.raw_text or "",
-                instrument=summary["instrument"], calibration=summary["calibration"],
-                results={k: v for k, v in summary.items()
-                         if k not in ("sequence", "instrument", "calibration")},
-            )
-        except RecordWriteError as exc:
-            summary["warnings"].append(f"record incomplete: {exc}")
-        finally:
-            recorder.close()
-        catalog.add_cycles(run_id, [(c["index"], c["p1_gauge_pa"], c["p2_gauge_pa"], c["volume_m3"], c["kept"])
-                                    for c in summary["cycles"]])
-        catalog.finish_run(run_id, summary["status"], volume_m3=_m3(summary["volume_cm3"]),
-                           u_volume_m3=_m3(summary["volume_u_cm3"]),
-                           density=summary["density_g_cm3"] * 1e3 if summary["density_g_cm3"] else None,
-                           mass=req.mass,
-                           message=(summary["fault"] or {}).get("message") or summary["abort_reason"] or None,
-                           calibration_id=summary["calibration"].get("record_id"))
+            summary = summarize(run_id, prepared, engine, inst, started=started, ended=time.time(),
+                                t0=t0, t1=inst.clock.now())
+            try:
+                if cal_use is not None:
+                    late = cal_use.after_run(summary)
+                    for w in late:
+                        recorder.event("warning", inst.clock.now(), w)
+                    summary["warnings"].extend(late)
+                    summary["calibration"]["record"] = jsonable(cal_use.describe())
+                recorder.write_cycles([_cycle_record(c) for c in summary["cycles"]])
+                recorder.write_summary(
+                    sequence=summary["sequence"], sequence_text=seq.raw_text or "",
+                    instrument=summary["instrument"], calibration=summary["calibration"],
+                    results={k: v for k, v in summary.items()
+                             if k not in ("sequence", "instrument", "calibration")},
+                )
+            except RecordWriteError as exc:
+                summary["warnings"].append(f"record incomplete: {exc}")
+            finally:
+                recorder.close()
+            catalog.add_cycles(run_id, [(c["index"], c["p1_gauge_pa"], c["p2_gauge_pa"], c["volume_m3"], c["kept"])
+                                        for c in summary["cycles"]])
+            catalog.finish_run(run_id, summary["status"], volume_m3=_m3(summary["volume_cm3"]),
+                               u_volume_m3=_m3(summary["volume_u_cm3"]),
+                               density=summary["density_g_cm3"] * 1e3 if summary["density_g_cm3"] else None,
+                               mass=req.mass,
+                               message=(summary["fault"] or {}).get("message") or summary["abort_reason"] or None,
+                               calibration_id=summary["calibration"].get("record_id"))
+        except Exception as exc:  # bookkeeping failed: the row must not stay 'running'; say what was lost
+            _close_after_bookkeeping_error(catalog, recorder, run_id, engine, exc)
+            raise RunFault(run_id, f"run {run_id}: {type(exc).__name__} while storing the run: {exc}; "
+                                   "the instrument is in the safe state, the record may be incomplete") from exc
     return summary
+
+
+class RunFault(Exception):
+    """A run that could not be brought to a stored end; its catalog row is closed as a fault."""
+
+    def __init__(self, run_id: str, message: str) -> None:
+        super().__init__(message)
+        self.run_id = run_id
+
+
+def _fail_outside_tick(controller: Controller, engine: RunEngine, recorder: RunRecorder, exc: Exception) -> None:
+    """An exception from the run loop itself (not a tick): safe state, the record, the run a fault."""
+    t = controller.last.t if controller.last is not None else math.nan
+    if controller.engine is engine:
+        controller.fail(exc, "run loop", t)
+        return
+    controller.instrument.safe_state()  # the run never began (refused at start): still say why
+    message = f"{type(exc).__name__} in run start: {exc}"
+    with contextlib.suppress(Exception):  # the catalog row still says it
+        recorder.event("exception", t, message, type=type(exc).__name__, where="run start")
+    engine.to_fault("exception", message, t)
+
+
+def _close_after_bookkeeping_error(catalog: Catalog, recorder: RunRecorder, run_id: str, engine: RunEngine,
+                                   exc: Exception) -> None:
+    """Best effort: note the failure in the record, close the recorder, close the catalog row as a fault."""
+    message = f"{type(exc).__name__} while storing the run: {exc}"
+    if engine.state == "fault":
+        message = f"{engine.fault_kind}: {engine.reason}; then {message}"
+    for step in (lambda: _note_after_close(recorder, message, type(exc).__name__),
+                 recorder.close,
+                 lambda: catalog.finish_run(run_id, "fault", message=message)):
+        with contextlib.suppress(Exception):  # each step on its own: one failing must not keep the row open
+            step()
+
+
+def _note_after_close(recorder: RunRecorder, message: str, kind: str) -> None:
+    """The exception into events.jsonl, even if the recorder was closed already (one appended line)."""
+    try:
+        recorder.event("exception", None, message, type=kind, where="bookkeeping")
+        return
+    except Exception:  # closed or broken: append the line directly
+        pass
+    line = json.dumps({"kind": "exception", "t": None, "wall": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+                       "message": message, "type": kind, "where": "bookkeeping"})
+    with open(recorder.events_path, "a", encoding="utf-8") as fh:
+        fh.write(line + "\n")
+        fh.flush()
+        os.fsync(fh.fileno())
 
 
 def _cycle_record(c: dict[str, Any]) -> dict[str, Any]:

@@ -502,15 +502,15 @@ class Catalog:
                 sql = f"SELECT {_RUN_COLUMNS} FROM runs WHERE rowid IN ({sql.replace(_RUN_COLUMNS, 'rowid', 1)}){order}"
         return [RunRow(*r) for r in self._read(sql, args)]
 
-    def mark_interrupted_on_startup(self) -> list[str]:
+    def mark_interrupted_on_startup(self, message: str = "daemon stopped while running; not resumed") -> list[str]:
         """Runs left 'running' by a dead daemon become 'interrupted'; nothing is resumed."""
         now = _utc()
         with self._write() as con:
             ids = [r[0] for r in con.execute("SELECT id FROM runs WHERE status = 'running' ORDER BY created")]
             con.execute(
                 "UPDATE runs SET status = 'interrupted', ended = COALESCE(ended, ?),"
-                " message = 'daemon stopped while running; not resumed' WHERE status = 'running'",
-                (now,),
+                " message = ? WHERE status = 'running'",
+                (now, message),
             )
         return ids
 

@@ -7,12 +7,14 @@ on the simulator a whole run executes far faster than real time, on hardware it 
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import math
+import traceback
 from collections.abc import Callable
 from typing import Any, Protocol
 
-from pycnoctl.controller.domain.devices import DeviceError, ForbiddenValveState, Reading
+from pycnoctl.controller.domain.devices import DeviceError, ForbiddenValveState, Reading, Validity
 from pycnoctl.controller.run.engine import RunEngine, Sample, SequenceFault
 from pycnoctl.controller.run.interlocks import InterlockMonitor, Observation, Trip
 from pycnoctl.drivers.instrument import Instrument
@@ -52,6 +54,9 @@ class Controller:
         self._temp: Reading | None = None
         self._temp_due = -math.inf
         self._record_failed: str | None = None
+        self.stage = "idle"  # the part of the tick running now, for the record of an exception
+        self._last_failure: str | None = None
+        self.repeated_failures = 0  # the same exception again while latched: not recorded again
         instrument.safe_state()
 
     # ----- events -----------------------------------------------------------------------------
@@ -63,7 +68,7 @@ class Controller:
             rest = {k: v for k, v in data.items() if k not in ("t", "message")}
             try:
                 self.recorder.event(kind, data.get("t"), str(data.get("message", "")), **rest)
-            except OSError as exc:
+            except Exception as exc:  # a record that cannot be written ends the run (write_error)
                 log.error("event %s not recorded: %s", kind, exc)
                 self._record_failed = str(exc)
         for listener in list(self.listeners):
@@ -117,18 +122,37 @@ class Controller:
         return f"relays disagree with their commands: {', '.join(wrong)}" if wrong else None
 
     def tick(self) -> Sample:
-        """One sample through the whole path: sensors -> interlocks -> record -> sequence."""
+        """One sample through the whole path: sensors -> interlocks -> record -> sequence.
+
+        Any exception on the way ends in fail(): safe state, the exception in the record, the run
+        ended as a fault.  Nothing escapes a tick."""
+        self.stage = "acquire"
+        try:
+            return self._tick()
+        except Exception as exc:
+            t = self.last.t if self.last is not None else math.nan
+            with contextlib.suppress(Exception):  # a broken clock must not stop the safe state
+                t = self.instrument.clock.now()
+            self.fail(exc, self.stage, t)
+            why = f"no reading: {type(exc).__name__} in {self.stage}"
+            reading = Reading.invalid("Pa", t, Validity.TIMEOUT, why)
+            return Sample(self.index, t, reading, math.nan, self._ambient, self._temp, {})
+
+    def _tick(self) -> Sample:
         s = self.acquire()
         self.last = s
         engine = self.engine
         state = engine.state if engine is not None else "idle"
+        self.stage = "interlocks"
         trip = self.monitor.observe(Observation(t=s.t, reading=s.pressure, gauge=s.gauge,
                                                 valves=s.valves, phase=state))
         if trip is None and self.monitor.latched is None:
+            self.stage = "valve check"
             problem = self._check_valves(s.t)
             if problem is not None:
                 trip = self.monitor.trip_external("device_error", s.t, problem)
         if self.recorder is not None:
+            self.stage = "record"
             try:
                 self.recorder.sample(s.t, state, engine.cycle_number if engine else None, s.valves,
                                      s.pressure, s.temperature, s.ambient)
@@ -138,14 +162,46 @@ class Controller:
                 trip = trip or self.monitor.trip_external(
                     "write_error", s.t, f"run record not saved: {self._record_failed}")
                 self.recorder, self._record_failed = None, None
+        self.stage = "engine"
         if trip is not None and engine is not None:
             engine.to_fault(trip.kind, trip.message, s.t)
         elif engine is not None and not engine.terminal:
             self._advance(engine, s)
         if self.listeners:  # the fast path of a simulated run has none
+            self.stage = "listeners"
             self.emit("sample", {"t": s.t, "gauge": s.gauge, "valid": s.pressure.validity.value,
                                  "state": engine.state if engine else "idle", "valves": s.valves})
         return s
+
+    def fail(self, exc: BaseException, where: str, t: float) -> None:
+        """The one path from an unexpected exception: safe state first (through the interlock, which
+        latches), then the exception into the run's events, then the run ended as a fault."""
+        message = f"{type(exc).__name__} in {where}: {exc}"
+        if self.monitor.latched is not None and message == self._last_failure:
+            self.repeated_failures += 1  # the same fault every tick (idle, latched): act, but say it once
+            self.instrument.safe_state()
+            return
+        self._last_failure = message
+        log.error("unhandled %s", message)
+        try:
+            self.monitor.trip_external("exception", t, message)  # acts (safe state), records, latches
+        except Exception as inner:  # the monitor itself broke: still reach the safe state
+            log.error("interlock monitor failed while tripping: %s: %s", type(inner).__name__, inner)
+            self.instrument.safe_state()
+        frames = traceback.extract_tb(exc.__traceback__)
+        origin = f"{frames[-1].filename}:{frames[-1].lineno} in {frames[-1].name}" if frames else ""
+        self.emit("exception", {"t": t, "message": message, "type": type(exc).__name__, "error": str(exc),
+                                "where": where, "origin": origin,
+                                "traceback": traceback.format_exception(exc)[-12:],
+                                "safe_state_ok": self.instrument.safe_state_error is None})
+        if where == "record":  # a recorder that raises once will raise again: stop feeding it samples
+            self.recorder = None
+        engine = self.engine
+        if engine is not None:
+            try:
+                engine.to_fault("exception", message, t)
+            except Exception as inner:
+                log.error("engine could not record the fault: %s: %s", type(inner).__name__, inner)
 
     def _advance(self, engine: RunEngine, s: Sample) -> None:
         try:
@@ -158,8 +214,8 @@ class Controller:
         except DeviceError as exc:
             kind, message = "device_error", str(exc)
         except Exception as exc:  # the loop must reach the safe state whatever went wrong
-            log.exception("unhandled error in state %s", engine.state)
-            kind, message = "exception", f"{type(exc).__name__}: {exc}"
+            self.fail(exc, f"engine step ({engine.state})", s.t)
+            return
         trip = self.monitor.trip_external(kind, s.t, message)
         engine.to_fault(trip.kind if trip else kind, message, s.t)
 
