@@ -216,6 +216,8 @@ def _strip_loc(loc: tuple[Any, ...], doc: Document) -> Loc:
 
 def validate(model: type[M], doc: Document, context: dict[str, Any] | None = None) -> M:
     """Validate doc against a pydantic model; problems come back with their file positions."""
+    # "document": values come from a file (controller.domain.gaspath refuses unit-less limits there)
+    context = {"document": True, **(context or {})}
     try:
         return model.model_validate(doc.data, context=context)
     except ValidationError as exc:
