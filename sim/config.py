@@ -336,8 +336,11 @@ class SimConfig(_Strict):
         try:
             self.instrument_limits()
         except ValidationError as exc:
-            out.extend((("limits", *err["loc"]), err["msg"].removeprefix("Value error, "))
-                       for err in exc.errors())
+            for err in exc.errors():
+                loc: Loc = ("limits", *err["loc"])
+                unknown = err["type"] == "extra_forbidden"
+                msg = err["msg"].removeprefix("Value error, ")
+                out.append((loc, f"unknown key {loc[-1]!r}" if unknown else f"limits.{loc[-1]}: {msg}"))
         return out
 
     def instrument_limits(self) -> Limits:
