@@ -383,8 +383,9 @@ class InterlockMonitor:
         """New rule memories and a new view (at start and after a reset)."""
         self._seen = Seen()
         self.rules = [cls(self.limits, self.tuning) for cls in self.rule_types]
-        self._on_valid = [r for r in self.rules if r.sees in ("valid", "both")]
-        self._on_invalid = [r for r in self.rules if r.sees in ("invalid", "both")]
+        # bound checks, in RULES order: this loop runs on every sample
+        self._on_valid = tuple(r.check for r in self.rules if r.sees in ("valid", "both"))
+        self._on_invalid = tuple(r.check for r in self.rules if r.sees in ("invalid", "both"))
 
     # ------------------------------------------------------------------ state
     @property
@@ -512,11 +513,11 @@ class InterlockMonitor:
         if obs.reading.valid and math.isfinite(obs.gauge):
             seen.t_ref_valid = t
             seen.last_valid_gauge = float(obs.gauge)
-            rules = self._on_valid
+            checks = self._on_valid
         else:
-            rules = self._on_invalid
-        for rule in rules:
-            cond = rule.check(obs, seen)
+            checks = self._on_invalid
+        for check in checks:
+            cond = check(obs, seen)
             if cond is not None:
                 return cond
         return None
