@@ -334,7 +334,12 @@ class SimConfig(_Strict):
         for k, f in enumerate(self.faults):
             out.extend(_fault_problems(self, k, f))
         try:
-            self.instrument_limits()
+            limits = self.instrument_limits()
+            if self.relief is not None and limits.relief_setting > self.relief.set_pressure:
+                out.append((("limits", "relief_setting"),
+                            f"limits.relief_setting: {limits.relief_setting:.6g} Pa is above the simulated relief "
+                            f"valve's set pressure {self.relief.set_pressure:.6g} Pa: the limits would be "
+                            "checked against a relief that does not exist"))
         except ValidationError as exc:
             for err in exc.errors():
                 loc: Loc = ("limits", *err["loc"])

@@ -67,6 +67,7 @@ limits:
     ("  max_rise_rate: 1e12 Pa/s\n", "at most 1e+09 Pa/s"),
     ("  max_pressure: 2\n", "give a unit"),
     ("  stale_afterwards: 2 s\n", "unknown key 'stale_afterwards'"),
+    ("  relief_setting: 4 bar\n", "above the simulated relief valve's set pressure"),
 ])
 def test_simulator_config_refuses_the_same_limits(tmp_path, line, message):
     p = tmp_path / "sim.yaml"
