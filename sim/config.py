@@ -16,7 +16,7 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
 
 from pycnoctl.controller.domain.gas import get_gas
-from pycnoctl.controller.domain.gaspath import DOCUMENT, Limits
+from pycnoctl.controller.domain.gaspath import Limits
 from pycnoctl.controller.domain.units import (
     UnitError,
     parse_duration,
@@ -28,7 +28,7 @@ from pycnoctl.controller.domain.units import (
     parse_volume,
     to_quantity,
 )
-from pycnoctl.controller.domain.yamlio import ConfigError, Document, Loc, load_file, validate
+from pycnoctl.controller.domain.yamlio import DOCUMENT, ConfigError, Document, Loc, load_file, validate
 
 CONFIG_DIR = Path(__file__).resolve().parent / "configs"
 DEFAULT_CONFIG = CONFIG_DIR / "clean.yaml"

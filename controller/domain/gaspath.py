@@ -13,6 +13,7 @@ from typing import Annotated, Any
 from pydantic import BaseModel, BeforeValidator, ConfigDict, ValidationInfo, field_validator
 
 from pycnoctl.controller.domain.units import UnitError, parse_duration, parse_pressure, parse_rate
+from pycnoctl.controller.domain.yamlio import DOCUMENT
 
 
 @dataclass(frozen=True)
@@ -60,7 +61,9 @@ class Chambers:
         return ChamberCalibration(self.cell, self.expansion[name])
 
 
-def _quantity(parse: Callable[..., float], example: str, lo: float, hi: float, what: str):  # type: ignore[no-untyped-def]
+def _quantity(
+    parse: Callable[..., float], example: str, lo: float, hi: float, what: str
+) -> Callable[[Any, ValidationInfo], float]:
     """A limit value: text with a unit from a document, a plain SI float from code; kept within [lo, hi].
 
     Why a bare number is refused in a document: '2' could be bar, kPa or Pa, and a limit read in
@@ -94,10 +97,8 @@ def _bare(value: Any) -> bool:
 
 
 _SI = {"pressure": "Pa", "rate": "Pa/s", "duration": "s"}
-#: Set by controller.domain.yamlio.validate: the values come from a file, where pressures need units.
-DOCUMENT = "document"
 MAX_GAUGE = 1.0e7  # Pa (100 bar): above any gas pycnometer's cell; a larger limit is a unit slip
-MAX_RATE = 1.0e9  # Pa/s: a limit above this can never trip before the overpressure rule
+MAX_RATE = 1.0e9  # Pa/s: 200 x the fastest regulator failure the tests inject (50 bar/s); above, a slip
 
 
 def _bounded(dimension: str, example: str, hi: float) -> Any:

@@ -362,7 +362,6 @@ class InterlockMonitor:
         *,
         rise_samples: int = 3,
         leak_persist_ratio: float = 0.8,
-        rules: tuple[type[Rule], ...] = RULES,
     ) -> None:
         if rise_samples < 2:
             raise ValueError("rise_samples must be >= 2")
@@ -371,7 +370,6 @@ class InterlockMonitor:
         self._act = act
         self._on_trip = on_trip
         self.tuning = Tuning(rise_samples, leak_persist_ratio)
-        self.rule_types = rules
         self._fresh()
         self._latched: Trip | None = None
         self._index = -1
@@ -382,7 +380,7 @@ class InterlockMonitor:
     def _fresh(self) -> None:
         """New rule memories and a new view (at start and after a reset)."""
         self._seen = Seen()
-        self.rules = [cls(self.limits, self.tuning) for cls in self.rule_types]
+        self.rules = [cls(self.limits, self.tuning) for cls in RULES]
         # bound checks, in RULES order: this loop runs on every sample
         self._on_valid = tuple(r.check for r in self.rules if r.sees in ("valid", "both"))
         self._on_invalid = tuple(r.check for r in self.rules if r.sees in ("invalid", "both"))
