@@ -341,11 +341,14 @@ class SimConfig(_Strict):
                             f"valve's set pressure {self.relief.set_pressure:.6g} Pa: the limits would be "
                             "checked against a relief that does not exist"))
         except ValidationError as exc:
+            derived_from: Loc = ("relief", "set_pressure") if self.relief else ("instruments", "pressure", "full_scale")
             for err in exc.errors():
                 loc: Loc = ("limits", *err["loc"])
                 unknown = err["type"] == "extra_forbidden"
-                msg = err["msg"].removeprefix("Value error, ")
-                out.append((loc, f"unknown key {loc[-1]!r}" if unknown else f"limits.{loc[-1]}: {msg}"))
+                msg = f"limits.{loc[-1]}: " + err["msg"].removeprefix("Value error, ")
+                if loc[-1] in ("relief_setting", "max_pressure") and loc[-1] not in self.limits:
+                    loc, msg = derived_from, f"{msg} (derived from here; set limits.{loc[-1]} to override)"
+                out.append((loc, f"unknown key {loc[-1]!r}" if unknown else msg))
         return out
 
     def instrument_limits(self) -> Limits:

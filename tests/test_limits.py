@@ -97,3 +97,13 @@ def _refused_at(path: Path, key: str, message: str, load) -> None:
     assert hits, info.value.problems
     assert hits[0].file == str(path)
     assert (hits[0].line, hits[0].col) == (line_of(path, key + ":"), 3), hits[0]
+
+
+def test_simulator_limits_derived_from_an_absurd_relief_point_at_the_relief(tmp_path):
+    p = tmp_path / "sim.yaml"
+    text = SIM.replace("set_pressure: 3 bar", "set_pressure: 300 bar") + "  frozen_after: 4 s\n"
+    p.write_text(text, encoding="utf-8")
+    with pytest.raises(ConfigError) as info:
+        load_sim_config(p)
+    hit = next(pr for pr in info.value.problems if "limits.relief_setting" in pr.message)
+    assert "derived from here" in hit.message and hit.line == line_of(p, "relief:")
