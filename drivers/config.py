@@ -315,22 +315,6 @@ class ChambersModel(Strict):
         return Chambers(self.cell, dict(self.expansion))
 
 
-class LimitsModel(Strict):
-    max_pressure: Pressure
-    relief_setting: Pressure
-    max_rise_rate: Rate = Limits.max_rise_rate
-    invalid_trip_pressure: Pressure = Limits.invalid_trip_pressure
-    stale_after: Seconds = Limits.stale_after
-    frozen_after: Seconds = Limits.frozen_after
-    closed_inlet_rise: Pressure = Limits.closed_inlet_rise
-    closed_inlet_window: Seconds = Limits.closed_inlet_window
-    vent_baseline_tolerance: Pressure = Limits.vent_baseline_tolerance
-    vent_timeout: Seconds = Limits.vent_timeout
-
-    def build(self) -> Limits:
-        return Limits(**self.model_dump())
-
-
 class InstrumentConfig(Strict):
     """One pycnometer: drivers per role, gas-path layout, interlock limits."""
 
@@ -342,7 +326,7 @@ class InstrumentConfig(Strict):
     valve_roles: ValveRolesModel | None = None  # may be omitted when valves are simulated
     forbidden: list[list[str]] | None = None  # sets never open together; default [[inlet, vent]]
     chambers: ChambersModel | None = None
-    limits: LimitsModel | None = None
+    limits: Limits | None = None
     sample_period: Seconds = 0.1
     gas: str = "helium"
     pressure_u: Pressure = 20.0
@@ -418,12 +402,6 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
             errors.append((("chambers",), "volumes must be positive"))
     lim = cfg.limits
     if lim is not None:
-        if lim.max_pressure <= 0:
-            errors.append((("limits", "max_pressure"), "max_pressure must be positive (gauge)"))
-        if lim.max_pressure >= lim.relief_setting:
-            errors.append((("limits", "max_pressure"),
-                           f"max_pressure {lim.max_pressure:.6g} Pa must be below the relief valve's "
-                           f"setting {lim.relief_setting:.6g} Pa (the software trip comes first)"))
         span = getattr(cfg.pressure, "span", None)
         if span is not None:
             lo, hi = span()
@@ -576,7 +554,7 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Clock | None = None, sim_b
             thermometer = AsciiGauge(opened.serial_for(d, "thermometer"), fmt=fmt, name="thermometer",
                                      clock=clk, quantity="temperature")
         chambers = cfg.chambers.build() if cfg.chambers else (sim.chambers if sim else None)
-        limits = cfg.limits.build() if cfg.limits else (sim.limits if sim else None)
+        limits = cfg.limits if cfg.limits else (sim.limits if sim else None)
         if chambers is None or limits is None:
             raise ValueError("chambers and limits are required")
     except BaseException:

@@ -12,7 +12,6 @@ value as VALID, as a real one would; detecting it is the engine's job.
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from collections.abc import Mapping
 from pathlib import Path
@@ -167,16 +166,8 @@ def _chambers(cfg: SimConfig) -> Chambers:
 
 
 def sim_limits(cfg: SimConfig) -> Limits:
-    """Limits from the config's ``limits`` section; relief setting defaults to the relief valve (or the
-    transducer's full scale), max pressure to 90 % of it."""
-    lim = cfg.limits
-    relief = lim.relief_setting
-    if relief is None:
-        relief = cfg.relief.set_pressure if cfg.relief is not None else cfg.instruments.pressure.full_scale
-    max_p = lim.max_pressure if lim.max_pressure is not None else 0.9 * relief
-    extra = {k: v for k, v in lim.model_dump().items()
-             if v is not None and k not in ("max_pressure", "relief_setting")}
-    return Limits(max_pressure=max_p, relief_setting=relief, **extra)
+    """Limits of the derived instrument (see SimConfig.instrument_limits)."""
+    return cfg.instrument_limits()
 
 
 def _paced_limits(limits: Limits, realtime: bool, speed: float) -> Limits:
@@ -185,7 +176,7 @@ def _paced_limits(limits: Limits, realtime: bool, speed: float) -> Limits:
     cover a half-second pause of the host, so the demo does not trip on its own bookkeeping."""
     if not realtime or speed <= 1.0:
         return limits
-    return dataclasses.replace(limits, stale_after=max(limits.stale_after, 0.5 * speed))
+    return limits.model_copy(update={"stale_after": max(limits.stale_after, 0.5 * speed)})
 
 
 def build_sim_instrument(

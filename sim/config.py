@@ -13,9 +13,10 @@ import math
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
 
 from pycnoctl.controller.domain.gas import get_gas
+from pycnoctl.controller.domain.gaspath import Limits
 from pycnoctl.controller.domain.units import (
     UnitError,
     parse_duration,
@@ -27,7 +28,7 @@ from pycnoctl.controller.domain.units import (
     parse_volume,
     to_quantity,
 )
-from pycnoctl.controller.domain.yamlio import ConfigError, Document, Loc, load_file, validate
+from pycnoctl.controller.domain.yamlio import DOCUMENT, ConfigError, Document, Loc, load_file, validate
 
 CONFIG_DIR = Path(__file__).resolve().parent / "configs"
 DEFAULT_CONFIG = CONFIG_DIR / "clean.yaml"
@@ -235,21 +236,6 @@ class Nominal(_Strict):
     expansion: dict[str, PosVolume] = {}
 
 
-class SimLimits(_Strict):
-    """Interlock limits for the derived instrument (gauge pressures); unset ones take defaults."""
-
-    max_pressure: PosPressure | None = None
-    relief_setting: PosPressure | None = None
-    max_rise_rate: PosRate | None = None
-    invalid_trip_pressure: PosPressure | None = None
-    stale_after: PosDuration | None = None
-    frozen_after: PosDuration | None = None
-    closed_inlet_rise: PosPressure | None = None
-    closed_inlet_window: PosDuration | None = None
-    vent_baseline_tolerance: PosPressure | None = None
-    vent_timeout: PosDuration | None = None
-
-
 class Solver(_Strict):
     """Integration controls: accuracy of the dense output and of the flow steps."""
 
@@ -279,7 +265,7 @@ class SimConfig(_Strict):
     initial_open: list[str] = []
     faults: list[Fault] = []
     nominal: Nominal | None = None
-    limits: SimLimits = SimLimits()
+    limits: dict[str, Any] = {}  # Limits keys (gauge); unset ones: see instrument_limits
     sample_period: PosDuration = 0.1
     solver: Solver = Solver()
 
@@ -347,7 +333,38 @@ class SimConfig(_Strict):
                     out.append((("nominal", "expansion", name), f"{name!r} is not an expansion volume"))
         for k, f in enumerate(self.faults):
             out.extend(_fault_problems(self, k, f))
+        try:
+            limits = self.instrument_limits()
+            if self.relief is not None and limits.relief_setting > self.relief.set_pressure:
+                out.append((("limits", "relief_setting"),
+                            f"limits.relief_setting: {limits.relief_setting:.6g} Pa is above the simulated relief "
+                            f"valve's set pressure {self.relief.set_pressure:.6g} Pa: the limits would be "
+                            "checked against a relief that does not exist"))
+        except ValidationError as exc:
+            derived_from: Loc = ("relief", "set_pressure") if self.relief else ("instruments", "pressure", "full_scale")
+            for err in exc.errors():
+                loc: Loc = ("limits", *err["loc"])
+                unknown = err["type"] == "extra_forbidden"
+                msg = f"limits.{loc[-1]}: " + err["msg"].removeprefix("Value error, ")
+                if loc[-1] in ("relief_setting", "max_pressure") and loc[-1] not in self.limits:
+                    loc, msg = derived_from, f"{msg} (derived from here; set limits.{loc[-1]} to override)"
+                out.append((loc, f"unknown key {loc[-1]!r}" if unknown else msg))
         return out
+
+    def instrument_limits(self) -> Limits:
+        """The derived instrument's interlock limits: the ``limits`` section over defaults.
+
+        The relief setting defaults to the relief valve's (or the transducer's full scale), the
+        maximum pressure to 90 % of it; the rest to the Limits defaults.
+        """
+        relief = self.relief.set_pressure if self.relief is not None else self.instruments.pressure.full_scale
+        derived: dict[str, Any] = {"relief_setting": f"{relief!r} Pa"}
+        given = self.limits.get("relief_setting", derived["relief_setting"])
+        try:
+            derived["max_pressure"] = f"{0.9 * parse_pressure(given)!r} Pa"
+        except (UnitError, TypeError):
+            derived["max_pressure"] = None  # the section's relief_setting is refused on its own
+        return Limits.model_validate({**derived, **self.limits}, context={DOCUMENT: True})
 
     def expansion_volumes(self) -> dict[str, str]:
         """valve name -> expansion volume name, for valves with role 'expansion'."""

@@ -298,3 +298,28 @@ def test_automatic_expansion_volume_weighs_the_calibrated_volumes(tmp_path):
     catalog.put_calibration(CalibrationRecord("small", "helium", 12e-6, 20e-6))
     catalog.put_calibration(CalibrationRecord("large", "helium", 12e-6, 8e-6))
     assert prepare(RunRequest("grain-volume"), inst, catalog).expansion_volume == "large"
+
+
+@pytest.mark.parametrize("vent_stuck", [True, False])
+def test_pressure_trapped_behind_a_vent_believed_open_trips_even_while_idle(vent_stuck):
+    # a slowly leaking inlet (about 40 Pa/s into the cell, far below the inlet-leak rule's 400 Pa/s)
+    # at rest: a working vent keeps the cell at ambient; a vent stuck shut lets it fill, and the
+    # instrument's vent_timeout, not any sequence, must catch it
+    faults = [{"kind": "valve_leak", "valve": "inlet", "conductance": "1e-8 m^3/s", "at": "0 s"}]
+    if vent_stuck:
+        faults.append({"kind": "valve_stuck", "valve": "vent", "open": False, "at": "0 s"})
+    inst = build_sim_instrument(make(faults=faults, instruments={"pressure": {
+        "node": "cell", "kind": "gauge", "full_scale": "3.5 bar", "noise": "0.05 mbar"}}))
+    controller = Controller(inst)
+    limit = inst.limits.vent_timeout
+    while controller.monitor.latched is None and inst.clock.now() < 2 * limit:
+        controller.tick()
+        inst.clock.sleep(inst.sample_period)
+    trip = controller.monitor.latched
+    if not vent_stuck:
+        assert trip is None
+        return
+    assert trip is not None and trip.kind == "vent_timeout"
+    assert limit <= trip.t < limit + 2 * inst.sample_period  # the vent was commanded open at t = 0
+    assert trip.value >= limit and "phase idle" in trip.message
+    assert controller.reset() is False  # still pressurised

@@ -362,3 +362,49 @@ def test_trip_still_latches_when_the_safe_state_action_fails():
     h2 = Harness(act_result=False)
     trip2 = h2.feed(0.0, 3.5e5, CLOSED)
     assert trip2.safe_state_ok is False and "NOT confirmed" in trip2.message
+
+
+# -- vent time-out: the vent commanded open, the pressure still held -------------------------------
+
+def _held_vent(gauge_at, t_end: float, valves=VENTED):
+    return [(round(i * DT, 10), gauge_at(i * DT), valves) for i in range(round(t_end / DT) + 1)]
+
+
+def test_a_vent_that_holds_pressure_trips_vent_timeout_on_the_first_sample_past_the_limit():
+    h = Harness()
+    _, trip = h.run(_held_vent(lambda t: 5e3, 2 * LIMITS.vent_timeout))  # a blocked vent at 5 kPa
+    assert trip is not None and trip.kind == "vent_timeout"
+    assert trip.t == pytest.approx(LIMITS.vent_timeout, abs=1e-9)  # held >= limit: that very sample
+    assert trip.value == pytest.approx(LIMITS.vent_timeout) and trip.limit == LIMITS.vent_timeout
+    assert h.calls == ["act", "trip:vent_timeout"]
+
+
+def test_a_vent_that_reaches_baseline_does_not_trip():
+    # the same start, falling with a 2 s time constant to the vented baseline
+    h = Harness()
+    assert h.run(_held_vent(lambda t: 1.5e5 * math.exp(-t / 2.0), 2 * LIMITS.vent_timeout)) == (None, None)
+
+
+def test_a_closed_vent_is_not_judged_and_an_inlet_opening_restarts_the_vent_clock():
+    h = Harness()
+    assert h.run(_held_vent(lambda t: 5e3, 2 * LIMITS.vent_timeout, CLOSED)) == (None, None)  # held on purpose
+    h = Harness()
+    half = LIMITS.vent_timeout / 2
+    first = [(round(i * DT, 10), 5e3, VENTED) for i in range(int(half / DT))]
+    t0 = first[-1][0] + DT
+    samples = [*first, (t0, 5e3, {**VENTED, "inlet": True, "vent": False})]
+    samples += [(round(t0 + (i + 1) * DT, 10), 5e3, VENTED) for i in range(int(LIMITS.vent_timeout / DT) + 5)]
+    _, trip = h.run(samples)
+    assert trip is not None and trip.kind == "vent_timeout"
+    # the clock restarted with the inlet closing again; rounding of the sample times may cost one sample
+    assert t0 + DT + LIMITS.vent_timeout - 1e-9 <= trip.t <= t0 + 2 * DT + LIMITS.vent_timeout + 1e-9
+
+
+def test_rules_declare_every_limit_and_read_only_declared_ones():
+    from pycnoctl.controller.run.interlocks import RULES, SAMPLE_KINDS
+
+    declared = [f for rule in RULES for f in rule.fields]
+    assert sorted(declared) == sorted(Limits.model_fields)  # each limit belongs to exactly one rule
+    assert len(set(SAMPLE_KINDS)) == len(RULES)
+    assert [r.kind for r in RULES] == ["invalid_pressurised", "overpressure", "stale", "rise_rate", "frozen",
+                                       "inlet_leak", "vent_timeout"]

@@ -6,7 +6,14 @@ maths computes with them. Nothing here talks to hardware.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
+from typing import Annotated, Any
+
+from pydantic import BaseModel, BeforeValidator, ConfigDict, ValidationInfo, field_validator
+
+from pycnoctl.controller.domain.units import UnitError, parse_duration, parse_pressure, parse_rate
+from pycnoctl.controller.domain.yamlio import DOCUMENT
 
 
 @dataclass(frozen=True)
@@ -54,17 +61,100 @@ class Chambers:
         return ChamberCalibration(self.cell, self.expansion[name])
 
 
-@dataclass(frozen=True)
-class Limits:
-    """Interlock limits; pressures are gauge (above the vented baseline), in Pa."""
+def _quantity(
+    parse: Callable[..., float], example: str, lo: float, hi: float, what: str
+) -> Callable[[Any, ValidationInfo], float]:
+    """A limit value: text with a unit from a document, a plain SI float from code; kept within [lo, hi].
 
-    max_pressure: float  # absolute overpressure trip
-    relief_setting: float  # the hardware relief valve's set pressure, for validation only
-    max_rise_rate: float = 2.0e5  # Pa/s
-    invalid_trip_pressure: float = 2.0e3  # an invalid reading above this (last valid) gauge pressure trips
-    stale_after: float = 1.0  # s without a valid sample
-    frozen_after: float = 5.0  # s of bit-identical samples while valves move gas
-    closed_inlet_rise: float = 2.0e3  # Pa of rise with the inlet commanded closed and no expansion
-    closed_inlet_window: float = 5.0  # s over which that rise is judged
-    vent_baseline_tolerance: float = 1.0e3  # Pa
-    vent_timeout: float = 60.0  # s
+    Why a bare number is refused in a document: '2' could be bar, kPa or Pa, and a limit read in
+    the wrong unit switches its interlock off without a word.  Why the bounds: a limit outside any
+    physical range (a stale time of 1e9 s, a rise rate of 1e12 Pa/s) is the same silent switch.
+    """
+
+    def check(value: Any, info: ValidationInfo) -> float:
+        if isinstance(value, bool):
+            raise ValueError(f"expected a quantity with a unit, e.g. {example!r}")
+        if what != "duration" and (info.context or {}).get(DOCUMENT) and _bare(value):
+            raise ValueError(f"give a unit, e.g. {example!r} (a bare number is ambiguous here)")
+        try:
+            out = parse(value, default_unit=_SI[what])
+        except UnitError as exc:
+            raise ValueError(str(exc)) from None
+        if not lo < out <= hi:
+            raise ValueError(f"must be above {lo:g} and at most {hi:g} {_SI[what]} "
+                             f"(a {what} limit outside this range is a typo that disables its interlock)")
+        return out
+
+    return check
+
+
+def _bare(value: Any) -> bool:
+    try:
+        float(value)
+    except (TypeError, ValueError):
+        return False
+    return True
+
+
+_SI = {"pressure": "Pa", "rate": "Pa/s", "duration": "s"}
+MAX_GAUGE = 1.0e7  # Pa (100 bar): above any gas pycnometer's cell; a larger limit is a unit slip
+MAX_RATE = 1.0e9  # Pa/s: 200 x the fastest regulator failure the tests inject (50 bar/s); above, a slip
+
+
+def _bounded(dimension: str, example: str, hi: float) -> Any:
+    parse = {"pressure": parse_pressure, "rate": parse_rate, "duration": parse_duration}[dimension]
+    return BeforeValidator(_quantity(parse, example, 0.0, hi, dimension))
+
+
+Gauge = Annotated[float, _bounded("pressure", "150 kPa", MAX_GAUGE)]
+RiseRate = Annotated[float, _bounded("rate", "50 kPa/s", MAX_RATE)]
+# Time-outs, each with the longest that still protects (s): a sensor silent for over 10 s while
+# pressurised, a reading frozen or a leak judged over more than a minute, a vent taking more than
+# ten minutes are no longer watched.
+StaleTime = Annotated[float, _bounded("duration", "1 s", 10.0)]
+WatchTime = Annotated[float, _bounded("duration", "5 s", 60.0)]
+VentTime = Annotated[float, _bounded("duration", "60 s", 600.0)]
+
+
+class Limits(BaseModel):
+    """Interlock limits; pressures are gauge (above the vented baseline), in Pa.
+
+    The one type for limits: the instrument config and the simulator config both load it, the
+    interlock rules (controller.run.interlocks) read it.  Each field names the rule that reads it;
+    a new rule adds its fields here, with their bounds, and nowhere else.
+    """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    # overpressure; the relief setting (the hardware valve's) is what every pressure limit stays below
+    relief_setting: Gauge
+    max_pressure: Gauge
+    # rise_rate
+    max_rise_rate: RiseRate = 2.0e5
+    # invalid_pressurised: an invalid reading above this (last valid) gauge pressure trips
+    invalid_trip_pressure: Gauge = 2.0e3
+    # stale: s without a valid sample
+    stale_after: StaleTime = 1.0
+    # frozen: s of bit-identical samples while valves move gas
+    frozen_after: WatchTime = 5.0
+    # inlet_leak: Pa of rise with the inlet commanded closed and no valve change, over the window (s)
+    closed_inlet_rise: Gauge = 2.0e3
+    closed_inlet_window: WatchTime = 5.0
+    # vent_timeout (and the reset): how close to zero counts as vented, and how long a vent may take
+    vent_baseline_tolerance: Gauge = 1.0e3
+    vent_timeout: VentTime = 60.0
+
+    @field_validator("max_pressure", "invalid_trip_pressure", "closed_inlet_rise", "vent_baseline_tolerance")
+    @classmethod
+    def _below(cls, value: float, info: ValidationInfo) -> float:
+        """Each pressure limit sits below the one above it: the software trip comes before the relief
+        valve, and a threshold at or above max_pressure could never act before the overpressure trip."""
+        above = "relief_setting" if info.field_name == "max_pressure" else "max_pressure"
+        if above not in info.data:  # refused on its own
+            return value
+        if value >= info.data[above]:
+            if above == "relief_setting":
+                raise ValueError(f"max_pressure {value:.6g} Pa must be below the relief valve's setting "
+                                 f"{info.data[above]:.6g} Pa (the software trip comes first)")
+            raise ValueError(f"{info.field_name} {value:.6g} Pa must be below max_pressure {info.data[above]:.6g} Pa")
+        return value

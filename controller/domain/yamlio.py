@@ -214,8 +214,14 @@ def _strip_loc(loc: tuple[Any, ...], doc: Document) -> Loc:
     return tuple(out)
 
 
+#: Validation context key set for every document: the values come from a file, where a model may ask
+#: for more than from code (controller.domain.gaspath.Limits refuses unit-less pressures there).
+DOCUMENT = "document"
+
+
 def validate(model: type[M], doc: Document, context: dict[str, Any] | None = None) -> M:
     """Validate doc against a pydantic model; problems come back with their file positions."""
+    context = {DOCUMENT: True, **(context or {})}
     try:
         return model.model_validate(doc.data, context=context)
     except ValidationError as exc:

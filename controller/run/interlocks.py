@@ -7,29 +7,11 @@ returns the Trip for the state machine.  Trips latch; ``reset`` clears only on a
 observation that shows the condition gone (valid reading, below limits, vented), and never
 restarts anything.
 
-Rules (kind: condition), evaluated per observation:
-
-* ``overpressure``: a valid gauge pressure above ``limits.max_pressure``; the first such sample trips.
-* ``rise_rate``: least-squares dP/dt over the last ``rise_samples`` valid samples above
-  ``limits.max_rise_rate``.
-* ``invalid_pressurised``: an invalid reading (any non-VALID flag, or a non-finite gauge value)
-  while pressurised: last valid gauge above ``limits.invalid_trip_pressure``, or the inlet
-  commanded open.  Invalid readings never enter any calculation.
-* ``stale``: more than ``limits.stale_after`` s since the last valid sample, in any phase.
-  The engine must observe every tick, passing an invalid TIMEOUT reading when the sensor gave
-  nothing; a valid sample that ends a longer gap also trips (the loop itself stalled).
-* ``frozen``: the raw reading bit-identical for ``limits.frozen_after`` s while the inlet is open.
-* ``inlet_leak``: with the inlet commanded closed and no valve changed for a whole
-  ``limits.closed_inlet_window`` W, the pressure rose by more than ``limits.closed_inlet_rise``
-  over that window (regression slope x W) AND the rise is not dying away: the slope over the
-  window's second half is at least ``leak_persist_ratio`` (0.8) of the first half's.
-  Why: after an expansion the cooled gas rewarms and the pressure rises as A(1 - exp(-t/tau)),
-  which can exceed the rise limit in one window; its slope decays by exp(-W/(2 tau)) between
-  the halves, i.e. below 0.8 for tau < 2.2 W.  A leaking inlet from a supply far above the
-  cell pressure feeds a nearly constant flow, so its slope does not decay.  A rewarming slower
-  than 2.2 W rises by at most A(1 - exp(-W/tau)) < 0.37 A within a window, so it can only trip
-  when its whole amplitude exceeds about 2.7 x closed_inlet_rise.  The leak rates caught are
-  those above closed_inlet_rise / W (400 Pa/s with the defaults).
+Each rule is one small class below: the limit fields it reads (declared in
+``controller.domain.gaspath.Limits``), its check and its message.  ``RULES`` gives their order;
+the first rule that trips on an observation wins and the later ones do not see it.  A rule looks
+at valid samples, invalid ones, or both (``sees``).  Adding an interlock: a rule class here, its
+place in ``RULES``, its limit field(s) in ``Limits``.
 
 Engine-raised kinds go through ``trip_external`` with the same order: fill_timeout,
 vent_timeout, valve_command_failed, device_error, exception, write_error.
@@ -42,7 +24,8 @@ import math
 import struct
 from collections import deque
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
+from typing import ClassVar
 
 import numpy as np
 
@@ -51,13 +34,6 @@ from pycnoctl.controller.domain.gaspath import Limits, ValveRoles
 
 log = logging.getLogger(__name__)
 
-OVERPRESSURE = "overpressure"
-RISE_RATE = "rise_rate"
-INVALID_PRESSURISED = "invalid_pressurised"
-STALE = "stale"
-FROZEN = "frozen"
-INLET_LEAK = "inlet_leak"
-SAMPLE_KINDS = (OVERPRESSURE, RISE_RATE, INVALID_PRESSURISED, STALE, FROZEN, INLET_LEAK)
 EXTERNAL_KINDS = (
     "fill_timeout",
     "vent_timeout",
@@ -99,6 +75,31 @@ class _Condition:
     limit: float | None
 
 
+@dataclass(frozen=True)
+class Tuning:
+    """Rule constants that are properties of the method, not of an instrument (not in Limits)."""
+
+    rise_samples: int = 3  # samples in the rise-rate regression
+    leak_persist_ratio: float = 0.8  # second-half slope / first-half slope that counts as a leak
+
+
+@dataclass(slots=True)
+class Seen:
+    """What every rule may read: the monitor's running view of the gas path, updated before the
+    rules run on each observation (cleared by a reset)."""
+
+    t: float = math.nan
+    gap: float = 0.0  # s since the last valid sample before this one (or the start reference)
+    inlet_open: bool = False
+    t_ref_valid: float | None = None  # last valid sample time (or the start reference)
+    last_valid_gauge: float | None = None  # this sample's gauge when it is valid
+    inlet_open_since: float | None = None
+    vented_since: float | None = None  # vent commanded open with the inlet closed, since
+    valves: dict[str, bool] | None = None
+    valves_changed_at: float = -math.inf
+    valve_changes: int = 0
+
+
 def _bits(x: float) -> bytes:
     return struct.pack("<d", x)
 
@@ -127,23 +128,230 @@ def _slope_pairs(pairs: Iterable[tuple[float, float]]) -> float:
     return (n * stp - st * sp) / den if den > 0 else math.nan
 
 
-@dataclass
-class _History:
-    """What the rules remember between samples (cleared by a reset)."""
+# ---------------------------------------------------------------------------------------- rules
 
-    rise: deque[tuple[float, float]] = field(default_factory=deque)
-    leak: deque[tuple[float, float]] = field(default_factory=deque)
-    t_ref_valid: float | None = None  # last valid sample time (or the start reference)
-    last_valid_gauge: float | None = None
-    frozen_bits: bytes | None = None
-    frozen_since: float = math.nan
-    inlet_open_since: float | None = None
-    valves: dict[str, bool] | None = None
-    valves_changed_at: float = -math.inf
+class Rule:
+    """One interlock: the Limits fields it reads, its check on one observation, its message.
 
+    A rule keeps its own memory between samples (a fresh instance after a reset); it is asked only
+    when no rule before it in RULES has tripped on the observation.
+    """
+
+    kind: ClassVar[str]
+    fields: ClassVar[tuple[str, ...]]  # the Limits fields this rule reads
+    sees: ClassVar[str] = "valid"  # which samples it is asked about: "valid", "invalid" or "both"
+
+    def __init__(self, limits: Limits, tuning: Tuning) -> None:
+        self.limits = limits
+
+    def check(self, obs: Observation, seen: Seen) -> _Condition | None:
+        raise NotImplementedError
+
+
+class InvalidPressurised(Rule):
+    """An invalid reading (any non-VALID flag, or a non-finite gauge value) while pressurised: last
+    valid gauge above ``invalid_trip_pressure``, or the inlet commanded open.  Invalid readings never
+    enter any calculation."""
+
+    kind = "invalid_pressurised"
+    fields = ("invalid_trip_pressure",)
+    sees = "invalid"
+
+    def check(self, obs: Observation, seen: Seen) -> _Condition | None:
+        last_g = seen.last_valid_gauge
+        limit = self.limits.invalid_trip_pressure
+        if not (seen.inlet_open or (last_g is not None and last_g > limit)):
+            return None
+        last = "none" if last_g is None else f"{last_g:.6g} Pa"
+        flag = obs.reading.validity.value
+        if obs.reading.detail:
+            flag += f": {obs.reading.detail}"
+        return _Condition(
+            self.kind,
+            f"invalid reading ({flag}) while pressurised (last valid gauge {last},"
+            f" inlet {'open' if seen.inlet_open else 'closed'}, phase {obs.phase})",
+            last_g,
+            limit,
+        )
+
+
+class Overpressure(Rule):
+    """A valid gauge pressure above ``max_pressure``: the first such sample trips."""
+
+    kind = "overpressure"
+    fields = ("max_pressure", "relief_setting")  # the relief setting bounds max_pressure at load
+
+    def check(self, obs: Observation, seen: Seen) -> _Condition | None:
+        g = float(obs.gauge)
+        limit = self.limits.max_pressure
+        if not g > limit:
+            return None
+        return _Condition(self.kind, f"gauge {g:.6g} Pa above max_pressure {limit:.6g} Pa (phase {obs.phase})",
+                          g, limit)
+
+
+class Stale(Rule):
+    """More than ``stale_after`` s since the last valid sample, in any phase.  The engine must observe
+    every tick, passing an invalid TIMEOUT reading when the sensor gave nothing; a valid sample that
+    ends a longer gap also trips (the loop itself stalled)."""
+
+    kind = "stale"
+    fields = ("stale_after",)
+    sees = "both"
+
+    def check(self, obs: Observation, seen: Seen) -> _Condition | None:
+        limit = self.limits.stale_after
+        if not seen.gap > limit:
+            return None
+        return _Condition(self.kind, f"no valid pressure sample for {seen.gap:.3g} s"
+                          f" (limit {limit:.3g} s, phase {obs.phase})", seen.gap, limit)
+
+
+class RiseRate(Rule):
+    """Least-squares dP/dt over the last ``rise_samples`` valid samples above ``max_rise_rate``."""
+
+    kind = "rise_rate"
+    fields = ("max_rise_rate",)
+
+    def __init__(self, limits: Limits, tuning: Tuning) -> None:
+        super().__init__(limits, tuning)
+        self.n = tuning.rise_samples
+        self.recent: deque[tuple[float, float]] = deque(maxlen=self.n)
+
+    def check(self, obs: Observation, seen: Seen) -> _Condition | None:
+        self.recent.append((seen.t, float(obs.gauge)))
+        if len(self.recent) < self.n:
+            return None
+        rate = _slope_pairs(self.recent)
+        limit = self.limits.max_rise_rate
+        if not (math.isfinite(rate) and rate > limit):
+            return None
+        return _Condition(self.kind, f"pressure rising at {rate:.6g} Pa/s over {self.n} samples,"
+                          f" limit {limit:.6g} Pa/s (phase {obs.phase})", rate, limit)
+
+
+class Frozen(Rule):
+    """The raw reading bit-identical for ``frozen_after`` s while the inlet is open."""
+
+    kind = "frozen"
+    fields = ("frozen_after",)
+
+    def __init__(self, limits: Limits, tuning: Tuning) -> None:
+        super().__init__(limits, tuning)
+        self.bits: bytes | None = None
+        self.since = math.nan
+
+    def check(self, obs: Observation, seen: Seen) -> _Condition | None:
+        bits = _bits(float(obs.reading.value))
+        if bits != self.bits:
+            self.bits, self.since = bits, seen.t
+        if seen.inlet_open_since is None:
+            return None
+        held = seen.t - max(self.since, seen.inlet_open_since)
+        limit = self.limits.frozen_after
+        if not held >= limit:
+            return None
+        return _Condition(self.kind, f"reading bit-identical ({obs.reading.value!r}) for {held:.3g} s"
+                          " with the inlet open", held, limit)
+
+
+class InletLeak(Rule):
+    """With the inlet commanded closed and no valve changed for a whole ``closed_inlet_window`` W, the
+    pressure rose by more than ``closed_inlet_rise`` over that window (regression slope x W) AND the
+    rise is not dying away: the slope over the window's second half is at least ``leak_persist_ratio``
+    (0.8) of the first half's.
+
+    Why: after an expansion the cooled gas rewarms and the pressure rises as A(1 - exp(-t/tau)),
+    which can exceed the rise limit in one window; its slope decays by exp(-W/(2 tau)) between the
+    halves, i.e. below 0.8 for tau < 2.2 W.  A leaking inlet from a supply far above the cell
+    pressure feeds a nearly constant flow, so its slope does not decay.  A rewarming slower than
+    2.2 W rises by at most A(1 - exp(-W/tau)) < 0.37 A within a window, so it can only trip when its
+    whole amplitude exceeds about 2.7 x closed_inlet_rise.  The leak rates caught are those above
+    closed_inlet_rise / W (400 Pa/s with the defaults).
+    """
+
+    kind = "inlet_leak"
+    fields = ("closed_inlet_rise", "closed_inlet_window")
+
+    def __init__(self, limits: Limits, tuning: Tuning) -> None:
+        super().__init__(limits, tuning)
+        self.persist = tuning.leak_persist_ratio
+        self.window: deque[tuple[float, float]] = deque()
+        self.valve_changes = 0  # the window holds samples since this many valve changes
+
+    def check(self, obs: Observation, seen: Seen) -> _Condition | None:
+        if seen.inlet_open:
+            return None
+        if seen.valve_changes != self.valve_changes:  # a valve moved: judge from that moment on
+            self.window.clear()
+            self.valve_changes = seen.valve_changes
+        t, g = seen.t, float(obs.gauge)
+        lim = self.limits
+        w = lim.closed_inlet_window
+        win = self.window
+        win.append((t, g))
+        while win and win[0][0] < t - w * (1 + 1e-9):
+            win.popleft()
+        if t - seen.valves_changed_at < w * (1 - 1e-9) or len(win) < 6:
+            return None
+        if win[-1][1] - win[0][1] < 0.5 * lim.closed_inlet_rise:  # cheap pre-check
+            return None
+        arr = np.array(win)
+        ts, ps = arr[:, 0], arr[:, 1]
+        rise = _slope(ts, ps) * w
+        if not rise > lim.closed_inlet_rise:
+            return None
+        mid = ts[0] + (ts[-1] - ts[0]) / 2.0
+        first = ts <= mid
+        if first.sum() < 3 or (~first).sum() < 3:
+            return None
+        s1 = _slope(ts[first], ps[first])
+        s2 = _slope(ts[~first], ps[~first])
+        if not (s1 > 0 and s2 >= self.persist * s1):
+            return None  # decaying rise: gas rewarming, not a leak
+        return _Condition(
+            self.kind,
+            f"pressure rose {rise:.6g} Pa in {w:.3g} s with the inlet commanded closed and no valve change"
+            f" (rate {s2:.6g} Pa/s, not decaying)",
+            rise,
+            lim.closed_inlet_rise,
+        )
+
+
+class VentTimeout(Rule):
+    """The vent commanded open with the inlet closed for ``vent_timeout`` s, and a valid gauge still
+    beyond +/-``vent_baseline_tolerance``: a blocked vent or one stuck closed, in any phase.
+
+    Why here and not only in the sequence: the sequence's own vent step has its time-out, but gas
+    is also vented by the safe state after a run or a fault, at start-up and between purge pulses;
+    pressure that stays trapped behind a vent the operator believes open is the hazard.
+    """
+
+    kind = "vent_timeout"
+    fields = ("vent_timeout", "vent_baseline_tolerance")
+
+    def check(self, obs: Observation, seen: Seen) -> _Condition | None:
+        if seen.vented_since is None:
+            return None
+        lim = self.limits
+        held = seen.t - seen.vented_since
+        g = float(obs.gauge)
+        if not (held >= lim.vent_timeout and abs(g) > lim.vent_baseline_tolerance):
+            return None
+        return _Condition(self.kind, f"vent open for {held:.3g} s and the gauge still at {g:.6g} Pa"
+                          f" (tolerance +/-{lim.vent_baseline_tolerance:.6g} Pa, phase {obs.phase})",
+                          held, lim.vent_timeout)
+
+
+#: The order in which the rules are asked; the first to trip on an observation wins.
+RULES: tuple[type[Rule], ...] = (InvalidPressurised, Overpressure, Stale, RiseRate, Frozen, InletLeak, VentTimeout)
+SAMPLE_KINDS = tuple(r.kind for r in RULES)
+
+
+# -------------------------------------------------------------------------------------- monitor
 
 class InterlockMonitor:
-    """Evaluates the interlock rules per observation; acts, records and latches on a trip."""
+    """Asks the rules in order on every observation; acts, records and latches on a trip."""
 
     def __init__(
         self,
@@ -161,14 +369,21 @@ class InterlockMonitor:
         self.roles = roles
         self._act = act
         self._on_trip = on_trip
-        self.rise_samples = rise_samples
-        self.leak_persist_ratio = leak_persist_ratio
-        self._h = _History()
+        self.tuning = Tuning(rise_samples, leak_persist_ratio)
+        self._fresh()
         self._latched: Trip | None = None
         self._index = -1
         self.suppressed: dict[str, int] = {}  # conditions seen while latched, per kind
         self.trips: list[Trip] = []  # every trip raised (not the suppressed repeats)
         self.last_reset_refusal: str | None = None
+
+    def _fresh(self) -> None:
+        """New rule memories and a new view (at start and after a reset)."""
+        self._seen = Seen()
+        self.rules = [cls(self.limits, self.tuning) for cls in RULES]
+        # bound checks, in RULES order: this loop runs on every sample
+        self._on_valid = tuple(r.check for r in self.rules if r.sees in ("valid", "both"))
+        self._on_invalid = tuple(r.check for r in self.rules if r.sees in ("invalid", "both"))
 
     # ------------------------------------------------------------------ state
     @property
@@ -177,7 +392,7 @@ class InterlockMonitor:
 
     @property
     def last_valid_gauge(self) -> float | None:
-        return self._h.last_valid_gauge
+        return self._seen.last_valid_gauge
 
     @property
     def sample_count(self) -> int:
@@ -233,7 +448,7 @@ class InterlockMonitor:
             log.info("interlock reset refused: %s", why)
             return False
         # start the rule memories afresh from this observation, then make sure it is clean
-        self._h = _History()
+        self._fresh()
         cond = self._evaluate(now_obs)  # not counted as a sample: observe() counts samples
         if cond is not None:
             self.last_reset_refusal = f"{cond.kind}: {cond.message}"
@@ -269,130 +484,38 @@ class InterlockMonitor:
                 log.exception("on_trip callback failed for %s", trip.kind)
         return trip
 
-    # ------------------------------------------------------------------ rules
+    # ------------------------------------------------------------------ evaluating
     def _evaluate(self, obs: Observation) -> _Condition | None:
-        h = self._h
-        lim = self.limits
-        t = float(obs.t)
+        """Update the shared view, then ask the rules in order; the first condition wins."""
+        seen = self._seen
+        t = seen.t = float(obs.t)
         valves = obs.valves
-        inlet_open = bool(valves.get(self.roles.inlet, False))
-
-        if h.valves != valves:
-            h.valves_changed_at = t
-            h.valves = dict(valves)  # a copy only when something changed: this runs on every sample
-            h.leak.clear()
+        inlet_open = seen.inlet_open = bool(valves.get(self.roles.inlet, False))
+        if seen.valves != valves:
+            seen.valves_changed_at = t
+            seen.valves = dict(valves)  # a copy only when something changed: this runs on every sample
+            seen.valve_changes += 1
         if inlet_open:
-            if h.inlet_open_since is None:
-                h.inlet_open_since = t
+            if seen.inlet_open_since is None:
+                seen.inlet_open_since = t
+            seen.vented_since = None
         else:
-            h.inlet_open_since = None
-        if h.t_ref_valid is None:
-            h.t_ref_valid = t  # the stale clock starts with the first observation
-
-        valid = obs.reading.valid and math.isfinite(obs.gauge)
-        gap = t - h.t_ref_valid
-        if not valid:
-            pressurised = inlet_open or (
-                h.last_valid_gauge is not None and h.last_valid_gauge > lim.invalid_trip_pressure
-            )
-            if pressurised:
-                last = "none" if h.last_valid_gauge is None else f"{h.last_valid_gauge:.6g} Pa"
-                flag = obs.reading.validity.value
-                if obs.reading.detail:
-                    flag += f": {obs.reading.detail}"
-                return _Condition(
-                    INVALID_PRESSURISED,
-                    f"invalid reading ({flag}) while pressurised (last valid gauge {last},"
-                    f" inlet {'open' if inlet_open else 'closed'}, phase {obs.phase})",
-                    h.last_valid_gauge,
-                    lim.invalid_trip_pressure,
-                )
-            if gap > lim.stale_after:
-                return self._stale(gap, obs)
-            return None
-
-        g = float(obs.gauge)
-        h.t_ref_valid = t
-        h.last_valid_gauge = g
-        if g > lim.max_pressure:
-            return _Condition(
-                OVERPRESSURE,
-                f"gauge {g:.6g} Pa above max_pressure {lim.max_pressure:.6g} Pa (phase {obs.phase})",
-                g,
-                lim.max_pressure,
-            )
-        if gap > lim.stale_after:
-            return self._stale(gap, obs)
-
-        h.rise.append((t, g))
-        while len(h.rise) > self.rise_samples:
-            h.rise.popleft()
-        if len(h.rise) == self.rise_samples:
-            rate = _slope_pairs(h.rise)
-            if math.isfinite(rate) and rate > lim.max_rise_rate:
-                return _Condition(
-                    RISE_RATE,
-                    f"pressure rising at {rate:.6g} Pa/s over {self.rise_samples} samples,"
-                    f" limit {lim.max_rise_rate:.6g} Pa/s (phase {obs.phase})",
-                    rate,
-                    lim.max_rise_rate,
-                )
-
-        bits = _bits(float(obs.reading.value))
-        if bits != h.frozen_bits:
-            h.frozen_bits = bits
-            h.frozen_since = t
-        if h.inlet_open_since is not None:
-            held = t - max(h.frozen_since, h.inlet_open_since)
-            if held >= lim.frozen_after:
-                return _Condition(
-                    FROZEN,
-                    f"reading bit-identical ({obs.reading.value!r}) for {held:.3g} s with the inlet open",
-                    held,
-                    lim.frozen_after,
-                )
-
-        if not inlet_open:
-            return self._leak_rule(t, g)
+            seen.inlet_open_since = None
+            if not valves.get(self.roles.vent, False):
+                seen.vented_since = None
+            elif seen.vented_since is None:
+                seen.vented_since = t
+        if seen.t_ref_valid is None:
+            seen.t_ref_valid = t  # the stale clock starts with the first observation
+        seen.gap = t - seen.t_ref_valid
+        if obs.reading.valid and math.isfinite(obs.gauge):
+            seen.t_ref_valid = t
+            seen.last_valid_gauge = float(obs.gauge)
+            checks = self._on_valid
+        else:
+            checks = self._on_invalid
+        for check in checks:
+            cond = check(obs, seen)
+            if cond is not None:
+                return cond
         return None
-
-    def _stale(self, gap: float, obs: Observation) -> _Condition:
-        return _Condition(
-            STALE,
-            f"no valid pressure sample for {gap:.3g} s"
-            f" (limit {self.limits.stale_after:.3g} s, phase {obs.phase})",
-            gap,
-            self.limits.stale_after,
-        )
-
-    def _leak_rule(self, t: float, g: float) -> _Condition | None:
-        h = self._h
-        lim = self.limits
-        w = lim.closed_inlet_window
-        h.leak.append((t, g))
-        while h.leak and h.leak[0][0] < t - w * (1 + 1e-9):
-            h.leak.popleft()
-        if t - h.valves_changed_at < w * (1 - 1e-9) or len(h.leak) < 6:
-            return None
-        if h.leak[-1][1] - h.leak[0][1] < 0.5 * lim.closed_inlet_rise:  # cheap pre-check
-            return None
-        arr = np.array(h.leak)
-        ts, ps = arr[:, 0], arr[:, 1]
-        rise = _slope(ts, ps) * w
-        if not rise > lim.closed_inlet_rise:
-            return None
-        mid = ts[0] + (ts[-1] - ts[0]) / 2.0
-        first = ts <= mid
-        if first.sum() < 3 or (~first).sum() < 3:
-            return None
-        s1 = _slope(ts[first], ps[first])
-        s2 = _slope(ts[~first], ps[~first])
-        if not (s1 > 0 and s2 >= self.leak_persist_ratio * s1):
-            return None  # decaying rise: gas rewarming, not a leak
-        return _Condition(
-            INLET_LEAK,
-            f"pressure rose {rise:.6g} Pa in {w:.3g} s with the inlet commanded closed and no valve change"
-            f" (rate {s2:.6g} Pa/s, not decaying)",
-            rise,
-            lim.closed_inlet_rise,
-        )
