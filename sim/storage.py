@@ -198,8 +198,8 @@ class VolatileDisk:
                 self.entries[d] = {n: os.lstat(os.path.join(d, n)).st_ino for n in os.listdir(d)}
                 return
             self.tracked.add(st.st_ino)
-            size = st.st_size
-            self.contents[st.st_ino] = os.pread(fd, size, 0) if size else b""
+            with open(f"/proc/self/fd/{fd}", "rb") as fh:  # the fd itself may be write-only
+                self.contents[st.st_ino] = fh.read()
 
     def power_cut(self, dest: Path, *, keep_unsynced: float = 0.0) -> Path:
         """Copy the folder to ``dest`` as a power loss now would leave it (see the module doc)."""
@@ -227,7 +227,7 @@ class VolatileDisk:
                 if durable is not None:
                     self._copy(path, dest / name, keep)
                 continue
-            if ino not in self.tracked and durable is None:
+            if ino not in self.tracked and durable in (None, ino):
                 shutil.copy2(path, dest / name)  # written by someone else (SQLite syncs itself): as it is
                 continue
             if durable is None:

@@ -243,6 +243,9 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
         if not engine.terminal:  # KeyboardInterrupt and the like: safe state, then keep what we have
             inst.safe_state()
             engine.request_abort("controller stopped", inst.clock.now())
+        # a write that failed on the last tick, after the run had ended: the trip came too late to fault it
+        late_loss = controller.monitor.latched if controller.recorder is not recorder and engine.state == "done" \
+            else None
         controller.engine = None
         controller.recorder = None
         try:
@@ -252,12 +255,13 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
             _close_after_bookkeeping_error(catalog, recorder, run_id, engine, exc)
             raise RunFault(run_id, f"run {run_id}: {type(exc).__name__} while storing the run: {exc}; "
                                    "the instrument is in the safe state, the record may be incomplete") from exc
-        _store(summary, prepared, recorder, catalog, cal_use, inst)
+        _store(summary, prepared, recorder, catalog, cal_use, inst,
+               late_loss=f"end of the run record ({late_loss.message})" if late_loss is not None else None)
     return summary
 
 
 def _store(summary: dict[str, Any], prepared: PreparedRun, recorder: RunRecorder, catalog: Catalog,
-           cal_use: Any, inst: Instrument) -> None:
+           cal_use: Any, inst: Instrument, *, late_loss: str | None = None) -> None:
     """Every bookkeeping step on its own: one that fails (a full disk, say) must not keep the next
     from being tried.  What was not saved goes into the summary, the row's message and, if it can
     still be written, the run's events; the row is closed as a fault."""
@@ -266,6 +270,10 @@ def _store(summary: dict[str, Any], prepared: PreparedRun, recorder: RunRecorder
     lost: list[str] = []
     failures: list[BaseException] = []
     before = (summary["status"], summary["fault"])
+    if late_loss is not None:
+        lost.append(late_loss)
+        failures.append(RecordWriteError(late_loss, recorder.folder))
+        _mark_not_saved(summary, lost, failures, before)
 
     def attempt(what: str, step: Callable[[], Any]) -> None:
         try:
@@ -338,7 +346,8 @@ def _mark_not_saved(summary: dict[str, Any], lost: list[str], failures: list[Bas
     if status == "fault" and fault:
         summary["fault"] = {**fault, "message": f"{fault['message']}; then {text}"}
     else:
-        kind = "write_error" if any(storage_cause(f) for f in failures) else "exception"
+        kind = "write_error" if any(storage_cause(f) or isinstance(f, RecordWriteError) for f in failures) \
+            else "exception"
         summary["fault"] = {"kind": kind, "message": f"run {status}, but {text}"}
 
 
