@@ -257,3 +257,75 @@ def test_a_read_only_catalog_is_opened_read_only_and_refuses_writes(tmp_path, re
         assert cat.readonly and len(cat.list_runs()) == 1
         with pytest.raises(sqlite3.OperationalError, match="readonly"):
             cat.mark_interrupted_on_startup()
+
+
+# ------------------------------------------------------------------------------------------------ daemon start
+def test_a_daemon_restarted_on_a_still_full_disk_asserts_the_safe_state_and_exits_in_one_line(
+        tmp_path, capsys, monkeypatch):
+    """The previous daemon died on a full disk and left its run 'running'; the restarted one must
+    mark it interrupted (a catalog write) and cannot: safe state, one line, exit 6, no traceback."""
+    import logging
+    import socket
+
+    from pycnoctl.controller.jobs import measurement
+    from pycnoctl.drivers import simulated
+    from pycnoctl.sim.storage import FaultyFiles, patch_writers
+
+    data = tmp_path / "data"
+    data.mkdir()
+    with Catalog(data / "catalog.sqlite") as cat:
+        cat.create_run(kind="measure", status="running")
+    seen: dict[str, Any] = {}
+    real_build = simulated.build_sim_instrument
+
+    def build(*a: Any, **kw: Any) -> Any:
+        inst = real_build(*a, **kw)
+        inst.valves.set_valves({"vent": False})
+        inst.valves.set_valves({"inlet": True})  # as a crash mid-fill could leave the relays
+        seen["truth"] = inst.extras["sim"]
+        return inst
+
+    monkeypatch.setattr(simulated, "build_sim_instrument", build)
+    plan = IoPlan(4)  # the lock is taken (3 writes); from the first catalog commit on the disk is full
+    layer = FaultyFiles(plan)
+    monkeypatch.setattr(logging, "open", layer.open, raising=False)  # the daemon log: FileHandler opens with it
+    undo = patch_writers(layer, [runfolder, datalock, measurement], Catalog)
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    handlers = list(logging.getLogger("pycnoctl").handlers)
+    try:
+        rc = main(["serve", "--sim", "--data", str(data), "--port", str(port)])
+    finally:
+        undo()
+        logging.getLogger("pycnoctl").handlers[:] = handlers  # serve leaves its log handler attached
+    out = capsys.readouterr()
+    assert plan.fired == "catalog commit"
+    v = seen["truth"].actual_valves()
+    assert v["inlet"] is False and v["vent"] is True
+    assert rc == 6 and "Traceback" not in out.err + out.out and "Logging error" not in out.err
+    lines = [ln for ln in out.err.splitlines() if ln.strip()]
+    assert lines[-1].startswith("pycnoctl serve: storage fault: disk full"), out.err
+    assert len(lines) == 1
+
+
+def test_a_daemon_log_on_a_failing_disk_says_so_once_without_a_traceback(tmp_path, capsys, monkeypatch):
+    import logging
+
+    from pycnoctl.controller.service.daemon import attach_json_log
+    from pycnoctl.sim.storage import FaultyFiles
+
+    plan = IoPlan(1, err=errno.EIO)
+    monkeypatch.setattr(logging, "open", FaultyFiles(plan).open, raising=False)
+    handler = attach_json_log(tmp_path / "daemon.log.jsonl")
+    log = logging.getLogger("pycnoctl.test")
+    try:
+        for i in range(3):
+            log.warning("record %d", i)
+    finally:
+        logging.getLogger("pycnoctl").removeHandler(handler)
+        handler.close()
+    err = capsys.readouterr().err
+    assert plan.failed >= 3 and "Traceback" not in err and "Logging error" not in err
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert len(lines) == 1 and "daemon log" in lines[0] and "Input/output error" in lines[0]

@@ -107,10 +107,37 @@ class JsonLineFormatter(logging.Formatter):
         return json.dumps(_clean(out), default=str)
 
 
+class _LogFileHandler(logging.FileHandler):
+    """A log file on a full or failing disk: one line on stderr the first time, never a traceback
+    (logging's default prints one per record), and the loop goes on."""
+
+    failed: str | None = None
+
+    def handleError(self, record: logging.LogRecord | None) -> None:
+        import sys
+
+        if self.failed is None:
+            exc = sys.exc_info()[1]
+            self.failed = f"{type(exc).__name__}: {exc}" if exc is not None else "unknown error"
+            print(f"pycnoctl serve: daemon log {self.baseFilename} not written ({self.failed})", file=sys.stderr)
+
+    def flush(self) -> None:
+        try:
+            super().flush()
+        except OSError:
+            self.handleError(None)
+
+    def close(self) -> None:
+        try:  # what is still buffered cannot be written either
+            super().close()
+        except OSError:
+            self.handleError(None)
+
+
 def attach_json_log(path: Path) -> logging.Handler:
     """Log everything pycnoctl says (INFO and up) as JSON lines to ``path``, flushed per line."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    handler = logging.FileHandler(path, encoding="utf-8")
+    handler = _LogFileHandler(path, encoding="utf-8")
     handler.setFormatter(JsonLineFormatter())
     handler.setLevel(logging.INFO)
     root = logging.getLogger("pycnoctl")
