@@ -329,3 +329,38 @@ def test_a_daemon_log_on_a_failing_disk_says_so_once_without_a_traceback(tmp_pat
     assert plan.failed >= 3 and "Traceback" not in err and "Logging error" not in err
     lines = [ln for ln in err.splitlines() if ln.strip()]
     assert len(lines) == 1 and "daemon log" in lines[0] and "Input/output error" in lines[0]
+
+
+def test_a_daemon_whose_run_cannot_create_its_record_stays_up_safe_and_paused(tmp_path, monkeypatch):
+    import time
+
+    from pycnoctl.controller.record.runfolder import RecordWriteError
+    from pycnoctl.controller.service.daemon import Daemon
+    from pycnoctl.drivers.simulated import build_sim_instrument
+
+    def full(self: RunRecorder, root: Path, run_id: str, *a: Any, **kw: Any) -> None:
+        cause = OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        raise RecordWriteError("run folder", Path(root) / run_id, cause) from cause  # as runfolder raises it
+
+    monkeypatch.setattr(RunRecorder, "__init__", full)
+    inst = build_sim_instrument(None)
+    truth = inst.extras["sim"]
+    d = Daemon(inst, tmp_path / "data")
+    d.start()
+    try:
+        rid = d.submit(sequence="quick-demo")["run_id"]
+        t_end = time.monotonic() + 10
+        while d.catalog.get_run(rid).status in ("queued", "running") and time.monotonic() < t_end:
+            time.sleep(0.02)
+        time.sleep(0.2)
+        row = d.catalog.get_run(rid)
+        assert row.status == "fault" and "run record not created (disk full)" in (row.message or "")
+        assert d.running and d.failed is None  # the loop (and the interlocks) go on
+        s = d.snapshot()
+        assert s["queue"]["paused"] and "not stored" in s["queue"]["paused_reason"]
+        v = truth.actual_valves()
+        assert v["inlet"] is False and v["vent"] is True
+    finally:
+        d.stop()
+        d.catalog.close()
+        inst.close()

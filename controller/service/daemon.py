@@ -36,9 +36,10 @@ from pathlib import Path
 from typing import Any
 
 from pycnoctl.controller.domain.yamlio import ConfigError, Problem
-from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+from pycnoctl.controller.jobs.measurement import RunFault, RunRequest, execute, prepare
 from pycnoctl.controller.maths import results
 from pycnoctl.controller.record.catalog import Catalog, is_run_id
+from pycnoctl.controller.record.storagefault import StorageFault
 from pycnoctl.controller.run.control import Controller
 from pycnoctl.controller.run.sequence import estimate_duration, list_shipped
 from pycnoctl.drivers.instrument import Instrument
@@ -709,6 +710,13 @@ class Daemon:
         try:
             summary = execute(prepared, self.controller, root=self.data / "runs", catalog=self.catalog,
                               run_id=rid, should_stop=self._should_stop)
+        except (StorageFault, RunFault) as exc:  # safe state reached, row closed where it could be written:
+            # the loop goes on (the interlocks watch while idle); the queue waits for the operator
+            log.error("run %s not stored: %s", rid, exc, extra={"data": {"event": "not_stored", "run_id": rid}})
+            self.bus.publish("run_finished", {"run_id": rid, "status": "fault", "message": str(exc)})
+            self._set(activity="idle")
+            self.pause(f"run {rid} not stored: {exc}; check the data folder, then resume the queue")
+            return
         finally:
             self._run_wall_last = None
             self._set(current_run=None)
