@@ -188,8 +188,11 @@ def read_only(monkeypatch):
     so then EROFS is injected where the folder is opened for writing: files and the lock get
     EROFS at open, the catalog is opened as SQLite opens a file it may not write (mode=ro), and
     access(2) answers as it does on a read-only mount."""
+    made: list[Path] = []
+
     def make(root: Path) -> None:
         if os.geteuid() != 0:
+            made.append(root)
             for d, _dirs, files in os.walk(root):
                 for f in files:
                     os.chmod(os.path.join(d, f), 0o444)
@@ -221,7 +224,10 @@ def read_only(monkeypatch):
             monkeypatch.setattr(m, "open", ro_open, raising=False)
         monkeypatch.setattr(catalog_module.sqlite3, "connect", ro_connect)
         monkeypatch.setattr(catalog_module.os, "access", ro_access)
-    return make
+    yield make
+    for root in made:  # writable again, so that the temporary folder can be removed
+        for d, _dirs, _files in os.walk(root):
+            os.chmod(d, 0o755)
 
 
 def test_read_only_media_runs_and_show_read_and_run_refuses_in_one_line(tmp_path, capsys, read_only):
@@ -250,7 +256,8 @@ def test_read_only_media_runs_and_show_read_and_run_refuses_in_one_line(tmp_path
 
 def test_a_read_only_catalog_is_opened_read_only_and_refuses_writes(tmp_path, read_only):
     data = tmp_path / "data"
-    with Catalog(data.joinpath("catalog.sqlite") if data.mkdir() is None else data) as cat:
+    data.mkdir()
+    with Catalog(data / "catalog.sqlite") as cat:
         cat.create_run(kind="measure", status="running")
     read_only(data)
     with Catalog.for_reading(data / "catalog.sqlite") as cat:
