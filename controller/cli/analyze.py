@@ -41,7 +41,7 @@ def _chambers(args: argparse.Namespace, stored: dict[str, Any], root: Any) -> An
     if args.calibration:
         from pycnoctl.controller.record.catalog import Catalog
 
-        with Catalog(root / "catalog.sqlite") as cat:
+        with Catalog.for_reading(root / "catalog.sqlite") as cat:
             rec = cat.get_calibration(args.calibration)
         if rec is None:
             raise UsageError(f"--calibration: no calibration {args.calibration!r} in the catalog")

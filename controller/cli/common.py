@@ -73,7 +73,12 @@ def lock_data_folder(root: Path, verb: str, *, mark_interrupted: bool = True) ->
         lock = acquire(root, f"pycnoctl {verb}")
     except DataFolderBusy as exc:
         raise UsageError(str(exc)) from None
-    except OSError as exc:  # read-only media, no permission: a writer cannot work here
+    except OSError as exc:  # read-only media, disk full, no permission: a writer cannot work here
+        from pycnoctl.controller.record.storagefault import StorageFault, storage_cause
+
+        cause = storage_cause(exc)
+        if cause is not None:  # a condition of the machine, not of the input: exit 6
+            raise StorageFault(f"cannot lock the data folder {root} ({cause}): {exc.strerror or exc}") from None
         raise UsageError(f"cannot lock the data folder {root}: {exc.strerror or exc}") from None
     catalog_path = root / "catalog.sqlite"
     if mark_interrupted and catalog_path.exists():  # the daemon marks them itself (and pauses its queue)

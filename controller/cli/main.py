@@ -125,6 +125,14 @@ def main(argv: Sequence[str] | None = None) -> int:
         # never a traceback to the user: one line, exit 3 (PYCNOCTL_DEBUG=1 shows it)
         if os.environ.get("PYCNOCTL_DEBUG"):
             raise
+        from pycnoctl.controller.record import storagefault as storage
+
+        cause = storage.storage_cause(exc)
+        if isinstance(exc, storage.StorageFault) or cause is not None:
+            # disk full, I/O error, read-only media: a condition of the machine, told as one (exit 6)
+            text = str(exc) if isinstance(exc, storage.StorageFault) else f"{cause}: {exc}"
+            print(f"pycnoctl {args.verb}: storage fault: {text}", file=sys.stderr)
+            return int(storage.EXIT_STORAGE)
         print(f"pycnoctl {args.verb}: failed: {type(exc).__name__}: {exc}", file=sys.stderr)
         return 3
 

@@ -43,7 +43,7 @@ def main(args: argparse.Namespace) -> int:
     path = root / "catalog.sqlite"
     if not path.exists():
         raise UsageError(f"no catalog at {path} (set --data or PYCNOCTL_DATA)")
-    with Catalog(path) as catalog:
+    with Catalog.for_reading(path) as catalog:
         stats = sample_set(catalog, prefix=args.samples, run_ids=args.runs)
     title = f"sample set {args.samples}*" if args.samples is not None else "sample set (listed runs)"
     out = Path(args.out) if args.out else root / "reports" / "sample-set.html"

@@ -1,8 +1,9 @@
 """``pycnoctl run``: one measurement, with a live terminal view and a stored record.
 
 Exit codes: 0 completed, 2 bad input (or the data folder held by another writer), 3 fault (an
-interlock, a sequence failure or an unexpected error: one line on stderr, details in the run's
-events), 4 aborted, 5 a leak check that found a leak.
+interlock, a sequence failure, an unexpected error, or a record that could not be written during the
+run: one line on stderr, details in the run's events), 4 aborted, 5 a leak check that found a leak,
+6 a storage fault (disk full, I/O error, read-only media) that kept the run from starting.
 Ctrl-C aborts into the safe state; the record up to that moment is kept.
 """
 

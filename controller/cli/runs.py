@@ -85,7 +85,7 @@ def main(args: argparse.Namespace) -> int:
         raise UsageError(f"no catalog at {path} (set --data or PYCNOCTL_DATA)")
     since = parse_time(args.since, "--since") if args.since else None
     until = parse_time(args.until, "--until") if args.until else None
-    with Catalog(path) as catalog:
+    with Catalog.for_reading(path) as catalog:
         rows = [row_dict(r) for r in query(catalog, sample=args.sample, since=since, until=until,
                                              status=args.status, limit=args.limit, before=args.before)]
     if args.json:

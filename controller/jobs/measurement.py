@@ -23,6 +23,7 @@ from pycnoctl.controller.maths import results
 from pycnoctl.controller.maths.advisor import advise
 from pycnoctl.controller.record.catalog import Catalog
 from pycnoctl.controller.record.runfolder import RecordWriteError, RunRecorder
+from pycnoctl.controller.record.storagefault import StorageFault, storage_cause
 from pycnoctl.controller.run.control import Controller
 from pycnoctl.controller.run.engine import RunEngine
 from pycnoctl.controller.run.sequence import Sequence, check_against_instrument, load_sequence, resolve_sequence
@@ -192,18 +193,36 @@ def _version() -> str:
 def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalog: Catalog,
             run_id: str | None = None, should_stop: Callable[[], bool | str] = lambda: False,
             max_duration: float | None = None) -> dict[str, Any]:
-    """Drive one run to its end on the controller; returns the summary that was stored."""
+    """Drive one run to its end on the controller; returns the summary that was stored.
+
+    A storage fault (disk full, EIO, read-only media) before the run moves any gas raises
+    StorageFault with the catalog row closed where it could be written; after that, every
+    bookkeeping step is attempted on its own and what could not be saved is in the summary."""
     inst = controller.instrument
     seq = prepared.sequence
     req = prepared.request
-    if run_id is None:
-        run_id = catalog.create_run(kind=seq.kind, sample_id=req.sample_id, sequence_name=seq.name,
-                                    status="running")
-    else:  # issued earlier (the daemon's queue): it moves from queued to running now
-        catalog.update_status(run_id, "running")
-    recorder = RunRecorder(root, run_id, inst.valves.valve_names,
-                           meta={"sample_id": req.sample_id, "sequence": seq.name, "operator": req.operator,
-                                 "expansion_volume": prepared.expansion_volume})
+    try:
+        if run_id is None:
+            run_id = catalog.create_run(kind=seq.kind, sample_id=req.sample_id, sequence_name=seq.name,
+                                        status="running")
+        else:  # issued earlier (the daemon's queue): it moves from queued to running now
+            catalog.update_status(run_id, "running")
+    except Exception as exc:
+        cause = storage_cause(exc)
+        if cause is None:
+            raise
+        raise StorageFault(f"the catalog cannot be written ({cause}: {exc}); the run did not start, "
+                           "the instrument is in the safe state") from exc
+    try:
+        recorder = RunRecorder(root, run_id, inst.valves.valve_names,
+                               meta={"sample_id": req.sample_id, "sequence": seq.name, "operator": req.operator,
+                                     "expansion_volume": prepared.expansion_volume})
+    except RecordWriteError as exc:  # nothing has moved: close the row and say why
+        message = f"write_error: run record not created ({storage_cause(exc) or 'write failed'}): {exc}"
+        with contextlib.suppress(Exception):  # the catalog may be on the same full disk: the next writer closes it
+            catalog.finish_run(run_id, "fault", message=message)
+        raise StorageFault(f"run {run_id}: {message}; the run did not start, the instrument is in the safe state"
+                           ) from exc
     cal_use = None
     if seq.kind == "measure":  # compute with the latest calibration of this volume and gas; warn on mismatch
         from pycnoctl.controller.jobs.calibration import use_latest_calibration
@@ -213,9 +232,9 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
         prepared.warnings.extend(cal_use.warnings)
     engine = RunEngine(seq, inst, expansion_volume=prepared.expansion_volume)
     started, t0 = time.time(), inst.clock.now()
-    for w in prepared.warnings:
-        recorder.event("warning", t0, w)
     try:
+        for w in prepared.warnings:
+            recorder.event("warning", t0, w)
         controller.start(engine, recorder)
         controller.run_until_done(should_stop, max_duration)
     except Exception as exc:  # outside a tick (the stop check, the clock): the same guarded path
@@ -224,42 +243,112 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
         if not engine.terminal:  # KeyboardInterrupt and the like: safe state, then keep what we have
             inst.safe_state()
             engine.request_abort("controller stopped", inst.clock.now())
+        # a write that failed on the last tick, after the run had ended: the trip came too late to fault it
+        late_loss = controller.monitor.latched if controller.recorder is not recorder and engine.state == "done" \
+            else None
         controller.engine = None
         controller.recorder = None
         try:
             summary = summarize(run_id, prepared, engine, inst, started=started, ended=time.time(),
                                 t0=t0, t1=inst.clock.now())
-            try:
-                if cal_use is not None:
-                    late = cal_use.after_run(summary)
-                    for w in late:
-                        recorder.event("warning", inst.clock.now(), w)
-                    summary["warnings"].extend(late)
-                    summary["calibration"]["record"] = jsonable(cal_use.describe())
-                recorder.write_cycles([_cycle_record(c) for c in summary["cycles"]])
-                recorder.write_summary(
-                    sequence=summary["sequence"], sequence_text=seq.raw_text or "",
-                    instrument=summary["instrument"], calibration=summary["calibration"],
-                    results={k: v for k, v in summary.items()
-                             if k not in ("sequence", "instrument", "calibration")},
-                )
-            except RecordWriteError as exc:
-                summary["warnings"].append(f"record incomplete: {exc}")
-            finally:
-                recorder.close()
-            catalog.add_cycles(run_id, [(c["index"], c["p1_gauge_pa"], c["p2_gauge_pa"], c["volume_m3"], c["kept"])
-                                        for c in summary["cycles"]])
-            catalog.finish_run(run_id, summary["status"], volume_m3=_m3(summary["volume_cm3"]),
-                               u_volume_m3=_m3(summary["volume_u_cm3"]),
-                               density=summary["density_g_cm3"] * 1e3 if summary["density_g_cm3"] else None,
-                               mass=req.mass,
-                               message=(summary["fault"] or {}).get("message") or summary["abort_reason"] or None,
-                               calibration_id=summary["calibration"].get("record_id"))
-        except Exception as exc:  # bookkeeping failed: the row must not stay 'running'; say what was lost
+        except Exception as exc:  # no summary at all: the row must not stay 'running'; say what was lost
             _close_after_bookkeeping_error(catalog, recorder, run_id, engine, exc)
             raise RunFault(run_id, f"run {run_id}: {type(exc).__name__} while storing the run: {exc}; "
                                    "the instrument is in the safe state, the record may be incomplete") from exc
+        _store(summary, prepared, recorder, catalog, cal_use, inst,
+               late_loss=f"end of the run record ({late_loss.message})" if late_loss is not None else None)
     return summary
+
+
+def _store(summary: dict[str, Any], prepared: PreparedRun, recorder: RunRecorder, catalog: Catalog,
+           cal_use: Any, inst: Instrument, *, late_loss: str | None = None) -> None:
+    """Every bookkeeping step on its own: one that fails (a full disk, say) must not keep the next
+    from being tried.  What was not saved goes into the summary, the row's message and, if it can
+    still be written, the run's events; the row is closed as a fault."""
+    seq = prepared.sequence
+    run_id = summary["run_id"]
+    lost: list[str] = []
+    failures: list[BaseException] = []
+    before = (summary["status"], summary["fault"])
+    if late_loss is not None:
+        lost.append(late_loss)
+        failures.append(RecordWriteError(late_loss, recorder.folder))
+        _mark_not_saved(summary, lost, failures, before)
+
+    def attempt(what: str, step: Callable[[], Any]) -> None:
+        try:
+            step()
+        except Exception as exc:
+            failures.append(exc)
+            cause = storage_cause(exc)
+            lost.append(f"{what} ({cause})" if cause else f"{what} ({type(exc).__name__} while storing "
+                                                           f"the run: {exc})")
+            _mark_not_saved(summary, lost, failures, before)  # before summary.json is written: it says so too
+
+    def late_warnings() -> None:
+        late = cal_use.after_run(summary)
+        summary["warnings"].extend(late)
+        summary["calibration"]["record"] = jsonable(cal_use.describe())
+        for w in late:
+            recorder.event("warning", inst.clock.now(), w)
+
+    if cal_use is not None:
+        attempt("calibration check", late_warnings)
+    attempt("cycles.csv", lambda: recorder.write_cycles([_cycle_record(c) for c in summary["cycles"]]))
+
+    def write_summary() -> None:
+        recorder.write_summary(
+            sequence=summary["sequence"], sequence_text=seq.raw_text or "",
+            instrument=summary["instrument"], calibration=summary["calibration"],
+            results={k: v for k, v in summary.items() if k not in ("sequence", "instrument", "calibration")},
+        )
+
+    attempt("summary.json", write_summary)
+    attempt("trace/events final flush", recorder.close)
+    attempt("catalog cycles", lambda: catalog.add_cycles(
+        run_id, [(c["index"], c["p1_gauge_pa"], c["p2_gauge_pa"], c["volume_m3"], c["kept"])
+                 for c in summary["cycles"]]))
+    if lost:
+        with contextlib.suppress(Exception):  # on a disk that is still full this fails too
+            _note_after_close(recorder, "not saved: " + "; ".join(str(f) for f in failures), "write_error" if any(
+                storage_cause(f) for f in failures) else type(failures[0]).__name__)
+    req = prepared.request
+    message = (summary["fault"] or {}).get("message") or summary["abort_reason"] or None
+    try:
+        catalog.finish_run(run_id, summary["status"], volume_m3=_m3(summary["volume_cm3"]),
+                           u_volume_m3=_m3(summary["volume_u_cm3"]),
+                           density=summary["density_g_cm3"] * 1e3 if summary["density_g_cm3"] else None,
+                           mass=req.mass, message=message, calibration_id=summary["calibration"].get("record_id"))
+        return
+    except Exception as exc:
+        failed: Exception = exc
+        why = f"catalog row ({storage_cause(exc) or f'{type(exc).__name__}: {exc}'})"
+    failures.append(failed)
+    try:  # the short form: only the status and why
+        catalog.finish_run(run_id, "fault", message=f"{message or 'run ended'}; then not saved: {why}")
+        lost.append(why)
+    except Exception:  # the catalog cannot be written at all: the next writer marks the row interrupted
+        lost.append(why + "; it stays 'running' until the next writer marks it interrupted")
+    _mark_not_saved(summary, lost, failures, before)
+    with contextlib.suppress(Exception):
+        _note_after_close(recorder, f"not saved: {why}", "write_error")
+
+
+def _mark_not_saved(summary: dict[str, Any], lost: list[str], failures: list[BaseException],
+                    before: tuple[str, dict[str, Any] | None]) -> None:
+    """The summary says what was not saved; a run that had not failed otherwise becomes a fault
+    (write_error for a storage fault, exception for anything else)."""
+    status, fault = before
+    text = "not saved: " + ", ".join(lost)
+    summary["not_saved"] = list(lost)
+    summary["warnings"] = [w for w in summary["warnings"] if not w.startswith("not saved: ")] + [text]
+    summary["status"] = "fault"
+    if status == "fault" and fault:
+        summary["fault"] = {**fault, "message": f"{fault['message']}; then {text}"}
+    else:
+        kind = "write_error" if any(storage_cause(f) or isinstance(f, RecordWriteError) for f in failures) \
+            else "exception"
+        summary["fault"] = {"kind": kind, "message": f"run {status}, but {text}"}
 
 
 class RunFault(Exception):
@@ -280,7 +369,7 @@ def _fail_outside_tick(controller: Controller, engine: RunEngine, recorder: RunR
     message = f"{type(exc).__name__} in run start: {exc}"
     with contextlib.suppress(Exception):  # the catalog row still says it
         recorder.event("exception", t, message, type=type(exc).__name__, where="run start")
-    engine.to_fault("exception", message, t)
+    engine.to_fault("write_error" if storage_cause(exc) else "exception", message, t)
 
 
 def _close_after_bookkeeping_error(catalog: Catalog, recorder: RunRecorder, run_id: str, engine: RunEngine,

@@ -20,11 +20,13 @@ import contextlib
 import dataclasses
 import datetime as _dt
 import json
+import os
 import re
 import secrets
 import signal
 import sqlite3
 import threading
+import urllib.parse
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -249,13 +251,50 @@ class _DeferSigint:
             signal.raise_signal(signal.SIGINT)
 
 
+def _writable(path: Path) -> bool:
+    """Whether the catalog could be written here (access(2) reports EROFS on read-only media, also to root)."""
+    folder = path.parent if str(path.parent) else Path(".")
+    return os.access(folder, os.W_OK) and (not path.exists() or os.access(path, os.W_OK))
+
+
+def _refused_write(exc: sqlite3.Error) -> bool:
+    """SQLITE_READONLY or SQLITE_CANTOPEN: the media will not take a write (a read may still work)."""
+    code = getattr(exc, "sqlite_errorcode", None)
+    return (isinstance(code, int) and code & 0xFF in (8, 14)) or "readonly" in str(exc).lower()
+
+
+def _connect_readonly(path: Path) -> sqlite3.Connection:
+    """A connection that never writes.  ``mode=ro`` reads a WAL catalog when its -shm file exists or
+    can be made; on media where neither holds, ``immutable=1`` (nothing can change it there anyway)."""
+    if not path.exists():
+        raise CatalogError(f"no catalog at {path}")
+    base = "file:" + urllib.parse.quote(str(path.resolve())) + "?mode=ro"
+    last: sqlite3.Error | None = None
+    for uri in (base, base + "&immutable=1"):
+        con = sqlite3.connect(uri, uri=True, isolation_level=None, check_same_thread=False, timeout=5.0)
+        try:
+            con.execute("PRAGMA query_only=ON")
+            con.execute("SELECT count(*) FROM sqlite_master").fetchone()
+            return con
+        except sqlite3.Error as exc:
+            con.close()
+            last = exc
+    assert last is not None
+    raise last
+
+
 class Catalog:
     """The runs database. Open once per process; methods are safe to call from any thread."""
 
-    def __init__(self, path: Path | str) -> None:
+    def __init__(self, path: Path | str, *, readonly: bool = False) -> None:
         self.path = Path(path)
+        self.readonly = readonly
         self._lock = threading.RLock()
         self._before_commit: Callable[[], None] | None = None  # test hook: runs inside the held section
+        if readonly:
+            self._con = _connect_readonly(self.path)
+            self._con.row_factory = sqlite3.Row
+            return
         self._con = sqlite3.connect(
             str(self.path), isolation_level=None, check_same_thread=False, timeout=5.0
         )
@@ -277,6 +316,20 @@ class Catalog:
                 raise CatalogError(
                     f"{self.path}: schema version {row[0]} is newer than this software ({SCHEMA_VERSION})"
                 )
+
+    @classmethod
+    def for_reading(cls, path: Path | str) -> Catalog:
+        """The catalog for a command that only reads (runs, show, report): opened read-only where
+        the folder or the file cannot be written (read-only media, a write-protected copy), since a
+        read/write open sets the journal mode and the schema and would fail there."""
+        path = Path(path)
+        if _writable(path):
+            try:
+                return cls(path)
+            except sqlite3.Error as exc:
+                if not _refused_write(exc):
+                    raise
+        return cls(path, readonly=True)
 
     # ------------------------------------------------------------------ plumbing
     @contextlib.contextmanager

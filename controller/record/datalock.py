@@ -46,10 +46,12 @@ class DataLock:
         """Empty the file (a clean end), then let go.  The file stays: unlinking it would race."""
         if self.handle.closed:
             return
-        try:
+        try:  # on a failing disk the owner text may stay: the next writer then takes it for a stale lock
             self.handle.seek(0)
             self.handle.truncate()
             self.handle.flush()
+        except OSError:
+            pass
         finally:
             fcntl.flock(self.handle, fcntl.LOCK_UN)
             self.handle.close()

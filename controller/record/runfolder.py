@@ -234,8 +234,13 @@ class RunRecorder:
         self._closed = False
         self._n_samples = 0
         try:
+            new_root = not Path(root).exists()
             Path(root).mkdir(parents=True, exist_ok=True)
             self.folder.mkdir()
+            # the folder's own entry must be durable too, or a power loss can drop the whole run
+            _fsync_dir(Path(root))
+            if new_root:
+                _fsync_dir(Path(root).parent)
         except OSError as exc:
             raise RecordWriteError("run folder", self.folder, exc) from exc
         self.meta = {

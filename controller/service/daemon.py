@@ -36,9 +36,10 @@ from pathlib import Path
 from typing import Any
 
 from pycnoctl.controller.domain.yamlio import ConfigError, Problem
-from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+from pycnoctl.controller.jobs.measurement import RunFault, RunRequest, execute, prepare
 from pycnoctl.controller.maths import results
 from pycnoctl.controller.record.catalog import Catalog, is_run_id
+from pycnoctl.controller.record.storagefault import StorageFault
 from pycnoctl.controller.run.control import Controller
 from pycnoctl.controller.run.sequence import estimate_duration, list_shipped
 from pycnoctl.drivers.instrument import Instrument
@@ -107,10 +108,37 @@ class JsonLineFormatter(logging.Formatter):
         return json.dumps(_clean(out), default=str)
 
 
+class _LogFileHandler(logging.FileHandler):
+    """A log file on a full or failing disk: one line on stderr the first time, never a traceback
+    (logging's default prints one per record), and the loop goes on."""
+
+    failed: str | None = None
+
+    def handleError(self, record: logging.LogRecord | None) -> None:
+        import sys
+
+        if self.failed is None:
+            exc = sys.exc_info()[1]
+            self.failed = f"{type(exc).__name__}: {exc}" if exc is not None else "unknown error"
+            print(f"pycnoctl serve: daemon log {self.baseFilename} not written ({self.failed})", file=sys.stderr)
+
+    def flush(self) -> None:
+        try:
+            super().flush()
+        except OSError:
+            self.handleError(None)
+
+    def close(self) -> None:
+        try:  # what is still buffered cannot be written either
+            super().close()
+        except OSError:
+            self.handleError(None)
+
+
 def attach_json_log(path: Path) -> logging.Handler:
     """Log everything pycnoctl says (INFO and up) as JSON lines to ``path``, flushed per line."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    handler = logging.FileHandler(path, encoding="utf-8")
+    handler = _LogFileHandler(path, encoding="utf-8")
     handler.setFormatter(JsonLineFormatter())
     handler.setLevel(logging.INFO)
     root = logging.getLogger("pycnoctl")
@@ -682,6 +710,13 @@ class Daemon:
         try:
             summary = execute(prepared, self.controller, root=self.data / "runs", catalog=self.catalog,
                               run_id=rid, should_stop=self._should_stop)
+        except (StorageFault, RunFault) as exc:  # safe state reached, row closed where it could be written:
+            # the loop goes on (the interlocks watch while idle); the queue waits for the operator
+            log.error("run %s not stored: %s", rid, exc, extra={"data": {"event": "not_stored", "run_id": rid}})
+            self.bus.publish("run_finished", {"run_id": rid, "status": "fault", "message": str(exc)})
+            self._set(activity="idle")
+            self.pause(f"run {rid} not stored: {exc}; check the data folder, then resume the queue")
+            return
         finally:
             self._run_wall_last = None
             self._set(current_run=None)
