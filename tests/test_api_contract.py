@@ -128,7 +128,9 @@ def test_sequence_names_are_never_paths(client: TestClient, name: str) -> None:
 
 
 def test_bad_requests_are_refused_before_anything_is_queued(client: TestClient, daemon: Daemon) -> None:
-    for body, code in [({"sequence": "quick-demo", "mass": "-3 g"}, 422),
+    # 400: the request breaks the published schema (a mass is positive); 422: the daemon refuses its content
+    for body, code in [({"sequence": "quick-demo", "mass": "-3 g"}, 400), ({"sequence": "quick-demo", "mass": 0}, 400),
+                       ({"sequence": "quick-demo", "mass": True}, 400),
                        ({"sequence": "quick-demo", "mass": "3 s"}, 400),
                        ({"sequence": "quick-demo", "colour": "red"}, 400), ({}, 422),
                        ({"sequence": "quick-demo", "sequence_text": "x"}, 422), ([1, 2], 400),

@@ -92,8 +92,8 @@ def test_missing_or_wrong_token_is_401(open_bind: TestClient) -> None:
 def test_login_sets_a_strict_httponly_cookie(daemon: Daemon) -> None:
     app = create_app(daemon, Policy(bind_host="192.0.2.10", port=8765, token=TOKEN))
     with TestClient(app, base_url="http://192.0.2.10:8765", follow_redirects=False) as c:
-        assert c.get("/login", params={"token": "wrong"}).status_code == 401
-        r = c.get("/login", params={"token": TOKEN})
+        assert c.post("/login", data={"token": "wrong"}).status_code == 401
+        r = c.post("/login", data={"token": TOKEN})
         assert r.status_code == 303
         cookie = r.headers["set-cookie"].lower()
         assert "httponly" in cookie and "samesite=strict" in cookie
