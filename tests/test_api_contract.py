@@ -130,7 +130,7 @@ def test_sequence_names_are_never_paths(client: TestClient, name: str) -> None:
 def test_bad_requests_are_refused_before_anything_is_queued(client: TestClient, daemon: Daemon) -> None:
     # 400: the request breaks the published schema (a mass is positive); 422: the daemon refuses its content
     for body, code in [({"sequence": "quick-demo", "mass": "-3 g"}, 400), ({"sequence": "quick-demo", "mass": 0}, 400),
-                       ({"sequence": "quick-demo", "mass": True}, 400),
+                       ({"sequence": "quick-demo", "mass": True}, 400), ({"sequence": None, "sequence_text": "x"}, 400),
                        ({"sequence": "quick-demo", "mass": "3 s"}, 400),
                        ({"sequence": "quick-demo", "colour": "red"}, 400), ({}, 422),
                        ({"sequence": "quick-demo", "sequence_text": "x"}, 422), ([1, 2], 400),
@@ -260,3 +260,12 @@ def test_refusals_are_declared_and_shaped_alike(client: TestClient) -> None:
     assert r.status_code == 405 and r.headers["allow"] == "GET, POST"
     r = client.delete("/api/queue/pause")
     assert r.status_code == 405 and r.headers["allow"] == "POST"
+
+
+@pytest.mark.parametrize("text", ["- " * 400 + "x\n", "[" * 400 + "]" * 400 + "\n", "a: " * 400 + "b\n"])
+def test_deeply_nested_sequence_text_is_refused_and_leaves_no_file(client: TestClient, daemon: Daemon,
+                                                                   text: str) -> None:
+    r = client.post("/api/runs", json={"sequence_text": text})
+    assert r.status_code == 422, r.text
+    assert list((daemon.data / "sequences").iterdir()) == []
+    assert daemon.catalog.list_runs() == []

@@ -34,11 +34,12 @@ def served(tmp_path: Path) -> Iterator[tuple[Daemon, str]]:
         yield d, url
 
 
-def test_schemathesis_finds_no_contract_failure(served: tuple[Daemon, str]) -> None:
+def test_schemathesis_finds_no_contract_failure(served: tuple[Daemon, str], tmp_path: Path) -> None:
     _, url = served
     cmd = [sys.executable, "-m", "schemathesis.cli", "--config-file", str(CONFIG), "run",
            f"{url}/api/openapi.json", "--no-color"]
-    out = subprocess.run(cmd, capture_output=True, text=True, timeout=180, check=False)
+    out = subprocess.run(cmd, capture_output=True, text=True, timeout=180, check=False,
+                         cwd=tmp_path)  # its replay store goes there, not into the work tree
     report = out.stdout + out.stderr
     counts = re.search(r"(\d+) generated, (\d+) (passed|found)", report)
     assert counts is not None, report[-3000:]

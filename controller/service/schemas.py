@@ -83,9 +83,10 @@ class RunRequest(BaseModel):
     model_config = ConfigDict(extra="forbid", json_schema_extra={
         "oneOf": [{"required": ["sequence"], "not": {"required": ["sequence_text"]}},
                   {"required": ["sequence_text"], "not": {"required": ["sequence"]}}]})
-    sequence: Annotated[str, StringConstraints(min_length=1, max_length=200)] | None = Field(
+    # text, not null, when present: "oneOf" counts a key that is there, so a null would pass as a second one
+    sequence: Annotated[str, StringConstraints(min_length=1, max_length=200)] = Field(  # type: ignore[assignment]
         None, description="name of a shipped sequence (GET /api/sequences), e.g. quick-demo")
-    sequence_text: Annotated[str, StringConstraints(min_length=1, max_length=16 * 1024)] | None = Field(
+    sequence_text: Annotated[str, StringConstraints(min_length=1, max_length=16 * 1024)] = Field(  # type: ignore[assignment]
         None, description="the YAML text of a sequence: at most 16384 characters, so at most 64 KiB of UTF-8; "
                           "the whole body must also fit in 64 KiB (413 otherwise)")
     sample_id: Text200 = ""
