@@ -70,7 +70,8 @@ def _daemon(request: Request) -> Daemon:
 DaemonDep = Annotated[Daemon, Depends(_daemon)]
 RunId = Annotated[str, PathParam(pattern=s.RUN_ID_PATTERN, description="a run ID the daemon issued")]
 _WHY = {400: "the request does not match this schema", 401: "no or wrong token (non-loopback bind)",
-        403: "foreign Host or Origin", 404: "no such run or file", 409: "conflicts with the daemon's state",
+        403: "foreign Host or Origin", 404: "no such run or file",
+        409: "conflicts with the daemon's or the run's state (e.g. a file the run has not written yet)",
         413: "body or sequence text too large", 415: "body is not application/json",
         422: "the daemon refuses the request (sequence problems listed)", 503: "the control loop did not answer"}
 
@@ -231,6 +232,13 @@ def get_run(run_id: RunId, d: DaemonDep) -> Any:
     return out
 
 
+def _missing(row: RunRow, what: str) -> Response:
+    """409 while the run may still write it (queued, running); 404 once it has ended without it."""
+    if row.status in ("queued", "running"):
+        return _error(409, f"run {row.id} is {row.status}: no {what} yet")
+    return _error(404, f"run {row.id} has no {what}")
+
+
 def _file_route(name: str, media: str) -> Any:
     def run_file(run_id: RunId, d: DaemonDep) -> Response:
         row = _row(d, run_id)
@@ -239,21 +247,28 @@ def _file_route(name: str, media: str) -> Any:
         folder = _folder(d, row)
         path = folder / name if folder else None
         if path is None or not path.is_file():
-            return _error(404, f"run {row.id} has no {name} (yet)")
+            return _missing(row, name)
+        # read whole: a running run appends to its trace, and a streamed file would outgrow its Content-Length
+        try:
+            body = path.read_bytes()
+        except OSError as exc:
+            return _error(404, f"run {row.id}: {name} cannot be read ({exc.strerror})")
         charset = "; charset=utf-8" if media.startswith("text/") else ""
-        return FileResponse(path, media_type=media + charset, filename=f"{row.id}-{name}")
+        return Response(body, media_type=media + charset,
+                        headers={"content-disposition": f'attachment; filename="{row.id}-{name}"'})
 
     return run_file
 
 
 for _name, _media in RUN_FILES.items():
+    _schema = {"type": "object"} if _media == "application/json" else {"type": "string"}
     router.add_api_route(f"/api/runs/{{run_id}}/{_name}", _file_route(_name, _media), methods=["GET"],
                          response_class=Response, summary=f"The run's {_name}",
-                         responses={200: {"description": _name, "content": {_media: {"schema": {"type": "string"}}}},
-                                    **_errors(400, 404)})
+                         responses={200: {"description": _name, "content": {_media: {"schema": _schema}}},
+                                    **_errors(400, 404, 409)})
 
 
-@router.get("/api/runs/{run_id}/report", response_class=HTMLResponse, responses=_errors(400, 404),
+@router.get("/api/runs/{run_id}/report", response_class=HTMLResponse, responses=_errors(400, 404, 409),
             summary="HTML report of a finished run", description="404 when the report module is not installed.")
 def report(run_id: RunId, d: DaemonDep) -> Response:
     row = _row(d, run_id)
@@ -261,7 +276,7 @@ def report(run_id: RunId, d: DaemonDep) -> Response:
         return row
     folder = _folder(d, row)
     if folder is None or not (folder / "summary.json").exists():
-        return _error(404, f"run {row.id} has no finished record to report on")
+        return _missing(row, "finished record to report on")
     try:
         mod = importlib.import_module("pycnoctl.controller.record.report")
     except ModuleNotFoundError:
@@ -412,6 +427,9 @@ def _openapi(app: FastAPI) -> dict[str, Any]:
                         resp["content"] = error
         for name in ("HTTPValidationError", "ValidationError"):
             doc.get("components", {}).get("schemas", {}).pop(name, None)
+        # the shipped names are known when the app is built: publish them, so a client (or a tester) can pick one
+        names = app.state.daemon.shipped_sequences()
+        doc["components"]["schemas"]["RunRequest"]["properties"]["sequence"]["enum"] = names
         doc.setdefault("components", {})["securitySchemes"] = {"bearer": {"type": "http", "scheme": "bearer"}}
         doc["security"] = [{"bearer": []}, {}]
         app.openapi_schema = doc
