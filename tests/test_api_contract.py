@@ -128,7 +128,9 @@ def test_sequence_names_are_never_paths(client: TestClient, name: str) -> None:
 
 
 def test_bad_requests_are_refused_before_anything_is_queued(client: TestClient, daemon: Daemon) -> None:
-    for body, code in [({"sequence": "quick-demo", "mass": "-3 g"}, 422),
+    # 400: the request breaks the published schema (a mass is positive); 422: the daemon refuses its content
+    for body, code in [({"sequence": "quick-demo", "mass": "-3 g"}, 400), ({"sequence": "quick-demo", "mass": 0}, 400),
+                       ({"sequence": "quick-demo", "mass": True}, 400), ({"sequence": None, "sequence_text": "x"}, 400),
                        ({"sequence": "quick-demo", "mass": "3 s"}, 400),
                        ({"sequence": "quick-demo", "colour": "red"}, 400), ({}, 422),
                        ({"sequence": "quick-demo", "sequence_text": "x"}, 422), ([1, 2], 400),
@@ -226,3 +228,44 @@ def test_events_are_valid_json_with_no_nan(daemon: Daemon, client: TestClient) -
     assert {"queue", "run_started", "state", "sample", "cycle_done", "run_finished"} <= kinds
     for _, _, data in items:
         json.dumps(data, allow_nan=False)
+
+
+def test_states_serve_the_one_vocabulary(client: TestClient) -> None:
+    from pycnoctl.controller.domain.states import RunState
+
+    r = client.get("/api/states")
+    assert r.status_code == 200
+    states = r.json()
+    assert [x["name"] for x in states] == [s.value for s in RunState]
+    fill = next(x for x in states if x["name"] == "fill")
+    assert fill == {"name": "fill", "label": RunState.FILL.look.label, "colour": RunState.FILL.look.colour,
+                    "terminal": False}
+    spec = client.get("/api/openapi.json").json()
+    assert spec["paths"]["/api/states"]["get"]["responses"]["200"]["content"]["application/json"]["schema"]["type"] \
+        == "array"
+
+
+def test_refusals_are_declared_and_shaped_alike(client: TestClient) -> None:
+    spec = client.get("/api/openapi.json").json()
+    run = spec["paths"]["/api/runs/{run_id}"]["get"]
+    assert {"400", "404"} <= set(run["responses"])
+    assert run["parameters"][0]["schema"]["pattern"].startswith("^R")
+    limit = next(p for p in spec["paths"]["/api/runs"]["get"]["parameters"] if p["name"] == "limit")
+    assert limit["schema"]["minimum"] == 1 and limit["schema"]["maximum"] == 1000
+    assert "oneOf" in spec["components"]["schemas"]["RunRequest"]
+    for reply, code in [(client.get("/api/runs/R20250101T000000Z-abcdef"), 404), (client.get("/api/runs?limit=0"), 400),
+                       (client.get("/api/trace?seconds=null"), 400), (client.get("/api/nowhere"), 404)]:
+        assert reply.status_code == code and set(reply.json()) >= {"error", "status"}
+    r = client.request("OPTIONS", "/api/runs")
+    assert r.status_code == 405 and r.headers["allow"] == "GET, POST"
+    r = client.delete("/api/queue/pause")
+    assert r.status_code == 405 and r.headers["allow"] == "POST"
+
+
+@pytest.mark.parametrize("text", ["- " * 400 + "x\n", "[" * 400 + "]" * 400 + "\n", "a: " * 400 + "b\n"])
+def test_deeply_nested_sequence_text_is_refused_and_leaves_no_file(client: TestClient, daemon: Daemon,
+                                                                   text: str) -> None:
+    r = client.post("/api/runs", json={"sequence_text": text})
+    assert r.status_code == 422, r.text
+    assert list((daemon.data / "sequences").iterdir()) == []
+    assert daemon.catalog.list_runs() == []

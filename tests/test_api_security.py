@@ -3,6 +3,7 @@ oversize body 413, path tricks 400/404, wrong method 405.  Pass/fail, as the fau
 
 from __future__ import annotations
 
+import asyncio
 import os
 import warnings
 from collections.abc import Iterator
@@ -92,8 +93,8 @@ def test_missing_or_wrong_token_is_401(open_bind: TestClient) -> None:
 def test_login_sets_a_strict_httponly_cookie(daemon: Daemon) -> None:
     app = create_app(daemon, Policy(bind_host="192.0.2.10", port=8765, token=TOKEN))
     with TestClient(app, base_url="http://192.0.2.10:8765", follow_redirects=False) as c:
-        assert c.get("/login", params={"token": "wrong"}).status_code == 401
-        r = c.get("/login", params={"token": TOKEN})
+        assert c.post("/login", data={"token": "wrong"}).status_code == 401
+        r = c.post("/login", data={"token": TOKEN})
         assert r.status_code == 303
         cookie = r.headers["set-cookie"].lower()
         assert "httponly" in cookie and "samesite=strict" in cookie
@@ -170,3 +171,46 @@ def test_split_host() -> None:
     assert split_host("127.0.0.1") == ("127.0.0.1", None)
     for bad in ("a:b:c", "host:99999", "host:0", "[::1", "a/b", "u@h", ""):
         assert split_host(bad) is None, bad
+
+
+def test_two_host_headers_are_refused(daemon: Daemon) -> None:
+    app = create_app(daemon, Policy(port=8765))
+    sent: list[dict] = []
+
+    async def receive() -> dict:
+        return {"type": "http.request", "body": b"", "more_body": False}
+
+    async def send(msg: dict) -> None:
+        sent.append(msg)
+
+    for hosts in ([b"127.0.0.1:8765", b"evil.example"], [b"evil.example", b"127.0.0.1:8765"],
+                  [b"127.0.0.1:8765", b"127.0.0.1:8765"]):
+        sent.clear()
+        scope = {"type": "http", "method": "GET", "path": "/api/status", "raw_path": b"/api/status",
+                 "query_string": b"", "headers": [(b"host", h) for h in hosts], "root_path": "",
+                 "scheme": "http", "server": ("127.0.0.1", 8765), "client": ("127.0.0.1", 5000),
+                 "http_version": "1.1", "asgi": {"version": "3.0"}}
+        asyncio.run(app(scope, receive, send))
+        assert sent[0]["status"] == 400, hosts
+
+
+def test_deeply_nested_json_is_a_4xx_not_a_500(local: TestClient) -> None:
+    for depth in (1000, 32_000):
+        body = b"[" * depth + b"]" * depth
+        r = local.post("/api/runs", content=body, headers={"content-type": "application/json"})
+        assert 400 <= r.status_code < 500, (depth, r.status_code)
+        body = b'{"sequence": ' + b"[" * depth + b"]" * depth + b"}"
+        r = local.post("/api/runs", content=body, headers={"content-type": "application/json"})
+        assert 400 <= r.status_code < 500, (depth, r.status_code)
+
+
+def test_the_token_never_travels_in_a_url(daemon: Daemon) -> None:
+    app = create_app(daemon, Policy(bind_host="192.0.2.10", port=8765, token=TOKEN))
+    with TestClient(app, base_url="http://192.0.2.10:8765", follow_redirects=False) as c:
+        page = c.get("/login", params={"token": TOKEN})  # the old way: shows the form, sets nothing
+        assert page.status_code == 200 and "set-cookie" not in page.headers
+        assert 'method=post' in page.text and TOKEN not in page.text
+        assert c.get("/api/status").status_code == 401
+        # the form POST is screened like any request: another site's page cannot log a browser in
+        r = c.post("/login", data={"token": TOKEN}, headers={"origin": "http://evil.example"})
+        assert r.status_code == 403 and "set-cookie" not in r.headers

@@ -9,6 +9,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import httpx
+from httpx_sse import SSEError, connect_sse
 
 DEFAULT_URL = "http://127.0.0.1:8765"
 
@@ -99,31 +100,16 @@ class DaemonClient:
     def events(self, timeout: float | None = None) -> Iterator[StreamEvent]:
         """Server-sent events as they come (blocks; stop iterating to disconnect)."""
         try:
-            with self.http.stream("GET", "/api/events", timeout=httpx.Timeout(10.0, read=timeout)) as r:
+            with connect_sse(self.http, "GET", "/api/events", timeout=httpx.Timeout(10.0, read=timeout)) as es:
+                r = es.response
                 if r.status_code >= 400:
                     r.read()
                     raise DaemonError(r.status_code, r.text[:200])
-                kind, data, eid = "message", [], None
-                for line in r.iter_lines():
-                    if not line:
-                        if data:
-                            text = "\n".join(data)
-                            try:
-                                payload = json.loads(text)
-                            except ValueError:
-                                payload = text
-                            yield StreamEvent(kind, payload, eid)
-                        kind, data, eid = "message", [], None
-                    elif line.startswith(":"):
-                        continue
-                    else:
-                        field, _, value = line.partition(":")
-                        value = value[1:] if value.startswith(" ") else value
-                        if field == "event":
-                            kind = value
-                        elif field == "data":
-                            data.append(value)
-                        elif field == "id":
-                            eid = value
-        except httpx.HTTPError as exc:
+                for sse in es.iter_sse():
+                    try:
+                        payload: Any = json.loads(sse.data)
+                    except ValueError:
+                        payload = sse.data
+                    yield StreamEvent(sse.event, payload, sse.id or None)
+        except (httpx.HTTPError, SSEError) as exc:
             raise DaemonError(0, f"event stream from {self.url} ended: {exc}") from None

@@ -636,12 +636,15 @@ class Daemon:
                         note=request.get("note") or "")
         try:
             return prepare(rr, self.instrument, self.catalog)
-        except ConfigError as exc:
-            if request.get("sequence") is None:
+        except (ConfigError, ValueError, RecursionError) as exc:
+            if request.get("sequence") is None:  # submitted text that will never run leaves no file behind
                 with contextlib.suppress(OSError):
                     path.unlink()
-            raise SubmitError("the sequence has problems", [_problem_text(p, path) for p in exc.problems]) from None
-        except ValueError as exc:
+            if isinstance(exc, ConfigError):
+                raise SubmitError("the sequence has problems",
+                                  [_problem_text(p, path) for p in exc.problems]) from None
+            if isinstance(exc, RecursionError):  # a hostile text nested hundreds deep: refused, not a 500
+                raise SubmitError("the sequence text is nested too deeply to read") from None
             raise SubmitError(str(exc)) from None
 
     def queue(self) -> list[dict[str, Any]]:

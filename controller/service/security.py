@@ -1,14 +1,15 @@
 """Request screening for the daemon's HTTP side, before any route sees a request.
 
 Why each check (safety.md, "Daemon API"):
-* Host must name this daemon (localhost, 127.0.0.1, ::1 or the bind host): a web page on another
-  site cannot reach the loopback daemon through a rebinding DNS name -> 403.
+* Host must name this daemon (localhost, 127.0.0.1, ::1 or the bind host) on its port, in exactly one
+  Host header: a web page on another site cannot reach the loopback daemon through a rebinding DNS
+  name -> 403 (two Host headers -> 400: the server and a proxy could read different ones).
 * Origin, when a browser sends one, must be this daemon's own origin: no other site's page may
   drive the valves -> 403.
 * A token, when configured (always on a non-loopback bind), is required on every request as
-  ``Authorization: Bearer`` or the HttpOnly SameSite=Strict cookie that ``/login?token=`` sets;
-  compared in constant time -> 401.
-* Bodies are capped -> 413; a body must be JSON -> 415.
+  ``Authorization: Bearer`` or the HttpOnly SameSite=Strict cookie that the /login form POST sets
+  (never in a URL, where histories and logs keep it); compared in constant time -> 401.
+* Bodies are capped -> 413; a body must be JSON -> 415 (the /login form alone is form-encoded).
 """
 
 from __future__ import annotations
@@ -22,6 +23,8 @@ from collections.abc import Awaitable, Callable, MutableMapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
+
+from starlette.middleware.trustedhost import TrustedHostMiddleware
 
 Scope = MutableMapping[str, Any]
 Message = MutableMapping[str, Any]
@@ -125,15 +128,22 @@ class SecurityMiddleware:
     def __init__(self, app: ASGIApp, policy: Policy) -> None:
         self.app = app
         self.policy = policy
+        # starlette's host matching decides whether a name is ours; this screen adds the port, the
+        # one-header rule and a 403 in the same JSON shape as every other refusal
+        names = [f"[{h}]" if ":" in h else h for h in policy.hosts]
+        self._trusted = TrustedHostMiddleware(_admit, allowed_hosts=names, www_redirect=False)
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
-        headers = {k.decode("latin-1").lower(): v.decode("latin-1") for k, v in scope.get("headers", [])}
+        raw = scope.get("headers", [])
+        if sum(1 for k, _ in raw if k.lower() == b"host") > 1:
+            await _reply(send, 400, "bad request: more than one Host header")
+            return
+        headers = {k.decode("latin-1").lower(): v.decode("latin-1") for k, v in raw}
         pol = self.policy
-        host = split_host(headers.get("host", ""))
-        if host is None or host[0] not in pol.hosts or (pol.port and host[1] not in (None, pol.port)):
+        if not await self._host_ok(scope, headers.get("host", "")):
             await _reply(send, 403, "forbidden: the Host header does not name this daemon")
             return
         origin = headers.get("origin")
@@ -141,7 +151,7 @@ class SecurityMiddleware:
             await _reply(send, 403, "forbidden: requests from another origin are refused")
             return
         if pol.token and scope["path"] not in pol.open_paths and not self._token_ok(headers):
-            await _reply(send, 401, "unauthorized: send 'Authorization: Bearer <token>' or log in at /login?token=",
+            await _reply(send, 401, "unauthorized: send 'Authorization: Bearer <token>' or log in at /login",
                          extra=[(b"www-authenticate", b'Bearer realm="pycnoctl"')])
             return
         method = scope.get("method", "GET")
@@ -155,7 +165,8 @@ class SecurityMiddleware:
                 return
         if method in ("POST", "PUT", "PATCH", "DELETE") and (int(length or 0) > 0 or "transfer-encoding" in headers):
             ctype = headers.get("content-type", "").split(";")[0].strip().lower()
-            if ctype != "application/json":
+            form_ok = scope["path"] == "/login" and ctype == "application/x-www-form-urlencoded"
+            if ctype != "application/json" and not form_ok:
                 await _reply(send, 415, "request bodies must be application/json")
                 return
         # read the body ourselves so a chunked body cannot slip past the cap
@@ -182,6 +193,14 @@ class SecurityMiddleware:
             await self.app(scope, replay, send)
             return
         await self.app(scope, receive, send)
+
+    async def _host_ok(self, scope: Scope, value: str) -> bool:
+        host = split_host(value)
+        if host is None or (self.policy.port and host[1] not in (None, self.policy.port)):
+            return False
+        admitted: list[bool] = []
+        await self._trusted({**scope, "pycnoctl.admitted": admitted}, _no_body, _discard)
+        return bool(admitted)
 
     def _origin_ok(self, origin: str) -> bool:
         u = urllib.parse.urlsplit(origin)
@@ -212,6 +231,18 @@ def token_matches(policy: Policy, candidate: str) -> bool:
     if not policy.token:
         return True
     return hmac.compare_digest(candidate.encode("utf-8"), policy.token.encode("utf-8"))
+
+
+async def _admit(scope: Scope, receive: Receive, send: Send) -> None:
+    scope["pycnoctl.admitted"].append(True)
+
+
+async def _no_body() -> Message:
+    return {"type": "http.request", "body": b"", "more_body": False}
+
+
+async def _discard(message: Message) -> None:
+    return None
 
 
 async def _reply(send: Send, status: int, message: str, extra: list[tuple[bytes, bytes]] | None = None) -> None:
