@@ -9,14 +9,8 @@ from pathlib import Path
 import pytest
 
 from pycnoctl.controller.cli import main as cli
-from pycnoctl.controller.jobs.calibration import (
-    AGE_RULE,
-    CalibrationPolicy,
-    SimCellLoader,
-    calibrate,
-    parse_sphere,
-    use_latest_calibration,
-)
+from pycnoctl.controller.jobs.calibration import SimCellLoader, calibrate, parse_sphere
+from pycnoctl.controller.jobs.calibration_use import AGE_RULE, CalibrationPolicy, use_latest_calibration
 from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
 from pycnoctl.controller.record.catalog import CalibrationRecord, Catalog
 from pycnoctl.controller.run.control import Controller

@@ -225,7 +225,7 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
                            ) from exc
     cal_use = None
     if seq.kind == "measure":  # compute with the latest calibration of this volume and gas; warn on mismatch
-        from pycnoctl.controller.jobs.calibration import use_latest_calibration
+        from pycnoctl.controller.jobs.calibration_use import use_latest_calibration
 
         cal_use = use_latest_calibration(inst, catalog, expansion_volume=prepared.expansion_volume, gas=seq.gas,
                                          fill_target=seq.fill.target)
