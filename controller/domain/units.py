@@ -22,7 +22,7 @@ if TYPE_CHECKING:
 
 
 @functools.cache
-def registry() -> pint.UnitRegistry:
+def registry() -> pint.UnitRegistry[Any]:
     """The one registry of the project, built on first use (importing pint and building the registry
     costs about a quarter of a second: a command that never parses a unit must not pay it).
     Offset units (degC) are only ever built as Quantity(value, unit)."""
@@ -130,7 +130,7 @@ def _dim_key(dimension: str) -> str:
     return key
 
 
-def to_quantity(value: Any, default_unit: str, *, difference: bool = False) -> pint.Quantity:
+def to_quantity(value: Any, default_unit: str, *, difference: bool = False) -> pint.Quantity[Any]:
     """Text, number or Quantity -> Quantity of this registry (bare numbers get ``default_unit``)."""
     import pint
 
@@ -138,7 +138,7 @@ def to_quantity(value: Any, default_unit: str, *, difference: bool = False) -> p
     Q_ = ureg.Quantity
     if isinstance(value, pint.Quantity):
         if value._REGISTRY is not ureg:  # another registry: go through its unit string
-            value = Q_(value.magnitude, str(value.units))
+            return Q_(value.magnitude, str(value.units))
         return value
     if isinstance(value, bool):
         raise UnitError(f"{value!r} is not a number")

@@ -79,11 +79,11 @@ class Document:
 class _StrictLoader(yaml.SafeLoader):
     """A SafeLoader that refuses anchors and aliases as soon as it meets them."""
 
-    def compose_node(self, parent, index):  # type: ignore[no-untyped-def]
+    def compose_node(self, parent: yaml.Node | None, index: int) -> yaml.Node | None:
         if self.check_event(yaml.AliasEvent):
-            event = self.peek_event()
+            event = self.peek_event()  # type: ignore[no-untyped-call]  # untyped in the PyYAML stubs
             raise yaml.MarkedYAMLError(None, None, "aliases are not allowed", event.start_mark)
-        event = self.peek_event()
+        event = self.peek_event()  # type: ignore[no-untyped-call]
         anchor = getattr(event, "anchor", None)
         if anchor is not None:
             raise yaml.MarkedYAMLError(None, None, "anchors are not allowed", event.start_mark)

@@ -21,6 +21,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -165,7 +166,7 @@ class CalibrationFit:
         return self.predict(y, u_y, scaled=scaled)
 
 
-def _u_y_pressures(p1, p2, pa, u_p, u_pa, **kw) -> float:
+def _u_y_pressures(p1: float, p2: float, pa: float, u_p: float, u_pa: float, **kw: Any) -> float:
     """Uncertainty of y from independent pressure readings (central differences)."""
     var = 0.0
     base = (p1, p2, pa)

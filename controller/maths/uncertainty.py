@@ -12,7 +12,7 @@ u^2(Vs) = u^2(Vc) + y^2 u^2(Vr) - 2 y cov(Vc,Vr) + Vr^2 [P2g^2 u^2(P1g) + P1g^2 
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -82,9 +82,9 @@ class Budget:
         return sum(c.variance for c in self.contributions if c.kind == kind)
 
 
-def _derivative(fn, x: float, u: float) -> float:
+def _derivative(fn: Callable[[float], float], x: float, u: float) -> float:
     h = max(abs(x) * 1e-7, u * 1e-3, 1e-30)
-    return (fn(x + h) - fn(x - h)) / (2.0 * h)
+    return float((fn(x + h) - fn(x - h)) / (2.0 * h))
 
 
 def cycle_volume_budget(
@@ -150,7 +150,10 @@ def cycle_volume_budget(
     ):
         if u <= 0.0 and kind == "temperature":
             continue
-        c = _derivative(lambda v, n=name: vs_of(**{n: v}), x, u)
+        def at(v: float, n: str = name) -> float:
+            return vs_of(**{n: v})
+
+        c = _derivative(at, x, u)
         rows.append(Contribution(label, x, u, c, c * u, kind=kind))
     combined = math.sqrt(max(sum(r.variance for r in rows), 0.0))
     return Budget("sample volume", value, rows, combined, k=k)

@@ -25,6 +25,7 @@ temperature this is the textbook Vs = Vc - Vr / ((P1 - Pa)/(P2 - Pa) - 1) (ASM H
 from __future__ import annotations
 
 import math
+from typing import Any
 
 from pycnoctl.controller.domain.gas import Gas, R, get_gas
 
@@ -102,7 +103,7 @@ def expansion_ratio(
     return num / den
 
 
-def gas_volume(p1: float, p2: float, pa: float, vr: float, **kw) -> float:
+def gas_volume(p1: float, p2: float, pa: float, vr: float, **kw: Any) -> float:
     """Gas volume Vg of the cell side (m^3) from the pressures and the expansion volume."""
     _check_positive(vr=vr)
     return vr * expansion_ratio(p1, p2, pa, **kw)
