@@ -27,8 +27,14 @@ from typing import Any, Protocol
 import numpy as np
 
 from pycnoctl.controller.domain.units import UnitError, parse_length, parse_volume
-from pycnoctl.controller.maths.calibration import CalibrationError, CalibrationFit, chi2_quantile, sphere_volume
-from pycnoctl.controller.maths.volume import VolumeError, expansion_ratio
+from pycnoctl.controller.maths.calibration import (
+    CalibrationError,
+    CalibrationFit,
+    CalibrationRun,
+    chi2_quantile,
+    fit_calibration,
+    sphere_volume,
+)
 from pycnoctl.controller.record.catalog import CalibrationRecord, Catalog
 from pycnoctl.drivers.instrument import Instrument
 
@@ -133,70 +139,21 @@ def points_from_summary(summary: dict[str, Any], step: int, inserted: float, *, 
     return out
 
 
-def _u_y(p: Point, gas: str) -> float:
-    """u(y) from the three pressure readings (central differences, independent readings)."""
-    base = [p.p1, p.p2, p.pa]
-
-    def y(v: list[float]) -> float:
-        return expansion_ratio(v[0], v[1], v[2], gas=gas, t1=p.t1, t2=p.t2, ta=p.ta)
-
-    var = 0.0
-    for i, u in enumerate((p.u_p1, p.u_p2, p.u_pa)):
-        if u <= 0.0:
-            continue
-        h = max(1e-3 * u, 1e-9 * base[i])
-        up, dn = list(base), list(base)
-        up[i] += h
-        dn[i] -= h
-        var += ((y(up) - y(dn)) / (2.0 * h) * u) ** 2
-    return math.sqrt(var)
-
-
 def fit_points(points: Sequence[Point], spheres: Sequence[Sphere], *, gas: str) -> CalibrationFit:
-    """Generalised least squares y = a + b V over cycle points (see the module docstring)."""
+    """Generalised least squares y = a + b V over cycle points (see the module docstring).
+
+    The cycles of one sphere share its certificate error: they are one group of maths.calibration's
+    fit, which does the arithmetic."""
     pts = list(points)
     if len(pts) < 2:
         raise CalibrationError(f"need at least 2 kept cycles, got {len(pts)}")
     vols = np.array([p.inserted for p in pts])
     if vols.max() - vols.min() <= 0.0:
         raise CalibrationError("need at least 2 distinct inserted volumes (the empty cell and a sphere)")
-    try:
-        ys = np.array([expansion_ratio(p.p1, p.p2, p.pa, gas=gas, t1=p.t1, t2=p.t2, ta=p.ta) for p in pts])
-    except VolumeError as exc:
-        raise CalibrationError(str(exc)) from exc
-    u_yp = np.array([_u_y(p, gas) for p in pts])
-    if not np.all(u_yp > 0.0):
-        raise CalibrationError("every point needs a pressure uncertainty (the chi-square test compares with it)")
-    steps = sorted({p.step for p in pts})
-    G = np.array([[1.0 if p.step == s else 0.0 for s in steps] for p in pts])
-    u_v = np.array([spheres[s].u_volume for s in steps])
-    X = np.column_stack([np.ones_like(vols), vols])
-    b = float(np.polyfit(vols, ys, 1)[0])
-    for _ in range(30):
-        C = np.diag(u_yp**2) + b**2 * (G * u_v**2) @ G.T
-        W = np.linalg.inv(C)
-        cov_ab = np.linalg.inv(X.T @ W @ X)
-        coef = cov_ab @ (X.T @ W @ ys)
-        done = abs(coef[1] - b) <= 1e-13 * abs(coef[1])
-        b = float(coef[1])
-        if done:
-            break
-    a = float(coef[0])
-    if b >= 0.0:
-        raise CalibrationError("y does not fall as the inserted volume rises: check which sphere was loaded")
-    res = ys - (a + b * vols)
-    chi2 = float(res @ W @ res)
-    dof = len(pts) - 2
-    J = np.array([[-1.0 / b, a / b**2], [0.0, 1.0 / b**2]])
-    cov = J @ cov_ab @ J.T
-    t1s = [p.t1 for p in pts if p.t1 is not None]
-    return CalibrationFit(
-        vc=-a / b, vr=-1.0 / b, cov=cov, cov_scaled=cov * (chi2 / dof if dof > 0 else 1.0), a=a, b=b,
-        cov_ab=cov_ab, residuals_y=res, residuals_volume=res / b, u_y=np.sqrt(np.diag(C)), chi2=chi2, dof=dof,
-        u_p=None, n_runs=len(pts), gas=gas, mode="sample_first", weighted=True,
-        fill_pressure_gauge=float(np.mean([p.p1 - p.pa for p in pts])),
-        temperature=float(np.mean(t1s)) if t1s else 293.15,
-    )
+    runs = [CalibrationRun(p.p1, p.p2, p.pa, p.inserted, t1=p.t1, t2=p.t2, ta=p.ta,
+                           u_inserted=spheres[p.step].u_volume, u_p=p.u_p1, u_p2=p.u_p2, u_pa=p.u_pa, group=p.step)
+            for p in pts]
+    return fit_calibration(runs, gas=gas)
 
 
 def refusal_reason(fit: CalibrationFit, alpha: float) -> str | None:

@@ -63,30 +63,22 @@ class CalibrationRun:
     t2: float | None = None
     ta: float | None = None
     u_inserted: float = 0.0
-    u_p: float | None = None  # overrides the fit-wide pressure uncertainty for this run
+    u_p: float | None = None  # overrides the fit-wide pressure uncertainty for this run (P1, and P2 unless u_p2)
+    u_p2: float | None = None  # P2's own uncertainty, when it differs from P1's
+    u_pa: float | None = None  # overrides the fit-wide ambient-pressure uncertainty for this run
+    group: int | None = None  # runs of one group share one insert: its certificate error is common to them
 
 
 def chi2_quantile(p: float, dof: int) -> float:
-    """Upper-tail chi-square quantile by the Wilson-Hilferty cube-root normal approximation."""
+    """Chi-square quantile: the value that p of the distribution lies below (exact, from scipy).
+
+    The calibration's residual test compares chi-square with it; an approximation was off by several
+    per cent at few degrees of freedom, which is where small calibrations live."""
     if dof <= 0:
         return math.nan
-    z = _normal_quantile(p)
-    h = 2.0 / (9.0 * dof)
-    return dof * (1.0 - h + z * math.sqrt(h)) ** 3
+    from scipy.stats import chi2  # imported here: scipy.stats costs a few hundred ms at start-up
 
-
-def _normal_quantile(p: float) -> float:
-    """Standard normal quantile (bisection on erf; exact to ~1e-12, fast enough for a few calls)."""
-    if not 0.0 < p < 1.0:
-        raise ValueError("probability must lie in (0, 1)")
-    lo, hi = -40.0, 40.0
-    for _ in range(200):
-        mid = 0.5 * (lo + hi)
-        if 0.5 * (1.0 + math.erf(mid / math.sqrt(2.0))) < p:
-            lo = mid
-        else:
-            hi = mid
-    return 0.5 * (lo + hi)
+    return float(chi2.ppf(p, dof))
 
 
 @dataclass
@@ -166,11 +158,12 @@ class CalibrationFit:
         return self.predict(y, u_y, scaled=scaled)
 
 
-def _u_y_pressures(p1: float, p2: float, pa: float, u_p: float, u_pa: float, **kw: Any) -> float:
+def _u_y_pressures(p1: float, p2: float, pa: float, u_p: float, u_pa: float, *, u_p2: float | None = None,
+                   **kw: Any) -> float:
     """Uncertainty of y from independent pressure readings (central differences)."""
     var = 0.0
     base = (p1, p2, pa)
-    for i, u in enumerate((u_p, u_p, u_pa)):
+    for i, u in enumerate((u_p, u_p if u_p2 is None else u_p2, u_pa)):
         if u <= 0.0:
             continue
         h = max(1e-3 * u, 1e-9 * base[i])
@@ -213,9 +206,12 @@ def fit_calibration(
         except VolumeError as exc:
             raise CalibrationError(f"run {i}: {exc}") from exc
         up = r.u_p if r.u_p is not None else u_p
-        u_yp[i] = _u_y_pressures(r.p1, r.p2, r.pa, up or 0.0, u_pa, gas=g, t1=r.t1, t2=r.t2, ta=r.ta,
-                                 mode=mode)
+        upa = r.u_pa if r.u_pa is not None else u_pa
+        u_yp[i] = _u_y_pressures(r.p1, r.p2, r.pa, up or 0.0, upa, u_p2=r.u_p2, gas=g, t1=r.t1, t2=r.t2,
+                                 ta=r.ta, mode=mode)
     u_ins = np.array([float(r.u_inserted) for r in runs])
+    if any(r.group is not None for r in runs):
+        return _fit_grouped(runs, volumes, ys, u_yp, u_ins, gas=g, mode=mode)
     weighted = bool(np.all(u_yp > 0.0)) or bool(np.all(np.hypot(u_yp, u_ins) > 0.0))
     notes: list[str] = []
     X = np.column_stack([np.ones_like(volumes), volumes])
@@ -279,4 +275,47 @@ def fit_calibration(
         fill_pressure_gauge=float(np.mean([r.p1 - r.pa for r in runs])),
         temperature=float(np.mean(t1s)) if t1s else 293.15,
         notes=notes,
+    )
+
+
+def _fit_grouped(runs: Sequence[CalibrationRun], volumes: np.ndarray, ys: np.ndarray, u_yp: np.ndarray,
+                 u_ins: np.ndarray, *, gas: Gas, mode: str) -> CalibrationFit:
+    """Generalised least squares when runs share an insert (several cycles with one sphere).
+
+    A sphere's certificate error moves every point measured with it the same way, so the points of one
+    group are correlated: C = diag(u_y,i^2) + b^2 sum_g u(V_g)^2 g g^T (g: indicator of the group's runs),
+    iterated on the slope b. A run without a group is a group of its own.
+    """
+    if not np.all(u_yp > 0.0):
+        raise CalibrationError("every point needs a pressure uncertainty (the chi-square test compares with it)")
+    keys = [r.group if r.group is not None else ("run", i) for i, r in enumerate(runs)]
+    groups = list(dict.fromkeys(keys))
+    G = np.array([[1.0 if k == g else 0.0 for g in groups] for k in keys])
+    u_v = np.array([u_ins[keys.index(g)] for g in groups])
+    X = np.column_stack([np.ones_like(volumes), volumes])
+    b = float(np.polyfit(volumes, ys, 1)[0])
+    for _ in range(30):
+        C = np.diag(u_yp**2) + b**2 * (G * u_v**2) @ G.T
+        W = np.linalg.inv(C)
+        cov_ab = np.linalg.inv(X.T @ W @ X)
+        coef = cov_ab @ (X.T @ W @ ys)
+        done = abs(coef[1] - b) <= 1e-13 * abs(coef[1])
+        b = float(coef[1])
+        if done:
+            break
+    a = float(coef[0])
+    if b >= 0.0:
+        raise CalibrationError("y does not fall as the inserted volume rises: check which sphere was loaded")
+    res = ys - (a + b * volumes)
+    chi2 = float(res @ W @ res)
+    dof = len(runs) - 2
+    J = np.array([[-1.0 / b, a / b**2], [0.0, 1.0 / b**2]])
+    cov = J @ cov_ab @ J.T
+    t1s = [r.t1 for r in runs if r.t1 is not None]
+    return CalibrationFit(
+        vc=-a / b, vr=-1.0 / b, cov=cov, cov_scaled=cov * (chi2 / dof if dof > 0 else 1.0), a=a, b=b,
+        cov_ab=cov_ab, residuals_y=res, residuals_volume=res / b, u_y=np.sqrt(np.diag(C)), chi2=chi2, dof=dof,
+        u_p=None, n_runs=len(runs), gas=gas.name, mode=mode, weighted=True,
+        fill_pressure_gauge=float(np.mean([r.p1 - r.pa for r in runs])),
+        temperature=float(np.mean(t1s)) if t1s else 293.15,
     )
