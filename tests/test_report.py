@@ -24,6 +24,7 @@ from pycnoctl.controller.record.report import (
     phase_segments,
     render_report,
     render_sample_set,
+    report_html,
     sample_set,
 )
 from pycnoctl.controller.record.runfolder import load_run
@@ -117,3 +118,13 @@ def test_sample_set_mean_and_spread(tmp_path: Path) -> None:
     out = render_sample_set(sample_set(cat), tmp_path / "set.html")
     text = out.read_text()
     assert "AL-1" in text and "QZ-1" in text and f"{statistics.fmean(data['QZ-1']):.5f}" in text
+
+
+def test_record_text_is_escaped_never_markup(run_folder: Path, tmp_path: Path) -> None:
+    # A sample ID or warning is text from an operator or a file: the templates autoescape it.
+    run = load_run(run_folder)
+    res = dict(run.summary["results"], sample_id="<script>alert(1)</script>", warnings=["a & b <i>"])
+    run.summary = dict(run.summary, results=res)
+    text = report_html(run, "r.png", b"png")
+    assert "<script>" not in text and "&lt;script&gt;alert(1)&lt;/script&gt;" in text
+    assert "a &amp; b &lt;i&gt;" in text

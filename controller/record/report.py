@@ -11,15 +11,16 @@ so tests - and anyone checking a report - can measure the figure itself.
 from __future__ import annotations
 
 import base64
+import collections
 import datetime as _dt
-import html
 import math
 import statistics
-from collections.abc import Iterable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import jinja2
 import numpy as np
 
 from pycnoctl.controller.record.runfolder import StoredRun, load_run
@@ -142,19 +143,14 @@ def render_figure(run: StoredRun, png: Path) -> Path:
 
 # ----------------------------------------------------------------------------- HTML
 
-_CSS = """
-body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;margin:2em auto;max-width:70em;color:#222}
-h1{font-size:1.4em;margin-bottom:.2em} h2{font-size:1.1em;margin-top:1.6em;border-bottom:1px solid #ccc}
-table{border-collapse:collapse;margin:.5em 0} td,th{padding:.2em .7em;border-bottom:1px solid #e4e4e4;
-text-align:right} th{background:#f4f4f4} td.l,th.l{text-align:left}
-.result{font-size:1.25em;font-weight:600} .warn{background:#fff4d6;border-left:4px solid #e0a800;
-padding:.4em .8em;margin:.3em 0} .muted{color:#777} img{max-width:100%}
-.status-completed{color:#17682e} .status-fault,.status-aborted,.status-interrupted{color:#a11}
-"""
-
-
-def _e(x: Any) -> str:
-    return html.escape("" if x is None else str(x))
+#: Templates with autoescape: every value from a record is text to be escaped, never markup.
+_TEMPLATES = jinja2.Environment(
+    loader=jinja2.PackageLoader("pycnoctl.controller.record", "templates"),
+    autoescape=True,
+    undefined=jinja2.StrictUndefined,
+    trim_blocks=True,
+    lstrip_blocks=True,
+)
 
 
 def _num(x: Any, fmt: str = ".5f") -> str:
@@ -163,21 +159,14 @@ def _num(x: Any, fmt: str = ".5f") -> str:
     return format(float(x), fmt)
 
 
-def _table(head: Sequence[str], rows: Iterable[Sequence[str]], left: int = 1) -> str:
-    th = "".join(f"<th class='l'>{_e(h)}</th>" if i < left else f"<th>{_e(h)}</th>" for i, h in enumerate(head))
-    body = []
-    for r in rows:
-        body.append("<tr>" + "".join(f"<td class='l'>{c}</td>" if i < left else f"<td>{c}</td>"
-                                     for i, c in enumerate(r)) + "</tr>")
-    return f"<table><tr>{th}</tr>{''.join(body)}</table>"
-
+_TEMPLATES.filters["num"] = _num
 
 _BUDGET_UNITS = {"pressure": ("Pa", 1.0, ".2f"), "temperature": ("K", 1.0, ".3f"),
                  "calibration": ("cm³", 1e6, ".5f"), "repeatability": ("cm³", 1e6, ".5f")}
 
 
 def budget_rows(budget: Sequence[dict[str, Any]]) -> list[list[str]]:
-    """Uncertainty budget rows: input, value, u, sensitivity, contribution (cm3), share of u_c^2."""
+    """Uncertainty budget rows as text: input, value, u, sensitivity, contribution (cm3), share of u_c^2."""
     rows = []
     for b in budget:
         unit, scale, fmt = _BUDGET_UNITS.get(b.get("kind", ""), ("", 1.0, ".4g"))
@@ -187,7 +176,7 @@ def budget_rows(budget: Sequence[dict[str, Any]]) -> list[list[str]]:
             f"{_num(val * scale if val is not None else None, fmt)} {unit}")
         u = "-" if b.get("std_u") is None else f"{_num(b['std_u'] * scale, '.3g')} {unit}"
         share = b.get("share")
-        rows.append([_e(b.get("name")), value, u, _num(b.get("sensitivity"), ".4g"),
+        rows.append([str(b.get("name")), value, u, _num(b.get("sensitivity"), ".4g"),
                      _num((b.get("contribution") or 0.0) * 1e6, ".3g"),
                      "-" if share is None else f"{100 * share:.1f} %"])
     return rows
@@ -207,93 +196,46 @@ def _choice_text(res: dict[str, Any], seq: dict[str, Any]) -> str:
     return "-"
 
 
+def _cycle_rows(cycles: Sequence[dict[str, Any]]) -> list[list[str]]:
+    return [[str(c["index"]), _num((c.get("p1_gauge_pa") or math.nan) / 1e5),
+             _num((c.get("p2_gauge_pa") or math.nan) / 1e5),
+             _num(c["t1_k"] - 273.15 if c.get("t1_k") is not None else None, ".2f"), _num(c.get("volume_cm3")),
+             _num(c.get("u_volume_cm3")), "yes" if c.get("kept") else "no", ", ".join(c.get("flags") or []) or "-"]
+            for c in cycles]
+
+
+def _calibration_rows(rec: dict[str, Any]) -> list[list[str]]:
+    spheres = ", ".join(f"{s.get('label')} ({s.get('spec')})" for s in rec.get("spheres") or [] if s.get("volume"))
+    return [
+        ["record", str(rec.get("id"))], ["made", str(rec.get("created"))],
+        ["operator", str(rec.get("operator") or "-")],
+        ["gas", str(rec.get("gas"))],
+        ["fill pressure", f"{_num((rec.get('fill_pressure_gauge_pa') or math.nan) / 1e5, '.4f')} bar g"],
+        ["temperature", f"{_num((rec.get('temperature_k') or math.nan) - 273.15, '.2f')} °C"],
+        ["spheres", spheres or "-"],
+        ["cell volume Vc", f"{_num(rec['vc_m3'] * 1e6)} ± {_num(rec['u_vc_m3'] * 1e6)} cm³ (standard)"],
+        ["expansion volume Vr", f"{_num(rec['vr_m3'] * 1e6)} ± {_num(rec['u_vr_m3'] * 1e6)} cm³ (standard)"],
+        ["fit", f"chi-square {_num(rec.get('chi2'), '.3g')} on {rec.get('dof')} degrees of freedom"],
+    ]
+
+
 def report_html(run: StoredRun, png_name: str, png_bytes: bytes) -> str:
+    """The run report as one HTML page (the figure embedded)."""
     doc = run.summary or {}
-    res = doc.get("results") or {}
-    seq = doc.get("sequence") or {}
+    res = collections.defaultdict(lambda: None, doc.get("results") or {})
+    seq = collections.defaultdict(lambda: None, doc.get("sequence") or {})
     cal = doc.get("calibration") or {}
-    status = res.get("status", "unknown")
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>pycnoctl run "
-             f"{_e(doc.get('run_id'))}</title><style>{_CSS}</style></head><body>"]
-    parts.append(f"<h1>Run {_e(doc.get('run_id') or run.meta.get('run_id'))} — sample {_e(res.get('sample_id') or '-')}"
-                 "</h1>")
-    parts.append(f"<p>status <b class='status-{_e(status)}'>{_e(status)}</b> · sequence <b>{_e(seq.get('name'))}</b>"
-                 f" ({_e(seq.get('kind'))}) · gas {_e(res.get('gas'))} · started {_e(res.get('started_utc'))} · "
-                 f"operator {_e(res.get('operator') or '-')} · software {_e(doc.get('software_version'))}</p>")
-    if res.get("note"):
-        parts.append(f"<p class='muted'>{_e(res['note'])}</p>")
-    parts.append("<h2>Result</h2>")
-    if res.get("volume_cm3") is not None:
-        k = res.get("k") or 2
-        parts.append(f"<p class='result'>skeletal volume {_num(res['volume_cm3'])} cm³ ± "
-                     f"{_num(res.get('volume_u_cm3'))} cm³ <span class='muted'>(expanded, k = {k:g}; standard "
-                     f"{_num(res.get('volume_u_std_cm3'))} cm³)</span></p>")
-        if res.get("density_g_cm3") is not None:
-            parts.append(f"<p class='result'>skeletal density {_num(res['density_g_cm3'])} g/cm³ ± "
-                         f"{_num(res.get('density_u_g_cm3'))} g/cm³ <span class='muted'>(k = {k:g}; mass "
-                         f"{_num(res.get('mass_g'), '.5g')} g)</span></p>")
-        if res.get("porosity") is not None:
-            parts.append(f"<p class='result'>porosity {100 * res['porosity']:.2f} % ± "
-                         f"{100 * (res.get('porosity_u') or 0):.2f} % <span class='muted'>(k = {k:g})</span></p>")
-        rsd = res.get("rsd")
-        parts.append(f"<p>{res.get('n_kept', '-')} cycles kept; repeatability RSD "
-                     f"{_num(100 * rsd if rsd is not None else None, '.4f')} %; converged: "
-                     f"{_e(res.get('converged'))}; outliers: {_e(res.get('outliers') or 'none')}</p>")
-    elif res.get("leak_rate_pa_s") is not None:
-        verdict = "passed" if res.get("leak_ok") else "FAILED"
-        parts.append(f"<p class='result'>leak check {verdict}: {_num(res['leak_rate_pa_s'], '.3f')} Pa/s</p>")
-    else:
-        parts.append("<p>no volume (no kept cycle)</p>")
-    if res.get("fault"):
-        parts.append(f"<p class='warn'>fault ({_e(res['fault'].get('kind'))}): {_e(res['fault'].get('message'))}</p>")
-    if res.get("abort_reason"):
-        parts.append(f"<p class='warn'>aborted: {_e(res['abort_reason'])}</p>")
-    parts.append(f"<p>expansion volume <b>{_e(res.get('expansion_volume'))}</b>: {_e(_choice_text(res, seq))}</p>")
-    parts.append("<h2>Warnings</h2>")
-    warnings = res.get("warnings") or []
-    parts.append("".join(f"<div class='warn'>{_e(w)}</div>" for w in warnings) or "<p class='muted'>none</p>")
-    parts.append("<h2>Pressure trace and cycles</h2>")
-    data = base64.b64encode(png_bytes).decode("ascii")
-    parts.append(f"<img alt='pressure trace shaded by phase; cycle volumes' src='data:image/png;base64,{data}'>"
-                 f"<p class='muted'>figure also saved as {_e(png_name)}</p>")
-    cycles = res.get("cycles") or []
-    parts.append("<h2>Cycles</h2>")
-    parts.append(_table(
-        ["cycle", "P1 / bar g", "P2 / bar g", "T1 / °C", "volume / cm³", "u / cm³", "kept", "flags"],
-        ([str(c["index"]), _num((c.get("p1_gauge_pa") or math.nan) / 1e5),
-          _num((c.get("p2_gauge_pa") or math.nan) / 1e5),
-          _num(c["t1_k"] - 273.15 if c.get("t1_k") is not None else None, ".2f"), _num(c.get("volume_cm3")),
-          _num(c.get("u_volume_cm3")), "yes" if c.get("kept") else "no", _e(", ".join(c.get("flags") or [])) or "-"]
-         for c in cycles), left=0) if cycles else "<p class='muted'>no cycles</p>")
-    parts.append("<h2>Uncertainty budget</h2>")
-    budget = res.get("budget") or []
-    if budget:
-        parts.append(_table(["input", "value", "standard u", "sensitivity", "contribution / cm³", "share of u²"],
-                            budget_rows(budget)))
-        parts.append("<p class='muted'>shares are of the combined variance (a covariance term may be negative); "
-                     "GUM, JCGM 100:2008</p>")
-    else:
-        parts.append("<p class='muted'>no budget</p>")
-    parts.append("<h2>Calibration used</h2>")
     rec = cal.get("record")
-    if rec:
-        spheres = ", ".join(f"{s.get('label')} ({s.get('spec')})" for s in rec.get("spheres") or [] if s.get("volume"))
-        parts.append(_table(["", ""], [
-            ["record", _e(rec.get("id"))], ["made", _e(rec.get("created"))],
-            ["operator", _e(rec.get("operator") or "-")],
-            ["gas", _e(rec.get("gas"))],
-            ["fill pressure", f"{_num((rec.get('fill_pressure_gauge_pa') or math.nan) / 1e5, '.4f')} bar g"],
-            ["temperature", f"{_num((rec.get('temperature_k') or math.nan) - 273.15, '.2f')} °C"],
-            ["spheres", _e(spheres or "-")],
-            ["cell volume Vc", f"{_num(rec['vc_m3'] * 1e6)} ± {_num(rec['u_vc_m3'] * 1e6)} cm³ (standard)"],
-            ["expansion volume Vr", f"{_num(rec['vr_m3'] * 1e6)} ± {_num(rec['u_vr_m3'] * 1e6)} cm³ (standard)"],
-            ["fit", f"chi-square {_num(rec.get('chi2'), '.3g')} on {_e(rec.get('dof'))} degrees of freedom"],
-        ]))
-    elif cal:
-        parts.append(f"<p class='warn'>nominal volumes (no calibration record): Vc {_num(cal.get('vc', 0) * 1e6)} cm³, "
-                     f"Vr {_num(cal.get('vr', 0) * 1e6)} cm³</p>")
-    parts.append("<p class='muted'>made by pycnoctl from the run record</p></body></html>")
-    return "".join(parts)
+    rsd = res["rsd"]
+    return _TEMPLATES.get_template("run_report.html.j2").render(
+        run_id=doc.get("run_id") or run.meta.get("run_id"), res=res, seq=seq, status=res["status"] or "unknown",
+        software=doc.get("software_version"), k=format(res["k"] or 2, "g"),
+        rsd_percent=100 * rsd if rsd is not None else None, choice=_choice_text(res, seq),
+        warnings=res["warnings"] or [], png_name=png_name,
+        png_data=base64.b64encode(png_bytes).decode("ascii"), cycles=_cycle_rows(res["cycles"] or []),
+        budget=budget_rows(res["budget"] or []), calibration=_calibration_rows(rec) if rec else None,
+        nominal={"vc": cal.get("vc", 0) * 1e6, "vr": cal.get("vr", 0) * 1e6} if cal and not rec else None,
+    )
 
 
 def render_report(run_folder: Path, out: Path | None = None) -> Path:
@@ -366,17 +308,12 @@ def render_sample_set(stats: Sequence[SampleStats], out: Path, *, title: str = "
     rows = []
     for s in stats:
         d = s.as_dict()
-        rows.append([_e(s.sample_id or "(none)"), str(s.n), _num(d["mean_density_g_cm3"]), _num(d["sd_density_g_cm3"]),
+        rows.append([s.sample_id or "(none)", str(s.n), _num(d["mean_density_g_cm3"]), _num(d["sd_density_g_cm3"]),
                      _num(d["range_density_g_cm3"]), _num(d["mean_volume_cm3"]), _num(d["sd_volume_cm3"]),
-                     _e(", ".join(s.run_ids))])
+                     ", ".join(s.run_ids)])
     stamp = _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
-    body = _table(["sample", "runs", "mean density / g/cm³", "s.d. / g/cm³", "range / g/cm³", "mean volume / cm³",
-                   "s.d. / cm³", "run IDs"], rows) if rows else "<p class='muted'>no completed runs</p>"
-    text = (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{_e(title)}</title>"
-            f"<style>{_CSS}</style></head><body><h1>{_e(title)}</h1><p class='muted'>completed measurement runs; "
-            f"s.d. is the sample standard deviation across runs; made {stamp}</p>{body}</body></html>")
+    text = _TEMPLATES.get_template("sample_set.html.j2").render(title=title, rows=rows, stamp=stamp)
     out = Path(out)
     out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text(text, encoding="utf-8")
     return out
-
