@@ -20,6 +20,7 @@ from pycnoctl.controller.record.catalog import Catalog
 from pycnoctl.controller.record.runfolder import load_run
 from pycnoctl.controller.run.control import Controller
 from pycnoctl.controller.run.engine import TRANSITIONS, RunEngine
+from pycnoctl.controller.run.sequence import load_sequence, resolve_sequence
 from pycnoctl.drivers.simulated import build_sim_instrument
 from pycnoctl.sim.config import config_from_dict, shipped_configs
 
@@ -132,8 +133,13 @@ def test_run_record_is_complete_and_reanalysable(tmp_path):
     run = load_run(tmp_path / "runs" / summary["run_id"])
     assert run.n_samples == controller.index  # every tick is a row
     states = set(run.trace["state"])
-    assert {"purge", "vent", "baseline", "fill", "settle_filled", "expand", "settle_expanded",
-            "done"} <= states
+    assert {"purge_fill", "purge_hold", "purge_vent", "vent", "baseline", "fill", "settle_filled", "expand",
+            "settle_expanded", "done"} <= states
+    # every purge pulse shows in the trace: one fill, hold, vent run of rows per pulse, in that order
+    seq = load_sequence(resolve_sequence("quick-demo"))
+    runs = [str(s) for i, s in enumerate(run.trace["state"]) if i == 0 or s != run.trace["state"][i - 1]]
+    purge = [s for s in runs if s.startswith("purge")]
+    assert purge == ["purge_fill", "purge_hold", "purge_vent"] * seq.purge.pulses
     kinds = [e["kind"] for e in run.events]
     assert kinds.count("state") >= 10 and "settled" in kinds
     assert len(run.cycles) == 3
