@@ -179,7 +179,7 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
         "density_g_cm3": None, "density_u_g_cm3": None, "converged": None,
     }
     if seq.kind == "leak_check":
-        rates = [c.leak_rate for c in engine.cycles if math.isfinite(c.leak_rate)]
+        rates = [c.leak_rate_pa_s for c in engine.cycles if math.isfinite(c.leak_rate_pa_s)]
         out["leak_rate_pa_s"] = rates[-1] if rates else None
         out["leak_ok"] = bool(rates) and -rates[-1] <= seq.leak_check.max_rate
     if res is not None:

@@ -47,26 +47,28 @@ class Zero:
 
 @dataclass
 class CycleData:
-    """What one cycle has measured so far (gauge pressures above the cycle's zero, SI units)."""
+    """What one cycle has measured so far, under the names its CycleResult (and summary.json) uses:
+    gauge pressures above the cycle's zero, SI units. ``u_p1_settle_pa`` / ``u_p2_settle_pa`` are the
+    settle's own uncertainty; the result combines them with the sensor's into ``u_p1_pa`` / ``u_p2_pa``."""
 
     index: int
     volume_name: str
-    baseline: float = math.nan
-    u_baseline: float = math.nan
-    ambient: float = math.nan
-    t_ambient: float = math.nan
-    p1: float = math.nan
-    u_p1: float = math.nan
-    t1: float = math.nan
-    settle1_time: float = math.nan
-    drift1: float = math.nan
-    p2: float = math.nan
-    u_p2: float = math.nan
-    t2: float = math.nan
-    settle2_time: float = math.nan
-    drift2: float = math.nan
-    fill_time: float = math.nan  # set by the engine: when its fill target was reached
-    leak_rate: float = math.nan
+    baseline_pa: float = math.nan  # the cycle's zero
+    u_baseline_pa: float = math.nan
+    ambient_pa: float = math.nan  # absolute, at the zero
+    ta_k: float = math.nan  # gas temperature at the zero
+    p1_gauge_pa: float = math.nan
+    u_p1_settle_pa: float = math.nan
+    t1_k: float = math.nan
+    settle1_s: float = math.nan
+    drift1_pa_s: float = math.nan
+    p2_gauge_pa: float = math.nan
+    u_p2_settle_pa: float = math.nan
+    t2_k: float = math.nan
+    settle2_s: float = math.nan
+    drift2_pa_s: float = math.nan
+    fill_s: float = math.nan  # set by the engine: when its fill target was reached
+    leak_rate_pa_s: float = math.nan
     flags: list[str] = field(default_factory=list)
 
 
@@ -182,7 +184,7 @@ class CycleMeasurer:
             if self.zero is not None:
                 z = self.zero
                 self.current = CycleData(index=len(self.cycles) + 1, volume_name=self.plan.volume_name,
-                                         baseline=z.value, u_baseline=z.u, ambient=z.ambient, t_ambient=z.temp_k)
+                                         baseline_pa=z.value, u_baseline_pa=z.u, ambient_pa=z.ambient, ta_k=z.temp_k)
                 self.cycles.append(self.current)
         elif state == RunState.LEAK_HOLD:
             self._leak = ([], [])
@@ -237,20 +239,22 @@ class CycleMeasurer:
             return
         temps = self._temps[-_LAST:]
         temp = sum(temps) / len(temps) if temps else math.nan
-        val = Settled(det.estimate - cyc.baseline, settled_u(det), temp, det.elapsed, det.drift)
+        val = Settled(det.estimate - cyc.baseline_pa, settled_u(det), temp, det.elapsed, det.drift)
         self.last = val
         if self._state == RunState.SETTLE_FILLED:
-            cyc.p1, cyc.u_p1, cyc.t1, cyc.settle1_time, cyc.drift1 = val.p, val.u, val.t, val.time, val.drift
+            cyc.p1_gauge_pa, cyc.u_p1_settle_pa, cyc.t1_k = val.p, val.u, val.t
+            cyc.settle1_s, cyc.drift1_pa_s = val.time, val.drift
             if timed_out:
                 cyc.flags.append("unsettled_p1")
         else:
-            cyc.p2, cyc.u_p2, cyc.t2, cyc.settle2_time, cyc.drift2 = val.p, val.u, val.t, val.time, val.drift
+            cyc.p2_gauge_pa, cyc.u_p2_settle_pa, cyc.t2_k = val.p, val.u, val.t
+            cyc.settle2_s, cyc.drift2_pa_s = val.time, val.drift
             if timed_out:
                 cyc.flags.append("unsettled_p2")
 
     def _complete(self) -> None:
         cyc = self.current
-        if cyc is None or not (math.isfinite(cyc.p1) and math.isfinite(cyc.p2)):
+        if cyc is None or not (math.isfinite(cyc.p1_gauge_pa) and math.isfinite(cyc.p2_gauge_pa)):
             return
         if self.results and self.results[-1].index == cyc.index:
             return

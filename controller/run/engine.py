@@ -321,7 +321,7 @@ class RunEngine:
         if math.isfinite(s.gauge) and s.gauge >= target:
             cyc = self.current
             if cyc is not None:
-                cyc.fill_time = self._elapsed()
+                cyc.fill_s = self._elapsed()
             self._fire("filled")
         elif self._elapsed() > self.seq.fill.timeout:
             raise SequenceFault("fill_timeout", f"fill did not reach {target:.0f} Pa within "
@@ -362,8 +362,8 @@ class RunEngine:
         if self._elapsed() >= self.seq.leak_check.hold:
             cyc = self.current
             assert cyc is not None
-            cyc.leak_rate = self.meter.leak_rate
-            if -cyc.leak_rate > self.seq.leak_check.max_rate:
+            cyc.leak_rate_pa_s = self.meter.leak_rate
+            if -cyc.leak_rate_pa_s > self.seq.leak_check.max_rate:
                 cyc.flags.append("leak")
             self._fire("held")
 
