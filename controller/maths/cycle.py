@@ -25,7 +25,7 @@ from pycnoctl.controller.maths.settle import SettleCriteria, SettleDetector, Set
 _LAST = 20  # samples averaged for the ambient pressure and the gas temperature of a settled value
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)  # made on every tick: slots, not frozen (a frozen __init__ is markedly slower)
 class Row:
     """One sample as the measurer needs it; NaN where the reading was invalid."""
 
@@ -110,7 +110,7 @@ def settled_u(det: SettleDetector) -> float:
     return math.hypot(u_reg, abs(drift) * tau / math.sqrt(3.0))
 
 
-_SETTLES = (RunState.BASELINE, RunState.SETTLE_FILLED, RunState.SETTLE_EXPANDED)
+_SETTLES = frozenset({RunState.BASELINE.value, RunState.SETTLE_FILLED.value, RunState.SETTLE_EXPANDED.value})
 
 
 class CycleMeasurer:
