@@ -3,8 +3,10 @@
 The machine (built with ``transitions``, auto transitions off) only decides; it never waits.
 Each state's entry callback commands valves, and ``step`` - called by the controller's tick
 loop with every new sample, after the interlocks have seen it - checks the state's exit
-condition and its time limit.  Everything a cycle measures flows one way:
-sample -> settle detector -> cycle pressures -> volume (pure maths in results.py) -> record.
+condition and its time limit.  The engine measures nothing itself: every sample goes to the
+cycle measurer (maths/cycle.py), whose answer (a settle decided) ends a settle state, and which
+``pycnoctl analyze`` feeds the stored trace through in the same way. Everything a cycle measures
+flows one way: sample -> CycleMeasurer -> CycleResult (on the cycle_done event) -> run result -> record.
 """
 
 from __future__ import annotations
