@@ -106,6 +106,17 @@ def test_pressure_trace_updates(page: object) -> None:
     assert inked > 1000
 
 
+def test_state_colours_and_labels_come_from_the_served_vocabulary(page: object,
+                                                                   daemon_url: tuple[str, Path]) -> None:
+    pg = page
+    served = httpx.get(daemon_url[0] + "/api/states", timeout=5).json()
+    pg.wait_for_function("() => STATES.length > 0", timeout=5000)
+    assert pg.evaluate("STATE_COLOUR") == {s["name"]: s["colour"] for s in served}
+    legend = pg.text_content("#legend")
+    shown = [s["label"] for s in served if not s["terminal"] and s["colour"].lower() != "#ffffff"]
+    assert "purge pulse: fill" in shown and all(label in legend for label in shown)
+
+
 def test_a_run_submitted_from_the_page_completes_and_shows_its_result(page: object,
                                                                       daemon_url: tuple[str, Path]) -> None:
     pg = page

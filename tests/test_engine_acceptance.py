@@ -15,11 +15,12 @@ from pathlib import Path
 import pytest
 import yaml
 
-from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+from pycnoctl.controller.jobs.measurement import RunRequest, execute, jsonable, prepare
 from pycnoctl.controller.record.catalog import Catalog
 from pycnoctl.controller.record.runfolder import load_run
 from pycnoctl.controller.run.control import Controller
 from pycnoctl.controller.run.engine import TRANSITIONS, RunEngine
+from pycnoctl.controller.run.sequence import load_sequence, resolve_sequence
 from pycnoctl.drivers.simulated import build_sim_instrument
 from pycnoctl.sim.config import config_from_dict, shipped_configs
 
@@ -132,8 +133,13 @@ def test_run_record_is_complete_and_reanalysable(tmp_path):
     run = load_run(tmp_path / "runs" / summary["run_id"])
     assert run.n_samples == controller.index  # every tick is a row
     states = set(run.trace["state"])
-    assert {"purge", "vent", "baseline", "fill", "settle_filled", "expand", "settle_expanded",
-            "done"} <= states
+    assert {"purge_fill", "purge_hold", "purge_vent", "vent", "baseline", "fill", "settle_filled", "expand",
+            "settle_expanded", "done"} <= states
+    # every purge pulse shows in the trace: one fill, hold, vent run of rows per pulse, in that order
+    seq = load_sequence(resolve_sequence("quick-demo"))
+    runs = [str(s) for i, s in enumerate(run.trace["state"]) if i == 0 or s != run.trace["state"][i - 1]]
+    purge = [s for s in runs if s.startswith("purge")]
+    assert purge == ["purge_fill", "purge_hold", "purge_vent"] * seq.purge.pulses
     kinds = [e["kind"] for e in run.events]
     assert kinds.count("state") >= 10 and "settled" in kinds
     assert len(run.cycles) == 3
@@ -323,3 +329,24 @@ def test_pressure_trapped_behind_a_vent_believed_open_trips_even_while_idle(vent
     assert limit <= trip.t < limit + 2 * inst.sample_period  # the vent was commanded open at t = 0
     assert trip.value >= limit and "phase idle" in trip.message
     assert controller.reset() is False  # still pressurised
+
+
+def test_the_cycle_done_event_carries_the_stored_cycle_result(tmp_path):
+    """One SI cycle type end to end: what the cycle_done event carried is the summary's cycle, and the
+    catalog holds the same SI numbers exactly (no cm3 round trip)."""
+    inst = build_sim_instrument(None)
+    catalog = Catalog(tmp_path / "catalog.sqlite")
+    controller = Controller(inst)
+    seen: list[dict] = []
+    controller.listeners.append(lambda kind, data: seen.append(data) if kind == "cycle_done" else None)
+    summary = execute(prepare(RunRequest("quick-demo"), inst), controller, root=tmp_path / "runs", catalog=catalog)
+    assert summary["status"] == "completed" and len(summary["cycles"]) == 3
+    assert [jsonable(d["result"]) for d in seen] == summary["cycles"]
+    recorded = [e["result"] for e in load_run(tmp_path / "runs" / summary["run_id"]).events
+                if e["kind"] == "cycle_done"]
+    assert recorded == summary["cycles"]
+    rows = catalog.get_cycles(summary["run_id"])
+    assert [(r.p1, r.p2, r.volume) for r in rows] == [(c["p1_gauge_pa"], c["p2_gauge_pa"], c["volume_m3"])
+                                                       for c in summary["cycles"]]
+    run = catalog.get_run(summary["run_id"])
+    assert run is not None and run.volume_m3 * 1e6 == summary["volume_cm3"]  # the RunResult's own m3

@@ -12,15 +12,16 @@ import pytest
 from matplotlib import colors
 from matplotlib.image import imread
 
+from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
 from pycnoctl.controller.record.catalog import Catalog
 from pycnoctl.controller.record.report import (
     DPI,
     FIGSIZE,
-    PHASE_COLOURS,
     TRACE_AXES,
     TRACE_COLOUR,
     gauge_trace,
+    phase_look,
     phase_segments,
     render_report,
     render_sample_set,
@@ -67,12 +68,14 @@ def test_png_shows_phases_in_proportion_and_the_trace(run_folder: Path) -> None:
         share_t[state] = share_t.get(state, 0.0) + (b - a) / total
     flat = px.reshape(-1, 3)
     counts = {}
-    for state, hexc in PHASE_COLOURS.items():
+    shading = {s.value: look.colour for s in RunState if (look := phase_look(s.value)) is not None}
+    assert len(set(shading.values())) == len(shading)  # one colour per state, or the count below is void
+    for state, hexc in shading.items():
         rgb = np.array(colors.to_rgb(hexc))
         counts[state] = int(np.sum(np.all(np.abs(flat - rgb) < 0.01, axis=1)))
     shaded = sum(counts.values())
     assert shaded > 0.6 * len(flat)  # most of the axes is phase shading (the rest: trace line, edges)
-    for state in ("purge", "vent", "baseline", "settle_filled", "settle_expanded"):
+    for state in ("purge_fill", "purge_vent", "vent", "baseline", "settle_filled", "settle_expanded"):
         assert state in share_t
         # the share of shaded pixels equals the share of time within 2 percentage points
         assert counts[state] / shaded == pytest.approx(share_t[state], abs=0.02), state

@@ -25,6 +25,7 @@ from pycnoctl.controller.cli.common import (
     open_instrument,
 )
 from pycnoctl.controller.cli.main import UsageError
+from pycnoctl.controller.domain.states import RunState
 
 EXIT = {"completed": 0, "fault": 3, "aborted": 4, "interrupted": 4}
 
@@ -178,7 +179,7 @@ class LiveView:
             left = max(per_cycle * (self.seq.cycles.count - len(self._cycle_t) + 1) - (self.t - self._cycle_t[-1]),
                        0.0)
         table.add_row("sequence", f"{self.seq.name} ({self.seq.kind})")
-        table.add_row("state", f"[bold]{self.state}[/]")
+        table.add_row("state", f"[bold]{RunState(self.state).look.label}[/]")
         table.add_row("pressure", f"{self.gauge / 1e5:8.5f} bar gauge" if self.gauge == self.gauge else "invalid")
         if self.seq.expands:
             table.add_row("cycle", f"{self.cycle} of {self.seq.cycles.count}")

@@ -24,7 +24,10 @@ class RunState(enum.StrEnum):
     """States of one run. The value is the name written to the trace (stable: records are re-read)."""
 
     IDLE = "idle"
-    PURGE = "purge"
+    PURGE = "purge"  # the whole purge, as records written before its pulses were states name it
+    PURGE_FILL = "purge_fill"  # a purge pulse filling to its pressure
+    PURGE_HOLD = "purge_hold"  # ... holding, closed
+    PURGE_VENT = "purge_vent"  # ... venting
     VENT = "vent"
     BASELINE = "baseline"
     FILL = "fill"
@@ -44,12 +47,23 @@ class RunState(enum.StrEnum):
     def terminal(self) -> bool:
         return self in TERMINAL
 
+    @property
+    def purging(self) -> bool:
+        """A purge state (a pulse's fill, hold or vent, or the whole purge of an older record)."""
+        return self in PURGING
+
 
 TERMINAL: frozenset[RunState] = frozenset({RunState.DONE, RunState.FAULT, RunState.ABORTED})
 
+PURGING: frozenset[RunState] = frozenset({RunState.PURGE, RunState.PURGE_FILL, RunState.PURGE_HOLD,
+                                          RunState.PURGE_VENT})
+
 LOOKS: dict[RunState, StateLook] = {
     RunState.IDLE: StateLook("idle", "#ffffff"),
-    RunState.PURGE: StateLook("purge", "#e6d5f2"),
+    RunState.PURGE: StateLook("purge (older records)", "#e6d5f2"),
+    RunState.PURGE_FILL: StateLook("purge pulse: fill", "#d9c2ec"),
+    RunState.PURGE_HOLD: StateLook("purge pulse: hold", "#e0cdf0"),
+    RunState.PURGE_VENT: StateLook("purge pulse: vent", "#efe6f7"),
     RunState.VENT: StateLook("vent", "#d9d9d9"),
     RunState.BASELINE: StateLook("baseline (zero)", "#f2f2c2"),
     RunState.FILL: StateLook("fill", "#f7c9b6"),

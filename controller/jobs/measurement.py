@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Any
 
 from pycnoctl.controller.domain.gaspath import ChamberCalibration
+from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.domain.yamlio import ConfigError
 from pycnoctl.controller.maths import results
 from pycnoctl.controller.maths.advisor import advise
@@ -122,15 +123,33 @@ def instrument_description(instrument: Instrument) -> dict[str, Any]:
     })
 
 
-def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument: Instrument, *,
-              started: float, ended: float, t0: float, t1: float) -> dict[str, Any]:
-    """The run summary: status, result with uncertainty, every cycle, and everything used to get it."""
-    seq = prepared.sequence
-    req = prepared.request
+@dataclass
+class Outcome:
+    """A run's measured result in SI units: the engine's finished cycles and the result over them."""
+
+    cycles: list[results.CycleResult]
+    result: results.RunResult | None
+
+
+def outcome(prepared: PreparedRun, engine: RunEngine) -> Outcome:
+    """The cycles as the engine's measurer finished them (never recomputed) and the run result."""
+    seq, req = prepared.sequence, prepared.request
     cycles = engine.cycle_results()
     res = results.run_result(cycles, converge=seq.cycles.converge, mass=req.mass, u_mass=req.u_mass) \
         if seq.expands else None
-    status = {"done": "completed", "fault": "fault", "aborted": "aborted"}.get(engine.state, "interrupted")
+    return Outcome(cycles, res)
+
+
+def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument: Instrument, *,
+              started: float, ended: float, t0: float, t1: float, done: Outcome | None = None) -> dict[str, Any]:
+    """The run summary: status, result with uncertainty, every cycle, and everything used to get it
+    (the stored form: volumes in cm3 for people, as summary.json has always had them)."""
+    seq = prepared.sequence
+    req = prepared.request
+    done = done or outcome(prepared, engine)
+    cycles, res = done.cycles, done.result
+    status = {RunState.DONE: "completed", RunState.FAULT: "fault", RunState.ABORTED: "aborted"}.get(
+        RunState(engine.state), "interrupted")
     cal = instrument.chambers.for_expansion(prepared.expansion_volume)
     out: dict[str, Any] = {
         "run_id": run_id,
@@ -152,15 +171,15 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
         "instrument_time_s": t1 - t0,
         "wall_time_s": ended - started,
         "warnings": list(prepared.warnings) + list(engine.warnings),
-        "fault": {"kind": engine.fault_kind, "message": engine.reason} if engine.state == "fault" else None,
-        "abort_reason": engine.reason if engine.state == "aborted" else None,
+        "fault": {"kind": engine.fault_kind, "message": engine.reason} if engine.state == RunState.FAULT else None,
+        "abort_reason": engine.reason if engine.state == RunState.ABORTED else None,
         "cycles": [c.as_dict() for c in cycles],
         "mass_g": req.mass * 1e3 if req.mass else None,
         "volume_cm3": None, "volume_u_cm3": None, "volume_u_std_cm3": None, "k": None,
         "density_g_cm3": None, "density_u_g_cm3": None, "converged": None,
     }
     if seq.kind == "leak_check":
-        rates = [c.leak_rate for c in engine.cycles if math.isfinite(c.leak_rate)]
+        rates = [c.leak_rate_pa_s for c in engine.cycles if math.isfinite(c.leak_rate_pa_s)]
         out["leak_rate_pa_s"] = rates[-1] if rates else None
         out["leak_ok"] = bool(rates) and -rates[-1] <= seq.leak_check.max_rate
     if res is not None:
@@ -244,23 +263,24 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
             inst.safe_state()
             engine.request_abort("controller stopped", inst.clock.now())
         # a write that failed on the last tick, after the run had ended: the trip came too late to fault it
-        late_loss = controller.monitor.latched if controller.recorder is not recorder and engine.state == "done" \
-            else None
+        late_loss = controller.monitor.latched \
+            if controller.recorder is not recorder and engine.state == RunState.DONE else None
         controller.engine = None
         controller.recorder = None
         try:
+            done = outcome(prepared, engine)
             summary = summarize(run_id, prepared, engine, inst, started=started, ended=time.time(),
-                                t0=t0, t1=inst.clock.now())
+                                t0=t0, t1=inst.clock.now(), done=done)
         except Exception as exc:  # no summary at all: the row must not stay 'running'; say what was lost
             _close_after_bookkeeping_error(catalog, recorder, run_id, engine, exc)
             raise RunFault(run_id, f"run {run_id}: {type(exc).__name__} while storing the run: {exc}; "
                                    "the instrument is in the safe state, the record may be incomplete") from exc
-        _store(summary, prepared, recorder, catalog, cal_use, inst,
+        _store(summary, done, prepared, recorder, catalog, cal_use, inst,
                late_loss=f"end of the run record ({late_loss.message})" if late_loss is not None else None)
     return summary
 
 
-def _store(summary: dict[str, Any], prepared: PreparedRun, recorder: RunRecorder, catalog: Catalog,
+def _store(summary: dict[str, Any], done: Outcome, prepared: PreparedRun, recorder: RunRecorder, catalog: Catalog,
            cal_use: Any, inst: Instrument, *, late_loss: str | None = None) -> None:
     """Every bookkeeping step on its own: one that fails (a full disk, say) must not keep the next
     from being tried.  What was not saved goes into the summary, the row's message and, if it can
@@ -305,9 +325,9 @@ def _store(summary: dict[str, Any], prepared: PreparedRun, recorder: RunRecorder
 
     attempt("summary.json", write_summary)
     attempt("trace/events final flush", recorder.close)
-    attempt("catalog cycles", lambda: catalog.add_cycles(
-        run_id, [(c["index"], c["p1_gauge_pa"], c["p2_gauge_pa"], c["volume_m3"], c["kept"])
-                 for c in summary["cycles"]]))
+    attempt("catalog cycles", lambda: catalog.add_cycles(  # SI, straight from the cycle results
+        run_id, [(c.index, _si(c.p1_gauge_pa), _si(c.p2_gauge_pa), _si(c.volume_m3), c.kept)
+                 for c in done.cycles]))
     if lost:
         with contextlib.suppress(Exception):  # on a disk that is still full this fails too
             _note_after_close(recorder, "not saved: " + "; ".join(str(f) for f in failures), "write_error" if any(
@@ -315,9 +335,10 @@ def _store(summary: dict[str, Any], prepared: PreparedRun, recorder: RunRecorder
     req = prepared.request
     message = (summary["fault"] or {}).get("message") or summary["abort_reason"] or None
     try:
-        catalog.finish_run(run_id, summary["status"], volume_m3=_m3(summary["volume_cm3"]),
-                           u_volume_m3=_m3(summary["volume_u_cm3"]),
-                           density=summary["density_g_cm3"] * 1e3 if summary["density_g_cm3"] else None,
+        res = done.result
+        catalog.finish_run(run_id, summary["status"], volume_m3=_si(res.volume_m3) if res else None,
+                           u_volume_m3=_si(res.U_volume_m3) if res else None,  # the expanded U, as always
+                           density=_si(res.density_kg_m3) if res and res.density_kg_m3 else None,
                            mass=req.mass, message=message, calibration_id=summary["calibration"].get("record_id"))
         return
     except Exception as exc:
@@ -376,7 +397,7 @@ def _close_after_bookkeeping_error(catalog: Catalog, recorder: RunRecorder, run_
                                    exc: Exception) -> None:
     """Best effort: note the failure in the record, close the recorder, close the catalog row as a fault."""
     message = f"{type(exc).__name__} while storing the run: {exc}"
-    if engine.state == "fault":
+    if engine.state == RunState.FAULT:
         message = f"{engine.fault_kind}: {engine.reason}; then {message}"
     for step in (lambda: _note_after_close(recorder, message, type(exc).__name__),
                  recorder.close,
@@ -415,5 +436,6 @@ def _cycle_record(c: dict[str, Any]) -> dict[str, Any]:
             "kept": bool(c.get("kept"))}
 
 
-def _m3(cm3: float | None) -> float | None:
-    return None if cm3 is None else cm3 * 1e-6
+def _si(x: float | None) -> float | None:
+    """A value for the catalog: None where it is missing or not finite (the summary's jsonable rule)."""
+    return None if x is None or not math.isfinite(x) else x

@@ -17,20 +17,26 @@ from pycnoctl.controller.maths.volume import VolumeError
 
 
 class CyclePressures(Protocol):
-    """What a cycle measured (engine.CycleData serves): gauge pressures above the cycle's zero."""
+    """What a cycle measured (maths.cycle.CycleData serves), under the result's own names: gauge
+    pressures above the cycle's zero, each settle's own standard uncertainty."""
 
     index: int
     volume_name: str
-    baseline: float
-    u_baseline: float
-    ambient: float
-    t_ambient: float
-    p1: float
-    u_p1: float
-    t1: float
-    p2: float
-    u_p2: float
-    t2: float
+    baseline_pa: float
+    u_baseline_pa: float
+    ambient_pa: float
+    ta_k: float
+    p1_gauge_pa: float
+    u_p1_settle_pa: float
+    t1_k: float
+    settle1_s: float
+    drift1_pa_s: float
+    p2_gauge_pa: float
+    u_p2_settle_pa: float
+    t2_k: float
+    settle2_s: float
+    drift2_pa_s: float
+    fill_s: float
     flags: list[str]
 
 
@@ -73,14 +79,14 @@ def _temp(x: float) -> float | None:
 def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str, u_p: float, u_t: float,
                  discard: int) -> CycleResult:
     """Volume of one cycle and its GUM budget (pressures: settle-window SE combined with the sensor's u)."""
-    pa = cyc.ambient
-    p1, p2 = pa + cyc.p1, pa + cyc.p2
-    u_p1 = math.hypot(u_p, cyc.u_p1 if math.isfinite(cyc.u_p1) else 0.0)
-    u_p2 = math.hypot(u_p, cyc.u_p2 if math.isfinite(cyc.u_p2) else 0.0)
+    pa = cyc.ambient_pa
+    p1, p2 = pa + cyc.p1_gauge_pa, pa + cyc.p2_gauge_pa
+    u_p1 = math.hypot(u_p, cyc.u_p1_settle_pa if math.isfinite(cyc.u_p1_settle_pa) else 0.0)
+    u_p2 = math.hypot(u_p, cyc.u_p2_settle_pa if math.isfinite(cyc.u_p2_settle_pa) else 0.0)
     # An error in the cycle's zero shifts both gauge pressures alike: the same as an error in the
     # initial pressure of the expansion volume with P1, P2 held, which is how the budget takes Pa.
-    u_pa = cyc.u_baseline if math.isfinite(cyc.u_baseline) else 0.0
-    t1, t2, ta = _temp(cyc.t1), _temp(cyc.t2), _temp(cyc.t_ambient)
+    u_pa = cyc.u_baseline_pa if math.isfinite(cyc.u_baseline_pa) else 0.0
+    t1, t2, ta = _temp(cyc.t1_k), _temp(cyc.t2_k), _temp(cyc.ta_k)
     flags = list(cyc.flags)
     try:
         budget = uncertainty.cycle_volume_budget(
@@ -94,13 +100,11 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
     if math.isfinite(volume) and not 0.0 < volume <= chambers.vc:
         flags.append("volume outside the cell")
     return CycleResult(
-        index=cyc.index, volume_name=cyc.volume_name, baseline_pa=cyc.baseline, ambient_pa=pa,
-        p1_gauge_pa=cyc.p1, p2_gauge_pa=cyc.p2, u_p1_pa=u_p1, u_p2_pa=u_p2, t1_k=t1, t2_k=t2, ta_k=ta,
-        volume_m3=volume, u_volume_m3=u_volume, kept=cyc.index > discard and math.isfinite(volume),
-        flags=flags, budget=budget,
-        settle1_s=getattr(cyc, "settle1_time", math.nan), settle2_s=getattr(cyc, "settle2_time", math.nan),
-        drift1_pa_s=getattr(cyc, "drift1", math.nan), drift2_pa_s=getattr(cyc, "drift2", math.nan),
-        fill_s=getattr(cyc, "fill_time", math.nan),
+        index=cyc.index, volume_name=cyc.volume_name, baseline_pa=cyc.baseline_pa, ambient_pa=pa,
+        p1_gauge_pa=cyc.p1_gauge_pa, p2_gauge_pa=cyc.p2_gauge_pa, u_p1_pa=u_p1, u_p2_pa=u_p2, t1_k=t1, t2_k=t2,
+        ta_k=ta, volume_m3=volume, u_volume_m3=u_volume, kept=cyc.index > discard and math.isfinite(volume),
+        flags=flags, budget=budget, settle1_s=cyc.settle1_s, settle2_s=cyc.settle2_s,
+        drift1_pa_s=cyc.drift1_pa_s, drift2_pa_s=cyc.drift2_pa_s, fill_s=cyc.fill_s,
     )
 
 

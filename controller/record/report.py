@@ -23,22 +23,9 @@ from typing import Any
 import jinja2
 import numpy as np
 
+from pycnoctl.controller.domain.states import RunState, StateLook
 from pycnoctl.controller.record.runfolder import StoredRun, load_run
 
-#: Phase (engine state) -> solid shading colour of the trace plot.
-PHASE_COLOURS: dict[str, str] = {
-    "purge": "#e6d5f2",
-    "vent": "#d9d9d9",
-    "baseline": "#f2f2c2",
-    "fill": "#f7c9b6",
-    "settle_filled": "#fbe3c0",
-    "expand": "#bfe3f5",
-    "settle_expanded": "#cde9d3",
-    "leak_hold": "#f5c6dc",
-}
-PHASE_LABELS = {"purge": "purge", "vent": "vent", "baseline": "baseline (zero)", "fill": "fill",
-                "settle_filled": "settle after fill (P1)", "expand": "expand",
-                "settle_expanded": "settle after expansion (P2)", "leak_hold": "leak hold"}
 TRACE_COLOUR = "#1f1f7a"
 FIGSIZE = (10.0, 6.0)  # inches
 DPI = 100
@@ -61,6 +48,15 @@ def phase_segments(t: np.ndarray, states: Sequence[str]) -> list[tuple[str, floa
             out.append((str(states[start]), float(t[start]), end))
             start = i
     return out
+
+
+def phase_look(state: str) -> StateLook | None:
+    """How a recorded state is shaded (RunState's look); None for idle, the end states and unknown names."""
+    try:
+        s = RunState(state)
+    except ValueError:
+        return None
+    return None if s.terminal or s is RunState.IDLE else s.look
 
 
 def gauge_trace(run: StoredRun) -> tuple[np.ndarray, np.ndarray]:
@@ -90,10 +86,10 @@ def render_figure(run: StoredRun, png: Path) -> Path:
     seen: list[str] = []
     if t.size:
         for state, a, b in phase_segments(t, list(run.trace["state"])):
-            colour = PHASE_COLOURS.get(state)
-            if colour is None or b <= a:
+            look = phase_look(state)
+            if look is None or b <= a:
                 continue
-            ax.axvspan(a, b, facecolor=colour, edgecolor="none", linewidth=0)
+            ax.axvspan(a, b, facecolor=look.colour, edgecolor="none", linewidth=0)
             if state not in seen:
                 seen.append(state)
         ax.plot(t, p / 1e5, color=TRACE_COLOUR, linewidth=1.2)
@@ -107,7 +103,8 @@ def render_figure(run: StoredRun, png: Path) -> Path:
     ax.set_xlabel("time / s")
     res = (run.summary or {}).get("results") or {}
     ax.set_title(f"run {run.meta.get('run_id', '')}  sample {res.get('sample_id') or '-'}", fontsize=10)
-    handles = [Patch(facecolor=PHASE_COLOURS[s], edgecolor="#888888", label=PHASE_LABELS.get(s, s)) for s in seen]
+    looks = [RunState(s).look for s in seen]
+    handles = [Patch(facecolor=k.colour, edgecolor="#888888", label=k.label) for k in looks]
     if handles:
         fig.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.76, 0.94), fontsize=8, frameon=False,
                    title="phase", title_fontsize=8)

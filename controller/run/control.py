@@ -15,6 +15,7 @@ from collections.abc import Callable
 from typing import Any, Protocol
 
 from pycnoctl.controller.domain.devices import DeviceError, ForbiddenValveState, Reading, Validity
+from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.run.engine import RunEngine, Sample, SequenceFault
 from pycnoctl.controller.run.interlocks import InterlockMonitor, Observation, Trip
 from pycnoctl.drivers.instrument import Instrument
@@ -142,7 +143,7 @@ class Controller:
         s = self.acquire()
         self.last = s
         engine = self.engine
-        state = engine.state if engine is not None else "idle"
+        state = engine.state if engine is not None else RunState.IDLE.value
         self.stage = "interlocks"
         trip = self.monitor.observe(Observation(t=s.t, reading=s.pressure, gauge=s.gauge,
                                                 valves=s.valves, phase=state))
@@ -170,7 +171,7 @@ class Controller:
         if self.listeners:  # the fast path of a simulated run has none
             self.stage = "listeners"
             self.emit("sample", {"t": s.t, "gauge": s.gauge, "valid": s.pressure.validity.value,
-                                 "state": engine.state if engine else "idle", "valves": s.valves})
+                                 "state": engine.state if engine else RunState.IDLE.value, "valves": s.valves})
         return s
 
     def fail(self, exc: BaseException, where: str, t: float) -> None:
@@ -272,7 +273,7 @@ class Controller:
             self.emit("reconnect", {"result": result})
         s = self.acquire()
         ok = self.monitor.reset(Observation(t=s.t, reading=s.pressure, gauge=s.gauge,
-                                            valves=s.valves, phase="idle"))
+                                            valves=s.valves, phase=RunState.IDLE.value))
         self.emit("reset", {"accepted": ok, "t": s.t})
         return ok
 

@@ -3,8 +3,10 @@
 The machine (built with ``transitions``, auto transitions off) only decides; it never waits.
 Each state's entry callback commands valves, and ``step`` - called by the controller's tick
 loop with every new sample, after the interlocks have seen it - checks the state's exit
-condition and its time limit.  Everything a cycle measures flows one way:
-sample -> settle detector -> cycle pressures -> volume (pure maths in results.py) -> record.
+condition and its time limit.  The engine measures nothing itself: every sample goes to the
+cycle measurer (maths/cycle.py), whose answer (a settle decided) ends a settle state, and which
+``pycnoctl analyze`` feeds the stored trace through in the same way. Everything a cycle measures
+flows one way: sample -> CycleMeasurer -> CycleResult (on the cycle_done event) -> run result -> record.
 """
 
 from __future__ import annotations
@@ -12,55 +14,53 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 from transitions import Machine, MachineError
 
 from pycnoctl.controller.domain.devices import Reading
+from pycnoctl.controller.domain.states import TERMINAL as STATES_TERMINAL
+from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.maths import results
-from pycnoctl.controller.maths.settle import SettleCriteria, SettleDetector, SettleStatus
+from pycnoctl.controller.maths.cycle import CycleData, CycleMeasurer, CyclePlan, Row
+from pycnoctl.controller.maths.settle import SettleCriteria, SettleStatus
 from pycnoctl.drivers.instrument import Instrument
 
 log = logging.getLogger(__name__)
 
-#: Run states. ``settle_filled`` and ``settle_expanded`` are the two settles of a cycle; ``baseline`` is
-#: the closed, vented system settling to the wall temperature before each fill, because gas cooled by
-#: the vent and trapped in an expansion volume would otherwise bias the next expansion (by several
-#: per cent with helium if the vent is short).
-STATES = [
-    "idle",
-    "purge",
-    "vent",
-    "baseline",
-    "fill",
-    "settle_filled",
-    "expand",
-    "settle_expanded",
-    "leak_hold",
-    "done",
-    "fault",
-    "aborted",
-]
-TERMINAL = frozenset({"done", "fault", "aborted"})
+#: Run states (controller.domain.states.RunState). ``settle_filled`` and ``settle_expanded`` are the two
+#: settles of a cycle; ``baseline`` is the closed, vented system settling to the wall temperature before
+#: each fill, because gas cooled by the vent and trapped in an expansion volume would otherwise bias the
+#: next expansion (by several per cent with helium if the vent is short). A purge pulse is three states
+#: (purge_fill, purge_hold, purge_vent), so the trace shows every pulse. ``purge`` only names the whole
+#: purge in records written before the pulses were states; the engine never enters it.
+S = RunState
+STATES = [s.value for s in RunState if s is not S.PURGE]
+TERMINAL = frozenset(s.value for s in STATES_TERMINAL)
 ACTIVE = [s for s in STATES if s not in TERMINAL]
 
-TRANSITIONS: list[dict[str, Any]] = [
-    {"trigger": "start", "source": "idle", "dest": "purge", "conditions": "_wants_purge"},
-    {"trigger": "start", "source": "idle", "dest": "vent"},
-    {"trigger": "purged", "source": "purge", "dest": "vent"},
-    {"trigger": "vented", "source": "vent", "dest": "done", "conditions": "_all_cycles_done"},
-    {"trigger": "vented", "source": "vent", "dest": "baseline"},
-    {"trigger": "zeroed", "source": "baseline", "dest": "fill"},
-    {"trigger": "filled", "source": "fill", "dest": "settle_filled"},
-    {"trigger": "settled", "source": "settle_filled", "dest": "leak_hold", "conditions": "_is_leak_check"},
-    {"trigger": "settled", "source": "settle_filled", "dest": "expand"},
-    {"trigger": "expanded", "source": "expand", "dest": "settle_expanded"},
-    {"trigger": "settled", "source": "settle_expanded", "dest": "vent"},
-    {"trigger": "held", "source": "leak_hold", "dest": "vent"},
-    {"trigger": "fail", "source": ACTIVE, "dest": "fault"},
-    {"trigger": "abort", "source": ACTIVE, "dest": "aborted"},
+_TABLE: list[dict[str, Any]] = [
+    {"trigger": "start", "source": S.IDLE, "dest": S.PURGE_FILL, "conditions": "_wants_purge"},
+    {"trigger": "start", "source": S.IDLE, "dest": S.VENT},
+    {"trigger": "purge_filled", "source": S.PURGE_FILL, "dest": S.PURGE_HOLD},
+    {"trigger": "purge_held", "source": S.PURGE_HOLD, "dest": S.PURGE_VENT},
+    {"trigger": "pulsed", "source": S.PURGE_VENT, "dest": S.VENT, "conditions": "_all_pulses_done"},
+    {"trigger": "pulsed", "source": S.PURGE_VENT, "dest": S.PURGE_FILL},
+    {"trigger": "vented", "source": S.VENT, "dest": S.DONE, "conditions": "_all_cycles_done"},
+    {"trigger": "vented", "source": S.VENT, "dest": S.BASELINE},
+    {"trigger": "zeroed", "source": S.BASELINE, "dest": S.FILL},
+    {"trigger": "filled", "source": S.FILL, "dest": S.SETTLE_FILLED},
+    {"trigger": "settled", "source": S.SETTLE_FILLED, "dest": S.LEAK_HOLD, "conditions": "_is_leak_check"},
+    {"trigger": "settled", "source": S.SETTLE_FILLED, "dest": S.EXPAND},
+    {"trigger": "expanded", "source": S.EXPAND, "dest": S.SETTLE_EXPANDED},
+    {"trigger": "settled", "source": S.SETTLE_EXPANDED, "dest": S.VENT},
+    {"trigger": "held", "source": S.LEAK_HOLD, "dest": S.VENT},
+    {"trigger": "fail", "source": ACTIVE, "dest": S.FAULT},
+    {"trigger": "abort", "source": ACTIVE, "dest": S.ABORTED},
 ]
+# transitions names an Enum state by its member name: give it the trace names (the enum values)
+TRANSITIONS = [{k: v.value if isinstance(v, RunState) else v for k, v in row.items()} for row in _TABLE]
 
 
 @dataclass(slots=True)  # made on every tick: slots, not frozen (a frozen __init__ is markedly slower)
@@ -76,43 +76,6 @@ class Sample:
     valves: dict[str, bool]
 
 
-@dataclass
-class CycleData:
-    """What one cycle has measured so far (gauge pressures relative to the ambient reference)."""
-
-    index: int
-    volume_name: str
-    baseline: float = math.nan  # zero of the cycle: settled gauge of the closed, vented system
-    u_baseline: float = math.nan
-    ambient: float = math.nan  # Pa absolute at the baseline
-    t_ambient: float = math.nan  # K of the gas trapped at baseline
-    p1: float = math.nan
-    u_p1: float = math.nan
-    t1: float = math.nan
-    settle1_time: float = math.nan
-    drift1: float = math.nan
-    p2: float = math.nan
-    u_p2: float = math.nan
-    t2: float = math.nan
-    settle2_time: float = math.nan
-    drift2: float = math.nan
-    fill_time: float = math.nan
-    leak_rate: float = math.nan
-    flags: list[str] = field(default_factory=list)
-
-
-def settled_u(det: SettleDetector) -> float:
-    """Standard uncertainty of a settled pressure: the window regression's own, plus what is left of
-    the relaxation. An exponential still drifting at dP/dt has |dP/dt|*tau to go (methods: drift
-    criterion); taken as a rectangular bound (divide by sqrt 3), tau from a sound fit of the window,
-    else three windows (the longest time constant a window can resolve)."""
-    fit = det.fit
-    tau = fit.tau if fit is not None and fit.sound else 3.0 * det.criteria.window
-    drift = det.drift if math.isfinite(det.drift) else 0.0
-    u_reg = det.u_estimate if math.isfinite(det.u_estimate) else 0.0
-    return math.hypot(u_reg, abs(drift) * tau / math.sqrt(3.0))
-
-
 class SequenceFault(Exception):
     """The sequence cannot go on (fill or vent time-out, settle time-out): the controller trips on it."""
 
@@ -122,7 +85,7 @@ class SequenceFault(Exception):
 
 
 class RunEngine:
-    """Steps one sequence through its cycles on one instrument."""
+    """Steps one sequence through its cycles on one instrument; the cycle measurer does the measuring."""
 
     def __init__(
         self,
@@ -138,34 +101,34 @@ class RunEngine:
         self.volume_name = expansion_volume
         self.exp_valve = self.roles.expansion[expansion_volume]
         self.emit = emit or (lambda kind, data: None)
-        self.cycles: list[CycleData] = []
-        self.current: CycleData | None = None
+        self.meter = CycleMeasurer(self.plan(sequence, instrument, expansion_volume))
+        self.cycle_number = 0  # 1-based number of the cycle in progress (0 before the first fill)
         self.reason: str = ""
         self.fault_kind: str = ""
         self.t_state = 0.0  # when the current state was entered
         self._now = 0.0
-        self._detector: SettleDetector | None = None
-        self._vent_window: list[tuple[float, float, float, float]] = []  # (t, gauge, ambient, temp K)
-        self._baseline = (math.nan, math.nan, math.nan, math.nan)  # zero, its u, ambient Pa, gas K
         self.warnings: list[str] = []
         self._warned: set[str] = set()
-        self._temps: list[float] = []
         self._purge_pulse = 0
-        self._purge_step = "fill"
-        self._purge_t = 0.0
-        self._leak_t: list[float] = []
-        self._leak_p: list[float] = []
+        self._status: SettleStatus | None = None  # the measurer's answer on the current sample
         self.converged_early = False
-        self._steps = {name: getattr(self, f"_step_{name}") for name in ACTIVE if name != "idle"}
+        self._steps = {name: getattr(self, f"_step_{name}") for name in ACTIVE if name != S.IDLE}
         self.machine = Machine(
             model=self,
             states=STATES,
             transitions=TRANSITIONS,
-            initial="idle",
+            initial=S.IDLE.value,
             auto_transitions=False,
             queued=True,
             after_state_change="_after_state_change",
         )
+
+    @staticmethod
+    def plan(sequence: Any, instrument: Instrument, expansion_volume: str) -> CyclePlan:
+        """The measurer's rules for this sequence on this instrument (replay builds the same)."""
+        return cycle_plan(sequence, chambers=instrument.chambers.for_expansion(expansion_volume),
+                          gas=sequence.gas, u_p=instrument.pressure_u, u_t=instrument.temperature_u,
+                          volume_name=expansion_volume)
 
     # ----- machine plumbing -------------------------------------------------------------------
     state: str  # set by transitions
@@ -175,9 +138,14 @@ class RunEngine:
         self.emit("state", {"state": self.state, "t": self._now, "cycle": self.cycle_number})
 
     @property
-    def cycle_number(self) -> int:
-        """1-based number of the cycle in progress (0 before the first fill)."""
-        return len(self.cycles)
+    def cycles(self) -> list[CycleData]:
+        """Every cycle begun so far (the measurer's)."""
+        return self.meter.cycles
+
+    @property
+    def current(self) -> CycleData | None:
+        return self.meter.current if self.meter.current is not None and \
+            self.meter.current.index == self.cycle_number else None
 
     @property
     def terminal(self) -> bool:
@@ -186,12 +154,15 @@ class RunEngine:
     def _wants_purge(self) -> bool:
         return self.seq.purge is not None and self.seq.purge.pulses > 0
 
+    def _all_pulses_done(self) -> bool:
+        return self._purge_pulse >= self.seq.purge.pulses
+
     def _all_cycles_done(self) -> bool:
         if self.seq.kind == "purge":
             return True
         if self.seq.kind == "leak_check":
-            return len(self.cycles) >= 1
-        return len(self.cycles) >= self.seq.cycles.count or self.converged_early
+            return self.cycle_number >= 1
+        return self.cycle_number >= self.seq.cycles.count or self.converged_early
 
     def _is_leak_check(self) -> bool:
         return self.seq.kind == "leak_check"
@@ -230,16 +201,16 @@ class RunEngine:
         self.machine.events["abort"].trigger(self)
 
     # ----- state entry: valve commands only --------------------------------------------------
-    def on_enter_purge(self) -> None:
-        self._purge_pulse = 0
-        self._begin_purge_fill()
-
-    def _begin_purge_fill(self) -> None:
-        self._purge_step = "fill"
-        self._purge_t = self._now
+    def on_enter_purge_fill(self) -> None:
         expansion = {v: True for v in self.roles.expansion.values()}
         self._set(**{self.roles.vent: False}, **expansion)
         self._set(**{self.roles.inlet: True})
+
+    def on_enter_purge_hold(self) -> None:
+        self._set(**{self.roles.inlet: False})
+
+    def on_enter_purge_vent(self) -> None:
+        self._set(**{self.roles.vent: True})
 
     def on_enter_vent(self) -> None:
         self._set(**{self.roles.inlet: False})
@@ -247,18 +218,11 @@ class RunEngine:
 
     def on_enter_baseline(self) -> None:
         self._set(**{self.roles.vent: False})
-        self._detector = SettleDetector(self._criteria(self._settle_baseline()), self._now)
-        self._vent_window = []
-
-    def _settle_baseline(self) -> Any:
-        return self.seq.settle_baseline
 
     def on_enter_fill(self) -> None:
-        base = self._baseline
-        self.current = CycleData(index=len(self.cycles) + 1, volume_name=self.volume_name,
-                                 baseline=base[0], u_baseline=base[1], ambient=base[2], t_ambient=base[3])
-        self.cycles.append(self.current)
-        self.emit("cycle", {"cycle": self.current.index, "baseline": base[0]})
+        self.cycle_number += 1
+        zero = self.meter.zero
+        self.emit("cycle", {"cycle": self.cycle_number, "baseline": zero.value if zero else math.nan})
         # Every expansion volume is shut during the fill; the chosen one opens at expand.
         self._set(**{self.roles.vent: False})
         self._set(**{v: False for v in self.roles.expansion.values()})
@@ -266,18 +230,9 @@ class RunEngine:
 
     def on_enter_settle_filled(self) -> None:
         self._set(**{self.roles.inlet: False})
-        self._detector = SettleDetector(self._criteria(self.seq.settle_filled), self._now)
-        self._temps = []
 
     def on_enter_expand(self) -> None:
         self._set(**{self.exp_valve: True})
-
-    def on_enter_settle_expanded(self) -> None:
-        self._detector = SettleDetector(self._criteria(self.seq.settle_expanded), self._now)
-        self._temps = []
-
-    def on_enter_leak_hold(self) -> None:
-        self._leak_t, self._leak_p = [], []
 
     def on_enter_done(self) -> None:
         self.instrument.safe_state()
@@ -288,49 +243,37 @@ class RunEngine:
     def on_enter_aborted(self) -> None:
         self.instrument.safe_state()
 
-    def _criteria(self, settle: Any) -> SettleCriteria:
-        max_drift = None if settle.max_drift == "auto" else float(settle.max_drift)
-        return SettleCriteria(
-            window=settle.window,
-            max_drift=max_drift,
-            min_time=settle.min_time,
-            max_time=settle.max_time,
-            extrapolate=settle.extrapolate,
-            u_p=self.instrument.pressure_u,
-        )
-
     # ----- the step: exit conditions and time limits ------------------------------------------
     def step(self, s: Sample) -> None:
-        """Advance on one sample (already seen by the interlocks). Never blocks."""
+        """Advance on one sample (already seen by the interlocks and recorded). Never blocks."""
         self._now = s.t
         step = self._steps.get(self.state)
         if step is not None:  # idle and the end states have no step
+            temp = s.temperature.value if s.temperature is not None and s.temperature.valid else math.nan
+            self._status = self.meter.feed(self.state, Row(s.t, s.gauge, s.ambient, temp))
             step(s)
 
     def _elapsed(self) -> float:
         return self._now - self.t_state
 
-    def _step_purge(self, s: Sample) -> None:
+    def _step_purge_fill(self, s: Sample) -> None:
         purge = self.seq.purge
-        dt = self._now - self._purge_t
-        if self._purge_step == "fill":
-            if math.isfinite(s.gauge) and s.gauge >= purge.pressure:
-                self._set(**{self.roles.inlet: False})
-                self._purge_step, self._purge_t = "hold", self._now
-            elif dt > self.seq.fill.timeout:
-                raise SequenceFault("fill_timeout", f"purge pulse did not reach {purge.pressure:.0f} Pa in "
-                                    f"{self.seq.fill.timeout:g} s (gauge {s.gauge:.0f} Pa)")
-        elif self._purge_step == "hold":
-            if dt >= purge.hold:
-                self._set(**{self.roles.vent: True})
-                self._purge_step, self._purge_t = "vent", self._now
-        elif self._purge_step == "vent" and dt >= purge.vent:
+        if math.isfinite(s.gauge) and s.gauge >= purge.pressure:
+            self._fire("purge_filled")
+        elif self._elapsed() > self.seq.fill.timeout:
+            raise SequenceFault("fill_timeout", f"purge pulse did not reach {purge.pressure:.0f} Pa in "
+                                f"{self.seq.fill.timeout:g} s (gauge {s.gauge:.0f} Pa)")
+
+    def _step_purge_hold(self, s: Sample) -> None:
+        if self._elapsed() >= self.seq.purge.hold:
+            self._fire("purge_held")
+
+    def _step_purge_vent(self, s: Sample) -> None:
+        purge = self.seq.purge
+        if self._elapsed() >= purge.vent:
             self._purge_pulse += 1
             self.emit("purge_pulse", {"pulse": self._purge_pulse, "of": purge.pulses})
-            if self._purge_pulse >= purge.pulses:
-                self._fire("purged")
-            else:
-                self._begin_purge_fill()
+            self._fire("pulsed")
 
     def _step_vent(self, s: Sample) -> None:
         vent = self.seq.vent
@@ -348,44 +291,39 @@ class RunEngine:
             self._finish_cycle()
         self._fire("vented")
 
+    def _timed_out(self, settle: Any) -> bool:
+        """The engine's own limit: the detector still waiting (e.g. no valid samples) past max_time."""
+        return self._elapsed() > settle.max_time + 5 * self.instrument.sample_period
+
     def _step_baseline(self, s: Sample) -> None:
         """Closed, vented system: wait until it stops drifting, then take the zero of the next cycle."""
-        det = self._detector
-        assert det is not None
-        if math.isfinite(s.gauge):
-            temp = s.temperature.value if s.temperature is not None and s.temperature.valid else math.nan
-            self._vent_window.append((s.t, s.gauge, s.ambient, temp))
-            status = det.feed(s.t, s.gauge)
-        else:
-            status = SettleStatus.WAITING
-        settle = self._settle_baseline()
+        status = self._status
+        settle = self.seq.settle_baseline
         if status is SettleStatus.WAITING:
-            if self._elapsed() <= settle.max_time + 5 * self.instrument.sample_period:
+            if not self._timed_out(settle):
                 return
             status = SettleStatus.TIMED_OUT
-        if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not math.isfinite(det.estimate)):
+        if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
             raise SequenceFault("settle_timeout", f"the vented system did not settle within {settle.max_time:g} s "
-                                f"(drift {det.drift:.3g} Pa/s) - a leaking inlet or a thermal transient")
-        counts = len(self.cycles) + 1 > self.seq.cycles.discard  # discarded cycles may start unsettled
-        if abs(det.estimate) > self.seq.vent.baseline_tolerance and counts and "baseline" not in self._warned:
+                                f"(drift {self.meter.drift:.3g} Pa/s) - a leaking inlet or a thermal transient")
+        zero = self.meter.zero
+        assert zero is not None
+        counts = self.cycle_number + 1 > self.seq.cycles.discard  # discarded cycles may start unsettled
+        if abs(zero.value) > self.seq.vent.baseline_tolerance and counts and "baseline" not in self._warned:
             self._warned.add("baseline")
             self.warnings.append(
-                f"cycle {len(self.cycles) + 1}: the closed, vented system settled {det.estimate:.0f} Pa above "
+                f"cycle {self.cycle_number + 1}: the closed, vented system settled {zero.value:.0f} Pa above "
                 "ambient - gas cooled by the vent warming up, or a sample giving off gas; a longer vent.time "
                 "lets it reach the wall temperature while still open (the volume stays right either way)")
             self.emit("warning", {"message": self.warnings[-1]})
-        recent = self._vent_window[-20:]
-        temps = [w[3] for w in recent if math.isfinite(w[3])]
-        self._baseline = (det.estimate, settled_u(det), sum(w[2] for w in recent) / len(recent),
-                          sum(temps) / len(temps) if temps else math.nan)
         self._fire("zeroed")
 
     def _step_fill(self, s: Sample) -> None:
-        cyc = self.current
-        assert cyc is not None
         target = self._fill_target()  # gauge above ambient, as the sequence states it
         if math.isfinite(s.gauge) and s.gauge >= target:
-            cyc.fill_time = self._elapsed()
+            cyc = self.current
+            if cyc is not None:
+                cyc.fill_s = self._elapsed()
             self._fire("filled")
         elif self._elapsed() > self.seq.fill.timeout:
             raise SequenceFault("fill_timeout", f"fill did not reach {target:.0f} Pa within "
@@ -396,79 +334,70 @@ class RunEngine:
             return self.seq.leak_check.pressure
         return self.seq.fill.target
 
-    def _settle(self, s: Sample, which: str) -> None:
-        det = self._detector
-        cyc = self.current
-        assert det is not None and cyc is not None
-        if s.temperature is not None and s.temperature.valid:
-            self._temps.append(s.temperature.value)
-        status = det.feed(s.t, s.gauge) if math.isfinite(s.gauge) else SettleStatus.WAITING
-        if status is SettleStatus.WAITING:
-            if self._elapsed() > det.criteria.max_time + 5 * self.instrument.sample_period:
-                status = SettleStatus.TIMED_OUT  # no valid samples at all
-            else:
-                return
+    def _settle(self, which: str) -> None:
+        status = self._status
         settle = self.seq.settle_filled if which == "1" else self.seq.settle_expanded
-        if status is SettleStatus.TIMED_OUT:
-            if settle.on_timeout != "accept" or not math.isfinite(det.estimate):
-                raise SequenceFault("settle_timeout", f"pressure did not settle within {settle.max_time:g} s "
-                                    f"(drift {det.drift:.3g} Pa/s) - a leak, a porous sample still filling, "
-                                    "or a thermal transient")
-            cyc.flags.append(f"unsettled_p{which}")
-        temp = sum(self._temps[-20:]) / len(self._temps[-20:]) if self._temps else math.nan
-        values = {"p": det.estimate - cyc.baseline, "u": settled_u(det), "t": temp,
-                  "time": det.elapsed, "drift": det.drift}
-        if which == "1":
-            cyc.p1, cyc.u_p1, cyc.t1, cyc.settle1_time, cyc.drift1 = values.values()
-        else:
-            cyc.p2, cyc.u_p2, cyc.t2, cyc.settle2_time, cyc.drift2 = values.values()
-        self.emit("settled", {"cycle": cyc.index, "which": f"p{which}", **values})
+        if status is SettleStatus.WAITING:
+            if not self._timed_out(settle):
+                return
+            status = SettleStatus.TIMED_OUT  # no valid samples at all
+        if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
+            raise SequenceFault("settle_timeout", f"pressure did not settle within {settle.max_time:g} s "
+                                f"(drift {self.meter.drift:.3g} Pa/s) - a leak, a porous sample still filling, "
+                                "or a thermal transient")
+        val = self.meter.last
+        assert val is not None
+        self.emit("settled", {"cycle": self.cycle_number, "which": f"p{which}", "p": val.p, "u": val.u,
+                              "t": val.t, "time": val.time, "drift": val.drift})
         self._fire("settled")
 
     def _step_settle_filled(self, s: Sample) -> None:
-        self._settle(s, "1")
+        self._settle("1")
 
     def _step_expand(self, s: Sample) -> None:
         self._fire("expanded")
 
     def _step_settle_expanded(self, s: Sample) -> None:
-        self._settle(s, "2")
+        self._settle("2")
 
     def _step_leak_hold(self, s: Sample) -> None:
-        if math.isfinite(s.gauge):
-            self._leak_t.append(s.t)
-            self._leak_p.append(s.gauge)
         if self._elapsed() >= self.seq.leak_check.hold:
             cyc = self.current
             assert cyc is not None
-            cyc.leak_rate = results.slope(self._leak_t, self._leak_p)
-            if -cyc.leak_rate > self.seq.leak_check.max_rate:
+            cyc.leak_rate_pa_s = self.meter.leak_rate
+            if -cyc.leak_rate_pa_s > self.seq.leak_check.max_rate:
                 cyc.flags.append("leak")
             self._fire("held")
 
     def _finish_cycle(self) -> None:
+        """The vent after a cycle is done: tell the listeners, with the cycle's finished result."""
         cyc = self.current
         assert cyc is not None
-        self.current = None
-        self.emit("cycle_done", {"cycle": cyc.index})
+        done = self.meter.results[-1] if self.meter.results and self.meter.results[-1].index == cyc.index \
+            else None
+        self.emit("cycle_done", {"cycle": cyc.index, "result": done.as_dict() if done is not None else
+                                 {"index": cyc.index, "flags": list(cyc.flags)}})
         cycles = self.seq.cycles
-        # the volumes so far are worked out only when convergence may end the run: every complete
-        # cycle's budget, again at every cycle end, is the costliest step of a simulated run otherwise
         if self.seq.kind == "measure" and cycles.converge is not None and cycles.stop_on_converge:
-            kept = [c for c in self.cycle_results() if c.kept]
+            kept = [c for c in self.meter.results if c.kept]
             if results.has_converged([c.volume_m3 for c in kept], cycles.converge.last, cycles.converge.within):
                 self.converged_early = True
 
     # ----- results ----------------------------------------------------------------------------
     def cycle_results(self) -> list[results.CycleResult]:
-        """Every complete cycle turned into a volume (a cycle cut short by a fault is left out)."""
-        out = []
-        chambers = self.instrument.chambers.for_expansion(self.volume_name)
-        for cyc in self.cycles:
-            if not (math.isfinite(cyc.p1) and math.isfinite(cyc.p2)):
-                continue
-            out.append(results.cycle_result(
-                cyc, chambers, gas=self.seq.gas, u_p=self.instrument.pressure_u,
-                u_t=self.instrument.temperature_u, discard=self.seq.cycles.discard,
-            ))
-        return out
+        """Every complete cycle with its volume (the measurer's; a cycle cut short is left out)."""
+        return list(self.meter.results)
+
+
+def criteria(settle: Any, u_p: float) -> SettleCriteria:
+    """A sequence's settle section as the detector's criteria."""
+    max_drift = None if settle.max_drift == "auto" else float(settle.max_drift)
+    return SettleCriteria(window=settle.window, max_drift=max_drift, min_time=settle.min_time,
+                          max_time=settle.max_time, extrapolate=settle.extrapolate, u_p=u_p)
+
+
+def cycle_plan(sequence: Any, *, chambers: Any, gas: str, u_p: float, u_t: float, volume_name: str) -> CyclePlan:
+    """The measurer's plan from a sequence: the live engine and replay both build it here."""
+    return CyclePlan(baseline=criteria(sequence.settle_baseline, u_p), filled=criteria(sequence.settle_filled, u_p),
+                     expanded=criteria(sequence.settle_expanded, u_p), chambers=chambers, gas=gas, u_p=u_p,
+                     u_t=u_t, discard=sequence.cycles.discard, volume_name=volume_name)

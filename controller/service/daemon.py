@@ -37,7 +37,6 @@ from typing import Any
 
 from pycnoctl.controller.domain.yamlio import ConfigError, Problem
 from pycnoctl.controller.jobs.measurement import RunFault, RunRequest, execute, prepare
-from pycnoctl.controller.maths import results
 from pycnoctl.controller.record.catalog import Catalog, is_run_id
 from pycnoctl.controller.record.storagefault import StorageFault
 from pycnoctl.controller.run.control import Controller
@@ -757,11 +756,11 @@ class Daemon:
             elif kind == "purge_pulse" and cur is not None:
                 cur["purge_pulse"] = f"{data.get('pulse')} of {data.get('of')}"
         if kind == "cycle_done":
-            data = {**data, **self._cycle_brief(int(data.get("cycle", 0)))}
+            brief = {"cycle": data.get("cycle"), **self._cycle_brief(data)}
             with self._lock:
                 cur = self._snap.get("current_run")
                 if cur is not None:
-                    cur["cycles"] = [*cur["cycles"], data]
+                    cur["cycles"] = [*cur["cycles"], brief]
         if kind in ("trip", "reset"):
             self._refresh_interlock()
             if kind == "trip":
@@ -769,21 +768,12 @@ class Daemon:
                           extra={"data": {"event": "trip", **{k: v for k, v in data.items() if k != "message"}}})
         self.bus.publish(kind, _clean(data))
 
-    def _cycle_brief(self, index: int) -> dict[str, Any]:
-        engine = self.controller.engine
-        if engine is None or not 0 < index <= len(engine.cycles):
-            return {}
-        cyc = engine.cycles[index - 1]
-        if not (math.isfinite(cyc.p1) and math.isfinite(cyc.p2)):
-            return {"flags": list(cyc.flags)}
-        try:
-            r = results.cycle_result(cyc, self.instrument.chambers.for_expansion(engine.volume_name),
-                                     gas=engine.seq.gas, u_p=self.instrument.pressure_u,
-                                     u_t=self.instrument.temperature_u, discard=engine.seq.cycles.discard)
-        except Exception as exc:  # a display nicety must never trip the loop
-            return {"flags": [*cyc.flags, f"not computed: {exc}"]}
-        return {"p1_pa": _num(r.p1_gauge_pa), "p2_pa": _num(r.p2_gauge_pa), "volume_cm3": _num(r.volume_m3 * 1e6),
-                "u_volume_cm3": _num(r.u_volume_m3 * 1e6), "kept": bool(r.kept), "flags": list(r.flags)}
+    @staticmethod
+    def _cycle_brief(data: dict[str, Any]) -> dict[str, Any]:
+        """The dashboard's row of a finished cycle: the engine's cycle result as it came (SI units)."""
+        r = data.get("result") or {}
+        keep = ("p1_gauge_pa", "p2_gauge_pa", "volume_m3", "u_volume_m3", "kept", "flags")
+        return {k: r[k] for k in keep if k in r}
 
     def _on_sample(self, data: dict[str, Any]) -> None:
         last = self.controller.last

@@ -123,8 +123,15 @@ function updateSchematic(valves, gauge) {
 }
 
 // ----------------------------------------------------------------------------- trace
-const STATE_COLORS = { purge: "#efe3ff", vent: "#eef1f4", baseline: "#f4f4ea", fill: "#e1efff", settle_filled: "#e5f6ec",
-  expand: "#fff0db", settle_expanded: "#fbf3e4", leak_hold: "#f6e9f2", fault: "#fde2df", aborted: "#fdecd4" };
+// the run-state vocabulary (name, label, colour, terminal) as the daemon serves it: GET /api/states
+let STATES = [];
+let STATE_COLOUR = {};
+const BAND_ALPHA = 0.55;  // the state colours drawn pale under the trace
+
+async function loadStates() {
+  STATES = await api("GET", "/api/states");
+  STATE_COLOUR = Object.fromEntries(STATES.map((s) => [s.name, s.colour]));
+}
 
 function addPoint(t, p, state) {
   if (t === null || t === undefined) return;
@@ -154,12 +161,14 @@ function drawTrace() {
   const X = (t) => L + ((t - t0) / WINDOW_S) * (w - L - R);
   const Y = (p) => T + (1 - p / ytop) * (h - T - B);
   // state bands
+  ctx.globalAlpha = BAND_ALPHA;
   for (let i = i0; i < n; i++) {
-    const col = STATE_COLORS[view.states[i]];
+    const col = STATE_COLOUR[view.states[i]];
     if (!col) continue;
     const xa = X(view.t[i]), xb = i + 1 < n ? X(view.t[i + 1]) : xa + 2;
     ctx.fillStyle = col; ctx.fillRect(xa, T, Math.max(xb - xa, 1), h - T - B);
   }
+  ctx.globalAlpha = 1;
   // grid and axes
   ctx.strokeStyle = "#e3e8ee"; ctx.fillStyle = "#6b7785"; ctx.lineWidth = 1; ctx.font = "11px system-ui, sans-serif";
   const step = ytop > 2e5 ? 0.5e5 : 0.25e5;
@@ -196,8 +205,8 @@ function drawTrace() {
 }
 
 function drawLegend() {
-  $("legend").innerHTML = Object.entries(STATE_COLORS).filter(([k]) => !["fault", "aborted"].includes(k))
-    .map(([k, c]) => `<span><i style="background:${c}"></i>${k.replace("_", " ")}</span>`).join("") +
+  $("legend").innerHTML = STATES.filter((s) => !s.terminal && s.colour.toLowerCase() !== "#ffffff")
+    .map((s) => `<span><i style="background:${esc(s.colour)};opacity:${BAND_ALPHA}"></i>${esc(s.label)}</span>`).join("") +
     '<span><i style="background:#fff;border-color:#c8372d;border-style:dashed"></i>trip limit</span>';
 }
 
@@ -260,8 +269,8 @@ function renderRun(cur) {
   $("run-bar").style.width = `${Math.min(100, (100 * done) / total)}%`;
   const body = $("run-cycles").querySelector("tbody");
   body.innerHTML = (cur.cycles || []).map((c) => `<tr class="${c.kept === false ? "discarded" : ""}"><td>${c.cycle}</td>` +
-    `<td class="num">${fmtBar(c.p1_pa, 4)}</td><td class="num">${fmtBar(c.p2_pa, 4)}</td>` +
-    `<td class="num">${c.volume_cm3 == null ? "–" : pm(c.volume_cm3, c.u_volume_cm3, 4)}</td><td>${c.kept === false ? "discarded" : ""}</td></tr>`).join("");
+    `<td class="num">${fmtBar(c.p1_gauge_pa, 4)}</td><td class="num">${fmtBar(c.p2_gauge_pa, 4)}</td>` +
+    `<td class="num">${c.volume_m3 == null ? "–" : pm(c.volume_m3 * 1e6, (c.u_volume_m3 ?? 0) * 1e6, 4)}</td><td>${c.kept === false ? "discarded" : ""}</td></tr>`).join("");
 }
 
 async function refreshStatus() { try { renderStatus(await api("GET", "/api/status")); } catch (e) { /* stream will retry */ } }
@@ -340,6 +349,7 @@ async function init() {
     $("f-seq").innerHTML = seqs.map((s) => `<option${s === "grain-volume" ? " selected" : ""}>${esc(s)}</option>`).join("");
   } catch (e) { /* ignore */ }
   refreshQueue(); refreshRuns(); connect();
+  try { await loadStates(); } catch (e) { /* no bands until the vocabulary loads */ }
   drawLegend();
   setInterval(drawTrace, 250);
   setInterval(refreshStatus, 5000);

@@ -1,0 +1,263 @@
+"""The cycle measurer: the one place a cycle's zero, P1 and P2 are taken from samples.
+
+It is fed (state, row) pairs, one per recorded sample, in order. The live engine feeds it every
+sample it steps on and acts on what it answers (a settle decided ends the state); ``pycnoctl analyze``
+feeds it the stored trace, row by row, with the states the trace recorded. Same rows, same object,
+same numbers: replay cannot drift from the live run because there is no second copy of the rules.
+
+A phase starts at the time of the row before its first one (the sample on which the engine changed
+state), which is the engine's own start time of the state. A settle that the live engine gave up on
+(time limit, ``on_timeout: accept``) shows in the trace as a phase that ended undecided; both sides
+then take the detector's estimate so far and flag the cycle. A cycle is complete when its P2 phase
+is followed by the vent (a fault or an abort cuts it short). Pure code: no I/O, no clock.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+from pycnoctl.controller.domain.gaspath import ChamberCalibration
+from pycnoctl.controller.domain.states import RunState
+from pycnoctl.controller.maths import results
+from pycnoctl.controller.maths.settle import SettleCriteria, SettleDetector, SettleStatus
+
+_LAST = 20  # samples averaged for the ambient pressure and the gas temperature of a settled value
+
+
+@dataclass(slots=True)  # made on every tick: slots, not frozen (a frozen __init__ is markedly slower)
+class Row:
+    """One sample as the measurer needs it; NaN where the reading was invalid."""
+
+    t: float  # s, instrument time
+    gauge: float  # Pa above the ambient reference
+    ambient: float  # Pa absolute
+    temp_k: float  # K
+
+
+@dataclass(frozen=True)
+class Zero:
+    """A cycle's zero: the settled gauge reading of the closed, vented system, and its conditions."""
+
+    value: float  # Pa
+    u: float  # Pa, standard
+    ambient: float  # Pa absolute
+    temp_k: float  # K of the gas trapped at the zero (NaN when no valid temperature)
+
+
+@dataclass
+class CycleData:
+    """What one cycle has measured so far, under the names its CycleResult (and summary.json) uses:
+    gauge pressures above the cycle's zero, SI units. ``u_p1_settle_pa`` / ``u_p2_settle_pa`` are the
+    settle's own uncertainty; the result combines them with the sensor's into ``u_p1_pa`` / ``u_p2_pa``."""
+
+    index: int
+    volume_name: str
+    baseline_pa: float = math.nan  # the cycle's zero
+    u_baseline_pa: float = math.nan
+    ambient_pa: float = math.nan  # absolute, at the zero
+    ta_k: float = math.nan  # gas temperature at the zero
+    p1_gauge_pa: float = math.nan
+    u_p1_settle_pa: float = math.nan
+    t1_k: float = math.nan
+    settle1_s: float = math.nan
+    drift1_pa_s: float = math.nan
+    p2_gauge_pa: float = math.nan
+    u_p2_settle_pa: float = math.nan
+    t2_k: float = math.nan
+    settle2_s: float = math.nan
+    drift2_pa_s: float = math.nan
+    fill_s: float = math.nan  # set by the engine: when its fill target was reached
+    leak_rate_pa_s: float = math.nan
+    flags: list[str] = field(default_factory=list)
+
+
+@dataclass(frozen=True)
+class Settled:
+    """A settle phase's outcome: the pressure above the zero (P1, P2) or the zero itself (baseline)."""
+
+    p: float
+    u: float
+    t: float  # K, mean gas temperature over the last samples
+    time: float  # s the settle took
+    drift: float  # Pa/s at the decision
+
+
+@dataclass(frozen=True)
+class CyclePlan:
+    """Everything the measurer needs besides the rows: the settle rules and the volume inputs."""
+
+    baseline: SettleCriteria
+    filled: SettleCriteria
+    expanded: SettleCriteria
+    chambers: ChamberCalibration
+    gas: str
+    u_p: float  # Pa, standard uncertainty of one pressure reading
+    u_t: float  # K, standard uncertainty of one temperature reading
+    discard: int  # leading cycles not kept
+    volume_name: str = ""
+
+
+def settled_u(det: SettleDetector) -> float:
+    """Standard uncertainty of a settled pressure: the window regression's own, plus what is left of
+    the relaxation. An exponential still drifting at dP/dt has |dP/dt|*tau to go (methods: drift
+    criterion); taken as a rectangular bound (divide by sqrt 3), tau from a sound fit of the window,
+    else three windows (the longest time constant a window can resolve)."""
+    fit = det.fit
+    tau = fit.tau if fit is not None and fit.sound else 3.0 * det.criteria.window
+    drift = det.drift if math.isfinite(det.drift) else 0.0
+    u_reg = det.u_estimate if math.isfinite(det.u_estimate) else 0.0
+    return math.hypot(u_reg, abs(drift) * tau / math.sqrt(3.0))
+
+
+_SETTLES = frozenset({RunState.BASELINE.value, RunState.SETTLE_FILLED.value, RunState.SETTLE_EXPANDED.value})
+
+
+class CycleMeasurer:
+    """Turns a run's (state, row) stream into cycles: zeros, P1, P2, leak rates and cycle results."""
+
+    def __init__(self, plan: CyclePlan) -> None:
+        self.plan = plan
+        self.cycles: list[CycleData] = []  # every cycle begun (a fill after a zero)
+        self.results: list[results.CycleResult] = []  # every complete cycle, in order
+        self.notes: list[str] = []  # settles of the zero that never decided
+        self.zero: Zero | None = None
+        self.current: CycleData | None = None
+        self.last: Settled | None = None  # the settle value taken most recently
+        self._state: str | None = None
+        self._last_t = math.nan
+        self._det: SettleDetector | None = None
+        self._open = False  # a settle phase still waiting for its decision
+        self._window: list[tuple[float, float]] = []  # (ambient, temp K) of valid-pressure rows: the zero
+        self._temps: list[float] = []  # valid temperatures of a P1 / P2 phase
+        self._leak: tuple[list[float], list[float]] = ([], [])
+
+    # ----- the feed ---------------------------------------------------------------------------
+    def feed(self, state: str, row: Row) -> SettleStatus | None:
+        """One row in the given state; in a settle state, the detector's status after it."""
+        if state != self._state:
+            self._leave(self._state, state)
+            self._enter(state)
+            self._state = state
+        self._last_t = row.t
+        if state in _SETTLES:
+            return self._settle_row(row)
+        if state == RunState.LEAK_HOLD and math.isfinite(row.gauge):
+            self._leak[0].append(row.t)
+            self._leak[1].append(row.gauge)
+        return None
+
+    def give_up(self) -> bool:
+        """The engine's time limit ran out with the detector still waiting: take its estimate so far,
+        flagged. False when there is no estimate to take."""
+        det = self._det
+        if det is None or not math.isfinite(det.estimate):
+            return False
+        if self._open:
+            self._take(timed_out=True)
+        return True
+
+    @property
+    def leak_rate(self) -> float:
+        """Least-squares slope (Pa/s) of the valid gauge readings of the leak hold so far."""
+        return results.slope(*self._leak)
+
+    @property
+    def estimate(self) -> float:
+        """The current settle's estimate (NaN outside a settle)."""
+        return self._det.estimate if self._det is not None else math.nan
+
+    @property
+    def drift(self) -> float:
+        return self._det.drift if self._det is not None else math.nan
+
+    # ----- phases -----------------------------------------------------------------------------
+    def _enter(self, state: str) -> None:
+        if state in _SETTLES:
+            crit = {RunState.BASELINE: self.plan.baseline, RunState.SETTLE_FILLED: self.plan.filled,
+                    RunState.SETTLE_EXPANDED: self.plan.expanded}[RunState(state)]
+            self._det = SettleDetector(crit, self._last_t)
+            self._open = True
+            self._window, self._temps = [], []
+        elif state == RunState.FILL:
+            self.current = None
+            if self.zero is not None:
+                z = self.zero
+                self.current = CycleData(index=len(self.cycles) + 1, volume_name=self.plan.volume_name,
+                                         baseline_pa=z.value, u_baseline_pa=z.u, ambient_pa=z.ambient, ta_k=z.temp_k)
+                self.cycles.append(self.current)
+        elif state == RunState.LEAK_HOLD:
+            self._leak = ([], [])
+
+    def _leave(self, state: str | None, nxt: str) -> None:
+        """A phase ended: an undecided settle followed by its next step was accepted on time-out."""
+        if state not in _SETTLES:
+            return
+        goes_on = {RunState.BASELINE: (RunState.FILL,),
+                   RunState.SETTLE_FILLED: (RunState.EXPAND, RunState.LEAK_HOLD),
+                   RunState.SETTLE_EXPANDED: (RunState.VENT,)}[RunState(state)]
+        if self._open and nxt in goes_on and self._det is not None and math.isfinite(self._det.estimate):
+            self._take(timed_out=True)
+        elif self._open and state == RunState.BASELINE:
+            self.zero = None  # no zero: the next fill (if any) starts no cycle
+        if state == RunState.SETTLE_EXPANDED and nxt == RunState.VENT:
+            self._complete()
+        self._open = False
+        self._det = None
+
+    def _settle_row(self, row: Row) -> SettleStatus:
+        det = self._det
+        assert det is not None
+        if not self._open:
+            return det.status
+        if self._state == RunState.BASELINE:
+            if math.isfinite(row.gauge):
+                self._window.append((row.ambient, row.temp_k))
+        elif math.isfinite(row.temp_k):
+            self._temps.append(row.temp_k)
+        status = det.feed(row.t, row.gauge) if math.isfinite(row.gauge) else SettleStatus.WAITING
+        if status is not SettleStatus.WAITING:
+            self._take(timed_out=status is SettleStatus.TIMED_OUT)
+        return status
+
+    def _take(self, *, timed_out: bool) -> None:
+        """Record the decided (or given-up) settle as the zero, P1 or P2."""
+        det = self._det
+        assert det is not None
+        self._open = False
+        if self._state == RunState.BASELINE:
+            if timed_out:
+                self.notes.append(f"baseline before fill {len(self.cycles) + 1}: not settled under these rules")
+            recent = self._window[-_LAST:]
+            temps = [w[1] for w in recent if math.isfinite(w[1])]
+            self.zero = Zero(det.estimate, settled_u(det), sum(w[0] for w in recent) / len(recent),
+                             sum(temps) / len(temps) if temps else math.nan)
+            self.last = Settled(det.estimate, self.zero.u, self.zero.temp_k, det.elapsed, det.drift)
+            return
+        cyc = self.current
+        if cyc is None:
+            return
+        temps = self._temps[-_LAST:]
+        temp = sum(temps) / len(temps) if temps else math.nan
+        val = Settled(det.estimate - cyc.baseline_pa, settled_u(det), temp, det.elapsed, det.drift)
+        self.last = val
+        if self._state == RunState.SETTLE_FILLED:
+            cyc.p1_gauge_pa, cyc.u_p1_settle_pa, cyc.t1_k = val.p, val.u, val.t
+            cyc.settle1_s, cyc.drift1_pa_s = val.time, val.drift
+            if timed_out:
+                cyc.flags.append("unsettled_p1")
+        else:
+            cyc.p2_gauge_pa, cyc.u_p2_settle_pa, cyc.t2_k = val.p, val.u, val.t
+            cyc.settle2_s, cyc.drift2_pa_s = val.time, val.drift
+            if timed_out:
+                cyc.flags.append("unsettled_p2")
+
+    def _complete(self) -> None:
+        cyc = self.current
+        if cyc is None or not (math.isfinite(cyc.p1_gauge_pa) and math.isfinite(cyc.p2_gauge_pa)):
+            return
+        if self.results and self.results[-1].index == cyc.index:
+            return
+        p = self.plan
+        self.results.append(results.cycle_result(cyc, p.chambers, gas=p.gas, u_p=p.u_p, u_t=p.u_t,
+                                                 discard=p.discard))

@@ -1,0 +1,105 @@
+"""The cycle measurer on hand-made rows: what it takes as the zero, P1 and P2, when a cycle counts as
+complete, and how a settle that ended undecided is flagged. The volume check is the ideal-gas mass
+balance P1 (Vc - Vs) + Pa Vr = P2 (Vc - Vs + Vr), i.e. Vs = Vc - Vr (P2 - Pa) / (P1 - P2), worked by
+hand (the textbook gas-expansion relation, from memory)."""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+
+from pycnoctl.controller.domain.gaspath import ChamberCalibration
+from pycnoctl.controller.maths.cycle import CycleMeasurer, CyclePlan, Row
+from pycnoctl.controller.maths.settle import SettleCriteria, SettleStatus
+
+PA = 101325.0
+VC, VR = 12e-6, 8e-6
+CRIT = SettleCriteria(window=2.0, max_drift=1.0, min_time=1.0, max_time=30.0, extrapolate=False)
+SLOW = SettleCriteria(window=2.0, max_drift=1.0, min_time=50.0, max_time=60.0, extrapolate=False)
+
+
+def plan(filled: SettleCriteria = CRIT) -> CyclePlan:
+    return CyclePlan(baseline=CRIT, filled=filled, expanded=CRIT, chambers=ChamberCalibration(VC, VR),
+                     gas="nitrogen", u_p=1.0, u_t=0.1, discard=0)
+
+
+class Feeder:
+    """Feeds a state for a number of 0.1 s rows at a constant gauge pressure; keeps the statuses."""
+
+    def __init__(self, meter: CycleMeasurer) -> None:
+        self.meter, self.t = meter, 0.0
+
+    def hold(self, state: str, gauge: float, seconds: float, temp: float = 295.0) -> list[SettleStatus | None]:
+        out = []
+        for _ in range(round(seconds / 0.1)):
+            self.t += 0.1
+            out.append(self.meter.feed(state, Row(self.t, gauge, PA, temp)))
+            if out[-1] is SettleStatus.SETTLED:
+                break
+        return out
+
+
+def a_cycle(f: Feeder, zero: float, p1: float, p2: float, after: str = "vent") -> None:
+    f.hold("vent", 0.0, 1.0)
+    assert f.hold("baseline", zero, 10.0)[-1] is SettleStatus.SETTLED
+    f.hold("fill", zero + p1 / 2, 0.5)
+    f.hold("settle_filled", zero + p1, 10.0)
+    f.hold("expand", zero + p2, 0.1)
+    f.hold("settle_expanded", zero + p2, 10.0)
+    f.hold(after, 0.0, 0.5)
+
+
+def test_a_cycle_takes_pressures_above_its_zero_and_gives_the_expansion_volume() -> None:
+    meter = CycleMeasurer(plan())
+    p1, p2 = 1.0e5, 0.45e5
+    a_cycle(Feeder(meter), 250.0, p1, p2)
+    [c] = meter.results
+    assert c.baseline_pa == pytest.approx(250.0, abs=1e-6)
+    assert c.p1_gauge_pa == pytest.approx(p1, abs=1e-6) and c.p2_gauge_pa == pytest.approx(p2, abs=1e-6)
+    assert c.ta_k == pytest.approx(295.0) and c.flags == []
+    # ideal gas, isothermal, gas in the cell at P1 expanding into Vr at Pa (mass balance, worked by hand)
+    vs = VC - VR * ((PA + p2) - PA) / ((PA + p1) - (PA + p2))
+    assert c.volume_m3 == pytest.approx(vs, rel=2e-3)  # nitrogen's small non-ideality only
+    assert c.u_volume_m3 > 0 and c.kept
+
+
+def test_a_cycle_cut_short_after_its_p2_is_not_complete() -> None:
+    meter = CycleMeasurer(plan())
+    a_cycle(Feeder(meter), 0.0, 1.0e5, 0.45e5, after="fault")
+    assert meter.results == [] and len(meter.cycles) == 1  # begun, measured, but never vented
+
+
+def test_an_undecided_settle_followed_by_its_next_step_is_taken_and_flagged() -> None:
+    meter = CycleMeasurer(plan(filled=SLOW))  # P1 cannot decide before 50 s; the trace moves on at 10 s
+    a_cycle(Feeder(meter), 0.0, 1.0e5, 0.45e5)
+    [c] = meter.results
+    assert c.flags == ["unsettled_p1"] and c.p1_gauge_pa == pytest.approx(1.0e5, abs=1e-6)
+
+
+def test_give_up_takes_the_estimate_so_far_once_and_refuses_without_one() -> None:
+    meter = CycleMeasurer(plan(filled=SLOW))
+    f = Feeder(meter)
+    assert meter.give_up() is False  # no settle yet
+    f.hold("vent", 0.0, 1.0)
+    f.hold("baseline", 0.0, 10.0)
+    f.hold("fill", 5e4, 0.5)
+    assert set(f.hold("settle_filled", 1e5, 5.0)) == {SettleStatus.WAITING}
+    assert meter.give_up() is True and meter.give_up() is True
+    assert meter.cycles[0].flags == ["unsettled_p1"]  # flagged once
+
+
+def test_no_zero_no_cycle_and_invalid_rows_are_skipped() -> None:
+    meter = CycleMeasurer(plan())
+    f = Feeder(meter)
+    f.hold("vent", 0.0, 1.0)
+    f.hold("baseline", math.nan, 3.0)  # no valid pressure at all: no zero
+    f.hold("fill", 5e4, 0.5)
+    assert meter.cycles == [] and meter.zero is None
+
+
+def test_leak_rate_is_the_slope_of_the_hold() -> None:
+    meter = CycleMeasurer(plan())
+    for i in range(50):
+        meter.feed("leak_hold", Row(10.0 + 0.1 * i, 1e5 - 2.0 * 0.1 * i, PA, 295.0))
+    assert meter.leak_rate == pytest.approx(-2.0, rel=1e-9)
