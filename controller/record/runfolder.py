@@ -30,6 +30,7 @@ import csv
 import dataclasses
 import datetime as _dt
 import io
+import itertools
 import json
 import math
 import os
@@ -502,41 +503,91 @@ class StoredRun:
 
 _TEXT_COLUMNS = {"state", "pressure_valid", "temperature_valid", "note"}
 
+#: Rows parsed at a time: the Python objects of one chunk (about 1 KB a row) are all that is ever alive
+#: at once, so reading costs the numpy arrays plus a few megabytes whatever the trace's length.
+CHUNK_ROWS = 16384
 
-def _read_trace(path: Path, columns: list[str] | None) -> tuple[dict[str, np.ndarray], bool]:
+
+class _Column:
+    """One trace column being filled chunk by chunk: numbers as numpy arrays, words as codes."""
+
+    def __init__(self, name: str) -> None:
+        self.name = name
+        self.parts: list[np.ndarray] = []
+        self.words: dict[str, int] | None = {} if name in _TEXT_COLUMNS else None
+
+    def add(self, col: tuple[str, ...]) -> None:
+        name, words = self.name, self.words
+        if words is not None:  # a handful of distinct words a run: one small integer code per row
+            self.parts.append(np.fromiter((words.setdefault(x, len(words)) for x in col),
+                                          dtype=np.int32, count=len(col)))
+        elif name == "cycle":
+            self.parts.append(np.array([int(x) if x else -1 for x in col], dtype=np.int64))
+        elif name.startswith(_VALVE_PREFIX):
+            self.parts.append(np.array([int(x) for x in col], dtype=np.int8))
+        else:  # numpy parses the repr() text to the same double as float() (a test checks it)
+            self.parts.append(np.array(col, dtype=float))
+
+    def array(self) -> np.ndarray:
+        if self.words is not None:
+            # one shared str object per distinct word: an object array of references, 8 bytes a row,
+            # that compares with "valid" and iterates as str like the old per-row strings did
+            cats = np.empty(len(self.words), dtype=object)
+            cats[:] = list(self.words)
+            codes = np.concatenate(self.parts) if self.parts else np.empty(0, dtype=np.int32)
+            return cats[codes]
+        if self.parts:
+            return np.concatenate(self.parts)
+        dtype = np.int64 if self.name == "cycle" else np.int8 if self.name.startswith(_VALVE_PREFIX) else float
+        return np.empty(0, dtype=dtype)
+
+
+def _read_trace(path: Path, columns: list[str] | None,
+                chunk_rows: int = CHUNK_ROWS) -> tuple[dict[str, np.ndarray], bool]:
+    """The trace as one numpy array per column, parsed CHUNK_ROWS lines at a time.
+
+    Each row is one line (free text is put on one line when written), so a chunk of lines is a
+    chunk of rows.  A last line without its newline, or a last row with the wrong number of
+    fields, is a torn tail and is dropped; a wrong row anywhere else is an error.
+    """
     try:
-        text = path.read_bytes().decode("utf-8", errors="replace")
+        fh = open(path, encoding="utf-8", errors="replace", newline="")  # noqa: SIM115
     except FileNotFoundError:
         return {}, False
-    torn = False
-    if text and not text.endswith("\n"):
-        text = text[: text.rfind("\n") + 1]
-        torn = True
-    rows = list(csv.reader(io.StringIO(text)))
-    if not rows:
-        return {}, torn
-    header = rows[0]
-    if columns is not None and header != columns:
-        raise ValueError(f"{path}: header does not match meta.json trace_columns")
-    body = rows[1:]
-    if body and len(body[-1]) != len(header):  # a torn row that happened to end at a newline
-        body = body[:-1]
-        torn = True
-    bad = [i for i, r in enumerate(body) if len(r) != len(header)]
-    if bad:
-        raise ValueError(f"{path}: malformed row {bad[0] + 2}")
-    out: dict[str, np.ndarray] = {}
-    cols = list(zip(*body, strict=True)) if body else [() for _ in header]
-    for name, col in zip(header, cols, strict=True):
-        if name in _TEXT_COLUMNS:
-            out[name] = np.array(col, dtype=object)
-        elif name == "cycle":
-            out[name] = np.array([int(x) if x else -1 for x in col], dtype=np.int64)
-        elif name.startswith(_VALVE_PREFIX):
-            out[name] = np.array([int(x) for x in col], dtype=np.int8)
-        else:
-            out[name] = np.array([float(x) for x in col], dtype=float)
-    return out, torn
+    with fh:
+        first = fh.readline()
+        if not first.endswith("\n"):
+            return {}, bool(first)  # no header, or a torn one
+        header = next(csv.reader([first]))
+        if columns is not None and header != columns:
+            raise ValueError(f"{path}: header does not match meta.json trace_columns")
+        cols = [_Column(name) for name in header]
+        torn = False
+        row_no = 1  # of the header; rows are numbered as lines of the file
+
+        def read() -> list[str]:
+            return list(itertools.islice(fh, chunk_rows))
+
+        chunk = read()
+        while chunk:
+            nxt = read()  # one chunk ahead, to know whether this one holds the file's last row
+            if not nxt and not chunk[-1].endswith("\n"):
+                chunk.pop()
+                torn = True
+            rows = list(csv.reader(chunk))
+            if not nxt and rows and len(rows[-1]) != len(header):  # torn row that ended at a newline
+                rows.pop()
+                torn = True
+            for i, r in enumerate(rows):
+                if len(r) != len(header):
+                    raise ValueError(f"{path}: malformed row {row_no + i + 1}")
+            row_no += len(rows)
+            if rows:
+                for c, col in zip(cols, zip(*rows, strict=True), strict=True):
+                    c.add(col)
+            del rows
+            chunk = nxt
+    return {c.name: c.array() for c in cols}, torn
 
 
 def _read_events(path: Path) -> tuple[list[dict], bool]:

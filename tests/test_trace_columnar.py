@@ -1,0 +1,142 @@
+"""The chunked columnar trace reader and min/max decimation for display."""
+
+from __future__ import annotations
+
+import csv
+import math
+
+import numpy as np
+import pytest
+
+from pycnoctl.controller.domain.devices import Reading, Validity
+from pycnoctl.controller.record import runfolder
+from pycnoctl.controller.record.decimate import decimate_minmax
+from pycnoctl.controller.record.report import phase_breaks
+from pycnoctl.controller.record.runfolder import RunRecorder, load_run
+
+STATES = ("baseline", "fill", "settle_filled", "expand", "settle_expanded", "vent")
+
+
+def _write(tmp_path, n: int, seed: int = 1):
+    """A run whose values are awkward doubles (full 17-digit reprs, tiny and huge magnitudes)."""
+    rng = np.random.default_rng(seed)
+    p = 1e5 * rng.random(n) + rng.random(n) * 1e-9
+    with RunRecorder(tmp_path, "R1", ["inlet", "vent"], {}, sync_in_background=False,
+                     fsync_interval=1e9) as rec:
+        for k in range(n):
+            pr = (Reading(float(p[k]), "Pa", k) if k % 97 else Reading.invalid("Pa", k, Validity.GARBLED, "x"))
+            temp = Reading(296.15 + float(rng.random()) * 1e-3, "K", k) if k % 5 else None
+            rec.sample(k * 0.1 + 1e-12 * k, STATES[(k // 50) % len(STATES)], k // 300 or None,
+                       {"inlet": k % 3 == 0, "vent": k % 7 == 0}, pr, temp, 101325.0 + float(rng.random()),
+                       note="a, \"quoted\" note" if k == 11 else "")
+    return tmp_path / "R1"
+
+
+def _reference(path):
+    """The whole-file reading, value by value with Python's float(), as the reader did before."""
+    with open(path, encoding="utf-8", newline="") as fh:
+        rows = list(csv.reader(fh))
+    return rows[0], rows[1:]
+
+
+@pytest.mark.parametrize("chunk", [7, 1000, runfolder.CHUNK_ROWS])
+def test_chunked_reader_equals_python_parse_bit_for_bit(tmp_path, chunk):
+    folder = _write(tmp_path, 1234)
+    trace, torn = runfolder._read_trace(folder / "trace.csv", None, chunk_rows=chunk)
+    header, body = _reference(folder / "trace.csv")
+    assert not torn and list(trace) == header
+    for j, name in enumerate(header):
+        col = [r[j] for r in body]
+        got = trace[name]
+        if name in ("state", "pressure_valid", "temperature_valid", "note"):
+            assert got.dtype == object and list(got) == col
+        elif name == "cycle":
+            assert got.tolist() == [int(x) if x else -1 for x in col]
+        elif name.startswith("valve_"):
+            assert got.dtype == np.int8 and got.tolist() == [int(x) for x in col]
+        else:
+            want = np.array([float(x) for x in col])
+            # the same bits, not merely close: replay must repeat the live run's numbers exactly
+            assert got.view(np.uint64).tolist() == want.view(np.uint64).tolist(), name
+
+
+def test_text_columns_share_one_object_per_word(tmp_path):
+    trace, _ = runfolder._read_trace(_write(tmp_path, 600) / "trace.csv", None, chunk_rows=64)
+    assert len({id(x) for x in trace["state"]}) == len(set(trace["state"])) <= len(STATES)
+
+
+@pytest.mark.parametrize("chunk", [5, 6, 1000])
+def test_torn_tail_dropped_at_any_chunk_boundary(tmp_path, chunk):
+    folder = _write(tmp_path, 30)
+    path = folder / "trace.csv"
+    whole = path.read_bytes()
+    path.write_bytes(whole[:-9])  # the last row cut short, no newline
+    run = load_run(folder)
+    assert run.torn_tail and run.n_samples == 29
+    trace, torn = runfolder._read_trace(path, None, chunk_rows=chunk)
+    assert torn and trace["t"].size == 29
+    last = whole[:-1].rfind(b"\n") + 1
+    path.write_bytes(whole[:last] + b"3.0,fill\n")  # cut short but ending at a newline: too few fields
+    trace, torn = runfolder._read_trace(path, None, chunk_rows=chunk)
+    assert torn and trace["t"].size == 29
+
+
+def test_malformed_row_in_a_later_chunk_names_its_line(tmp_path):
+    folder = _write(tmp_path, 30)
+    path = folder / "trace.csv"
+    lines = path.read_text().splitlines(keepends=True)
+    lines[20] = "1.0,fill\n"
+    path.write_text("".join(lines))
+    with pytest.raises(ValueError, match="malformed row 21"):
+        runfolder._read_trace(path, None, chunk_rows=4)
+
+
+def test_empty_and_header_only_traces(tmp_path):
+    folder = _write(tmp_path, 3)
+    path = folder / "trace.csv"
+    path.write_text(path.read_text().splitlines(keepends=True)[0])
+    trace, torn = runfolder._read_trace(path, None)
+    assert not torn and trace["t"].size == 0 and trace["state"].dtype == object
+    assert trace["valve_inlet"].dtype == np.int8 and trace["cycle"].dtype == np.int64
+    path.write_text("t,sta")
+    assert runfolder._read_trace(path, None) == ({}, True)
+
+
+def _columns(t, columns):
+    lo, hi = t.min(), t.max()
+    return np.clip(np.floor((t - lo) * (columns / (hi - lo))), 0, columns - 1).astype(int)
+
+
+def test_decimation_keeps_each_columns_min_max_and_phase_boundaries():
+    rng = np.random.default_rng(3)
+    n, columns = 200_000, 300
+    t = np.cumsum(rng.random(n))
+    y = np.cumsum(rng.normal(size=n))
+    y[rng.integers(0, n, 40)] += 1e3 * rng.normal(size=40)  # spikes that must survive
+    y[5000:5100] = np.nan  # a gap that must stay a gap
+    states = np.array(STATES, dtype=object)[(np.arange(n) // 7777) % len(STATES)]
+    breaks = phase_breaks(states)
+    idx = decimate_minmax(t, y, columns, keep=np.concatenate((breaks - 1, breaks)))
+    assert idx.size < 6 * columns + 2 * breaks.size and np.all(np.diff(idx) > 0)
+    col, col_kept = _columns(t, columns), _columns(t, columns)[idx]
+    for c in range(columns):
+        full, kept = y[col == c], y[idx][col_kept == c]
+        if np.isfinite(full).any():
+            assert np.nanmax(kept) == np.nanmax(full) and np.nanmin(kept) == np.nanmin(full)
+    assert set(breaks) <= set(idx) and set(breaks - 1) <= set(idx)
+    assert {4999, 5000, 5099, 5100} <= set(idx)  # both ends of the gap
+    assert idx[0] == 0 and idx[-1] == n - 1
+    # the phase boundaries of the decimated series are the original's
+    np.testing.assert_array_equal(idx[phase_breaks(states[idx])], breaks)
+
+
+def test_decimation_of_short_series_keeps_everything_and_checks_arguments():
+    t = np.arange(10.0)
+    assert decimate_minmax(t, t, 5).tolist() == list(range(10))
+    with pytest.raises(ValueError):
+        decimate_minmax(t, t[:3], 5)
+    with pytest.raises(ValueError):
+        decimate_minmax(t, t, 0)
+    flat = decimate_minmax(np.zeros(100), np.arange(100.0), 2)  # no time span: one column
+    assert flat.tolist() == [0, 99]
+    assert not math.isnan(float(flat.sum()))
