@@ -529,15 +529,18 @@ class _Column:
             self.parts.append(np.array(col, dtype=float))
 
     def array(self) -> np.ndarray:
+        """The whole column; the chunks are let go as it is made, so only one column is ever twice in memory."""
+        parts, self.parts = self.parts, []
         if self.words is not None:
             # one shared str object per distinct word: an object array of references, 8 bytes a row,
             # that compares with "valid" and iterates as str like the old per-row strings did
             cats = np.empty(len(self.words), dtype=object)
             cats[:] = list(self.words)
-            codes = np.concatenate(self.parts) if self.parts else np.empty(0, dtype=np.int32)
+            codes = np.concatenate(parts) if parts else np.empty(0, dtype=np.int32)
+            del parts
             return cats[codes]
-        if self.parts:
-            return np.concatenate(self.parts)
+        if parts:
+            return np.concatenate(parts)
         dtype = np.int64 if self.name == "cycle" else np.int8 if self.name.startswith(_VALVE_PREFIX) else float
         return np.empty(0, dtype=dtype)
 
