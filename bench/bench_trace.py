@@ -5,7 +5,8 @@ recorder itself (so the format is the real one): the recorded rows, with a leak-
 of drifting, noisy pressure inserted before the last phase until the trace has ``--rows`` rows
 (577,000 rows is 16 hours at 10 Hz).  Each measurement runs in a fresh process (peak RSS is
 per process): the CLI verb, with either today's reader and full-resolution plot ("old", kept
-below as it was) or the chunked columnar reader and min/max-per-pixel plot ("new").  Then the
+below as it was), the chunked columnar reader and min/max-per-pixel plot ("new", from the CSV),
+or the same once the first reader has left trace.npz beside the CSV ("npz").  Then the
 growth of the new path from rows/10 to rows, and the cost of reading a numpy side file (.npz).
 
     python bench/bench_trace.py [--rows 577000]
@@ -78,7 +79,8 @@ def one(verb: str, mode: str, folder: str) -> None:
     from pycnoctl.controller.record import report, runfolder
 
     if mode == "old":
-        runfolder._read_trace = _legacy_read_trace
+        runfolder._read_trace = lambda path, columns, **kw: _legacy_read_trace(path, columns)
+        runfolder._read_side = lambda *a: None
         report.decimate_minmax = lambda t, y, columns, keep=None: np.arange(len(t))
     argv = ["analyze", folder, "--json"] if verb == "analyze" else ["report", folder, "--out",
                                                                     str(Path(folder) / f"report-{mode}.html")]
@@ -93,6 +95,9 @@ def one(verb: str, mode: str, folder: str) -> None:
 
 
 def measure(verb: str, mode: str, folder: Path) -> dict:
+    """old and new: from the CSV (no side file yet); npz: the new path once the first reader has made one."""
+    if mode != "npz":
+        (folder / "trace.npz").unlink(missing_ok=True)
     p = subprocess.run([sys.executable, str(HERE), "--one", verb, mode, str(folder)],
                        capture_output=True, text=True, check=True)
     return json.loads(p.stdout.strip().splitlines()[-1])
@@ -199,14 +204,16 @@ def main() -> None:
               f"(trace.csv {(big / 'trace.csv').stat().st_size * mb:.1f} MB)")
         res = {}
         for verb in ("analyze", "report"):
-            for mode in ("old", "new"):
+            for mode in ("old", "new", "npz"):
                 res[verb, mode] = r = measure(verb, mode, big)
                 print(f"{verb:<8} {mode}: {r['wall']:6.2f} s  peak RSS {r['peak'] * mb:6.1f} MB "
                       f"(+{r['above_start'] * mb:6.1f} MB over the process before the verb)  rc {r['rc']}")
             o, n = res[verb, "old"], res[verb, "new"]
             print(f"{verb:<8} new/old: time {n['wall'] / o['wall']:.2f}x  peak {n['peak'] / o['peak']:.2f}x")
-        same = res["analyze", "old"]["out"] == res["analyze", "new"]["out"]
-        print(f"analyze output identical old vs new: {same}")
+            z = res[verb, "npz"]
+            print(f"{verb:<8} npz/old: time {z['wall'] / o['wall']:.2f}x  peak {z['peak'] / o['peak']:.2f}x")
+        same = res["analyze", "old"]["out"] == res["analyze", "new"]["out"] == res["analyze", "npz"]["out"]
+        print(f"analyze output identical old vs new vs npz: {same}")
         print(f"growth, new path, {a.rows // 10} -> {a.rows} rows (10x):")
         for verb in ("analyze", "report"):
             s, b = measure(verb, "new", small), res[verb, "new"]

@@ -140,3 +140,59 @@ def test_decimation_of_short_series_keeps_everything_and_checks_arguments():
     flat = decimate_minmax(np.zeros(100), np.arange(100.0), 2)  # no time span: one column
     assert flat.tolist() == [0, 99]
     assert not math.isnan(float(flat.sum()))
+
+
+def test_decimation_of_unordered_times_keeps_the_same_samples():
+    rng = np.random.default_rng(5)
+    t = np.sort(rng.random(5000))
+    y = rng.normal(size=5000)
+    y[100:120] = np.nan
+    perm = rng.permutation(5000)
+    sorted_idx = decimate_minmax(t, y, 50)
+    shuffled_idx = decimate_minmax(t[perm], y[perm], 50)
+    assert sorted(perm[shuffled_idx].tolist()) == sorted_idx.tolist()
+
+
+def _same_trace(a, b):
+    assert list(a) == list(b)
+    for k in a:
+        if a[k].dtype == object:
+            assert b[k].dtype == object and list(a[k]) == list(b[k])
+            assert all(type(x) is str for x in b[k][:50])
+        else:
+            assert a[k].dtype == b[k].dtype and a[k].tobytes() == b[k].tobytes(), k
+
+
+def test_side_file_made_for_a_finished_run_and_read_while_current(tmp_path, monkeypatch):
+    folder = _write(tmp_path, 500)
+    side = folder / runfolder.SIDE_FILE
+    first = load_run(folder)
+    assert not side.exists()  # no summary.json: the run may still be going on
+    (folder / "summary.json").write_text("{}")
+    assert load_run(folder).trace["t"].size == 500 and side.exists()
+    calls = []
+    real = runfolder._read_trace
+    monkeypatch.setattr(runfolder, "_read_trace", lambda *a, **kw: calls.append(1) or real(*a, **kw))
+    again = load_run(folder)
+    assert calls == [] and not again.torn_tail  # from the side file, bit for bit the same
+    _same_trace(first.trace, again.trace)
+    # the CSV changed after the side file was made: the CSV is the record, the side file is ignored
+    with open(folder / "trace.csv", "a") as fh:
+        fh.write(",".join(["99.0", "vent", "", "0", "0", "1.0", "valid", "nan", "absent", "1.0", ""]) + "\n")
+    grown = load_run(folder)
+    assert calls == [1] and grown.trace["t"].size == 501 and grown.trace["t"][-1] == 99.0
+
+
+def test_side_file_of_another_size_or_broken_is_ignored(tmp_path):
+    folder = _write(tmp_path, 50)
+    (folder / "summary.json").write_text("{}")
+    load_run(folder)
+    side = folder / runfolder.SIDE_FILE
+    side.write_bytes(b"not a zip")
+    assert load_run(folder).trace["t"].size == 50  # read from the CSV, and the side file made again
+    lines = (folder / "trace.csv").read_text().splitlines(keepends=True)
+    (folder / "trace.csv").write_text("".join(lines[:-1]))
+    import os
+    st = side.stat()
+    os.utime(side, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))  # newer, but made from a longer CSV
+    assert load_run(folder).trace["t"].size == 49

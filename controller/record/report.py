@@ -75,11 +75,10 @@ def gauge_trace(run: StoredRun) -> tuple[np.ndarray, np.ndarray]:
     tr = run.trace
     if "t" not in tr or tr["t"].size == 0:
         return np.array([]), np.array([])
-    p = tr["pressure_pa"].astype(float)
     inst = ((run.summary or {}).get("instrument") or {})
-    if inst.get("pressure_is_gauge") is False:
-        p = p - tr["ambient_pa"]
-    p = np.where(tr["pressure_valid"] == "valid", p, np.nan)
+    # a new array either way: the record is never changed
+    p = tr["pressure_pa"] - tr["ambient_pa"] if inst.get("pressure_is_gauge") is False else tr["pressure_pa"].copy()
+    p[tr["pressure_valid"] != "valid"] = np.nan
     return tr["t"] - tr["t"][0], p
 
 
