@@ -506,7 +506,7 @@ _TEXT_COLUMNS = {"state", "pressure_valid", "temperature_valid", "note"}
 
 #: Rows parsed at a time: the Python objects of one chunk (about 1 KB a row) are all that is ever alive
 #: at once, so reading costs the numpy arrays plus a few megabytes whatever the trace's length.
-CHUNK_ROWS = 16384
+CHUNK_ROWS = 4096
 
 
 class _Column:
