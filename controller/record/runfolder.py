@@ -6,6 +6,8 @@ root/<run_id>/
   events.jsonl   state changes, trips, warnings, operator actions; one JSON object a line
   cycles.csv     one row per cycle, rewritten atomically whenever a cycle completes
   summary.json   sequence (parsed model and raw text), instrument, calibration, version, results
+  trace.npz      a cache of trace.csv as numpy columns, made by the first reader of a finished run;
+                 read only while newer than the CSV (the CSV stays the record)
 
 Crash guarantee.  Every trace row goes to the operating system in one unbuffered write, and
 every event line is written and ``flush()``-ed, so each is in the page cache before
