@@ -196,3 +196,20 @@ def test_side_file_of_another_size_or_broken_is_ignored(tmp_path):
     st = side.stat()
     os.utime(side, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))  # newer, but made from a longer CSV
     assert load_run(folder).trace["t"].size == 49
+
+
+def test_only_the_asked_columns_are_kept_from_csv_and_side_file(tmp_path):
+    folder = _write(tmp_path, 300)
+    want = ("t", "state", "pressure_pa")
+    full = load_run(folder).trace
+    part = load_run(folder, trace_columns=want).trace
+    assert list(part) == list(want)
+    (folder / "summary.json").write_text("{}")
+    assert not (folder / runfolder.SIDE_FILE).exists()
+    load_run(folder, trace_columns=want)
+    assert not (folder / runfolder.SIDE_FILE).exists()  # a partial read makes no side file
+    load_run(folder)
+    from_side = load_run(folder, trace_columns=want).trace
+    for tr in (part, from_side):
+        assert list(tr) == list(want) and tr["t"].tobytes() == full["t"].tobytes()
+        assert list(tr["state"]) == list(full["state"])

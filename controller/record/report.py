@@ -44,6 +44,8 @@ FIGSIZE = (10.0, 6.0)  # inches
 DPI = 100
 TRACE_AXES = (0.08, 0.40, 0.66, 0.54)  # left, bottom, width, height (figure fractions)
 CYCLE_AXES = (0.08, 0.08, 0.66, 0.22)
+#: The trace columns the report uses: the others are not kept in memory.
+FIGURE_COLUMNS = ("t", "state", "pressure_pa", "pressure_valid", "ambient_pa")
 #: Pixel columns of the trace axes: the trace is drawn as min/max per column of this width.
 PLOT_COLUMNS = round(FIGSIZE[0] * DPI * TRACE_AXES[2])
 
@@ -309,7 +311,7 @@ def report_html(run: StoredRun, png_name: str, png_bytes: bytes) -> str:
 def render_report(run_folder: Path, out: Path | None = None) -> Path:
     """Write the run's HTML report (figure embedded, and saved beside it as PNG); returns the HTML path."""
     run_folder = Path(run_folder)
-    run = load_run(run_folder)
+    run = load_run(run_folder, trace_columns=FIGURE_COLUMNS)
     if not run.meta:
         raise FileNotFoundError(f"{run_folder}: not a run folder (no meta.json)")
     out = Path(out) if out is not None else run_folder / "report.html"

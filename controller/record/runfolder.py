@@ -40,7 +40,7 @@ import re
 import threading
 import time
 import zipfile
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -549,7 +549,7 @@ class _Column:
 
 
 def _read_trace(path: Path, columns: list[str] | None, chunk_rows: int = CHUNK_ROWS,
-                side: Path | None = None) -> tuple[dict[str, np.ndarray], bool]:
+                side: Path | None = None, only: frozenset[str] | None = None) -> tuple[dict[str, np.ndarray], bool]:
     """The trace as one numpy array per column, parsed CHUNK_ROWS lines at a time.
 
     Each row is one line (free text is put on one line when written), so a chunk of lines is a
@@ -590,12 +590,13 @@ def _read_trace(path: Path, columns: list[str] | None, chunk_rows: int = CHUNK_R
             row_no += len(rows)
             if rows:
                 for c, col in zip(cols, zip(*rows, strict=True), strict=True):
-                    c.add(col)
+                    if only is None or c.name in only:
+                        c.add(col)
             del rows
             chunk = nxt
     size = path.stat().st_size
-    trace = {c.name: c.array() for c in cols}
-    if side is not None and not torn:
+    trace = {c.name: c.array() for c in cols if only is None or c.name in only}
+    if side is not None and not torn and only is None:
         _write_side(side, header, trace, size)
     return trace, torn
 
@@ -628,7 +629,8 @@ def _write_side(side: Path, header: list[str], trace: dict[str, np.ndarray], csv
             tmp.unlink()
 
 
-def _read_side(side: Path, path: Path, columns: list[str] | None) -> dict[str, np.ndarray] | None:
+def _read_side(side: Path, path: Path, columns: list[str] | None,
+               only: frozenset[str] | None = None) -> dict[str, np.ndarray] | None:
     """The trace from its side file, or None when there is none that is current."""
     try:
         st_side, st_csv = side.stat(), path.stat()
@@ -643,6 +645,8 @@ def _read_side(side: Path, path: Path, columns: list[str] | None) -> dict[str, n
                 return None
             out: dict[str, np.ndarray] = {}
             for name in header:
+                if only is not None and name not in only:
+                    continue
                 if name in _TEXT_COLUMNS:
                     cats = np.empty(len(z[name + ".words"]), dtype=object)
                     cats[:] = [str(w) for w in z[name + ".words"]]
@@ -697,19 +701,22 @@ def _read_cycles(path: Path) -> list[dict]:
     return out
 
 
-def load_run(folder: Path | str) -> StoredRun:
-    """Read a run folder back; tolerant of a torn last trace row or event line (crash mid-write)."""
+def load_run(folder: Path | str, trace_columns: Collection[str] | None = None) -> StoredRun:
+    """Read a run folder back; tolerant of a torn last trace row or event line (crash mid-write).
+
+    ``trace_columns``: only these columns of the trace are kept (a plot needs five of a dozen)."""
+    only = None if trace_columns is None else frozenset(trace_columns)
     folder = Path(folder)
     meta_path = folder / "meta.json"
     meta = json.loads(meta_path.read_text(encoding="utf-8")) if meta_path.exists() else {}
     summary_path = folder / "summary.json"
     columns = meta.get("trace_columns")
     trace_path, side = folder / "trace.csv", folder / SIDE_FILE
-    side_trace = _read_side(side, trace_path, columns)
+    side_trace = _read_side(side, trace_path, columns, only)
     if side_trace is not None:
         trace, torn = side_trace, False
     else:  # the side file only for a finished run: its trace will not grow again
-        trace, torn = _read_trace(trace_path, columns, side=side if summary_path.exists() else None)
+        trace, torn = _read_trace(trace_path, columns, side=side if summary_path.exists() else None, only=only)
     events, torn_ev = _read_events(folder / "events.jsonl")
     cycles = _read_cycles(folder / "cycles.csv")
     summary = json.loads(summary_path.read_text(encoding="utf-8")) if summary_path.exists() else None
