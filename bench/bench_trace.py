@@ -20,7 +20,6 @@ import csv
 import io
 import json
 import os
-import resource
 import shutil
 import subprocess
 import sys
@@ -71,6 +70,16 @@ def _rss_now() -> int:
         return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
 
 
+def _peak_rss() -> int:
+    """This process's own high-water RSS.  Not ru_maxrss: across fork and exec that keeps the
+    parent's RSS at the fork, and this bench's parent holds a run of its own."""
+    with open("/proc/self/status") as fh:
+        for ln in fh:
+            if ln.startswith("VmHWM:"):
+                return int(ln.split()[1]) * 1024
+    raise RuntimeError("no VmHWM in /proc/self/status")
+
+
 def one(verb: str, mode: str, folder: str) -> None:
     """Child process: run one CLI verb on folder, print JSON with wall time and memory."""
     import matplotlib  # noqa: F401  (imported before the baseline: both modes pay it)
@@ -89,7 +98,7 @@ def one(verb: str, mode: str, folder: str) -> None:
     with contextlib.redirect_stdout(io.StringIO()) as out:
         rc = main(argv)
     wall = time.perf_counter() - t0
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+    peak = _peak_rss()
     digest = out.getvalue() if verb == "analyze" else ""
     print(json.dumps({"rc": rc, "wall": wall, "peak": peak, "above_start": peak - base, "out": digest}))
 
