@@ -40,13 +40,13 @@ class Reanalysis:
 
 
 def phases(states: np.ndarray) -> list[Phase]:
-    out: list[Phase] = []
-    start = 0
-    for i in range(1, len(states) + 1):
-        if i == len(states) or states[i] != states[start]:
-            out.append(Phase(str(states[start]), start, i))
-            start = i
-    return out
+    n = len(states)
+    if n == 0:
+        return []
+    arr = np.asarray(states, dtype=object)
+    starts = [0, *(np.flatnonzero(arr[1:] != arr[:-1]) + 1).tolist()]
+    stops = [*starts[1:], n]
+    return [Phase(str(states[a]), a, b) for a, b in zip(starts, stops, strict=True)]
 
 
 def rows(run: StoredRun, pressure_is_gauge: bool) -> list[tuple[str, Row]]:

@@ -24,6 +24,7 @@ import jinja2
 import numpy as np
 
 from pycnoctl.controller.domain.states import RunState, StateLook
+from pycnoctl.controller.record.decimate import decimate_minmax
 from pycnoctl.controller.record.runfolder import StoredRun, load_run
 
 TRACE_COLOUR = "#1f1f7a"
@@ -31,9 +32,19 @@ FIGSIZE = (10.0, 6.0)  # inches
 DPI = 100
 TRACE_AXES = (0.08, 0.40, 0.66, 0.54)  # left, bottom, width, height (figure fractions)
 CYCLE_AXES = (0.08, 0.08, 0.66, 0.22)
+#: The trace columns the report uses: the others are not kept in memory.
+FIGURE_COLUMNS = ("t", "state", "pressure_pa", "pressure_valid", "ambient_pa")
+#: Pixel columns of the trace axes: the trace is drawn as min/max per column of this width.
+PLOT_COLUMNS = round(FIGSIZE[0] * DPI * TRACE_AXES[2])
 
 
 # ----------------------------------------------------------------------------- figure
+
+
+def phase_breaks(states: Sequence[str]) -> np.ndarray:
+    """Row indices where a new state begins (after row 0), found in numpy rather than a Python loop."""
+    arr = np.asarray(states, dtype=object)
+    return np.flatnonzero(arr[1:] != arr[:-1]) + 1
 
 
 def phase_segments(t: np.ndarray, states: Sequence[str]) -> list[tuple[str, float, float]]:
@@ -41,12 +52,11 @@ def phase_segments(t: np.ndarray, states: Sequence[str]) -> list[tuple[str, floa
     out: list[tuple[str, float, float]] = []
     if len(t) == 0:
         return out
-    start = 0
-    for i in range(1, len(t) + 1):
-        if i == len(t) or states[i] != states[start]:
-            end = float(t[i]) if i < len(t) else float(t[-1])
-            out.append((str(states[start]), float(t[start]), end))
-            start = i
+    starts = [0, *phase_breaks(states).tolist()]
+    stops = [*starts[1:], len(t)]
+    for a, b in zip(starts, stops, strict=True):
+        end = float(t[b]) if b < len(t) else float(t[-1])
+        out.append((str(states[a]), float(t[a]), end))
     return out
 
 
@@ -64,11 +74,10 @@ def gauge_trace(run: StoredRun) -> tuple[np.ndarray, np.ndarray]:
     tr = run.trace
     if "t" not in tr or tr["t"].size == 0:
         return np.array([]), np.array([])
-    p = tr["pressure_pa"].astype(float)
     inst = ((run.summary or {}).get("instrument") or {})
-    if inst.get("pressure_is_gauge") is False:
-        p = p - tr["ambient_pa"]
-    p = np.where(tr["pressure_valid"] == "valid", p, np.nan)
+    # a new array either way: the record is never changed
+    p = tr["pressure_pa"] - tr["ambient_pa"] if inst.get("pressure_is_gauge") is False else tr["pressure_pa"].copy()
+    p[tr["pressure_valid"] != "valid"] = np.nan
     return tr["t"] - tr["t"][0], p
 
 
@@ -85,14 +94,17 @@ def render_figure(run: StoredRun, png: Path) -> Path:
     t, p = gauge_trace(run)
     seen: list[str] = []
     if t.size:
-        for state, a, b in phase_segments(t, list(run.trace["state"])):
+        for state, a, b in phase_segments(t, run.trace["state"]):
             look = phase_look(state)
             if look is None or b <= a:
                 continue
             ax.axvspan(a, b, facecolor=look.colour, edgecolor="none", linewidth=0)
             if state not in seen:
                 seen.append(state)
-        ax.plot(t, p / 1e5, color=TRACE_COLOUR, linewidth=1.2)
+        # min/max per pixel column: the same picture as every sample, at a cost set by the plot's width
+        breaks = phase_breaks(run.trace["state"])
+        shown = decimate_minmax(t, p, PLOT_COLUMNS, keep=np.concatenate((breaks - 1, breaks)))
+        ax.plot(t[shown], p[shown] / 1e5, color=TRACE_COLOUR, linewidth=1.2)
         ax.set_xlim(float(t[0]), float(t[-1]))
         finite = p[np.isfinite(p)]
         if finite.size:
@@ -238,7 +250,7 @@ def report_html(run: StoredRun, png_name: str, png_bytes: bytes) -> str:
 def render_report(run_folder: Path, out: Path | None = None) -> Path:
     """Write the run's HTML report (figure embedded, and saved beside it as PNG); returns the HTML path."""
     run_folder = Path(run_folder)
-    run = load_run(run_folder)
+    run = load_run(run_folder, trace_columns=FIGURE_COLUMNS)
     if not run.meta:
         raise FileNotFoundError(f"{run_folder}: not a run folder (no meta.json)")
     out = Path(out) if out is not None else run_folder / "report.html"
