@@ -23,7 +23,7 @@ with warnings.catch_warnings():  # starlette 1.x nags about httpx; the client wo
 from pycnoctl.controller.record.catalog import is_run_id
 from pycnoctl.controller.record.runfolder import load_run
 from pycnoctl.controller.run.sequence import list_shipped
-from pycnoctl.controller.service.api import create_app
+from pycnoctl.controller.service.api import close_workers, create_app
 from pycnoctl.controller.service.daemon import Daemon
 from pycnoctl.controller.service.security import Policy
 from pycnoctl.drivers.simulated import build_sim_instrument
@@ -44,8 +44,10 @@ def daemon(tmp_path: Path) -> Iterator[Daemon]:
 
 @pytest.fixture
 def client(daemon: Daemon) -> Iterator[TestClient]:
-    with TestClient(create_app(daemon, Policy(port=8765)), base_url=BASE) as c:
+    app = create_app(daemon, Policy(port=8765))
+    with TestClient(app, base_url=BASE) as c:
         yield c
+    close_workers(app)
 
 
 def wait_status(client: TestClient, run_id: str, want: set[str], timeout: float = 20.0) -> dict:
@@ -205,6 +207,30 @@ def test_report_endpoint(client: TestClient, daemon: Daemon) -> None:
         assert r.status_code == 404 and "not available" in r.json()["error"]
     else:
         assert r.status_code == 200 and r.headers["content-type"].startswith("text/html")
+
+
+def test_report_is_rendered_out_of_the_daemon_process(client: TestClient, daemon: Daemon,
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    # The render must not run in the daemon's process (it would hold the GIL away from the control
+    # loop): break it here, and the report still comes, from the worker process.
+    import pycnoctl.controller.record.report as report_mod
+    import pycnoctl.controller.service.api as api_mod
+
+    def in_process(*a: object, **k: object) -> None:
+        raise AssertionError("report rendered in the daemon's process")
+
+    monkeypatch.setattr(report_mod, "render_report", in_process)
+    monkeypatch.setattr(api_mod, "REPORT_WAIT", 0.0)  # answer at once: 202 while the worker renders
+    rid = client.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
+    wait_status(client, rid, {"completed"})
+    first = client.get(f"/api/runs/{rid}/report")
+    assert first.status_code == 202 and first.headers["retry-after"] == "2"
+    t_end = time.monotonic() + 60.0
+    r = first
+    while r.status_code == 202 and time.monotonic() < t_end:
+        time.sleep(0.2)
+        r = client.get(f"/api/runs/{rid}/report")
+    assert r.status_code == 200 and "skeletal volume" in r.text
 
 
 def test_dashboard_and_static_files_are_served_locally(client: TestClient) -> None:

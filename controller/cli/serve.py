@@ -60,7 +60,7 @@ def main(args: argparse.Namespace) -> int:
 def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
     import uvicorn
 
-    from pycnoctl.controller.service.api import create_app
+    from pycnoctl.controller.service.api import close_workers, create_app
     from pycnoctl.controller.service.daemon import Daemon, attach_json_log, sd_notify
 
     handler = attach_json_log(root / "daemon.log.jsonl")
@@ -105,6 +105,7 @@ def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
         for sig in (signal.SIGTERM, signal.SIGINT):
             signal.signal(sig, lambda signum, frame: caught.append(signum))
         srv.run()
+        close_workers(app)
         daemon.stop()
         daemon.catalog.close()
     finally:

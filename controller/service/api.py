@@ -73,7 +73,8 @@ _WHY = {400: "the request does not match this schema", 401: "no or wrong token (
         403: "foreign Host or Origin", 404: "no such run or file",
         409: "conflicts with the daemon's or the run's state (e.g. a file the run has not written yet)",
         413: "body or sequence text too large", 415: "body is not application/json",
-        422: "the daemon refuses the request (sequence problems listed)", 503: "the control loop did not answer"}
+        422: "the daemon refuses the request (sequence problems listed)",
+        503: "the control loop (or the report worker) did not answer"}
 
 
 def _errors(*codes: int) -> dict[int | str, dict[str, Any]]:
@@ -268,21 +269,49 @@ for _name, _media in RUN_FILES.items():
                                     **_errors(400, 404, 409)})
 
 
-@router.get("/api/runs/{run_id}/report", response_class=HTMLResponse, responses=_errors(400, 404, 409),
-            summary="HTML report of a finished run", description="404 when the report module is not installed.")
-def report(run_id: RunId, d: DaemonDep) -> Response:
+#: How long a report request waits for the worker before answering 202 (the render goes on).
+REPORT_WAIT = 10.0
+
+
+def _report_worker(request: Request) -> Any:
+    """The app's one report worker process, started on the first report asked for."""
+    worker = getattr(request.app.state, "report_worker", None)
+    if worker is None:
+        from pycnoctl.controller.record.worker import ReportWorker
+
+        worker = request.app.state.report_worker = ReportWorker()
+    return worker
+
+
+@router.get("/api/runs/{run_id}/report", response_class=HTMLResponse,
+            responses={202: {"model": s.Error, "description": "the report is being rendered; ask again after "
+                                                              "Retry-After seconds"}, **_errors(400, 404, 409)},
+            summary="HTML report of a finished run",
+            description="Rendered in a separate worker process and cached by the run's content, so a long trace "
+                        "never stalls the control loop; 202 with Retry-After while it is being rendered.")
+async def report(run_id: RunId, d: DaemonDep, request: Request) -> Response:
     row = _row(d, run_id)
     if isinstance(row, Response):
         return row
     folder = _folder(d, row)
     if folder is None or not (folder / "summary.json").exists():
         return _missing(row, "finished record to report on")
+    from concurrent.futures.process import BrokenProcessPool
+
     try:
-        mod = importlib.import_module("pycnoctl.controller.record.report")
-    except ModuleNotFoundError:
-        return _error(404, "HTML reports are not available in this installation (no report module)")
+        fut = _report_worker(request).submit(folder)
+    except BrokenProcessPool:  # the worker died (killed, out of memory): start a new one next time
+        request.app.state.report_worker = None
+        return _error(503, "the report worker stopped; ask again")
     try:
-        out = Path(mod.render_report(folder)).resolve()
+        done = fut.result() if fut.done() else await asyncio.wait_for(asyncio.shield(asyncio.wrap_future(fut)),
+                                                                      REPORT_WAIT)
+        out = Path(done).resolve()
+    except TimeoutError:
+        return _error(202, "the report is being rendered; ask again", headers={"retry-after": "2"})
+    except BrokenProcessPool:
+        request.app.state.report_worker = None
+        return _error(503, "the report worker stopped; ask again")
     except Exception as exc:
         return _error(500, f"report failed: {type(exc).__name__}: {exc}")
     if not out.is_file() or not out.is_relative_to(folder):
@@ -445,12 +474,22 @@ def create_app(daemon: Daemon, policy: Policy | None = None) -> Any:
                               "when sent); on a non-loopback bind every request needs the bearer token.")
     app.state.daemon = daemon
     app.state.policy = policy
+    app.state.report_worker = None  # started by the first report asked for (_report_worker)
     app.include_router(router)
     app.mount("/static", StaticFiles(directory=str(_static_dir())), name="static")
     app.add_exception_handler(RequestValidationError, _invalid)
     app.add_exception_handler(HTTPException, _http_error)
     app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]
     return SecurityMiddleware(app, policy)
+
+
+def close_workers(asgi_app: Any) -> None:
+    """Stop the report worker process of an app made by create_app, if it ever started one."""
+    inner = getattr(asgi_app, "app", asgi_app)
+    worker = getattr(getattr(inner, "state", None), "report_worker", None)
+    if worker is not None:
+        worker.close()
+        inner.state.report_worker = None
 
 
 @contextlib.contextmanager
@@ -464,7 +503,8 @@ def serve_in_thread(daemon: Daemon) -> Iterator[str]:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]
-    server = uvicorn.Server(uvicorn.Config(create_app(daemon, Policy(port=port)), host="127.0.0.1", port=port,
+    app = create_app(daemon, Policy(port=port))
+    server = uvicorn.Server(uvicorn.Config(app, host="127.0.0.1", port=port,
                                            log_level="warning", lifespan="off", timeout_graceful_shutdown=1))
     th = threading.Thread(target=server.run, daemon=True)
     daemon.start()
@@ -476,6 +516,7 @@ def serve_in_thread(daemon: Daemon) -> Iterator[str]:
     finally:
         server.should_exit = True
         th.join(5)
+        close_workers(app)
         daemon.stop()
         daemon.catalog.close()
         daemon.instrument.close()
