@@ -31,9 +31,11 @@ def line_of(path: Path, needle: str) -> int:
 
 
 def test_shipped_kinds_are_discovered_by_what_they_serve():
-    assert set(registry.kinds(registry.PRESSURE)) == {"ascii_gauge", "modbus", "sim", "visa_meter"}
-    assert set(registry.kinds(registry.VALVES)) == {"ascii_relay", "sim"}
-    assert set(registry.kinds(registry.TEMPERATURE)) == {"ascii_thermometer", "sim"}
+    # subsets: a driver added later is its own file and test, and does not edit this one
+    assert {"ascii_gauge", "modbus", "sim", "visa_meter"} <= set(registry.kinds(registry.PRESSURE))
+    assert {"ascii_relay", "sim"} <= set(registry.kinds(registry.VALVES))
+    assert {"ascii_thermometer", "sim"} <= set(registry.kinds(registry.TEMPERATURE))
+    assert "ascii_relay" not in registry.kinds(registry.PRESSURE)
 
 
 def test_each_kind_names_itself_in_its_model():
@@ -47,7 +49,8 @@ def test_unknown_kind_lists_the_registered_kinds_at_its_position(tmp_path):
         load_instrument_config(p)
     (problem,) = info.value.problems
     assert problem.line == line_of(p, "pressure:")
-    assert "ascii_gauge, modbus, sim, visa_meter" in problem.message
+    assert f"kind must be one of {', '.join(registry.kinds(registry.PRESSURE))} " in problem.message
+    assert all(name in problem.message for name in ("ascii_gauge", "modbus", "sim", "visa_meter"))
 
 
 def test_a_kind_cannot_be_taken_by_a_second_driver():
