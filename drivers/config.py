@@ -5,314 +5,37 @@ templates, the gauge's query and reply regex, scaling and units all live here.  
 strict (unknown keys, bad units, impossible limits are errors with file:line:col) because a
 mistake here opens the wrong valve.  build_instrument() turns a config into the Instrument the
 engine runs, with the valve bank always behind a GuardedValveBank.
+
+Which kinds a role accepts comes from the driver registry (drivers/registry.py): each driver
+module owns its config model and its builder, so nothing here names a hardware driver.  The
+simulator is the one kind known by name, because it stands in for the whole instrument (one
+bench behind every simulated role, its clock, its gas path when the config gives none).
 """
 
 from __future__ import annotations
 
 import logging
-from collections.abc import Callable
 from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import Any
 
-from pydantic import (
-    BaseModel,
-    BeforeValidator,
-    ConfigDict,
-    Discriminator,
-    Field,
-    Tag,
-    field_validator,
-    model_validator,
-)
-
-from pycnoctl.controller.domain import units, yamlio
-from pycnoctl.controller.domain.clock import Clock, WallClock
+from pycnoctl.controller.domain import yamlio
+from pycnoctl.controller.domain.clock import WallClock
 from pycnoctl.controller.domain.devices import PressureSensor, Thermometer, ValveBank
 from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
-from pycnoctl.drivers.gauge_ascii import AsciiGauge, GaugeFormat
+from pycnoctl.drivers import registry
+from pycnoctl.drivers.fields import Pressure, Seconds, Strict, Temperature
 from pycnoctl.drivers.guarded import GuardedValveBank, violations
 from pycnoctl.drivers.instrument import Instrument
-from pycnoctl.drivers.relay_ascii import AsciiRelayBoard, Channel, FrameTemplate, RelayCommands, unescape
-from pycnoctl.drivers.transports import SerialTransport, Transport, VisaTransport
+from pycnoctl.drivers.simulated import SIM, SimDevice
 
 log = logging.getLogger(__name__)
 
 STANDARD_ATMOSPHERE = 101325.0  # Pa (scipy.constants.atm); ambient assumed when comparing gauge/absolute
 
-
-# -- quantities with units ----------------------------------------------------------------------
-
-def _needs_unit(parse: Callable[..., float], example: str) -> Callable[[Any], float]:
-    def check(value: Any) -> float:
-        if isinstance(value, bool) or not isinstance(value, str | int | float):
-            raise ValueError(f"expected a quantity with a unit, e.g. {example!r}")
-        if not isinstance(value, str):
-            raise ValueError(f"give a unit, e.g. {example!r} (a bare number is ambiguous here)")
-        try:
-            return parse(value)
-        except units.UnitError as exc:
-            raise ValueError(str(exc)) from None
-    return check
-
-
-def _seconds(value: Any) -> float:
-    try:
-        return units.parse_duration(value)
-    except units.UnitError as exc:
-        raise ValueError(str(exc)) from None
-
-
-def _signal(value: Any) -> float:
-    """An electrical signal: '4 mA' -> 0.004 (A) or '10 V' -> 10.0 (V)."""
-    if not isinstance(value, str):
-        raise ValueError("give a unit, e.g. '4 mA' or '10 V'")
-    try:
-        q = units.to_quantity(value, "A")
-    except units.UnitError as exc:
-        raise ValueError(str(exc)) from None
-    for dim, si in (("[current]", "A"), ("[electric_potential]", "V")):
-        if q.check(dim):
-            return float(q.to(si).magnitude)
-    raise ValueError(f"{value!r} is neither a current nor a voltage")
-
-
-Pressure = Annotated[float, BeforeValidator(_needs_unit(units.parse_pressure, "150 kPa"))]
-Volume = Annotated[float, BeforeValidator(_needs_unit(units.parse_volume, "12.0 cm^3"))]
-Rate = Annotated[float, BeforeValidator(_needs_unit(units.parse_rate, "50 kPa/s"))]
-Temperature = Annotated[float, BeforeValidator(_needs_unit(units.parse_temperature_difference, "0.05 K"))]
-Seconds = Annotated[float, BeforeValidator(_seconds), Field(gt=0)]
-Signal = Annotated[float, BeforeValidator(_signal)]
-
-
-def _template(value: Any) -> str:
-    if not isinstance(value, str):
-        raise ValueError("a command template must be a string")
-    FrameTemplate.parse(value)  # raises ValueError with the reason
-    return value
-
-
-Template = Annotated[str, BeforeValidator(_template)]
-
-
-def _pressure_unit(unit: str) -> str:
-    try:
-        units.parse_pressure(1.0, default_unit=unit)
-    except units.UnitError:
-        raise ValueError(f"{unit!r} is not a pressure unit (e.g. kPa, bar, psi, mbar, torr)") from None
-    return unit
-
-
-class Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-
-# -- devices --------------------------------------------------------------------------------------
-
-class SerialLink(Strict):
-    port: str = Field(description="device path (prefer /dev/serial/by-id/...), socket://host:port or loop://")
-    baudrate: int = 9600
-    timeout: Seconds = 0.5
-    eol: str = "\\n"
-
-    def transport(self, name: str) -> SerialTransport:
-        return SerialTransport(self.port, name=name, baudrate=self.baudrate, timeout=self.timeout,
-                               eol=unescape(self.eol).encode("latin-1"))
-
-
-class RelayCommandsModel(Strict):
-    set: Template = RelayCommands.set
-    energise: str | int = RelayCommands.energise
-    de_energise: str | int = RelayCommands.de_energise
-    ack: str | None = RelayCommands.ack
-    error: str | None = RelayCommands.error
-    readback: Template | None = RelayCommands.readback
-    readback_regex: str = RelayCommands.readback_regex
-    mask_base: Literal[2, 10, 16] = 16
-    all_off: Template | None = RelayCommands.all_off
-    ping: Template | None = RelayCommands.ping
-    ping_reply: str = RelayCommands.ping_reply
-    arm_watchdog: Template | None = RelayCommands.arm_watchdog
-
-    def build(self) -> RelayCommands:
-        return RelayCommands(**self.model_dump())
-
-
-class ValveChannel(Strict):
-    channel: int = Field(ge=1, le=64)
-    normally: Literal["open", "closed"] = "closed"
-
-
-class AsciiRelayDevice(SerialLink):
-    kind: Literal["ascii_relay"]
-    commands: RelayCommandsModel = RelayCommandsModel()
-    valves: dict[str, ValveChannel] = Field(min_length=1)
-    watchdog: Seconds | None = None  # arm the board's own watchdog (PROTOCOL.md) with this timeout
-
-    @field_validator("valves")
-    @classmethod
-    def _distinct_channels(cls, valves: dict[str, ValveChannel]) -> dict[str, ValveChannel]:
-        seen: dict[int, str] = {}
-        for name, v in valves.items():
-            if v.channel in seen:
-                raise ValueError(f"valves {seen[v.channel]!r} and {name!r} are both on relay {v.channel}")
-            seen[v.channel] = name
-        return valves
-
-    def valve_names(self) -> tuple[str, ...]:
-        return tuple(self.valves)
-
-
-class SimDevice(Strict):
-    kind: Literal["sim"]
-    config: str | None = None  # simulator config file; None for the simulator's default
-
-
-class RangeModel(Strict):
-    min: Pressure | None = None
-    max: Pressure | None = None
-
-
-class AsciiGaugeDevice(SerialLink):
-    kind: Literal["ascii_gauge"]
-    query: Template = GaugeFormat.query
-    regex: str = GaugeFormat.regex
-    unit: str = GaugeFormat.unit
-    gain: float = 1.0
-    offset: float = 0.0
-    reference: Literal["gauge", "absolute"] = "gauge"
-    range: RangeModel | None = None
-    overrange_words: list[str] = list(GaugeFormat.overrange_words)
-    nan_words: list[str] = list(GaugeFormat.nan_words)
-
-    _unit_ok = field_validator("unit")(classmethod(lambda cls, u: _pressure_unit(u)))
-
-    def fmt(self) -> GaugeFormat:
-        r = self.range or RangeModel()
-        return GaugeFormat(query=self.query, regex=self.regex, unit=self.unit, gain=self.gain,
-                           offset=self.offset, overrange_words=tuple(self.overrange_words),
-                           nan_words=tuple(self.nan_words), range_min=r.min, range_max=r.max)
-
-    def span(self) -> tuple[float | None, float | None]:
-        r = self.range or RangeModel()
-        return r.min, r.max
-
-
-class AsciiThermometerDevice(SerialLink):
-    kind: Literal["ascii_thermometer"]
-    query: Template = "T?\\n"
-    regex: str = r"^T\s+(?P<value>\S+)"
-    unit: str = "degC"
-    gain: float = 1.0
-    offset: float = 0.0
-
-
-class LoopScaleModel(Strict):
-    signal_low: Signal = 4e-3
-    signal_high: Signal = 20e-3
-    pressure_low: Pressure
-    pressure_high: Pressure
-
-
-class VisaMeterDevice(Strict):
-    kind: Literal["visa_meter"]
-    resource: str
-    backend: str = "@py"
-    timeout: Seconds = 1.0
-    query: str = "MEAS:CURR:DC?"
-    setup: list[str] = []
-    scale: LoopScaleModel
-    open_loop_below: Signal | None = 3.6e-3
-    over_above: Signal | None = 20.5e-3
-    reference: Literal["gauge", "absolute"] = "gauge"
-
-    def span(self) -> tuple[float | None, float | None]:
-        from pycnoctl.drivers.visa_meter import LoopScaling
-
-        s = self.scaling(LoopScaling)
-        top = s.to_pressure(self.over_above) if self.over_above is not None else self.scale.pressure_high
-        return self.scale.pressure_low, top
-
-    def scaling(self, cls: Any) -> Any:
-        s = self.scale
-        return cls(signal_low=s.signal_low, signal_high=s.signal_high, pressure_low=s.pressure_low,
-                   pressure_high=s.pressure_high, open_loop_below=self.open_loop_below,
-                   over_above=self.over_above)
-
-
-class ModbusDevice(Strict):
-    kind: Literal["modbus"]
-    link: Literal["tcp", "rtu"] = "tcp"
-    host: str | None = None  # tcp
-    port: int | str = 502  # tcp port number, or the serial device for rtu
-    baudrate: int = 19200
-    timeout: Seconds = 1.0
-    device_id: int = Field(1, ge=0, le=247)
-    address: int = Field(ge=0, le=65535)
-    table: Literal["holding", "input"] = "holding"
-    datatype: Literal["int16", "uint16", "int32", "uint32", "float32"] = "int16"
-    word_order: Literal["big", "little"] = "big"
-    gain: float = 1.0
-    offset: float = 0.0
-    unit: str = "kPa"
-    reference: Literal["gauge", "absolute"] = "gauge"
-    range: RangeModel | None = None
-
-    @model_validator(mode="after")
-    def _link_ok(self) -> ModbusDevice:
-        if self.link == "tcp" and (not self.host or not isinstance(self.port, int)):
-            raise ValueError("a tcp link needs host and an integer port")
-        if self.link == "rtu" and not isinstance(self.port, str):
-            raise ValueError("an rtu link needs port: the serial device path")
-        return self
-
-    _unit_ok = field_validator("unit")(classmethod(lambda cls, u: _pressure_unit(u)))
-
-    def span(self) -> tuple[float | None, float | None]:
-        r = self.range or RangeModel()
-        return r.min, r.max
-
-
-def _kind(value: Any) -> str | None:
-    kind = value.get("kind") if isinstance(value, dict) else getattr(value, "kind", None)
-    return f"[{kind}]" if isinstance(kind, str) else None
-
-
-# Tags carry '[..]' so yamlio drops them from error locations (they are not YAML keys).
-ValveDevice = Annotated[
-    Annotated[AsciiRelayDevice, Tag("[ascii_relay]")] | Annotated[SimDevice, Tag("[sim]")],
-    Discriminator(_kind, custom_error_type="kind", custom_error_message="kind must be ascii_relay or sim"),
-]
-PressureDevice = Annotated[
-    Annotated[AsciiGaugeDevice, Tag("[ascii_gauge]")] | Annotated[VisaMeterDevice, Tag("[visa_meter]")]
-    | Annotated[ModbusDevice, Tag("[modbus]")] | Annotated[SimDevice, Tag("[sim]")],
-    Discriminator(_kind, custom_error_type="kind",
-                  custom_error_message="kind must be ascii_gauge, visa_meter, modbus or sim"),
-]
-ThermometerDevice = Annotated[
-    Annotated[AsciiThermometerDevice, Tag("[ascii_thermometer]")] | Annotated[SimDevice, Tag("[sim]")],
-    Discriminator(_kind, custom_error_type="kind",
-                  custom_error_message="kind must be ascii_thermometer or sim"),
-]
-
-
-# -- layout and limits ------------------------------------------------------------------------------
-
-class ValveRolesModel(Strict):
-    inlet: str
-    vent: str
-    expansion: dict[str, str] = {}  # expansion-volume name -> valve name
-    other: list[str] = []
-
-    def build(self) -> ValveRoles:
-        return ValveRoles(self.inlet, self.vent, dict(self.expansion), tuple(self.other))
-
-
-class ChambersModel(Strict):
-    cell: Volume
-    expansion: dict[str, Volume] = {}
-
-    def build(self) -> Chambers:
-        return Chambers(self.cell, dict(self.expansion))
+ValveDevice = registry.device_type(registry.VALVES)
+PressureDevice = registry.device_type(registry.PRESSURE)
+ThermometerDevice = registry.device_type(registry.TEMPERATURE)
+DEVICE_ROLES = ("valves", "pressure", "thermometer", "barometer")
 
 
 class InstrumentConfig(Strict):
@@ -323,9 +46,9 @@ class InstrumentConfig(Strict):
     pressure: PressureDevice
     thermometer: ThermometerDevice | None = None
     barometer: PressureDevice | None = None
-    valve_roles: ValveRolesModel | None = None  # may be omitted when valves are simulated
+    valve_roles: ValveRoles | None = None  # may be omitted when valves are simulated
     forbidden: list[list[str]] | None = None  # sets never open together; default [[inlet, vent]]
-    chambers: ChambersModel | None = None
+    chambers: Chambers | None = None
     limits: Limits | None = None
     sample_period: Seconds = 0.1
     gas: str = "helium"
@@ -360,7 +83,8 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
         for key in ("valve_roles", "chambers", "limits"):
             if getattr(cfg, key) is None:
                 errors.append(((), f"missing key {key!r} (required unless valves are simulated)"))
-    names = set(cfg.valves.valve_names()) if isinstance(cfg.valves, AsciiRelayDevice) else None
+    valve_names = getattr(cfg.valves, "valve_names", None)  # a board that declares its valves
+    names = set(valve_names()) if valve_names is not None else None
     roles = cfg.valve_roles
     if roles is not None and names is not None:
         for key in ("inlet", "vent"):
@@ -375,11 +99,12 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
                 errors.append((("valve_roles", "other", i), f"unknown valve {valve!r}"))
         if roles.inlet == roles.vent:
             errors.append((("valve_roles", "vent"), "inlet and vent must be different valves"))
-        if isinstance(cfg.valves, AsciiRelayDevice):
-            if cfg.valves.valves.get(roles.inlet, ValveChannel(channel=1)).normally == "open":
+        normally_open = getattr(cfg.valves, "normally_open", None)  # a board that knows its valve types
+        if normally_open is not None:
+            if normally_open(roles.inlet) is True:
                 warnings.append((("valves", "valves", roles.inlet),
                                  "the inlet is normally open: power loss would fill the cell (use NC)"))
-            if cfg.valves.valves.get(roles.vent, ValveChannel(channel=1)).normally == "closed":
+            if normally_open(roles.vent) is False:
                 warnings.append((("valves", "valves", roles.vent),
                                  "the vent is normally closed: power loss would trap pressure (use NO)"))
     if cfg.forbidden is not None:
@@ -390,7 +115,7 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
                 if names is not None and valve not in names:
                     errors.append((("forbidden", i, j), f"unknown valve {valve!r}"))
     if roles is not None:
-        bad = violations(roles.build().safe_state(), cfg.forbidden_sets() or [])
+        bad = violations(roles.safe_state(), cfg.forbidden_sets() or [])
         if bad:
             errors.append((("forbidden",), "the safe state (inlet closed, vent and expansions open) "
                            f"would violate {[sorted(c) for c in bad]}"))
@@ -441,7 +166,7 @@ def load_instrument_config(path: str | Path) -> InstrumentConfig:
         log.warning("%s (warning)", doc.problem(loc, msg))
     base = Path(path).parent
     updates: dict[str, Any] = {}
-    for role in ("valves", "pressure", "thermometer", "barometer"):
+    for role in DEVICE_ROLES:
         dev = getattr(cfg, role)
         if isinstance(dev, SimDevice) and dev.config and not Path(dev.config).is_absolute():
             updates[role] = dev.model_copy(update={"config": str(base / dev.config)})
@@ -450,71 +175,29 @@ def load_instrument_config(path: str | Path) -> InstrumentConfig:
 
 # -- building ---------------------------------------------------------------------------------------
 
-class _Opened:
-    """Transports opened while building, shared by port, closed again if the build fails."""
-
-    def __init__(self) -> None:
-        self.serial: dict[str, SerialTransport] = {}
-        self.devices: list[Any] = []
-
-    def serial_for(self, link: SerialLink, name: str) -> Transport:
-        if link.port not in self.serial:
-            self.serial[link.port] = link.transport(name)
-        return self.serial[link.port]
-
-    def close_all(self) -> None:
-        for dev in self.devices:
-            try:
-                dev.close()
-            except Exception as exc:  # the build already failed; report the first error
-                log.debug("closing %r after a failed build: %s", dev, exc)
-        for t in self.serial.values():
-            t.close()
-
-
 def _sim_instrument(cfg: InstrumentConfig, sim_bench: Any, realtime: bool = False) -> Instrument:
     if sim_bench is not None:
         return sim_bench
     from pycnoctl.drivers.simulated import build_sim_instrument
 
-    paths = {d.config for d in (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer)
-             if isinstance(d, SimDevice)}
+    paths = {d.config for d in (getattr(cfg, r) for r in DEVICE_ROLES) if isinstance(d, SimDevice)}
     return build_sim_instrument(next(iter(paths)) if paths else None, realtime=realtime)
 
 
-def _pressure_device(dev: Any, role: str, opened: _Opened, clock: Clock, sim: Instrument | None) -> Any:
-    if isinstance(dev, SimDevice):
-        assert sim is not None
-        return sim.pressure if role == "pressure" else sim.barometer
-    if isinstance(dev, AsciiGaugeDevice):
-        return AsciiGauge(opened.serial_for(dev, role), fmt=dev.fmt(), name=role, clock=clock,
-                          absolute=dev.reference == "absolute")
-    if isinstance(dev, VisaMeterDevice):
-        from pycnoctl.drivers.visa_meter import LoopScaling, VisaTransducerMeter
-
-        t = VisaTransport(dev.resource, name=role, backend=dev.backend, timeout=dev.timeout)
-        opened.devices.append(t)
-        return VisaTransducerMeter(t, scaling=dev.scaling(LoopScaling), query=dev.query,
-                                   setup=tuple(dev.setup), name=role, clock=clock)
-    if isinstance(dev, ModbusDevice):
-        from pycnoctl.drivers.modbus_gauge import ModbusGauge, RegisterMap
-
-        r = dev.range or RangeModel()
-        regmap = RegisterMap(address=dev.address, table=dev.table, datatype=dev.datatype,
-                             word_order=dev.word_order, device_id=dev.device_id, gain=dev.gain,
-                             offset=dev.offset, unit=dev.unit, range_min=r.min, range_max=r.max)
-        if dev.link == "tcp":
-            return ModbusGauge.tcp(str(dev.host), int(dev.port), regmap, timeout=dev.timeout, name=role,
-                                   clock=clock)
-        return ModbusGauge.rtu(str(dev.port), regmap, baudrate=dev.baudrate, timeout=dev.timeout,
-                               name=role, clock=clock)
-    raise TypeError(f"no driver for {type(dev).__name__}")
+def _close_all(opened: list[Any]) -> None:
+    """Close what a failed build opened, newest first; the build's own error is the one reported."""
+    for dev in reversed(opened):
+        try:
+            dev.close()
+        except Exception as exc:  # the build already failed; report the first error
+            log.debug("closing %r after a failed build: %s", dev, exc)
 
 
-def build_instrument(cfg: InstrumentConfig, *, clock: Clock | None = None, sim_bench: Any = None,
+def build_instrument(cfg: InstrumentConfig, *, clock: Any = None, sim_bench: Any = None,
                      realtime: bool = False) -> Instrument:
     """Open every device named in cfg and assemble the Instrument (valves behind the guard).
 
+    Each role's device is made by the builder its kind registered (drivers/registry.py).
     sim_bench: an Instrument from drivers.simulated.build_sim_instrument whose drivers serve the
     roles of kind 'sim' (so tests can put fake byte-level devices on the same simulator).
     Without a clock, the simulator's clock is used when any role is simulated, else wall time.
@@ -522,43 +205,39 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Clock | None = None, sim_b
     errors, _ = cfg.findings()
     if errors:
         raise ValueError("; ".join(f"{'.'.join(map(str, loc)) or '<top>'}: {m}" for loc, m in errors))
-    roles_devices = (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer)
-    uses_sim = any(isinstance(d, SimDevice) for d in roles_devices)
+    uses_sim = any(isinstance(getattr(cfg, r), SimDevice) for r in DEVICE_ROLES)
     sim = _sim_instrument(cfg, sim_bench, realtime) if uses_sim else None
     clk = clock or (sim.clock if sim is not None else WallClock())
-    opened = _Opened()
+    shared: dict[str, Any] = {SIM: sim} if sim is not None else {}
+    opened: list[Any] = []
+
+    def build(role: str) -> Any:
+        dev = getattr(cfg, role)
+        if dev is None:
+            return None
+        ctx = registry.BuildContext(role=role, clock=clk, shared=shared, opened=opened)
+        return registry.lookup(dev).build(dev, ctx)
+
     try:
-        if isinstance(cfg.valves, SimDevice):
-            assert sim is not None
-            bank: ValveBank = getattr(sim.valves, "inner", sim.valves)
-            roles = cfg.valve_roles.build() if cfg.valve_roles else sim.roles
+        bank: ValveBank = build("valves")
+        if cfg.valve_roles is not None:
+            roles = cfg.valve_roles
         else:
-            assert cfg.valve_roles is not None
-            dev = cfg.valves
-            channels = {n: Channel(v.channel, v.normally == "open") for n, v in dev.valves.items()}
-            bank = AsciiRelayBoard(opened.serial_for(dev, "valves"), channels, commands=dev.commands.build(),
-                                   name="valves", watchdog=dev.watchdog)
-            roles = cfg.valve_roles.build()
+            assert sim is not None  # findings() requires valve_roles unless the valves are simulated
+            roles = sim.roles
         unknown = ({roles.inlet, roles.vent} | set(roles.expansion.values())) - set(bank.valve_names)
         if unknown:
             raise ValueError(f"valve_roles name valves the bank does not have: {sorted(unknown)}")
         guarded = GuardedValveBank(bank, cfg.forbidden_sets(), roles=roles)
-        pressure: PressureSensor = _pressure_device(cfg.pressure, "pressure", opened, clk, sim)
-        barometer = _pressure_device(cfg.barometer, "barometer", opened, clk, sim) if cfg.barometer else None
-        thermometer: Thermometer | None = None
-        if isinstance(cfg.thermometer, SimDevice):
-            thermometer = sim.thermometer if sim is not None else None
-        elif isinstance(cfg.thermometer, AsciiThermometerDevice):
-            d = cfg.thermometer
-            fmt = GaugeFormat(query=d.query, regex=d.regex, unit=d.unit, gain=d.gain, offset=d.offset)
-            thermometer = AsciiGauge(opened.serial_for(d, "thermometer"), fmt=fmt, name="thermometer",
-                                     clock=clk, quantity="temperature")
-        chambers = cfg.chambers.build() if cfg.chambers else (sim.chambers if sim else None)
+        pressure: PressureSensor = build("pressure")
+        barometer = build("barometer")
+        thermometer: Thermometer | None = build("thermometer")
+        chambers = cfg.chambers if cfg.chambers else (sim.chambers if sim else None)
         limits = cfg.limits if cfg.limits else (sim.limits if sim else None)
         if chambers is None or limits is None:
             raise ValueError("chambers and limits are required")
     except BaseException:
-        opened.close_all()
+        _close_all(opened)
         raise
     extras: dict[str, object] = {"config": cfg}
     if sim is not None:  # the simulator's own extras (extras['sim'] is its bench), and its instrument

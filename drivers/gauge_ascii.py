@@ -12,11 +12,16 @@ import math
 import re
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Literal
+
+from pydantic import Field, field_validator
 
 from pycnoctl.controller.domain.clock import Clock, WallClock
 from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, DeviceTimeout, Reading, Validity
 from pycnoctl.controller.domain.units import parse_pressure, parse_temperature
-from pycnoctl.drivers.relay_ascii import FrameTemplate
+from pycnoctl.drivers import registry
+from pycnoctl.drivers.fields import RangeModel, SerialLink, pressure_unit, serial_transport
+from pycnoctl.drivers.relay_ascii import FrameTemplate, Template
 from pycnoctl.drivers.transports import Transport
 
 log = logging.getLogger(__name__)
@@ -132,3 +137,54 @@ class AsciiGauge:
 
     def close(self) -> None:
         self.transport.close()
+
+
+# -- config ---------------------------------------------------------------------------------------
+
+class AsciiGaugeDevice(SerialLink):
+    kind: Literal["ascii_gauge"]
+    query: Template = GaugeFormat.query
+    regex: str = GaugeFormat.regex
+    unit: str = GaugeFormat.unit
+    gain: float = 1.0
+    offset: float = 0.0
+    reference: Literal["gauge", "absolute"] = "gauge"
+    range: RangeModel | None = None
+    overrange_words: list[str] = Field(default_factory=lambda: list(GaugeFormat.overrange_words))
+    nan_words: list[str] = Field(default_factory=lambda: list(GaugeFormat.nan_words))
+
+    _unit_ok = field_validator("unit")(classmethod(lambda cls, u: pressure_unit(u)))
+
+    def fmt(self) -> GaugeFormat:
+        r = self.range or RangeModel()
+        return GaugeFormat(query=self.query, regex=self.regex, unit=self.unit, gain=self.gain,
+                           offset=self.offset, overrange_words=tuple(self.overrange_words),
+                           nan_words=tuple(self.nan_words), range_min=r.min, range_max=r.max)
+
+    def span(self) -> tuple[float | None, float | None]:
+        r = self.range or RangeModel()
+        return r.min, r.max
+
+
+class AsciiThermometerDevice(SerialLink):
+    kind: Literal["ascii_thermometer"]
+    query: Template = "T?\\n"
+    regex: str = r"^T\s+(?P<value>\S+)"
+    unit: str = "degC"
+    gain: float = 1.0
+    offset: float = 0.0
+
+
+def build_gauge(dev: AsciiGaugeDevice, ctx: registry.BuildContext) -> AsciiGauge:
+    return AsciiGauge(serial_transport(dev, ctx), fmt=dev.fmt(), name=ctx.role, clock=ctx.clock,
+                      absolute=dev.reference == "absolute")
+
+
+def build_thermometer(dev: AsciiThermometerDevice, ctx: registry.BuildContext) -> AsciiGauge:
+    fmt = GaugeFormat(query=dev.query, regex=dev.regex, unit=dev.unit, gain=dev.gain, offset=dev.offset)
+    return AsciiGauge(serial_transport(dev, ctx), fmt=fmt, name=ctx.role, clock=ctx.clock,
+                      quantity="temperature")
+
+
+registry.register("ascii_gauge", registry.PRESSURE, AsciiGaugeDevice, build_gauge)
+registry.register("ascii_thermometer", registry.TEMPERATURE, AsciiThermometerDevice, build_thermometer)

@@ -12,11 +12,14 @@ import math
 from dataclasses import dataclass
 from typing import Any, Literal
 
+from pydantic import Field, field_validator, model_validator
 from pymodbus.client import ModbusSerialClient, ModbusTcpClient
 from pymodbus.exceptions import ConnectionException, ModbusException, ModbusIOException
 
 from pycnoctl.controller.domain.clock import Clock, WallClock
 from pycnoctl.controller.domain.devices import Reading, Validity
+from pycnoctl.drivers import registry
+from pycnoctl.drivers.fields import RangeModel, Seconds, Strict, pressure_unit
 from pycnoctl.drivers.gauge_ascii import pascal_per
 
 log = logging.getLogger(__name__)
@@ -126,3 +129,53 @@ class ModbusGauge:
 
     def close(self) -> None:
         self.client.close()
+
+
+# -- config ---------------------------------------------------------------------------------------
+
+class ModbusDevice(Strict):
+    kind: Literal["modbus"]
+    link: Literal["tcp", "rtu"] = "tcp"
+    host: str | None = None  # tcp
+    port: int | str = 502  # tcp port number, or the serial device for rtu
+    baudrate: int = 19200
+    timeout: Seconds = 1.0
+    device_id: int = Field(1, ge=0, le=247)
+    address: int = Field(ge=0, le=65535)
+    table: Literal["holding", "input"] = "holding"
+    datatype: DataType = "int16"
+    word_order: Literal["big", "little"] = "big"
+    gain: float = 1.0
+    offset: float = 0.0
+    unit: str = "kPa"
+    reference: Literal["gauge", "absolute"] = "gauge"
+    range: RangeModel | None = None
+
+    @model_validator(mode="after")
+    def _link_ok(self) -> ModbusDevice:
+        if self.link == "tcp" and (not self.host or not isinstance(self.port, int)):
+            raise ValueError("a tcp link needs host and an integer port")
+        if self.link == "rtu" and not isinstance(self.port, str):
+            raise ValueError("an rtu link needs port: the serial device path")
+        return self
+
+    _unit_ok = field_validator("unit")(classmethod(lambda cls, u: pressure_unit(u)))
+
+    def span(self) -> tuple[float | None, float | None]:
+        r = self.range or RangeModel()
+        return r.min, r.max
+
+
+def build_modbus(dev: ModbusDevice, ctx: registry.BuildContext) -> ModbusGauge:
+    r = dev.range or RangeModel()
+    regmap = RegisterMap(address=dev.address, table=dev.table, datatype=dev.datatype, word_order=dev.word_order,
+                         device_id=dev.device_id, gain=dev.gain, offset=dev.offset, unit=dev.unit,
+                         range_min=r.min, range_max=r.max)
+    if dev.link == "tcp":
+        return ModbusGauge.tcp(str(dev.host), int(dev.port), regmap, timeout=dev.timeout, name=ctx.role,
+                               clock=ctx.clock)
+    return ModbusGauge.rtu(str(dev.port), regmap, baudrate=dev.baudrate, timeout=dev.timeout, name=ctx.role,
+                           clock=ctx.clock)
+
+
+registry.register("modbus", registry.PRESSURE, ModbusDevice, build_modbus)

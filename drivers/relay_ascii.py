@@ -24,8 +24,13 @@ import re
 import threading
 from collections.abc import Mapping
 from dataclasses import dataclass
+from typing import Annotated, Any, Literal
+
+from pydantic import BeforeValidator, Field, field_validator
 
 from pycnoctl.controller.domain.devices import ProtocolError
+from pycnoctl.drivers import registry
+from pycnoctl.drivers.fields import Seconds, SerialLink, Strict, serial_transport
 from pycnoctl.drivers.transports import Transport
 
 log = logging.getLogger(__name__)
@@ -279,3 +284,72 @@ class AsciiRelayBoard:
 
     def close(self) -> None:
         self.transport.close()
+
+
+# -- config ---------------------------------------------------------------------------------------
+
+def _template(value: Any) -> str:
+    if not isinstance(value, str):
+        raise ValueError("a command template must be a string")
+    FrameTemplate.parse(value)  # raises ValueError with the reason
+    return value
+
+
+Template = Annotated[str, BeforeValidator(_template)]
+
+
+class RelayCommandsModel(Strict):
+    set: Template = RelayCommands.set
+    energise: str | int = RelayCommands.energise
+    de_energise: str | int = RelayCommands.de_energise
+    ack: str | None = RelayCommands.ack
+    error: str | None = RelayCommands.error
+    readback: Template | None = RelayCommands.readback
+    readback_regex: str = RelayCommands.readback_regex
+    mask_base: Literal[2, 10, 16] = 16
+    all_off: Template | None = RelayCommands.all_off
+    ping: Template | None = RelayCommands.ping
+    ping_reply: str = RelayCommands.ping_reply
+    arm_watchdog: Template | None = RelayCommands.arm_watchdog
+
+    def build(self) -> RelayCommands:
+        return RelayCommands(**self.model_dump())
+
+
+class ValveChannel(Strict):
+    channel: int = Field(ge=1, le=64)
+    normally: Literal["open", "closed"] = "closed"
+
+
+class AsciiRelayDevice(SerialLink):
+    kind: Literal["ascii_relay"]
+    commands: RelayCommandsModel = RelayCommandsModel()
+    valves: dict[str, ValveChannel] = Field(min_length=1)
+    watchdog: Seconds | None = None  # arm the board's own watchdog (PROTOCOL.md) with this timeout
+
+    @field_validator("valves")
+    @classmethod
+    def _distinct_channels(cls, valves: dict[str, ValveChannel]) -> dict[str, ValveChannel]:
+        seen: dict[int, str] = {}
+        for name, v in valves.items():
+            if v.channel in seen:
+                raise ValueError(f"valves {seen[v.channel]!r} and {name!r} are both on relay {v.channel}")
+            seen[v.channel] = name
+        return valves
+
+    def valve_names(self) -> tuple[str, ...]:
+        return tuple(self.valves)
+
+    def normally_open(self, valve: str) -> bool | None:
+        """Whether the valve opens when its relay is off (None: no such valve)."""
+        v = self.valves.get(valve)
+        return None if v is None else v.normally == "open"
+
+
+def build_relay_board(dev: AsciiRelayDevice, ctx: registry.BuildContext) -> AsciiRelayBoard:
+    channels = {n: Channel(v.channel, v.normally == "open") for n, v in dev.valves.items()}
+    return AsciiRelayBoard(serial_transport(dev, ctx), channels, commands=dev.commands.build(),
+                           name=ctx.role, watchdog=dev.watchdog)
+
+
+registry.register("ascii_relay", registry.VALVES, AsciiRelayDevice, build_relay_board)

@@ -15,9 +15,12 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from pathlib import Path
+from typing import Any, Literal
 
 from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, Reading, Validity
 from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
+from pycnoctl.drivers import registry
+from pycnoctl.drivers.fields import Strict
 from pycnoctl.drivers.guarded import GuardedValveBank
 from pycnoctl.drivers.instrument import Instrument
 from pycnoctl.sim.bench import SensorSample, SimBench
@@ -205,3 +208,26 @@ def build_sim_instrument(
         gas=cfg.gas,
         extras={"sim": bench},
     )
+
+
+# -- config ---------------------------------------------------------------------------------------
+
+class SimDevice(Strict):
+    """A role served by the simulator; every simulated role shares one bench (one config)."""
+
+    kind: Literal["sim"]
+    config: str | None = None  # simulator config file; None for the simulator's default
+
+
+SIM = "sim"  # BuildContext.shared key of the simulated Instrument the loader made for the sim roles
+
+
+def build_sim_device(dev: SimDevice, ctx: registry.BuildContext) -> Any:
+    """The simulated Instrument's driver for the role (valves without its guard: the loader adds one)."""
+    sim: Instrument = ctx.shared[SIM]
+    if ctx.role == "valves":
+        return getattr(sim.valves, "inner", sim.valves)
+    return getattr(sim, ctx.role, None)
+
+
+registry.register("sim", (registry.VALVES, registry.PRESSURE, registry.TEMPERATURE), SimDevice, build_sim_device)

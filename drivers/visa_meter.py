@@ -12,10 +12,15 @@ from __future__ import annotations
 import logging
 import math
 from dataclasses import dataclass
+from typing import Literal
+
+from pydantic import Field
 
 from pycnoctl.controller.domain.clock import Clock, WallClock
 from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, DeviceTimeout, Reading, Validity
-from pycnoctl.drivers.transports import Transport
+from pycnoctl.drivers import registry
+from pycnoctl.drivers.fields import Pressure, Seconds, Signal, Strict
+from pycnoctl.drivers.transports import Transport, VisaTransport
 
 log = logging.getLogger(__name__)
 
@@ -105,3 +110,46 @@ class VisaTransducerMeter:
 
     def close(self) -> None:
         self.transport.close()
+
+
+# -- config ---------------------------------------------------------------------------------------
+
+class LoopScaleModel(Strict):
+    signal_low: Signal = 4e-3
+    signal_high: Signal = 20e-3
+    pressure_low: Pressure
+    pressure_high: Pressure
+
+
+class VisaMeterDevice(Strict):
+    kind: Literal["visa_meter"]
+    resource: str
+    backend: str = "@py"
+    timeout: Seconds = 1.0
+    query: str = "MEAS:CURR:DC?"
+    setup: list[str] = Field(default_factory=list)
+    scale: LoopScaleModel
+    open_loop_below: Signal | None = 3.6e-3
+    over_above: Signal | None = 20.5e-3
+    reference: Literal["gauge", "absolute"] = "gauge"
+
+    def span(self) -> tuple[float | None, float | None]:
+        s = self.scaling()
+        top = s.to_pressure(self.over_above) if self.over_above is not None else self.scale.pressure_high
+        return self.scale.pressure_low, top
+
+    def scaling(self) -> LoopScaling:
+        s = self.scale
+        return LoopScaling(signal_low=s.signal_low, signal_high=s.signal_high, pressure_low=s.pressure_low,
+                           pressure_high=s.pressure_high, open_loop_below=self.open_loop_below,
+                           over_above=self.over_above)
+
+
+def build_meter(dev: VisaMeterDevice, ctx: registry.BuildContext) -> VisaTransducerMeter:
+    t = VisaTransport(dev.resource, name=ctx.role, backend=dev.backend, timeout=dev.timeout)
+    ctx.opened.append(t)
+    return VisaTransducerMeter(t, scaling=dev.scaling(), query=dev.query, setup=tuple(dev.setup),
+                               name=ctx.role, clock=ctx.clock)
+
+
+registry.register("visa_meter", registry.PRESSURE, VisaMeterDevice, build_meter)

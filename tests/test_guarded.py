@@ -11,7 +11,7 @@ from pycnoctl.drivers.relay_ascii import AsciiRelayBoard, Channel
 from pycnoctl.drivers.transports import SerialTransport
 from pycnoctl.sim.fakedev import FakeDevice, MemoryValveBank, RelayFirmware, ScriptedTransport
 
-ROLES = ValveRoles("inlet", "vent", {"small": "small"})
+ROLES = ValveRoles(inlet="inlet", vent="vent", expansion={"small": "small"})
 CHANNELS = {"inlet": Channel(1), "vent": Channel(2, normally_open=True), "small": Channel(3)}
 
 

@@ -7,26 +7,28 @@ maths computes with them. Nothing here talks to hardware.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Annotated, Any
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, ValidationInfo, field_validator
 
-from pycnoctl.controller.domain.units import UnitError, parse_duration, parse_pressure, parse_rate
+from pycnoctl.controller.domain.units import UnitError, parse_duration, parse_pressure, parse_rate, parse_volume
 from pycnoctl.controller.domain.yamlio import DOCUMENT
 
 
-@dataclass(frozen=True)
-class ValveRoles:
+class ValveRoles(BaseModel):
     """Which named valve does what in the gas path.
 
     The standard topology: supply -> inlet -> sample cell (transducer here);
     cell -> expansion valve -> expansion volume (one valve per volume); cell side -> vent -> ambient.
+    The one type for valve roles: the instrument config loads it, the simulator derives it.
     """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
 
     inlet: str
     vent: str
-    expansion: dict[str, str]  # expansion-volume name -> its valve name
+    expansion: dict[str, str] = {}  # expansion-volume name -> its valve name
     other: tuple[str, ...] = ()
 
     def safe_state(self) -> dict[str, bool]:
@@ -46,13 +48,40 @@ class ChamberCalibration:
     record_id: str | None = None
 
 
-@dataclass(frozen=True)
-class Chambers:
-    """Chamber volumes in m^3: nominal from the config, overridden per expansion volume by calibration."""
+def _volume(value: Any, info: ValidationInfo) -> float:
+    """A volume: text with a unit from a document ('12.0 cm^3'), a plain float in m^3 from code."""
+    if isinstance(value, bool) or ((info.context or {}).get(DOCUMENT) and not isinstance(value, str)):
+        raise ValueError("give a unit, e.g. '12.0 cm^3' (a bare number is ambiguous here)")
+    if isinstance(value, int | float):
+        return float(value)  # m^3 from code, kept bit for bit
+    try:
+        return parse_volume(value, default_unit="m**3")
+    except UnitError as exc:
+        raise ValueError(str(exc)) from None
 
-    cell: float
-    expansion: dict[str, float]
-    calibrated: dict[str, ChamberCalibration] = field(default_factory=dict)
+
+Volume = Annotated[float, BeforeValidator(_volume)]
+
+
+class Chambers(BaseModel):
+    """Chamber volumes in m^3: nominal from the config, overridden per expansion volume by calibration.
+
+    The one type for chambers: the instrument config loads cell and expansion; `calibrated` is
+    filled from calibration records at run time, never from a file.
+    """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    cell: Volume
+    expansion: dict[str, Volume] = {}
+    calibrated: dict[str, ChamberCalibration] = {}
+
+    @field_validator("calibrated", mode="before")
+    @classmethod
+    def _not_from_a_file(cls, value: Any, info: ValidationInfo) -> Any:
+        if (info.context or {}).get(DOCUMENT):
+            raise ValueError("calibrated volumes come from calibration records (pycnoctl calibrate), not a file")
+        return value
 
     def for_expansion(self, name: str) -> ChamberCalibration:
         """The (Vc, Vr, covariance) to compute with when expanding into `name`."""

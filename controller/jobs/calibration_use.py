@@ -10,7 +10,6 @@ ASTM D4892's daily rule so an operator who works to it can set the limit to 1 da
 
 from __future__ import annotations
 
-import dataclasses
 import datetime as _dt
 import math
 import os
@@ -133,11 +132,9 @@ def use_latest_calibration(instrument: Instrument, catalog: Catalog, *, expansio
                                 "calibrate)")
             return use
     cov = tuple(tuple(float(x) for x in row) for row in (rec.cov or [[0.0, 0.0], [0.0, 0.0]]))
-    instrument.chambers = dataclasses.replace(
-        instrument.chambers,
-        calibrated={**instrument.chambers.calibrated,
-                    expansion_volume: ChamberCalibration(rec.vc, rec.vr, cov, rec.id)},  # type: ignore[arg-type]
-    )
+    instrument.chambers = instrument.chambers.model_copy(update={
+        "calibrated": {**instrument.chambers.calibrated,
+                       expansion_volume: ChamberCalibration(rec.vc, rec.vr, cov, rec.id)}})  # type: ignore[arg-type]
     if rec.created:
         age = ((now or _dt.datetime.now(_dt.UTC)) - parse_created(rec.created)).total_seconds()
         if age > policy.max_age:
