@@ -111,6 +111,10 @@ def settled_u(det: SettleDetector) -> float:
 
 
 _SETTLES = frozenset({RunState.BASELINE.value, RunState.SETTLE_FILLED.value, RunState.SETTLE_EXPANDED.value})
+# plain strings for the per-row comparisons: looking up an enum member costs several times a str compare
+_BASELINE = RunState.BASELINE.value
+_LEAK_HOLD = RunState.LEAK_HOLD.value
+_MEASURED = _SETTLES | {_LEAK_HOLD}  # states whose rows feed a detector or the leak fit
 
 
 class CycleMeasurer:
@@ -142,10 +146,19 @@ class CycleMeasurer:
         self._last_t = row.t
         if state in _SETTLES:
             return self._settle_row(row)
-        if state == RunState.LEAK_HOLD and math.isfinite(row.gauge):
+        if state == _LEAK_HOLD and math.isfinite(row.gauge):
             self._leak[0].append(row.t)
             self._leak[1].append(row.gauge)
         return None
+
+    def passes(self, state: str, t: float) -> bool:
+        """True, with the time noted, for a row that feed() would only time-stamp (the same state as the
+        last row, and not one whose samples are measured): the live engine then builds no Row.  Replay
+        may feed every row; both give the same cycles."""
+        if state != self._state or state in _MEASURED:
+            return False
+        self._last_t = t
+        return True
 
     def give_up(self) -> bool:
         """The engine's time limit ran out with the detector still waiting: take its estimate so far,
@@ -210,7 +223,7 @@ class CycleMeasurer:
         assert det is not None
         if not self._open:
             return det.status
-        if self._state == RunState.BASELINE:
+        if self._state == _BASELINE:
             if math.isfinite(row.gauge):
                 self._window.append((row.ambient, row.temp_k))
         elif math.isfinite(row.temp_k):

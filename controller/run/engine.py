@@ -102,6 +102,7 @@ class RunEngine:
         self.exp_valve = self.roles.expansion[expansion_volume]
         self.emit = emit or (lambda kind, data: None)
         self.meter = CycleMeasurer(self.plan(sequence, instrument, expansion_volume))
+        self._grace = 5 * instrument.sample_period  # the engine's own settle limit waits this past max_time
         self.cycle_number = 0  # 1-based number of the cycle in progress (0 before the first fill)
         self.reason: str = ""
         self.fault_kind: str = ""
@@ -247,10 +248,14 @@ class RunEngine:
     def step(self, s: Sample) -> None:
         """Advance on one sample (already seen by the interlocks and recorded). Never blocks."""
         self._now = s.t
-        step = self._steps.get(self.state)
+        state = self.state
+        step = self._steps.get(state)
         if step is not None:  # idle and the end states have no step
-            temp = s.temperature.value if s.temperature is not None and s.temperature.valid else math.nan
-            self._status = self.meter.feed(self.state, Row(s.t, s.gauge, s.ambient, temp))
+            if self.meter.passes(state, s.t):
+                self._status = None
+            else:
+                temp = s.temperature.value if s.temperature is not None and s.temperature.valid else math.nan
+                self._status = self.meter.feed(state, Row(s.t, s.gauge, s.ambient, temp))
             step(s)
 
     def _elapsed(self) -> float:
@@ -291,16 +296,12 @@ class RunEngine:
             self._finish_cycle()
         self._fire("vented")
 
-    def _timed_out(self, settle: Any) -> bool:
-        """The engine's own limit: the detector still waiting (e.g. no valid samples) past max_time."""
-        return self._elapsed() > settle.max_time + 5 * self.instrument.sample_period
-
     def _step_baseline(self, s: Sample) -> None:
         """Closed, vented system: wait until it stops drifting, then take the zero of the next cycle."""
         status = self._status
         settle = self.seq.settle_baseline
         if status is SettleStatus.WAITING:
-            if not self._timed_out(settle):
+            if self._now - self.t_state <= settle.max_time + self._grace:  # inline: runs every sample
                 return
             status = SettleStatus.TIMED_OUT
         if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
@@ -338,7 +339,7 @@ class RunEngine:
         status = self._status
         settle = self.seq.settle_filled if which == "1" else self.seq.settle_expanded
         if status is SettleStatus.WAITING:
-            if not self._timed_out(settle):
+            if self._now - self.t_state <= settle.max_time + self._grace:  # inline: runs every sample
                 return
             status = SettleStatus.TIMED_OUT  # no valid samples at all
         if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):

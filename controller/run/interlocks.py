@@ -181,9 +181,13 @@ class Overpressure(Rule):
     kind = "overpressure"
     fields = ("max_pressure", "relief_setting")  # the relief setting bounds max_pressure at load
 
+    def __init__(self, limits: Limits, tuning: Tuning) -> None:
+        super().__init__(limits, tuning)
+        self.limit = limits.max_pressure  # read on every sample: kept as a plain attribute
+
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
         g = float(obs.gauge)
-        limit = self.limits.max_pressure
+        limit = self.limit
         if not g > limit:
             return None
         return _Condition(self.kind, f"gauge {g:.6g} Pa above max_pressure {limit:.6g} Pa (phase {obs.phase})",
@@ -199,8 +203,12 @@ class Stale(Rule):
     fields = ("stale_after",)
     sees = "both"
 
+    def __init__(self, limits: Limits, tuning: Tuning) -> None:
+        super().__init__(limits, tuning)
+        self.limit = limits.stale_after
+
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
-        limit = self.limits.stale_after
+        limit = self.limit
         if not seen.gap > limit:
             return None
         return _Condition(self.kind, f"no valid pressure sample for {seen.gap:.3g} s"
@@ -331,7 +339,7 @@ class VentTimeout(Rule):
     fields = ("vent_timeout", "vent_baseline_tolerance")
 
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
-        if seen.vented_since is None:
+        if seen.vented_since is None or seen.t - seen.vented_since < self.limits.vent_timeout:
             return None
         lim = self.limits
         held = seen.t - seen.vented_since
@@ -367,6 +375,7 @@ class InterlockMonitor:
             raise ValueError("rise_samples must be >= 2")
         self.limits = limits
         self.roles = roles
+        self._inlet, self._vent = roles.inlet, roles.vent  # looked up on every sample
         self._act = act
         self._on_trip = on_trip
         self.tuning = Tuning(rise_samples, leak_persist_ratio)
@@ -490,7 +499,7 @@ class InterlockMonitor:
         seen = self._seen
         t = seen.t = float(obs.t)
         valves = obs.valves
-        inlet_open = seen.inlet_open = bool(valves.get(self.roles.inlet, False))
+        inlet_open = seen.inlet_open = bool(valves.get(self._inlet, False))
         if seen.valves != valves:
             seen.valves_changed_at = t
             seen.valves = dict(valves)  # a copy only when something changed: this runs on every sample
@@ -501,7 +510,7 @@ class InterlockMonitor:
             seen.vented_since = None
         else:
             seen.inlet_open_since = None
-            if not valves.get(self.roles.vent, False):
+            if not valves.get(self._vent, False):
                 seen.vented_since = None
             elif seen.vented_since is None:
                 seen.vented_since = t
