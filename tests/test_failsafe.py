@@ -141,6 +141,9 @@ def test_an_exception_anywhere_in_a_fill_reaches_the_safe_state_the_record_and_t
     exc = [e for e in events if e["kind"] == "exception"]
     assert exc and exc[0]["type"] == "RuntimeError" and "injected fault in the" in exc[0]["message"]
     assert exc[0]["where"] and exc[0]["safe_state_ok"] is True
+    # the part of the tick named from the traceback (a valve command comes from an engine transition)
+    assert exc[0]["where"].startswith({"pressure": "acquire", "valve": "engine step", "engine": "engine step",
+                                       "recorder": "record"}[where])
     trips = [e for e in events if e["kind"] == "trip"]
     assert trips and trips[0]["interlock"] == "exception"
     # the catalog row is closed and says what happened

@@ -32,6 +32,25 @@ class Recorder(Protocol):
     def event(self, kind: str, t: float | None, message: str = "", **data: Any) -> None: ...
 
 
+#: The callee of Controller._tick an exception came through -> the part of the tick it names.
+_STAGES = {"acquire": "acquire", "observe": "interlocks", "_check_valves": "valve check",
+           "trip_external": "interlocks", "sample": "record", "to_fault": "engine", "_advance": "engine",
+           "emit": "listeners"}
+
+
+def _stage_of(exc: BaseException) -> str:
+    """Which part of a tick raised: the function _tick called on the way to the exception."""
+    tb = exc.__traceback__
+    while tb is not None and tb.tb_frame.f_code.co_name != "_tick":
+        tb = tb.tb_next
+    if tb is None:
+        return "tick"
+    callee = tb.tb_next
+    if callee is None:  # raised in _tick's own lines
+        return "tick"
+    return _STAGES.get(callee.tb_frame.f_code.co_name, callee.tb_frame.f_code.co_name)
+
+
 class Controller:
     """Acquisition, interlocks and sequencing for one instrument."""
 
@@ -55,7 +74,7 @@ class Controller:
         self._temp: Reading | None = None
         self._temp_due = -math.inf
         self._record_failed: str | None = None
-        self.stage = "idle"  # the part of the tick running now, for the record of an exception
+        self.stage = "idle"  # the part of the tick the last exception came from (_stage_of), for its record
         self._last_failure: str | None = None
         self.repeated_failures = 0  # the same exception again while latched: not recorded again
         instrument.safe_state()
@@ -127,10 +146,10 @@ class Controller:
 
         Any exception on the way ends in fail(): safe state, the exception in the record, the run
         ended as a fault.  Nothing escapes a tick."""
-        self.stage = "acquire"
         try:
             return self._tick()
         except Exception as exc:
+            self.stage = _stage_of(exc)
             t = self.last.t if self.last is not None else math.nan
             with contextlib.suppress(Exception):  # a broken clock must not stop the safe state
                 t = self.instrument.clock.now()
@@ -140,20 +159,19 @@ class Controller:
             return Sample(self.index, t, reading, math.nan, self._ambient, self._temp, {})
 
     def _tick(self) -> Sample:
+        # No bookkeeping of "where are we" on the way: an exception's traceback says which part of
+        # the tick raised (_stage_of), so the path every sample takes pays nothing for it.
         s = self.acquire()
         self.last = s
         engine = self.engine
         state = engine.state if engine is not None else RunState.IDLE.value
-        self.stage = "interlocks"
         trip = self.monitor.observe(Observation(t=s.t, reading=s.pressure, gauge=s.gauge,
                                                 valves=s.valves, phase=state))
         if trip is None and self.monitor.latched is None:
-            self.stage = "valve check"
             problem = self._check_valves(s.t)
             if problem is not None:
                 trip = self.monitor.trip_external("device_error", s.t, problem)
         if self.recorder is not None:
-            self.stage = "record"
             try:
                 self.recorder.sample(s.t, state, engine.cycle_number if engine else None, s.valves,
                                      s.pressure, s.temperature, s.ambient)
@@ -163,13 +181,11 @@ class Controller:
                 trip = trip or self.monitor.trip_external(
                     "write_error", s.t, f"run record not saved: {self._record_failed}")
                 self.recorder, self._record_failed = None, None
-        self.stage = "engine"
         if trip is not None and engine is not None:
             engine.to_fault(trip.kind, trip.message, s.t)
         elif engine is not None and not engine.terminal:
             self._advance(engine, s)
         if self.listeners:  # the fast path of a simulated run has none
-            self.stage = "listeners"
             self.emit("sample", {"t": s.t, "gauge": s.gauge, "valid": s.pressure.validity.value,
                                  "state": engine.state if engine else RunState.IDLE.value, "valves": s.valves})
         return s
