@@ -99,4 +99,8 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    # Run the importable module's main: under `python -m` this file is also __main__, whose
+    # UsageError is not the one the verbs raise, so it would escape as a traceback.
+    from pycnoctl.controller.cli.main import main as _main
+
+    sys.exit(_main())

@@ -14,7 +14,13 @@ import sys
 import time
 from typing import Any
 
-from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, add_sample_args, open_instrument
+from pycnoctl.controller.cli.common import (
+    add_data_arg,
+    add_instrument_args,
+    add_sample_args,
+    check_before_opening,
+    open_instrument,
+)
 from pycnoctl.controller.cli.main import UsageError
 
 EXIT = {"completed": 0, "fault": 3, "aborted": 4, "interrupted": 4}
@@ -55,6 +61,7 @@ def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.run.sequence import SequenceNotFound
 
     request = request_from_args(args)
+    check_before_opening(args, request.sequence, request.expansion_volume)
     instrument = open_instrument(args)
     try:
         root = data_dir(args.data)
