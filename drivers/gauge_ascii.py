@@ -3,6 +3,11 @@
 read() never raises for a bad sample: a silent gauge, a reply that does not parse, a 'NaN'
 or an 'overrange' word, or a value outside the rated span all come back as an invalid
 Reading with the reason, so the interlocks see "no usable pressure", never a number.
+
+A reply is read only if the *whole* line (the transport has removed its terminator) matches
+the reply pattern, the value is one plain decimal number (sign, point and exponent allowed;
+no spaces, underscores, 'inf' or hex), and the unit in the reply, where the pattern has a
+`unit` group, is the configured unit.  A partial, doubled or unit-less reply is GARBLED.
 """
 
 from __future__ import annotations
@@ -37,7 +42,7 @@ class GaugeFormat:
     """How one kind of gauge is asked and how its reply is read."""
 
     query: str = "P?\\n"
-    regex: str = r"^P\s+(?P<value>\S+)"
+    regex: str = r"^P (?P<value>\S+) (?P<unit>\S+)$"  # matched against the whole reply line
     unit: str = "kPa"  # unit of the scaled value
     gain: float = 1.0  # pressure = raw * gain + offset, in `unit`
     offset: float = 0.0
@@ -59,26 +64,33 @@ def si_converter(quantity: str, unit: str) -> tuple[Callable[[float], float], st
     raise ValueError(f"quantity must be 'pressure' or 'temperature', not {quantity!r}")
 
 
+#: A plain decimal number as PROTOCOL.md allows it.  float() alone is too lenient: it takes
+#: '1_000', ' 12 ', 'infinity' and non-ASCII digits.
+NUMBER = re.compile(r"[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
+
+
 def classify_text(raw: str, fmt: GaugeFormat, to_si: Callable[[float], float],
                   rx: re.Pattern[str]) -> tuple[float, Validity, str]:
-    """Reply text -> (SI value, validity, detail).  Pure, so it is tested without a device."""
-    text = raw.strip()
-    m = rx.search(text)
+    """Reply line (terminator removed) -> (SI value, validity, detail).  Pure, so it is tested
+    without a device.  The pattern must match the whole line, not a prefix of it."""
+    m = rx.fullmatch(raw)
     if not m:
         return math.nan, Validity.GARBLED, f"reply {raw!r} does not match {rx.pattern!r}"
+    unit = m.groupdict().get("unit")
+    if unit is not None and unit != fmt.unit:
+        return math.nan, Validity.GARBLED, f"reply unit {unit!r} is not the configured {fmt.unit!r}"
     token = m.group("value")
+    if token is None:
+        return math.nan, Validity.GARBLED, f"reply {raw!r} has no value"
     upper = token.upper()
     if upper in {w.upper() for w in fmt.overrange_words}:
         return math.nan, Validity.OUT_OF_RANGE, f"gauge says {token!r}"
     if token in fmt.nan_words or upper in {w.upper() for w in fmt.nan_words}:
         return math.nan, Validity.NAN, f"gauge says {token!r}"
-    try:
-        raw_value = float(token)
-    except ValueError:
+    if not NUMBER.fullmatch(token):
         return math.nan, Validity.GARBLED, f"value {token!r} is not a number"
-    if not math.isfinite(raw_value):
-        if math.isnan(raw_value):
-            return math.nan, Validity.NAN, f"gauge says {token!r}"
+    raw_value = float(token)
+    if not math.isfinite(raw_value):  # e.g. '1e999'
         return math.nan, Validity.OUT_OF_RANGE, f"gauge says {token!r}"
     try:
         si = to_si(raw_value * fmt.gain + fmt.offset)

@@ -3,12 +3,19 @@
 Industrial transducers and panel meters often publish the pressure as a holding or input
 register: a 16-bit integer with a fixed scale, or a 32-bit integer/float split over two
 registers whose word order varies by maker.  All of that is config; read() never raises.
+
+Reply checks: pymodbus checks the frame (CRC-16 on RTU, the transaction id on TCP) and the device
+id; read() then wants a normal (not exception) response of the function it asked for, from the
+device it asked, with exactly the registers it asked for.  Late replies: RTU frames carry no
+transaction id, so after a timed-out request the next one first waits out one more timeout
+window; pymodbus drops whatever is waiting before it sends, so the late frame goes with it.
 """
 
 from __future__ import annotations
 
 import logging
 import math
+import time
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -65,12 +72,14 @@ class ModbusGauge:
     """A PressureSensor on a pymodbus synchronous client."""
 
     def __init__(self, client: Any, regmap: RegisterMap, *, name: str = "pressure",
-                 clock: Clock | None = None) -> None:
+                 clock: Clock | None = None, late_window: float = 0.0) -> None:
         self.client = client
         self.regmap = regmap
         self.name = name
         self.clock = clock or WallClock()
         self._pa = pascal_per(regmap.unit)
+        self.late_window = late_window  # s a timed-out request's reply stays owed (RTU); 0: none
+        self._owed_until: float | None = None
 
     @classmethod
     def tcp(cls, host: str, port: int, regmap: RegisterMap, *, timeout: float = 1.0,
@@ -80,7 +89,13 @@ class ModbusGauge:
     @classmethod
     def rtu(cls, port: str, regmap: RegisterMap, *, baudrate: int = 19200, timeout: float = 1.0,
             **kw: Any) -> ModbusGauge:
+        kw.setdefault("late_window", timeout)
         return cls(ModbusSerialClient(port, baudrate=baudrate, timeout=timeout, retries=0), regmap, **kw)
+
+    def _wait_out_late_reply(self) -> None:
+        until, self._owed_until = self._owed_until, None
+        if until is not None and (left := until - time.monotonic()) > 0:
+            time.sleep(left)
 
     def _read_registers(self) -> Any:
         r = self.regmap
@@ -90,20 +105,33 @@ class ModbusGauge:
         return fn(r.address, count=r.count, device_id=r.device_id)
 
     def read(self) -> Reading:
+        self._wait_out_late_reply()
         t0 = self.clock.now()
         try:
             response = self._read_registers()
         except ConnectionException as exc:
             return self._bad(t0, Validity.DISCONNECTED, f"{self.name}: {exc}")
         except ModbusIOException as exc:
+            if self.late_window > 0:
+                self._owed_until = time.monotonic() + self.late_window
             return self._bad(t0, Validity.TIMEOUT, f"{self.name}: {exc}")
         except ModbusException as exc:
             return self._bad(t0, Validity.GARBLED, f"{self.name}: {exc}")
         except OSError as exc:
             return self._bad(t0, Validity.DISCONNECTED, f"{self.name}: {exc}")
-        t = 0.5 * (t0 + self.clock.now())
-        if response.isError():
+        return self.interpret(response, 0.5 * (t0 + self.clock.now()))
+
+    def interpret(self, response: Any, t: float) -> Reading:
+        """A decoded response -> Reading (pure, so the fuzz test feeds it decoded frames)."""
+        if response is None or response.isError():
             return self._bad(t, Validity.GARBLED, f"{self.name}: device answered with exception {response!r}")
+        r = self.regmap
+        want_fc = 3 if r.table == "holding" else 4
+        if getattr(response, "function_code", want_fc) != want_fc:
+            return self._bad(t, Validity.GARBLED, f"{self.name}: answer to function "
+                             f"{response.function_code}, asked {want_fc}")
+        if getattr(response, "dev_id", r.device_id) != r.device_id:
+            return self._bad(t, Validity.GARBLED, f"{self.name}: answer from device {response.dev_id}")
         regs = list(getattr(response, "registers", []) or [])
         if len(regs) != self.regmap.count:
             detail = f"{self.name}: {len(regs)} registers, expected {self.regmap.count}"
@@ -114,7 +142,6 @@ class ModbusGauge:
         if not math.isfinite(raw):
             return self._bad(t, Validity.OUT_OF_RANGE, f"{self.name}: register holds {raw}")
         pa = (raw * self.regmap.gain + self.regmap.offset) * self._pa
-        r = self.regmap
         if (r.range_min is not None and pa < r.range_min) or (r.range_max is not None and pa > r.range_max):
             return self._bad(t, Validity.OUT_OF_RANGE, f"{self.name}: {pa:.6g} Pa outside the rated span")
         return Reading(pa, "Pa", t)

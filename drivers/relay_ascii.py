@@ -230,10 +230,12 @@ class AsciiRelayBoard:
         self._check_reply(frame, reply)
 
     def _check_reply(self, frame: bytes, reply: bytes) -> None:
-        text = reply.decode("ascii", "replace").strip()
+        # A refusal is recognised anywhere in the line (fail-safe); an acknowledgement, a mask or a
+        # heartbeat only when the pattern matches the whole line (the transport removed the terminator).
+        text = reply.decode("ascii", "replace")
         if self._error and self._error.search(text):
             raise ProtocolError(self.name, "board refused the command", frame, reply)
-        if self._ack and not self._ack.search(text):
+        if self._ack and not self._ack.fullmatch(text):
             raise ProtocolError(self.name, "unexpected reply", frame, reply)
 
     def read_back(self) -> dict[str, bool] | None:
@@ -242,14 +244,17 @@ class AsciiRelayBoard:
             return None
         frame = self._readback.render()
         reply = self.transport.query(frame)
-        text = reply.decode("ascii", "replace").strip()
-        m = self._readback_re.search(text)
+        text = reply.decode("ascii", "replace")
+        m = self._readback_re.fullmatch(text)
         if not m:
             if self._error and self._error.search(text):
                 raise ProtocolError(self.name, "board refused the read-back", frame, reply)
             raise ProtocolError(self.name, "read-back reply did not parse", frame, reply)
         try:
-            mask = int(m.group("mask"), self.commands.mask_base)
+            digits = m.group("mask") or ""
+            if not digits.isascii() or not digits.isalnum():  # int() would take ' 5', '0_5', '+5'
+                raise ValueError(digits)
+            mask = int(digits, self.commands.mask_base)
         except ValueError as exc:
             raise ProtocolError(self.name, "read-back mask is not a number", frame, reply) from exc
         return {v: bool(mask >> (ch.channel - 1) & 1) != ch.normally_open for v, ch in self.channels.items()}
@@ -270,7 +275,7 @@ class AsciiRelayBoard:
             return False
         frame = self._ping.render()
         reply = self.transport.query(frame)
-        if not re.search(self.commands.ping_reply, reply.decode("ascii", "replace").strip()):
+        if not re.fullmatch(self.commands.ping_reply, reply.decode("ascii", "replace")):
             raise ProtocolError(self.name, "unexpected heartbeat reply", frame, reply)
         return True
 

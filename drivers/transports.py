@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import logging
 import threading
+import time
 from typing import Any, Protocol, runtime_checkable
 
 import serial
@@ -53,21 +54,51 @@ class Transport(Protocol):
 
 
 class _LineQuery:
-    """One command, one reply line, under the transport's lock; logged once either way."""
+    """One command, one reply line, under the transport's lock; logged once either way.
+
+    Late-reply rule.  Line protocols carry no sequence number, so a reply that arrives after its
+    query timed out would otherwise be read as the answer to the next query (an old value,
+    stamped now).  Two things prevent that: on a serial link the input buffer is flushed before
+    every command (a late line already waiting is dropped), and a timed-out query leaves the reply *owed* for
+    one more timeout window: the next query first waits out the rest of that window, discarding
+    the owed line if it comes, and only then sends.  A reply later than twice the timeout is
+    beyond this rule (on a serial link the flush still drops it if it came before the next command);
+    the anchored reply patterns of the drivers are the last line of defence against foreign lines.
+    """
 
     name: str
     lock: threading.RLock
+    timeout: float
+    _owed_until: float | None = None  # monotonic deadline of a timed-out query's late reply
 
     def query(self, data: bytes, timeout: float | None = None) -> bytes:
         with self.lock:
+            self._discard_late(data)
             self._write(data)  # type: ignore[attr-defined]
             try:
                 reply = self.readline(timeout, command=data)  # type: ignore[attr-defined]
             except DeviceError as exc:
+                if isinstance(exc, DeviceTimeout):
+                    window = self.timeout if timeout is None else timeout
+                    self._owed_until = time.monotonic() + window
                 log.debug("%s: sent %r, got %s", self.name, data, type(exc).__name__)
                 raise
             log.debug("%s: sent %r, got %r", self.name, data, reply)
             return reply
+
+    def _discard_late(self, command: bytes) -> None:
+        """Wait out what is left of an owed reply's window and drop the line if it comes."""
+        until, self._owed_until = self._owed_until, None
+        if until is None:
+            return
+        left = until - time.monotonic()
+        if left <= 0:
+            return  # the input flush before the command drops it if it has come
+        try:
+            late = self.readline(left, command=command)  # type: ignore[attr-defined]
+        except DeviceTimeout:
+            return
+        log.debug("%s: dropped late reply %r before sending %r", self.name, late, command)
 
 
 class SerialTransport(_LineQuery):

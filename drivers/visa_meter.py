@@ -20,6 +20,7 @@ from pycnoctl.controller.domain.clock import Clock, WallClock
 from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, DeviceTimeout, Reading, Validity
 from pycnoctl.drivers import registry
 from pycnoctl.drivers.fields import Pressure, Seconds, Signal, Strict
+from pycnoctl.drivers.gauge_ascii import NUMBER
 from pycnoctl.drivers.transports import Transport, VisaTransport
 
 log = logging.getLogger(__name__)
@@ -63,6 +64,16 @@ class LoopScaling:
         return self.to_pressure(signal), Validity.VALID, ""
 
 
+def classify_reply(reply: bytes, scaling: LoopScaling) -> tuple[float, Validity, str]:
+    """One reply message (termination removed by VISA) -> (Pa, validity, detail).  The whole
+    message must be one SCPI decimal number: two numbers, a unit, a stray byte or a cut-off
+    exponent make it GARBLED, never the part that happens to parse."""
+    text = reply.decode("ascii", "replace")
+    if not NUMBER.fullmatch(text):
+        return math.nan, Validity.GARBLED, f"reply {reply!r} is not one number"
+    return scaling.classify(float(text))
+
+
 class VisaTransducerMeter:
     """A PressureSensor: a SCPI meter measuring the transducer output, through a VisaTransport."""
 
@@ -94,12 +105,7 @@ class VisaTransducerMeter:
         except DeviceError as exc:
             return Reading.invalid("Pa", t0, Validity.GARBLED, str(exc))
         t = 0.5 * (t0 + self.clock.now())
-        text = reply.decode("ascii", "replace").strip()
-        try:
-            signal = float(text.split(",")[0])
-        except ValueError:
-            return Reading.invalid("Pa", t, Validity.GARBLED, f"reply {reply!r} is not a number")
-        value, validity, detail = self.scaling.classify(signal)
+        value, validity, detail = classify_reply(reply, self.scaling)
         if validity is not Validity.VALID:
             return Reading.invalid("Pa", t, validity, detail)
         return Reading(value, "Pa", t)

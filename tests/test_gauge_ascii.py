@@ -29,25 +29,34 @@ def classify(text, **kw):
 ])
 def test_units_match_references(unit, pa):
     # reference: scipy.constants (CODATA/NIST unit definitions) unless noted
-    value, validity, _ = classify("P 1.000", unit=unit)
+    value, validity, _ = classify(f"P 1.000 {unit}", unit=unit)
     assert validity is Validity.VALID
     assert value == pytest.approx(pa, rel=1e-9)
 
 
 def test_gain_and_offset():
     # a transducer reporting counts: 0..10000 counts = 0..4 bar, pressure = raw*gain + offset
-    value, validity, _ = classify("P 2500", unit="bar", gain=4.0 / 10000, offset=-0.01)
+    value, validity, _ = classify("P 2500 bar", unit="bar", gain=4.0 / 10000, offset=-0.01)
     assert validity is Validity.VALID
     assert value == pytest.approx((2500 * 4e-4 - 0.01) * sc.bar)
 
 
 @pytest.mark.parametrize(("text", "validity"), [
     ("P NaN kPa", Validity.NAN),
-    ("P nan", Validity.NAN),
+    ("P nan kPa", Validity.NAN),
     ("P OVER kPa", Validity.OUT_OF_RANGE),
-    ("P under", Validity.OUT_OF_RANGE),
-    ("P inf", Validity.OUT_OF_RANGE),
-    ("P 12,3", Validity.GARBLED),
+    ("P under kPa", Validity.OUT_OF_RANGE),
+    ("P 1e999 kPa", Validity.OUT_OF_RANGE),
+    ("P inf kPa", Validity.GARBLED),  # not a decimal number (PROTOCOL.md)
+    ("P 12,3 kPa", Validity.GARBLED),
+    # whole-reply matching: a prefix that parses is not a reading
+    ("P 9 5 kPa", Validity.GARBLED),
+    ("P 12.5", Validity.GARBLED),  # no unit
+    ("P 12.5 bar", Validity.GARBLED),  # not the configured unit
+    ("P 12.5 kPa junk", Validity.GARBLED),
+    (" P 12.5 kPa", Validity.GARBLED),
+    ("P 1_000 kPa", Validity.GARBLED),  # float() would take it
+    ("P 12.5 kPa\n", Validity.GARBLED),  # a terminator left in the line: two lines run together
     ("\x8f#?\x00", Validity.GARBLED),
     ("", Validity.GARBLED),
     ("T 21.0", Validity.GARBLED),
@@ -58,9 +67,9 @@ def test_bad_replies_are_typed(text, validity):
 
 
 def test_rated_span():
-    assert classify("P 401", range_max=400e3)[1] is Validity.OUT_OF_RANGE
-    assert classify("P -6", range_min=-5e3)[1] is Validity.OUT_OF_RANGE
-    assert classify("P 399.9", range_max=400e3)[1] is Validity.VALID
+    assert classify("P 401 kPa", range_max=400e3)[1] is Validity.OUT_OF_RANGE
+    assert classify("P -6 kPa", range_min=-5e3)[1] is Validity.OUT_OF_RANGE
+    assert classify("P 399.9 kPa", range_max=400e3)[1] is Validity.VALID
 
 
 def test_read_is_time_stamped_by_the_instrument_clock_and_never_raises():

@@ -7,6 +7,7 @@ import contextlib
 import os
 import struct
 import threading
+import time
 import tty
 
 import pytest
@@ -39,6 +40,7 @@ class RtuResponder:
         self.unit = unit
         self.registers: dict[int, int] = {}
         self.silent = False
+        self.delay = 0.0  # s before each reply (a late device)
         self.master, slave = os.openpty()
         tty.setraw(slave)
         self.port = os.ttyname(slave)
@@ -66,6 +68,8 @@ class RtuResponder:
                     body = struct.pack(">BBB", unit, fc, 2 * count) + struct.pack(f">{count}H", *words)
                 else:
                     body = struct.pack(">BBB", unit, fc | 0x80, 1)  # illegal function
+                if self.delay:
+                    time.sleep(self.delay)
                 os.write(self.master, body + struct.pack("<H", crc16_modbus(body)))
 
     def close(self) -> None:
@@ -103,5 +107,23 @@ def test_silent_rtu_device_is_a_timeout_not_a_number(responder):
     try:
         r = g.read()
         assert not r.valid and r.validity in (Validity.TIMEOUT, Validity.DISCONNECTED)
+    finally:
+        g.close()
+
+
+def test_late_rtu_reply_is_not_the_next_reading(responder):
+    # RTU frames carry no transaction id: a reply after the timeout must not answer the next request
+    responder.registers = {0: 100}
+    g = ModbusGauge.rtu(responder.port, RegisterMap(address=0, datatype="int16", unit="kPa"), baudrate=115200,
+                        timeout=0.2, clock=ManualClock(0.0))
+    try:
+        responder.delay = 0.3
+        assert g.read().validity is Validity.TIMEOUT  # the device will still answer '100' at 0.3 s
+        responder.delay = 0.0
+        responder.registers = {0: 200}
+        r = g.read()
+        assert r.valid and r.value == pytest.approx(200e3)  # not the late 100 kPa
+        responder.registers = {0: 150}
+        assert g.read().value == pytest.approx(150e3)
     finally:
         g.close()

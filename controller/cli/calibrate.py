@@ -60,7 +60,7 @@ def main(args: argparse.Namespace) -> int:
 
 
 def _calibrate(args: argparse.Namespace, spheres: list[Any], say: Any) -> int:
-    from pycnoctl.controller.cli.common import open_instrument
+    from pycnoctl.controller.cli.common import check_before_opening, open_instrument
     from pycnoctl.controller.jobs.calibration import (
         CalibrationError,
         OperatorCellLoader,
@@ -75,6 +75,7 @@ def _calibrate(args: argparse.Namespace, spheres: list[Any], say: Any) -> int:
     if args.sim is not None and not args.instrument:
         loader: Any = SimCellLoader(args.sim or None, announce=say)
     else:
+        check_before_opening(args, args.sequence, one_volume=False)  # it runs each volume in turn
         instrument = open_instrument(args)
 
         def prompt(text: str) -> None:

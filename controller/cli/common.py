@@ -7,10 +7,14 @@ import logging
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
+from typing import Any
 
 from pycnoctl.controller.cli.main import UsageError
+from pycnoctl.controller.domain.yamlio import ConfigError, Problem
 from pycnoctl.controller.record.datalock import DataFolderBusy, DataLock, acquire
 from pycnoctl.drivers.instrument import Instrument
+
+ROLES = ("valves", "pressure", "thermometer", "barometer")
 
 
 def add_instrument_args(p: argparse.ArgumentParser, *, realtime: bool = True) -> None:
@@ -90,15 +94,99 @@ def lock_data_folder(root: Path, verb: str, *, mark_interrupted: bool = True) ->
             print(f"pycnoctl {verb}: run {', '.join(ids)} was left running by {who}; marked interrupted",
                   file=sys.stderr)
     return lock
+def absent_ports(path: str | Path, cfg: Any) -> list[Problem]:
+    """Serial device paths in an instrument config that do not exist on this machine, positioned.
+
+    Checked before any port is opened, so a missing gauge cannot leave the relay board opened
+    (and its watchdog armed) behind a refusal.  URLs (socket://, loop://) and TCP links are left to
+    the open itself."""
+    from pycnoctl.controller.domain.yamlio import load_file
+
+    doc = load_file(path)
+    out = []
+    for role in ROLES:
+        dev = getattr(cfg, role, None)
+        port = getattr(dev, "port", None)
+        if getattr(dev, "link", "serial") == "tcp" or not isinstance(port, str) or "://" in port:
+            continue
+        if not Path(port).exists():
+            out.append(doc.problem((role, "port"), f"{role}.port: no device at {port} (unplugged, or another path?)"))
+    return out
+
+
+def check_before_opening(args: argparse.Namespace, sequence: str | Path | None,
+                         expansion_volume: str | None = None, *, one_volume: bool = True) -> None:
+    """Everything that can be proved without a device, proved before any device is opened: the
+    instrument config, the ports it names, the sequence file and the sequence against the config's
+    names and limits.  A refusal after opening would already have commanded the valves (closing an
+    instrument asserts the safe state).  one_volume: the run uses the sequence's (or the given)
+    expansion volume, so it must be one the instrument has."""
+    from pycnoctl.controller.run.sequence import (
+        SequenceNotFound,
+        check_against_instrument,
+        load_sequence,
+        resolve_sequence,
+    )
+
+    facts: tuple[list[str], float, str] | None = None
+    if getattr(args, "instrument", None):
+        from pycnoctl.drivers.config import load_instrument_config
+
+        cfg = load_instrument_config(args.instrument)
+        problems = absent_ports(args.instrument, cfg)
+        if problems:
+            raise ConfigError(problems)
+        if cfg.chambers is not None and cfg.limits is not None:
+            facts = list(cfg.chambers.expansion), cfg.limits.max_pressure, cfg.gas
+    elif getattr(args, "sim", None):  # a simulator config file: its problems too, before the data folder
+        from pycnoctl.sim.config import load_sim_config
+
+        try:
+            load_sim_config(args.sim)
+        except FileNotFoundError as exc:
+            raise UsageError(str(exc)) from None
+    if sequence is None:
+        return
+    try:
+        seq = load_sequence(resolve_sequence(sequence))
+    except SequenceNotFound as exc:
+        raise UsageError(str(exc)) from None
+    if facts is None:  # a simulated instrument: prepare() checks against it once it is built
+        return
+    names, max_pressure, gas = facts
+    problems, _ = check_against_instrument(seq, expansion_volumes=names, max_pressure=max_pressure, gas=gas)
+    if problems:
+        raise ConfigError(problems)
+    choice = expansion_volume or seq.expand.volume
+    if one_volume and choice != "auto" and choice not in names:
+        raise UsageError(f"unknown expansion volume {choice!r}; the instrument has: {', '.join(names)}")
+
+
+def _open_failure(path: str | Path, exc: Exception) -> ConfigError:
+    """A device that would not open, reported at its port (or resource) in the instrument config."""
+    from pycnoctl.controller.domain.devices import DeviceError
+    from pycnoctl.controller.domain.yamlio import load_file
+
+    doc = load_file(path)
+    role = exc.device if isinstance(exc, DeviceError) else ""
+    data = doc.data.get(role) if isinstance(doc.data, dict) else None
+    key = next((k for k in ("port", "resource", "host") if isinstance(data, dict) and k in data), None)
+    loc: tuple[str, ...] = (role, key) if role and key else (role,) if role else ()
+    return ConfigError([doc.problem(loc, str(exc))])
 
 
 def open_instrument(args: argparse.Namespace, *, default_sim: bool = False) -> Instrument:
     """The instrument the flags name; config problems exit 2 with file:line:col lines."""
     try:
         if getattr(args, "instrument", None):
+            from pycnoctl.controller.domain.devices import DeviceError
             from pycnoctl.drivers.config import build_instrument, load_instrument_config
 
-            return build_instrument(load_instrument_config(args.instrument))
+            cfg = load_instrument_config(args.instrument)
+            try:
+                return build_instrument(cfg)
+            except (DeviceError, ValueError) as exc:  # a port that will not open, a board it cannot drive
+                raise _open_failure(args.instrument, exc) from None
         if getattr(args, "sim", None) is not None or default_sim:
             from pycnoctl.drivers.simulated import build_sim_instrument
 

@@ -20,6 +20,7 @@ from pycnoctl.controller.cli.common import (
     add_data_arg,
     add_instrument_args,
     add_sample_args,
+    check_before_opening,
     held_log_lines,
     lock_data_folder,
     open_instrument,
@@ -62,6 +63,8 @@ def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.jobs.measurement import data_dir
 
     request = request_from_args(args)
+    # every input proved before the data folder is touched or any device opened
+    check_before_opening(args, request.sequence, request.expansion_volume)
     root = data_dir(args.data)
     lock = lock_data_folder(root, "run")  # before any device is opened: a second writer touches nothing
     try:

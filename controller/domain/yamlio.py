@@ -3,12 +3,14 @@
 Sequence, instrument and simulator files are edited by hand, so a mistake must be reported as
 ``file:line:col: message`` before anything touches hardware, and all mistakes at once.  Loading
 is deliberately strict: no tags, no anchors or aliases (no alias bombs), no duplicate keys,
-UTF-8 only, and a size cap.
+UTF-8 only, a size cap, a nesting cap (PyYAML composes recursively: a few hundred brackets would
+otherwise end in RecursionError), and regular files only (a directory or a FIFO is refused).
 """
 
 from __future__ import annotations
 
 import re
+import stat
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -18,6 +20,7 @@ import yaml
 from pydantic import BaseModel, ValidationError
 
 MAX_BYTES = 256 * 1024
+MAX_DEPTH = 64  # nesting levels; the deepest real file (an instrument config) uses about 5
 
 Loc = tuple[str | int, ...]
 M = TypeVar("M", bound=BaseModel)
@@ -77,7 +80,9 @@ class Document:
 
 
 class _StrictLoader(yaml.SafeLoader):
-    """A SafeLoader that refuses anchors and aliases as soon as it meets them."""
+    """A SafeLoader that refuses anchors, aliases and deep nesting as soon as it meets them."""
+
+    _depth = 0
 
     def compose_node(self, parent: yaml.Node | None, index: int) -> yaml.Node | None:
         if self.check_event(yaml.AliasEvent):
@@ -87,7 +92,13 @@ class _StrictLoader(yaml.SafeLoader):
         anchor = getattr(event, "anchor", None)
         if anchor is not None:
             raise yaml.MarkedYAMLError(None, None, "anchors are not allowed", event.start_mark)
-        return super().compose_node(parent, index)
+        if self._depth >= MAX_DEPTH:
+            raise yaml.MarkedYAMLError(None, None, f"nested deeper than {MAX_DEPTH} levels", event.start_mark)
+        self._depth += 1
+        try:
+            return super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
 
 
 def _pos(mark: yaml.Mark) -> tuple[int, int]:
@@ -162,6 +173,8 @@ def parse_text(text: str, name: str = "<string>") -> Document:
         except yaml.YAMLError as exc:
             line, col = _reader_pos(text, exc)
             raise ConfigError([Problem(name, line, col, _reader_message(exc))]) from None
+        except RecursionError:  # a backstop: the nesting cap should stop it first
+            raise ConfigError([Problem(name, 1, 1, "nested too deeply to read")]) from None
         doc = Document(name, None)
         if root is None:
             raise ConfigError([Problem(name, 1, 1, "the file is empty")])
@@ -179,12 +192,18 @@ def load_file(path: str | Path, max_bytes: int = MAX_BYTES) -> Document:
     p = Path(path)
     name = str(path)
     try:
-        size = p.stat().st_size
+        st = p.stat()
+        if not stat.S_ISREG(st.st_mode):
+            kind = "a directory" if stat.S_ISDIR(st.st_mode) else "a device, pipe or socket"
+            raise ConfigError([Problem(name, 1, 1, f"cannot read: {kind}, not a file")])
+        if st.st_size > max_bytes:
+            raise ConfigError([Problem(name, 1, 1, f"file is {st.st_size} bytes; the limit is {max_bytes}")])
+        with p.open("rb") as fh:
+            raw = fh.read(max_bytes + 1)
     except OSError as exc:
         raise ConfigError([Problem(name, 1, 1, f"cannot read: {exc.strerror or exc}")]) from None
-    if size > max_bytes:
-        raise ConfigError([Problem(name, 1, 1, f"file is {size} bytes; the limit is {max_bytes}")])
-    raw = p.read_bytes()
+    if len(raw) > max_bytes:  # grew since stat
+        raise ConfigError([Problem(name, 1, 1, f"file is over the limit of {max_bytes} bytes")])
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:

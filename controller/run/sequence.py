@@ -643,7 +643,7 @@ def list_shipped() -> dict[str, Path]:
 def resolve_sequence(name_or_path: str | Path) -> Path:
     """An existing file path is used as is; a bare name ('quick-demo' or 'quick-demo.yaml') is shipped."""
     p = Path(name_or_path)
-    if p.is_file():
+    if p.is_file() or p.exists():  # a directory or a device: load_sequence says what it is, as file:1:1
         return p
     text = str(name_or_path)
     if "/" not in text and "\\" not in text:
