@@ -181,7 +181,8 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
     if seq.kind == "leak_check":
         rates = [c.leak_rate_pa_s for c in engine.cycles if math.isfinite(c.leak_rate_pa_s)]
         out["leak_rate_pa_s"] = rates[-1] if rates else None
-        out["leak_ok"] = bool(rates) and -rates[-1] <= seq.leak_check.max_rate
+        # two-sided: a fall is gas leaving, a rise is gas coming in past the closed inlet
+        out["leak_ok"] = bool(rates) and abs(rates[-1]) <= seq.leak_check.max_rate
     if res is not None:
         out.update({
             "volume_cm3": res.volume_m3 * 1e6, "volume_u_cm3": res.U_volume_m3 * 1e6,

@@ -271,7 +271,8 @@ def cycles_rules(v: dict[str, Any]) -> list[Rule]:
 
 
 class LeakCheck(_Strict):
-    """Pressurise, settle, hold closed and fail the run if the pressure falls faster than max_rate."""
+    """Pressurise, settle, hold closed and fail the run if the pressure falls or rises faster than max_rate
+    (a fall: gas leaving through a seal; a rise: gas coming in past the closed inlet)."""
 
     pressure: Pressure = Field(gt=0)
     hold: Duration = Field(gt=0)
