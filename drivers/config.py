@@ -10,6 +10,7 @@ engine runs, with the valve bank always behind a GuardedValveBank.
 from __future__ import annotations
 
 import logging
+import re
 from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -28,6 +29,7 @@ from pydantic import (
 from pycnoctl.controller.domain import units, yamlio
 from pycnoctl.controller.domain.clock import Clock, WallClock
 from pycnoctl.controller.domain.devices import PressureSensor, Thermometer, ValveBank
+from pycnoctl.controller.domain.gas import get_gas
 from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
 from pycnoctl.drivers.gauge_ascii import AsciiGauge, GaugeFormat
 from pycnoctl.drivers.guarded import GuardedValveBank, violations
@@ -100,6 +102,18 @@ def _pressure_unit(unit: str) -> str:
     except units.UnitError:
         raise ValueError(f"{unit!r} is not a pressure unit (e.g. kPa, bar, psi, mbar, torr)") from None
     return unit
+
+
+def _reply_pattern(pattern: str) -> str:
+    """A reply regex must compile and capture the reading as the group 'value': found at load, not
+    as every sample read garbled (or a traceback) once the run has started."""
+    try:
+        rx = re.compile(pattern)
+    except re.error as exc:
+        raise ValueError(f"invalid regular expression {pattern!r}: {exc}") from None
+    if "value" not in rx.groupindex:
+        raise ValueError(f"the pattern {pattern!r} has no group named 'value' (write (?P<value>...))")
+    return pattern
 
 
 class Strict(BaseModel):
@@ -185,6 +199,7 @@ class AsciiGaugeDevice(SerialLink):
     nan_words: list[str] = list(GaugeFormat.nan_words)
 
     _unit_ok = field_validator("unit")(classmethod(lambda cls, u: _pressure_unit(u)))
+    _regex_ok = field_validator("regex")(classmethod(lambda cls, r: _reply_pattern(r)))
 
     def fmt(self) -> GaugeFormat:
         r = self.range or RangeModel()
@@ -204,6 +219,8 @@ class AsciiThermometerDevice(SerialLink):
     unit: str = "degC"
     gain: float = 1.0
     offset: float = 0.0
+
+    _regex_ok = field_validator("regex")(classmethod(lambda cls, r: _reply_pattern(r)))
 
 
 class LoopScaleModel(Strict):
@@ -332,6 +349,15 @@ class InstrumentConfig(Strict):
     pressure_u: Pressure = 20.0
     temperature_u: Temperature = 0.05
     ambient_nominal: Pressure = STANDARD_ATMOSPHERE
+
+    @field_validator("gas")
+    @classmethod
+    def _known_gas(cls, gas: str) -> str:
+        try:
+            get_gas(gas)
+        except ValueError as exc:
+            raise ValueError(str(exc)) from None
+        return gas
 
     @property
     def pressure_is_gauge(self) -> bool:

@@ -327,6 +327,10 @@ class SimConfig(_Strict):
         for k, name in enumerate(self.initial_open):
             if name not in self.valves:
                 out.append((("initial_open", k), f"unknown valve {name!r}"))
+        opened = {self.valves[n].role for n in self.initial_open if n in self.valves}
+        if {"inlet", "vent"} <= opened:  # the combination the valve layer refuses to command
+            out.append((("initial_open",), "the inlet and the vent cannot start open together "
+                        "(supply straight to ambient)"))
         if self.nominal is not None:
             for name in self.nominal.expansion:
                 if name not in self.expansion_volumes().values():
