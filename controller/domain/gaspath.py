@@ -119,6 +119,11 @@ VentTime = Annotated[float, _bounded("duration", "60 s", 600.0)]
 class Limits(BaseModel):
     """Interlock limits; pressures are gauge (above the vented baseline), in Pa.
 
+    What no limit can do: the rules see one sample per sample period, so a step between two samples
+    (a regulator failing wide open behind an unmetered inlet) trips only on the next sample, up to
+    one period's rise (plus the inlet's closing time) above ``max_pressure``. Keep max_pressure below
+    the relief setting by more than that; the relief valve and a metered inlet are the protection.
+
     The one type for limits: the instrument config and the simulator config both load it, the
     interlock rules (controller.run.interlocks) read it.  Each field names the rule that reads it;
     a new rule adds its fields here, with their bounds, and nowhere else.
