@@ -142,6 +142,10 @@ class Restriction(_Strict):
 class Valve(Restriction):
     role: Literal["inlet", "vent", "expansion", "other"] = "other"
     leak: Conductance = 0.0  # past the closed seat
+    # a solenoid valve stays open this long after it is commanded closed (opening is taken as instant):
+    # what the software's trip cannot shorten.  0 s (the default) keeps the shipped benches as they were;
+    # small solenoid valves take some milliseconds (a typical figure, from memory: 5-30 ms).
+    close_time: NonNegDuration = 0.0
 
 
 class Relief(_Strict):
