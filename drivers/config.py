@@ -340,6 +340,7 @@ class InstrumentConfig(Strict):
     pressure: PressureDevice
     thermometer: ThermometerDevice | None = None
     barometer: PressureDevice | None = None
+    supply: PressureDevice | None = None  # a gauge on the supply line, read before the inlet opens
     valve_roles: ValveRolesModel | None = None  # may be omitted when valves are simulated
     forbidden: list[list[str]] | None = None  # sets never open together; default [[inlet, vent]]
     chambers: ChambersModel | None = None
@@ -442,7 +443,7 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
                                  "an overpressure up to the relief would read OUT_OF_RANGE"))
             if lo is not None and hi is not None and lo >= hi:
                 errors.append((("pressure", "range"), "range min must be below max"))
-    sims = {d.config for d in (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer)
+    sims = {d.config for d in (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer, cfg.supply)
             if isinstance(d, SimDevice)}
     if len(sims) > 1:
         found = sorted(map(str, sims))
@@ -503,7 +504,7 @@ def _sim_instrument(cfg: InstrumentConfig, sim_bench: Any, realtime: bool = Fals
         return sim_bench
     from pycnoctl.drivers.simulated import build_sim_instrument
 
-    paths = {d.config for d in (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer)
+    paths = {d.config for d in (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer, cfg.supply)
              if isinstance(d, SimDevice)}
     return build_sim_instrument(next(iter(paths)) if paths else None, realtime=realtime)
 
@@ -511,7 +512,7 @@ def _sim_instrument(cfg: InstrumentConfig, sim_bench: Any, realtime: bool = Fals
 def _pressure_device(dev: Any, role: str, opened: _Opened, clock: Clock, sim: Instrument | None) -> Any:
     if isinstance(dev, SimDevice):
         assert sim is not None
-        return sim.pressure if role == "pressure" else sim.barometer
+        return {"pressure": sim.pressure, "barometer": sim.barometer, "supply": sim.supply}[role]
     if isinstance(dev, AsciiGaugeDevice):
         return AsciiGauge(opened.serial_for(dev, role), fmt=dev.fmt(), name=role, clock=clock,
                           absolute=dev.reference == "absolute")
@@ -548,7 +549,7 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Clock | None = None, sim_b
     errors, _ = cfg.findings()
     if errors:
         raise ValueError("; ".join(f"{'.'.join(map(str, loc)) or '<top>'}: {m}" for loc, m in errors))
-    roles_devices = (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer)
+    roles_devices = (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer, cfg.supply)
     uses_sim = any(isinstance(d, SimDevice) for d in roles_devices)
     sim = _sim_instrument(cfg, sim_bench, realtime) if uses_sim else None
     clk = clock or (sim.clock if sim is not None else WallClock())
@@ -571,6 +572,10 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Clock | None = None, sim_b
         guarded = GuardedValveBank(bank, cfg.forbidden_sets(), roles=roles)
         pressure: PressureSensor = _pressure_device(cfg.pressure, "pressure", opened, clk, sim)
         barometer = _pressure_device(cfg.barometer, "barometer", opened, clk, sim) if cfg.barometer else None
+        supply = _pressure_device(cfg.supply, "supply", opened, clk, sim) if cfg.supply else None
+        if cfg.supply is not None and supply is None:  # a supply check configured must not vanish
+            raise ValueError("supply: {kind: sim} needs a supply gauge in the simulator config "
+                             "(instruments: {supply_gauge: true})")
         thermometer: Thermometer | None = None
         if isinstance(cfg.thermometer, SimDevice):
             thermometer = sim.thermometer if sim is not None else None
@@ -594,7 +599,7 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Clock | None = None, sim_b
         name=cfg.name, valves=guarded, pressure=pressure, clock=clk, roles=roles, chambers=chambers,
         limits=limits, pressure_is_gauge=cfg.pressure_is_gauge if not isinstance(cfg.pressure, SimDevice)
         else (sim.pressure_is_gauge if sim else True),
-        thermometer=thermometer, barometer=barometer, sample_period=cfg.sample_period,
+        thermometer=thermometer, barometer=barometer, supply=supply, sample_period=cfg.sample_period,
         pressure_u=cfg.pressure_u, temperature_u=cfg.temperature_u, ambient_nominal=cfg.ambient_nominal,
         gas=cfg.gas, extras=extras)
 

@@ -193,6 +193,7 @@ class Instruments(_Strict):
     pressure: PressureInstrument = PressureInstrument()
     thermometer: ThermometerInstrument | None = ThermometerInstrument()
     barometer: BarometerInstrument | None = BarometerInstrument()
+    supply_gauge: bool = False  # a gauge on the supply line (reads what the regulator delivers, exactly)
 
 
 class OnOpening(_Strict):

@@ -148,6 +148,9 @@ class Limits(BaseModel):
     # vent_timeout (and the reset): how close to zero counts as vented, and how long a vent may take
     vent_baseline_tolerance: Gauge = 1.0e3
     vent_timeout: VentTime = 60.0
+    # supply_pressure (the engine, before it opens the inlet; only with a supply gauge fitted): the
+    # highest supply gauge pressure at which the inlet may open
+    max_supply_pressure: Gauge | None = None
 
     @field_validator("max_pressure", "invalid_trip_pressure", "closed_inlet_rise", "vent_baseline_tolerance")
     @classmethod

@@ -204,7 +204,25 @@ class RunEngine:
     def on_enter_purge_fill(self) -> None:
         expansion = {v: True for v in self.roles.expansion.values()}
         self._set(**{self.roles.vent: False}, **expansion)
+        self._check_supply()
         self._set(**{self.roles.inlet: True})
+
+    def _check_supply(self) -> None:
+        """Before the inlet opens: the supply gauge, where one is fitted and a limit set, must read
+        valid and at most ``max_supply_pressure``. Why: a regulator that failed wide open between two
+        fills is otherwise met only by the cell's overpressure trip, one sample (and a valve stroke)
+        after the gas is in; read here, the inlet simply stays closed."""
+        sensor = self.instrument.supply
+        limit = self.instrument.limits.max_supply_pressure
+        if sensor is None or limit is None:
+            return
+        r = sensor.read()
+        if not r.valid or not math.isfinite(r.value):
+            raise SequenceFault("supply_pressure", f"supply gauge reading not valid ({r.validity.value}); "
+                                "the inlet stays closed")
+        if r.value > limit:
+            raise SequenceFault("supply_pressure", f"supply at {r.value:.0f} Pa, above max_supply_pressure "
+                                f"{limit:.0f} Pa (a failed or mis-set regulator); the inlet stays closed")
 
     def on_enter_purge_hold(self) -> None:
         self._set(**{self.roles.inlet: False})
@@ -226,6 +244,7 @@ class RunEngine:
         # Every expansion volume is shut during the fill; the chosen one opens at expand.
         self._set(**{self.roles.vent: False})
         self._set(**{v: False for v in self.roles.expansion.values()})
+        self._check_supply()
         self._set(**{self.roles.inlet: True})
 
     def on_enter_settle_filled(self) -> None:

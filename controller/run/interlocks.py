@@ -14,7 +14,7 @@ at valid samples, invalid ones, or both (``sees``).  Adding an interlock: a rule
 place in ``RULES``, its limit field(s) in ``Limits``.
 
 Engine-raised kinds go through ``trip_external`` with the same order: fill_timeout,
-vent_timeout, valve_command_failed, device_error, exception, write_error.
+vent_timeout, valve_command_failed, device_error, exception, write_error, supply_pressure.
 """
 
 from __future__ import annotations
@@ -42,7 +42,10 @@ EXTERNAL_KINDS = (
     "device_error",
     "exception",
     "write_error",
+    "supply_pressure",
 )
+#: Limits fields read by the engine rather than by a rule on the cell's samples.
+ENGINE_LIMITS = ("max_supply_pressure",)
 
 
 @dataclass(slots=True)  # made on every tick: slots, not frozen (a frozen __init__ is markedly slower)
