@@ -114,7 +114,8 @@ def instrument_description(instrument: Instrument) -> dict[str, Any]:
         "gas": instrument.gas,
         "roles": instrument.roles,
         "chambers": instrument.chambers,
-        "limits": instrument.limits,
+        # an optional limit left unset (no supply gauge) is left out of the record
+        "limits": instrument.limits.model_dump(exclude_none=True),
         "pressure_is_gauge": instrument.pressure_is_gauge,
         "pressure_u": instrument.pressure_u,
         "temperature_u": instrument.temperature_u,
