@@ -18,9 +18,12 @@ import logging
 from pathlib import Path
 from typing import Any
 
+from pydantic import field_validator
+
 from pycnoctl.controller.domain import yamlio
 from pycnoctl.controller.domain.clock import WallClock
 from pycnoctl.controller.domain.devices import PressureSensor, Thermometer, ValveBank
+from pycnoctl.controller.domain.gas import get_gas
 from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
 from pycnoctl.drivers import registry
 from pycnoctl.drivers.fields import Pressure, Seconds, Strict, Temperature
@@ -35,7 +38,7 @@ STANDARD_ATMOSPHERE = 101325.0  # Pa (scipy.constants.atm); ambient assumed when
 ValveDevice = registry.device_type(registry.VALVES)
 PressureDevice = registry.device_type(registry.PRESSURE)
 ThermometerDevice = registry.device_type(registry.TEMPERATURE)
-DEVICE_ROLES = ("valves", "pressure", "thermometer", "barometer")
+DEVICE_ROLES = ("valves", "pressure", "thermometer", "barometer", "supply")
 
 
 class InstrumentConfig(Strict):
@@ -46,6 +49,7 @@ class InstrumentConfig(Strict):
     pressure: PressureDevice
     thermometer: ThermometerDevice | None = None
     barometer: PressureDevice | None = None
+    supply: PressureDevice | None = None  # a gauge on the supply line, read before the inlet opens
     valve_roles: ValveRoles | None = None  # may be omitted when valves are simulated
     forbidden: list[list[str]] | None = None  # sets never open together; default [[inlet, vent]]
     chambers: Chambers | None = None
@@ -55,6 +59,12 @@ class InstrumentConfig(Strict):
     pressure_u: Pressure = 20.0
     temperature_u: Temperature = 0.05
     ambient_nominal: Pressure = STANDARD_ATMOSPHERE
+
+    @field_validator("gas")
+    @classmethod
+    def _known_gas(cls, gas: str) -> str:
+        get_gas(gas)  # ValueError names the known gases
+        return gas
 
     @property
     def pressure_is_gauge(self) -> bool:
@@ -141,8 +151,7 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
                                  "an overpressure up to the relief would read OUT_OF_RANGE"))
             if lo is not None and hi is not None and lo >= hi:
                 errors.append((("pressure", "range"), "range min must be below max"))
-    sims = {d.config for d in (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer)
-            if isinstance(d, SimDevice)}
+    sims = {d.config for d in (getattr(cfg, r) for r in DEVICE_ROLES) if isinstance(d, SimDevice)}
     if len(sims) > 1:
         found = sorted(map(str, sims))
         errors.append(((), f"every sim role must use the same simulator config, got {found}"))
@@ -231,6 +240,10 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Any = None, sim_bench: Any
         guarded = GuardedValveBank(bank, cfg.forbidden_sets(), roles=roles)
         pressure: PressureSensor = build("pressure")
         barometer = build("barometer")
+        supply = build("supply")
+        if cfg.supply is not None and supply is None:  # a supply check configured must not vanish
+            raise ValueError("supply: {kind: sim} needs a supply gauge in the simulator config "
+                             "(instruments: {supply_gauge: true})")
         thermometer: Thermometer | None = build("thermometer")
         chambers = cfg.chambers if cfg.chambers else (sim.chambers if sim else None)
         limits = cfg.limits if cfg.limits else (sim.limits if sim else None)
@@ -247,7 +260,7 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Any = None, sim_bench: Any
         name=cfg.name, valves=guarded, pressure=pressure, clock=clk, roles=roles, chambers=chambers,
         limits=limits, pressure_is_gauge=cfg.pressure_is_gauge if not isinstance(cfg.pressure, SimDevice)
         else (sim.pressure_is_gauge if sim else True),
-        thermometer=thermometer, barometer=barometer, sample_period=cfg.sample_period,
+        thermometer=thermometer, barometer=barometer, supply=supply, sample_period=cfg.sample_period,
         pressure_u=cfg.pressure_u, temperature_u=cfg.temperature_u, ambient_nominal=cfg.ambient_nominal,
         gas=cfg.gas, extras=extras)
 

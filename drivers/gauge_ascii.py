@@ -153,6 +153,18 @@ class AsciiGauge:
 
 # -- config ---------------------------------------------------------------------------------------
 
+def reply_pattern(pattern: str) -> str:
+    """A reply regex must compile and capture the reading as the group 'value': found at load, not
+    as every sample read garbled (or a traceback) once the run has started."""
+    try:
+        rx = re.compile(pattern)
+    except re.error as exc:
+        raise ValueError(f"invalid regular expression {pattern!r}: {exc}") from None
+    if "value" not in rx.groupindex:
+        raise ValueError(f"the pattern {pattern!r} has no group named 'value' (write (?P<value>...))")
+    return pattern
+
+
 class AsciiGaugeDevice(SerialLink):
     kind: Literal["ascii_gauge"]
     query: Template = GaugeFormat.query
@@ -166,6 +178,7 @@ class AsciiGaugeDevice(SerialLink):
     nan_words: list[str] = Field(default_factory=lambda: list(GaugeFormat.nan_words))
 
     _unit_ok = field_validator("unit")(classmethod(lambda cls, u: pressure_unit(u)))
+    _regex_ok = field_validator("regex")(classmethod(lambda cls, r: reply_pattern(r)))
 
     def fmt(self) -> GaugeFormat:
         r = self.range or RangeModel()
@@ -185,6 +198,8 @@ class AsciiThermometerDevice(SerialLink):
     unit: str = "degC"
     gain: float = 1.0
     offset: float = 0.0
+
+    _regex_ok = field_validator("regex")(classmethod(lambda cls, r: reply_pattern(r)))
 
 
 def build_gauge(dev: AsciiGaugeDevice, ctx: registry.BuildContext) -> AsciiGauge:

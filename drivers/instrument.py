@@ -31,6 +31,9 @@ class Instrument:
     pressure_is_gauge: bool = True
     thermometer: Thermometer | None = None
     barometer: Barometer | None = None
+    # the supply line's gauge (Pa above ambient) between the regulator and the inlet, where fitted: read
+    # before every inlet opening (limits.max_supply_pressure), so a failed regulator is met by a closed inlet
+    supply: PressureSensor | None = None
     sample_period: float = 0.1  # s between pressure samples
     pressure_u: float = 20.0  # Pa, standard uncertainty of one zeroed reading (Type B, datasheet)
     temperature_u: float = 0.05  # K, standard uncertainty of the gas temperature
@@ -63,7 +66,7 @@ class Instrument:
         """Operator reset after a communication fault: reopen each device that can (by its stable
         path), then assert the safe state. Returns role -> None (ok) or the error; never raises."""
         result: dict[str, str | None] = {}
-        for role in ("valves", "pressure", "thermometer", "barometer"):
+        for role in ("valves", "pressure", "thermometer", "barometer", "supply"):
             dev = getattr(self, role)
             fn = getattr(dev, "reconnect", None) if dev is not None else None
             if fn is None:
@@ -79,7 +82,7 @@ class Instrument:
     def close(self) -> None:
         """Safe state, then release every device (errors on release are logged, not raised)."""
         self.safe_state()
-        devices: list[object] = [self.valves, self.pressure, self.thermometer, self.barometer]
+        devices: list[object] = [self.valves, self.pressure, self.thermometer, self.barometer, self.supply]
         for dev in devices:
             if dev is None:
                 continue

@@ -135,6 +135,17 @@ class SimBarometer(_SimSensor):
         return self._bench.read_barometer()
 
 
+class SimSupplyGauge(_SimSensor):
+    """The supply line's gauge: what the regulator delivers, Pa above ambient (a failed one rising)."""
+
+    unit = "Pa"
+    device = "supply"
+
+    def _sample(self) -> SensorSample:
+        t = self._bench.sync()
+        return SensorSample(t, self._bench.supply_gauge(t), "ok")
+
+
 def _roles(cfg: SimConfig) -> ValveRoles:
     inlet = next(n for n, v in cfg.valves.items() if v.role == "inlet")
     vent = next(n for n, v in cfg.valves.items() if v.role == "vent")
@@ -201,6 +212,7 @@ def build_sim_instrument(
         pressure_is_gauge=bench.pressure_is_gauge,
         thermometer=SimThermometer(bench) if ins.thermometer is not None else None,
         barometer=SimBarometer(bench) if ins.barometer is not None else None,
+        supply=SimSupplyGauge(bench) if ins.supply_gauge else None,
         sample_period=cfg.sample_period,
         pressure_u=max(ins.pressure.noise, ins.pressure.resolution / math.sqrt(12.0), 1.0),
         temperature_u=max(ins.thermometer.noise if ins.thermometer else 0.05, 0.01),

@@ -74,6 +74,7 @@ class SimBench:
         self._frozen: float | None = None
         self._last_p: float | None = None
         self._stuck: dict[str, bool] = {}
+        self._closing: dict[str, float] = {}  # valve -> when its closing stroke ends (close_time)
         self._leak_override: dict[str, float] = {}
         self._commanded = {v: v in cfg.initial_open for v in cfg.valves}
         self._openings = dict.fromkeys(cfg.valves, 0)
@@ -238,6 +239,9 @@ class SimBench:
         sv = self.config.solver
         h = self.net.max_step(min(self._h_next, sv.max_step))
         nxt = self.schedule.next_time(self._t0)
+        ends = [c for c in self._closing.values() if c > self._t0]
+        if ends and (nxt is None or min(ends) < nxt):
+            nxt = min(ends)
         if nxt is not None and self._t0 + h > nxt:
             h = nxt - self._t0
         return max(h, 1e-9)
@@ -322,6 +326,12 @@ class SimBench:
     def _handle_due(self, t: float) -> None:
         for fs, on in self.schedule.due(t):
             self._apply_fault(fs, on, fs.fired_time if on else fs.clear_at)
+        closed = [name for name, end in self._closing.items() if end <= t]
+        if closed:  # a closing stroke has ended: the valve shuts now
+            for name in closed:
+                del self._closing[name]
+            self._apply_valves()
+            self._reset_control()
 
     def _apply_fault(self, fs: FaultState, on: bool, t: float | None) -> None:
         t = self._t0 if t is None else t
@@ -376,7 +386,7 @@ class SimBench:
         net = self.net
         for name, li in self._valve_link.items():
             lk = net.links[li]
-            lk.open = self._stuck.get(name, self._commanded[name])
+            lk.open = self._stuck.get(name, self._commanded[name] or name in self._closing)
             lk.conductance = self._leak_override.get(name, self.config.valves[name].leak)
         net._refresh_active()
 
@@ -396,6 +406,11 @@ class SimBench:
                 if want and not self._commanded[name]:
                     self._openings[name] += 1
                     opened.append(name)
+                close_time = self.config.valves[name].close_time
+                if want:
+                    self._closing.pop(name, None)
+                elif self._commanded[name] and close_time > 0.0:
+                    self._closing[name] = t + close_time
                 self._commanded[name] = want
             for name in opened:
                 self.schedule.valve_opened(name, self._openings[name], t)

@@ -142,6 +142,10 @@ class Restriction(_Strict):
 class Valve(Restriction):
     role: Literal["inlet", "vent", "expansion", "other"] = "other"
     leak: Conductance = 0.0  # past the closed seat
+    # a solenoid valve stays open this long after it is commanded closed (opening is taken as instant):
+    # what the software's trip cannot shorten.  0 s (the default) keeps the shipped benches as they were;
+    # small solenoid valves take some milliseconds (a typical figure, from memory: 5-30 ms).
+    close_time: NonNegDuration = 0.0
 
 
 class Relief(_Strict):
@@ -189,6 +193,7 @@ class Instruments(_Strict):
     pressure: PressureInstrument = PressureInstrument()
     thermometer: ThermometerInstrument | None = ThermometerInstrument()
     barometer: BarometerInstrument | None = BarometerInstrument()
+    supply_gauge: bool = False  # a gauge on the supply line (reads what the regulator delivers, exactly)
 
 
 class OnOpening(_Strict):
@@ -327,6 +332,10 @@ class SimConfig(_Strict):
         for k, name in enumerate(self.initial_open):
             if name not in self.valves:
                 out.append((("initial_open", k), f"unknown valve {name!r}"))
+        opened = {self.valves[n].role for n in self.initial_open if n in self.valves}
+        if {"inlet", "vent"} <= opened:  # the combination the valve layer refuses to command
+            out.append((("initial_open",), "the inlet and the vent cannot start open together "
+                        "(supply straight to ambient)"))
         if self.nominal is not None:
             for name in self.nominal.expansion:
                 if name not in self.expansion_volumes().values():

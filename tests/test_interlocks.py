@@ -372,7 +372,8 @@ def _held_vent(gauge_at, t_end: float, valves=VENTED):
 
 def test_a_vent_that_holds_pressure_trips_vent_timeout_on_the_first_sample_past_the_limit():
     h = Harness()
-    _, trip = h.run(_held_vent(lambda t: 5e3, 2 * LIMITS.vent_timeout))  # a blocked vent at 5 kPa
+    # a blocked vent at 5 kPa on a live gauge (its last digit moving; a bit-identical one is frozen)
+    _, trip = h.run(_held_vent(lambda t: 5e3 + round(t / DT) % 2, 2 * LIMITS.vent_timeout))
     assert trip is not None and trip.kind == "vent_timeout"
     assert trip.t == pytest.approx(LIMITS.vent_timeout, abs=1e-9)  # held >= limit: that very sample
     assert trip.value == pytest.approx(LIMITS.vent_timeout) and trip.limit == LIMITS.vent_timeout
@@ -390,10 +391,12 @@ def test_a_closed_vent_is_not_judged_and_an_inlet_opening_restarts_the_vent_cloc
     assert h.run(_held_vent(lambda t: 5e3, 2 * LIMITS.vent_timeout, CLOSED)) == (None, None)  # held on purpose
     h = Harness()
     half = LIMITS.vent_timeout / 2
-    first = [(round(i * DT, 10), 5e3, VENTED) for i in range(int(half / DT))]
+    # a live gauge (its last digit moving): a bit-identical one would trip frozen when the vent reopens
+    first = [(round(i * DT, 10), 5e3 + i % 2, VENTED) for i in range(int(half / DT))]
     t0 = first[-1][0] + DT
     samples = [*first, (t0, 5e3, {**VENTED, "inlet": True, "vent": False})]
-    samples += [(round(t0 + (i + 1) * DT, 10), 5e3, VENTED) for i in range(int(LIMITS.vent_timeout / DT) + 5)]
+    samples += [(round(t0 + (i + 1) * DT, 10), 5e3 + (i + 1) % 2, VENTED)
+                for i in range(int(LIMITS.vent_timeout / DT) + 5)]
     _, trip = h.run(samples)
     assert trip is not None and trip.kind == "vent_timeout"
     # the clock restarted with the inlet closing again; rounding of the sample times may cost one sample
@@ -401,10 +404,66 @@ def test_a_closed_vent_is_not_judged_and_an_inlet_opening_restarts_the_vent_cloc
 
 
 def test_rules_declare_every_limit_and_read_only_declared_ones():
-    from pycnoctl.controller.run.interlocks import RULES, SAMPLE_KINDS
+    from pycnoctl.controller.run.interlocks import ENGINE_LIMITS, RULES, SAMPLE_KINDS
 
     declared = [f for rule in RULES for f in rule.fields]
-    assert sorted(declared) == sorted(Limits.model_fields)  # each limit belongs to exactly one rule
+    # each limit is read by a rule that declares it, or by the engine (the supply check)
+    assert set(declared) | set(ENGINE_LIMITS) == set(Limits.model_fields)
+    assert not set(declared) & set(ENGINE_LIMITS)
     assert len(set(SAMPLE_KINDS)) == len(RULES)
     assert [r.kind for r in RULES] == ["invalid_pressurised", "overpressure", "stale", "rise_rate", "frozen",
                                        "inlet_leak", "vent_timeout"]
+
+
+# -- frozen after a valve event, inlet leak after a fill -----------------------------------------
+
+def test_a_sensor_frozen_in_a_closed_settle_trips_frozen_one_window_after_the_vent_opens():
+    h = Harness()
+    settle = [(round(k * DT, 10), 80e3, EXPANDED) for k in range(300)]  # frozen, and legitimately quiet
+    assert h.run(settle) == (None, None)
+    t0 = settle[-1][0] + DT
+    vent = [(round(t0 + k * DT, 10), 80e3, VENTED) for k in range(200)]
+    idx, trip = h.run(vent)
+    assert trip is not None and trip.kind == "frozen"
+    assert vent[idx][0] == pytest.approx(t0 + LIMITS.frozen_after, abs=1e-9)
+
+
+def test_a_quiet_gauge_that_moves_after_the_vent_opens_does_not_trip_frozen():
+    h = Harness()
+    assert h.run([(round(k * DT, 10), 80e3, EXPANDED) for k in range(300)]) == (None, None)
+    # one sample later it moves: the expectation is met
+    tail = [(30.0 + k * DT, 80e3 * math.exp(-k * DT / 2.0), VENTED) for k in range(300)]
+    assert h.run(tail) == (None, None)
+
+
+def test_a_valve_opening_on_a_vented_cell_expects_no_change():
+    h = Harness()
+    assert h.run([(round(k * DT, 10), 200.0, CLOSED if k < 50 else EXPANDED) for k in range(300)]) == (None, None)
+
+
+def _after_fill(rise):
+    """Filled to 130 kPa, inlet closed at t=5; then the gauge follows ``rise(t since close)``."""
+    rng = np.random.default_rng(4)
+    out = [(round(k * DT, 10), 26e3 * k * DT, FILLING) for k in range(50)]
+    out += [(round(5.0 + k * DT, 10), 130e3 + rise(k * DT) + rng.normal(0, 15.0), CLOSED) for k in range(400)]
+    return out
+
+
+def test_an_inlet_stuck_open_near_supply_trips_inlet_leak_one_window_after_the_fill():
+    # approaching a 140 kPa supply with tau 4 s: decaying, so the post-expansion test would excuse it
+    h = Harness()
+    _, trip = h.run(_after_fill(lambda t: 10e3 * (1 - math.exp(-t / 4.0))))
+    assert trip is not None and trip.kind == "inlet_leak" and "after the fill" in trip.message
+    assert trip.t == pytest.approx(5.0 + LIMITS.closed_inlet_window, abs=0.15)  # one window after
+
+
+def test_the_gas_cooling_after_a_fill_does_not_trip_inlet_leak():
+    h = Harness()
+    assert h.run(_after_fill(lambda t: -3e3 * (1 - math.exp(-t / 3.0)))) == (None, None)
+
+
+def test_a_bit_identical_reading_with_the_vent_open_above_baseline_is_frozen_not_a_vent_timeout():
+    h = Harness()
+    _, trip = h.run(_held_vent(lambda t: 5e3, 2 * LIMITS.vent_timeout))
+    assert trip is not None and trip.kind == "frozen" and "vent open" in trip.message
+    assert trip.t == pytest.approx(LIMITS.frozen_after, abs=1e-9)

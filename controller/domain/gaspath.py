@@ -148,6 +148,11 @@ VentTime = Annotated[float, _bounded("duration", "60 s", 600.0)]
 class Limits(BaseModel):
     """Interlock limits; pressures are gauge (above the vented baseline), in Pa.
 
+    What no limit can do: the rules see one sample per sample period, so a step between two samples
+    (a regulator failing wide open behind an unmetered inlet) trips only on the next sample, up to
+    one period's rise (plus the inlet's closing time) above ``max_pressure``. Keep max_pressure below
+    the relief setting by more than that; the relief valve and a metered inlet are the protection.
+
     The one type for limits: the instrument config and the simulator config both load it, the
     interlock rules (controller.run.interlocks) read it.  Each field names the rule that reads it;
     a new rule adds its fields here, with their bounds, and nowhere else.
@@ -172,6 +177,9 @@ class Limits(BaseModel):
     # vent_timeout (and the reset): how close to zero counts as vented, and how long a vent may take
     vent_baseline_tolerance: Gauge = 1.0e3
     vent_timeout: VentTime = 60.0
+    # supply_pressure (the engine, before it opens the inlet; only with a supply gauge fitted): the
+    # highest supply gauge pressure at which the inlet may open
+    max_supply_pressure: Gauge | None = None
 
     @field_validator("max_pressure", "invalid_trip_pressure", "closed_inlet_rise", "vent_baseline_tolerance")
     @classmethod

@@ -114,7 +114,8 @@ def instrument_description(instrument: Instrument) -> dict[str, Any]:
         "gas": instrument.gas,
         "roles": instrument.roles,
         "chambers": instrument.chambers,
-        "limits": instrument.limits,
+        # an optional limit left unset (no supply gauge) is left out of the record
+        "limits": instrument.limits.model_dump(exclude_none=True),
         "pressure_is_gauge": instrument.pressure_is_gauge,
         "pressure_u": instrument.pressure_u,
         "temperature_u": instrument.temperature_u,
@@ -181,7 +182,8 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
     if seq.kind == "leak_check":
         rates = [c.leak_rate_pa_s for c in engine.cycles if math.isfinite(c.leak_rate_pa_s)]
         out["leak_rate_pa_s"] = rates[-1] if rates else None
-        out["leak_ok"] = bool(rates) and -rates[-1] <= seq.leak_check.max_rate
+        # two-sided: a fall is gas leaving, a rise is gas coming in past the closed inlet
+        out["leak_ok"] = bool(rates) and abs(rates[-1]) <= seq.leak_check.max_rate
     if res is not None:
         out.update({
             "volume_cm3": res.volume_m3 * 1e6, "volume_u_cm3": res.U_volume_m3 * 1e6,

@@ -205,7 +205,25 @@ class RunEngine:
     def on_enter_purge_fill(self) -> None:
         expansion = {v: True for v in self.roles.expansion.values()}
         self._set(**{self.roles.vent: False}, **expansion)
+        self._check_supply()
         self._set(**{self.roles.inlet: True})
+
+    def _check_supply(self) -> None:
+        """Before the inlet opens: the supply gauge, where one is fitted and a limit set, must read
+        valid and at most ``max_supply_pressure``. Why: a regulator that failed wide open between two
+        fills is otherwise met only by the cell's overpressure trip, one sample (and a valve stroke)
+        after the gas is in; read here, the inlet simply stays closed."""
+        sensor = self.instrument.supply
+        limit = self.instrument.limits.max_supply_pressure
+        if sensor is None or limit is None:
+            return
+        r = sensor.read()
+        if not r.valid or not math.isfinite(r.value):
+            raise SequenceFault("supply_pressure", f"supply gauge reading not valid ({r.validity.value}); "
+                                "the inlet stays closed")
+        if r.value > limit:
+            raise SequenceFault("supply_pressure", f"supply at {r.value:.0f} Pa, above max_supply_pressure "
+                                f"{limit:.0f} Pa (a failed or mis-set regulator); the inlet stays closed")
 
     def on_enter_purge_hold(self) -> None:
         self._set(**{self.roles.inlet: False})
@@ -227,6 +245,7 @@ class RunEngine:
         # Every expansion volume is shut during the fill; the chosen one opens at expand.
         self._set(**{self.roles.vent: False})
         self._set(**{v: False for v in self.roles.expansion.values()})
+        self._check_supply()
         self._set(**{self.roles.inlet: True})
 
     def on_enter_settle_filled(self) -> None:
@@ -274,11 +293,22 @@ class RunEngine:
             self._fire("purge_held")
 
     def _step_purge_vent(self, s: Sample) -> None:
+        """A pulse's vent lasts ``purge.vent`` and must also reach the vented baseline (the sequence's
+        vent tolerance and time-out): a vent stuck closed would otherwise pass a purge unnoticed."""
         purge = self.seq.purge
-        if self._elapsed() >= purge.vent:
-            self._purge_pulse += 1
-            self.emit("purge_pulse", {"pulse": self._purge_pulse, "of": purge.pulses})
-            self._fire("pulsed")
+        vent = self.seq.vent
+        if self._elapsed() < purge.vent:
+            return
+        if not (math.isfinite(s.gauge) and abs(s.gauge) <= vent.baseline_tolerance):
+            if self._elapsed() > max(vent.timeout, purge.vent):
+                shown = f"{s.gauge:.0f} Pa" if math.isfinite(s.gauge) else "no valid pressure"
+                raise SequenceFault("vent_timeout", f"purge pulse {self._purge_pulse + 1}: vent did not return to "
+                                    f"ambient within {max(vent.timeout, purge.vent):g} s ({shown}; tolerance "
+                                    f"{vent.baseline_tolerance:.0f} Pa)")
+            return
+        self._purge_pulse += 1
+        self.emit("purge_pulse", {"pulse": self._purge_pulse, "of": purge.pulses})
+        self._fire("pulsed")
 
     def _step_vent(self, s: Sample) -> None:
         vent = self.seq.vent
@@ -304,13 +334,17 @@ class RunEngine:
             if self._now - self.t_state <= settle.max_time + self._grace:  # inline: runs every sample
                 return
             status = SettleStatus.TIMED_OUT
-        if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
+        leaking_in = status is SettleStatus.TIMED_OUT and self._rising_before_leak_check()
+        if leaking_in:
+            pass  # the leak hold measures that rise and fails the check
+        elif status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
             raise SequenceFault("settle_timeout", f"the vented system did not settle within {settle.max_time:g} s "
                                 f"(drift {self.meter.drift:.3g} Pa/s) - a leaking inlet or a thermal transient")
         zero = self.meter.zero
         assert zero is not None
         counts = self.cycle_number + 1 > self.seq.cycles.discard  # discarded cycles may start unsettled
-        if abs(zero.value) > self.seq.vent.baseline_tolerance and counts and "baseline" not in self._warned:
+        if abs(zero.value) > self.seq.vent.baseline_tolerance and counts and "baseline" not in self._warned \
+                and not leaking_in:  # not a vent's cooled gas: said above
             self._warned.add("baseline")
             self.warnings.append(
                 f"cycle {self.cycle_number + 1}: the closed, vented system settled {zero.value:.0f} Pa above "
@@ -318,6 +352,20 @@ class RunEngine:
                 "lets it reach the wall temperature while still open (the volume stays right either way)")
             self.emit("warning", {"message": self.warnings[-1]})
         self._fire("zeroed")
+
+    def _rising_before_leak_check(self) -> bool:
+        """A leak check's closed, vented system still rising at its time limit: gas coming in past the
+        inlet, which is what the check is for. Its zero is taken as it stands (flagged) and the run goes
+        on to the hold, whose rate then fails the check, instead of ending as a settle time-out."""
+        if self.seq.kind != "leak_check" or not self.meter.drift > 0:
+            return False
+        if not self.meter.give_up():
+            return False
+        note = ("the closed, vented system was still rising at the baseline's time limit "
+                f"({self.meter.drift:.3g} Pa/s): gas leaking in; the hold measures it")
+        self.warnings.append(note)
+        self.emit("warning", {"message": note})
+        return True
 
     def _step_fill(self, s: Sample) -> None:
         target = self._fill_target()  # gauge above ambient, as the sequence states it
@@ -366,7 +414,7 @@ class RunEngine:
             cyc = self.current
             assert cyc is not None
             cyc.leak_rate_pa_s = self.meter.leak_rate
-            if -cyc.leak_rate_pa_s > self.seq.leak_check.max_rate:
+            if abs(cyc.leak_rate_pa_s) > self.seq.leak_check.max_rate:  # out through a seal, or in past the inlet
                 cyc.flags.append("leak")
             self._fire("held")
 

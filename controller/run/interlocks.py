@@ -14,7 +14,7 @@ at valid samples, invalid ones, or both (``sees``).  Adding an interlock: a rule
 place in ``RULES``, its limit field(s) in ``Limits``.
 
 Engine-raised kinds go through ``trip_external`` with the same order: fill_timeout,
-vent_timeout, valve_command_failed, device_error, exception, write_error.
+vent_timeout, valve_command_failed, device_error, exception, write_error, supply_pressure.
 """
 
 from __future__ import annotations
@@ -42,7 +42,10 @@ EXTERNAL_KINDS = (
     "device_error",
     "exception",
     "write_error",
+    "supply_pressure",
 )
+#: Limits fields read by the engine rather than by a rule on the cell's samples.
+ENGINE_LIMITS = ("max_supply_pressure",)
 
 
 @dataclass(slots=True)  # made on every tick: slots, not frozen (a frozen __init__ is markedly slower)
@@ -98,6 +101,8 @@ class Seen:
     valves: dict[str, bool] | None = None
     valves_changed_at: float = -math.inf
     valve_changes: int = 0
+    opened_now: bool = False  # a valve went from closed to open on this observation
+    inlet_closed_last: bool = False  # the last valve change closed the inlet and changed nothing else
 
 
 def _bits(x: float) -> bytes:
@@ -239,28 +244,50 @@ class RiseRate(Rule):
 
 
 class Frozen(Rule):
-    """The raw reading bit-identical for ``frozen_after`` s while the inlet is open."""
+    """The raw reading bit-identical for ``frozen_after`` s while the pressure must be changing.
+
+    Why these moments and no others: a quiet, quantised gauge on a closed, settled volume may
+    legitimately repeat its reading, but the pressure must move (1) while the inlet is open (the
+    supply is always above the cell: a fill that reached it would have tripped overpressure), and
+    (2) while the vent is open and the gauge differs from ambient by more than
+    ``vent_baseline_tolerance`` (gas is leaving; a vent stuck closed still shows a live gauge's
+    noise and the gas's thermal relaxation, so it stays the vent time-out's), and (3)
+    after any valve opens while the gauge differs from ambient by more than
+    ``vent_baseline_tolerance``: a vent or an expansion volume at ambient takes gas from the cell at
+    once, so the reading must change within ``frozen_after`` of that event.  (2) and (3) catch a
+    sensor that froze during a closed settle at the next valve event, instead of as a vent time-out.
+    """
 
     kind = "frozen"
-    fields = ("frozen_after",)
+    fields = ("frozen_after", "vent_baseline_tolerance")
 
     def __init__(self, limits: Limits, tuning: Tuning) -> None:
         super().__init__(limits, tuning)
         self.bits: bytes | None = None
         self.since = math.nan
+        self.expect: float | None = None  # a valve opened at this time on a pressurised cell
 
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
         bits = _bits(float(obs.reading.value))
         if bits != self.bits:
             self.bits, self.since = bits, seen.t
-        if seen.inlet_open_since is None:
+            self.expect = None  # it moved
+        elif seen.opened_now and abs(float(obs.gauge)) > self.limits.vent_baseline_tolerance \
+                and self.expect is None:
+            self.expect = seen.t
+        venting = seen.vented_since if abs(float(obs.gauge)) > self.limits.vent_baseline_tolerance else None
+        starts = [x for x in (seen.inlet_open_since, venting, self.expect) if x is not None]
+        if not starts:
             return None
-        held = seen.t - max(self.since, seen.inlet_open_since)
+        held = seen.t - max(self.since, min(starts))
         limit = self.limits.frozen_after
         if not held >= limit:
             return None
-        return _Condition(self.kind, f"reading bit-identical ({obs.reading.value!r}) for {held:.3g} s"
-                          " with the inlet open", held, limit)
+        why = ("with the inlet open" if seen.inlet_open_since is not None else
+               "with the vent open above the vented baseline" if venting is not None else
+               "after a valve opened on a pressurised cell")
+        return _Condition(self.kind, f"reading bit-identical ({obs.reading.value!r}) for {held:.3g} s {why}"
+                          f" (phase {obs.phase})", held, limit)
 
 
 class InletLeak(Rule):
@@ -276,6 +303,12 @@ class InletLeak(Rule):
     2.2 W rises by at most A(1 - exp(-W/tau)) < 0.37 A within a window, so it can only trip when its
     whole amplitude exceeds about 2.7 x closed_inlet_rise.  The leak rates caught are those above
     closed_inlet_rise / W (400 Pa/s with the defaults).
+
+    After a fill (the last valve change closed the inlet and nothing else) the persistence test is
+    not asked: gas compressed by the fill is warmer than the wall and only cools, so the pressure can
+    only fall; a rise of closed_inlet_rise is gas still coming in.  An inlet stuck open near its
+    supply pressure rises ever more slowly (an approach to the supply, not a constant flow), which
+    the persistence test would excuse as rewarming; here it trips one window after the fill.
     """
 
     kind = "inlet_leak"
@@ -315,12 +348,13 @@ class InletLeak(Rule):
             return None
         s1 = _slope(ts[first], ps[first])
         s2 = _slope(ts[~first], ps[~first])
-        if not (s1 > 0 and s2 >= self.persist * s1):
+        if not seen.inlet_closed_last and not (s1 > 0 and s2 >= self.persist * s1):
             return None  # decaying rise: gas rewarming, not a leak
         return _Condition(
             self.kind,
             f"pressure rose {rise:.6g} Pa in {w:.3g} s with the inlet commanded closed and no valve change"
-            f" (rate {s2:.6g} Pa/s, not decaying)",
+            f" (rate {s2:.6g} Pa/s, {'after the fill' if seen.inlet_closed_last else 'not decaying'};"
+            f" phase {obs.phase})",
             rise,
             lim.closed_inlet_rise,
         )
@@ -500,7 +534,13 @@ class InterlockMonitor:
         t = seen.t = float(obs.t)
         valves = obs.valves
         inlet_open = seen.inlet_open = bool(valves.get(self._inlet, False))
+        seen.opened_now = False
         if seen.valves != valves:
+            if seen.valves is not None:
+                before = seen.valves
+                seen.opened_now = any(v and not before.get(k, False) for k, v in valves.items())
+                changed = {k for k, v in valves.items() if before.get(k) != v}
+                seen.inlet_closed_last = changed == {self.roles.inlet} and not inlet_open
             seen.valves_changed_at = t
             seen.valves = dict(valves)  # a copy only when something changed: this runs on every sample
             seen.valve_changes += 1

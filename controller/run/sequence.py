@@ -91,6 +91,7 @@ def _adapter(parse: Callable[[Any], float]) -> Callable[[Any], float]:
 
 Pressure = Annotated[float, BeforeValidator(_adapter(units.parse_pressure))]  # Pa, bare number = bar
 Duration = Annotated[float, BeforeValidator(_adapter(units.parse_duration))]  # s, bare number = s
+MAX_TIMEOUT = 3600.0  # s: the longest fill or vent time-out that still protects
 Volume = Annotated[float, BeforeValidator(_adapter(units.parse_volume))]  # m^3, bare number = cm^3
 Rate = Annotated[float, BeforeValidator(_adapter(units.parse_rate))]  # Pa/s, bare number = Pa/s
 Fraction = Annotated[float, BeforeValidator(_adapter(units.parse_fraction))]  # 1, '0.05 %' = 5e-4
@@ -140,7 +141,9 @@ class Fill(_Strict):
     """Charge the sample cell to the gauge target P1."""
 
     target: Pressure = Field(gt=0)
-    timeout: Duration = Field(60.0, gt=0)
+    # a fill not at its target within an hour is a closed cylinder or a failed regulator; a longer
+    # time-out (1e12 s) would switch the fill_timeout interlock off without a word
+    timeout: Duration = Field(60.0, gt=0, le=MAX_TIMEOUT)
     overshoot: Pressure = Field(5000.0, ge=0)  # 0.05 bar
 
     @model_validator(mode="after")
@@ -211,7 +214,7 @@ class Vent(_Strict):
     """Return to the vented baseline between cycles."""
 
     time: Duration = Field(5.0, gt=0)
-    timeout: Duration = Field(60.0, gt=0)
+    timeout: Duration = Field(60.0, gt=0, le=MAX_TIMEOUT)  # beyond an hour: the vent time-out is off
     baseline_tolerance: Pressure = Field(1000.0, gt=0)  # 1 kPa
 
     @model_validator(mode="after")
@@ -271,7 +274,8 @@ def cycles_rules(v: dict[str, Any]) -> list[Rule]:
 
 
 class LeakCheck(_Strict):
-    """Pressurise, settle, hold closed and fail the run if the pressure falls faster than max_rate."""
+    """Pressurise, settle, hold closed and fail the run if the pressure falls or rises faster than max_rate
+    (a fall: gas leaving through a seal; a rise: gas coming in past the closed inlet)."""
 
     pressure: Pressure = Field(gt=0)
     hold: Duration = Field(gt=0)

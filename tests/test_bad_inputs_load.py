@@ -1,0 +1,75 @@
+"""Inputs that used to load without a word and would misread or switch off a protection: a gauge reply
+pattern without its 'value' group or not a regex at all, an unknown gas in the instrument config, a
+simulator that starts with the inlet and the vent open together, a fill time-out of 1e12 s. Each is
+refused at load with file:line:col, so by `check` and by `run` alike (exit 2, no traceback)."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+
+from pycnoctl.controller.cli.main import main
+from pycnoctl.sim.config import DEFAULT_CONFIG
+
+ROOT = Path(__file__).resolve().parents[1]
+GAUGE = ROOT / "drivers" / "instruments" / "usb-relay-serial-gauge.yaml"
+SIMULATED = ROOT / "drivers" / "instruments" / "simulated.yaml"
+QUICK = ROOT / "sequences" / "quick-demo.yaml"
+REGEX = r"  regex: '^P (?P<value>\S+) (?P<unit>\S+)$'"
+
+
+def variant(tmp_path: Path, src: Path, old: str, new: str, name: str) -> Path:
+    text = src.read_text(encoding="utf-8")
+    assert old in text, f"{old!r} not in {src}"
+    out = tmp_path / name
+    out.write_text(text.replace(old, new, 1), encoding="utf-8")
+    return out
+
+
+def line_col(path: Path, needle: str) -> tuple[int, int]:
+    for n, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
+        if needle in line:
+            return n, len(line) - len(line.lstrip()) + 1
+    raise AssertionError(f"{needle!r} not in {path}")
+
+
+def cases(tmp_path: Path) -> list[tuple[str, list[str], Path, str, str]]:
+    """(name, the argument that carries the file, the bad file, the key it must point at, words)."""
+    nogroup = variant(tmp_path, GAUGE, REGEX, r"  regex: '^P (\S+) (?P<unit>\S+)$'", "nogroup.yaml")
+    badrx = variant(tmp_path, GAUGE, REGEX, r"  regex: '^P (?P<value>\S+ (?P<unit>\S+)$'", "badrx.yaml")
+    gas = tmp_path / "gas.yaml"
+    gas.write_text(SIMULATED.read_text(encoding="utf-8") + "gas: unobtainium\n", encoding="utf-8")
+    sim = variant(tmp_path, DEFAULT_CONFIG, "initial_open: [vent, exp_small, exp_large]",
+                  "initial_open: [inlet, vent]", "sim.yaml")
+    fill = variant(tmp_path, QUICK, "  timeout: 30 s\n  overshoot", "  timeout: 1e12 s\n  overshoot", "fill.yaml")
+    return [
+        ("gauge pattern without its group", ["--instrument", str(nogroup)], nogroup, "regex: '^P",
+         "no group named 'value'"),
+        ("gauge pattern not a regex", ["--instrument", str(badrx)], badrx, "regex: '^P", "invalid regular expression"),
+        ("unknown gas", ["--instrument", str(gas)], gas, "gas:", "unknown gas 'unobtainium'"),
+        ("inlet and vent open at start", ["--sim", str(sim)], sim, "initial_open:", "inlet and the vent"),
+        ("fill time-out of 1e12 s", [], fill, "timeout: 1e12", "less than or equal to 3600"),
+    ]
+
+
+@pytest.mark.parametrize("verb", ["check", "run"])
+@pytest.mark.parametrize("index", range(5))
+def test_refused_at_load_with_file_line_col(tmp_path, capsys, verb, index):
+    name, opts, bad, key, words = cases(tmp_path)[index]
+    seq = str(bad) if bad.name == "fill.yaml" else "quick-demo"
+    if verb == "run" and not opts:
+        opts = ["--sim"]
+    tail = ["--no-dry-run"] if verb == "check" else ["--quiet", "--data", str(tmp_path / "d")]
+    args = [verb, seq, *opts, *tail]
+    rc = main(args)
+    out = capsys.readouterr()
+    assert rc == 2, (name, out.err)
+    assert "Traceback" not in out.err + out.out
+    line, col = line_col(bad, key)
+    hit = [ln for ln in out.err.splitlines() if words in ln]
+    assert hit, (name, out.err)
+    m = re.match(r"(.+):(\d+):(\d+): ", hit[0])
+    assert m and Path(m.group(1)).name == bad.name and (int(m.group(2)), int(m.group(3))) == (line, col), hit[0]
+    assert not (tmp_path / "d" / "runs").exists()  # nothing ran
