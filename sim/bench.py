@@ -239,9 +239,10 @@ class SimBench:
         sv = self.config.solver
         h = self.net.max_step(min(self._h_next, sv.max_step))
         nxt = self.schedule.next_time(self._t0)
-        ends = [c for c in self._closing.values() if c > self._t0]
-        if ends and (nxt is None or min(ends) < nxt):
-            nxt = min(ends)
+        if self._closing:  # a valve still closing: step to the end of its stroke
+            ends = [c for c in self._closing.values() if c > self._t0]
+            if ends and (nxt is None or min(ends) < nxt):
+                nxt = min(ends)
         if nxt is not None and self._t0 + h > nxt:
             h = nxt - self._t0
         return max(h, 1e-9)
@@ -326,6 +327,8 @@ class SimBench:
     def _handle_due(self, t: float) -> None:
         for fs, on in self.schedule.due(t):
             self._apply_fault(fs, on, fs.fired_time if on else fs.clear_at)
+        if not self._closing:  # the usual case: no valve mid-stroke (every step asks)
+            return
         closed = [name for name, end in self._closing.items() if end <= t]
         if closed:  # a closing stroke has ended: the valve shuts now
             for name in closed:

@@ -266,20 +266,21 @@ class Frozen(Rule):
         self.bits: bytes | None = None
         self.since = math.nan
         self.expect: float | None = None  # a valve opened at this time on a pressurised cell
+        self.tolerance = limits.vent_baseline_tolerance  # read on every sample
 
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
         bits = _bits(float(obs.reading.value))
+        pressurised = abs(float(obs.gauge)) > self.tolerance
         if bits != self.bits:
             self.bits, self.since = bits, seen.t
             self.expect = None  # it moved
-        elif seen.opened_now and abs(float(obs.gauge)) > self.limits.vent_baseline_tolerance \
-                and self.expect is None:
+        elif seen.opened_now and pressurised and self.expect is None:
             self.expect = seen.t
-        venting = seen.vented_since if abs(float(obs.gauge)) > self.limits.vent_baseline_tolerance else None
-        starts = [x for x in (seen.inlet_open_since, venting, self.expect) if x is not None]
-        if not starts:
+        venting = seen.vented_since if pressurised else None
+        inlet = seen.inlet_open_since
+        if inlet is None and venting is None and self.expect is None:  # nothing expects a change: most samples
             return None
-        held = seen.t - max(self.since, min(starts))
+        held = seen.t - max(self.since, min(x for x in (inlet, venting, self.expect) if x is not None))
         limit = self.limits.frozen_after
         if not held >= limit:
             return None
