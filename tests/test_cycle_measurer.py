@@ -103,3 +103,30 @@ def test_leak_rate_is_the_slope_of_the_hold() -> None:
     for i in range(50):
         meter.feed("leak_hold", Row(10.0 + 0.1 * i, 1e5 - 2.0 * 0.1 * i, PA, 295.0))
     assert meter.leak_rate == pytest.approx(-2.0, rel=1e-9)
+
+
+def test_drift_fit_picks_the_same_time_constant_as_a_plain_scan() -> None:
+    # The variable-projection grid search must choose what fitting every grid point in full would
+    # (numpy.linalg.lstsq per tau, the plain reference) and give the same slope.
+    import numpy as np
+
+    from pycnoctl.controller.maths.cycle import linear_drift
+
+    rng = np.random.default_rng(11)
+    for _ in range(60):
+        n = int(rng.integers(8, 300))
+        t = np.sort(rng.uniform(0.0, rng.uniform(2.0, 200.0), n))
+        p = (1e5 + rng.normal(0, 500) * np.exp(-t / rng.uniform(0.2, 100.0)) + rng.normal(0, 2) * t
+             + rng.normal(0, rng.uniform(0.1, 20.0), n))
+        ts = t - t[0]
+        best = None
+        for tau in np.geomspace(0.1, 3.0 * float(ts[-1]), 60):
+            x = np.column_stack([np.ones(n), ts, np.exp(-ts / tau)])
+            coef = np.linalg.lstsq(x, p, rcond=None)[0]
+            r = p - x @ coef
+            if best is None or float(r @ r) < best[0]:
+                best = (float(r @ r), float(tau), float(coef[1]))
+        d = linear_drift(t.tolist(), p.tolist())
+        assert d is not None and best is not None
+        assert d.tau == best[1]
+        assert d.slope == pytest.approx(best[2], rel=1e-9, abs=1e-12)

@@ -140,17 +140,24 @@ def linear_drift(t: list[float], p: list[float]) -> Drift | None:
     span = float(ts[-1])
     if not span > 0:
         return None
-    # every time constant of the grid at once: one stacked least-squares (SVD) solve, not 60 calls
+    # Variable projection over the grid of time constants: the constant and the slope are projected
+    # out once, so each tau leaves a one-column fit (all 60 in a few array operations); the chosen
+    # tau is then fitted in full.
     taus = np.geomspace(0.1, 3.0 * span, 60)
-    xs = np.empty((taus.size, n, 3))
-    xs[:, :, 0] = 1.0
-    xs[:, :, 1] = ts
-    xs[:, :, 2] = np.exp(-ts[None, :] / taus[:, None])
-    coefs = np.linalg.pinv(xs) @ ps
-    resid = ps - np.einsum("knj,kj->kn", xs, coefs)
-    ssrs = np.einsum("kn,kn->k", resid, resid)
+    q, _ = np.linalg.qr(np.column_stack([np.ones(n), ts]))
+    r0 = ps - q @ (q.T @ ps)
+    e = np.exp(-ts[None, :] / taus[:, None])
+    e_perp = e - (e @ q) @ q.T
+    ee = np.einsum("kn,kn->k", e_perp, e_perp)
+    er = e_perp @ r0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ssrs = float(r0 @ r0) - np.where(ee > 0.0, er * er / ee, 0.0)
     k = int(np.argmin(ssrs))  # the first of equal minima, as a scan keeping strict improvements would
-    ssr, tau, coef, x = float(ssrs[k]), float(taus[k]), coefs[k], xs[k]
+    tau = float(taus[k])
+    x = np.column_stack([np.ones(n), ts, e[k]])
+    coef = np.linalg.lstsq(x, ps, rcond=None)[0]
+    r = ps - x @ coef
+    ssr = float(r @ r)
     cov = ssr / (n - 4) * np.linalg.pinv(x.T @ x)
     change = 1.0 - math.exp(-span / tau)  # the exponential column runs from 1 to exp(-span/tau)
     return Drift(float(coef[1]), math.sqrt(max(float(cov[1, 1]), 0.0)), tau, float(coef[2]) * change,
