@@ -223,16 +223,20 @@ class CycleMeasurer:
     # ----- the feed ---------------------------------------------------------------------------
     def feed(self, state: str, row: Row) -> SettleStatus | None:
         """One row in the given state; in a settle state, the detector's status after it."""
+        return self.take_sample(state, row.t, row.gauge, row.ambient, row.temp_k)
+
+    def take_sample(self, state: str, t: float, gauge: float, ambient: float, temp_k: float) -> SettleStatus | None:
+        """feed() with the row's fields as arguments: the live engine's per-sample path builds no Row."""
         if state != self._state:
             self._leave(self._state, state)
             self._enter(state)
             self._state = state
-        self._last_t = row.t
+        self._last_t = t
         if state in _SETTLES:
-            return self._settle_row(row)
-        if state == _LEAK_HOLD and math.isfinite(row.gauge):
-            self._leak[0].append(row.t)
-            self._leak[1].append(row.gauge)
+            return self._settle_row(t, gauge, ambient, temp_k)
+        if state == _LEAK_HOLD and math.isfinite(gauge):
+            self._leak[0].append(t)
+            self._leak[1].append(gauge)
         return None
 
     def passes(self, state: str, t: float) -> bool:
@@ -303,21 +307,22 @@ class CycleMeasurer:
         self._open = False
         self._det = None
 
-    def _settle_row(self, row: Row) -> SettleStatus:
+    def _settle_row(self, t: float, gauge: float, ambient: float, temp_k: float) -> SettleStatus:
         det = self._det
         assert det is not None
         if not self._open:
             return det.status
+        finite = math.isfinite(gauge)
         if self._state == _BASELINE:
-            if math.isfinite(row.gauge):
-                self._window.append((row.ambient, row.temp_k))
+            if finite:
+                self._window.append((ambient, temp_k))
         else:
-            if math.isfinite(row.temp_k):
-                self._temps.append(row.temp_k)
-            if math.isfinite(row.gauge):
-                self._trace[0].append(row.t)
-                self._trace[1].append(row.gauge)
-        status = det.feed(row.t, row.gauge) if math.isfinite(row.gauge) else SettleStatus.WAITING
+            if math.isfinite(temp_k):
+                self._temps.append(temp_k)
+            if finite:
+                self._trace[0].append(t)
+                self._trace[1].append(gauge)
+        status = det.feed(t, gauge) if finite else SettleStatus.WAITING
         if status is not SettleStatus.WAITING:
             self._take(timed_out=status is SettleStatus.TIMED_OUT)
         return status

@@ -159,7 +159,12 @@ _UNSET = object()  # a field whose text has not been made yet
 
 def _write_all(fh: Any, data: bytes) -> None:
     """All of data to an unbuffered file (a raw write may take only part of it)."""
-    view = memoryview(data)
+    n = fh.write(data)
+    if n == len(data):  # nearly always: one row is far below a pipe's or a disk's atomic size
+        return
+    if not n:
+        raise OSError(f"write to {getattr(fh, 'name', fh)!r} took no bytes")
+    view = memoryview(data)[n:]
     while view:
         n = fh.write(view)
         if not n:

@@ -23,7 +23,7 @@ from pycnoctl.controller.domain.devices import Reading
 from pycnoctl.controller.domain.states import TERMINAL as STATES_TERMINAL
 from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.maths import results
-from pycnoctl.controller.maths.cycle import CycleData, CycleMeasurer, CyclePlan, Row
+from pycnoctl.controller.maths.cycle import CycleData, CycleMeasurer, CyclePlan
 from pycnoctl.controller.maths.settle import SettleCriteria, SettleStatus
 from pycnoctl.drivers.instrument import Instrument
 
@@ -274,7 +274,7 @@ class RunEngine:
                 self._status = None
             else:
                 temp = s.temperature.value if s.temperature is not None and s.temperature.valid else math.nan
-                self._status = self.meter.feed(state, Row(s.t, s.gauge, s.ambient, temp))
+                self._status = self.meter.take_sample(state, s.t, s.gauge, s.ambient, temp)
             step(s)
 
     def _elapsed(self) -> float:

@@ -10,7 +10,8 @@ restarts anything.
 Each rule is one small class below: the limit fields it reads (declared in
 ``controller.domain.gaspath.Limits``), its check and its message.  ``RULES`` gives their order;
 the first rule that trips on an observation wins and the later ones do not see it.  A rule looks
-at valid samples, invalid ones, or both (``sees``).  Adding an interlock: a rule class here, its
+at valid samples, invalid ones, or both (``sees``), and may say in which valve configurations it
+can trip at all (``armed``, asked only when the valves change).  Adding an interlock: a rule class here, its
 place in ``RULES``, its limit field(s) in ``Limits``.
 
 Engine-raised kinds go through ``trip_external`` with the same order: fill_timeout,
@@ -105,8 +106,7 @@ class Seen:
     inlet_closed_last: bool = False  # the last valve change closed the inlet and changed nothing else
 
 
-def _bits(x: float) -> bytes:
-    return struct.pack("<d", x)
+_bits = struct.Struct("<d").pack  # the raw IEEE-754 bytes of a reading, for the frozen rule
 
 
 def _slope(t: np.ndarray, p: np.ndarray) -> float:
@@ -145,6 +145,15 @@ class Rule:
     kind: ClassVar[str]
     fields: ClassVar[tuple[str, ...]]  # the Limits fields this rule reads
     sees: ClassVar[str] = "valid"  # which samples it is asked about: "valid", "invalid" or "both"
+
+    @staticmethod
+    def armed(seen: Seen) -> bool:
+        """Whether the rule can trip with the valves as they are now (``seen`` after a valve change).
+
+        Asked only when the commanded valves change, so a rule that cannot trip in a configuration
+        costs nothing per sample there.  A rule whose memory must follow every sample stays armed.
+        """
+        return True
 
     def __init__(self, limits: Limits, tuning: Tuning) -> None:
         self.limits = limits
@@ -315,6 +324,10 @@ class InletLeak(Rule):
     kind = "inlet_leak"
     fields = ("closed_inlet_rise", "closed_inlet_window")
 
+    @staticmethod
+    def armed(seen: Seen) -> bool:
+        return not seen.inlet_open  # its window restarts at every valve change anyway
+
     def __init__(self, limits: Limits, tuning: Tuning) -> None:
         super().__init__(limits, tuning)
         self.persist = tuning.leak_persist_ratio
@@ -373,6 +386,10 @@ class VentTimeout(Rule):
     kind = "vent_timeout"
     fields = ("vent_timeout", "vent_baseline_tolerance")
 
+    @staticmethod
+    def armed(seen: Seen) -> bool:
+        return seen.vented_since is not None
+
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
         if seen.vented_since is None or seen.t - seen.vented_since < self.limits.vent_timeout:
             return None
@@ -425,9 +442,15 @@ class InterlockMonitor:
         """New rule memories and a new view (at start and after a reset)."""
         self._seen = Seen()
         self.rules = [cls(self.limits, self.tuning) for cls in RULES]
-        # bound checks, in RULES order: this loop runs on every sample
-        self._on_valid = tuple(r.check for r in self.rules if r.sees in ("valid", "both"))
-        self._on_invalid = tuple(r.check for r in self.rules if r.sees in ("invalid", "both"))
+        self._arm()
+
+    def _arm(self) -> None:
+        """The bound checks to ask, in RULES order, for the valves as they are: this loop runs on
+        every sample, so it is rebuilt only when the commanded valves change."""
+        seen = self._seen
+        armed = [r for r in self.rules if r.armed(seen)]
+        self._on_valid = tuple(r.check for r in armed if r.sees in ("valid", "both"))
+        self._on_invalid = tuple(r.check for r in armed if r.sees in ("invalid", "both"))
 
     # ------------------------------------------------------------------ state
     @property
@@ -536,7 +559,8 @@ class InterlockMonitor:
         valves = obs.valves
         inlet_open = seen.inlet_open = bool(valves.get(self._inlet, False))
         seen.opened_now = False
-        if seen.valves != valves:
+        changed_now = seen.valves != valves
+        if changed_now:
             if seen.valves is not None:
                 before = seen.valves
                 seen.opened_now = any(v and not before.get(k, False) for k, v in valves.items())
@@ -555,6 +579,8 @@ class InterlockMonitor:
                 seen.vented_since = None
             elif seen.vented_since is None:
                 seen.vented_since = t
+        if changed_now:
+            self._arm()
         if seen.t_ref_valid is None:
             seen.t_ref_valid = t  # the stale clock starts with the first observation
         seen.gap = t - seen.t_ref_valid
