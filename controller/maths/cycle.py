@@ -232,8 +232,25 @@ class CycleMeasurer:
             self._enter(state)
             self._state = state
         self._last_t = t
-        if state in _SETTLES:
-            return self._settle_row(t, gauge, ambient, temp_k)
+        if state in _SETTLES:  # a settle's row, inline: this runs on most samples of a run
+            det = self._det
+            assert det is not None
+            if not self._open:
+                return det.status
+            finite = math.isfinite(gauge)
+            if state == _BASELINE:
+                if finite:
+                    self._window.append((ambient, temp_k))
+            else:
+                if math.isfinite(temp_k):
+                    self._temps.append(temp_k)
+                if finite:
+                    self._trace[0].append(t)
+                    self._trace[1].append(gauge)
+            status = det.feed(t, gauge) if finite else SettleStatus.WAITING
+            if status is not SettleStatus.WAITING:
+                self._take(timed_out=status is SettleStatus.TIMED_OUT)
+            return status
         if state == _LEAK_HOLD and math.isfinite(gauge):
             self._leak[0].append(t)
             self._leak[1].append(gauge)
@@ -306,26 +323,6 @@ class CycleMeasurer:
             self._complete()
         self._open = False
         self._det = None
-
-    def _settle_row(self, t: float, gauge: float, ambient: float, temp_k: float) -> SettleStatus:
-        det = self._det
-        assert det is not None
-        if not self._open:
-            return det.status
-        finite = math.isfinite(gauge)
-        if self._state == _BASELINE:
-            if finite:
-                self._window.append((ambient, temp_k))
-        else:
-            if math.isfinite(temp_k):
-                self._temps.append(temp_k)
-            if finite:
-                self._trace[0].append(t)
-                self._trace[1].append(gauge)
-        status = det.feed(t, gauge) if finite else SettleStatus.WAITING
-        if status is not SettleStatus.WAITING:
-            self._take(timed_out=status is SettleStatus.TIMED_OUT)
-        return status
 
     def _take(self, *, timed_out: bool) -> None:
         """Record the decided (or given-up) settle as the zero, P1 or P2."""

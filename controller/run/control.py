@@ -167,7 +167,7 @@ class Controller:
         state = engine.state if engine is not None else RunState.IDLE.value
         trip = self.monitor.observe(Observation(t=s.t, reading=s.pressure, gauge=s.gauge,
                                                 valves=s.valves, phase=state))
-        if trip is None and self.monitor.latched is None:
+        if trip is None and s.t >= self._readback_due and self.monitor.latched is None:
             problem = self._check_valves(s.t)
             if problem is not None:
                 trip = self.monitor.trip_external("device_error", s.t, problem)

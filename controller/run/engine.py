@@ -401,12 +401,18 @@ class RunEngine:
         self._fire("settled")
 
     def _step_settle_filled(self, s: Sample) -> None:
+        if self._status is SettleStatus.WAITING and \
+                self._now - self.t_state <= self.seq.settle_filled.max_time + self._grace:
+            return  # most samples: still waiting, within the time limit
         self._settle("1")
 
     def _step_expand(self, s: Sample) -> None:
         self._fire("expanded")
 
     def _step_settle_expanded(self, s: Sample) -> None:
+        if self._status is SettleStatus.WAITING and \
+                self._now - self.t_state <= self.seq.settle_expanded.max_time + self._grace:
+            return  # most samples: still waiting, within the time limit
         self._settle("2")
 
     def _step_leak_hold(self, s: Sample) -> None:
