@@ -57,6 +57,7 @@ class InstrumentConfig(Strict):
     sample_period: Seconds = 0.1
     gas: str = "helium"
     pressure_u: Pressure = 20.0
+    pressure_u_linearity: Pressure | None = None
     temperature_u: Temperature = 0.05
     ambient_nominal: Pressure = STANDARD_ATMOSPHERE
 
@@ -261,7 +262,9 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Any = None, sim_bench: Any
         limits=limits, pressure_is_gauge=cfg.pressure_is_gauge if not isinstance(cfg.pressure, SimDevice)
         else (sim.pressure_is_gauge if sim else True),
         thermometer=thermometer, barometer=barometer, supply=supply, sample_period=cfg.sample_period,
-        pressure_u=cfg.pressure_u, temperature_u=cfg.temperature_u, ambient_nominal=cfg.ambient_nominal,
+        pressure_u=cfg.pressure_u,
+        pressure_u_linearity=cfg.pressure_u_linearity, temperature_u=cfg.temperature_u,
+        ambient_nominal=cfg.ambient_nominal,
         gas=cfg.gas, extras=extras)
 
 

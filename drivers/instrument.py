@@ -36,6 +36,10 @@ class Instrument:
     supply: PressureSensor | None = None
     sample_period: float = 0.1  # s between pressure samples
     pressure_u: float = 20.0  # Pa, standard uncertainty of one zeroed reading (Type B, datasheet)
+    # Pa, the transducer's systematic deviation from a straight line (non-linearity, hysteresis): the
+    # part of its error that neither the zero taken every cycle nor the pressure ratio (which cancels a
+    # gain error) removes.  None: not stated, pressure_u is taken (cautious).
+    pressure_u_linearity: float | None = None
     temperature_u: float = 0.05  # K, standard uncertainty of the gas temperature
     ambient_nominal: float = 101325.0  # Pa, used when no barometer serves
     gas: str = "helium"  # the gas the instrument is plumbed for

@@ -215,6 +215,8 @@ def build_sim_instrument(
         supply=SimSupplyGauge(bench) if ins.supply_gauge else None,
         sample_period=cfg.sample_period,
         pressure_u=max(ins.pressure.noise, ins.pressure.resolution / math.sqrt(12.0), 1.0),
+        # the simulated transducer is linear unless its config says otherwise: its noise is all random
+        pressure_u_linearity=float(getattr(ins.pressure, "nonlinearity", 0.0)),
         temperature_u=max(ins.thermometer.noise if ins.thermometer else 0.05, 0.01),
         ambient_nominal=cfg.lab.pressure,
         gas=cfg.gas,

@@ -83,7 +83,8 @@ def main(args: argparse.Namespace) -> int:
     gas = args.gas or stored["results"].get("gas") or inst.get("gas", "helium")
     chambers = _chambers(args, stored, root)
     re = reanalyze(run, seq, chambers=chambers, gas=gas, pressure_is_gauge=bool(inst["pressure_is_gauge"]),
-                   pressure_u=float(inst["pressure_u"]), temperature_u=float(inst["temperature_u"]))
+                   pressure_u=float(inst["pressure_u"]), temperature_u=float(inst["temperature_u"]),
+                   pressure_u_linearity=inst.get("pressure_u_linearity"))
     res = re.result
     out: dict[str, Any] = {
         "run_id": stored["run_id"], "sequence": seq.name, "gas": gas,

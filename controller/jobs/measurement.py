@@ -118,6 +118,7 @@ def instrument_description(instrument: Instrument) -> dict[str, Any]:
         "limits": instrument.limits.model_dump(exclude_none=True),
         "pressure_is_gauge": instrument.pressure_is_gauge,
         "pressure_u": instrument.pressure_u,
+        "pressure_u_linearity": instrument.pressure_u_linearity,
         "temperature_u": instrument.temperature_u,
         "sample_period": instrument.sample_period,
         "config": instrument.extras.get("config"),

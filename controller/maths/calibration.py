@@ -67,6 +67,11 @@ class CalibrationRun:
     u_p2: float | None = None  # P2's own uncertainty, when it differs from P1's
     u_pa: float | None = None  # overrides the fit-wide ambient-pressure uncertainty for this run
     group: int | None = None  # runs of one group share one insert: its certificate error is common to them
+    # the relaxation each settle left to come (Pa): the same for the runs of one group (one insert, one
+    # fill), so like the certificate error it is common to the group's points, not scatter between them
+    u_p1_relax: float = 0.0
+    u_p2_relax: float = 0.0
+    u_pa_relax: float = 0.0
 
 
 def chi2_quantile(p: float, dof: int) -> float:
@@ -211,7 +216,9 @@ def fit_calibration(
                                  ta=r.ta, mode=mode)
     u_ins = np.array([float(r.u_inserted) for r in runs])
     if any(r.group is not None for r in runs):
-        return _fit_grouped(runs, volumes, ys, u_yp, u_ins, gas=g, mode=mode)
+        u_yr = np.array([_u_y_pressures(r.p1, r.p2, r.pa, r.u_p1_relax, r.u_pa_relax, u_p2=r.u_p2_relax, gas=g,
+                                        t1=r.t1, t2=r.t2, ta=r.ta, mode=mode) for r in runs])
+        return _fit_grouped(runs, volumes, ys, u_yp, u_ins, gas=g, mode=mode, u_yr=u_yr)
     weighted = bool(np.all(u_yp > 0.0)) or bool(np.all(np.hypot(u_yp, u_ins) > 0.0))
     notes: list[str] = []
     X = np.column_stack([np.ones_like(volumes), volumes])
@@ -279,12 +286,13 @@ def fit_calibration(
 
 
 def _fit_grouped(runs: Sequence[CalibrationRun], volumes: np.ndarray, ys: np.ndarray, u_yp: np.ndarray,
-                 u_ins: np.ndarray, *, gas: Gas, mode: str) -> CalibrationFit:
+                 u_ins: np.ndarray, *, gas: Gas, mode: str, u_yr: np.ndarray | None = None) -> CalibrationFit:
     """Generalised least squares when runs share an insert (several cycles with one sphere).
 
     A sphere's certificate error moves every point measured with it the same way, so the points of one
     group are correlated: C = diag(u_y,i^2) + b^2 sum_g u(V_g)^2 g g^T (g: indicator of the group's runs),
-    iterated on the slope b. A run without a group is a group of its own.
+    iterated on the slope b. A run without a group is a group of its own.  ``u_yr`` (the y effect of
+    the relaxation each settle left to come) is likewise common to a group: + sum_g (u_yr o g)(u_yr o g)^T.
     """
     if not np.all(u_yp > 0.0):
         raise CalibrationError("every point needs a pressure uncertainty (the chi-square test compares with it)")
@@ -293,9 +301,11 @@ def _fit_grouped(runs: Sequence[CalibrationRun], volumes: np.ndarray, ys: np.nda
     G = np.array([[1.0 if k == g else 0.0 for g in groups] for k in keys])
     u_v = np.array([u_ins[keys.index(g)] for g in groups])
     X = np.column_stack([np.ones_like(volumes), volumes])
+    M = G * (u_yr if u_yr is not None else np.zeros_like(u_yp))[:, None]
+    common = M @ M.T
     b = float(np.polyfit(volumes, ys, 1)[0])
     for _ in range(30):
-        C = np.diag(u_yp**2) + b**2 * (G * u_v**2) @ G.T
+        C = np.diag(u_yp**2) + b**2 * (G * u_v**2) @ G.T + common
         W = np.linalg.inv(C)
         cov_ab = np.linalg.inv(X.T @ W @ X)
         coef = cov_ab @ (X.T @ W @ ys)

@@ -42,31 +42,44 @@ class Zero:
     """A cycle's zero: the settled gauge reading of the closed, vented system, and its conditions."""
 
     value: float  # Pa
-    u: float  # Pa, standard
+    u: float  # Pa, standard: the settle window's regression (random from cycle to cycle)
     ambient: float  # Pa absolute
     temp_k: float  # K of the gas trapped at the zero (NaN when no valid temperature)
+    u_relax: float = 0.0  # Pa, standard: relaxation still to come (the same sign every cycle)
+    n_temps: int = 0  # distinct thermometer readings averaged into temp_k
 
 
 @dataclass
 class CycleData:
     """What one cycle has measured so far, under the names its CycleResult (and summary.json) uses:
-    gauge pressures above the cycle's zero, SI units. ``u_p1_settle_pa`` / ``u_p2_settle_pa`` are the
-    settle's own uncertainty; the result combines them with the sensor's into ``u_p1_pa`` / ``u_p2_pa``."""
+    gauge pressures above the cycle's zero, SI units.
+
+    Each settled pressure carries two standard uncertainties, kept apart because they behave
+    differently over a run: ``u_*_settle_pa`` is the settle window regression's (the transducer's
+    white noise is in it; it changes from cycle to cycle and averages down) and ``u_*_relax_pa`` is
+    the relaxation the settle left to come (the same sign in every cycle; it does not average).
+    ``n_t*`` count the distinct thermometer readings averaged into each temperature."""
 
     index: int
     volume_name: str
     baseline_pa: float = math.nan  # the cycle's zero
     u_baseline_pa: float = math.nan
+    u_baseline_relax_pa: float = 0.0
     ambient_pa: float = math.nan  # absolute, at the zero
     ta_k: float = math.nan  # gas temperature at the zero
+    n_ta: int = 0
     p1_gauge_pa: float = math.nan
     u_p1_settle_pa: float = math.nan
+    u_p1_relax_pa: float = 0.0
     t1_k: float = math.nan
+    n_t1: int = 0
     settle1_s: float = math.nan
     drift1_pa_s: float = math.nan
     p2_gauge_pa: float = math.nan
     u_p2_settle_pa: float = math.nan
+    u_p2_relax_pa: float = 0.0
     t2_k: float = math.nan
+    n_t2: int = 0
     settle2_s: float = math.nan
     drift2_pa_s: float = math.nan
     fill_s: float = math.nan  # set by the engine: when its fill target was reached
@@ -79,10 +92,12 @@ class Settled:
     """A settle phase's outcome: the pressure above the zero (P1, P2) or the zero itself (baseline)."""
 
     p: float
-    u: float
+    u: float  # Pa, standard: the window regression's (random)
     t: float  # K, mean gas temperature over the last samples
     time: float  # s the settle took
     drift: float  # Pa/s at the decision
+    u_relax: float = 0.0  # Pa, standard: relaxation still to come (systematic)
+    n_temps: int = 0  # distinct thermometer readings in t
 
 
 @dataclass(frozen=True)
@@ -94,22 +109,42 @@ class CyclePlan:
     expanded: SettleCriteria
     chambers: ChamberCalibration
     gas: str
-    u_p: float  # Pa, standard uncertainty of one pressure reading
-    u_t: float  # K, standard uncertainty of one temperature reading
+    u_p: float  # Pa, standard uncertainty of one pressure reading (its noise: the settle rules' unit)
+    u_t: float  # K, standard uncertainty of one temperature reading (its noise)
     discard: int  # leading cycles not kept
     volume_name: str = ""
+    #: Pa, the transducer's systematic standard uncertainty at a reading (non-linearity: a gain error
+    #: cancels in the pressure ratio and the zero is taken every cycle); the same in every cycle.
+    u_p_sys: float = 0.0
 
 
-def settled_u(det: SettleDetector) -> float:
-    """Standard uncertainty of a settled pressure: the window regression's own, plus what is left of
-    the relaxation. An exponential still drifting at dP/dt has |dP/dt|*tau to go (methods: drift
+def settled_u_parts(det: SettleDetector) -> tuple[float, float]:
+    """Standard uncertainties of a settled pressure: (the window regression's own, what is left of the
+    relaxation).  Kept apart: the first is noise and averages over cycles, the second has the same
+    sign every cycle.  An exponential still drifting at dP/dt has |dP/dt|*tau to go (methods: drift
     criterion); taken as a rectangular bound (divide by sqrt 3), tau from a sound fit of the window,
     else three windows (the longest time constant a window can resolve)."""
     fit = det.fit
     tau = fit.tau if fit is not None and fit.sound else 3.0 * det.criteria.window
     drift = det.drift if math.isfinite(det.drift) else 0.0
     u_reg = det.u_estimate if math.isfinite(det.u_estimate) else 0.0
-    return math.hypot(u_reg, abs(drift) * tau / math.sqrt(3.0))
+    return u_reg, abs(drift) * tau / math.sqrt(3.0)
+
+
+def settled_u(det: SettleDetector) -> float:
+    """Both parts of settled_u_parts combined: the whole standard uncertainty of one settled value."""
+    return math.hypot(*settled_u_parts(det))
+
+
+def _mean_of_readings(temps: list[float]) -> tuple[float, int]:
+    """Mean of a settle's last temperatures and the number of distinct readings in it.
+
+    Why distinct: the thermometer is read more slowly than the pressure, so consecutive rows repeat
+    one reading; its noise averages over the readings, not the rows (repeats of a quantised value
+    merge too, which only makes the count, and so the stated u, more cautious)."""
+    if not temps:
+        return math.nan, 0
+    return sum(temps) / len(temps), len(set(temps))
 
 
 @dataclass(frozen=True)
@@ -303,7 +338,8 @@ class CycleMeasurer:
             if self.zero is not None:
                 z = self.zero
                 self.current = CycleData(index=len(self.cycles) + 1, volume_name=self.plan.volume_name,
-                                         baseline_pa=z.value, u_baseline_pa=z.u, ambient_pa=z.ambient, ta_k=z.temp_k)
+                                         baseline_pa=z.value, u_baseline_pa=z.u, u_baseline_relax_pa=z.u_relax,
+                                         ambient_pa=z.ambient, ta_k=z.temp_k, n_ta=z.n_temps)
                 self.cycles.append(self.current)
         elif state == RunState.LEAK_HOLD:
             self._leak = ([], [])
@@ -333,25 +369,25 @@ class CycleMeasurer:
             if timed_out:
                 self.notes.append(f"baseline before fill {len(self.cycles) + 1}: not settled under these rules")
             recent = self._window[-_LAST:]
-            temps = [w[1] for w in recent if math.isfinite(w[1])]
-            self.zero = Zero(det.estimate, settled_u(det), sum(w[0] for w in recent) / len(recent),
-                             sum(temps) / len(temps) if temps else math.nan)
-            self.last = Settled(det.estimate, self.zero.u, self.zero.temp_k, det.elapsed, det.drift)
+            temp, n_temps = _mean_of_readings([w[1] for w in recent if math.isfinite(w[1])])
+            u_reg, u_relax = settled_u_parts(det)
+            self.zero = Zero(det.estimate, u_reg, sum(w[0] for w in recent) / len(recent), temp, u_relax, n_temps)
+            self.last = Settled(det.estimate, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps)
             return
         cyc = self.current
         if cyc is None:
             return
-        temps = self._temps[-_LAST:]
-        temp = sum(temps) / len(temps) if temps else math.nan
-        val = Settled(det.estimate - cyc.baseline_pa, settled_u(det), temp, det.elapsed, det.drift)
+        temp, n_temps = _mean_of_readings(self._temps[-_LAST:])
+        u_reg, u_relax = settled_u_parts(det)
+        val = Settled(det.estimate - cyc.baseline_pa, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps)
         self.last = val
         which = "p1" if self._state == RunState.SETTLE_FILLED else "p2"
         if which == "p1":
-            cyc.p1_gauge_pa, cyc.u_p1_settle_pa, cyc.t1_k = val.p, val.u, val.t
-            cyc.settle1_s, cyc.drift1_pa_s = val.time, val.drift
+            cyc.p1_gauge_pa, cyc.u_p1_settle_pa, cyc.u_p1_relax_pa, cyc.t1_k = val.p, val.u, val.u_relax, val.t
+            cyc.settle1_s, cyc.drift1_pa_s, cyc.n_t1 = val.time, val.drift, n_temps
         else:
-            cyc.p2_gauge_pa, cyc.u_p2_settle_pa, cyc.t2_k = val.p, val.u, val.t
-            cyc.settle2_s, cyc.drift2_pa_s = val.time, val.drift
+            cyc.p2_gauge_pa, cyc.u_p2_settle_pa, cyc.u_p2_relax_pa, cyc.t2_k = val.p, val.u, val.u_relax, val.t
+            cyc.settle2_s, cyc.drift2_pa_s, cyc.n_t2 = val.time, val.drift, n_temps
         if timed_out:
             cyc.flags.append(f"unsettled_{which}")  # already says the drift remained
         elif drift_unexplained(*self._trace, self.plan.u_p) is not None:
@@ -364,5 +400,5 @@ class CycleMeasurer:
         if self.results and self.results[-1].index == cyc.index:
             return
         p = self.plan
-        self.results.append(results.cycle_result(cyc, p.chambers, gas=p.gas, u_p=p.u_p, u_t=p.u_t,
+        self.results.append(results.cycle_result(cyc, p.chambers, gas=p.gas, u_p_sys=p.u_p_sys, u_t=p.u_t,
                                                  discard=p.discard))

@@ -24,16 +24,22 @@ class CyclePressures(Protocol):
     volume_name: str
     baseline_pa: float
     u_baseline_pa: float
+    u_baseline_relax_pa: float
     ambient_pa: float
     ta_k: float
+    n_ta: int
     p1_gauge_pa: float
     u_p1_settle_pa: float
+    u_p1_relax_pa: float
     t1_k: float
+    n_t1: int
     settle1_s: float
     drift1_pa_s: float
     p2_gauge_pa: float
     u_p2_settle_pa: float
+    u_p2_relax_pa: float
     t2_k: float
+    n_t2: int
     settle2_s: float
     drift2_pa_s: float
     fill_s: float
@@ -48,7 +54,7 @@ class CycleResult:
     ambient_pa: float
     p1_gauge_pa: float
     p2_gauge_pa: float
-    u_p1_pa: float
+    u_p1_pa: float  # random part (the settle window's regression): what a calibration fit weighs
     u_p2_pa: float
     t1_k: float | None
     t2_k: float | None
@@ -63,6 +69,13 @@ class CycleResult:
     drift1_pa_s: float = math.nan
     drift2_pa_s: float = math.nan
     fill_s: float = math.nan
+    u_baseline_pa: float = math.nan  # random part of the zero
+    u_p1_sys_pa: float = 0.0  # systematic parts: transducer non-linearity and relaxation still to come
+    u_p2_sys_pa: float = 0.0
+    u_baseline_relax_pa: float = 0.0  # of which the relaxation each settle left to come
+    u_p1_relax_pa: float = 0.0
+    u_p2_relax_pa: float = 0.0
+    u_random_m3: float = math.nan  # the part of u_volume_m3 that changes from cycle to cycle
 
     def as_dict(self) -> dict[str, Any]:
         d = asdict(self)
@@ -76,22 +89,41 @@ def _temp(x: float) -> float | None:
     return x if math.isfinite(x) else None
 
 
-def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str, u_p: float, u_t: float,
+def _fin(x: float) -> float:
+    return x if math.isfinite(x) else 0.0
+
+
+def _u_mean(u_t: float, n: int) -> float:
+    """Standard uncertainty of a mean of n readings of noise u_t (one reading when n is unknown)."""
+    return u_t / math.sqrt(n) if n > 1 else u_t
+
+
+def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str, u_p_sys: float, u_t: float,
                  discard: int) -> CycleResult:
-    """Volume of one cycle and its GUM budget (pressures: settle-window SE combined with the sensor's u)."""
+    """Volume of one cycle and its GUM budget.
+
+    Each random input is counted once: a settled pressure's noise is in its window regression's
+    standard error (Type A), so the transducer's per-reading noise is not added again; a temperature
+    averaged over n readings has u_t/sqrt(n).  Systematic parts are rows of their own: the
+    transducer's non-linearity ``u_p_sys`` and the relaxation each settle left to come."""
     pa = cyc.ambient_pa
     p1, p2 = pa + cyc.p1_gauge_pa, pa + cyc.p2_gauge_pa
-    u_p1 = math.hypot(u_p, cyc.u_p1_settle_pa if math.isfinite(cyc.u_p1_settle_pa) else 0.0)
-    u_p2 = math.hypot(u_p, cyc.u_p2_settle_pa if math.isfinite(cyc.u_p2_settle_pa) else 0.0)
+    u_p1, u_p2 = _fin(cyc.u_p1_settle_pa), _fin(cyc.u_p2_settle_pa)
+    u_p1_sys = math.hypot(u_p_sys, _fin(cyc.u_p1_relax_pa))
+    u_p2_sys = math.hypot(u_p_sys, _fin(cyc.u_p2_relax_pa))
     # An error in the cycle's zero shifts both gauge pressures alike: the same as an error in the
     # initial pressure of the expansion volume with P1, P2 held, which is how the budget takes Pa.
-    u_pa = cyc.u_baseline_pa if math.isfinite(cyc.u_baseline_pa) else 0.0
+    u_pa, u_pa_sys = _fin(cyc.u_baseline_pa), _fin(cyc.u_baseline_relax_pa)
     t1, t2, ta = _temp(cyc.t1_k), _temp(cyc.t2_k), _temp(cyc.ta_k)
     flags = list(cyc.flags)
     try:
         budget = uncertainty.cycle_volume_budget(
             p1, p2, pa, chambers.vc, chambers.vr, u_p1=u_p1, u_p2=u_p2, u_pa=u_pa, cov_cal=chambers.cov,
             t1=t1, t2=t2, ta=ta, u_t=u_t if t1 is not None else 0.0, gas=gas,
+            u_p1_sys=u_p1_sys, u_p2_sys=u_p2_sys, u_pa_sys=u_pa_sys, pressures_type_a=True,
+            u_t1=_u_mean(u_t, cyc.n_t1) if t1 is not None else 0.0,
+            u_t2=_u_mean(u_t, cyc.n_t2) if t2 is not None else 0.0,
+            u_ta=_u_mean(u_t, cyc.n_ta) if ta is not None else 0.0,
         )
         volume, u_volume = budget.value, budget.combined
     except VolumeError as exc:
@@ -105,6 +137,9 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
         ta_k=ta, volume_m3=volume, u_volume_m3=u_volume, kept=cyc.index > discard and math.isfinite(volume),
         flags=flags, budget=budget, settle1_s=cyc.settle1_s, settle2_s=cyc.settle2_s,
         drift1_pa_s=cyc.drift1_pa_s, drift2_pa_s=cyc.drift2_pa_s, fill_s=cyc.fill_s,
+        u_baseline_pa=u_pa, u_p1_sys_pa=u_p1_sys, u_p2_sys_pa=u_p2_sys, u_baseline_relax_pa=u_pa_sys,
+        u_p1_relax_pa=_fin(cyc.u_p1_relax_pa), u_p2_relax_pa=_fin(cyc.u_p2_relax_pa),
+        u_random_m3=math.sqrt(budget.random_variance) if budget is not None else math.nan,
     )
 
 
@@ -122,6 +157,10 @@ class RunResult:
     k: float
     converged: bool | None
     outliers: list[int]
+    u_type_a_m3: float = math.nan  # the parts of u_volume_m3 evaluated from this run's own readings
+    u_type_b_m3: float = math.nan  # ... and from stated figures (calibration, specifications)
+    birge_ratio: float | None = None  # observed cycle scatter / the budget's predicted random part
+    notes: list[str] = field(default_factory=list)  # what the budget's checks found
     density_kg_m3: float | None = None
     u_density_kg_m3: float | None = None  # standard
     U_density_kg_m3: float | None = None  # expanded
@@ -153,6 +192,10 @@ def run_result(cycles: Sequence[CycleResult], *, converge: Any = None, mass: flo
         n_cycles=len(cycles), n_kept=len(kept), volume_m3=budget.value, sd_m3=st.sd, rsd=st.rsd,
         u_volume_m3=budget.combined, U_volume_m3=budget.expanded, k=budget.k, converged=conv,
         outliers=[kept[i].index for i in out], budget=budget,
+        u_type_a_m3=math.sqrt(max(budget.variance_by_evaluation("A"), 0.0)),
+        u_type_b_m3=math.sqrt(max(budget.variance_by_evaluation("B"), 0.0)),
+        birge_ratio=budget.scatter.birge_ratio if budget.scatter is not None else None,
+        notes=list(budget.notes),
     )
     if mass is not None and mass > 0 and budget.value > 0:
         rho, u_rho = uncertainty.density(budget.value, budget.combined, mass, u_mass)

@@ -29,6 +29,11 @@ class Contribution:
 
     ``variance`` is what the row adds to u_c^2 (c^2 u^2, or 2 c_i c_j cov for a covariance row,
     which may be negative).  ``kind`` groups rows: calibration, pressure, temperature, repeatability.
+    ``random``: the input's error changes from cycle to cycle (noise), so it averages over a run's
+    cycles and shows in their scatter; otherwise it is the same in every cycle (a calibration, a
+    transducer's non-linearity, a relaxation the settle leaves the same way each time) and enters a
+    run's mean once.  ``evaluation``: GUM Type "A" (from the statistics of this run's own readings)
+    or "B" (from stated figures: certificates, specifications, a calibration).
     """
 
     name: str
@@ -38,6 +43,8 @@ class Contribution:
     contribution: float
     variance: float = math.nan
     kind: str = ""
+    random: bool = False
+    evaluation: str = "B"
 
     def __post_init__(self) -> None:
         if math.isnan(self.variance):
@@ -56,6 +63,7 @@ class Budget:
     expanded: float = math.nan
     unit: str = "m^3"
     notes: list[str] = field(default_factory=list)
+    scatter: ScatterCheck | None = None  # a run's budget: its cycles' scatter against the prediction
 
     def __post_init__(self) -> None:
         if math.isnan(self.expanded):
@@ -74,12 +82,22 @@ class Budget:
                 "contribution": c.contribution,
                 "variance": c.variance,
                 "share": c.variance / total if total > 0 else math.nan,
+                "random": c.random,
+                "evaluation": c.evaluation,
             }
             for c in self.contributions
         ]
 
     def variance_of(self, kind: str) -> float:
         return sum(c.variance for c in self.contributions if c.kind == kind)
+
+    @property
+    def random_variance(self) -> float:
+        """What the rows that change from cycle to cycle add to u_c^2: the scatter a run should show."""
+        return sum(c.variance for c in self.contributions if c.random)
+
+    def variance_by_evaluation(self, evaluation: str) -> float:
+        return sum(c.variance for c in self.contributions if c.evaluation == evaluation)
 
 
 def _derivative(fn: Callable[[float], float], x: float, u: float) -> float:
@@ -107,12 +125,23 @@ def cycle_volume_budget(
     gas: Gas | str = "ideal",
     mode: str = "sample_first",
     k: float = K_DEFAULT,
+    u_p1_sys: float = 0.0,
+    u_p2_sys: float = 0.0,
+    u_pa_sys: float = 0.0,
+    u_t1: float | None = None,
+    u_t2: float | None = None,
+    u_ta: float | None = None,
+    pressures_type_a: bool = False,
 ) -> Budget:
     """Budget for the sample volume of one expansion.
 
     ``cov_cal`` (2x2 for (vc, vr), e.g. CalibrationFit.cov) takes precedence over u_vc/u_vr.
-    ``u_t`` is the standard uncertainty of each temperature reading, taken as independent between
-    t1, t2 and ta (drift and non-uniformity; a common thermometer offset cancels and is left out).
+    ``u_p1``, ``u_p2``, ``u_pa``: the random parts of the pressures (from cycle to cycle; Type A when
+    ``pressures_type_a``, i.e. they come from the settle window's regression); ``u_*_sys`` their
+    systematic parts (the same in every cycle), each a row of its own.
+    ``u_t`` is the standard uncertainty of each temperature, taken as independent between t1, t2 and
+    ta (noise, drift and non-uniformity; a common thermometer offset cancels and is left out);
+    ``u_t1``/``u_t2``/``u_ta`` override it per temperature (a mean of n readings has u_t/sqrt(n)).
     """
     g = get_gas(gas)
     t1_, t2_, ta_ = resolve_temperatures(t1, t2, ta)
@@ -140,21 +169,25 @@ def cycle_volume_budget(
         var = 2.0 * c_vc * c_vr * cov[0, 1]
         rows.append(Contribution("covariance Vc, Vr", cov[0, 1], math.nan, math.nan,
                                  math.copysign(math.sqrt(abs(var)), var), variance=var, kind="calibration"))
-    for name, label, x, u, kind in (
-        ("p1", "fill pressure P1", p1, u_p1, "pressure"),
-        ("p2", "expansion pressure P2", p2, u_p2, "pressure"),
-        ("pa", "ambient pressure Pa", pa, u_pa, "pressure"),
-        ("t1", "temperature T1", t1_, u_t, "temperature"),
-        ("t2", "temperature T2", t2_, u_t, "temperature"),
-        ("ta", "temperature Ta", ta_, u_t, "temperature"),
+    ev_p = "A" if pressures_type_a else "B"
+    for name, label, x, u, kind, rand, ev in (
+        ("p1", "fill pressure P1", p1, u_p1, "pressure", True, ev_p),
+        ("p2", "expansion pressure P2", p2, u_p2, "pressure", True, ev_p),
+        ("pa", "ambient pressure Pa", pa, u_pa, "pressure", True, ev_p),
+        ("p1", "fill pressure P1, systematic", p1, u_p1_sys, "pressure", False, "B"),
+        ("p2", "expansion pressure P2, systematic", p2, u_p2_sys, "pressure", False, "B"),
+        ("pa", "ambient pressure Pa, systematic", pa, u_pa_sys, "pressure", False, "B"),
+        ("t1", "temperature T1", t1_, u_t if u_t1 is None else u_t1, "temperature", True, "B"),
+        ("t2", "temperature T2", t2_, u_t if u_t2 is None else u_t2, "temperature", True, "B"),
+        ("ta", "temperature Ta", ta_, u_t if u_ta is None else u_ta, "temperature", True, "B"),
     ):
-        if u <= 0.0 and kind == "temperature":
+        if u <= 0.0 and (kind == "temperature" or not rand):
             continue
         def at(v: float, n: str = name) -> float:
             return vs_of(**{n: v})
 
         c = _derivative(at, x, u)
-        rows.append(Contribution(label, x, u, c, c * u, kind=kind))
+        rows.append(Contribution(label, x, u, c, c * u, kind=kind, random=rand, evaluation=ev))
     combined = math.sqrt(max(sum(r.variance for r in rows), 0.0))
     return Budget("sample volume", value, rows, combined, k=k)
 
@@ -174,45 +207,103 @@ def type_a(values: Sequence[float]) -> tuple[float, float, float]:
     return mean, s, s / math.sqrt(x.size)
 
 
+#: Probability below which the cycles' scatter is called inconsistent with the budget's random part
+#: (each tail; two-sided 2 %): informative, not a refusal.
+SCATTER_ALPHA = 0.01
+
+
+@dataclass(frozen=True)
+class ScatterCheck:
+    """The cycles' observed scatter against the per-cycle budget's random part (a Birge ratio).
+
+    Why: the budget predicts how far cycles should scatter from the noise it knows of; a scatter
+    well above it means an effect the budget lacks (drift, leaks, a moving barometer), and one well
+    below means the random inputs are overstated.  Tested as chi-square = (n-1) s^2 / sigma^2 with
+    n-1 degrees of freedom (GUM Annex; a Birge ratio R = s/sigma)."""
+
+    n: int
+    sd: float  # observed cycle-to-cycle standard deviation
+    predicted: float  # the budget's random standard uncertainty of one cycle
+    birge_ratio: float  # sd / predicted
+    p_above: float  # P(chi-square >= observed): small when the scatter is too large
+    p_below: float  # P(chi-square <= observed): small when the scatter is too small
+
+    @property
+    def verdict(self) -> str:
+        if self.p_above < SCATTER_ALPHA:
+            return "above"
+        if self.p_below < SCATTER_ALPHA:
+            return "below"
+        return "consistent"
+
+    def note(self) -> str | None:
+        if self.verdict == "above":
+            return (f"the cycles scatter {self.birge_ratio:.2g} times what the budget's random part predicts "
+                    f"(SD {self.sd:.3g} against {self.predicted:.3g} m^3, n={self.n}, P={self.p_above:.2g}): "
+                    "the observed scatter is used; something the budget lacks moves the cycles (drift, a "
+                    "leak, the lab's pressure or temperature changing)")
+        if self.verdict == "below":
+            return (f"the cycles scatter only {self.birge_ratio:.2g} times what the budget's random part "
+                    f"predicts (SD {self.sd:.3g} against {self.predicted:.3g} m^3, n={self.n}, "
+                    f"P={self.p_below:.2g}): the stated noise of the instrument may be larger than its real noise")
+        return None
+
+
+def scatter_check(values: Sequence[float], predicted: float) -> ScatterCheck | None:
+    """The scatter test of ScatterCheck (None with fewer than 2 values or no prediction)."""
+    x = np.asarray(list(values), dtype=float)
+    if x.size < 2 or not predicted > 0.0:
+        return None
+    from scipy.stats import chi2  # imported here: scipy.stats is slow to import
+
+    sd = float(x.std(ddof=1))
+    dof = x.size - 1
+    stat = dof * (sd / predicted) ** 2
+    return ScatterCheck(int(x.size), sd, predicted, sd / predicted, float(chi2.sf(stat, dof)),
+                        float(chi2.cdf(stat, dof)))
+
+
 def combine_run(cycle_volumes: Sequence[float], cycle_budgets: Sequence[Budget]) -> Budget:
     """Budget of the mean volume of a run of cycles.
 
-    Random part: the cycles' pressure/temperature effects change from cycle to cycle, so they show
-    in the scatter; they are taken as the larger of the Type A u of the mean and the budgets'
-    predicted random u divided by sqrt(n) (a Type A from 3-5 cycles can understate by chance;
-    counting both would count the same noise twice).
-    Calibration part: Vc and Vr are the same numbers in every cycle, so their effect is fully
-    correlated between cycles and does not average down; it enters once, not divided by sqrt(n).
+    Random part (the rows marked ``random``: noise in the settled pressures and temperatures): it
+    changes from cycle to cycle, so it averages down and shows in the scatter.  Taken as the larger
+    of the Type A u of the mean (s/sqrt(n)) and the budgets' predicted random u / sqrt(n): counting
+    both would count the same noise twice, and a Type A from a few cycles can understate by chance.
+    The scatter is also tested against the prediction (ScatterCheck); a difference either way is
+    noted.
+    Systematic part (every other row: calibration Vc, Vr and their covariance, a transducer's
+    non-linearity, the relaxation a settle leaves the same way each time): the same in every cycle,
+    so it does not average down; each row enters once, never divided by the number of cycles.
     """
     vols = list(cycle_volumes)
     if len(vols) != len(cycle_budgets) or not vols:
         raise ValueError("need one budget per cycle volume, at least one cycle")
     n = len(vols)
     mean, _s, u_mean = type_a(vols)
-    random_var = float(np.mean([b.combined**2 - b.variance_of("calibration") for b in cycle_budgets]))
+    random_var = float(np.mean([b.random_variance for b in cycle_budgets]))
     u_floor = math.sqrt(max(random_var, 0.0) / n)
     notes = []
+    check = scatter_check(vols, math.sqrt(max(random_var, 0.0)))
     if math.isnan(u_mean) or u_floor > u_mean:
-        u_rand, label = u_floor, f"repeatability (predicted from the cycle budget, n={n})"
-        notes.append("random part from the per-cycle budget (larger than, or no, Type A scatter)")
+        u_rand, label, ev = u_floor, f"repeatability (predicted from the cycle budget, n={n})", "B"
     else:
-        u_rand, label = u_mean, f"repeatability (Type A, s/sqrt(n), n={n})"
-    rows = [Contribution(label, mean, u_rand, 1.0, u_rand, kind="repeatability")]
-    # calibration rows: average over the cycles (the sensitivity -y barely changes between cycles)
+        u_rand, label, ev = u_mean, f"repeatability (Type A, s/sqrt(n), n={n})", "A"
+    if check is not None and check.note() is not None:
+        notes.append(check.note())
+    rows = [Contribution(label, mean, u_rand, 1.0, u_rand, kind="repeatability", random=True, evaluation=ev)]
+    # systematic rows: averaged over the cycles (the sensitivity -y barely changes between cycles)
     first = cycle_budgets[0]
-    for j, c in enumerate(first.contributions):
-        if c.kind != "calibration":
-            continue
-        same = [b.contributions[j] for b in cycle_budgets]
+    for name in [c.name for c in first.contributions if not c.random]:
+        same = [c for b in cycle_budgets for c in b.contributions if c.name == name]
         var = float(np.mean([x.variance for x in same]))
         sens = float(np.mean([x.sensitivity for x in same]))
-        if math.isfinite(sens) and math.isfinite(c.std_u):
-            contrib = sens * c.std_u
-        else:
-            contrib = math.copysign(math.sqrt(abs(var)), var)
-        rows.append(Contribution(c.name, c.value, c.std_u, sens, contrib, variance=var, kind="calibration"))
+        u = float(np.mean([x.std_u for x in same]))
+        contrib = sens * u if math.isfinite(sens) and math.isfinite(u) else math.copysign(math.sqrt(abs(var)), var)
+        rows.append(Contribution(name, same[0].value, u, sens, contrib, variance=var, kind=same[0].kind,
+                                 random=False, evaluation=same[0].evaluation))
     combined = math.sqrt(max(sum(r.variance for r in rows), 0.0))
-    return Budget("mean sample volume", mean, rows, combined, k=first.k, notes=notes)
+    return Budget("mean sample volume", mean, rows, combined, k=first.k, notes=notes, scatter=check)
 
 
 def density(volume: float, u_volume: float, mass: float, u_mass: float) -> tuple[float, float]:

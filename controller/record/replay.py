@@ -17,7 +17,7 @@ from pycnoctl.controller.domain.gaspath import ChamberCalibration
 from pycnoctl.controller.maths import results
 from pycnoctl.controller.maths.cycle import CycleMeasurer, Row
 from pycnoctl.controller.record.runfolder import StoredRun
-from pycnoctl.controller.run.engine import cycle_plan
+from pycnoctl.controller.run.engine import cycle_plan, linearity_u
 from pycnoctl.controller.run.sequence import Sequence
 
 
@@ -62,10 +62,11 @@ def rows(run: StoredRun, pressure_is_gauge: bool) -> list[tuple[str, Row]]:
 
 
 def reanalyze(run: StoredRun, sequence: Sequence, *, chambers: ChamberCalibration, gas: str,
-              pressure_is_gauge: bool, pressure_u: float, temperature_u: float) -> Reanalysis:
+              pressure_is_gauge: bool, pressure_u: float, temperature_u: float,
+              pressure_u_linearity: float | None = None) -> Reanalysis:
     """Cycle volumes and the run result recomputed from the raw trace."""
     meter = CycleMeasurer(cycle_plan(sequence, chambers=chambers, gas=gas, u_p=pressure_u, u_t=temperature_u,
-                                     volume_name=""))
+                                     volume_name="", u_p_sys=linearity_u(pressure_u, pressure_u_linearity)))
     for state, row in rows(run, pressure_is_gauge):
         meter.feed(state, row)
     out = meter.results

@@ -129,6 +129,7 @@ class RunEngine:
         """The measurer's rules for this sequence on this instrument (replay builds the same)."""
         return cycle_plan(sequence, chambers=instrument.chambers.for_expansion(expansion_volume),
                           gas=sequence.gas, u_p=instrument.pressure_u, u_t=instrument.temperature_u,
+                          u_p_sys=linearity_u(instrument.pressure_u, instrument.pressure_u_linearity),
                           volume_name=expansion_volume)
 
     # ----- machine plumbing -------------------------------------------------------------------
@@ -397,7 +398,8 @@ class RunEngine:
         val = self.meter.last
         assert val is not None
         self.emit("settled", {"cycle": self.cycle_number, "which": f"p{which}", "p": val.p, "u": val.u,
-                              "t": val.t, "time": val.time, "drift": val.drift})
+                              "u_relax": val.u_relax, "t": self._now, "temp_k": val.t, "time": val.time,
+                              "drift": val.drift})
         self._fire("settled")
 
     def _step_settle_filled(self, s: Sample) -> None:
@@ -451,8 +453,14 @@ def criteria(settle: Any, u_p: float) -> SettleCriteria:
                           max_time=settle.max_time, extrapolate=settle.extrapolate, u_p=u_p)
 
 
-def cycle_plan(sequence: Any, *, chambers: Any, gas: str, u_p: float, u_t: float, volume_name: str) -> CyclePlan:
+def linearity_u(pressure_u: float, pressure_u_linearity: float | None) -> float:
+    """The transducer's systematic u: as stated, else its reading u (cautious, for a config silent on it)."""
+    return pressure_u if pressure_u_linearity is None else pressure_u_linearity
+
+
+def cycle_plan(sequence: Any, *, chambers: Any, gas: str, u_p: float, u_t: float, volume_name: str,
+               u_p_sys: float = 0.0) -> CyclePlan:
     """The measurer's plan from a sequence: the live engine and replay both build it here."""
     return CyclePlan(baseline=criteria(sequence.settle_baseline, u_p), filled=criteria(sequence.settle_filled, u_p),
                      expanded=criteria(sequence.settle_expanded, u_p), chambers=chambers, gas=gas, u_p=u_p,
-                     u_t=u_t, discard=sequence.cycles.discard, volume_name=volume_name)
+                     u_p_sys=u_p_sys, u_t=u_t, discard=sequence.cycles.discard, volume_name=volume_name)
