@@ -127,6 +127,9 @@ class Point:
     u_p1_relax: float = 0.0  # relaxation each settle left to come: common to a sphere's points
     u_p2_relax: float = 0.0
     u_pa_relax: float = 0.0
+    u_t1: float = 0.0  # random parts of the temperatures
+    u_t2: float = 0.0
+    u_ta: float = 0.0
 
 
 def points_from_summary(summary: dict[str, Any], step: int, inserted: float, *, u_pa: float = 0.0) -> list[Point]:
@@ -143,7 +146,8 @@ def points_from_summary(summary: dict[str, Any], step: int, inserted: float, *, 
         out.append(Point(step, inserted, pa + c["p1_gauge_pa"], pa + c["p2_gauge_pa"], pa, c["u_p1_pa"],
                          c["u_p2_pa"], u_zero, c.get("t1_k"), c.get("t2_k"), c.get("ta_k"),
                          summary.get("run_id", ""), int(c["index"]), float(c.get("u_p1_relax_pa") or 0.0),
-                         float(c.get("u_p2_relax_pa") or 0.0), float(c.get("u_baseline_relax_pa") or 0.0)))
+                         float(c.get("u_p2_relax_pa") or 0.0), float(c.get("u_baseline_relax_pa") or 0.0),
+                         float(c.get("u_t1_k") or 0.0), float(c.get("u_t2_k") or 0.0), float(c.get("u_ta_k") or 0.0)))
     return out
 
 
@@ -160,7 +164,8 @@ def fit_points(points: Sequence[Point], spheres: Sequence[Sphere], *, gas: str) 
         raise CalibrationError("need at least 2 distinct inserted volumes (the empty cell and a sphere)")
     runs = [CalibrationRun(p.p1, p.p2, p.pa, p.inserted, t1=p.t1, t2=p.t2, ta=p.ta,
                            u_inserted=spheres[p.step].u_volume, u_p=p.u_p1, u_p2=p.u_p2, u_pa=p.u_pa, group=p.step,
-                           u_p1_relax=p.u_p1_relax, u_p2_relax=p.u_p2_relax, u_pa_relax=p.u_pa_relax)
+                           u_p1_relax=p.u_p1_relax, u_p2_relax=p.u_p2_relax, u_pa_relax=p.u_pa_relax,
+                           u_t1=p.u_t1, u_t2=p.u_t2, u_ta=p.u_ta)
             for p in pts]
     return fit_calibration(runs, gas=gas)
 

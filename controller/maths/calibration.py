@@ -72,6 +72,10 @@ class CalibrationRun:
     u_p1_relax: float = 0.0
     u_p2_relax: float = 0.0
     u_pa_relax: float = 0.0
+    # random standard uncertainties of the temperatures (K): a mean of n readings of a noisy thermometer
+    u_t1: float = 0.0
+    u_t2: float = 0.0
+    u_ta: float = 0.0
 
 
 def chi2_quantile(p: float, dof: int) -> float:
@@ -181,6 +185,24 @@ def _u_y_pressures(p1: float, p2: float, pa: float, u_p: float, u_pa: float, *, 
     return math.sqrt(var)
 
 
+def _u_y_temperatures(r: CalibrationRun, *, gas: Gas, mode: str) -> float:
+    """Uncertainty of y from the run's independent temperature errors (central differences)."""
+    if r.t1 is None:
+        return 0.0
+    base = {"t1": r.t1, "t2": r.t2, "ta": r.ta}
+    var = 0.0
+    for name, u in (("t1", r.u_t1), ("t2", r.u_t2), ("ta", r.u_ta)):
+        if not u > 0.0 or base[name] is None:
+            continue
+        up, dn = dict(base), dict(base)
+        up[name] = base[name] + 1e-3 * u  # type: ignore[operator]
+        dn[name] = base[name] - 1e-3 * u  # type: ignore[operator]
+        d = (expansion_ratio(r.p1, r.p2, r.pa, gas=gas, mode=mode, **up)  # type: ignore[arg-type]
+             - expansion_ratio(r.p1, r.p2, r.pa, gas=gas, mode=mode, **dn)) / (2e-3 * u)  # type: ignore[arg-type]
+        var += (d * u) ** 2
+    return math.sqrt(var)
+
+
 def fit_calibration(
     runs: Sequence[CalibrationRun],
     *,
@@ -212,8 +234,8 @@ def fit_calibration(
             raise CalibrationError(f"run {i}: {exc}") from exc
         up = r.u_p if r.u_p is not None else u_p
         upa = r.u_pa if r.u_pa is not None else u_pa
-        u_yp[i] = _u_y_pressures(r.p1, r.p2, r.pa, up or 0.0, upa, u_p2=r.u_p2, gas=g, t1=r.t1, t2=r.t2,
-                                 ta=r.ta, mode=mode)
+        u_yp[i] = math.hypot(_u_y_pressures(r.p1, r.p2, r.pa, up or 0.0, upa, u_p2=r.u_p2, gas=g, t1=r.t1,
+                                            t2=r.t2, ta=r.ta, mode=mode), _u_y_temperatures(r, gas=g, mode=mode))
     u_ins = np.array([float(r.u_inserted) for r in runs])
     if any(r.group is not None for r in runs):
         u_yr = np.array([_u_y_pressures(r.p1, r.p2, r.pa, r.u_p1_relax, r.u_pa_relax, u_p2=r.u_p2_relax, gas=g,

@@ -75,6 +75,9 @@ class CycleResult:
     u_baseline_relax_pa: float = 0.0  # of which the relaxation each settle left to come
     u_p1_relax_pa: float = 0.0
     u_p2_relax_pa: float = 0.0
+    u_t1_k: float = 0.0  # random standard uncertainties of the temperatures (means of readings)
+    u_t2_k: float = 0.0
+    u_ta_k: float = 0.0
     u_random_m3: float = math.nan  # the part of u_volume_m3 that changes from cycle to cycle
 
     def as_dict(self) -> dict[str, Any]:
@@ -116,14 +119,15 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
     u_pa, u_pa_sys = _fin(cyc.u_baseline_pa), _fin(cyc.u_baseline_relax_pa)
     t1, t2, ta = _temp(cyc.t1_k), _temp(cyc.t2_k), _temp(cyc.ta_k)
     flags = list(cyc.flags)
+    u_t1 = _u_mean(u_t, cyc.n_t1) if t1 is not None else 0.0
+    u_t2 = _u_mean(u_t, cyc.n_t2) if t2 is not None else 0.0
+    u_ta = _u_mean(u_t, cyc.n_ta) if ta is not None else 0.0
     try:
         budget = uncertainty.cycle_volume_budget(
             p1, p2, pa, chambers.vc, chambers.vr, u_p1=u_p1, u_p2=u_p2, u_pa=u_pa, cov_cal=chambers.cov,
             t1=t1, t2=t2, ta=ta, u_t=u_t if t1 is not None else 0.0, gas=gas,
             u_p1_sys=u_p1_sys, u_p2_sys=u_p2_sys, u_pa_sys=u_pa_sys, pressures_type_a=True,
-            u_t1=_u_mean(u_t, cyc.n_t1) if t1 is not None else 0.0,
-            u_t2=_u_mean(u_t, cyc.n_t2) if t2 is not None else 0.0,
-            u_ta=_u_mean(u_t, cyc.n_ta) if ta is not None else 0.0,
+            u_t1=u_t1, u_t2=u_t2, u_ta=u_ta,
         )
         volume, u_volume = budget.value, budget.combined
     except VolumeError as exc:
@@ -139,6 +143,7 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
         drift1_pa_s=cyc.drift1_pa_s, drift2_pa_s=cyc.drift2_pa_s, fill_s=cyc.fill_s,
         u_baseline_pa=u_pa, u_p1_sys_pa=u_p1_sys, u_p2_sys_pa=u_p2_sys, u_baseline_relax_pa=u_pa_sys,
         u_p1_relax_pa=_fin(cyc.u_p1_relax_pa), u_p2_relax_pa=_fin(cyc.u_p2_relax_pa),
+        u_t1_k=u_t1, u_t2_k=u_t2, u_ta_k=u_ta,
         u_random_m3=math.sqrt(budget.random_variance) if budget is not None else math.nan,
     )
 

@@ -1,0 +1,287 @@
+"""End-to-end accuracy: does the stated uncertainty cover the truth on instruments of many kinds?
+
+Each simulated instrument is calibrated with spheres first (the spheres' true volumes drawn within
+their certificates), then a specimen is measured several times, every run with a fresh noise
+realisation (its own simulator seed).  Printed per instrument and pooled:
+
+- bias of the run results from the simulator's true solid volume, and bias / U;
+- observed SD of the run results within one calibration, and the mean stated U (k = 2);
+- coverage: the share of runs whose |result - truth| <= U;
+- stated random u of a run's mean / observed SD (the budget's prediction of its own scatter), and
+  the same for single cycles (a cycle's random u / the cycle-to-cycle SD within runs);
+- calibration z-scores (fitted - true) / u for Vc and Vr, and the share within 2 u.
+
+Targets (issue): pooled coverage >= 95 %, >= 90 % per instrument; |bias| < U/2; random u / SD in
+0.8-1.25; calibrated Vc, Vr within U in >= 95 % of calibrations.
+
+How the instruments were chosen: to span what home-built pycnometers are (helium, nitrogen and
+argon; lab 15-30 degC; cells of 12-60 cm^3 with one to three expansion volumes; specimens filling
+15 % to 85 % of the cell; transducer noise 6-20 Pa) and the physics that makes settling hard
+(a thermal time constant of 30 s; a specimen with 0.5 cm^3 of open pores filling with 120 s; a lab
+whose pressure and temperature drift during the run; an absolute transducer with a barometer).
+All are invented; none is a shipped config.
+
+    python bench/bench_accuracy.py [--quick] [--runs N] [--calibrations N] [--jobs N] [--only NAME]
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import math
+import statistics
+import sys
+import tempfile
+import time
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import yaml
+
+from pycnoctl.controller.jobs.calibration import SimCellLoader, Sphere, calibrate
+from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
+from pycnoctl.controller.record.catalog import Catalog
+from pycnoctl.controller.run.control import Controller
+from pycnoctl.drivers.simulated import build_sim_instrument
+from pycnoctl.sim.config import SimConfig, check, config_from_dict
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@dataclasses.dataclass(frozen=True)
+class Spec:
+    """One invented instrument and its specimen."""
+
+    name: str
+    gas: str = "helium"
+    lab_c: float = 22.0
+    cell_cm3: float = 12.0
+    expansions: tuple[float, ...] = (8.0,)
+    use: int = 0  # which expansion volume the sequence names
+    fill_share: float = 0.5  # the specimen's share of the cell
+    noise_pa: float = 8.0
+    thermal_tau_s: float = 2.0
+    pore_cm3: float = 0.0
+    pore_tau_s: float = 120.0
+    pressure_drift_pa_h: float = 0.0  # lab pressure drift, Pa per hour
+    pressure_wave_pa: float = 0.0  # lab pressure oscillation amplitude (period 20 min)
+    temperature_drift_k_h: float = 0.0
+    absolute: bool = False
+    fill_bar: float = 1.3
+
+
+SPECS: tuple[Spec, ...] = (
+    Spec("he-half", noise_pa=6.0),
+    Spec("n2-warm-small", gas="nitrogen", lab_c=30.0, cell_cm3=25.0, expansions=(15.0,), fill_share=0.15,
+         noise_pa=10.0),
+    Spec("ar-cool-large-vr", gas="argon", lab_c=15.0, cell_cm3=45.0, expansions=(30.0,), fill_share=0.4,
+         noise_pa=8.0),
+    Spec("he-three-volumes", lab_c=18.0, cell_cm3=60.0, expansions=(10.0, 25.0, 50.0), use=1, fill_share=0.85,
+         noise_pa=20.0),
+    Spec("he-slow-thermal", thermal_tau_s=30.0, fill_share=0.6, noise_pa=8.0),
+    Spec("he-porous", fill_share=0.5, pore_cm3=0.5, pore_tau_s=120.0, noise_pa=8.0),
+    Spec("he-drifting-lab", pressure_drift_pa_h=-150.0, pressure_wave_pa=40.0, temperature_drift_k_h=0.3,
+         noise_pa=8.0),
+    Spec("n2-absolute", gas="nitrogen", absolute=True, noise_pa=12.0, fill_share=0.3, lab_c=25.0),
+)
+QUICK = ("he-half", "ar-cool-large-vr", "he-slow-thermal", "n2-absolute")
+
+
+def sim_config(spec: Spec, seed: int, solid_cm3: float) -> SimConfig:
+    """The instrument's simulator config (its truth), built on the shipped clean bench's layout."""
+    vols = {"cell": {"volume": f"{spec.cell_cm3} cm^3", "thermal_tau": f"{spec.thermal_tau_s} s"}}
+    valves: dict[str, Any] = {
+        "inlet": {"role": "inlet", "between": ["supply", "cell"], "diameter": "0.05 mm", "cd": 0.7},
+        "vent": {"role": "vent", "between": ["cell", "ambient"], "diameter": "0.8 mm", "cd": 0.7},
+    }
+    for i, v in enumerate(spec.expansions):
+        vols[f"x{i}"] = {"volume": f"{v} cm^3", "thermal_tau": f"{spec.thermal_tau_s * 1.3} s"}
+        valves[f"exp_x{i}"] = {"role": "expansion", "between": ["cell", f"x{i}"], "diameter": "1.0 mm", "cd": 0.7}
+    lab: dict[str, Any] = {"temperature": f"{spec.lab_c} degC", "pressure": "1013.25 hPa",
+                           "pressure_drift": f"{spec.pressure_drift_pa_h / 3600.0} Pa/s",
+                           "temperature_drift": f"{spec.temperature_drift_k_h / 3600.0} K/s"}
+    if spec.pressure_wave_pa:
+        lab["pressure_wave"] = {"amplitude": f"{spec.pressure_wave_pa} Pa", "period": "1200 s"}
+    pressure = {"node": "cell", "kind": "absolute" if spec.absolute else "gauge",
+                "full_scale": "5 bar" if spec.absolute else "3.5 bar", "update_rate": "100 Hz",
+                "noise": f"{spec.noise_pa} Pa"}
+    data = {
+        "name": spec.name, "seed": seed, "gas": spec.gas, "cell": "cell", "lab": lab,
+        "supply": {"set_pressure": f"{spec.fill_bar + 0.1} bar", "cylinder_pressure": "150 bar"},
+        "volumes": vols,
+        "sample": {"solid_volume": f"{solid_cm3} cm^3", "pore_volume": f"{spec.pore_cm3} cm^3",
+                   "pore_tau": f"{spec.pore_tau_s} s"},
+        "valves": valves,
+        "relief": {"node": "cell", "set_pressure": "3.0 bar", "diameter": "1.5 mm"},
+        "instruments": {"pressure": pressure, "thermometer": {"at": "wall", "update_rate": "10 Hz",
+                                                              "noise": "0.01 K"},
+                        "barometer": {"update_rate": "10 Hz", "noise": "2 Pa"}},
+        "initial_open": ["vent", *[f"exp_x{i}" for i in range(len(spec.expansions))]],
+        "sample_period": "0.1 s",
+    }
+    return check(config_from_dict(data))
+
+
+def _sequence(spec: Spec, kind: str, folder: Path) -> Path:
+    """The shipped grain-volume / calibration sequences, for this gas and expansion volume."""
+    data = yaml.safe_load((ROOT / "sequences" / "grain-volume.yaml").read_text())
+    data.update(name=f"{kind}-{spec.name}", kind=kind, gas=spec.gas)
+    data["fill"]["target"] = f"{spec.fill_bar} bar"
+    data["expand"] = {"volume": f"x{spec.use}"}
+    data.pop("sample_defaults", None)
+    data["cycles"] = {"count": 6, "discard": 1} if kind == "calibrate" else \
+        {"count": 8, "discard": 2, "converge": data["cycles"]["converge"], "stop_on_converge": False}
+    path = folder / f"{kind}.yaml"
+    path.write_text(yaml.safe_dump(data))
+    return path
+
+
+class _FreshLoader(SimCellLoader):
+    """Each sphere placed with its own noise realisation, and its true volume as drawn."""
+
+    def __init__(self, config: SimConfig, seed: int, actual: dict[str, float]) -> None:
+        super().__init__(config, actual=actual)
+        self._seed = seed
+
+    def load(self, index: int, sphere: Sphere) -> Any:
+        self.config = self.config.model_copy(update={"seed": self._seed + index})
+        return super().load(index, sphere)
+
+
+def _spheres(spec: Spec, rng: np.random.Generator) -> tuple[list[Sphere], dict[str, float]]:
+    """Two certified spheres of about 30 % and 60 % of the cell (u 0.02 % of the volume, a plausible
+    certificate - from memory), and the volumes truly placed, drawn within the certificates."""
+    out, actual = [], {}
+    for i, share in enumerate((0.3, 0.6), 1):
+        v = share * spec.cell_cm3 * 1e-6
+        s = Sphere(f"sphere {i}", v, 2e-4 * v, spec=f"V={v * 1e6:.4f} cm^3")
+        out.append(s)
+        actual[s.label] = v + rng.normal(0.0, s.u_volume)
+    return out, actual
+
+
+def one_calibration(spec: Spec, cal_index: int, runs: int) -> dict[str, Any]:
+    """Calibrate once, then measure ``runs`` times; the raw figures for the summary."""
+    rng = np.random.default_rng(1000 * hash(spec.name) % 2**31 + cal_index)
+    seed0 = int(rng.integers(1, 2**31 - 1))
+    solid = spec.fill_share * spec.cell_cm3
+    truth_cfg = sim_config(spec, seed0, 0.0)
+    vc_true = truth_cfg.volumes["cell"].volume
+    vr_true = truth_cfg.volumes[f"x{spec.use}"].volume
+    out: dict[str, Any] = {"spec": spec.name, "cal": cal_index, "runs": []}
+    with tempfile.TemporaryDirectory() as tmp:
+        d = Path(tmp)
+        cat = Catalog(d / "catalog.sqlite")
+        spheres, actual = _spheres(spec, rng)
+        cal = calibrate(spheres, _FreshLoader(truth_cfg, seed0, actual), catalog=cat, root=d / "runs",
+                        expansion_volumes=[f"x{spec.use}"], sequence=_sequence(spec, "calibrate", d))
+        (o,) = cal.outcomes
+        out["cal_status"] = cal.status
+        if o.fit is not None:
+            out["vc_z"] = (o.fit.vc - vc_true) / o.fit.u_vc
+            out["vr_z"] = (o.fit.vr - vr_true) / o.fit.u_vr
+            out["chi2"], out["dof"] = o.fit.chi2, o.fit.dof
+        if cal.status != "stored":
+            out["cal_message"] = cal.message
+            cat.close()
+            return out
+        seq = _sequence(spec, "measure", d)
+        for r in range(runs):
+            cfg = sim_config(spec, seed0 + 100 + r, solid)
+            truth = cfg.sample.solid_volume
+            inst = build_sim_instrument(cfg)
+            s = execute(prepare(RunRequest(seq, sample_id=f"{spec.name}-{r}"), inst), Controller(inst),
+                        root=d / "runs", catalog=cat)
+            inst.close()
+            cyc = [c for c in s["cycles"] if c.get("kept")]
+            rep = next((row for row in s.get("budget") or [] if row["kind"] == "repeatability"), None)
+            out["runs"].append({
+                "status": s["status"], "truth": truth * 1e6, "v": s["volume_cm3"], "U": s["volume_u_cm3"],
+                "u": s["volume_u_std_cm3"], "n": len(cyc), "time_s": s["instrument_time_s"],
+                "cycle_v": [c["volume_cm3"] for c in cyc],
+                "cycle_u_random": [c["u_random_m3"] * 1e6 for c in cyc],
+                "u_rep": rep["std_u"] * 1e6 if rep else math.nan,
+                "warnings": s["warnings"],
+            })
+        cat.close()
+    return out
+
+
+def _pooled_sd(groups: list[list[float]]) -> float:
+    num = sum((len(g) - 1) * statistics.variance(g) for g in groups if len(g) > 1)
+    dof = sum(len(g) - 1 for g in groups if len(g) > 1)
+    return math.sqrt(num / dof) if dof else math.nan
+
+
+def summarise(spec: str, cals: list[dict[str, Any]]) -> dict[str, Any]:
+    runs = [r for c in cals for r in c["runs"] if r["v"] is not None]
+    failed = sum(1 for c in cals for r in c["runs"] if r["v"] is None) + sum(1 for c in cals if "cal_message" in c)
+    z = [(c["vc_z"], c["vr_z"]) for c in cals if "vc_z" in c]
+    row: dict[str, Any] = {"instrument": spec, "runs": len(runs), "failed": failed,
+                           "cal_within_U": sum(abs(a) <= 2 and abs(b) <= 2 for a, b in z), "cals": len(z),
+                           "z_vc": [round(a, 2) for a, _ in z], "z_vr": [round(b, 2) for _, b in z]}
+    if not runs:
+        return row
+    err = np.array([r["v"] - r["truth"] for r in runs])
+    U = np.array([r["U"] for r in runs])
+    truth = runs[0]["truth"]
+    sd = _pooled_sd([[r["v"] for r in c["runs"] if r["v"] is not None] for c in cals])
+    cyc_sd = _pooled_sd([r["cycle_v"] for r in runs if len(r["cycle_v"]) > 1])
+    cyc_u = float(np.mean([u for r in runs for u in r["cycle_u_random"]]))
+    pred_run = float(np.mean([cyc_u / math.sqrt(r["n"]) for r in runs if r["n"]]))
+    row.update(truth_cm3=truth, bias_pct=100 * err.mean() / truth, bias_over_U=float(err.mean() / U.mean()),
+               sd_pct=100 * sd / truth, U_pct=100 * U.mean() / truth,
+               coverage=float(np.mean(np.abs(err) <= U)), random_u_over_sd=pred_run / sd if sd > 0 else math.nan,
+               cycle_u_over_sd=cyc_u / cyc_sd if cyc_sd > 0 else math.nan,
+               minutes=float(np.mean([r["time_s"] for r in runs])) / 60.0,
+               warnings=sorted({w.split(":")[0][:60] for r in runs for w in r["warnings"]}))
+    return row
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--quick", action="store_true", help="four instruments, 1 calibration x 4 runs each")
+    ap.add_argument("--runs", type=int, default=None, help="measurement runs per calibration (default 6)")
+    ap.add_argument("--calibrations", type=int, default=None, help="calibrations per instrument (default 2)")
+    ap.add_argument("--jobs", type=int, default=2, help="worker processes")
+    ap.add_argument("--only", action="append", help="instrument name (repeatable)")
+    args = ap.parse_args()
+    specs = [s for s in SPECS if (not args.quick or s.name in QUICK) and (not args.only or s.name in args.only)]
+    n_cal = args.calibrations or (1 if args.quick else 2)
+    n_run = args.runs or (4 if args.quick else 6)
+    t0 = time.perf_counter()
+    tasks = [(s, c) for s in specs for c in range(n_cal)]
+    with ProcessPoolExecutor(max_workers=args.jobs) as pool:
+        done = list(pool.map(one_calibration, [t[0] for t in tasks], [t[1] for t in tasks], [n_run] * len(tasks)))
+    rows = [summarise(s.name, [d for d in done if d["spec"] == s.name]) for s in specs]
+    print(f"== accuracy on {len(specs)} simulated instruments, {n_cal} calibration(s) x {n_run} runs each "
+          f"({time.perf_counter() - t0:.0f} s wall)")
+    head = f"{'instrument':18s} {'bias %':>8s} {'bias/U':>7s} {'SD %':>7s} {'U %':>7s} {'cover':>6s} " \
+           f"{'u/SD run':>8s} {'u/SD cyc':>8s} {'cal in U':>8s} {'min/run':>7s}"
+    print(head)
+    for r in rows:
+        if "coverage" not in r:
+            print(f"{r['instrument']:18s} no result ({r['failed']} failed)")
+            continue
+        print(f"{r['instrument']:18s} {r['bias_pct']:+8.4f} {r['bias_over_U']:+7.2f} {r['sd_pct']:7.4f} "
+              f"{r['U_pct']:7.4f} {r['coverage']:6.0%} {r['random_u_over_sd']:8.2f} {r['cycle_u_over_sd']:8.2f} "
+              f"{r['cal_within_U']:>4d}/{r['cals']:<3d} {r['minutes']:7.1f}")
+    for r in rows:
+        print(f"   {r['instrument']}: calibration z(Vc) {r['z_vc']}, z(Vr) {r['z_vr']}; failed {r['failed']}"
+              + (f"; warnings: {r['warnings']}" if r.get("warnings") else ""))
+    for d in done:
+        if "cal_message" in d:
+            print(f"   {d['spec']} calibration {d['cal']}: {d['cal_message'][:300]}")
+    ok = [r for r in rows if "coverage" in r]
+    if ok:
+        cov = sum(r["coverage"] * r["runs"] for r in ok) / sum(r["runs"] for r in ok)
+        cals = sum(r["cal_within_U"] for r in rows), sum(r["cals"] for r in rows)
+        print(f"pooled: coverage {cov:.1%} of {sum(r['runs'] for r in ok)} runs; calibrations within U "
+              f"{cals[0]}/{cals[1]}; instruments under 90 % coverage: "
+              f"{[r['instrument'] for r in ok if r['coverage'] < 0.9] or 'none'}")
+
+
+if __name__ == "__main__":
+    sys.exit(main())
