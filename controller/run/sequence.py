@@ -690,3 +690,18 @@ def estimate_duration(seq: Sequence, *, fill_time: float = 5.0, settle_typical: 
         total += (fill_time + _settle_time(seq.settle_filled, settle_typical)
                   + seq.leak_check.hold + seq.vent.time)
     return total
+
+
+def phase_times(seq: Sequence, *, fill_time: float = 5.0) -> dict[str, float]:
+    """The static duration of each run state (instrument s), on the same assumptions as
+    estimate_duration: the live view's time left starts from these and replaces each by what the
+    run shows."""
+    out = {"fill": fill_time, "expand": 0.0, "vent": seq.vent.time,
+           "baseline": _settle_time(seq.settle_baseline, None),
+           "settle_filled": _settle_time(seq.settle_filled, None),
+           "settle_expanded": _settle_time(seq.settle_expanded, None)}
+    if seq.purge is not None:
+        out.update(purge_fill=fill_time, purge_hold=seq.purge.hold, purge_vent=seq.purge.vent)
+    if seq.leak_check is not None:
+        out["leak_hold"] = seq.leak_check.hold
+    return out
