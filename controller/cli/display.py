@@ -199,7 +199,7 @@ def _csv_cell(v: Any) -> Any:
     if isinstance(v, bool):
         return "yes" if v else "no"
     if isinstance(v, float):
-        return repr(v)
+        return repr(float(v))  # full precision; a numpy float prints as a plain number
     if isinstance(v, (list, tuple)):
         return " | ".join(str(x) for x in v)
     return v
