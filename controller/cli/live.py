@@ -40,6 +40,12 @@ class Plan:
     converge_within: float | None = None
     timeline: list[str] = field(default_factory=list)
     static: dict[str, float] = field(default_factory=dict)
+    lead: int = 0  # phases before the first cycle (the purge pulses)
+    per_cycle: int = 6  # phases of one cycle
+
+    def cycle_start(self, cycle: int) -> int:
+        """Index in the timeline of the first phase of this cycle (1-based)."""
+        return min(self.lead + max(cycle - 1, 0) * self.per_cycle, max(len(self.timeline) - 1, 0))
 
     @classmethod
     def from_sequence(cls, seq: Any) -> Plan:
@@ -49,6 +55,7 @@ class Plan:
         timeline: list[str] = []
         if seq.purge is not None:
             timeline += ["purge_fill", "purge_hold", "purge_vent"] * seq.purge.pulses
+        lead = len(timeline)
         cycles = seq.cycles.count if seq.expands else (1 if seq.kind == "leak_check" else 0)
         per_cycle = (["vent", "baseline", "fill", "settle_filled", "expand", "settle_expanded"] if seq.expands
                      else ["vent", "baseline", "fill", "settle_filled", "leak_hold"])
@@ -56,7 +63,7 @@ class Plan:
         conv = seq.cycles.converge if seq.expands else None
         return cls(seq.name, seq.kind, seq.cycles.count if seq.expands else 0,
                    seq.cycles.discard if seq.expands else 0, conv.last if conv else None,
-                   conv.within if conv else None, timeline, static)
+                   conv.within if conv else None, timeline, static, lead, len(per_cycle))
 
     @classmethod
     def from_brief(cls, brief: dict[str, Any]) -> Plan:
@@ -91,8 +98,9 @@ class LiveModel:
     cycle: int = 0
     gauge: float | None = None
     t: float | None = None  # instrument time of the last sample
-    t_first: float | None = None
-    wall_first: float | None = None
+    t_first: float | None = None  # instrument time the run began (the first sample, or as the daemon says)
+    t_seen0: float | None = None  # the first sample this view saw, and the wall time then (for the pace)
+    wall_seen0: float | None = None
     wall: float | None = None
     state_t: float | None = None  # instrument time the current state began
     pos: int = -1  # index in plan.timeline
@@ -133,7 +141,9 @@ class LiveModel:
         if isinstance(t, (int, float)):
             self.t = float(t)
             if self.t_first is None:
-                self.t_first, self.wall_first = self.t, wall
+                self.t_first = self.t
+            if self.t_seen0 is None:
+                self.t_seen0, self.wall_seen0 = self.t, wall
             if self.gauge is not None and (self.spark_t is None or self.t - self.spark_t >= SPARK_SPACING_S):
                 self.spark.append(self.gauge)
                 self.spark_t = self.t
@@ -150,7 +160,9 @@ class LiveModel:
             self.seen.setdefault(self.plan.timeline[self.pos], []).append(now - self.state_t)
         self.state, self.state_t = state, now
         tl = self.plan.timeline
-        nxt = next((i for i in range(max(self.pos, 0), len(tl)) if tl[i] == state and i > self.pos), None)
+        # joined mid-run (watch): the cycle number says where in the timeline to look
+        after = self.pos if self.pos >= 0 or not self.cycle else self.plan.cycle_start(self.cycle) - 1
+        nxt = next((i for i in range(max(after, 0), len(tl)) if tl[i] == state and i > after), None)
         if nxt is not None:
             self.pos = nxt
         if state in (RunState.DONE, RunState.FAULT, RunState.ABORTED):
@@ -204,10 +216,10 @@ class LiveModel:
 
     def pace(self) -> float:
         """Wall seconds per instrument second, as seen (1 before there is enough to tell)."""
-        el = self.elapsed()
-        if el < 2.0 or self.wall is None or self.wall_first is None:
+        if self.t is None or self.t_seen0 is None or self.wall is None or self.wall_seen0 is None:
             return 1.0
-        return max(self.wall - self.wall_first, 0.0) / el
+        seen = self.t - self.t_seen0
+        return max(self.wall - self.wall_seen0, 0.0) / seen if seen >= 2.0 else 1.0
 
     def left_wall_s(self) -> float | None:
         left = self.left_instrument_s()
@@ -286,6 +298,8 @@ def time_left_words(m: LiveModel) -> str:
     if m.finished or m.state in ("done", "fault", "aborted"):
         return f"ended ({m.finished or label(m.state)}) after {duration(m.elapsed() * m.pace())}"
     if left is None:
+        if RunState(m.state).purging if m.state in RunState._value2member_map_ else False:
+            return "purging (time left once the cycles begin)"
         return "starting"
     measured = bool(m.seen)
     return f"about {duration(left)} left" + ("" if measured else " (static estimate until a phase is seen)")
