@@ -1,4 +1,4 @@
-"""``pycnoctl analyze RUN``: recompute a stored run from its raw trace, with no hardware.
+"""pycnoctl analyze RUN: recompute a stored run from its raw trace, with no hardware.
 
 RUN is a run ID in the data folder or a run folder. By default the run's own sequence, chamber
 volumes and gas are used (and reproduce the stored result); --sequence applies other settle rules,
@@ -26,8 +26,10 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--calibration", metavar="ID", help="a calibration record from the catalog")
     p.add_argument("--cell-volume", metavar="V", help="cell volume Vc, e.g. '12.003 cm^3'")
     p.add_argument("--expansion-volume", metavar="V", help="expansion volume Vr, e.g. '8.001 cm^3'")
-    p.add_argument("--u-cell-volume", metavar="V", default="0 cm^3")
-    p.add_argument("--u-expansion-volume", metavar="V", default="0 cm^3")
+    p.add_argument("--u-cell-volume", metavar="V", default="0 cm^3",
+                   help="standard uncertainty of --cell-volume (default 0 cm^3)")
+    p.add_argument("--u-expansion-volume", metavar="V", default="0 cm^3",
+                   help="standard uncertainty of --expansion-volume (default 0 cm^3)")
     p.add_argument("--gas", help="gas model for the real-gas correction (default: the run's)")
     p.add_argument("--json", action="store_true", help="print the recomputed result as JSON")
     p.add_argument("--save", action="store_true", help="write reanalysis.json into the run folder")

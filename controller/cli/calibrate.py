@@ -30,7 +30,7 @@ CSV_COLUMNS = ["expansion_volume", "accepted", "record_id", "vc_cm3", "u_vc_cm3"
 def add_parser(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("calibrate", help="calibrate the chamber volumes with reference spheres",
                        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    add_instrument_args(p)
+    add_instrument_args(p, realtime=False)  # the simulated workflow runs as fast as it can
     add_data_arg(p)
     p.add_argument("--sphere", action="append", default=[], metavar="SPEC", required=True,
                    help="a reference sphere by diameter or volume with its certificate standard uncertainty, "

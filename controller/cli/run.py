@@ -30,6 +30,7 @@ from pycnoctl.controller.cli.common import (
     held_log_lines,
     lock_data_folder,
     open_instrument,
+    sim_pace,
 )
 from pycnoctl.controller.cli.display import add_output_args, add_units_arg, parse_units
 from pycnoctl.controller.cli.main import UsageError
@@ -69,7 +70,8 @@ def request_from_args(args: argparse.Namespace) -> Any:
 def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.jobs.measurement import data_dir
 
-    parse_units(args.units)  # a bad --units is refused before anything runs
+    parse_units(args.units)  # a bad --units (or --speed without --sim) is refused before anything runs
+    sim_pace(args)
     request = request_from_args(args)
     # every input proved before the data folder is touched or any device opened
     check_before_opening(args, request.sequence, request.expansion_volume)
