@@ -156,6 +156,9 @@ class LiveModel:
         if state == self.state:
             return
         now = float(t) if isinstance(t, (int, float)) else self.t
+        if now is not None and (self.t is None or now > self.t):
+            self.t = now  # a state event carries the time of the sample that caused it
+            self.t_first = now if self.t_first is None else self.t_first
         if self.state_t is not None and now is not None and 0 <= self.pos < len(self.plan.timeline):
             self.seen.setdefault(self.plan.timeline[self.pos], []).append(now - self.state_t)
         self.state, self.state_t = state, now
@@ -182,7 +185,7 @@ class LiveModel:
 
     # ------------------------------------------------------------------------------- derived
     def _in_phase(self) -> float:
-        return (self.t - self.state_t) if self.t is not None and self.state_t is not None else 0.0
+        return max(self.t - self.state_t, 0.0) if self.t is not None and self.state_t is not None else 0.0
 
     def _base(self, phase: str) -> float:
         """A phase's expected duration from the phases already finished (instrument s)."""

@@ -165,7 +165,7 @@ def print_summary(summary: dict[str, Any], folder: Any, units: Units | None = No
         style = "bold red" if line.startswith(("fault", "converged: NO", "SIMULATED")) else (
             "yellow" if line.startswith("warning") else None)
         con.print(line, style=style, markup=False, highlight=False)
-    con.print(f"record: {folder}", markup=False)
+    con.print(f"record: {folder}", markup=False, soft_wrap=True)  # a path is never folded mid-name
 
 
 def _f(x: float | None, digits: int = 5) -> str:
