@@ -152,3 +152,28 @@ def test_plain_frame_line_for_a_pipe() -> None:
     line = frame_line(m, Units("psi"))
     # 1.1 bar = 15.9542 psi (1 psi = 6894.757 Pa, scipy.constants.psi)
     assert line.startswith("R1 cycle 1 of 8: settle after expansion (P2) | 15.9542 psi gauge")
+
+
+def test_watch_prints_plain_lines_without_a_terminal() -> None:
+    from pycnoctl.controller.cli.client import WatchView
+
+    snap = {"instrument": {"name": "demo"}, "activity": "idle", "state": "idle", "pressure": {}, "valves": {},
+            "interlock": {}, "queue": {"length": 0}, "current_run": None, "last_run": None}
+    view = WatchView(snap, Units(), every=10.0)
+    out = view.feed("run_started", {"run_id": "R9", "sequence": "grain-volume", "kind": "measure",
+                                    "cycles_total": 2, "expected_s": 100.0, "t_start": 0.0, "sample_id": "S1",
+                                    "expansion_volume": "small"}, 0.0)
+    assert out == ["run R9 started: grain-volume, sample S1, expansion volume small"]
+    assert view.feed("sample", {"t": 1.0, "gauge_pa": 0.0, "state": "vent"}, 1.0)[0].startswith("R9 vent |")
+    assert view.feed("sample", {"t": 2.0, "gauge_pa": 0.0, "state": "vent"}, 2.0) == []  # nothing new
+    assert view.feed("sample", {"t": 13.0, "gauge_pa": 0.0, "state": "vent"}, 13.0)  # --every passed
+    done = view.feed("cycle_done", {"cycle": 1, "result": {"index": 1, "p1_gauge_pa": 1.1e5, "p2_gauge_pa": 5e4,
+                                                           "volume_m3": 5e-6, "u_volume_m3": 1.7e-9, "kept": True,
+                                                           "flags": []}}, 14.0)
+    assert done == ["cycle 1: P1 1.10000 P2 0.50000 bar gauge, volume 5.00000 cm3, u 0.00170 cm3 (standard), kept"]
+    end = view.feed("run_finished", {"run_id": "R9", "status": "completed", "volume_cm3": 5.0,
+                                     "volume_u_cm3": 0.0014, "k": 2.0}, 20.0)
+    assert end[-1] == "run R9 ended completed: volume 5.00000 +/- 0.00140 cm3 (expanded U, k = 2)"
+    assert view.model is None
+    text = _text(view.renderable(), 80)
+    assert "demo" in text and all(len(line) <= 80 for line in text.splitlines())
