@@ -126,7 +126,8 @@ def test_result_words_for_a_run_that_did_not_converge() -> None:
                "warnings": ["w1"], "calibration": {"record": None}}
     lines = result_lines(summary, Units(), simulated=False)
     text = "\n".join(lines)
-    assert "converged: NO: the last 3 kept cycles within 0.1 % of their mean rule was not met" in text
+    assert "converged: NO: the sequence asks for the last 3 kept cycles within 0.1 % of their mean, and they " \
+           "were not" in text
     assert "outliers: cycle(s) 5" in text and "SIMULATED" not in text
     assert "calibration: none on record" in text and "warning: w1" in text
 
@@ -150,3 +151,22 @@ def test_csv_and_json_of_a_run(data: Path, capsys: pytest.CaptureFixture[str]) -
     assert rows[0]["kept"] == "no" and rows[0]["note"] == "no (warm-up)"
     p1 = float(rows[-1]["p1_gauge_psi"])
     assert p1 == pytest.approx(1.0969e5 / 6894.757293168361, rel=1e-3)  # scipy.constants.psi
+
+
+def test_readme_quick_start_output_is_what_run_prints(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    """The README shows the Quick start's output as printed: same lines and words (figures and IDs masked,
+    so a better simulator or settle rule changes no README)."""
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    block = readme.split("## Quick start", 1)[1].split("```text\n", 1)[1].split("\n```", 1)[0]
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("PYCNOCTL_DATA", raising=False)
+    monkeypatch.delenv("PYCNOCTL_UNITS", raising=False)
+    monkeypatch.setenv("COLUMNS", "100")
+    text = _out(capsys, "run", "grain-volume", "--sim", "--sample", "AL-0417", "--mass", "19.62g")
+
+    def masked(t: str) -> list[str]:
+        t = RUN_ID.sub("RUN", t)
+        return [re.sub(r"\d+(\.\d+)?", "#", line).rstrip() for line in t.splitlines() if line.strip()]
+
+    assert masked(block) == masked(text)

@@ -26,6 +26,7 @@ SETTLES = ("baseline", "settle_filled", "settle_expanded")
 SPARK = "▁▂▃▄▅▆▇█"
 SPARK_POINTS = 40
 SPARK_SPACING_S = 1.0  # instrument seconds between sparkline points (a 40 s window)
+SPARK_MIN_SPAN = 500.0  # Pa: a settled gauge's noise draws as a flat line, not as full-height bars
 
 
 @dataclass
@@ -265,7 +266,9 @@ def duration(s: float | None) -> str:
     """Seconds for people: '45 s', '7 min 05 s', '1 h 16 min'."""
     if s is None:
         return "-"
-    s = max(round(s), 0)
+    if s < 1.0:
+        return "under 1 s"
+    s = round(s)
     h, rem = divmod(s, 3600)
     m, sec = divmod(rem, 60)
     if h:
@@ -277,7 +280,7 @@ def sparkline(values: list[float]) -> str:
     if not values:
         return ""
     lo, hi = min(values), max(values)
-    span = (hi - lo) or 1.0
+    span = max(hi - lo, SPARK_MIN_SPAN)
     return "".join(SPARK[min(int((v - lo) / span * len(SPARK)), len(SPARK) - 1)] for v in values)
 
 
@@ -305,7 +308,8 @@ def time_left_words(m: LiveModel) -> str:
             return "purging (time left once the cycles begin)"
         return "starting"
     measured = bool(m.seen)
-    return f"about {duration(left)} left" + ("" if measured else " (static estimate until a phase is seen)")
+    words = "under 1 s left" if left < 1.0 else f"about {duration(left)} left"
+    return words + ("" if measured else " (static estimate until a phase is seen)")
 
 
 def render(m: LiveModel, units: Units) -> Any:

@@ -140,8 +140,8 @@ def converged_words(summary: dict[str, Any]) -> str:
         return "not judged (the sequence sets no convergence rule)" if not rule else "not judged"
     if conv:
         return f"yes ({rule_text})" if rule_text else "yes"
-    return (f"NO: the {rule_text} rule was not met; the mean is reported, but the specimen may still "
-            "be outgassing or the temperature drifting") if rule_text else "NO"
+    return (f"NO: the sequence asks for the {rule_text}, and they were not; the mean is reported, but the "
+            "specimen may still be giving off gas or the temperature drifting") if rule_text else "NO"
 
 
 def calibration_words(summary: dict[str, Any]) -> str:
