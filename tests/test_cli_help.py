@@ -55,7 +55,7 @@ def test_shared_options_are_spelt_alike() -> None:
     assert _option("calibrate", "--speed") is None  # its simulated workflow has no pace to set
     for verb in ("run", "check", "calibrate", "runs", "show", "serve", "analyze", "report"):
         assert _option(verb, "--data") is not None, verb
-    for verb in ("run", "runs", "show", "calibrate", "compute", "queue"):
+    for verb in ("run", "runs", "show", "calibrate", "compute", "queue", "analyze"):
         assert _option(verb, "--json") is not None and _option(verb, "--csv") is not None, verb
 
 

@@ -130,6 +130,7 @@ def test_view_fits_the_terminal_and_shows_the_cycles(width: int) -> None:
     assert all(len(line) <= width for line in lines)
     assert "R20261203T165143Z-96995c" in text and "SIMULATED" in text
     assert "1.09690 bar gauge" in text and "settle after fill (P1)" in text
+    assert "purge > vent > zero > fill > [P1] > expand > P2" in text  # the phase strip, the current bracketed
     assert "4.99989" in text and "0.00168" in text  # volume and u of each cycle, whole
     assert "u is the standard uncertainty" in text
     assert "needs 3 kept cycles, has 1" in text

@@ -291,6 +291,28 @@ def label(state: str) -> str:
         return state
 
 
+# the phases of one cycle as the phase strip names them (state -> short word)
+STRIP: list[tuple[str, str]] = [("vent", "vent"), ("baseline", "zero"), ("fill", "fill"), ("settle_filled", "P1"),
+                                ("expand", "expand"), ("settle_expanded", "P2")]
+LEAK_STRIP: list[tuple[str, str]] = [*STRIP[:4], ("leak_hold", "hold")]
+
+
+def phase_strip(m: LiveModel) -> Any:
+    """The cycle's phases in order, the current one bracketed and bold (the purge as one word before them)."""
+    from rich.text import Text
+
+    strip = LEAK_STRIP if m.plan.kind == "leak_check" else STRIP
+    words = [("purge", "purge"), *strip] if m.plan.lead else list(strip)
+    purging = m.state.startswith("purge")
+    out = Text()
+    for i, (state, word) in enumerate(words):
+        if i:
+            out.append(" > ", style="dim")
+        current = state == m.state or (state == "purge" and purging)
+        out.append(f"[{word}]" if current else word, style="bold reverse" if current else "dim")
+    return out
+
+
 def status_words(m: LiveModel) -> str:
     """State, cycle and phase in one phrase."""
     text = label(m.state)
@@ -325,6 +347,8 @@ def render(m: LiveModel, units: Units) -> Any:
     title = m.plan.name + (f" ({m.plan.kind})" if m.plan.kind else "") + (f"  run {m.run_id}" if m.run_id else "")
     head.add_row("run", title + ("  [SIMULATED]" if m.simulated else ""))
     head.add_row("state", status_words(m))
+    if m.plan.timeline:
+        head.add_row("phase", phase_strip(m))
     p = f"{units.p(m.gauge)} {units.p_label}" if m.gauge is not None else "no valid reading"
     head.add_row("pressure", Text(f"{p}  {sparkline(list(m.spark))}"))
     if m.plan.cycles:
