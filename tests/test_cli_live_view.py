@@ -166,6 +166,7 @@ def test_watch_prints_plain_lines_without_a_terminal() -> None:
                                     "expansion_volume": "small"}, 0.0)
     assert out == ["run R9 started: grain-volume, sample S1, expansion volume small"]
     assert view.feed("sample", {"t": 1.0, "gauge_pa": 0.0, "state": "vent"}, 1.0)[0].startswith("R9 vent |")
+    assert "judged when the run ends" in view.model.convergence()  # the daemon's brief has no rule
     assert view.feed("sample", {"t": 2.0, "gauge_pa": 0.0, "state": "vent"}, 2.0) == []  # nothing new
     assert view.feed("sample", {"t": 13.0, "gauge_pa": 0.0, "state": "vent"}, 13.0)  # --every passed
     done = view.feed("cycle_done", {"cycle": 1, "result": {"index": 1, "p1_gauge_pa": 1.1e5, "p2_gauge_pa": 5e4,

@@ -135,8 +135,11 @@ def submit(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(out, indent=2))
     else:
-        print(f"queued {out['run_id']} ({out['sequence']}, expansion volume {out['expansion_volume']}, "
-              f"about {out['expected_s'] / 60:.0f} min or more)")
+        from pycnoctl.controller.cli.live import duration
+
+        print(f"queued {out['run_id']} ({out['sequence']}, expansion volume {out['expansion_volume']}); "
+              f"static estimate {duration(out['expected_s'])} of instrument time, longer while settles are "
+              "slow: pycnoctl watch shows the time left from the run's own pace")
         for w in out.get("warnings") or []:
             print(f"warning: {w}")
     return 0

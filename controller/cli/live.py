@@ -42,6 +42,7 @@ class Plan:
     timeline: list[str] = field(default_factory=list)
     static: dict[str, float] = field(default_factory=dict)
     lead: int = 0  # phases before the first cycle (the purge pulses)
+    rules_known: bool = True  # False when only the daemon's brief is known (no discard or convergence rule)
     per_cycle: int = 6  # phases of one cycle
 
     def cycle_start(self, cycle: int) -> int:
@@ -74,7 +75,8 @@ class Plan:
         timeline = ["vent", "baseline", "fill", "settle_filled", "expand", "settle_expanded"] * n + ["vent"]
         each = float(brief.get("expected_s") or 0.0) / max(len(timeline), 1)
         return cls(str(brief.get("sequence") or "?"), str(brief.get("kind") or "measure"), n,
-                   int(brief.get("discard") or 0), timeline=timeline, static=dict.fromkeys(timeline, each))
+                   int(brief.get("discard") or 0), timeline=timeline, static=dict.fromkeys(timeline, each),
+                   rules_known=False)
 
 
 @dataclass
@@ -244,6 +246,8 @@ class LiveModel:
         last, within = self.plan.converge_last, self.plan.converge_within
         if not self.plan.cycles:
             return ""
+        if not self.plan.rules_known:
+            return f"{len(kept)} cycle(s) kept so far (convergence is judged when the run ends)"
         if last is None or within is None:
             return f"{len(kept)} cycle(s) kept so far (the sequence sets no convergence rule)"
         if len(kept) < last:
