@@ -19,9 +19,10 @@ COMMANDS: dict[str, list[str]] = {
     "pycnoctl --version": [*CLI, "--version"],
     "pycnoctl --help": [*CLI, "--help"],
     "pycnoctl compute ...": [*CLI, "compute", "--cell-volume", "12 cm3", "--expansion-volume", "8 cm3",
-                             "--p1", "2.4 bar", "--p2", "1.6 bar", "--temperature", "25 degC", "--mass", "19.62 g"],
+                             "--p1", "2.4 bar", "--p2", "1.6 bar", "--absolute", "--temperature", "25 degC",
+                             "--mass", "19.62 g"],
     "pycnoctl compute --u-p in inHg (builds registry)": [*CLI, "compute", "--cell-volume", "12", "--expansion-volume",
-                                                       "8", "--p1", "2.4 bar", "--p2", "1.6 bar", "--u-p",
+                                                       "8", "--p1", "2.4 bar", "--p2", "1.6 bar", "--absolute", "--u-p",
                                                        "0.0001 inHg"],
     "pycnoctl runs --help": [*CLI, "runs", "--help"],
 }

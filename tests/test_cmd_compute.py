@@ -38,8 +38,10 @@ def test_ideal_textbook_value(capsys):
 def test_gauge_flag_tags_and_absolute_agree(capsys):
     base = ["--cell-volume", "10 cm^3", "--expansion-volume", "7 mL"]
     a = run_json(capsys, *base, "--p1", "1.4 bar", "--p2", "0.58 bar", "--gauge")
-    b = run_json(capsys, *base, "--p1", "241.325 kPa", "--p2", "159.325 kPa")
-    c = run_json(capsys, *base, "--p1", "1.4 bar gauge", "--p2", "159325 Pa")
+    b = run_json(capsys, *base, "--p1", "241.325 kPa", "--p2", "159.325 kPa", "--absolute")
+    c = run_json(capsys, *base, "--p1", "1.4 bar gauge", "--p2", "159325 Pa", "--absolute")
+    e = run_json(capsys, *base, "--p1", "1.4 bar", "--p2", "0.58 bar")  # gauge without saying so, as in `run`
+    assert e["volume_cm3"] == a["volume_cm3"]
     d = run_json(capsys, *base, "--p1", "20.305 psi", "--p2", "0.58", "--gauge")  # 20.305 psi ~ 1.39998 bar
     assert a["volume_cm3"] == pytest.approx(b["volume_cm3"], rel=1e-12)
     assert a["volume_cm3"] == pytest.approx(c["volume_cm3"], rel=1e-12)
@@ -63,7 +65,7 @@ def test_silicon_sphere_density_on_coolprop_helium(capsys):
     out = run_json(capsys, "--cell-volume", "10", "--expansion-volume", "7", "--p1", f"{p1!r} Pa",
                    "--p2", f"{p2!r} Pa", "--temperature", "25 degC", "--mass", f"{mass_g!r} g",
                    "--u-p", "50 Pa", "--u-mass", "0.1 mg", "--u-cell-volume", "0.002",
-                   "--u-expansion-volume", "0.003", "--water-temperature", "20 degC")
+                   "--u-expansion-volume", "0.003", "--water-temperature", "20 degC", "--absolute")
     assert out["volume_cm3"] == pytest.approx(6.5, rel=1e-5)
     assert out["density_g_cm3"] == pytest.approx(rho_si, rel=1e-5)
     assert abs(out["ideal_gas_volume_cm3"] / 6.5 - 1) > 1e-4  # ideal form misses by more
@@ -148,5 +150,6 @@ def test_roundtrip_with_expansion_pressure(capsys):
     vs = 3.3 * CM3
     p2 = expansion_pressure(vs, PA + 1.5e5, PA, 10 * CM3, 7 * CM3, gas="nitrogen", t1=295.0)
     out = run_json(capsys, "--cell-volume", "10", "--expansion-volume", "7", "--p1", f"{PA + 1.5e5!r} Pa",
-                   "--p2", f"{p2!r} Pa", "--gas", "N2", "--temperature", "295 K", "--mode", "sample_first")
+                   "--p2", f"{p2!r} Pa", "--gas", "N2", "--temperature", "295 K", "--mode", "sample_first",
+                   "--absolute")
     assert out["volume_cm3"] == pytest.approx(3.3, rel=1e-10)

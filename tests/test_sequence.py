@@ -267,7 +267,7 @@ def test_unknown_nested_key_position(tmp_path: Path) -> None:
     text = edit("    within: 0.05 %", "    within: 0.05 %\n    witin: 0.1 %")
     line, col, msg = only(write(tmp_path, text))
     assert (line, col) == pos(text, "witin")
-    assert msg == "unknown key 'witin'"
+    assert msg == "unknown key 'witin'; did you mean 'within'?"
 
 
 def test_unknown_top_level_key_position(tmp_path: Path) -> None:
@@ -644,8 +644,8 @@ def test_file_edited_while_loading_is_refused(tmp_path: Path, monkeypatch: pytes
     path = write(tmp_path, GOOD)
     real = sq.load_file
 
-    def load_then_edit(p):  # type: ignore[no-untyped-def]
-        doc = real(p)
+    def load_then_edit(p, **kw):  # type: ignore[no-untyped-def]
+        doc = real(p, **kw)
         path.write_text(edit("  target: 1.30 bar", "  target: 1.70 bar"), encoding="utf-8")
         return doc
 

@@ -1,4 +1,4 @@
-"""``pycnoctl analyze RUN``: recompute a stored run from its raw trace, with no hardware.
+"""pycnoctl analyze RUN: recompute a stored run from its raw trace, with no hardware.
 
 RUN is a run ID in the data folder or a run folder. By default the run's own sequence, chamber
 volumes and gas are used (and reproduce the stored result); --sequence applies other settle rules,
@@ -14,6 +14,7 @@ import math
 from typing import Any
 
 from pycnoctl.controller.cli.common import add_data_arg, lock_data_folder, resolve_run_folder
+from pycnoctl.controller.cli.display import add_output_args, add_units_arg, parse_units
 from pycnoctl.controller.cli.main import UsageError
 
 
@@ -26,10 +27,13 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--calibration", metavar="ID", help="a calibration record from the catalog")
     p.add_argument("--cell-volume", metavar="V", help="cell volume Vc, e.g. '12.003 cm^3'")
     p.add_argument("--expansion-volume", metavar="V", help="expansion volume Vr, e.g. '8.001 cm^3'")
-    p.add_argument("--u-cell-volume", metavar="V", default="0 cm^3")
-    p.add_argument("--u-expansion-volume", metavar="V", default="0 cm^3")
+    p.add_argument("--u-cell-volume", metavar="V", default="0 cm^3",
+                   help="standard uncertainty of --cell-volume (default 0 cm^3)")
+    p.add_argument("--u-expansion-volume", metavar="V", default="0 cm^3",
+                   help="standard uncertainty of --expansion-volume (default 0 cm^3)")
     p.add_argument("--gas", help="gas model for the real-gas correction (default: the run's)")
-    p.add_argument("--json", action="store_true", help="print the recomputed result as JSON")
+    add_units_arg(p)
+    add_output_args(p, what="the recomputed result (--csv: its cycles)")
     p.add_argument("--save", action="store_true", help="write reanalysis.json into the run folder")
     p.set_defaults(func=main)
 
@@ -70,6 +74,7 @@ def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.record.runfolder import load_run
     from pycnoctl.controller.run.sequence import load_sequence, resolve_sequence, sequence_from_text
 
+    units = parse_units(args.units)
     root = data_dir(args.data)
     folder = resolve_run_folder(root, args.run)
     run = load_run(folder)
@@ -114,14 +119,23 @@ def main(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(out, indent=2))
         return 0
+    if args.csv:
+        import sys
+
+        from pycnoctl.controller.cli.display import write_csv
+        from pycnoctl.controller.cli.result_view import cycle_csv_columns, cycle_records
+
+        parsed = {"cycles": {"discard": seq.cycles.discard}}
+        write_csv(cycle_records({**out, "sequence": {"parsed": parsed}}, units), cycle_csv_columns(units), sys.stdout)
+        return 0
     print(f"run {out['run_id']} re-analysed with sequence {seq.name!r}, gas {gas}, "
           f"Vc {out['chambers']['vc_cm3']:.5f} cm3, Vr {out['chambers']['vr_cm3']:.5f} cm3")
     for c in out["cycles"]:
         mark = "" if c["kept"] else " (discarded)"
-        print(f"  cycle {c['index']}: P1 {c['p1_gauge_pa'] / 1e5:.5f} bar g, P2 {c['p2_gauge_pa'] / 1e5:.5f} bar g, "
+        print(f"  cycle {c['index']}: P1 {units.p(c['p1_gauge_pa'])}, P2 {units.p(c['p2_gauge_pa'])} {units.p_label}, "
               f"V {c['volume_cm3']:.5f} cm3{mark} {' '.join(c['flags'])}")
     if out["volume_cm3"] is not None:
-        print(f"volume: {out['volume_cm3']:.5f} cm3 +/- {out['volume_u_cm3']:.5f} cm3 (k={out['k']:g})")
+        print(f"volume: {out['volume_cm3']:.5f} cm3 +/- {out['volume_u_cm3']:.5f} cm3 (expanded U, k = {out['k']:g})")
         if out["stored_volume_cm3"] is not None and math.isfinite(out["stored_volume_cm3"]):
             print(f"stored result: {out['stored_volume_cm3']:.5f} cm3")
     for f in out["flags"]:

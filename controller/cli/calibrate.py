@@ -1,9 +1,12 @@
-"""``pycnoctl calibrate``: measure the chamber volumes with the empty cell and reference spheres.
+"""pycnoctl calibrate: measure the chamber volumes with the empty cell and reference spheres.
 
 For each step (empty cell, then each --sphere) and each expansion volume the calibration sequence runs
 once; Vc and Vr are fitted by weighted least squares and the calibration is stored in the catalog only
 if its residuals are what the pressure noise explains (chi-square test).  Later runs compute with the
 latest stored calibration of their expansion volume and gas.
+
+Volumes in cm3 with standard uncertainties (k = 1); the table never cuts a figure (on a narrow
+terminal it leaves out the less important columns and says which; --csv and --json have all).
 
 Exit codes: 0 stored, 2 bad input, 3 a run faulted, 4 aborted, 6 refused (residuals too large).
 """
@@ -16,15 +19,18 @@ import sys
 from typing import Any
 
 from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, lock_data_folder
+from pycnoctl.controller.cli.display import add_output_args
 from pycnoctl.controller.cli.main import UsageError
 
 EXIT = {"stored": 0, "fault": 3, "aborted": 4, "refused": 6}
+CSV_COLUMNS = ["expansion_volume", "accepted", "record_id", "vc_cm3", "u_vc_cm3", "vr_cm3", "u_vr_cm3", "corr", "chi2",
+               "dof", "n_points", "reason", "run_ids", "residuals_volume_cm3"]
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("calibrate", help="calibrate the chamber volumes with reference spheres",
                        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    add_instrument_args(p)
+    add_instrument_args(p, realtime=False)  # the simulated workflow runs as fast as it can
     add_data_arg(p)
     p.add_argument("--sphere", action="append", default=[], metavar="SPEC", required=True,
                    help="a reference sphere by diameter or volume with its certificate standard uncertainty, "
@@ -37,7 +43,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--alpha", type=float, default=0.01,
                    help="significance of the chi-square refusal test (default 0.01)")
     p.add_argument("--yes", action="store_true", help="no prompts between steps (the cell is loaded already)")
-    p.add_argument("--json", action="store_true", help="print the outcome as JSON")
+    add_output_args(p, what="the outcome (--csv: one line per expansion volume)")
     p.set_defaults(func=main)
 
 
@@ -51,7 +57,7 @@ def main(args: argparse.Namespace) -> int:
         raise UsageError(f"--sphere: {exc}") from None
     if not 0.0 < args.alpha < 0.5:
         raise UsageError("--alpha must lie between 0 and 0.5")
-    say = (lambda text: None) if args.json else (lambda text: print(text, file=sys.stderr))
+    say = (lambda text: None) if (args.json or args.csv) else (lambda text: print(text, file=sys.stderr))
     lock = lock_data_folder(data_dir(args.data), "calibrate")  # before any device is opened
     try:
         return _calibrate(args, spheres, say)
@@ -102,31 +108,39 @@ def _calibrate(args: argparse.Namespace, spheres: list[Any], say: Any) -> int:
     if args.json:
         print(json.dumps({"status": outcome.status, "message": outcome.message,
                           "volumes": [o.as_dict() for o in outcome.outcomes]}, indent=2, default=float))
+    elif args.csv:
+        from pycnoctl.controller.cli.display import write_csv
+
+        write_csv([o.as_dict() for o in outcome.outcomes], CSV_COLUMNS, sys.stdout)
     else:
         print_outcome(outcome)
     return EXIT.get(outcome.status, 3)
 
 
-def print_outcome(outcome: Any) -> None:
-    from rich.console import Console
-    from rich.table import Table
-
-    con = Console()
-    table = Table(title="calibration")
-    for col in ("volume", "Vc / cm3", "u(Vc)", "Vr / cm3", "u(Vr)", "r(Vc,Vr)", "chi2 / dof", "result"):
-        table.add_column(col, justify="right")
+def outcome_rows(outcome: Any) -> list[list[str]]:
+    rows = []
     for o in outcome.outcomes:
         d = o.as_dict()
+        verdict = "stored" if o.accepted else "REFUSED"
         if o.fit is None:
-            table.add_row(o.expansion_volume, "-", "-", "-", "-", "-", "-", "not fitted")
+            rows.append([o.expansion_volume, "-", "-", "-", "-", "-", "-", "not fitted"])
             continue
-        table.add_row(o.expansion_volume, f"{d['vc_cm3']:.5f}", f"{d['u_vc_cm3']:.5f}", f"{d['vr_cm3']:.5f}",
-                      f"{d['u_vr_cm3']:.5f}", f"{d['corr']:.4f}", f"{d['chi2']:.3g} / {d['dof']}",
-                      "stored" if o.accepted else "[red]REFUSED[/]")
-    con.print(table)
+        rows.append([o.expansion_volume, f"{d['vc_cm3']:.5f}", f"{d['u_vc_cm3']:.5f}", f"{d['vr_cm3']:.5f}",
+                     f"{d['u_vr_cm3']:.5f}", f"{d['corr']:.4f}", f"{d['chi2']:.3g} / {d['dof']}", verdict])
+    return rows
+
+
+def print_outcome(outcome: Any) -> None:
+    from pycnoctl.controller.cli.display import Column, console, print_table
+
+    con = console()
+    cols = [Column("volume"), Column("Vc / cm3", True), Column("u(Vc)", True), Column("Vr / cm3", True),
+            Column("u(Vr)", True), Column("r(Vc,Vr)", True, 2), Column("chi2 / dof", True, 1), Column("result")]
+    print_table(cols, outcome_rows(outcome), title="calibration", con=con)
     con.print("uncertainties are standard (k = 1), from the pressure noise and the sphere certificates")
     for o in outcome.outcomes:
         if o.accepted:
-            con.print(f"{o.expansion_volume}: calibration {o.record_id} stored (runs {', '.join(o.run_ids)})")
+            con.print(f"{o.expansion_volume}: calibration {o.record_id} stored (runs {', '.join(o.run_ids)})",
+                      markup=False)
         else:
-            con.print(f"[red]{o.expansion_volume}: refused: {o.reason}[/]")
+            con.print(f"{o.expansion_volume}: refused: {o.reason}", style="red", markup=False)

@@ -1,4 +1,4 @@
-"""``pycnoctl check``: prove a sequence sound before it touches hardware.
+"""pycnoctl check: prove a sequence sound before it touches hardware.
 
 First the file itself (types, units, ranges, unknown and duplicate keys: every problem as
 file:line:col), then against the instrument (names, pressures below the interlock limit), then a
@@ -28,7 +28,11 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("sequence", help="sequence file, or the name of a shipped one")
     g = p.add_mutually_exclusive_group()
     g.add_argument("--instrument", metavar="CONFIG", help="check against this instrument config (read only)")
-    g.add_argument("--sim", metavar="SIMCONFIG", help="dry-run on this simulator config")
+    g.add_argument("--sim", nargs="?", const="", metavar="SIMCONFIG",
+                   help="dry-run on this simulator config (the clean default without a file; the default anyway)")
+    p.add_argument("--data", metavar="DIR",
+                   help="keep the dry run's record in this data folder (read it with pycnoctl show; sample "
+                        "'dry-run'); default: a temporary folder, deleted afterwards")
     p.add_argument("--no-dry-run", action="store_true", help="only the static checks")
     p.add_argument("--json", action="store_true", help="print the findings as JSON")
     p.set_defaults(func=main)
@@ -48,23 +52,29 @@ def static_check(seq_ref: str, *, expansion_volumes: list[str], max_pressure: fl
     return seq, warnings
 
 
-def dry_run(seq_ref: str, make_instrument: Callable[[], Instrument]) -> dict[str, Any]:
-    """Run the sequence on a fresh simulated instrument at full speed; the record goes to a temporary folder."""
+def dry_run(seq_ref: str, make_instrument: Callable[[], Instrument], keep: Path | None = None) -> dict[str, Any]:
+    """Run the sequence on a fresh simulated instrument at full speed; the record goes to a temporary
+    folder, or to the data folder ``keep`` (under its writer lock, like any run)."""
+    from pycnoctl.controller.cli.common import lock_data_folder
     from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
     from pycnoctl.controller.record.catalog import Catalog
     from pycnoctl.controller.run.control import Controller
 
+    lock = lock_data_folder(keep, "check") if keep is not None else None
     instrument = make_instrument()
     try:
         prepared = prepare(RunRequest(seq_ref, sample_id="dry-run"), instrument)
         with tempfile.TemporaryDirectory(prefix="pycnoctl-check-") as tmp:
-            catalog = Catalog(Path(tmp) / "catalog.sqlite")
+            root = keep if keep is not None else Path(tmp)
+            catalog = Catalog(root / "catalog.sqlite")
             try:
-                return execute(prepared, Controller(instrument), root=Path(tmp) / "runs", catalog=catalog)
+                return execute(prepared, Controller(instrument), root=root / "runs", catalog=catalog)
             finally:
                 catalog.close()
     finally:
         instrument.close()
+        if lock is not None:
+            lock.release()
 
 
 def _simulated_only(cfg: Any) -> bool:
@@ -86,7 +96,7 @@ def main(args: argparse.Namespace) -> int:
     from pycnoctl.drivers.simulated import build_sim_instrument
 
     def make() -> Instrument:
-        return build_sim_instrument(args.sim)
+        return build_sim_instrument(args.sim or None)
 
     factory: Callable[[], Instrument] | None = make
     where = str(args.sim) if args.sim else "built-in clean simulator"
@@ -122,13 +132,19 @@ def main(args: argparse.Namespace) -> int:
             factory = None
     code = 0
     if factory is not None and not args.no_dry_run:
-        summary = dry_run(args.sequence, factory)
+        keep = None
+        if args.data:
+            from pycnoctl.controller.jobs.measurement import data_dir
+
+            keep = data_dir(args.data)
+        summary = dry_run(args.sequence, factory, keep)
         report["dry_run"] = {
             "simulator": where,
             "status": summary["status"], "expected_duration_s": summary["instrument_time_s"],
             "wall_time_s": summary["wall_time_s"], "cycles": len(summary["cycles"]),
             "volume_cm3": summary["volume_cm3"], "volume_u_cm3": summary["volume_u_cm3"],
             "fault": summary["fault"], "warnings": summary["warnings"],
+            "record": str(keep / "runs" / summary["run_id"]) if keep is not None else None,
         }
         code = 0 if summary["status"] == "completed" else 3
     if args.json:
@@ -154,6 +170,8 @@ def _print(r: dict[str, Any]) -> None:
         for w in d["warnings"]:
             print(f"  warning: {w}")
         print(f"expected duration: {_dur(d['expected_duration_s'])}")
+        if d.get("record"):
+            print(f"dry-run record: {d['record']}")
 
 
 def _dur(s: float) -> str:

@@ -1,6 +1,6 @@
-"""Verbs that talk to a running ``pycnoctl serve``: submit, status, watch, abort, reset, queue.
+"""Verbs that talk to a running pycnoctl serve: submit, status, watch, abort, reset, queue.
 
-They reach the daemon at http://127.0.0.1:8765 unless --url says otherwise; the token comes from
+They reach the daemon at --url, else $PYCNOCTL_URL, else http://127.0.0.1:8765; the token comes from
 --token or $PYCNOCTL_TOKEN.  Exit codes: 0 done, 1 the daemon refused (409, 422 ...), 2 bad input,
 6 the daemon cannot be reached.
 """
@@ -14,20 +14,53 @@ import time
 from typing import Any
 
 from pycnoctl.controller.cli.common import add_sample_args
+from pycnoctl.controller.cli.display import Units, add_output_args, add_units_arg, parse_units
 from pycnoctl.controller.cli.main import UsageError
 from pycnoctl.controller.service.client import DEFAULT_URL, DaemonClient, DaemonError
+
+DESCRIPTIONS = {
+    "submit": """Queue a run on the daemon.  SEQUENCE is the name of a shipped sequence, or a local file whose
+text is sent (the daemon never reads our paths).  The answer gives the run ID and a first estimate of
+its duration; follow it with pycnoctl watch, or on the dashboard.""",
+    "status": """One look at the daemon and the instrument: what it is doing, the pressure (gauge), the valves,
+a latched interlock, the active run with its finished cycles, the queue and the last result.""",
+    "watch": """Follow the daemon live: the same view as pycnoctl run (state and phase, pressure with its recent
+history, each finished cycle, convergence, progress and wall-clock time left).  When the output is
+not a terminal (a pipe, a log file) it prints plain lines instead: one per phase change, finished
+cycle, run start and end, and at most one every --every seconds in between.  Ctrl-C leaves the view;
+the run goes on.""",
+    "abort": """Abort the active run: the instrument goes to the safe state (inlet closed, vent and expansion
+valves open), the record up to that moment is kept, and the queue pauses until resumed.""",
+    "reset": """Operator reset of a latched interlock, after the cause has been dealt with.  The daemon refuses
+it while the condition lasts (the pressure still too high, the gauge still silent); a reset never
+restarts a run.""",
+    "queue": """List the runs waiting on the daemon, or change the queue: --remove takes a queued run off it,
+--pause stops it after the active run, --resume starts it again (after a fault or an abort the queue
+pauses by itself).""",
+}
+
+EPILOG = """The daemon is at --url, else $PYCNOCTL_URL, else http://127.0.0.1:8765; the token comes from
+--token or $PYCNOCTL_TOKEN.  Exit codes: 0 done, 1 the daemon refused, 2 bad input, 6 the daemon
+cannot be reached."""
 
 VERBS = ("submit", "status", "watch", "abort", "reset", "queue")
 
 
 def _common(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--url", default=DEFAULT_URL, help=f"daemon address (default {DEFAULT_URL})")
+    p.add_argument("--url", default=None,
+                   help=f"daemon address (default $PYCNOCTL_URL, else {DEFAULT_URL})")
     p.add_argument("--token", help="API token (default $PYCNOCTL_TOKEN)")
 
 
+def _verb(sub: argparse._SubParsersAction, verb: str) -> argparse.ArgumentParser:
+    from pycnoctl.controller.cli.main import VERB_TABLE
+
+    return sub.add_parser(verb, help=VERB_TABLE[verb][1], description=DESCRIPTIONS[verb], epilog=EPILOG,
+                          formatter_class=argparse.RawDescriptionHelpFormatter)
+
+
 def add_parser(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("submit", help="queue a run on the daemon", description=__doc__,
-                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    p = _verb(sub, "submit")
     p.add_argument("sequence", help="name of a shipped sequence, or a local sequence file whose text is sent")
     add_sample_args(p, u_mass_default=None)  # the daemon takes 0.1 mg when none is sent
     p.add_argument("--note", default="", help="free text for the record")
@@ -35,30 +68,34 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     _common(p)
     p.set_defaults(func=submit)
 
-    p = sub.add_parser("status", help="one-shot status of the daemon and the instrument")
+    p = _verb(sub, "status")
     p.add_argument("--json", action="store_true", help="print the full status as JSON")
+    add_units_arg(p)
     _common(p)
     p.set_defaults(func=status)
 
-    p = sub.add_parser("watch", help="live terminal view of the daemon (Ctrl-C to leave; the run goes on)")
-    p.add_argument("--seconds", type=float, help="stop watching after this many seconds")
+    p = _verb(sub, "watch")
+    p.add_argument("--seconds", type=float, help="stop watching after this many seconds (default: until Ctrl-C)")
+    p.add_argument("--every", type=float, default=10.0, metavar="SECONDS",
+                   help="without a terminal: at most one progress line this often between events (default 10)")
+    add_units_arg(p)
     _common(p)
     p.set_defaults(func=watch)
 
-    p = sub.add_parser("abort", help="abort the active run (safe state); the queue pauses")
+    p = _verb(sub, "abort")
     _common(p)
     p.set_defaults(func=abort)
 
-    p = sub.add_parser("reset", help="operator reset of a latched interlock (refused while the condition lasts)")
+    p = _verb(sub, "reset")
     _common(p)
     p.set_defaults(func=reset)
 
-    p = sub.add_parser("queue", help="list the run queue; remove a run; resume or pause")
+    p = _verb(sub, "queue")
     g = p.add_mutually_exclusive_group()
     g.add_argument("--remove", metavar="RUN_ID", help="take a queued run off the queue")
     g.add_argument("--resume", action="store_true", help="resume a paused queue")
     g.add_argument("--pause", action="store_true", help="pause the queue (the active run goes on)")
-    p.add_argument("--json", action="store_true")
+    add_output_args(p, what="the waiting runs")
     _common(p)
     p.set_defaults(func=queue)
 
@@ -98,19 +135,23 @@ def submit(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(out, indent=2))
     else:
-        print(f"queued {out['run_id']} ({out['sequence']}, expansion volume {out['expansion_volume']}, "
-              f"about {out['expected_s'] / 60:.0f} min or more)")
+        from pycnoctl.controller.cli.live import duration
+
+        print(f"queued {out['run_id']} ({out['sequence']}, expansion volume {out['expansion_volume']}); "
+              f"static estimate {duration(out['expected_s'])} of instrument time, longer while settles are "
+              "slow: pycnoctl watch shows the time left from the run's own pace")
         for w in out.get("warnings") or []:
             print(f"warning: {w}")
     return 0
 
 
-def _fmt_p(pa: float | None) -> str:
-    return "invalid" if pa is None else f"{pa / 1e5:+.5f} bar g"
+def status_lines(s: dict[str, Any], units: Units | None = None, *, with_run: bool = True) -> list[str]:
+    """The status as a few readable lines (shared by status and watch; watch draws the run itself)."""
+    units = units or Units()
 
+    def _fmt_p(pa: float | None) -> str:
+        return "invalid" if pa is None else f"{units.p(pa)} {units.p_label}"
 
-def status_lines(s: dict[str, Any]) -> list[str]:
-    """The status as a few readable lines (shared by status and watch)."""
     lines = []
     inst = s.get("instrument", {})
     lines.append(f"{inst.get('name', '?')} - {s['activity']} (state {s['state']})")
@@ -123,7 +164,7 @@ def status_lines(s: dict[str, Any]) -> list[str]:
     if il.get("latched"):
         lines.append(f"INTERLOCK LATCHED: {il.get('kind')}: {il.get('message')} (reset when safe)")
     cur = s.get("current_run")
-    if cur:
+    if cur and with_run:
         lines.append(f"run      {cur['run_id']} {cur['sequence']} sample {cur.get('sample_id') or '-'}: "
                      f"cycle {cur.get('cycle', 0)} of {cur.get('cycles_total', 0)}, "
                      f"{cur.get('elapsed_s', 0):.0f} s in")
@@ -140,7 +181,8 @@ def status_lines(s: dict[str, Any]) -> list[str]:
         if last.get("volume_cm3") is not None:
             res = f": {last['volume_cm3']:.5f} +/- {last['volume_u_cm3']:.5f} cm3 (k={last.get('k') or 2:g})"
             if last.get("density_g_cm3") is not None:
-                res += f", {last['density_g_cm3']:.4f} +/- {last['density_u_g_cm3']:.4f} g/cm3"
+                res += (f", {units.rho(last['density_g_cm3'] * 1e3)} +/- "
+                        f"{units.rho((last.get('density_u_g_cm3') or 0.0) * 1e3)} {units.density}")
         lines.append(f"last     {last['run_id']} {last['status']}{res}"
                      + (f" - {last['message']}" if last.get("message") else ""))
     return lines
@@ -155,37 +197,117 @@ def status(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(s, indent=2))
     else:
-        print("\n".join(status_lines(s)))
+        print("\n".join(status_lines(s, parse_units(args.units))))
     return 0
 
 
-def watch(args: argparse.Namespace) -> int:
-    from rich.console import Console
-    from rich.live import Live
-    from rich.text import Text
+def _model_for(cur: dict[str, Any], snap: dict[str, Any], wall: float) -> Any:
+    """A live model for the daemon's active run, seeded with what the status already knows."""
+    from pycnoctl.controller.cli.live import LiveModel, Plan
 
-    console = Console(stderr=False)
+    inst = snap.get("instrument") or {}
+    model = LiveModel(Plan.from_brief(cur), run_id=str(cur.get("run_id") or ""),
+                      simulated=bool(inst.get("simulated")))
+    if isinstance(cur.get("t_start"), (int, float)):
+        model.t_first = float(cur["t_start"])
+    model.cycle = int(cur.get("cycle") or 0)
+    for c in cur.get("cycles") or []:
+        model.apply("cycle_done", {"cycle": c.get("cycle"), "result": {"index": c.get("cycle"), **c}}, wall)
+    return model
+
+
+class WatchView:
+    """The daemon's state as the watch verb shows it: the status lines, and the live run view while a
+    run is active.  ``feed`` takes one event; ``lines`` is what a pipe gets (empty when nothing worth a
+    line happened)."""
+
+    def __init__(self, snap: dict[str, Any], units: Units, every: float = 10.0) -> None:
+        self.snap, self.units, self.every = snap, units, every
+        self.model: Any = None
+        self._last_line = -1e18
+        cur = snap.get("current_run")
+        if cur:
+            self.model = _model_for(cur, snap, time.monotonic())
+
+    def feed(self, kind: str, data: Any, wall: float, refresh: Any = None) -> list[str]:
+        """Apply one event; returns plain lines for a pipe.  refresh() re-reads the daemon's status."""
+        from pycnoctl.controller.cli.live import cycle_line, frame_line
+
+        data = data if isinstance(data, dict) else {}
+        out: list[str] = []
+        if kind == "sample":
+            self.snap["pressure"] = {**self.snap.get("pressure", {}), "gauge_pa": data.get("gauge_pa")}
+            self.snap["valves"] = data.get("valves") or self.snap.get("valves", {})
+            self.snap["state"] = data.get("state", self.snap.get("state"))
+        if kind == "run_started":
+            self.model = _model_for({**data, "cycles": []}, self.snap, wall)
+            out.append(f"run {data.get('run_id')} started: {data.get('sequence')}, sample "
+                       f"{data.get('sample_id') or '-'}, expansion volume {data.get('expansion_volume')}")
+        if self.model is not None:
+            before = (self.model.state, len(self.model.cycles))
+            self.model.apply(kind, data, wall)
+            if len(self.model.cycles) > before[1]:
+                out.append(cycle_line(self.model.cycles[-1], self.units))
+            if self.model.state != before[0] or kind in ("trip",) or (
+                    kind == "sample" and wall - self._last_line >= self.every):
+                out.append(frame_line(self.model, self.units))
+        if kind == "run_finished":
+            out.append(_finished_line(data, self.units))
+            self.model = None
+        if kind in ("trip", "reset", "queue", "daemon", "run_finished") and refresh is not None:
+            self.snap = refresh() or self.snap
+        if kind == "trip" and self.model is None:
+            out.append(f"INTERLOCK {data.get('interlock')}: {data.get('message')}")
+        if out:
+            self._last_line = wall
+        return out
+
+    def renderable(self) -> Any:
+        from rich.console import Group
+        from rich.text import Text
+
+        from pycnoctl.controller.cli.live import render
+
+        parts: list[Any] = [Text("\n".join(status_lines(self.snap, self.units, with_run=False)))]
+        if self.model is not None:
+            parts.append(render(self.model, self.units))
+        return Group(*parts)
+
+
+def _finished_line(data: dict[str, Any], units: Units) -> str:
+    res = ""
+    if data.get("volume_cm3") is not None:
+        res = (f": volume {data['volume_cm3']:.5f} +/- {data.get('volume_u_cm3') or 0.0:.5f} cm3 "
+               f"(expanded U, k = {data.get('k') or 2:g})")
+    msg = f" - {data['message']}" if data.get("message") else ""
+    return f"run {data.get('run_id')} ended {data.get('status')}{res}{msg}"
+
+
+def watch(args: argparse.Namespace) -> int:
+    units = parse_units(args.units)
     t_end = time.monotonic() + args.seconds if args.seconds else None
+    tty = sys.stdout.isatty()
     with _client(args) as c:
         try:
             snap = c.status()
         except DaemonError as exc:
             return _fail(exc)
-        trace: list[float] = []
+        view = WatchView(snap, units, every=args.every)
+
+        def refresh() -> dict[str, Any] | None:
+            try:
+                return c.status()
+            except DaemonError:
+                return None
+
         try:
-            with Live(Text("\n".join(status_lines(snap))), console=console, refresh_per_second=4) as live:
+            if tty:
+                _watch_live(c, view, refresh, t_end)
+            else:
+                print("\n".join(status_lines(snap, units)), flush=True)
                 for ev in c.events(timeout=30):
-                    if ev.kind == "sample" and isinstance(ev.data, dict):
-                        snap["pressure"] = {**snap.get("pressure", {}), "gauge_pa": ev.data.get("gauge_pa")}
-                        snap["valves"] = ev.data.get("valves") or snap.get("valves", {})
-                        snap["state"] = ev.data.get("state", snap["state"])
-                        if ev.data.get("gauge_pa") is not None:
-                            trace = [*trace[-59:], ev.data["gauge_pa"]]
-                    elif ev.kind in ("run_started", "run_finished", "trip", "reset", "queue", "cycle_done",
-                                     "daemon", "status"):
-                        snap = c.status()
-                    text = "\n".join([*status_lines(snap), "trace    " + _spark(trace)])
-                    live.update(Text(text))
+                    for line in view.feed(ev.kind, ev.data, time.monotonic(), refresh):
+                        print(f"{time.strftime('%H:%M:%S')} {line}", flush=True)
                     if t_end is not None and time.monotonic() > t_end:
                         break
         except DaemonError as exc:
@@ -195,13 +317,21 @@ def watch(args: argparse.Namespace) -> int:
     return 0
 
 
-def _spark(values: list[float]) -> str:
-    if not values:
-        return ""
-    bars = " .:-=+*#%@"
-    lo, hi = min(values), max(values)
-    span = hi - lo or 1.0
-    return "".join(bars[int((v - lo) / span * (len(bars) - 1))] for v in values) + f"  (max {hi / 1e5:.3f} bar g)"
+def _watch_live(c: DaemonClient, view: WatchView, refresh: Any, t_end: float | None) -> None:
+    from rich.live import Live
+
+    from pycnoctl.controller.cli.display import console
+
+    next_draw = 0.0
+    with Live(view.renderable(), console=console(), refresh_per_second=4) as live:
+        for ev in c.events(timeout=30):
+            now = time.monotonic()
+            view.feed(ev.kind, ev.data, now, refresh)
+            if now >= next_draw or ev.kind != "sample":
+                next_draw = now + 0.2
+                live.update(view.renderable())
+            if t_end is not None and now > t_end:
+                break
 
 
 def abort(args: argparse.Namespace) -> int:
@@ -244,6 +374,11 @@ def queue(args: argparse.Namespace) -> int:
             return _fail(exc)
     if args.json:
         print(json.dumps(q, indent=2))
+        return 0
+    if args.csv:
+        from pycnoctl.controller.cli.display import write_csv
+
+        write_csv(q["items"], ["position", "run_id", "sequence", "sample_id", "operator", "mass_g"], sys.stdout)
         return 0
     head = "queue paused: " + str(q.get("paused_reason")) if q.get("paused") else "queue running"
     print(f"{head}; {len(q['items'])} waiting")

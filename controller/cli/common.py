@@ -17,16 +17,38 @@ from pycnoctl.drivers.instrument import Instrument
 ROLES = ("valves", "pressure", "thermometer", "barometer")
 
 
-def add_instrument_args(p: argparse.ArgumentParser, *, realtime: bool = True) -> None:
+def add_instrument_args(p: argparse.ArgumentParser, *, realtime: bool = True, always_realtime: bool = False) -> None:
+    """--instrument CONFIG | --sim [SIMCONFIG], and the simulator's pace: one spelling on every verb.
+
+    always_realtime: the verb always runs the simulator on the wall clock (serve); --realtime is then
+    accepted, so that every verb takes the same command line."""
     g = p.add_mutually_exclusive_group()
     g.add_argument("--instrument", metavar="CONFIG", help="instrument config (YAML) describing the hardware")
     g.add_argument("--sim", nargs="?", const="", metavar="SIMCONFIG",
                    help="run on the gas-system simulator (its clean default instrument without a file)")
-    if realtime:
+    if always_realtime:
+        p.add_argument("--realtime", action="store_true",
+                       help="with --sim: the simulator runs in real time (always so for the service; accepted "
+                            "for the same command line as run)")
+    elif realtime:
         p.add_argument("--realtime", action="store_true",
                        help="with --sim: run the simulator in real time instead of as fast as possible")
-        p.add_argument("--speed", type=float, default=1.0, metavar="FACTOR",
-                       help="with --sim --realtime: simulated seconds per wall second (default 1)")
+    if realtime or always_realtime:
+        p.add_argument("--speed", type=float, default=None, metavar="FACTOR",
+                       help="with --sim: simulated seconds per wall second, e.g. 10 (implies --realtime; "
+                            "default 1)")
+
+
+def sim_pace(args: argparse.Namespace) -> tuple[bool, float]:
+    """(realtime, speed) from --realtime/--speed: --speed implies --realtime; both need --sim."""
+    speed = getattr(args, "speed", None)
+    realtime = bool(getattr(args, "realtime", False)) or speed is not None
+    if realtime and getattr(args, "sim", None) is None:
+        raise UsageError(f"{'--speed' if speed is not None else '--realtime'}: only with --sim (the simulator); "
+                         "real hardware always runs on the wall clock")
+    if speed is not None and not (0 < speed <= 1000):
+        raise UsageError("--speed: must be in (0, 1000]")
+    return realtime, 1.0 if speed is None else float(speed)
 
 
 def add_sample_args(p: argparse.ArgumentParser, *, u_mass_default: str | None) -> None:
@@ -190,11 +212,8 @@ def open_instrument(args: argparse.Namespace, *, default_sim: bool = False) -> I
         if getattr(args, "sim", None) is not None or default_sim:
             from pycnoctl.drivers.simulated import build_sim_instrument
 
-            speed = float(getattr(args, "speed", 1.0) or 1.0)
-            if speed <= 0:
-                raise UsageError("--speed: must be positive")
-            return build_sim_instrument(args.sim or None, realtime=bool(getattr(args, "realtime", False)),
-                                        speed=speed)
+            realtime, speed = sim_pace(args)
+            return build_sim_instrument(args.sim or None, realtime=realtime, speed=speed)
     except FileNotFoundError as exc:
         raise UsageError(str(exc)) from None
     raise UsageError("name the hardware with --instrument CONFIG, or use --sim [SIMCONFIG]")

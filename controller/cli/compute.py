@@ -1,13 +1,15 @@
-"""``pycnoctl compute``: the offline calculator - sample volume, its budget and density from typed values.
+"""pycnoctl compute: the offline calculator - sample volume, its budget and density from typed values.
 
 Why: checks a hand reading or a reported run without the daemon or any hardware, using the same
 equations and budget as the engine.
 
 Units: every value may carry a unit ('10 cm^3', '241.325 kPa', '25 degC', '1.4 bar').  Bare numbers:
 volumes cm^3, pressures (and --u-p, --u-ambient) bar, temperatures degC, --u-temperature K, masses g.
-Pressures are absolute unless --gauge is given (then P1 and P2 are gauge, i.e. above --ambient);
-a single value may also be tagged, e.g. --p1 '1.4 bar gauge' or --p2 '2.4 bar abs'.
-Uncertainties in --json: ``*_u_*`` fields are expanded (k = 2, field ``k``), ``*_u_std_*`` standard.
+P1 and P2 are gauge pressures (above --ambient), as everywhere in pycnoctl, unless --absolute is
+given; a single value may also be tagged, e.g. --p1 '1.4 bar gauge' or --p2 '2.4 bar abs'.
+--ambient is always absolute.
+Uncertainties: U is expanded (k = 2 unless --k says otherwise), u standard (k = 1); in --json the
+fields named *_u_* are expanded (with the factor in the field k) and *_u_std_* standard.
 """
 
 from __future__ import annotations
@@ -18,6 +20,7 @@ import math
 import sys
 from typing import Any
 
+from pycnoctl.controller.cli.display import Units, add_output_args, add_units_arg, parse_units
 from pycnoctl.controller.cli.main import UsageError
 from pycnoctl.controller.domain.gas import GASES, UnknownGas, get_gas
 from pycnoctl.controller.domain.units import (
@@ -44,11 +47,14 @@ def add_parser(subparsers: argparse._SubParsersAction) -> None:
     )
     p.add_argument("--cell-volume", required=True, help="sample-cell volume Vc (default unit cm^3)")
     p.add_argument("--expansion-volume", required=True, help="expansion volume Vr (default unit cm^3)")
-    p.add_argument("--p1", required=True, help="pressure after fill (default unit bar, absolute)")
-    p.add_argument("--p2", required=True, help="pressure after expansion (default unit bar, absolute)")
+    p.add_argument("--p1", required=True, help="pressure after fill (default unit bar, gauge)")
+    p.add_argument("--p2", required=True, help="pressure after expansion (default unit bar, gauge)")
     p.add_argument("--ambient", default="101.325 kPa",
                    help="ambient/baseline absolute pressure [101.325 kPa]")
-    p.add_argument("--gauge", action="store_true", help="--p1 and --p2 are gauge (above --ambient)")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--absolute", action="store_true", help="--p1 and --p2 are absolute pressures")
+    g.add_argument("--gauge", action="store_true",
+                   help="--p1 and --p2 are gauge, above --ambient (the default; kept for scripts)")
     p.add_argument("--gas", default="helium", help=f"working gas: {', '.join(GASES)} [helium]")
     p.add_argument("--temperature", default="20 degC", help="gas temperature for all states [20 degC]")
     p.add_argument("--t1", help="temperature of the gas charged to P1 (default --temperature)")
@@ -66,7 +72,8 @@ def add_parser(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--u-temperature", default="0", help="standard uncertainty of each temperature, K [0]")
     p.add_argument("--u-mass", default="0", help="standard uncertainty of the mass [0]")
     p.add_argument("--k", default=2.0, type=float, help="coverage factor for expanded uncertainties [2]")
-    p.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+    add_units_arg(p)
+    add_output_args(p, what="the result (--csv: the uncertainty budget, one row per input)")
     p.set_defaults(func=run)
 
 
@@ -103,8 +110,8 @@ def compute(args: argparse.Namespace) -> dict[str, Any]:
     vc = _parse("--cell-volume", parse_volume, args.cell_volume, positive=True)
     vr = _parse("--expansion-volume", parse_volume, args.expansion_volume, positive=True)
     pa = _pressure("--ambient", args.ambient, gauge_default=False, ambient=0.0)
-    p1 = _pressure("--p1", args.p1, gauge_default=args.gauge, ambient=pa)
-    p2 = _pressure("--p2", args.p2, gauge_default=args.gauge, ambient=pa)
+    p1 = _pressure("--p1", args.p1, gauge_default=not args.absolute, ambient=pa)
+    p2 = _pressure("--p2", args.p2, gauge_default=not args.absolute, ambient=pa)
     try:
         gas = get_gas(args.gas)
     except UnknownGas as exc:
@@ -124,7 +131,8 @@ def compute(args: argparse.Namespace) -> dict[str, Any]:
     if not lo < p2 < hi:
         raise UsageError(
             f"--p2: {p2 / 1e3:.6g} kPa absolute is not strictly between ambient {pa / 1e3:.6g} kPa "
-            f"and P1 {p1 / 1e3:.6g} kPa (use --gauge if the pressures are gauge)"
+            f"and P1 {p1 / 1e3:.6g} kPa (P1 and P2 are read as "
+            f"{'absolute' if args.absolute else 'gauge; use --absolute for absolute pressures'})"
         )
     try:
         vs = sample_volume(p1, p2, pa, vc, vr, gas=gas, t1=t1, t2=t2, ta=ta, mode=args.mode)
@@ -190,15 +198,17 @@ def _row(row: dict[str, Any]) -> dict[str, Any]:
             "std_u_display": row["std_u"] * factor, "contribution_cm3": row["contribution"] / CM3}
 
 
-def _text(out: dict[str, Any]) -> str:
+def _text(out: dict[str, Any], units: Units | None = None) -> str:
+    units = units or Units()
     k = out["k"]
     lines = [
-        f"sample volume   {out['volume_cm3']:.5f} cm^3  +/- {out['volume_u_cm3']:.5f} cm^3 (k={k:g})",
+        f"sample volume   {out['volume_cm3']:.5f} cm^3  +/- {out['volume_u_cm3']:.5f} cm^3 (expanded U, k = {k:g})",
         f"  ideal-gas form {out['ideal_gas_volume_cm3']:.5f} cm^3  (gas: {out['gas']}, mode: {out['mode']})",
     ]
     if "density_g_cm3" in out:
-        lines.append(f"density         {out['density_g_cm3']:.5f} g/cm^3 +/- {out['density_u_g_cm3']:.5f} "
-                     f"g/cm^3 (k={k:g})")
+        rho, u_rho = out["density_g_cm3"] * G_CM3, out["density_u_g_cm3"] * G_CM3
+        lines.append(f"density         {units.rho(rho)} {units.density} +/- {units.rho(u_rho)} {units.density} "
+                     f"(expanded U, k = {k:g})")
     if "specific_gravity" in out:
         lines.append(f"specific gravity {out['specific_gravity']:.5f} +/- {out['specific_gravity_u']:.5f}")
     rows = [r for r in out["budget"] if r["variance"] != 0.0]
@@ -213,14 +223,23 @@ def _text(out: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
+BUDGET_CSV = ["name", "kind", "value", "std_u", "unit", "value_display", "std_u_display", "sensitivity",
+              "contribution_cm3", "share"]
+
+
 def run(args: argparse.Namespace) -> int:
+    units = parse_units(args.units)
     out = compute(args)
     if args.json:
         print(_dumps(out))
+    elif args.csv:
+        from pycnoctl.controller.cli.display import write_csv
+
+        write_csv(_clean(out["budget"]), BUDGET_CSV, sys.stdout)
     else:
-        print(_text(out))
+        print(_text(out, units))
     for w in out["warnings"]:
-        if args.json:
+        if args.json or args.csv:
             print(f"warning: {w}", file=sys.stderr)
     return 0
 

@@ -10,6 +10,7 @@ only when their verb is used: ``pycnoctl --help`` lists the verbs from the light
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib
 import importlib.util
 import os
@@ -114,6 +115,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # the reader left (| head): nothing more to say, and nobody to say it to
+        with contextlib.suppress(OSError):
+            sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - replaces stdout for the interpreter's exit flush
+        return 141
     except Exception as exc:
         # problems in an input file: one positioned line each.  yamlio is not imported up front (it
         # pulls in YAML and pydantic); an exception can only be its ConfigError if it was loaded.

@@ -1,4 +1,4 @@
-"""``pycnoctl probe``: open every device of an instrument and say how each one answers.
+"""pycnoctl probe: open every device of an instrument and say how each one answers.
 
 The first thing to run on a new build: it reads each sensor N times and reports the mean,
 the noise (standard deviation) and the latency of one exchange, and the valve bank's read-back.

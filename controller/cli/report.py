@@ -1,4 +1,4 @@
-"""``pycnoctl report``: the HTML report of one run, or a summary across a sample set.
+"""pycnoctl report: the HTML report of one run, or a summary across a sample set.
 
 pycnoctl report RUN [--out FILE]                 one run (figure saved beside the HTML as PNG)
 pycnoctl report --samples PREFIX [--out FILE]    completed runs of samples whose ID starts with PREFIX

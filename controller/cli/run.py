@@ -1,4 +1,11 @@
-"""``pycnoctl run``: one measurement, with a live terminal view and a stored record.
+"""pycnoctl run: one measurement, with a live terminal view and a stored record.
+
+The live view (on a terminal) shows the state and phase, the pressure with a short history, each
+finished cycle (P1, P2, volume, its standard uncertainty u, whether it is kept), the convergence so
+far, and a progress bar with the wall-clock time left, estimated from the settle times this run has
+shown.  At the end: the cycles table, the result with its expanded uncertainty U (k = 2) and
+standard u, why any cycle was left out, whether the run converged, the calibration used, and a line
+saying so when the result came from the simulator.  Pressures are gauge (above ambient).
 
 Exit codes: 0 completed, 2 bad input (or the data folder held by another writer), 3 fault (an
 interlock, a sequence failure, an unexpected error, or a record that could not be written during the
@@ -13,7 +20,6 @@ import argparse
 import json
 import signal
 import sys
-import time
 from typing import Any
 
 from pycnoctl.controller.cli.common import (
@@ -24,9 +30,10 @@ from pycnoctl.controller.cli.common import (
     held_log_lines,
     lock_data_folder,
     open_instrument,
+    sim_pace,
 )
+from pycnoctl.controller.cli.display import add_output_args, add_units_arg, parse_units
 from pycnoctl.controller.cli.main import UsageError
-from pycnoctl.controller.domain.states import RunState
 
 EXIT = {"completed": 0, "fault": 3, "aborted": 4, "interrupted": 4}
 
@@ -38,8 +45,9 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     add_instrument_args(p)
     add_data_arg(p)
     add_sample_args(p, u_mass_default="0.1 mg")
-    p.add_argument("--json", action="store_true", help="print the run summary as JSON instead of tables")
-    p.add_argument("--quiet", action="store_true", help="no live view")
+    add_units_arg(p)
+    add_output_args(p, what="the run summary (--csv: its cycles)")
+    p.add_argument("--quiet", action="store_true", help="no live view (the final table is still printed)")
     p.set_defaults(func=main)
 
 
@@ -62,6 +70,8 @@ def request_from_args(args: argparse.Namespace) -> Any:
 def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.jobs.measurement import data_dir
 
+    parse_units(args.units)  # a bad --units (or --speed without --sim) is refused before anything runs
+    sim_pace(args)
     request = request_from_args(args)
     # every input proved before the data folder is touched or any device opened
     check_before_opening(args, request.sequence, request.expansion_volume)
@@ -89,8 +99,14 @@ def _run(args: argparse.Namespace, request: Any, root: Any) -> int:
         except ValueError as exc:
             raise UsageError(str(exc)) from None
         controller = Controller(instrument)
-        view = None if (args.json or args.quiet) else LiveView(prepared, sys.stderr)
-        if view is not None:
+        simulated = "sim" in instrument.extras
+        view = None
+        if not (args.json or args.csv or args.quiet) and sys.stderr.isatty():
+            from pycnoctl.controller.cli.display import console
+            from pycnoctl.controller.cli.live import LiveModel, LiveScreen, Plan
+
+            model = LiveModel(Plan.from_sequence(prepared.sequence), simulated=simulated)
+            view = LiveScreen(model, parse_units(args.units), console(sys.stderr))
             controller.listeners.append(view.on_event)
         stop = {"flag": False}
 
@@ -111,10 +127,18 @@ def _run(args: argparse.Namespace, request: Any, root: Any) -> int:
         catalog.close()
     finally:
         instrument.close()
+    units = parse_units(args.units)
     if args.json:
         print(json.dumps(summary, indent=2))
+    elif args.csv:
+        from pycnoctl.controller.cli.display import write_csv
+        from pycnoctl.controller.cli.result_view import cycle_csv_columns, cycle_records
+
+        write_csv(cycle_records(summary, units), cycle_csv_columns(units), sys.stdout)
     else:
-        print_summary(summary, root / "runs" / summary["run_id"])
+        from pycnoctl.controller.cli.result_view import print_summary
+
+        print_summary(summary, root / "runs" / summary["run_id"], units, simulated=simulated)
     if summary["status"] == "fault":  # one line on stderr; the details are in the run's events
         fault = summary.get("fault") or {}
         print(f"pycnoctl run: run {summary['run_id']} ended in a fault ({fault.get('kind')}): "
@@ -125,105 +149,3 @@ def _run(args: argparse.Namespace, request: Any, root: Any) -> int:
     if summary["status"] == "completed" and summary.get("leak_ok") is False:
         return 5
     return EXIT.get(summary["status"], 3)
-
-
-class LiveView:
-    """A small live panel on stderr: state, pressure, cycle k of n, instrument time and time left."""
-
-    def __init__(self, prepared: Any, stream: Any) -> None:
-        from rich.console import Console
-
-        from pycnoctl.controller.run.sequence import estimate_duration
-
-        self.console = Console(file=stream)
-        self.seq = prepared.sequence
-        self.expected = estimate_duration(self.seq)
-        self.state, self.cycle, self.gauge, self.t0, self.t = "idle", 0, float("nan"), None, 0.0
-        self.message = ""
-        self._cycle_t: list[float] = []  # instrument time at each cycle start
-        self._live: Any = None
-        self._next = 0.0
-
-    def start(self) -> None:
-        from rich.live import Live
-
-        self._live = Live(self._render(), console=self.console, refresh_per_second=8, transient=True)
-        self._live.start()
-
-    def stop(self) -> None:
-        if self._live is not None:
-            self._live.stop()
-
-    def on_event(self, kind: str, data: dict[str, Any]) -> None:
-        if kind == "sample":
-            self.gauge, self.t = data["gauge"], data["t"]
-            self.t0 = self.t if self.t0 is None else self.t0
-            self.state = data["state"]
-        elif kind == "cycle":
-            self.cycle = data["cycle"]
-            self._cycle_t.append(self.t)
-        elif kind == "trip":
-            self.message = f"INTERLOCK {data['interlock']}: {data['message']}"
-        elif kind == "settled" and data.get("which") == "p2":
-            self.message = f"cycle {data['cycle']} expanded and settled"
-        now = time.monotonic()
-        if self._live is not None and now >= self._next:
-            self._next = now + 0.125
-            self._live.update(self._render())
-
-    def _render(self) -> Any:
-        from rich.table import Table
-
-        elapsed = self.t - (self.t0 or self.t)
-        table = Table.grid(padding=(0, 2))
-        left = max(self.expected - elapsed, 0.0)
-        if len(self._cycle_t) >= 2 and self.seq.expands:  # measured pace beats the static estimate
-            per_cycle = (self._cycle_t[-1] - self._cycle_t[0]) / (len(self._cycle_t) - 1)
-            left = max(per_cycle * (self.seq.cycles.count - len(self._cycle_t) + 1) - (self.t - self._cycle_t[-1]),
-                       0.0)
-        table.add_row("sequence", f"{self.seq.name} ({self.seq.kind})")
-        table.add_row("state", f"[bold]{RunState(self.state).look.label}[/]")
-        table.add_row("pressure", f"{self.gauge / 1e5:8.5f} bar gauge" if self.gauge == self.gauge else "invalid")
-        if self.seq.expands:
-            table.add_row("cycle", f"{self.cycle} of {self.seq.cycles.count}")
-        remaining = f"about {left:.0f} s left" if left > 0 else "estimating time left"
-        table.add_row("instrument time", f"{elapsed:7.1f} s ({remaining})")
-        if self.message:
-            table.add_row("", self.message)
-        return table
-
-
-def print_summary(summary: dict[str, Any], folder: Any) -> None:
-    from rich.console import Console
-    from rich.table import Table
-
-    con = Console()
-    if summary["cycles"]:
-        table = Table(title=f"run {summary['run_id']} - {summary['sequence']['name']}")
-        for col in ("cycle", "P1 / bar g", "P2 / bar g", "volume / cm3", "u / cm3", "kept", "flags"):
-            table.add_column(col, justify="right")
-        for c in summary["cycles"]:
-            table.add_row(str(c["index"]), f"{c['p1_gauge_pa'] / 1e5:.5f}", f"{c['p2_gauge_pa'] / 1e5:.5f}",
-                          _fmt(c["volume_cm3"], 5), _fmt(c["u_volume_cm3"], 5), "yes" if c["kept"] else "no",
-                          ", ".join(c["flags"]))
-        con.print(table)
-    con.print(f"status: [bold]{summary['status']}[/]   expansion volume: {summary['expansion_volume']}   "
-              f"gas: {summary['gas']}")
-    if summary.get("fault"):
-        con.print(f"[red]fault ({summary['fault']['kind']}): {summary['fault']['message']}[/]")
-    if summary.get("volume_cm3") is not None:
-        con.print(f"volume: {summary['volume_cm3']:.5f} cm3 +/- {summary['volume_u_cm3']:.5f} cm3 "
-                  f"(expanded, k={summary['k']:g}); RSD {summary['rsd'] * 100 if summary['rsd'] else 0:.3f} %")
-    if summary.get("density_g_cm3") is not None:
-        con.print(f"density: {summary['density_g_cm3']:.5f} g/cm3 +/- {summary['density_u_g_cm3']:.5f} g/cm3 "
-                  f"(k={summary['k']:g})")
-    if summary.get("leak_rate_pa_s") is not None:
-        verdict = "passed" if summary.get("leak_ok") else "FAILED"
-        con.print(f"leak check {verdict}: {summary['leak_rate_pa_s']:.3f} Pa/s")
-    for w in summary.get("warnings", []):
-        con.print(f"[yellow]warning: {w}[/]")
-    con.print(f"record: {folder}")
-
-
-def _fmt(x: float | None, digits: int) -> str:
-    return "-" if x is None else f"{x:.{digits}f}"

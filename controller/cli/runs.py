@@ -1,26 +1,65 @@
-"""``pycnoctl runs``: list the catalog's runs, filtered; as a table, JSON or CSV.
+"""pycnoctl runs: list the catalog's runs, filtered; as a table, JSON or CSV.
 
 --sample takes an exact ID, or a prefix ending in '*' (e.g. 'AL-04*'; only a final '*' is special, and
 case counts).  --since/--until take a date
 (2025-03-14, UTC midnight) or an ISO time; --until is exclusive.  Volumes in cm^3 (expanded
-uncertainty), densities in g/cm^3, masses in g.  --before RUN_ID gives the page after that run (the
-last one listed), so a long listing is read a page at a time.
+uncertainty U, k = 2), densities in g/cm^3 (or as --units says), masses in g.  --before RUN_ID gives
+the page after that run (the last one listed), so a long listing is read a page at a time.
+
+The table never cuts a run ID or a figure: on a narrow terminal it leaves out the less important
+columns (and says which).  --csv and --json carry every column, including what each run's record
+adds: gas, instrument, operator, expansion volume, RSD, cycles kept, convergence, porosity, whether
+it was simulated, the calibration and the warnings.
 """
 
 from __future__ import annotations
 
 import argparse
-import csv
+import contextlib
 import datetime as _dt
 import json
 import sys
+from collections.abc import Callable
+from pathlib import Path
 from typing import Any
 
 from pycnoctl.controller.cli.common import add_data_arg
+from pycnoctl.controller.cli.display import add_output_args, add_units_arg, parse_units
 from pycnoctl.controller.cli.main import UsageError
 
 CSV_COLUMNS = ["run_id", "created", "sample_id", "sequence", "kind", "status", "started", "ended", "volume_cm3",
-               "U_volume_cm3", "density_g_cm3", "mass_g", "calibration_id", "message"]
+               "U_volume_cm3", "density_g_cm3", "mass_g", "calibration_id", "message",
+               # from the run's record (summary.json) unless the catalog row has the field itself
+               "gas", "instrument", "operator", "expansion_volume", "rsd", "cycles", "cycles_kept", "converged",
+               "porosity", "U_porosity", "simulated", "warnings"]
+
+
+def _flat(doc: dict[str, Any]) -> dict[str, Any]:
+    return {**doc, **(doc.get("results") or {})}
+
+
+# column -> its value from a run's stored summary; a column the catalog row carries (an attribute of
+# the same name) is taken from the row instead, so a new catalog field is one line in CSV_COLUMNS
+FROM_RECORD: dict[str, Callable[[dict[str, Any]], Any]] = {
+    "gas": lambda d: d.get("gas"),
+    "instrument": lambda d: (d.get("instrument") or {}).get("name"),
+    "operator": lambda d: d.get("operator") or None,
+    "expansion_volume": lambda d: d.get("expansion_volume"),
+    "rsd": lambda d: d.get("rsd"),
+    "cycles": lambda d: len(d.get("cycles") or []) or None,
+    "cycles_kept": lambda d: d.get("n_kept"),
+    "converged": lambda d: d.get("converged"),
+    "porosity": lambda d: d.get("porosity"),
+    "U_porosity": lambda d: d.get("porosity_u"),
+    "simulated": lambda d: _simulated(d),
+    "warnings": lambda d: list(d.get("warnings") or []),
+}
+
+
+def _simulated(d: dict[str, Any]) -> bool | None:
+    from pycnoctl.controller.cli.result_view import is_simulated
+
+    return is_simulated(d)
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
@@ -34,9 +73,8 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
                    help="completed, fault, aborted, interrupted, running or queued (repeatable)")
     p.add_argument("--limit", type=int, default=50, help="at most this many, newest first (default 50)")
     p.add_argument("--before", metavar="RUN_ID", help="only runs listed after this one (the next page)")
-    out = p.add_mutually_exclusive_group()
-    out.add_argument("--json", action="store_true", help="JSON list")
-    out.add_argument("--csv", action="store_true", help="CSV export (all matching runs up to --limit)")
+    add_units_arg(p)
+    add_output_args(p, what="every column of the matching runs (up to --limit)")
     p.set_defaults(func=main)
 
 
@@ -57,6 +95,18 @@ def row_dict(r: Any) -> dict[str, Any]:
             "density_g_cm3": None if r.density is None else r.density / 1e3,
             "mass_g": None if r.mass is None else r.mass * 1e3, "calibration_id": r.calibration_id,
             "message": r.message}
+
+
+def with_record(row: dict[str, Any], r: Any, runs_dir: Path) -> dict[str, Any]:
+    """The row with the columns its run's record adds (empty when the record has no summary)."""
+    doc: dict[str, Any] = {}
+    folder = runs_dir / (r.folder or r.id)
+    with contextlib.suppress(OSError, ValueError):  # no summary (interrupted, queued): the row's own fields
+        doc = _flat(json.loads((folder / "summary.json").read_text(encoding="utf-8")))
+    out = dict(row)
+    for col, get in FROM_RECORD.items():
+        out[col] = getattr(r, col) if hasattr(r, col) else get(doc)
+    return out
 
 
 def query(catalog: Any, *, sample: str | None = None, since: _dt.datetime | None = None,
@@ -85,33 +135,44 @@ def main(args: argparse.Namespace) -> int:
         raise UsageError(f"no catalog at {path} (set --data or PYCNOCTL_DATA)")
     since = parse_time(args.since, "--since") if args.since else None
     until = parse_time(args.until, "--until") if args.until else None
+    units = parse_units(args.units)
     with Catalog.for_reading(path) as catalog:
-        rows = [row_dict(r) for r in query(catalog, sample=args.sample, since=since, until=until,
-                                             status=args.status, limit=args.limit, before=args.before)]
+        found = query(catalog, sample=args.sample, since=since, until=until, status=args.status,
+                      limit=args.limit, before=args.before)
+    rows = [row_dict(r) for r in found]
+    if args.json or args.csv:
+        rows = [with_record(row, r, root / "runs") for row, r in zip(rows, found, strict=True)]
     if args.json:
         print(json.dumps(rows, indent=2))
     elif args.csv:
-        w = csv.DictWriter(sys.stdout, fieldnames=CSV_COLUMNS, lineterminator="\n")
-        w.writeheader()
-        for r in rows:
-            w.writerow({k: ("" if v is None else (repr(v) if isinstance(v, float) else v)) for k, v in r.items()})
+        from pycnoctl.controller.cli.display import write_csv
+
+        write_csv(rows, CSV_COLUMNS, sys.stdout)
     else:
-        print_table(rows)
+        print_table(rows, units)
     return 0
 
 
-def print_table(rows: list[dict[str, Any]]) -> None:
-    from rich.console import Console
-    from rich.table import Table
+def table_columns(units: Any) -> list[Any]:
+    from pycnoctl.controller.cli.display import Column
 
-    table = Table()
-    for col in ("run", "created (UTC)", "sample", "sequence", "status", "volume / cm3", "U", "density"):
-        table.add_column(col, justify="left" if col in ("run", "sample", "sequence", "status") else "right")
-    for r in rows:
-        table.add_row(r["run_id"], (r["created"] or "")[:19].replace("T", " "), r["sample_id"] or "",
-                      r["sequence"] or "", r["status"], _f(r["volume_cm3"]), _f(r["U_volume_cm3"]),
-                      _f(r["density_g_cm3"]))
-    Console().print(table)
+    return [Column("run"), Column("created (UTC)", priority=4), Column("sample"), Column("sequence", priority=3),
+            Column("status"), Column("volume / cm3", True), Column("U / cm3 (k=2)", True, 1),
+            Column(f"density / {units.density}", True, 2)]
+
+
+def table_rows(rows: list[dict[str, Any]], units: Any) -> list[list[str]]:
+    return [[r["run_id"], (r["created"] or "")[:16].replace("T", " "), r["sample_id"] or "-",
+             r["sequence"] or "-", r["status"], _f(r["volume_cm3"]), _f(r["U_volume_cm3"]),
+             units.rho(None if r["density_g_cm3"] is None else r["density_g_cm3"] * 1e3)] for r in rows]
+
+
+def print_table(rows: list[dict[str, Any]], units: Any = None) -> None:
+    from pycnoctl.controller.cli.display import Units, console
+    from pycnoctl.controller.cli.display import print_table as show
+
+    units = units or Units()
+    show(table_columns(units), table_rows(rows, units), con=console())
     print(f"{len(rows)} run(s)")
 
 

@@ -1,4 +1,4 @@
-"""``pycnoctl serve``: run the instrument service (control loop, run queue, local API, dashboard).
+"""pycnoctl serve: run the instrument service (control loop, run queue, local API, dashboard).
 
 One process owns the instrument.  The control loop runs in its own thread and keeps ticking
 while idle so the interlocks watch the pressure between runs; the HTTP side only asks it.
@@ -18,7 +18,13 @@ import threading
 import time
 from typing import Any
 
-from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, lock_data_folder, open_instrument
+from pycnoctl.controller.cli.common import (
+    add_data_arg,
+    add_instrument_args,
+    lock_data_folder,
+    open_instrument,
+    sim_pace,
+)
 from pycnoctl.controller.cli.main import UsageError
 
 DEFAULT_PORT = 8765
@@ -27,13 +33,11 @@ DEFAULT_PORT = 8765
 def add_parser(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("serve", help="run the instrument service with its local API and dashboard",
                        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    add_instrument_args(p, realtime=False)
+    add_instrument_args(p, always_realtime=True)
     add_data_arg(p)
     p.add_argument("--host", default="127.0.0.1", help="address to bind (default 127.0.0.1; others need a token)")
     p.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"TCP port (default {DEFAULT_PORT})")
     p.add_argument("--token-file", metavar="FILE", help="file holding the API token (mode 600)")
-    p.add_argument("--speed", type=float, default=1.0,
-                   help="with --sim: run the real-time simulator this many times faster than the clock")
     p.set_defaults(func=main)
 
 
@@ -41,8 +45,7 @@ def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.jobs.measurement import data_dir
     from pycnoctl.controller.service.security import Policy, TokenError, load_token
 
-    if not (args.speed > 0) or args.speed > 1000:
-        raise UsageError("--speed must be in (0, 1000]")
+    sim_pace(args)  # --speed/--realtime without --sim, or a speed out of range: refused as every verb does
     if not 0 < args.port < 65536:
         raise UsageError("--port must be 1..65535")
     try:
@@ -68,7 +71,7 @@ def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
         from pycnoctl.drivers.simulated import build_sim_instrument
 
         try:
-            instrument = build_sim_instrument(args.sim or None, realtime=True, speed=args.speed)
+            instrument = build_sim_instrument(args.sim or None, realtime=True, speed=sim_pace(args)[1])
         except FileNotFoundError as exc:
             raise UsageError(str(exc)) from None
     else:

@@ -1,6 +1,8 @@
-"""``pycnoctl show RUN``: one stored run - summary, cycles and uncertainty budget - read from its record.
+"""pycnoctl show RUN: one stored run - summary, cycles and uncertainty budget - read from its record.
 
-RUN is a run ID (looked up under the data folder) or the path of a run folder.
+RUN is a run ID (looked up under the data folder) or the path of a run folder.  Pressures are gauge
+(above ambient); u is a standard uncertainty (k = 1), U an expanded one (k = 2).  --csv prints the
+cycles, --json the whole stored summary.
 """
 
 from __future__ import annotations
@@ -11,6 +13,7 @@ from pathlib import Path
 from typing import Any
 
 from pycnoctl.controller.cli.common import add_data_arg, resolve_run_folder
+from pycnoctl.controller.cli.display import add_output_args, add_units_arg, parse_units
 from pycnoctl.controller.cli.main import UsageError
 
 
@@ -19,7 +22,8 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("run", help="run ID or run folder")
     add_data_arg(p)
-    p.add_argument("--json", action="store_true", help="print the stored summary.json")
+    add_units_arg(p)
+    add_output_args(p, what="the stored summary (--csv: its cycles)")
     p.add_argument("--report", nargs="?", const="", metavar="PATH",
                    help="write the HTML report (default: report.html in the run folder) and print its path")
     p.set_defaults(func=main)
@@ -29,6 +33,7 @@ def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.jobs.measurement import data_dir
     from pycnoctl.controller.record.runfolder import load_run
 
+    units = parse_units(args.units)
     folder = resolve_run_folder(data_dir(args.data), args.run)
     run = load_run(folder)
     if args.report is not None:
@@ -40,36 +45,47 @@ def main(args: argparse.Namespace) -> int:
         raise UsageError(f"{folder}: the run has no summary yet (still running, or interrupted)")
     if args.json:
         print(json.dumps(run.summary, indent=2))
+    elif args.csv:
+        import sys
+
+        from pycnoctl.controller.cli.display import write_csv
+        from pycnoctl.controller.cli.result_view import cycle_csv_columns, cycle_records
+
+        write_csv(cycle_records(_result(run.summary), units), cycle_csv_columns(units), sys.stdout)
     else:
-        print_run(run.summary, folder)
+        print_run(run.summary, folder, units)
     return 0
 
 
-def print_run(doc: dict[str, Any], folder: Path) -> None:
-    from rich.console import Console
-    from rich.table import Table
+def _result(doc: dict[str, Any]) -> dict[str, Any]:
+    """The results block with the record-level parts the views read (sequence, calibration, instrument)."""
+    res = dict(doc.get("results") or {})
+    for key in ("sequence", "run_id", "calibration", "instrument", "simulated"):
+        if key in doc:
+            res.setdefault(key, doc.get(key))
+    return res
 
-    from pycnoctl.controller.cli.run import print_summary
+
+def print_run(doc: dict[str, Any], folder: Path, units: Any = None) -> None:
+    from pycnoctl.controller.cli.display import Column, Units, console, print_table
+    from pycnoctl.controller.cli.result_view import print_summary
     from pycnoctl.controller.record.report import budget_rows
 
-    res = dict(doc.get("results") or {})
-    res.setdefault("sequence", doc.get("sequence") or {})
-    res.setdefault("run_id", doc.get("run_id"))
-    con = Console()
+    units = units or Units()
+    res = _result(doc)
+    con = console()
     con.print(f"run {doc.get('run_id')}  sample {res.get('sample_id') or '-'}  started {res.get('started_utc')}  "
-              f"operator {res.get('operator') or '-'}")
-    print_summary(res, folder)
+              f"operator {res.get('operator') or '-'}", markup=False)
+    print_summary(res, folder, units, con=con)
     budget = res.get("budget") or []
     if budget:
-        table = Table(title="uncertainty budget (standard)")
-        for col in ("input", "value", "u", "sensitivity", "contribution / cm3", "share"):
-            table.add_column(col, justify="left" if col == "input" else "right")
-        for row in budget_rows(budget):
-            table.add_row(*row)
-        con.print(table)
+        cols = [Column("input", wrap=True), Column("value", True, 2), Column("u", True, 1),
+                Column("sensitivity", True, 3), Column("contribution / cm3", True), Column("share", True)]
+        print_table(cols, budget_rows(budget), title="uncertainty budget (standard uncertainties, k = 1)", con=con)
     rec = (doc.get("calibration") or {}).get("record")
     if rec:
         con.print(f"calibration {rec['id']} of {rec['created'][:10]} ({rec['gas']}): Vc {rec['vc_m3'] * 1e6:.5f} "
-                  f"+/- {rec['u_vc_m3'] * 1e6:.5f} cm3, Vr {rec['vr_m3'] * 1e6:.5f} +/- {rec['u_vr_m3'] * 1e6:.5f} cm3")
+                  f"+/- {rec['u_vc_m3'] * 1e6:.5f} cm3, Vr {rec['vr_m3'] * 1e6:.5f} +/- {rec['u_vr_m3'] * 1e6:.5f} cm3 "
+                  "(standard u)", markup=False)
     else:
         con.print("calibration: nominal volumes of the instrument config")

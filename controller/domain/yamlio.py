@@ -155,8 +155,12 @@ def _build(node: yaml.Node, loc: Loc, doc: Document, problems: list[Problem], lo
     return loader.construct_object(node)
 
 
-def parse_text(text: str, name: str = "<string>") -> Document:
-    """Parse YAML text strictly; raises ConfigError listing every problem found."""
+def parse_text(text: str, name: str = "<string>", *, collect: list[Problem] | None = None) -> Document:
+    """Parse YAML text strictly; raises ConfigError listing every problem found.
+
+    ``collect``: problems that leave a tree behind (a duplicate key, a tag) go into this list and the
+    document is returned without them (the first of duplicate keys kept), so that the caller can
+    report them together with the schema's; a file that cannot be parsed at all still raises."""
     try:
         loader = _StrictLoader(text)
     except yaml.YAMLError as exc:  # e.g. a NUL or other non-printable character, found by the reader
@@ -182,13 +186,15 @@ def parse_text(text: str, name: str = "<string>") -> Document:
         doc.data = _build(root, (), doc, problems, loader)
     finally:
         loader.dispose()
-    if problems:
+    if problems and collect is None:
         raise ConfigError(problems)
+    if collect is not None:
+        collect.extend(problems)
     return doc
 
 
-def load_file(path: str | Path, max_bytes: int = MAX_BYTES) -> Document:
-    """Read and parse a YAML file, refusing oversize or non-UTF-8 input."""
+def load_file(path: str | Path, max_bytes: int = MAX_BYTES, *, collect: list[Problem] | None = None) -> Document:
+    """Read and parse a YAML file, refusing oversize or non-UTF-8 input (``collect``: as parse_text)."""
     p = Path(path)
     name = str(path)
     try:
@@ -210,7 +216,7 @@ def load_file(path: str | Path, max_bytes: int = MAX_BYTES) -> Document:
         line = raw[: exc.start].count(b"\n") + 1
         col = exc.start - (raw.rfind(b"\n", 0, exc.start) + 1) + 1
         raise ConfigError([Problem(name, line, col, "not valid UTF-8")]) from None
-    return parse_text(text, name)
+    return parse_text(text, name, collect=collect)
 
 
 def _message(err: dict[str, Any]) -> str:

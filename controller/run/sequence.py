@@ -21,8 +21,10 @@ and the positioned document (``seq.doc``, used by :func:`check_against_instrumen
 
 from __future__ import annotations
 
+import difflib
 import importlib.resources
 import math
+import typing
 from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -498,24 +500,63 @@ def _positioned(doc: Document, exc: ValidationError) -> list[Problem]:
         loc = _yaml_loc(doc.data, tuple(err["loc"]), keep_last=err["type"] == "missing")
         dotted = ".".join(map(str, loc))
         if err["type"] == "extra_forbidden":
-            msg = f"unknown key {loc[-1]!r}" if loc else "unknown key"
+            msg = _unknown_key(loc) if loc else "unknown key"
         elif err["type"] == "missing":
             msg = f"missing key {loc[-1]!r}" if loc else "missing value"
         elif err["type"] == "invalid_key":
             msg = f"key {err.get('input')!r} is not text"
+        elif err["type"] in ("string_type", "literal_error") and isinstance(err.get("input"), list | dict):
+            got = err["input"]
+            what = (f"a list ({', '.join(map(str, got))[:60]})" if isinstance(got, list) else "a mapping of keys")
+            msg = f"{dotted}: expected one name, got {what}; write a single value, e.g. {dotted.split('.')[-1]}: " \
+                  f"{got[0] if isinstance(got, list) and got else 'NAME'}"
         else:
             msg = f"{dotted}: {err['msg']}" if dotted else err["msg"]
         out.append(doc.problem(loc, msg))
     return out
 
 
-def _validated(doc: Document) -> Sequence:
-    problems: list[Problem] = []
+def _fields_at(loc: Loc) -> list[str]:
+    """The keys the sequence format allows at a place in the file (the section of a misspelt key)."""
+    model: Any = Sequence
+    for key in loc:
+        fields = getattr(model, "model_fields", None)
+        if not isinstance(key, str) or not fields or key not in fields:
+            return []
+        model = _model_of(fields[key].annotation)
+    fields = getattr(model, "model_fields", None)
+    return list(fields) if fields else []
+
+
+def _model_of(annotation: Any) -> Any:
+    """The pydantic model inside an annotation such as ``Purge | None`` (None when there is none)."""
+    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+        return annotation
+    for arg in typing.get_args(annotation):
+        found = _model_of(arg)
+        if found is not None:
+            return found
+    return None
+
+
+def _unknown_key(loc: Loc) -> str:
+    """'unknown key' with the nearest allowed spelling, or the allowed keys when none is near."""
+    key = str(loc[-1])
+    allowed = _fields_at(loc[:-1])
+    near = difflib.get_close_matches(key, allowed, n=1, cutoff=0.6)
+    if near:
+        return f"unknown key {key!r}; did you mean {near[0]!r}?"
+    return f"unknown key {key!r}"
+
+
+def _validated(doc: Document, early: list[Problem] | None = None) -> Sequence:
+    problems: list[Problem] = list(early or [])
     seq: Sequence | None = None
+    told = {p.line for p in problems}  # a line whose YAML was refused (a tag): its value's error is the same one
     try:
         seq = Sequence.model_validate(doc.data, context={_DEFER: True})
     except ValidationError as exc:
-        problems.extend(_positioned(doc, exc))
+        problems.extend(p for p in _positioned(doc, exc) if p.line not in told)
     problems.extend(doc.problem(loc, f"{'.'.join(map(str, loc))}: {msg}")
                     for loc, msg in _section_rules(doc.data))
     if problems or seq is None:
@@ -528,8 +569,9 @@ def sequence_from_text(text: str, name: str = "<stored sequence>") -> Sequence:
     """A sequence from its text, checked exactly like a file (a run record keeps the text it ran)."""
     if len(text.encode("utf-8")) > MAX_BYTES:
         raise ConfigError([Problem(name, 1, 1, f"sequence text is larger than {MAX_BYTES} bytes")])
-    doc = parse_text(text, name)
-    seq = _validated(doc)
+    early: list[Problem] = []
+    doc = parse_text(text, name, collect=early)
+    seq = _validated(doc, early)
     seq._raw_text = text
     seq._doc = doc
     return seq
@@ -545,8 +587,9 @@ def load_sequence(path: str | Path) -> Sequence:
             before = fh.read(MAX_BYTES + 1)
     except OSError:
         before = None  # load_file reports the unreadable file
-    doc = load_file(path)  # strict YAML: size cap, UTF-8, no tags/aliases/duplicates, positioned reader errors
-    seq = _validated(doc)
+    early: list[Problem] = []  # duplicate keys and tags: told with the schema's problems, in one pass
+    doc = load_file(path, collect=early)  # strict YAML: size cap, UTF-8, no tags/aliases/duplicates, positioned
+    seq = _validated(doc, early)
     try:
         after = Path(path).read_bytes()
     except OSError:
@@ -690,3 +733,18 @@ def estimate_duration(seq: Sequence, *, fill_time: float = 5.0, settle_typical: 
         total += (fill_time + _settle_time(seq.settle_filled, settle_typical)
                   + seq.leak_check.hold + seq.vent.time)
     return total
+
+
+def phase_times(seq: Sequence, *, fill_time: float = 5.0) -> dict[str, float]:
+    """The static duration of each run state (instrument s), on the same assumptions as
+    estimate_duration: the live view's time left starts from these and replaces each by what the
+    run shows."""
+    out = {"fill": fill_time, "expand": 0.0, "vent": seq.vent.time,
+           "baseline": _settle_time(seq.settle_baseline, None),
+           "settle_filled": _settle_time(seq.settle_filled, None),
+           "settle_expanded": _settle_time(seq.settle_expanded, None)}
+    if seq.purge is not None:
+        out.update(purge_fill=fill_time, purge_hold=seq.purge.hold, purge_vent=seq.purge.vent)
+    if seq.leak_check is not None:
+        out["leak_hold"] = seq.leak_check.hold
+    return out

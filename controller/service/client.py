@@ -14,6 +14,11 @@ from httpx_sse import SSEError, connect_sse
 DEFAULT_URL = "http://127.0.0.1:8765"
 
 
+def default_url() -> str:
+    """The daemon's address: $PYCNOCTL_URL when set, else the local default."""
+    return os.environ.get("PYCNOCTL_URL") or DEFAULT_URL
+
+
 class DaemonError(Exception):
     """The daemon refused a request (status and its message) or could not be reached (status 0)."""
 
@@ -31,13 +36,13 @@ class StreamEvent:
 
 
 class DaemonClient:
-    """Talks to one daemon; the token comes from the argument or $PYCNOCTL_TOKEN."""
+    """Talks to one daemon (at $PYCNOCTL_URL unless told); the token comes from the argument or $PYCNOCTL_TOKEN."""
 
-    def __init__(self, url: str = DEFAULT_URL, token: str | None = None, timeout: float = 10.0,
+    def __init__(self, url: str | None = None, token: str | None = None, timeout: float = 10.0,
                  transport: httpx.BaseTransport | None = None) -> None:
         token = token if token is not None else os.environ.get("PYCNOCTL_TOKEN") or None
         headers = {"authorization": f"Bearer {token}"} if token else {}
-        self.url = url.rstrip("/")
+        self.url = (url or default_url()).rstrip("/")
         kw: dict[str, Any] = {"base_url": self.url, "headers": headers, "timeout": timeout}
         if transport is not None:
             kw["transport"] = transport

@@ -1,0 +1,226 @@
+"""How the command line shows figures to people: the display units and tables that never cut a value.
+
+Units are a setting (``--units`` on the verbs that print pressures or densities, default
+``$PYCNOCTL_UNITS``, e.g. ``kPa,kg/m3``), not a code change: pressures in bar, kPa or psi, always
+gauge (above ambient) in the command line; densities in g/cm3 or kg/m3.  Volumes stay in cm3, the
+unit every pycnometry result is quoted in.  The factors are exact by definition (bar, kPa, g/cm3) or
+by the definition of the avoirdupois pound and standard gravity (psi); no unit registry is loaded, so
+``compute`` and ``runs`` start fast (tests check the factors against pint and scipy.constants).
+
+Tables: a rich table is as wide as the terminal allows, but an ID or a figure is never cut.  Each
+column has a priority; when the table would not fit, the least important columns are left out (and
+one line says which, and that ``--csv`` has them all) until it fits; what is left keeps its cells whole.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import io
+import json
+import os
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from pycnoctl.controller.cli.main import UsageError
+
+# Pa per display unit. psi: 0.45359237 kg x 9.80665 m/s^2 / (0.0254 m)^2 (exact definitions).
+PRESSURE_UNITS: dict[str, float] = {"bar": 1e5, "kPa": 1e3, "psi": 0.45359237 * 9.80665 / 0.0254 ** 2}
+# kg/m^3 per display unit
+DENSITY_UNITS: dict[str, float] = {"g/cm3": 1e3, "kg/m3": 1.0}
+_SPELLINGS = {"bar": "bar", "kpa": "kPa", "psi": "psi", "g/cm3": "g/cm3", "g/cm^3": "g/cm3", "g/cc": "g/cm3",
+              "kg/m3": "kg/m3", "kg/m^3": "kg/m3"}
+# decimals that keep the pressure resolution of a 5-decimal bar figure (0.01 Pa is below any gauge's noise)
+_P_DECIMALS = {"bar": 5, "kPa": 3, "psi": 4}
+_RHO_DECIMALS = {"g/cm3": 5, "kg/m3": 2}
+
+
+@dataclass(frozen=True)
+class Units:
+    """The units figures are shown in."""
+
+    pressure: str = "bar"
+    density: str = "g/cm3"
+
+    def p(self, gauge_pa: float | None) -> str:
+        """A gauge pressure (Pa) as a number in the display unit ('-' when there is none)."""
+        if gauge_pa is None or gauge_pa != gauge_pa:
+            return "-"
+        return f"{gauge_pa / PRESSURE_UNITS[self.pressure]:.{_P_DECIMALS[self.pressure]}f}"
+
+    @property
+    def p_label(self) -> str:
+        """The pressure unit as a column header says it: always gauge."""
+        return f"{self.pressure} gauge"
+
+    def rho(self, kg_m3: float | None) -> str:
+        if kg_m3 is None or kg_m3 != kg_m3:
+            return "-"
+        return f"{kg_m3 / DENSITY_UNITS[self.density]:.{_RHO_DECIMALS[self.density]}f}"
+
+    def p_value(self, gauge_pa: float) -> float:
+        return gauge_pa / PRESSURE_UNITS[self.pressure]
+
+    def rho_value(self, kg_m3: float) -> float:
+        return kg_m3 / DENSITY_UNITS[self.density]
+
+
+def parse_units(text: str | None) -> Units:
+    """'kPa,kg/m3' (either order, either part) -> Units; unknown words are a UsageError naming the choices."""
+    pressure, dens = "bar", "g/cm3"
+    for word in (text or "").replace(";", ",").replace(" ", ",").split(","):
+        if not word:
+            continue
+        unit = _SPELLINGS.get(word.strip().lower())
+        if unit in PRESSURE_UNITS:
+            pressure = unit
+        elif unit in DENSITY_UNITS:
+            dens = unit
+        else:
+            raise UsageError(f"--units: unknown unit {word!r}; pressures: {', '.join(PRESSURE_UNITS)}; "
+                             f"densities: {', '.join(DENSITY_UNITS)}")
+    return Units(pressure, dens)
+
+
+def add_units_arg(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--units", metavar="UNITS", default=os.environ.get("PYCNOCTL_UNITS", ""),
+                   help="display units, e.g. 'kPa,kg/m3': pressures bar, kPa or psi (always gauge), densities "
+                        "g/cm3 or kg/m3 (default $PYCNOCTL_UNITS, else bar and g/cm3)")
+
+
+def add_output_args(p: argparse.ArgumentParser, *, what: str) -> None:
+    """--json and --csv, one spelling on every verb that prints a table."""
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--json", action="store_true", help=f"print {what} as JSON instead of tables")
+    g.add_argument("--csv", action="store_true", help=f"print {what} as CSV (one header line, SI-free units "
+                                                      "named in the headers) instead of tables")
+
+
+# ----------------------------------------------------------------------------------------- tables
+@dataclass
+class Column:
+    """A table column: its header, whether it is numeric (right-aligned) and how much it matters
+    (0 = never dropped; higher numbers are dropped first when the terminal is narrow)."""
+
+    header: str
+    numeric: bool = False
+    priority: int = 0
+    wrap: bool = False  # free text that may wrap between words (never an ID or a figure)
+
+
+@dataclass
+class Fitted:
+    """A table fitted to a width: the columns kept (their indices) and the headers left out."""
+
+    keep: list[int]
+    dropped: list[str] = field(default_factory=list)
+
+
+def _cell_width(text: str) -> int:
+    from rich.cells import cell_len
+
+    return max((cell_len(line) for line in text.splitlines() or [""]), default=0)
+
+
+def fit_columns(columns: Sequence[Column], rows: Sequence[Sequence[str]], width: int,
+                *, box_overhead: int = 3) -> Fitted:
+    """Leave out the least important columns until every kept cell fits whole in ``width``.
+
+    A column needs its widest cell; a header may wrap onto two lines, so it needs only its longest word.
+    Each column costs ``box_overhead`` more (padding and its border)."""
+    need = [_need(col, [r[i] for r in rows]) for i, col in enumerate(columns)]
+    keep = list(range(len(columns)))
+    dropped: list[str] = []
+
+    def total() -> int:
+        return sum(need[i] + box_overhead for i in keep) + 1
+
+    while total() > width:
+        candidates = [i for i in keep if columns[i].priority > 0]
+        if not candidates:
+            break  # only essential columns left: they stay whole and the terminal wraps the line
+        worst = max(candidates, key=lambda i: (columns[i].priority, i))
+        keep.remove(worst)
+        dropped.append(columns[worst].header)
+    return Fitted(keep, dropped)
+
+
+def _need(col: Column, cells: Sequence[str]) -> int:
+    """The narrowest a column can be with no value cut: its widest cell (its longest word for wrapping
+    text), and the longest word of its header, which wraps."""
+    words = [w for c in cells for w in c.split()] if col.wrap else list(cells)
+    words += col.header.split()
+    return max((_cell_width(w) for w in words), default=1)
+
+
+def console(file: Any = None) -> Any:
+    from rich.console import Console
+
+    return Console(file=file, highlight=False)
+
+
+def print_table(columns: Sequence[Column], rows: Sequence[Sequence[str]], *, title: str | None = None,
+                con: Any = None, note_dropped: bool = True) -> list[str]:
+    """Print a table that fits the console, cutting no cell; returns the headers left out."""
+    from rich import box
+    from rich.table import Table
+
+    con = con or console()
+    fitted = fit_columns(columns, rows, con.width)
+    table = Table(title=title, box=box.SIMPLE_HEAD, title_justify="left")
+    for i in fitted.keep:
+        col = columns[i]
+        # as wide as its widest cell, fixed: the header may wrap between words, a value never
+        width = None if col.wrap else _need(col, [r[i] for r in rows])
+        table.add_column(col.header, justify="right" if col.numeric else "left", width=width,
+                         min_width=_need(col, [r[i] for r in rows]), overflow="fold")
+    for r in rows:
+        table.add_row(*(r[i] for i in fitted.keep))
+    con.print(table)
+    if fitted.dropped and note_dropped:
+        con.print(f"(left out to fit {con.width} columns: {', '.join(fitted.dropped)}; a wider terminal, "
+                  "--csv or --json shows every column)")
+    return fitted.dropped
+
+
+def write_csv(rows: Sequence[dict[str, Any]], columns: Sequence[str], out: Any) -> None:
+    """Rows as CSV with exactly these columns: floats at full precision (repr), None as empty, lists
+    joined with ' | ' (warnings)."""
+    w = csv.DictWriter(out, fieldnames=list(columns), lineterminator="\n", extrasaction="ignore")
+    w.writeheader()
+    for r in rows:
+        w.writerow({k: _csv_cell(r.get(k)) for k in columns})
+
+
+def _csv_cell(v: Any) -> Any:
+    if v is None:
+        return ""
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, float):
+        return repr(float(v))  # full precision; a numpy float prints as a plain number
+    if isinstance(v, (list, tuple)):
+        return " | ".join(str(x) for x in v)
+    return v
+
+
+def csv_text(rows: Sequence[dict[str, Any]], columns: Sequence[str]) -> str:
+    buf = io.StringIO()
+    write_csv(rows, columns, buf)
+    return buf.getvalue()
+
+
+def dumps(obj: Any) -> str:
+    """Strict JSON (NaN and infinities become null), indented for people."""
+    return json.dumps(_clean(obj), indent=2, allow_nan=False, default=str)
+
+
+def _clean(obj: Any) -> Any:
+    if isinstance(obj, float):
+        return obj if obj == obj and obj not in (float("inf"), float("-inf")) else None
+    if isinstance(obj, dict):
+        return {k: _clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_clean(v) for v in obj]
+    return obj

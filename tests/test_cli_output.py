@@ -1,0 +1,172 @@
+"""What the command line prints, at 80 and 120 columns: no ID or figure cut, u and U named, why a cycle
+was left out, convergence, the simulator said in one line; units for people; CSV with the record's fields."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import re
+from pathlib import Path
+
+import pytest
+
+from pycnoctl.controller.cli import main as cli
+from pycnoctl.controller.cli.display import (
+    DENSITY_UNITS,
+    PRESSURE_UNITS,
+    Column,
+    Units,
+    fit_columns,
+    parse_units,
+)
+from pycnoctl.controller.cli.main import UsageError
+from pycnoctl.controller.cli.result_view import result_lines
+
+RUN_ID = re.compile(r"R\d{8}T\d{6}Z-[0-9a-f]{6}")
+
+
+def test_unit_factors_match_pint_and_scipy() -> None:
+    import pint
+    from scipy import constants
+
+    ureg = pint.UnitRegistry()
+    for unit, factor in PRESSURE_UNITS.items():
+        assert factor == pytest.approx(ureg.Quantity(1, unit).to("Pa").magnitude, rel=1e-12), unit
+    assert PRESSURE_UNITS["psi"] == pytest.approx(constants.psi, rel=1e-12)  # scipy.constants.psi
+    assert DENSITY_UNITS["g/cm3"] == pytest.approx(ureg.Quantity(1, "g/cm**3").to("kg/m**3").magnitude)
+
+
+def test_units_setting() -> None:
+    assert parse_units("kPa,kg/m3") == Units("kPa", "kg/m3")
+    assert parse_units("KG/M^3 psi") == Units("psi", "kg/m3")
+    assert parse_units("") == Units()
+    with pytest.raises(UsageError, match="mmHg"):
+        parse_units("mmHg")
+    assert Units("kPa").p(109_688.0) == "109.688" and Units().p(None) == "-"
+
+
+def test_fit_drops_the_least_important_columns_first() -> None:
+    cols = [Column("run"), Column("created", priority=3), Column("sample"), Column("volume", True),
+            Column("U", True, 1)]
+    rows = [["R20261203T165143Z-96995c", "2026-12-03 16:51", "AL-0417", "4.99989", "0.00137"]]
+    assert fit_columns(cols, rows, 200).dropped == []
+    fitted = fit_columns(cols, rows, 60)
+    assert fitted.dropped == ["created"] and fitted.keep == [0, 2, 3, 4]
+    assert fit_columns(cols, rows, 20).dropped == ["created", "U"]  # the essential ones stay
+
+
+@pytest.fixture(scope="module")
+def data(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    root = tmp_path_factory.mktemp("data")
+    for sample in ("AL-0417", "QZ-LONG-SAMPLE-ID-0001"):
+        assert cli.main(["run", "grain-volume", "--sim", "--sample", sample, "--mass", "19.62 g",
+                         "--operator", "tech-b", "--bulk-volume", "6 cm^3", "--data", str(root), "--quiet",
+                         "--json"]) == 0
+    return root
+
+
+def _out(capsys: pytest.CaptureFixture[str], *argv: str) -> str:
+    capsys.readouterr()
+    assert cli.main(list(argv)) == 0
+    return capsys.readouterr().out
+
+
+@pytest.mark.parametrize("width", [80, 120])
+def test_runs_never_cuts_an_id_or_a_figure(data: Path, capsys: pytest.CaptureFixture[str],
+                                           monkeypatch: pytest.MonkeyPatch, width: int) -> None:
+    monkeypatch.setenv("COLUMNS", str(width))
+    rows = json.loads(_out(capsys, "runs", "--data", str(data), "--json"))
+    text = _out(capsys, "runs", "--data", str(data))
+    assert all(len(line) <= width for line in text.splitlines())
+    for r in rows:
+        assert r["run_id"] in text and r["sample_id"] in text  # whole, on one line
+        assert f"{r['volume_cm3']:.5f}" in text
+        if width >= 120:
+            assert f"{r['U_volume_cm3']:.5f}" in text
+    if width == 80:
+        assert "left out to fit 80 columns" in text
+
+
+@pytest.mark.parametrize("width", [80, 120])
+def test_show_at_terminal_widths(data: Path, capsys: pytest.CaptureFixture[str],
+                                 monkeypatch: pytest.MonkeyPatch, width: int) -> None:
+    monkeypatch.setenv("COLUMNS", str(width))
+    rid = json.loads(_out(capsys, "runs", "--data", str(data), "--json"))[0]["run_id"]
+    text = _out(capsys, "show", rid, "--data", str(data))
+    lines = [line for line in text.splitlines() if not line.startswith("record: ")]
+    assert all(len(line) <= width for line in lines)
+    assert "no (warm-up)" in text and text.count("yes") >= 6  # grain-volume discards its first two cycles
+    assert "expanded U, k = 2" in text and "standard u = " in text and "u / cm3" in text
+    assert "converged: yes (last 3 kept cycles within 0.1 % of their mean)" in " ".join(text.split())
+    assert "porosity:" in text
+
+
+def test_run_final_table_at_80_columns(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                       monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("COLUMNS", "80")
+    text = _out(capsys, "run", "grain-volume", "--sim", "--sample", "AL-0417", "--mass", "19.62 g",
+                "--data", str(tmp_path), "--units", "kPa,kg/m3")
+    assert all(len(line) <= 80 for line in text.splitlines() if not line.startswith("record: "))
+    assert f"record: {tmp_path}" in text  # the path whole, on one line (the terminal may wrap it)
+    flat = " ".join(text.split())
+    assert "SIMULATED: this result came from the gas-system simulator, not from a specimen" in flat
+    assert "P1 / P2 / kPa kPa" in flat and "109.6" in text  # P1 of ~1.097 bar shown in kPa
+    assert re.search(r"density: 3924\.\d\d kg/m3 \+/- \d+\.\d\d kg/m3 \(expanded U, k = 2", flat)
+    assert "6 of 8 kept (the first 2 discarded as warm-up)" in flat
+    assert RUN_ID.search(text)
+
+
+def test_result_words_for_a_run_that_did_not_converge() -> None:
+    summary = {"status": "completed", "expansion_volume": "small", "gas": "helium", "k": 2.0,
+               "volume_cm3": 5.0012, "volume_u_cm3": 0.004, "volume_u_std_cm3": 0.002, "n_kept": 4,
+               "rsd": 0.003, "converged": False, "outliers": [5],
+               "sequence": {"parsed": {"cycles": {"discard": 2, "converge": {"last": 3, "within": 0.001}}}},
+               "cycles": [{"index": i, "kept": i > 2, "volume_cm3": 5.0, "flags": []} for i in range(1, 7)],
+               "warnings": ["w1"], "calibration": {"record": None}}
+    lines = result_lines(summary, Units(), simulated=False)
+    text = "\n".join(lines)
+    assert "converged: NO: the sequence asks for the last 3 kept cycles within 0.1 % of their mean, and they " \
+           "were not" in text
+    assert "outliers: cycle(s) 5" in text and "SIMULATED" not in text
+    assert "calibration: none on record" in text and "warning: w1" in text
+
+
+def test_runs_csv_carries_the_record(data: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    rows = list(csv.DictReader(io.StringIO(_out(capsys, "runs", "--data", str(data), "--csv"))))
+    assert len(rows) == 2
+    for r in rows:
+        assert r["gas"] == "helium" and r["instrument"] and r["operator"] == "tech-b"
+        assert r["expansion_volume"] == "small" and r["cycles"] == "8" and r["cycles_kept"] == "6"
+        assert r["converged"] == "yes" and 0 < float(r["porosity"]) < 1 and float(r["rsd"]) >= 0
+        assert "no calibration on record" in r["warnings"]
+        assert {"simulated", "calibration_id", "U_porosity"} <= set(r)
+
+
+def test_csv_and_json_of_a_run(data: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    rid = json.loads(_out(capsys, "runs", "--data", str(data), "--json"))[0]["run_id"]
+    rows = list(csv.DictReader(io.StringIO(_out(capsys, "show", rid, "--data", str(data), "--csv",
+                                                "--units", "psi"))))
+    assert [r["cycle"] for r in rows] == [str(i) for i in range(1, 9)]
+    assert rows[0]["kept"] == "no" and rows[0]["note"] == "no (warm-up)"
+    p1 = float(rows[-1]["p1_gauge_psi"])
+    assert p1 == pytest.approx(1.0969e5 / 6894.757293168361, rel=1e-3)  # scipy.constants.psi
+
+
+def test_readme_quick_start_output_is_what_run_prints(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    """The README shows the Quick start's output as printed: same lines and words (figures and IDs masked,
+    so a better simulator or settle rule changes no README)."""
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    block = readme.split("## Quick start", 1)[1].split("```text\n", 1)[1].split("\n```", 1)[0]
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("PYCNOCTL_DATA", raising=False)
+    monkeypatch.delenv("PYCNOCTL_UNITS", raising=False)
+    monkeypatch.setenv("COLUMNS", "100")
+    text = _out(capsys, "run", "grain-volume", "--sim", "--sample", "AL-0417", "--mass", "19.62g")
+
+    def masked(t: str) -> list[str]:
+        t = RUN_ID.sub("RUN", t)
+        return [re.sub(r"\d+(\.\d+)?", "#", line).rstrip() for line in t.splitlines() if line.strip()]
+
+    assert masked(block) == masked(text)
