@@ -27,6 +27,7 @@ from typing import Any, Protocol
 import numpy as np
 
 from pycnoctl.controller.domain.units import UnitError, parse_length, parse_volume
+from pycnoctl.controller.jobs.calibration_use import settle_rules
 from pycnoctl.controller.maths.calibration import (
     CalibrationError,
     CalibrationFit,
@@ -83,21 +84,26 @@ def parse_sphere(text: str, label: str = "") -> Sphere:
         raise ValueError(f"sphere {text!r}: unknown key(s) {', '.join(sorted(unknown))} (use D, V, u, name)")
     if ("d" in fields) == ("v" in fields):
         raise ValueError(f"sphere {text!r}: give exactly one of D= (diameter) or V= (volume)")
+    if "u" not in fields:
+        # a sphere without its uncertainty would enter the calibration as exact: its certificate error,
+        # the same in every later measurement, would be left out of every budget
+        raise ValueError(f"sphere {text!r}: give its certificate's standard uncertainty, u=... (in the unit of "
+                         "D or V); a calibration cannot be more certain than its spheres")
     label = fields.get("name", label) or label
     try:
         if "d" in fields:
             d = parse_length(fields["d"])
-            u_d = parse_length(fields["u"]) if "u" in fields else 0.0
-            if d <= 0 or u_d < 0:
-                raise ValueError(f"sphere {text!r}: diameter must be positive and u not negative")
+            u_d = parse_length(fields["u"])
+            if d <= 0 or u_d <= 0:
+                raise ValueError(f"sphere {text!r}: diameter and its u must be positive")
             v = sphere_volume(d)
             return Sphere(label, v, math.pi * d**2 / 2.0 * u_d, d, u_d, text)
         v = parse_volume(fields["v"])
-        u_v = parse_volume(fields["u"]) if "u" in fields else 0.0
+        u_v = parse_volume(fields["u"])
     except (UnitError, CalibrationError) as exc:
         raise ValueError(f"sphere {text!r}: {exc}") from None
-    if v <= 0 or u_v < 0:
-        raise ValueError(f"sphere {text!r}: volume must be positive and u not negative")
+    if v <= 0 or u_v <= 0:
+        raise ValueError(f"sphere {text!r}: volume and its u must be positive")
     return Sphere(label, v, u_v, spec=text)
 
 
@@ -255,11 +261,13 @@ class VolumeOutcome:
     record_id: str | None = None
     run_ids: list[str] = field(default_factory=list)
     points: list[Point] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
 
     def as_dict(self) -> dict[str, Any]:
         f = self.fit
         out: dict[str, Any] = {"expansion_volume": self.expansion_volume, "accepted": self.accepted,
-                               "reason": self.reason, "record_id": self.record_id, "run_ids": self.run_ids}
+                               "reason": self.reason, "record_id": self.record_id, "run_ids": self.run_ids,
+                               "warnings": self.warnings}
         if f is not None:
             out.update({"vc_cm3": f.vc * 1e6, "u_vc_cm3": f.u_vc * 1e6, "vr_cm3": f.vr * 1e6,
                         "u_vr_cm3": f.u_vr * 1e6, "corr": f.cov[0, 1] / (f.u_vc * f.u_vr),
@@ -294,6 +302,8 @@ def record_for(fit: CalibrationFit, name: str, spheres: Sequence[Sphere], points
                  "a": fit.a, "b": fit.b, "cov_ab": fit.cov_ab.tolist(), "n_points": fit.n_runs,
                  "sequence": sequence.name, "fill_target_pa": sequence.fill.target, "run_ids": list(run_ids),
                  "fill_pressure_range_pa": [min(p.p1 - p.pa for p in points), max(p.p1 - p.pa for p in points)],
+                 "settle_rules": settle_rules(sequence),
+                 "residual_test": "too good" if fit.too_good(alpha) else "passed",
                  "method": "GLS of y = Vg/Vr on the inserted volume, sphere errors correlated per step"},
     )
 
@@ -361,6 +371,13 @@ def calibrate(
             continue
         reason = refusal_reason(fit, alpha)
         out = VolumeOutcome(name, fit, reason is None, reason, run_ids=run_ids[name], points=pts)
+        if fit.too_good(alpha):
+            out.warnings.append(
+                f"{name}: the points lie closer to the line than their uncertainties allow (chi-square "
+                f"{fit.chi2:.3g} on {fit.dof} degrees of freedom, below its {100 * alpha:g} % limit "
+                f"{chi2_quantile(alpha, fit.dof):.3g}): the stated pressure or temperature noise is larger than "
+                "the real noise, so the stored covariance is wider than it need be; check the instrument "
+                "config's pressure_u and temperature_u")
         if reason is None:
             rec = record_for(fit, name, steps, pts, operator=operator, sequence=seq_model, alpha=alpha,
                              run_ids=run_ids[name])

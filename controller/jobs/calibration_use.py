@@ -154,3 +154,29 @@ def _other_gases(catalog: Catalog, gas: str) -> Iterable[str]:
     from pycnoctl.controller.domain.gas import GASES
 
     return [g for g in GASES if g != gas]
+
+
+def settle_rules(sequence: Any) -> dict[str, Any]:
+    """The settle rules a sequence decides with, per phase, in a form a calibration record keeps."""
+    return {phase: getattr(sequence, f"settle_{phase}").model_dump(mode="json")
+            for phase in ("baseline", "filled", "expanded")}
+
+
+def settle_mismatch(record: CalibrationRecord | None, sequence: Any) -> list[str]:
+    """A warning when a measurement settles by other rules than its calibration did.
+
+    Why: a settle that stops earlier or later leaves a different part of the thermal relaxation in P1
+    and P2; a calibration made under one rule absorbs that rule's bias, which then no longer cancels."""
+    stored = ((record.payload or {}) if record is not None else {}).get("settle_rules")
+    if not stored:
+        return []
+    now = settle_rules(sequence)
+    changed = [f"{phase} {key} {stored[phase].get(key)!r} -> {now[phase].get(key)!r}"
+               for phase in now if phase in stored
+               for key in sorted(set(now[phase]) | set(stored[phase]))
+               if key not in ("on_timeout",) and now[phase].get(key) != stored[phase].get(key)]
+    if not changed:
+        return []
+    return [f"this sequence settles differently from calibration {record.id} ("  # type: ignore[union-attr]
+            f"{'; '.join(changed[:4])}{' ...' if len(changed) > 4 else ''}): its settle bias no longer cancels "
+            "against the calibration's; calibrate with the same settle rules"]

@@ -17,6 +17,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from pycnoctl.controller.domain.gaspath import ChamberCalibration
 from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.domain.yamlio import ConfigError
@@ -26,7 +28,7 @@ from pycnoctl.controller.record.catalog import Catalog
 from pycnoctl.controller.record.runfolder import RecordWriteError, RunRecorder
 from pycnoctl.controller.record.storagefault import StorageFault, storage_cause
 from pycnoctl.controller.run.control import Controller
-from pycnoctl.controller.run.engine import RunEngine
+from pycnoctl.controller.run.engine import RunEngine, linearity_u
 from pycnoctl.controller.run.sequence import Sequence, check_against_instrument, load_sequence, resolve_sequence
 from pycnoctl.drivers.instrument import Instrument
 
@@ -77,17 +79,29 @@ def prepare(request: RunRequest, instrument: Instrument, catalog: Catalog | None
             for n in names:
                 rec = catalog.latest_calibration(n, seq.gas)
                 if rec is not None:
-                    cal[n] = ChamberCalibration(rec.vc, rec.vr)
+                    cov = tuple(tuple(float(x) for x in row) for row in (rec.cov or [[0.0, 0.0], [0.0, 0.0]]))
+                    cal[n] = ChamberCalibration(rec.vc, rec.vr, cov)  # type: ignore[arg-type]
         volumes = {n: c.vr for n, c in cal.items()}
         cell = sum(c.vc for c in cal.values()) / len(cal)
         if estimate is None or not 0 < estimate < cell:
             choice = max(volumes, key=volumes.__getitem__)
             warnings.append("no usable sample estimate for the advisor; using the largest expansion volume")
         else:
-            choice = advise(estimate, cell, volumes, p1_gauge=seq.fill.target, u_p=instrument.pressure_u).best
+            choice = advise(estimate, cell, volumes, p1_gauge=seq.fill.target, u_p=_settled_u(seq, instrument),
+                            cov_cal={n: np.asarray(c.cov, dtype=float) for n, c in cal.items()}).best
     elif choice not in names:
         raise ValueError(f"unknown expansion volume {choice!r}; the instrument has: {', '.join(names)}")
     return PreparedRun(request, seq, choice, warnings)
+
+
+def _settled_u(seq: Sequence, instrument: Instrument) -> float:
+    """The u a settled pressure will have, for the advisor: the end-point standard error of a regression
+    over the settle window of white noise (2 u_p / sqrt(n) for n samples) with the transducer's
+    systematic part.  The advisor weighs it against each volume's calibration covariance, so its
+    size matters, not only its ratio between volumes."""
+    n = max(seq.settle_expanded.window / max(instrument.sample_period, 1e-3), 3.0)
+    return math.hypot(2.0 * instrument.pressure_u / math.sqrt(n),
+                      linearity_u(instrument.pressure_u, instrument.pressure_u_linearity))
 
 
 def jsonable(x: Any) -> Any:
@@ -247,11 +261,13 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
                            ) from exc
     cal_use = None
     if seq.kind == "measure":  # compute with the latest calibration of this volume and gas; warn on mismatch
-        from pycnoctl.controller.jobs.calibration_use import use_latest_calibration
+        from pycnoctl.controller.jobs.calibration_use import settle_mismatch, use_latest_calibration
 
         cal_use = use_latest_calibration(inst, catalog, expansion_volume=prepared.expansion_volume, gas=seq.gas,
                                          fill_target=seq.fill.target)
         prepared.warnings.extend(cal_use.warnings)
+        if seq.kind == "measure":
+            prepared.warnings.extend(settle_mismatch(cal_use.record, seq))
     engine = RunEngine(seq, inst, expansion_volume=prepared.expansion_volume)
     started, t0 = time.time(), inst.clock.now()
     try:

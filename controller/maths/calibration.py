@@ -137,6 +137,15 @@ class CalibrationFit:
             return True
         return self.chi2 <= chi2_quantile(1.0 - alpha, self.dof)
 
+    def too_good(self, alpha: float = 0.01) -> bool:
+        """True when chi-square is below its lower-alpha quantile: the points lie far closer to the line
+        than their stated uncertainties allow, so those are overstated (or the data were not measured
+        independently); the fit's covariance, built from them, is then too wide.  The other side of
+        consistent(): a residual test that can only fail one way cannot show an inflated budget."""
+        if self.dof <= 0 or not self.weighted:
+            return False
+        return self.chi2 < chi2_quantile(alpha, self.dof)
+
     def predict(self, y: float, u_y: float = 0.0, *, scaled: bool = False) -> tuple[float, float]:
         """Inverse prediction: the volume in the cell that gives ``y``, and its standard uncertainty.
 
