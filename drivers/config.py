@@ -26,7 +26,7 @@ from pycnoctl.controller.domain.devices import PressureSensor, Thermometer, Valv
 from pycnoctl.controller.domain.gas import get_gas
 from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
 from pycnoctl.drivers import registry
-from pycnoctl.drivers.fields import Pressure, Seconds, Strict, Temperature
+from pycnoctl.drivers.fields import Pressure, PressureRate, Seconds, Strict, Temperature
 from pycnoctl.drivers.guarded import GuardedValveBank, violations
 from pycnoctl.drivers.instrument import Instrument
 from pycnoctl.drivers.simulated import SIM, SimDevice
@@ -59,6 +59,8 @@ class InstrumentConfig(Strict):
     pressure_u: Pressure = 20.0
     pressure_u_linearity: Pressure | None = None
     temperature_u: Temperature = 0.05
+    barometer_u: Pressure = 5.0
+    ambient_drift_rate: PressureRate = 100.0 / 3600.0
     ambient_nominal: Pressure = STANDARD_ATMOSPHERE
 
     @field_validator("gas")
@@ -264,6 +266,7 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Any = None, sim_bench: Any
         thermometer=thermometer, barometer=barometer, supply=supply, sample_period=cfg.sample_period,
         pressure_u=cfg.pressure_u,
         pressure_u_linearity=cfg.pressure_u_linearity, temperature_u=cfg.temperature_u,
+        barometer_u=cfg.barometer_u, ambient_drift_rate=cfg.ambient_drift_rate,
         ambient_nominal=cfg.ambient_nominal,
         gas=cfg.gas, extras=extras)
 

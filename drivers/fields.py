@@ -53,6 +53,7 @@ def _signal(value: Any) -> float:
 Pressure = Annotated[float, BeforeValidator(_needs_unit(units.parse_pressure, "150 kPa"))]
 Temperature = Annotated[float, BeforeValidator(_needs_unit(units.parse_temperature_difference, "0.05 K"))]
 Seconds = Annotated[float, BeforeValidator(_seconds), Field(gt=0)]
+PressureRate = Annotated[float, BeforeValidator(_needs_unit(units.parse_rate, "100 Pa/h")), Field(ge=0)]
 Signal = Annotated[float, BeforeValidator(_signal)]
 
 

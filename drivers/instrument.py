@@ -41,6 +41,10 @@ class Instrument:
     # gain error) removes.  None: not stated, pressure_u is taken (cautious).
     pressure_u_linearity: float | None = None
     temperature_u: float = 0.05  # K, standard uncertainty of the gas temperature
+    barometer_u: float = 5.0  # Pa, noise of one barometer reading
+    # Pa/s, the fastest lab-pressure change assumed where no barometer reads it: 100 Pa per hour, a
+    # brisk change of weather (from memory); budgeted over each cycle's time since its zero
+    ambient_drift_rate: float = 100.0 / 3600.0
     ambient_nominal: float = 101325.0  # Pa, used when no barometer serves
     gas: str = "helium"  # the gas the instrument is plumbed for
     extras: dict[str, object] = field(default_factory=dict)  # e.g. the simulator behind the drivers

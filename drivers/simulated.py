@@ -218,6 +218,8 @@ def build_sim_instrument(
         # the simulated transducer is linear unless its config says otherwise: its noise is all random
         pressure_u_linearity=float(getattr(ins.pressure, "nonlinearity", 0.0)),
         temperature_u=max(ins.thermometer.noise if ins.thermometer else 0.05, 0.01),
+        barometer_u=max(ins.barometer.noise, ins.barometer.resolution / math.sqrt(12.0), 0.1)
+        if ins.barometer is not None else 5.0,
         ambient_nominal=cfg.lab.pressure,
         gas=cfg.gas,
         extras={"sim": bench},

@@ -31,6 +31,14 @@ def test_sphere_by_volume_and_bad_specs() -> None:
             parse_sphere(bad)
 
 
+def test_sphere_without_its_uncertainty_is_refused() -> None:
+    # A sphere entered as exact would carry no certificate error into the calibration, and so into
+    # no later budget (issue: such a sphere was accepted with u = 0 and became the newest calibration).
+    for bad in ("D=25.4 mm", "V=8.5802 cm^3", "D=25.4 mm,u=0 mm", "V=8.5802 cm^3,u=0 cm^3"):
+        with pytest.raises(ValueError, match="u"):
+            parse_sphere(bad)
+
+
 def _point(step: int, vin: float, p1g: float, p2g: float, u: float = 1.0) -> Point:
     return Point(step, vin, PA + p1g, PA + p2g, PA, u, u, 0.0, None, None, None)
 
@@ -43,7 +51,7 @@ def _ideal_p2g(vc: float, vr: float, vs: float, p1g: float) -> float:
 
 def test_methods_check_case_recovered() -> None:
     # methods.md [D]: Vc=12, Vr=8 cm^3, P1g=1.3 bar: empty P2g=0.780000 bar, with the 25.4 mm sphere 0.389297 bar
-    vk = parse_sphere("D=25.4 mm").volume
+    vk = parse_sphere("D=25.4 mm,u=0.001 mm").volume
     assert _ideal_p2g(12e-6, 8e-6, 0.0, 1.3e5) == pytest.approx(0.780000e5, abs=0.5)
     assert _ideal_p2g(12e-6, 8e-6, vk, 1.3e5) == pytest.approx(0.389297e5, abs=0.5)
     pts = [_point(0, 0.0, 1.3e5, 0.780000e5), _point(1, vk, 1.3e5, 0.389297e5)]

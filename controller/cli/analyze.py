@@ -70,6 +70,7 @@ def _chambers(args: argparse.Namespace, stored: dict[str, Any], root: Any) -> An
 
 def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.jobs.measurement import data_dir, jsonable
+    from pycnoctl.controller.maths.cycle import AmbientModel
     from pycnoctl.controller.record.replay import reanalyze
     from pycnoctl.controller.record.runfolder import load_run
     from pycnoctl.controller.run.sequence import load_sequence, resolve_sequence, sequence_from_text
@@ -89,7 +90,9 @@ def main(args: argparse.Namespace) -> int:
     chambers = _chambers(args, stored, root)
     re = reanalyze(run, seq, chambers=chambers, gas=gas, pressure_is_gauge=bool(inst["pressure_is_gauge"]),
                    pressure_u=float(inst["pressure_u"]), temperature_u=float(inst["temperature_u"]),
-                   pressure_u_linearity=inst.get("pressure_u_linearity"))
+                   pressure_u_linearity=inst.get("pressure_u_linearity"),
+                   ambient=AmbientModel(bool(inst.get("barometer")), float(inst.get("barometer_u") or 0.0),
+                                        float(inst.get("ambient_drift_rate") or 0.0)))
     res = re.result
     out: dict[str, Any] = {
         "run_id": stored["run_id"], "sequence": seq.name, "gas": gas,

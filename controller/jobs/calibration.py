@@ -149,7 +149,8 @@ def points_from_summary(summary: dict[str, Any], step: int, inserted: float, *, 
         # point to point; a systematic part common to every point would move the line, not scatter it
         u_zero = c.get("u_baseline_pa")
         u_zero = float(u_zero) if u_zero is not None and math.isfinite(u_zero) else u_pa
-        out.append(Point(step, inserted, pa + c["p1_gauge_pa"], pa + c["p2_gauge_pa"], pa, c["u_p1_pa"],
+        amb1, amb2 = c.get("p1_ambient_pa") or pa, c.get("p2_ambient_pa") or pa  # older records: the zero's
+        out.append(Point(step, inserted, amb1 + c["p1_gauge_pa"], amb2 + c["p2_gauge_pa"], pa, c["u_p1_pa"],
                          c["u_p2_pa"], u_zero, c.get("t1_k"), c.get("t2_k"), c.get("ta_k"),
                          summary.get("run_id", ""), int(c["index"]), float(c.get("u_p1_relax_pa") or 0.0),
                          float(c.get("u_p2_relax_pa") or 0.0), float(c.get("u_baseline_relax_pa") or 0.0),

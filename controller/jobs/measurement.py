@@ -134,6 +134,9 @@ def instrument_description(instrument: Instrument) -> dict[str, Any]:
         "pressure_u": instrument.pressure_u,
         "pressure_u_linearity": instrument.pressure_u_linearity,
         "temperature_u": instrument.temperature_u,
+        "barometer": instrument.barometer is not None,
+        "barometer_u": instrument.barometer_u,
+        "ambient_drift_rate": instrument.ambient_drift_rate,
         "sample_period": instrument.sample_period,
         "config": instrument.extras.get("config"),
     })

@@ -47,6 +47,7 @@ class Zero:
     temp_k: float  # K of the gas trapped at the zero (NaN when no valid temperature)
     u_relax: float = 0.0  # Pa, standard: relaxation still to come (the same sign every cycle)
     n_temps: int = 0  # distinct thermometer readings averaged into temp_k
+    t_at: float = math.nan  # s, when it was taken
 
 
 @dataclass
@@ -83,6 +84,10 @@ class CycleData:
     settle2_s: float = math.nan
     drift2_pa_s: float = math.nan
     fill_s: float = math.nan  # set by the engine: when its fill target was reached
+    ambient1_pa: float = math.nan  # lab pressure (absolute) over P1's last samples, and P2's
+    ambient2_pa: float = math.nan
+    since_zero1_s: float = math.nan  # s from the zero to P1, and to P2
+    since_zero2_s: float = math.nan
     leak_rate_pa_s: float = math.nan
     flags: list[str] = field(default_factory=list)
 
@@ -98,6 +103,8 @@ class Settled:
     drift: float  # Pa/s at the decision
     u_relax: float = 0.0  # Pa, standard: relaxation still to come (systematic)
     n_temps: int = 0  # distinct thermometer readings in t
+    ambient: float = math.nan  # Pa absolute, lab pressure over the last samples
+    t_at: float = math.nan  # s, when it was taken
 
 
 @dataclass(frozen=True)
@@ -116,6 +123,22 @@ class CyclePlan:
     #: Pa, the transducer's systematic standard uncertainty at a reading (non-linearity: a gain error
     #: cancels in the pressure ratio and the zero is taken every cycle); the same in every cycle.
     u_p_sys: float = 0.0
+    ambient: AmbientModel | None = None  # how the lab pressure is known; None: constant, unbudgeted
+
+
+@dataclass(frozen=True)
+class AmbientModel:
+    """How a run knows the lab pressure between a cycle's zero and its P1, P2.
+
+    Why it matters: a gauge transducer reads against the lab's pressure, and the gas trapped in the
+    expansion volume at the zero stays at the zero's lab pressure; a change of the lab pressure by
+    dPa between the zero and P2 moves P2 - Pa by dPa, a relative error of dPa / P2g (10 Pa on a
+    50 kPa expansion: 2e-4).  With a barometer the change is read and corrected; without one it is
+    bounded by ``drift_rate`` (Pa/s) over the time since the zero and budgeted."""
+
+    barometer: bool
+    u_barometer: float = 0.0  # Pa, one barometer reading's noise (its means average it down)
+    drift_rate: float = 0.0  # Pa/s, the largest lab-pressure change rate assumed without a barometer
 
 
 def settled_u_parts(det: SettleDetector) -> tuple[float, float]:
@@ -252,6 +275,7 @@ class CycleMeasurer:
         self._open = False  # a settle phase still waiting for its decision
         self._window: list[tuple[float, float]] = []  # (ambient, temp K) of valid-pressure rows: the zero
         self._temps: list[float] = []  # valid temperatures of a P1 / P2 phase
+        self._ambients: list[float] = []  # lab pressure of the valid rows of a P1 / P2 phase
         self._trace: tuple[list[float], list[float]] = ([], [])  # valid (t, gauge) of a P1 / P2 phase
         self._leak: tuple[list[float], list[float]] = ([], [])
 
@@ -282,6 +306,7 @@ class CycleMeasurer:
                 if finite:
                     self._trace[0].append(t)
                     self._trace[1].append(gauge)
+                    self._ambients.append(ambient)
             status = det.feed(t, gauge) if finite else SettleStatus.WAITING
             if status is not SettleStatus.WAITING:
                 self._take(timed_out=status is SettleStatus.TIMED_OUT)
@@ -331,7 +356,7 @@ class CycleMeasurer:
                     RunState.SETTLE_EXPANDED: self.plan.expanded}[RunState(state)]
             self._det = SettleDetector(crit, self._last_t)
             self._open = True
-            self._window, self._temps = [], []
+            self._window, self._temps, self._ambients = [], [], []
             self._trace = ([], [])
         elif state == RunState.FILL:
             self.current = None
@@ -371,7 +396,8 @@ class CycleMeasurer:
             recent = self._window[-_LAST:]
             temp, n_temps = _mean_of_readings([w[1] for w in recent if math.isfinite(w[1])])
             u_reg, u_relax = settled_u_parts(det)
-            self.zero = Zero(det.estimate, u_reg, sum(w[0] for w in recent) / len(recent), temp, u_relax, n_temps)
+            self.zero = Zero(det.estimate, u_reg, sum(w[0] for w in recent) / len(recent), temp, u_relax, n_temps,
+                             self._last_t)
             self.last = Settled(det.estimate, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps)
             return
         cyc = self.current
@@ -379,15 +405,21 @@ class CycleMeasurer:
             return
         temp, n_temps = _mean_of_readings(self._temps[-_LAST:])
         u_reg, u_relax = settled_u_parts(det)
-        val = Settled(det.estimate - cyc.baseline_pa, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps)
+        ambients = [a for a in self._ambients[-_LAST:] if math.isfinite(a)]
+        ambient = sum(ambients) / len(ambients) if ambients else math.nan
+        val = Settled(det.estimate - cyc.baseline_pa, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps,
+                      ambient, self._last_t)
+        since = self._last_t - self.zero.t_at if self.zero is not None else math.nan
         self.last = val
         which = "p1" if self._state == RunState.SETTLE_FILLED else "p2"
         if which == "p1":
             cyc.p1_gauge_pa, cyc.u_p1_settle_pa, cyc.u_p1_relax_pa, cyc.t1_k = val.p, val.u, val.u_relax, val.t
             cyc.settle1_s, cyc.drift1_pa_s, cyc.n_t1 = val.time, val.drift, n_temps
+            cyc.ambient1_pa, cyc.since_zero1_s = ambient, since
         else:
             cyc.p2_gauge_pa, cyc.u_p2_settle_pa, cyc.u_p2_relax_pa, cyc.t2_k = val.p, val.u, val.u_relax, val.t
             cyc.settle2_s, cyc.drift2_pa_s, cyc.n_t2 = val.time, val.drift, n_temps
+            cyc.ambient2_pa, cyc.since_zero2_s = ambient, since
         if timed_out:
             cyc.flags.append(f"unsettled_{which}")  # already says the drift remained
         elif drift_unexplained(*self._trace, self.plan.u_p) is not None:
@@ -400,5 +432,8 @@ class CycleMeasurer:
         if self.results and self.results[-1].index == cyc.index:
             return
         p = self.plan
-        self.results.append(results.cycle_result(cyc, p.chambers, gas=p.gas, u_p_sys=p.u_p_sys, u_t=p.u_t,
-                                                 discard=p.discard))
+        amb = p.ambient
+        self.results.append(results.cycle_result(
+            cyc, p.chambers, gas=p.gas, u_p_sys=p.u_p_sys, u_t=p.u_t, discard=p.discard,
+            barometer=amb is not None and amb.barometer, u_barometer=amb.u_barometer if amb else 0.0,
+            ambient_drift_rate=amb.drift_rate if amb else 0.0))

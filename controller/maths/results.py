@@ -43,6 +43,10 @@ class CyclePressures(Protocol):
     settle2_s: float
     drift2_pa_s: float
     fill_s: float
+    ambient1_pa: float
+    ambient2_pa: float
+    since_zero1_s: float
+    since_zero2_s: float
     flags: list[str]
 
 
@@ -75,6 +79,8 @@ class CycleResult:
     u_baseline_relax_pa: float = 0.0  # of which the relaxation each settle left to come
     u_p1_relax_pa: float = 0.0
     u_p2_relax_pa: float = 0.0
+    p1_ambient_pa: float = math.nan  # the lab pressure P1 and P2 are taken against (absolute = this + gauge)
+    p2_ambient_pa: float = math.nan
     u_t1_k: float = 0.0  # random standard uncertainties of the temperatures (means of readings)
     u_t2_k: float = 0.0
     u_ta_k: float = 0.0
@@ -102,21 +108,34 @@ def _u_mean(u_t: float, n: int) -> float:
 
 
 def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str, u_p_sys: float, u_t: float,
-                 discard: int) -> CycleResult:
+                 discard: int, barometer: bool = False, u_barometer: float = 0.0,
+                 ambient_drift_rate: float = 0.0) -> CycleResult:
     """Volume of one cycle and its GUM budget.
 
     Each random input is counted once: a settled pressure's noise is in its window regression's
     standard error (Type A), so the transducer's per-reading noise is not added again; a temperature
     averaged over n readings has u_t/sqrt(n).  Systematic parts are rows of their own: the
-    transducer's non-linearity ``u_p_sys`` and the relaxation each settle left to come."""
+    transducer's non-linearity ``u_p_sys`` and the relaxation each settle left to come.
+
+    The lab pressure (see maths.cycle.AmbientModel): with a ``barometer`` P1 and P2 are taken
+    against the lab pressure read over their own last samples, which corrects a change since the
+    zero (the gas in the expansion volume stays at the zero's), and that reading's noise
+    (``u_barometer`` per reading) is a random input; without one, a change of up to
+    ``ambient_drift_rate`` Pa/s since the zero is budgeted as a systematic input (a rectangular bound)."""
     pa = cyc.ambient_pa
-    p1, p2 = pa + cyc.p1_gauge_pa, pa + cyc.p2_gauge_pa
-    u_p1, u_p2 = _fin(cyc.u_p1_settle_pa), _fin(cyc.u_p2_settle_pa)
-    u_p1_sys = math.hypot(u_p_sys, _fin(cyc.u_p1_relax_pa))
-    u_p2_sys = math.hypot(u_p_sys, _fin(cyc.u_p2_relax_pa))
+    amb1 = cyc.ambient1_pa if barometer and math.isfinite(cyc.ambient1_pa) else pa
+    amb2 = cyc.ambient2_pa if barometer and math.isfinite(cyc.ambient2_pa) else pa
+    p1, p2 = amb1 + cyc.p1_gauge_pa, amb2 + cyc.p2_gauge_pa
+    u_baro = u_barometer / math.sqrt(2.0) if barometer else 0.0  # a mean of about two 1 s readings
+    u_p1 = math.hypot(_fin(cyc.u_p1_settle_pa), u_baro)
+    u_p2 = math.hypot(_fin(cyc.u_p2_settle_pa), u_baro)
+    drift1 = 0.0 if barometer else ambient_drift_rate * _fin(cyc.since_zero1_s) / math.sqrt(3.0)
+    drift2 = 0.0 if barometer else ambient_drift_rate * _fin(cyc.since_zero2_s) / math.sqrt(3.0)
+    u_p1_sys = math.sqrt(u_p_sys**2 + _fin(cyc.u_p1_relax_pa) ** 2 + drift1**2)
+    u_p2_sys = math.sqrt(u_p_sys**2 + _fin(cyc.u_p2_relax_pa) ** 2 + drift2**2)
     # An error in the cycle's zero shifts both gauge pressures alike: the same as an error in the
     # initial pressure of the expansion volume with P1, P2 held, which is how the budget takes Pa.
-    u_pa, u_pa_sys = _fin(cyc.u_baseline_pa), _fin(cyc.u_baseline_relax_pa)
+    u_pa, u_pa_sys = math.hypot(_fin(cyc.u_baseline_pa), u_baro), _fin(cyc.u_baseline_relax_pa)
     t1, t2, ta = _temp(cyc.t1_k), _temp(cyc.t2_k), _temp(cyc.ta_k)
     flags = list(cyc.flags)
     u_t1 = _u_mean(u_t, cyc.n_t1) if t1 is not None else 0.0
@@ -143,7 +162,7 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
         drift1_pa_s=cyc.drift1_pa_s, drift2_pa_s=cyc.drift2_pa_s, fill_s=cyc.fill_s,
         u_baseline_pa=u_pa, u_p1_sys_pa=u_p1_sys, u_p2_sys_pa=u_p2_sys, u_baseline_relax_pa=u_pa_sys,
         u_p1_relax_pa=_fin(cyc.u_p1_relax_pa), u_p2_relax_pa=_fin(cyc.u_p2_relax_pa),
-        u_t1_k=u_t1, u_t2_k=u_t2, u_ta_k=u_ta,
+        u_t1_k=u_t1, u_t2_k=u_t2, u_ta_k=u_ta, p1_ambient_pa=amb1, p2_ambient_pa=amb2,
         u_random_m3=math.sqrt(budget.random_variance) if budget is not None else math.nan,
     )
 

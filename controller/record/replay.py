@@ -15,7 +15,7 @@ import numpy as np
 
 from pycnoctl.controller.domain.gaspath import ChamberCalibration
 from pycnoctl.controller.maths import results
-from pycnoctl.controller.maths.cycle import CycleMeasurer, Row
+from pycnoctl.controller.maths.cycle import AmbientModel, CycleMeasurer, Row
 from pycnoctl.controller.record.runfolder import StoredRun
 from pycnoctl.controller.run.engine import cycle_plan, linearity_u
 from pycnoctl.controller.run.sequence import Sequence
@@ -63,10 +63,11 @@ def rows(run: StoredRun, pressure_is_gauge: bool) -> list[tuple[str, Row]]:
 
 def reanalyze(run: StoredRun, sequence: Sequence, *, chambers: ChamberCalibration, gas: str,
               pressure_is_gauge: bool, pressure_u: float, temperature_u: float,
-              pressure_u_linearity: float | None = None) -> Reanalysis:
+              pressure_u_linearity: float | None = None, ambient: AmbientModel | None = None) -> Reanalysis:
     """Cycle volumes and the run result recomputed from the raw trace."""
     meter = CycleMeasurer(cycle_plan(sequence, chambers=chambers, gas=gas, u_p=pressure_u, u_t=temperature_u,
-                                     volume_name="", u_p_sys=linearity_u(pressure_u, pressure_u_linearity)))
+                                     volume_name="", u_p_sys=linearity_u(pressure_u, pressure_u_linearity),
+                                     ambient=ambient))
     for state, row in rows(run, pressure_is_gauge):
         meter.feed(state, row)
     out = meter.results

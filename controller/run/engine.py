@@ -23,7 +23,7 @@ from pycnoctl.controller.domain.devices import Reading
 from pycnoctl.controller.domain.states import TERMINAL as STATES_TERMINAL
 from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.maths import results
-from pycnoctl.controller.maths.cycle import CycleData, CycleMeasurer, CyclePlan
+from pycnoctl.controller.maths.cycle import AmbientModel, CycleData, CycleMeasurer, CyclePlan
 from pycnoctl.controller.maths.settle import SettleCriteria, SettleStatus
 from pycnoctl.drivers.instrument import Instrument
 
@@ -130,7 +130,9 @@ class RunEngine:
         return cycle_plan(sequence, chambers=instrument.chambers.for_expansion(expansion_volume),
                           gas=sequence.gas, u_p=instrument.pressure_u, u_t=instrument.temperature_u,
                           u_p_sys=linearity_u(instrument.pressure_u, instrument.pressure_u_linearity),
-                          volume_name=expansion_volume)
+                          volume_name=expansion_volume,
+                          ambient=AmbientModel(instrument.barometer is not None, instrument.barometer_u,
+                                               instrument.ambient_drift_rate))
 
     # ----- machine plumbing -------------------------------------------------------------------
     state: str  # set by transitions
@@ -459,8 +461,9 @@ def linearity_u(pressure_u: float, pressure_u_linearity: float | None) -> float:
 
 
 def cycle_plan(sequence: Any, *, chambers: Any, gas: str, u_p: float, u_t: float, volume_name: str,
-               u_p_sys: float = 0.0) -> CyclePlan:
+               u_p_sys: float = 0.0, ambient: AmbientModel | None = None) -> CyclePlan:
     """The measurer's plan from a sequence: the live engine and replay both build it here."""
     return CyclePlan(baseline=criteria(sequence.settle_baseline, u_p), filled=criteria(sequence.settle_filled, u_p),
                      expanded=criteria(sequence.settle_expanded, u_p), chambers=chambers, gas=gas, u_p=u_p,
-                     u_p_sys=u_p_sys, u_t=u_t, discard=sequence.cycles.discard, volume_name=volume_name)
+                     u_p_sys=u_p_sys, ambient=ambient, u_t=u_t, discard=sequence.cycles.discard,
+                     volume_name=volume_name)
