@@ -467,3 +467,29 @@ def test_a_bit_identical_reading_with_the_vent_open_above_baseline_is_frozen_not
     _, trip = h.run(_held_vent(lambda t: 5e3, 2 * LIMITS.vent_timeout))
     assert trip is not None and trip.kind == "frozen" and "vent open" in trip.message
     assert trip.t == pytest.approx(LIMITS.frozen_after, abs=1e-9)
+
+
+def _after_vent(amplitude: float, tau: float, leak_rate: float = 0.0, seed: int = 4):
+    """Vented, then the vent closes at t=10 s on gas still cold: it rewarms as A(1 - exp(-t/tau))."""
+    rng = np.random.default_rng(seed)
+    out = [(round(k * DT, 10), rng.normal(0, 15.0), VENTED) for k in range(100)]
+    for k in range(100, 1000):
+        t = round(k * DT, 10)
+        g = amplitude * (1.0 - math.exp(-(t - 10.0) / tau)) + leak_rate * (t - 10.0)
+        out.append((t, g + rng.normal(0, 15.0), CLOSED))
+    return out
+
+
+def test_slow_rewarming_after_a_vent_is_not_blamed_on_the_inlet():
+    # a large cell whose vent closed on cold gas: tau 30 s, 20 kPa to regain (670 Pa/s at first), the
+    # case a simulated 12 cm^3 cell with 30 s thermal time constant tripped on (half-window slopes
+    # decay by only exp(-2.5/30) = 0.92, above the 0.8 persistence ratio)
+    _idx, trip = Harness().run(_after_vent(20e3, 30.0))
+    assert trip is None
+
+
+def test_leak_after_a_vent_is_still_caught_within_three_windows():
+    seq = _after_vent(0.0, 30.0, leak_rate=800.0)
+    idx, trip = Harness().run(seq)
+    assert trip is not None and trip.kind == "inlet_leak"
+    assert seq[idx][0] - 10.0 <= 3 * LIMITS.closed_inlet_window + 2 * DT

@@ -104,6 +104,7 @@ class Seen:
     valve_changes: int = 0
     opened_now: bool = False  # a valve went from closed to open on this observation
     inlet_closed_last: bool = False  # the last valve change closed the inlet and changed nothing else
+    vent_closed_last: bool = False  # the last valve change closed the vent (with the inlet closed): gas just vented
 
 
 _bits = struct.Struct("<d").pack  # the raw IEEE-754 bytes of a reading, for the frozen rule
@@ -319,7 +320,19 @@ class InletLeak(Rule):
     only fall; a rise of closed_inlet_rise is gas still coming in.  An inlet stuck open near its
     supply pressure rises ever more slowly (an approach to the supply, not a constant flow), which
     the persistence test would excuse as rewarming; here it trips one window after the fill.
+
+    A rewarming slower than about 2.2 W passes the half-window test.  After a vent (the gas expanded
+    to ambient is far colder than after an expansion; a large cell whose vent closed on gas still
+    cold rewarmed with tau = 30 s at 400 Pa/s), a rise that passes it is confirmed over
+    ``LONG_WINDOWS`` W before it trips: the slope over the last W must still be at least
+    ``leak_persist_ratio`` of the slope over the W that began (LONG_WINDOWS - 1) W earlier.  A constant
+    leak passes that at once; a rewarming decays by exp(-2 W/tau) and is excused up to tau = 9 W
+    (45 s with the defaults), at the cost of a leak after a vent being caught 3 W after the vent
+    closed, not 1 W.  A rise above ``HUGE_RISE`` times the limit within one W trips without waiting.
     """
+
+    LONG_WINDOWS = 3
+    HUGE_RISE = 10.0
 
     kind = "inlet_leak"
     fields = ("closed_inlet_rise", "closed_inlet_window")
@@ -332,6 +345,7 @@ class InletLeak(Rule):
         super().__init__(limits, tuning)
         self.persist = tuning.leak_persist_ratio
         self.window: deque[tuple[float, float]] = deque()
+        self.long: deque[tuple[float, float]] = deque()  # the last LONG_WINDOWS W, for the confirmation
         self.valve_changes = 0  # the window holds samples since this many valve changes
 
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
@@ -339,6 +353,7 @@ class InletLeak(Rule):
             return None
         if seen.valve_changes != self.valve_changes:  # a valve moved: judge from that moment on
             self.window.clear()
+            self.long.clear()
             self.valve_changes = seen.valve_changes
         t, g = seen.t, float(obs.gauge)
         lim = self.limits
@@ -347,6 +362,10 @@ class InletLeak(Rule):
         win.append((t, g))
         while win and win[0][0] < t - w * (1 + 1e-9):
             win.popleft()
+        long = self.long
+        long.append((t, g))
+        while long[0][0] < t - self.LONG_WINDOWS * w * (1 + 1e-9):
+            long.popleft()
         if t - seen.valves_changed_at < w * (1 - 1e-9) or len(win) < 6:
             return None
         if win[-1][1] - win[0][1] < 0.5 * lim.closed_inlet_rise:  # cheap pre-check
@@ -364,6 +383,16 @@ class InletLeak(Rule):
         s2 = _slope(ts[~first], ps[~first])
         if not seen.inlet_closed_last and not (s1 > 0 and s2 >= self.persist * s1):
             return None  # decaying rise: gas rewarming, not a leak
+        if seen.vent_closed_last and rise <= self.HUGE_RISE * lim.closed_inlet_rise:
+            span = self.LONG_WINDOWS * w
+            if t - seen.valves_changed_at < span * (1 - 1e-9):
+                return None  # not yet a long enough record to tell a slow rewarming from a leak
+            arr_l = np.array(long)
+            early = arr_l[arr_l[:, 0] <= arr_l[0, 0] + w]
+            if len(early) >= 3:
+                s_early = _slope(early[:, 0], early[:, 1])
+                if not (s_early > 0 and _slope(ts, ps) >= self.persist * s_early):
+                    return None  # the rise has slowed over several windows: a slow rewarming
         return _Condition(
             self.kind,
             f"pressure rose {rise:.6g} Pa in {w:.3g} s with the inlet commanded closed and no valve change"
@@ -566,6 +595,8 @@ class InterlockMonitor:
                 seen.opened_now = any(v and not before.get(k, False) for k, v in valves.items())
                 changed = {k for k, v in valves.items() if before.get(k) != v}
                 seen.inlet_closed_last = changed == {self.roles.inlet} and not inlet_open
+                seen.vent_closed_last = self._vent in changed and not valves.get(self._vent, False) \
+                    and not inlet_open
             seen.valves_changed_at = t
             seen.valves = dict(valves)  # a copy only when something changed: this runs on every sample
             seen.valve_changes += 1
