@@ -206,6 +206,7 @@ def one_calibration(spec: Spec, cal_index: int, runs: int) -> dict[str, Any]:
                 "cycle_u_random": [c["u_random_m3"] * 1e6 for c in cyc],
                 "u_rep": rep["std_u"] * 1e6 if rep else math.nan,
                 "warnings": s["warnings"],
+                "why": (s.get("fault") or {}).get("message"),
             })
         cat.close()
     return out
@@ -274,6 +275,9 @@ def main() -> None:
         print(f"   {r['instrument']}: calibration z(Vc) {r['z_vc']}, z(Vr) {r['z_vr']}; failed {r['failed']}"
               + (f"; warnings: {r['warnings']}" if r.get("warnings") else ""))
     for d in done:
+        why = next((r["why"] for r in d["runs"] if r["v"] is None and r["why"]), None)
+        if why:
+            print(f"   {d['spec']} calibration {d['cal']}, a failed run: {why[:300]}")
         if "cal_message" in d:
             print(f"   {d['spec']} calibration {d['cal']}: {d['cal_message'][:300]}")
     ok = [r for r in rows if "coverage" in r]

@@ -269,3 +269,19 @@ def test_quick_fit_finds_the_same_time_constant_as_the_precise_one(tau):
     assert quick.tau == pytest.approx(full.tau, rel=1e-4)
     assert quick.tau == pytest.approx(tau, rel=0.05)  # and near the truth, given the noise
     assert quick.sound and full.sound
+
+
+def test_a_time_constant_the_data_no_longer_support_is_dropped():
+    # After an expansion: a fast flow transient of the other sign (0.47 s) on a slow thermal fall
+    # (30 s).  An early window fits the fast part soundly; remembered, it set a lax threshold
+    # (k u_p / 0.47 s, about 20-40 Pa/s) while the gas still fell at 30 Pa/s (the argon case:
+    # accepted at 16.7 s, drifting -33 Pa/s; here the old rule accepted at 15 s).
+    u_p, tau_slow, slow = 10.0, 30.0, 1500.0
+    t = np.arange(0.0, 300.0, DT)
+    clean = 1.0e5 + slow * np.exp(-t / tau_slow) - 3000.0 * np.exp(-t / 0.47)
+    p = clean + np.random.default_rng(11).normal(0.0, u_p, t.size)
+    det = SettleDetector(SettleCriteria(10.0, None, 0.0, 300.0, False, drift_k=1.0, u_p=u_p), t0=0.0)
+    assert run(det, t, p) is SettleStatus.SETTLED
+    true_rate = slow / tau_slow * math.exp(-det.decided_at / tau_slow)
+    # the remainder |dP/dt| tau left to come: a few u_p, not the 90 u_p the remembered tau allowed
+    assert true_rate * tau_slow <= 6 * u_p, (det.decided_at, true_rate)

@@ -22,7 +22,7 @@ import numpy as np
 from pycnoctl.controller.domain.gaspath import ChamberCalibration
 from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.maths import results
-from pycnoctl.controller.maths.settle import SettleCriteria, SettleDetector, SettleStatus
+from pycnoctl.controller.maths.settle import SettleCriteria, SettleDetector, SettleStatus, fit_exponential_detail
 
 _LAST = 20  # samples averaged for the ambient pressure and the gas temperature of a settled value
 
@@ -349,6 +349,25 @@ class CycleMeasurer:
     def leak_rate(self) -> float:
         """Least-squares slope (Pa/s) of the valid gauge readings of the leak hold so far."""
         return results.slope(*self._leak)
+
+    def slow_relaxation(self) -> tuple[float, float] | None:
+        """(time constant s, pressure still to come Pa) of the relaxation the current settle is in,
+        from an exponential fitted to its last two thirds (the first third holds the fast flow and
+        thermal transients); None when no sound fit is found.  Why: a settle that runs out of time
+        must say what it waited for - a time constant of minutes is a porous sample filling or
+        sample heat, not a leak - and how long it would take."""
+        t, p = self._trace
+        if self._state == _BASELINE or len(t) < 30:
+            return None
+        start = len(t) // 3
+        try:
+            fit = fit_exponential_detail(t[start:], p[start:], precise=False)
+        except ValueError:
+            return None
+        if not (fit.interior and math.isfinite(fit.tau) and fit.tau > 0):
+            return None
+        left = fit.amplitude * math.exp(-(t[-1] - fit.t_ref) / fit.tau)
+        return fit.tau, left
 
     @property
     def estimate(self) -> float:

@@ -340,7 +340,7 @@ class SettleDetector:
         self._decided_at: float | None = None
         self._fit: ExpFit | None = None
         self._fit_t: float = -math.inf  # sample time of the last exponential fit
-        self._sound_tau: float | None = None
+        self._sound: ExpFit | None = None  # the latest sound fit, while the data still agree with it
         self._threshold: float | None = criteria.max_drift
         self._quiet_since: float | None = None  # first sample of the current unbroken run under the limit
         self._frozen: tuple[float, float, float, float, str] | None = None  # est, u, drift, u_drift, how
@@ -410,8 +410,8 @@ class SettleDetector:
             fit = None
         self._fit = fit
         self._fit_t = self._t_last
-        if fit is not None and fit.sound:
-            self._sound_tau = fit.tau
+        if fit is not None and fit.sound and self._agrees(fit):
+            self._sound = fit  # a fit of the noise (tau far below a sample spacing) does not replace a real one
         return fit
 
     def _adaptive_threshold(self) -> float:
@@ -423,8 +423,47 @@ class SettleDetector:
         """
         c = self.criteria
         assert c.u_p is not None
-        tau = self._sound_tau if self._sound_tau is not None else c.window
-        return c.drift_k * c.u_p / tau
+        return c.drift_k * c.u_p / self._supported_tau()
+
+    def _supported_tau(self) -> float:
+        """The latest sound fit's tau while the window's slope agrees with it, else the window.
+
+        Why the check: a sound fit stays remembered when later fits fail (a relaxation decayed into
+        the noise can no longer be fitted), but one fitted across an expansion's turning point
+        (tau 0.47 s seen) would then set a lax threshold while the gas still drifts (33 Pa/s seen).
+        The fit predicts the window's mean slope, |A| (exp(-(ta - t_ref)/tau) - exp(-(tb - t_ref)/tau))
+        / (tb - ta); a window slope beyond that by more than 3 of its standard errors says the data no
+        longer support that tau, and it is dropped for good."""
+        f = self._sound
+        if f is None:
+            return self.criteria.window
+        if not self._agrees(f):
+            self._sound = None
+            return self.criteria.window
+        return f.tau
+
+    def _agrees(self, f: ExpFit) -> bool:
+        """Whether the window's regression slope is within 3 standard errors of the fit's mean slope
+        over the same window (what a regression slope measures, not the end value)."""
+        slope = self._slope()
+        ta, tb = self._buf[0][0], self._t_last
+        if not (math.isfinite(slope) and tb > ta):
+            return True
+        predicted = f.amplitude * (math.exp(-max(ta - f.t_ref, 0.0) / f.tau)
+                                   - math.exp(-max(tb - f.t_ref, 0.0) / f.tau)) / (tb - ta)
+        return abs(slope + predicted) <= 3.0 * self._slope_se(slope) + 1e-12
+
+    def _slope_se(self, slope: float) -> float:
+        """Standard error of the window's regression slope, from its residuals (0 below 3 samples)."""
+        n = self._n
+        if n < 3:
+            return 0.0
+        sxx = self._sxx - self._sx * self._sx / n
+        if not sxx > 0:
+            return 0.0
+        sxy = self._sxy - self._sx * self._sy / n
+        syy = self._syy - self._sy * self._sy / n
+        return math.sqrt(max(syy - slope * sxy, 0.0) / (n - 2) / sxx)
 
     # -- feeding -------------------------------------------------------------------------------
     def feed(self, t: float, p: float) -> SettleStatus:
