@@ -22,7 +22,6 @@ from __future__ import annotations
 
 import logging
 import math
-import struct
 from collections import deque
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
@@ -107,7 +106,6 @@ class Seen:
     vent_closed_last: bool = False  # the last valve change closed the vent (with the inlet closed): gas just vented
 
 
-_bits = struct.Struct("<d").pack  # the raw IEEE-754 bytes of a reading, for the frozen rule
 
 
 def _slope(t: np.ndarray, p: np.ndarray) -> float:
@@ -273,16 +271,17 @@ class Frozen(Rule):
 
     def __init__(self, limits: Limits, tuning: Tuning) -> None:
         super().__init__(limits, tuning)
-        self.bits: bytes | None = None
+        self.last: float | None = None  # the last valid reading's value
         self.since = math.nan
         self.expect: float | None = None  # a valve opened at this time on a pressurised cell
         self.tolerance = limits.vent_baseline_tolerance  # read on every sample
 
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
-        bits = _bits(float(obs.reading.value))
-        pressurised = abs(float(obs.gauge)) > self.tolerance
-        if bits != self.bits:
-            self.bits, self.since = bits, seen.t
+        # valid readings are finite: equal floats are the same bits, but for the sign of a zero
+        value = obs.reading.value
+        pressurised = abs(obs.gauge) > self.tolerance
+        if value != self.last:
+            self.last, self.since = value, seen.t
             self.expect = None  # it moved
         elif seen.opened_now and pressurised and self.expect is None:
             self.expect = seen.t
@@ -363,9 +362,10 @@ class InletLeak(Rule):
         while win and win[0][0] < t - w * (1 + 1e-9):
             win.popleft()
         long = self.long
-        long.append((t, g))
-        while long[0][0] < t - self.LONG_WINDOWS * w * (1 + 1e-9):
-            long.popleft()
+        if seen.vent_closed_last:  # only then is the longer record asked for
+            long.append((t, g))
+            while long[0][0] < t - self.LONG_WINDOWS * w * (1 + 1e-9):
+                long.popleft()
         if t - seen.valves_changed_at < w * (1 - 1e-9) or len(win) < 6:
             return None
         if win[-1][1] - win[0][1] < 0.5 * lim.closed_inlet_rise:  # cheap pre-check
