@@ -206,8 +206,8 @@ def _u_y_temperatures(r: CalibrationRun, *, gas: Gas, mode: str) -> float:
         up, dn = dict(base), dict(base)
         up[name] = base[name] + 1e-3 * u  # type: ignore[operator]
         dn[name] = base[name] - 1e-3 * u  # type: ignore[operator]
-        d = (expansion_ratio(r.p1, r.p2, r.pa, gas=gas, mode=mode, **up)  # type: ignore[arg-type]
-             - expansion_ratio(r.p1, r.p2, r.pa, gas=gas, mode=mode, **dn)) / (2e-3 * u)  # type: ignore[arg-type]
+        d = (expansion_ratio(r.p1, r.p2, r.pa, gas=gas, mode=mode, **up)
+             - expansion_ratio(r.p1, r.p2, r.pa, gas=gas, mode=mode, **dn)) / (2e-3 * u)
         var += (d * u) ** 2
     return math.sqrt(var)
 

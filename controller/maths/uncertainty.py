@@ -12,10 +12,10 @@ u^2(Vs) = u^2(Vc) + y^2 u^2(Vr) - 2 y cov(Vc,Vr) + Vr^2 [P2g^2 u^2(P1g) + P1g^2 
 from __future__ import annotations
 
 import math
+import statistics
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-
-import numpy as np
+from typing import Any
 
 from pycnoctl.controller.domain.gas import Gas, get_gas
 from pycnoctl.controller.maths.volume import expansion_ratio, resolve_temperatures, sample_volume
@@ -115,7 +115,7 @@ def cycle_volume_budget(
     u_p1: float,
     u_p2: float,
     u_pa: float = 0.0,
-    cov_cal: np.ndarray | Sequence[Sequence[float]] | None = None,
+    cov_cal: Any = None,
     u_vc: float = 0.0,
     u_vr: float = 0.0,
     t1: float | None = None,
@@ -153,21 +153,21 @@ def cycle_volume_budget(
                              t2=a["t2"], ta=a["ta"], mode=mode)
 
     value = vs_of()
-    if cov_cal is not None:
-        cov = np.asarray(cov_cal, dtype=float)
-        if cov.shape != (2, 2):
+    if cov_cal is not None:  # any 2x2 nested sequence or array; plain floats keep numpy off this path
+        cov = [[float(x) for x in row] for row in cov_cal]
+        if len(cov) != 2 or any(len(row) != 2 for row in cov):
             raise ValueError("cov_cal must be a 2x2 matrix for (vc, vr)")
     else:
-        cov = np.diag([u_vc**2, u_vr**2])
+        cov = [[u_vc**2, 0.0], [0.0, u_vr**2]]
     y = expansion_ratio(p1, p2, pa, gas=g, t1=t1_, t2=t2_, ta=ta_, mode=mode)
     rows: list[Contribution] = []
     c_vc, c_vr = 1.0, -y  # exact: Vs = Vc - Vr y
-    u_vc_, u_vr_ = math.sqrt(max(cov[0, 0], 0.0)), math.sqrt(max(cov[1, 1], 0.0))
+    u_vc_, u_vr_ = math.sqrt(max(cov[0][0], 0.0)), math.sqrt(max(cov[1][1], 0.0))
     rows.append(Contribution("cell volume Vc", vc, u_vc_, c_vc, c_vc * u_vc_, kind="calibration"))
     rows.append(Contribution("expansion volume Vr", vr, u_vr_, c_vr, c_vr * u_vr_, kind="calibration"))
-    if cov[0, 1] != 0.0:
-        var = 2.0 * c_vc * c_vr * cov[0, 1]
-        rows.append(Contribution("covariance Vc, Vr", cov[0, 1], math.nan, math.nan,
+    if cov[0][1] != 0.0:
+        var = 2.0 * c_vc * c_vr * cov[0][1]
+        rows.append(Contribution("covariance Vc, Vr", cov[0][1], math.nan, math.nan,
                                  math.copysign(math.sqrt(abs(var)), var), variance=var, kind="calibration"))
     ev_p = "A" if pressures_type_a else "B"
     for name, label, x, u, kind, rand, ev in (
@@ -197,14 +197,14 @@ def type_a(values: Sequence[float]) -> tuple[float, float, float]:
 
     One value: s and u_mean are NaN (no Type A evaluation is possible).
     """
-    x = np.asarray(list(values), dtype=float)
-    if x.size == 0:
+    x = [float(v) for v in values]
+    if not x:
         raise ValueError("type_a needs at least one value")
-    mean = float(x.mean())
-    if x.size < 2:
+    mean = statistics.fmean(x)
+    if len(x) < 2:
         return mean, math.nan, math.nan
-    s = float(x.std(ddof=1))
-    return mean, s, s / math.sqrt(x.size)
+    s = statistics.stdev(x, mean)
+    return mean, s, s / math.sqrt(len(x))
 
 
 #: Probability below which the cycles' scatter is called inconsistent with the budget's random part
@@ -251,15 +251,15 @@ class ScatterCheck:
 
 def scatter_check(values: Sequence[float], predicted: float) -> ScatterCheck | None:
     """The scatter test of ScatterCheck (None with fewer than 2 values or no prediction)."""
-    x = np.asarray(list(values), dtype=float)
-    if x.size < 2 or not predicted > 0.0:
+    x = [float(v) for v in values]
+    if len(x) < 2 or not predicted > 0.0:
         return None
     from scipy.stats import chi2  # imported here: scipy.stats is slow to import
 
-    sd = float(x.std(ddof=1))
-    dof = x.size - 1
+    sd = statistics.stdev(x)
+    dof = len(x) - 1
     stat = dof * (sd / predicted) ** 2
-    return ScatterCheck(int(x.size), sd, predicted, sd / predicted, float(chi2.sf(stat, dof)),
+    return ScatterCheck(len(x), sd, predicted, sd / predicted, float(chi2.sf(stat, dof)),
                         float(chi2.cdf(stat, dof)))
 
 
@@ -281,7 +281,7 @@ def combine_run(cycle_volumes: Sequence[float], cycle_budgets: Sequence[Budget])
         raise ValueError("need one budget per cycle volume, at least one cycle")
     n = len(vols)
     mean, _s, u_mean = type_a(vols)
-    random_var = float(np.mean([b.random_variance for b in cycle_budgets]))
+    random_var = statistics.fmean([b.random_variance for b in cycle_budgets])
     u_floor = math.sqrt(max(random_var, 0.0) / n)
     notes = []
     check = scatter_check(vols, math.sqrt(max(random_var, 0.0)))
@@ -289,16 +289,17 @@ def combine_run(cycle_volumes: Sequence[float], cycle_budgets: Sequence[Budget])
         u_rand, label, ev = u_floor, f"repeatability (predicted from the cycle budget, n={n})", "B"
     else:
         u_rand, label, ev = u_mean, f"repeatability (Type A, s/sqrt(n), n={n})", "A"
-    if check is not None and check.note() is not None:
-        notes.append(check.note())
+    note = check.note() if check is not None else None
+    if note is not None:
+        notes.append(note)
     rows = [Contribution(label, mean, u_rand, 1.0, u_rand, kind="repeatability", random=True, evaluation=ev)]
     # systematic rows: averaged over the cycles (the sensitivity -y barely changes between cycles)
     first = cycle_budgets[0]
     for name in [c.name for c in first.contributions if not c.random]:
         same = [c for b in cycle_budgets for c in b.contributions if c.name == name]
-        var = float(np.mean([x.variance for x in same]))
-        sens = float(np.mean([x.sensitivity for x in same]))
-        u = float(np.mean([x.std_u for x in same]))
+        var = statistics.fmean([x.variance for x in same])
+        sens = statistics.fmean([x.sensitivity for x in same])
+        u = statistics.fmean([x.std_u for x in same])
         contrib = sens * u if math.isfinite(sens) and math.isfinite(u) else math.copysign(math.sqrt(abs(var)), var)
         rows.append(Contribution(name, same[0].value, u, sens, contrib, variance=var, kind=same[0].kind,
                                  random=False, evaluation=same[0].evaluation))
