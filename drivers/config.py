@@ -45,6 +45,9 @@ class InstrumentConfig(Strict):
     """One pycnometer: drivers per role, gas-path layout, interlock limits."""
 
     name: str
+    # a stable identity for this pycnometer (a serial number, an inventory tag); default: the name.
+    # Calibrations are bound to it: give every build its own, and keep it when the config is edited.
+    instrument_id: str | None = None
     valves: ValveDevice
     pressure: PressureDevice
     thermometer: ThermometerDevice | None = None
@@ -268,7 +271,11 @@ def build_instrument(cfg: InstrumentConfig, *, clock: Any = None, sim_bench: Any
         pressure_u_linearity=cfg.pressure_u_linearity, temperature_u=cfg.temperature_u,
         barometer_u=cfg.barometer_u, ambient_drift_rate=cfg.ambient_drift_rate,
         ambient_nominal=cfg.ambient_nominal,
-        gas=cfg.gas, extras=extras)
+        gas=cfg.gas, extras=extras,
+        # a simulated pressure reading makes the whole result simulated: it carries the simulator's identity
+        identity=(sim.identity if sim is not None and isinstance(cfg.pressure, SimDevice)
+                  else cfg.instrument_id or cfg.name),
+        simulated=sim is not None and isinstance(cfg.pressure, SimDevice))
 
 
 def reconnect_instrument(inst: Instrument) -> dict[str, str | None]:

@@ -6,6 +6,8 @@ instrument config (real hardware) or from the simulator, and talks only to the p
 
 from __future__ import annotations
 
+import hashlib
+import json
 import logging
 from dataclasses import dataclass, field
 
@@ -49,6 +51,20 @@ class Instrument:
     gas: str = "helium"  # the gas the instrument is plumbed for
     extras: dict[str, object] = field(default_factory=dict)  # e.g. the simulator behind the drivers
     safe_state_error: str | None = None  # why the last safe-state attempt was not confirmed
+    # who this pycnometer is: the config's instrument_id (or its name); a simulated one adds a digest of
+    # its simulated geometry.  Calibrations are bound to it and refused on any other instrument.
+    identity: str = ""
+    simulated: bool = False
+
+    def __post_init__(self) -> None:
+        if not self.identity:
+            self.identity = self.name
+
+    @property
+    def fingerprint(self) -> str:
+        """A digest of what a calibration depends on besides the identity: nominal chambers, valve
+        roles and the transducer's reference.  A change warns that the calibration may no longer fit."""
+        return fingerprint(self.chambers, self.roles, self.pressure_is_gauge)
 
     def safe_state(self) -> bool:
         """Assert the safe state; idempotent, never raises. Returns False if it was not confirmed.
@@ -98,3 +114,11 @@ class Instrument:
                 dev.close()  # type: ignore[attr-defined]
             except Exception as exc:  # release must not mask the original problem
                 log.warning("closing %r failed: %s", dev, exc)
+
+
+def fingerprint(chambers: Chambers, roles: ValveRoles, pressure_is_gauge: bool) -> str:
+    """12 hex digits of SHA-256 over the calibration-relevant configuration (stable across runs)."""
+    data = {"cell": chambers.cell, "expansion": dict(sorted(chambers.expansion.items())),
+            "inlet": roles.inlet, "vent": roles.vent, "valves": dict(sorted(roles.expansion.items())),
+            "gauge": pressure_is_gauge}
+    return hashlib.sha256(json.dumps(data, sort_keys=True).encode()).hexdigest()[:12]

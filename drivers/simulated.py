@@ -12,6 +12,8 @@ value as VALID, as a real one would; detecting it is the engine's job.
 
 from __future__ import annotations
 
+import hashlib
+import json
 import math
 from collections.abc import Mapping
 from pathlib import Path
@@ -168,6 +170,11 @@ def _cell_side_volume(cfg: SimConfig) -> float:
     return sum(cfg.volumes[n].volume for n in seen)
 
 
+#: the relative standard uncertainty a simulated build states for its nominal volumes unless its config
+#: says otherwise: a volume from drawings of machined parts and tubing, known to about 0.5 % (from memory)
+SIM_NOMINAL_U = 0.005
+
+
 def _chambers(cfg: SimConfig) -> Chambers:
     cell = _cell_side_volume(cfg)
     expansion = {vol: cfg.volumes[vol].volume for vol in cfg.expansion_volumes().values()}
@@ -176,7 +183,7 @@ def _chambers(cfg: SimConfig) -> Chambers:
         if nom.cell is not None:
             cell = nom.cell
         expansion.update(nom.expansion)
-    return Chambers(cell=cell, expansion=expansion)
+    return Chambers(cell=cell, expansion=expansion, nominal_u=nom.u if nom is not None else SIM_NOMINAL_U)
 
 
 def sim_limits(cfg: SimConfig) -> Limits:
@@ -223,7 +230,18 @@ def build_sim_instrument(
         ambient_nominal=cfg.lab.pressure,
         gas=cfg.gas,
         extras={"sim": bench},
+        identity=sim_identity(cfg),
+        simulated=True,
     )
+
+
+def sim_identity(cfg: SimConfig) -> str:
+    """'sim:NAME:DIGEST': the digest covers the simulated gas path (volumes, valves, links, cell, the
+    volumes the instrument believes in), so a calibration made on one simulated build is refused on
+    another of the same name; noise, seed, faults and timing do not enter it."""
+    data = cfg.model_dump(mode="json", include={"volumes", "valves", "links", "cell", "nominal"})
+    digest = hashlib.sha256(json.dumps(data, sort_keys=True).encode()).hexdigest()[:10]
+    return f"sim:{cfg.name}:{digest}"
 
 
 # -- config ---------------------------------------------------------------------------------------

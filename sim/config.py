@@ -239,6 +239,8 @@ class Nominal(_Strict):
 
     cell: PosVolume | None = None
     expansion: dict[str, PosVolume] = {}
+    # relative standard uncertainty the build states for its nominal volumes (k = 1); e.g. 0.005
+    u: Annotated[float, Field(gt=0.0, le=0.5)] = 0.005
 
 
 class Solver(_Strict):

@@ -10,6 +10,13 @@ def pytest_addoption(parser: pytest.Parser) -> None:
                      help="run tests marked 'hardware' (need a real instrument attached)")
 
 
+@pytest.fixture(autouse=True)
+def _own_data_folder(tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch) -> None:
+    """No test writes into the user's real data folder (~/.local/share/pycnoctl): the default data
+    folder of every test is a fresh temporary one unless the test sets --data or PYCNOCTL_DATA."""
+    monkeypatch.setenv("XDG_DATA_HOME", str(tmp_path_factory.mktemp("xdg-data")))
+
+
 def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
     if config.getoption("--hardware"):
         return

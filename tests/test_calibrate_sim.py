@@ -88,7 +88,7 @@ def test_sphere_as_unknown_within_0_05_percent(calibrated) -> None:
     empty = Catalog(d / "empty.sqlite")
     s2 = execute(prepare(RunRequest(d / "meas.yaml"), inst2), Controller(inst2), root=d / "runs2", catalog=empty)
     assert abs(s2["volume_cm3"] * 1e-6 / sphere.volume - 1.0) > 0.01
-    assert any("no calibration on record" in w for w in s2["warnings"])
+    assert any(w.startswith("UNCALIBRATED: no calibration") for w in s2["warnings"])
 
 
 def test_mixed_up_sphere_is_refused(tmp_path: Path) -> None:
@@ -120,9 +120,10 @@ def _created(days_ago: float) -> str:
 def test_checks_stale_mismatched_and_applied(tmp_path: Path) -> None:
     cat = Catalog(tmp_path / "c.sqlite")
     inst = build_sim_instrument(None)
+    me = inst.identity
     policy = CalibrationPolicy()
     # fresh and matching: applied, no warning
-    cat.put_calibration(_record(created=_created(0.5)))
+    cat.put_calibration(_record(created=_created(0.5), instrument=me))
     use = use_latest_calibration(inst, cat, expansion_volume="small", gas="helium", fill_target=1.3e5, policy=policy)
     assert use.warnings == [] and inst.chambers.for_expansion("small").record_id == use.record.id
     ok = {"cycles": [{"kept": True, "p1_gauge_pa": 1.0e5, "t1_k": 295.5}]}
@@ -134,20 +135,25 @@ def test_checks_stale_mismatched_and_applied(tmp_path: Path) -> None:
     use = use_latest_calibration(inst, cat, expansion_volume="small", gas="helium", fill_target=2.0e5, policy=policy)
     assert any("fill pressure target" in w for w in use.warnings)
     # stale: older than the 7-day default; the warning names the ASTM D4892 daily rule
-    cat.put_calibration(_record(created=_created(9)))  # older than the fresh one: not the latest
+    cat.put_calibration(_record(created=_created(9), instrument=me))  # older than the fresh one: not the latest
     stale = Catalog(tmp_path / "s.sqlite")
-    stale.put_calibration(_record(created=_created(9)))
+    stale.put_calibration(_record(created=_created(9), instrument=me))
     use = use_latest_calibration(inst, stale, expansion_volume="small", gas="helium", fill_target=1.3e5,
                                  policy=policy)
     assert len(use.warnings) == 1 and "days old" in use.warnings[0] and AGE_RULE in use.warnings[0]
     use = use_latest_calibration(inst, stale, expansion_volume="small", gas="helium",
                                  policy=CalibrationPolicy(max_age=30 * 86400))
     assert use.warnings == []
-    # only a nitrogen calibration: used, with a gas warning
+    # only a nitrogen calibration: not used by itself (calibrations are bound to their gas) ...
     n2 = Catalog(tmp_path / "n.sqlite")
-    n2.put_calibration(_record(gas="nitrogen", created=_created(0.1)))
+    cid = n2.put_calibration(_record(gas="nitrogen", created=_created(0.1), instrument=me))
     use = use_latest_calibration(inst, n2, expansion_volume="small", gas="helium", policy=policy)
-    assert use.record is not None and any("gas differs" in w for w in use.warnings)
+    assert use.record is None and use.warnings[0].startswith("UNCALIBRATED")
+    # ... only when the operator chooses it for helium, and then with a warning that names both gases
+    n2.choose_calibration(cid, me, gas="helium")
+    use = use_latest_calibration(inst, n2, expansion_volume="small", gas="helium", policy=policy)
+    assert use.record is not None and use.record.id == cid
+    assert any("made in nitrogen" in w and "measures in helium" in w for w in use.warnings)
 
 
 def test_policy_from_environment() -> None:
@@ -160,8 +166,8 @@ def test_policy_from_environment() -> None:
 def test_stale_calibration_warning_lands_in_the_run(tmp_path: Path) -> None:
     (tmp_path / "meas.yaml").write_text(MEAS_SEQ)
     cat = Catalog(tmp_path / "catalog.sqlite")
-    cid = cat.put_calibration(_record(created=_created(10)))
     inst = build_sim_instrument(None)
+    cid = cat.put_calibration(_record(created=_created(10), instrument=inst.identity))
     s = execute(prepare(RunRequest(tmp_path / "meas.yaml"), inst), Controller(inst), root=tmp_path / "runs",
                 catalog=cat)
     assert s["calibration"]["record_id"] == cid
@@ -180,3 +186,23 @@ def test_calibrate_verb_on_the_simulator(tmp_path: Path, capsys: pytest.CaptureF
     assert rc == 0 and out["status"] == "stored"
     assert out["volumes"][0]["vc_cm3"] == pytest.approx(12.0, abs=3 * out["volumes"][0]["u_vc_cm3"])
     assert cli.main(["calibrate", "--sim", "--sphere", "D=oops", "--data", str(tmp_path)]) == 2
+
+
+def test_the_shipped_calibration_sequence_serves_any_volume_names(tmp_path: Path,
+                                                                   capsys: pytest.CaptureFixture[str]) -> None:
+    """The shipped sequence names no expansion volume (it once said 'small' and so refused every other
+    build) and settles and vents as grain-volume does, so their settle biases cancel."""
+    from pycnoctl.controller.jobs.calibration_use import settle_rules
+    from pycnoctl.controller.run.sequence import load_sequence, resolve_sequence
+    from pycnoctl.sim.config import DEFAULT_CONFIG
+
+    cal, meas = load_sequence(resolve_sequence("calibration")), load_sequence(resolve_sequence("grain-volume"))
+    assert settle_rules(cal) == settle_rules(meas) and cal.vent.time == meas.vent.time
+    sim = tmp_path / "bulbs.yaml"
+    sim.write_text(DEFAULT_CONFIG.read_text(encoding="utf-8").replace("small", "bulb_a").replace("large", "bulb_b"))
+    rc = cli.main(["calibrate", "--sim", str(sim), "--sphere", SPHERE, "--expansion-volume", "bulb_a",
+                   "--data", str(tmp_path), "--json"])
+    import json
+
+    out = json.loads(capsys.readouterr().out)
+    assert rc == 0 and out["status"] == "stored" and out["volumes"][0]["expansion_volume"] == "bulb_a"

@@ -301,8 +301,8 @@ def test_automatic_expansion_volume_weighs_the_calibrated_volumes(tmp_path):
     inst = build_sim_instrument()
     catalog = Catalog(tmp_path / "c.sqlite")
     assert prepare(RunRequest("grain-volume"), inst, catalog).expansion_volume == "small"
-    catalog.put_calibration(CalibrationRecord("small", "helium", 12e-6, 20e-6))
-    catalog.put_calibration(CalibrationRecord("large", "helium", 12e-6, 8e-6))
+    catalog.put_calibration(CalibrationRecord("small", "helium", 12e-6, 20e-6, instrument=inst.identity))
+    catalog.put_calibration(CalibrationRecord("large", "helium", 12e-6, 8e-6, instrument=inst.identity))
     assert prepare(RunRequest("grain-volume"), inst, catalog).expansion_volume == "large"
 
 

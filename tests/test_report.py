@@ -95,7 +95,10 @@ def test_html_has_cycle_rows_budget_and_result(run_folder: Path) -> None:
         assert b["name"] in text
     assert f"{res['volume_cm3']:.5f} cm³" in text and f"{res['density_g_cm3']:.5f} g/cm³" in text
     assert "porosity" in text and "chosen automatically by the advisor" in text
-    assert "no calibration on record" in text  # the warning of an uncalibrated instrument
+    assert "UNCALIBRATED: no calibration" in text  # the warning of an uncalibrated instrument
+    assert "SIMULATED: this result came from the gas-system simulator" in text
+    assert "UNCALIBRATED: computed with the nominal volumes" in text
+    assert "each known to 0.5 % (k = 1)" in text  # the simulated build's stated nominal uncertainty
     assert "data:image/png;base64," in text and (html.parent / "r.png").exists()
     assert "<link" not in text and "<script" not in text  # self-contained
 

@@ -550,10 +550,12 @@ def test_purge_and_leak_pressures_checked(tmp_path: Path) -> None:
     assert [(p.line, p.col) for p in probs] == [pos(text, "pressure: 1.9"), pos(text, "pressure: 2.2")]
 
 
-def test_gas_mismatch_is_a_warning(tmp_path: Path) -> None:
+def test_a_sequence_in_another_gas_than_the_instrument_supplies_is_refused(tmp_path: Path) -> None:
     seq = sq.load_sequence(write(tmp_path, GOOD))
     probs, warns = _check(seq, gas="nitrogen")
-    assert probs == [] and len(warns) == 1 and "nitrogen" in warns[0]
+    assert len(probs) == 1 and warns == []
+    assert "measures in helium" in probs[0].message and "plumbed for nitrogen" in probs[0].message
+    assert probs[0].line == pos(GOOD, "gas: helium")[0]
     assert _check(seq, gas="He")[1] == []
     assert _check(seq, gas=None)[1] == []
     assert len(_check(seq, gas="unobtainium")[1]) == 1

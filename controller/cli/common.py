@@ -64,7 +64,8 @@ def add_sample_args(p: argparse.ArgumentParser, *, u_mass_default: str | None) -
 
 def add_data_arg(p: argparse.ArgumentParser) -> None:
     p.add_argument("--data", metavar="DIR",
-                   help="folder for run records and the catalog (default $PYCNOCTL_DATA or ./pycnoctl-data)")
+                   help="folder for run records and the catalog (default $PYCNOCTL_DATA, else "
+                        "$XDG_DATA_HOME/pycnoctl, i.e. ~/.local/share/pycnoctl)")
 
 
 @contextmanager

@@ -25,6 +25,8 @@ VERB_TABLE: dict[str, tuple[str, str]] = {
     "analyze": ("pycnoctl.controller.cli.analyze", "recompute a stored run from its raw trace"),
     "probe": ("pycnoctl.controller.cli.probe", "open every device of an instrument and report how it answers"),
     "calibrate": ("pycnoctl.controller.cli.calibrate", "calibrate the chamber volumes with reference spheres"),
+    "calibrations": ("pycnoctl.controller.cli.calibrations",
+                     "list, show, select, retire or import chamber calibrations"),
     "runs": ("pycnoctl.controller.cli.runs", "list runs in the catalog"),
     "show": ("pycnoctl.controller.cli.show", "show one stored run"),
     "report": ("pycnoctl.controller.cli.report", "write an HTML report of a run or a sample set"),

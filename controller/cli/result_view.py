@@ -149,8 +149,25 @@ def calibration_words(summary: dict[str, Any]) -> str:
     if rec:
         return f"calibration: {rec.get('id')} of {str(rec.get('created') or '')[:10]} ({rec.get('gas')})"
     if summary.get("calibration") is not None:
-        return "calibration: none on record; the nominal volumes of the instrument config"
+        return "calibration: NONE - " + nominal_words(summary["calibration"])
     return ""
+
+
+def nominal_words(cal: dict[str, Any]) -> str:
+    """An uncalibrated run's volumes in words, with the relative uncertainty the config stated."""
+    rel = nominal_u(cal)
+    tail = f", each known to {100 * rel:.3g} % (k = 1) as the instrument config states" if rel else \
+        ", with no uncertainty stated"
+    return f"uncalibrated: the nominal volumes of the instrument config{tail}"
+
+
+def nominal_u(cal: dict[str, Any]) -> float | None:
+    """The relative standard uncertainty of a nominal Vc (the config states one figure for all volumes)."""
+    cov, vc = cal.get("cov"), cal.get("vc")
+    try:
+        return (float(cov[0][0]) ** 0.5) / float(vc) if cov and vc else None  # type: ignore[index]
+    except (TypeError, ValueError, IndexError, ZeroDivisionError):
+        return None
 
 
 def print_summary(summary: dict[str, Any], folder: Any, units: Units | None = None, *,

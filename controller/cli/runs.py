@@ -31,7 +31,7 @@ CSV_COLUMNS = ["run_id", "created", "sample_id", "sequence", "kind", "status", "
                "U_volume_cm3", "density_g_cm3", "mass_g", "calibration_id", "message",
                # from the run's record (summary.json) unless the catalog row has the field itself
                "gas", "instrument", "operator", "expansion_volume", "rsd", "cycles", "cycles_kept", "converged",
-               "porosity", "U_porosity", "simulated", "warnings"]
+               "porosity", "U_porosity", "simulated", "calibrated", "warnings"]
 
 
 def _flat(doc: dict[str, Any]) -> dict[str, Any]:
@@ -52,6 +52,7 @@ FROM_RECORD: dict[str, Callable[[dict[str, Any]], Any]] = {
     "porosity": lambda d: d.get("porosity"),
     "U_porosity": lambda d: d.get("porosity_u"),
     "simulated": lambda d: _simulated(d),
+    "calibrated": lambda d: d.get("calibrated"),
     "warnings": lambda d: list(d.get("warnings") or []),
 }
 

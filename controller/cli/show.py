@@ -88,4 +88,6 @@ def print_run(doc: dict[str, Any], folder: Path, units: Any = None) -> None:
                   f"+/- {rec['u_vc_m3'] * 1e6:.5f} cm3, Vr {rec['vr_m3'] * 1e6:.5f} +/- {rec['u_vr_m3'] * 1e6:.5f} cm3 "
                   "(standard u)", markup=False)
     else:
-        con.print("calibration: nominal volumes of the instrument config")
+        from pycnoctl.controller.cli.result_view import nominal_words
+
+        con.print("calibration: NONE - " + nominal_words(doc.get("calibration") or {}), markup=False)

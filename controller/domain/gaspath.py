@@ -12,7 +12,14 @@ from typing import Annotated, Any
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, ValidationInfo, field_validator
 
-from pycnoctl.controller.domain.units import UnitError, parse_duration, parse_pressure, parse_rate, parse_volume
+from pycnoctl.controller.domain.units import (
+    UnitError,
+    parse_duration,
+    parse_fraction,
+    parse_pressure,
+    parse_rate,
+    parse_volume,
+)
 from pycnoctl.controller.domain.yamlio import DOCUMENT
 
 
@@ -48,6 +55,10 @@ class ChamberCalibration:
     record_id: str | None = None
 
 
+def _not_a_fraction() -> Any:
+    raise ValueError("expected a fraction, e.g. '1 %'")
+
+
 def _volume(value: Any, info: ValidationInfo) -> float:
     """A volume: text with a unit from a document ('12.0 cm^3'), a plain float in m^3 from code."""
     if isinstance(value, bool) or ((info.context or {}).get(DOCUMENT) and not isinstance(value, str)):
@@ -74,7 +85,24 @@ class Chambers(BaseModel):
 
     cell: Volume
     expansion: dict[str, Volume] = {}
+    # relative standard uncertainty (k = 1) of the nominal volumes, as the build's drawings or a volume
+    # determined elsewhere state it; required before a run may compute with nominal volumes, because a
+    # volume nobody calibrated is never known exactly ('1 %' in a file; a plain fraction from code)
+    nominal_u: float | None = None
     calibrated: dict[str, ChamberCalibration] = {}
+
+    @field_validator("nominal_u", mode="before")
+    @classmethod
+    def _fraction(cls, value: Any) -> Any:
+        if value is None or isinstance(value, bool):
+            return value if value is None else _not_a_fraction()
+        try:
+            out = parse_fraction(value)
+        except UnitError as exc:
+            raise ValueError(str(exc)) from None
+        if not 0.0 < out <= 0.5:
+            raise ValueError("must be above 0 and at most 50 % (a relative standard uncertainty, e.g. '1 %')")
+        return out
 
     @field_validator("calibrated", mode="before")
     @classmethod
@@ -84,10 +112,13 @@ class Chambers(BaseModel):
         return value
 
     def for_expansion(self, name: str) -> ChamberCalibration:
-        """The (Vc, Vr, covariance) to compute with when expanding into `name`."""
+        """The (Vc, Vr, covariance) to compute with when expanding into `name`: the calibration in
+        use, else the nominal volumes with the stated relative uncertainty (independent, k = 1)."""
         if name in self.calibrated:
             return self.calibrated[name]
-        return ChamberCalibration(self.cell, self.expansion[name])
+        vc, vr = self.cell, self.expansion[name]
+        u = self.nominal_u or 0.0
+        return ChamberCalibration(vc, vr, (((u * vc) ** 2, 0.0), (0.0, (u * vr) ** 2)))
 
 
 def _quantity(

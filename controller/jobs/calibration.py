@@ -336,9 +336,15 @@ def calibrate(
     points: dict[str, list[Point]] = {}
     run_ids: dict[str, list[str]] = {}
     seq_model: Any = None
+    made_on: tuple[str, str] | None = None  # (identity, fingerprint) of the instrument every step ran on
     for index, sphere in enumerate(steps):
         inst = loader.load(index, sphere)
         try:
+            if made_on is None:
+                made_on = (inst.identity, inst.fingerprint)
+            elif made_on != (inst.identity, inst.fingerprint):
+                raise CalibrationError(f"step {index} ran on instrument {inst.identity!r} "
+                                       f"({inst.fingerprint}), the steps before on {made_on[0]!r} ({made_on[1]})")
             names = list(expansion_volumes or inst.roles.expansion)
             for name in names:
                 req = RunRequest(sequence, sample_id=f"cal:{name}:{sphere.label}", operator=operator,
@@ -382,6 +388,8 @@ def calibrate(
         if reason is None:
             rec = record_for(fit, name, steps, pts, operator=operator, sequence=seq_model, alpha=alpha,
                              run_ids=run_ids[name])
+            assert made_on is not None  # at least the empty-cell step ran
+            rec = dataclasses.replace(rec, instrument=made_on[0], fingerprint=made_on[1], source="spheres")
             out.record_id = catalog.put_calibration(rec)
         outcomes.append(out)
     refused = [o for o in outcomes if not o.accepted]

@@ -13,7 +13,6 @@ from __future__ import annotations
 import datetime as _dt
 import math
 import os
-from collections.abc import Iterable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -77,7 +76,8 @@ class CalibrationUse:
                 "fill_pressure_gauge_pa": r.fill_pressure, "temperature_k": r.temperature, "operator": r.operator,
                 "vc_m3": r.vc, "vr_m3": r.vr, "u_vc_m3": math.sqrt(max(cov[0, 0], 0.0)),
                 "u_vr_m3": math.sqrt(max(cov[1, 1], 0.0)), "cov": cov.tolist(), "spheres": r.spheres,
-                "chi2": (r.payload or {}).get("chi2"), "dof": (r.payload or {}).get("dof")}
+                "chi2": (r.payload or {}).get("chi2"), "dof": (r.payload or {}).get("dof"),
+                "instrument": r.instrument, "fingerprint": r.fingerprint, "source": r.source}
 
     def after_run(self, summary: dict[str, Any]) -> list[str]:
         """Checks that need the run's own readings: measured fill pressure and gas temperature."""
@@ -108,33 +108,48 @@ class CalibrationUse:
         return out
 
 
+class CalibrationRefused(ValueError):
+    """A measurement that has no calibration of this instrument and no stated nominal uncertainty."""
+
+
 def use_latest_calibration(instrument: Instrument, catalog: Catalog, *, expansion_volume: str, gas: str,
                            fill_target: float | None = None, policy: CalibrationPolicy | None = None,
                            now: _dt.datetime | None = None) -> CalibrationUse:
-    """Apply the latest calibration of the expansion volume and gas to instrument.chambers.calibrated.
+    """Apply this instrument's calibration of the expansion volume in the gas to instrument.chambers.
 
-    Falls back to the latest for the expansion volume in another gas (with a warning), else keeps the
-    nominal volumes (with a warning)."""
+    Which one: the operator's choice (``pycnoctl calibrations select``), else the newest in use.  Only
+    calibrations made on this instrument (its identity) are candidates: one build's volumes on
+    another's run are a silent bias of percents.  Without one the nominal volumes are used with the
+    uncertainty the instrument config states; where it states none, CalibrationRefused."""
     policy = policy or CalibrationPolicy.from_env()
-    rec = catalog.latest_calibration(expansion_volume, gas)
+    rec = catalog.latest_calibration(expansion_volume, gas, instrument.identity)
     use = CalibrationUse(rec, expansion_volume, gas, policy)
     if rec is None:
-        others = [c for c in (catalog.latest_calibration(expansion_volume, g) for g in _other_gases(catalog, gas))
-                  if c is not None]
-        if others:
-            rec = max(others, key=lambda c: c.created or "")
-            use.record = rec
-            use.warnings.append(f"no calibration of {expansion_volume!r} in {gas}; using {rec.id} made in "
-                                f"{rec.gas}: the gas differs from the calibration's")
-        else:
-            use.warnings.append(f"no calibration on record for expansion volume {expansion_volume!r} in {gas}: "
-                                "computing with the nominal volumes of the instrument config (run pycnoctl "
-                                "calibrate)")
-            return use
+        elsewhere = [c for c in catalog.list_calibrations(expansion_volume=expansion_volume, gas=gas)
+                     if c.instrument != instrument.identity]
+        if instrument.chambers.nominal_u is None:
+            raise CalibrationRefused(
+                f"no calibration of expansion volume {expansion_volume!r} in {gas} on instrument "
+                f"{instrument.identity!r}{_elsewhere(elsewhere)}, and the instrument config states no "
+                "uncertainty of its nominal volumes (chambers: nominal_u): calibrate with pycnoctl calibrate, "
+                "import the volumes with pycnoctl calibrations import, or state nominal_u")
+        use.warnings.append(
+            f"UNCALIBRATED: no calibration of expansion volume {expansion_volume!r} in {gas} on instrument "
+            f"{instrument.identity!r}{_elsewhere(elsewhere)}; computing with the nominal volumes of the "
+            f"instrument config, each known to {100 * instrument.chambers.nominal_u:g} % (k = 1) as the config "
+            "states (run pycnoctl calibrate)")
+        return use
+    if rec.fingerprint and rec.fingerprint != instrument.fingerprint:
+        use.warnings.append(f"calibration {rec.id} was made when this instrument's config differed (chambers, "
+                            f"valve roles or transducer reference: {rec.fingerprint} then, {instrument.fingerprint} "
+                            "now); if the gas path changed, calibrate again")
     cov = tuple(tuple(float(x) for x in row) for row in (rec.cov or [[0.0, 0.0], [0.0, 0.0]]))
     instrument.chambers = instrument.chambers.model_copy(update={
         "calibrated": {**instrument.chambers.calibrated,
                        expansion_volume: ChamberCalibration(rec.vc, rec.vr, cov, rec.id)}})  # type: ignore[arg-type]
+    if rec.gas != gas:  # only by the operator's explicit choice
+        use.warnings.append(f"calibration {rec.id} was made in {rec.gas}, this run measures in {gas} "
+                            "(chosen by the operator)")
     if rec.created:
         age = ((now or _dt.datetime.now(_dt.UTC)) - parse_created(rec.created)).total_seconds()
         if age > policy.max_age:
@@ -150,10 +165,12 @@ def use_latest_calibration(instrument: Instrument, catalog: Catalog, *, expansio
     return use
 
 
-def _other_gases(catalog: Catalog, gas: str) -> Iterable[str]:
-    from pycnoctl.controller.domain.gas import GASES
-
-    return [g for g in GASES if g != gas]
+def _elsewhere(records: list[CalibrationRecord]) -> str:
+    if not records:
+        return ""
+    made = sorted({r.instrument or "an unknown instrument" for r in records})
+    return (f" ({len(records)} made on {', '.join(map(repr, made[:3]))}{' ...' if len(made) > 3 else ''} "
+            "are not used here)")
 
 
 def settle_rules(sequence: Any) -> dict[str, Any]:

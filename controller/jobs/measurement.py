@@ -34,8 +34,13 @@ from pycnoctl.drivers.instrument import Instrument
 
 
 def data_dir(explicit: str | Path | None = None) -> Path:
-    """Where runs and the catalog live: --data, else $PYCNOCTL_DATA, else ./pycnoctl-data."""
-    return Path(explicit or os.environ.get("PYCNOCTL_DATA") or "pycnoctl-data")
+    """Where runs and the catalog live: --data, else $PYCNOCTL_DATA, else the user's data folder
+    ($XDG_DATA_HOME/pycnoctl, by default ~/.local/share/pycnoctl).  Never the working directory: a
+    default that moves with it scatters one lab's records over as many catalogs as folders it ran in."""
+    if explicit or os.environ.get("PYCNOCTL_DATA"):
+        return Path(explicit or os.environ["PYCNOCTL_DATA"]).absolute()
+    base = os.environ.get("XDG_DATA_HOME") or os.path.join(os.path.expanduser("~"), ".local", "share")
+    return Path(base).absolute() / "pycnoctl"
 
 
 @dataclass
@@ -77,7 +82,7 @@ def prepare(request: RunRequest, instrument: Instrument, catalog: Catalog | None
         cal = {n: instrument.chambers.for_expansion(n) for n in names}
         if catalog is not None:
             for n in names:
-                rec = catalog.latest_calibration(n, seq.gas)
+                rec = catalog.latest_calibration(n, seq.gas, instrument.identity)
                 if rec is not None:
                     cov = tuple(tuple(float(x) for x in row) for row in (rec.cov or [[0.0, 0.0], [0.0, 0.0]]))
                     cal[n] = ChamberCalibration(rec.vc, rec.vr, cov)  # type: ignore[arg-type]
@@ -91,6 +96,11 @@ def prepare(request: RunRequest, instrument: Instrument, catalog: Catalog | None
                             cov_cal={n: np.asarray(c.cov, dtype=float) for n, c in cal.items()}).best
     elif choice not in names:
         raise ValueError(f"unknown expansion volume {choice!r}; the instrument has: {', '.join(names)}")
+    defaults = seq.sample_defaults  # what the command line did not give, the sequence file may
+    if request.mass is None and defaults.mass is not None:
+        request = dataclasses.replace(request, mass=defaults.mass)
+    if request.bulk_volume is None and defaults.bulk_volume is not None:
+        request = dataclasses.replace(request, bulk_volume=defaults.bulk_volume)
     return PreparedRun(request, seq, choice, warnings)
 
 
@@ -125,6 +135,9 @@ def instrument_description(instrument: Instrument) -> dict[str, Any]:
     """What the record keeps about the instrument: enough to recompute the run later."""
     return jsonable({
         "name": instrument.name,
+        "identity": instrument.identity,
+        "fingerprint": instrument.fingerprint,
+        "simulated": instrument.simulated,
         "gas": instrument.gas,
         "roles": instrument.roles,
         "chambers": instrument.chambers,
@@ -180,6 +193,8 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
                      "text": seq.raw_text, "parsed": seq.model_dump(mode="json")},
         "instrument": instrument_description(instrument),
         "calibration": jsonable(cal),
+        "calibrated": cal.record_id is not None,
+        "simulated": instrument.simulated,
         "software": {"name": "pycnoctl", "version": _version()},
         "gas": seq.gas,
         "expansion_volume": prepared.expansion_volume,
@@ -240,6 +255,20 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
     inst = controller.instrument
     seq = prepared.sequence
     req = prepared.request
+    cal_use = None
+    if seq.kind == "measure":  # this instrument's calibration of the volume and gas, or the stated nominal
+        from pycnoctl.controller.jobs.calibration_use import CalibrationRefused, settle_mismatch, use_latest_calibration
+
+        try:
+            cal_use = use_latest_calibration(inst, catalog, expansion_volume=prepared.expansion_volume,
+                                             gas=seq.gas, fill_target=seq.fill.target)
+        except CalibrationRefused as exc:  # nothing has moved; a queued row is closed with the reason
+            if run_id is not None:
+                with contextlib.suppress(Exception):
+                    catalog.finish_run(run_id, "aborted", message=f"refused: {exc}")
+            raise
+        prepared.warnings.extend(cal_use.warnings)
+        prepared.warnings.extend(settle_mismatch(cal_use.record, seq))
     try:
         if run_id is None:
             run_id = catalog.create_run(kind=seq.kind, sample_id=req.sample_id, sequence_name=seq.name,
@@ -262,15 +291,6 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
             catalog.finish_run(run_id, "fault", message=message)
         raise StorageFault(f"run {run_id}: {message}; the run did not start, the instrument is in the safe state"
                            ) from exc
-    cal_use = None
-    if seq.kind == "measure":  # compute with the latest calibration of this volume and gas; warn on mismatch
-        from pycnoctl.controller.jobs.calibration_use import settle_mismatch, use_latest_calibration
-
-        cal_use = use_latest_calibration(inst, catalog, expansion_volume=prepared.expansion_volume, gas=seq.gas,
-                                         fill_target=seq.fill.target)
-        prepared.warnings.extend(cal_use.warnings)
-        if seq.kind == "measure":
-            prepared.warnings.extend(settle_mismatch(cal_use.record, seq))
     engine = RunEngine(seq, inst, expansion_volume=prepared.expansion_volume)
     started, t0 = time.time(), inst.clock.now()
     try:

@@ -32,7 +32,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2  # 2: calibrations bound to an instrument; retire and choose them
 STATUSES = ("queued", "running", "completed", "fault", "aborted", "interrupted")
 TERMINAL = frozenset({"completed", "fault", "aborted", "interrupted"})
 _ALLOWED = {
@@ -58,9 +58,21 @@ CREATE TABLE IF NOT EXISTS calibrations (
     cov TEXT,
     spheres TEXT,
     residuals TEXT,
-    payload TEXT
+    payload TEXT,
+    instrument TEXT,
+    fingerprint TEXT,
+    source TEXT,
+    retired TEXT
 );
 CREATE INDEX IF NOT EXISTS calibrations_by_volume ON calibrations (expansion_volume, gas, created);
+CREATE TABLE IF NOT EXISTS calibration_choice (
+    instrument TEXT NOT NULL,
+    expansion_volume TEXT NOT NULL,
+    gas TEXT NOT NULL,
+    calibration_id TEXT NOT NULL REFERENCES calibrations (id),
+    chosen TEXT NOT NULL,
+    PRIMARY KEY (instrument, expansion_volume, gas)
+);
 CREATE TABLE IF NOT EXISTS runs (
     id TEXT PRIMARY KEY,
     created TEXT NOT NULL,
@@ -98,6 +110,20 @@ CREATE TABLE IF NOT EXISTS queue (
     request TEXT NOT NULL
 );
 """
+
+
+def _migrate(con: sqlite3.Connection, version: int) -> None:
+    """Bring an older catalog up to SCHEMA_VERSION inside the opening transaction (all or nothing).
+
+    1 -> 2: calibrations gain the instrument they were made on, its configuration fingerprint, their
+    source (measured or imported) and a retirement stamp.  Calibrations made before keep NULL there:
+    they are never applied automatically, since nothing says which instrument made them."""
+    if version < 2:
+        have = {r[1] for r in con.execute("PRAGMA table_info(calibrations)")}
+        for col in ("instrument", "fingerprint", "source", "retired"):
+            if col not in have:
+                con.execute(f"ALTER TABLE calibrations ADD COLUMN {col} TEXT")
+    con.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION,))
 
 
 class CatalogError(Exception):
@@ -209,6 +235,10 @@ class CalibrationRecord:
     payload: Any = None
     id: str | None = None
     created: str | None = None
+    instrument: str | None = None  # the identity of the instrument it was made on (None: not known)
+    fingerprint: str | None = None  # that instrument's configuration (chambers, roles, transducer) then
+    source: str | None = None  # "spheres" (measured here) or "imported" (volumes determined elsewhere)
+    retired: str | None = None  # when and why it was taken out of use ("2026-12-04T...Z: reason")
 
 
 @dataclass(frozen=True)
@@ -316,6 +346,8 @@ class Catalog:
                 raise CatalogError(
                     f"{self.path}: schema version {row[0]} is newer than this software ({SCHEMA_VERSION})"
                 )
+            elif row[0] < SCHEMA_VERSION:
+                _migrate(con, int(row[0]))
 
     @classmethod
     def for_reading(cls, path: Path | str) -> Catalog:
@@ -580,10 +612,11 @@ class Catalog:
         with self._write() as con:
             con.execute(
                 "INSERT INTO calibrations (id, created, expansion_volume, gas, fill_pressure, temperature,"
-                " operator, vc, vr, cov, spheres, residuals, payload) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
+                " operator, vc, vr, cov, spheres, residuals, payload, instrument, fingerprint, source, retired)"
+                " VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
                 (cid, created, cal.expansion_volume, cal.gas, cal.fill_pressure, cal.temperature,
                  cal.operator, float(cal.vc), float(cal.vr), js(cal.cov), js(cal.spheres),
-                 js(cal.residuals), js(cal.payload)),
+                 js(cal.residuals), js(cal.payload), cal.instrument, cal.fingerprint, cal.source, cal.retired),
             )
         return cid
 
@@ -598,13 +631,77 @@ class Catalog:
         rows = self._read("SELECT * FROM calibrations WHERE id = ?", (cal_id,))
         return self._cal(rows[0]) if rows else None
 
-    def latest_calibration(self, expansion_volume: str, gas: str) -> CalibrationRecord | None:
+    def latest_calibration(self, expansion_volume: str, gas: str, instrument: str | None = None
+                           ) -> CalibrationRecord | None:
+        """The newest calibration in use (not retired) of the volume and gas; with ``instrument``, of
+        that instrument only, the operator's choice (calibration_choice) before the newest."""
+        if instrument is None:
+            rows = self._read(
+                "SELECT * FROM calibrations WHERE expansion_volume = ? AND gas = ? AND retired IS NULL"
+                " ORDER BY created DESC, id DESC LIMIT 1",
+                (expansion_volume, gas),
+            )
+            return self._cal(rows[0]) if rows else None
+        chosen = self.chosen_calibration(instrument, expansion_volume, gas)
+        if chosen is not None and chosen.retired is None:
+            return chosen
         rows = self._read(
-            "SELECT * FROM calibrations WHERE expansion_volume = ? AND gas = ?"
-            " ORDER BY created DESC, id DESC LIMIT 1",
-            (expansion_volume, gas),
+            "SELECT * FROM calibrations WHERE expansion_volume = ? AND gas = ? AND instrument = ?"
+            " AND retired IS NULL ORDER BY created DESC, id DESC LIMIT 1",
+            (expansion_volume, gas, instrument),
         )
         return self._cal(rows[0]) if rows else None
+
+    def list_calibrations(self, *, instrument: str | None = None, expansion_volume: str | None = None,
+                          gas: str | None = None, include_retired: bool = False) -> list[CalibrationRecord]:
+        """Calibrations, newest first, filtered by whatever is given."""
+        where, args = [], []
+        for col, val in (("instrument", instrument), ("expansion_volume", expansion_volume), ("gas", gas)):
+            if val is not None:
+                where.append(f"{col} = ?")
+                args.append(val)
+        if not include_retired:
+            where.append("retired IS NULL")
+        sql = "SELECT * FROM calibrations" + (" WHERE " + " AND ".join(where) if where else "")
+        return [self._cal(r) for r in self._read(sql + " ORDER BY created DESC, id DESC", args)]
+
+    def chosen_calibration(self, instrument: str, expansion_volume: str, gas: str) -> CalibrationRecord | None:
+        rows = self._read(
+            "SELECT c.* FROM calibration_choice AS k JOIN calibrations AS c ON c.id = k.calibration_id"
+            " WHERE k.instrument = ? AND k.expansion_volume = ? AND k.gas = ?",
+            (instrument, expansion_volume, gas),
+        )
+        return self._cal(rows[0]) if rows else None
+
+    def choose_calibration(self, cal_id: str, instrument: str, gas: str | None = None) -> None:
+        """Use cal_id for its expansion volume on instrument (in its own gas, or in ``gas``) until
+        another is chosen; a calibration not bound to an instrument is bound to this one."""
+        with self._write() as con:
+            row = con.execute("SELECT expansion_volume, gas, instrument, retired FROM calibrations WHERE id = ?",
+                              (cal_id,)).fetchone()
+            if row is None:
+                raise CatalogError(f"no calibration {cal_id}")
+            if row["retired"] is not None:
+                raise CatalogError(f"calibration {cal_id} is retired ({row['retired']})")
+            if row["instrument"] is not None and row["instrument"] != instrument:
+                raise CatalogError(f"calibration {cal_id} was made on instrument {row['instrument']!r}, "
+                                   f"not {instrument!r}")
+            if row["instrument"] is None:
+                con.execute("UPDATE calibrations SET instrument = ? WHERE id = ?", (instrument, cal_id))
+            con.execute("INSERT OR REPLACE INTO calibration_choice (instrument, expansion_volume, gas,"
+                        " calibration_id, chosen) VALUES (?, ?, ?, ?, ?)",
+                        (instrument, row["expansion_volume"], gas or row["gas"], cal_id, _utc()))
+
+    def retire_calibration(self, cal_id: str, reason: str) -> None:
+        """Take a calibration out of use for good (it stays on record; runs that used it keep its id)."""
+        with self._write() as con:
+            cur = con.execute("UPDATE calibrations SET retired = ? WHERE id = ? AND retired IS NULL",
+                              (f"{_utc()}: {reason}", cal_id))
+            if cur.rowcount == 0:
+                row = con.execute("SELECT retired FROM calibrations WHERE id = ?", (cal_id,)).fetchone()
+                raise CatalogError(f"no calibration {cal_id}" if row is None
+                                   else f"calibration {cal_id} is already retired ({row['retired']})")
+            con.execute("DELETE FROM calibration_choice WHERE calibration_id = ?", (cal_id,))
 
     # ------------------------------------------------------------------ queue
     def queue_push(self, run_id: str, request: dict) -> int:

@@ -243,7 +243,9 @@ def report_html(run: StoredRun, png_name: str, png_bytes: bytes) -> str:
         warnings=res["warnings"] or [], png_name=png_name,
         png_data=base64.b64encode(png_bytes).decode("ascii"), cycles=_cycle_rows(res["cycles"] or []),
         budget=budget_rows(res["budget"] or []), calibration=_calibration_rows(rec) if rec else None,
-        nominal={"vc": cal.get("vc", 0) * 1e6, "vr": cal.get("vr", 0) * 1e6} if cal and not rec else None,
+        nominal={"vc": cal.get("vc", 0) * 1e6, "vr": cal.get("vr", 0) * 1e6,
+                 "u_percent": 100 * (cal["cov"][0][0] ** 0.5) / cal["vc"] if cal.get("cov") and cal.get("vc") else None}
+        if cal and not rec else None,
     )
 
 

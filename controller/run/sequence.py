@@ -386,7 +386,9 @@ def kind_rules(data: Any) -> list[Rule]:
             if data.get(key) is None:
                 out.append((("kind",), f"kind {kind} needs a '{key}' section"))
         expand = data.get("expand")
-        if isinstance(expand, dict) and expand.get("volume", "auto") == "auto" \
+        # a calibration runs every expansion volume in turn (pycnoctl calibrate names each), so its
+        # 'auto' needs no estimate of a sample it does not have
+        if isinstance(expand, dict) and expand.get("volume", "auto") == "auto" and kind != "calibrate" \
                 and expand.get("sample_estimate") is None:
             loc: Loc = ("expand", "volume") if "volume" in expand else ("expand",)
             out.append((loc, "volume 'auto' needs expand.sample_estimate (the expected sample volume)"))
@@ -665,8 +667,10 @@ def check_against_instrument(
         except UnknownGas:
             warnings.append(f"the instrument's gas {gas!r} is unknown; the sequence asks for {seq.gas}")
         else:
-            if inst_gas != seq.gas:
-                warnings.append(f"the sequence is written for {seq.gas} but the instrument runs {inst_gas}")
+            if inst_gas != seq.gas:  # its volumes, calibration and real-gas terms are for another gas
+                problems.append(problem(("gas",), f"the sequence measures in {seq.gas} but the instrument is "
+                                        f"plumbed for {inst_gas}: change the instrument's gas (and calibrate "
+                                        "in it) or use a sequence written for it"))
     return problems, warnings
 
 
