@@ -115,7 +115,8 @@ def submit(args: argparse.Namespace) -> int:
     from pathlib import Path
 
     req: dict[str, Any] = {"sample_id": args.sample, "mass": args.mass, "u_mass": args.u_mass,
-                           "bulk_volume": args.bulk_volume, "operator": args.operator,
+                           "bulk_volume": args.bulk_volume, "u_bulk_volume": args.u_bulk_volume,
+                           "operator": args.operator,
                            "expansion_volume": args.expansion_volume, "note": args.note or None}
     path = Path(args.sequence)
     if path.is_file():  # a local file: its text travels, the daemon never sees our path

@@ -58,6 +58,9 @@ def add_sample_args(p: argparse.ArgumentParser, *, u_mass_default: str | None) -
     p.add_argument("--u-mass", metavar="VALUE", default=u_mass_default,
                    help="standard uncertainty of the mass (default 0.1 mg)")
     p.add_argument("--bulk-volume", metavar="VALUE", help="bulk (envelope) volume for the porosity, e.g. '6 cm^3'")
+    p.add_argument("--u-bulk-volume", metavar="VALUE",
+                   help="standard uncertainty of the bulk volume, e.g. '0.02 cm^3' (default: none; the porosity's "
+                        "U then leaves it out and says so)")
     p.add_argument("--operator", default="", help="who ran it, for the record")
     p.add_argument("--expansion-volume", metavar="NAME", help="override the sequence's expansion volume")
 

@@ -28,6 +28,8 @@ VERB_TABLE: dict[str, tuple[str, str]] = {
     "calibrations": ("pycnoctl.controller.cli.calibrations",
                      "list, show, select, retire or import chamber calibrations"),
     "runs": ("pycnoctl.controller.cli.runs", "list runs in the catalog"),
+    "compare": ("pycnoctl.controller.cli.compare",
+                "stored results side by side: differences, their U and the En number"),
     "show": ("pycnoctl.controller.cli.show", "show one stored run"),
     "report": ("pycnoctl.controller.cli.report", "write an HTML report of a run or a sample set"),
     "serve": ("pycnoctl.controller.cli.serve", "run the instrument service with its local API and dashboard"),

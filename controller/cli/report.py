@@ -1,8 +1,12 @@
-"""pycnoctl report: the HTML report of one run, or a summary across a sample set.
+"""pycnoctl report: the report of one run, or a summary across a sample set, as HTML or PDF.
 
-pycnoctl report RUN [--out FILE]                 one run (figure saved beside the HTML as PNG)
-pycnoctl report --samples PREFIX [--out FILE]    completed runs of samples whose ID starts with PREFIX
-pycnoctl report --runs ID [ID ...] [--out FILE]  the listed runs, grouped by sample
+pycnoctl report RUN [--out FILE] [--pdf]                 one run (figure saved beside it as PNG)
+pycnoctl report --samples PREFIX [--out FILE] [--pdf]    completed runs of samples whose ID starts with PREFIX
+pycnoctl report --runs ID [ID ...] [--out FILE] [--pdf]  the listed runs, grouped by sample
+
+A FILE ending in .pdf, or --pdf, writes PDF: the result with its expanded U, the warnings, the
+calibration and links on the first page, then the trace, the cycles and the budget.  The sample-set
+summary plots each run's density with its expanded U, by sample.
 """
 
 from __future__ import annotations
@@ -22,7 +26,8 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     g = p.add_mutually_exclusive_group()
     g.add_argument("--samples", metavar="PREFIX", help="sample-set summary of samples with this ID prefix")
     g.add_argument("--runs", nargs="+", metavar="ID", help="sample-set summary of these runs")
-    p.add_argument("--out", metavar="FILE", help="where to write the HTML")
+    p.add_argument("--out", metavar="FILE", help="where to write the report (.html, or .pdf for PDF)")
+    p.add_argument("--pdf", action="store_true", help="write PDF (default name report.pdf / sample-set.pdf)")
     p.set_defaults(func=main)
 
 
@@ -34,7 +39,11 @@ def main(args: argparse.Namespace) -> int:
     if args.samples is None and args.runs is None:
         if not args.run:
             raise UsageError("name a run, or give --samples PREFIX or --runs ID ...")
-        print(render_report(resolve_run_folder(root, args.run), Path(args.out) if args.out else None))
+        folder = resolve_run_folder(root, args.run)
+        out = Path(args.out) if args.out else (folder / "report.pdf" if args.pdf else None)
+        if args.pdf and out is not None and out.suffix.lower() != ".pdf":
+            raise UsageError("--pdf: give an --out FILE ending in .pdf, or none")
+        print(render_report(folder, out).absolute())
         return 0
     if args.run:
         raise UsageError("give a run or a sample set, not both")
@@ -46,6 +55,8 @@ def main(args: argparse.Namespace) -> int:
     with Catalog.for_reading(path) as catalog:
         stats = sample_set(catalog, prefix=args.samples, run_ids=args.runs)
     title = f"sample set {args.samples}*" if args.samples is not None else "sample set (listed runs)"
-    out = Path(args.out) if args.out else root / "reports" / "sample-set.html"
-    print(render_sample_set(stats, out, title=title))
+    out = Path(args.out) if args.out else root / "reports" / ("sample-set.pdf" if args.pdf else "sample-set.html")
+    if args.pdf and out.suffix.lower() != ".pdf":
+        raise UsageError("--pdf: give an --out FILE ending in .pdf, or none")
+    print(render_sample_set(stats, out, title=title).absolute())
     return 0

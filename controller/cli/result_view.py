@@ -104,6 +104,10 @@ def result_lines(summary: dict[str, Any], units: Units, *, simulated: bool | Non
     if summary.get("porosity") is not None:
         u_phi = summary.get("porosity_u")
         tail = f" +/- {u_phi * 100:.2f} % (expanded U, k = {k:g})" if u_phi is not None else ""
+        if summary.get("bulk_volume_cm3") is not None:
+            u_b = summary.get("u_bulk_volume_cm3") or 0.0
+            tail += (f"; bulk volume {summary['bulk_volume_cm3']:.4g} cm3 " +
+                     (f"+/- {u_b:.3g} cm3 (standard u)" if u_b else "taken as exact (no --u-bulk-volume)"))
         lines.append(f"porosity: {summary['porosity'] * 100:.2f} %{tail}")
     n_cycles = len(summary.get("cycles") or [])
     if n_cycles and summary.get("volume_cm3") is not None:

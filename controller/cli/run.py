@@ -59,12 +59,17 @@ def request_from_args(args: argparse.Namespace) -> Any:
         mass = parse_mass(args.mass) if args.mass else None
         u_mass = parse_mass(args.u_mass) if args.u_mass else 0.0
         bulk = parse_volume(args.bulk_volume) if args.bulk_volume else None
+        u_bulk = parse_volume(args.u_bulk_volume) if args.u_bulk_volume else 0.0
     except UnitError as exc:
-        raise UsageError(f"--mass/--u-mass/--bulk-volume: {exc}") from None
+        raise UsageError(f"--mass/--u-mass/--bulk-volume/--u-bulk-volume: {exc}") from None
     if mass is not None and mass <= 0:
         raise UsageError("--mass: must be positive")
+    if u_bulk and bulk is None:
+        raise UsageError("--u-bulk-volume: give --bulk-volume too")
+    if not (u_bulk >= 0 and (bulk is None or u_bulk < 0.5 * bulk)):
+        raise UsageError("--u-bulk-volume: must be zero or positive and well below the bulk volume")
     return RunRequest(args.sequence, sample_id=args.sample, mass=mass, u_mass=u_mass, bulk_volume=bulk,
-                      operator=args.operator, expansion_volume=args.expansion_volume)
+                      u_bulk_volume=u_bulk, operator=args.operator, expansion_volume=args.expansion_volume)
 
 
 def main(args: argparse.Namespace) -> int:

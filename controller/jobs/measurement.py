@@ -52,6 +52,7 @@ class RunRequest:
     mass: float | None = None
     u_mass: float = 0.0
     bulk_volume: float | None = None
+    u_bulk_volume: float = 0.0  # standard uncertainty of the bulk volume (0: taken as exact, and said so)
     operator: str = ""
     expansion_volume: str | None = None  # overrides the sequence's choice
     note: str = ""
@@ -230,8 +231,9 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
         if req.bulk_volume and res.volume_m3 > 0:
             from pycnoctl.controller.maths.uncertainty import porosity
 
-            phi, u_phi = porosity(req.bulk_volume, 0.0, res.volume_m3, res.u_volume_m3)
+            phi, u_phi = porosity(req.bulk_volume, req.u_bulk_volume, res.volume_m3, res.u_volume_m3)
             out["porosity"], out["porosity_u"] = phi, res.k * u_phi
+            out["bulk_volume_cm3"], out["u_bulk_volume_cm3"] = req.bulk_volume * 1e6, req.u_bulk_volume * 1e6
     return jsonable(out)
 
 

@@ -174,10 +174,42 @@ _BUDGET_UNITS = {"pressure": ("Pa", 1.0, ".2f"), "temperature": ("K", 1.0, ".3f"
                  "calibration": ("cm³", 1e6, ".5f"), "repeatability": ("cm³", 1e6, ".5f")}
 
 
-def budget_rows(budget: Sequence[dict[str, Any]]) -> list[list[str]]:
-    """Uncertainty budget rows as text: input, value, u, sensitivity, contribution (cm3), share of u_c^2."""
-    rows = []
+def grouped_budget(budget: Sequence[dict[str, Any]]) -> list[dict[str, Any]]:
+    """The budget with the calibration's Vc, Vr and their covariance gathered under one row.
+
+    Why: Vc and Vr enter with sensitivities of opposite sign and a strong correlation, so their own
+    shares of u^2 can read 380 % and -447 % with the covariance taking most of it back; only their sum
+    says what the calibration costs.  The group row carries that sum (its variance and share); the
+    members follow it, marked ``detail``, for whoever wants them."""
+    members = [b for b in budget if b.get("kind") == "calibration"]
+    if len(members) < 2:
+        return [dict(b) for b in budget]
+    var = sum(float(b.get("variance") if b.get("variance") is not None else (b.get("contribution") or 0.0) ** 2)
+              for b in members)
+    shares = [b.get("share") for b in members]
+    group = {"name": "calibration (Vc, Vr and their covariance)", "kind": "calibration_group", "value": None,
+             "std_u": None, "sensitivity": None, "contribution": math.sqrt(max(var, 0.0)), "variance": var,
+             "share": sum(x for x in shares if x is not None) if all(x is not None for x in shares) else None}
+    out: list[dict[str, Any]] = []
     for b in budget:
+        if b is members[0]:
+            out.append(group)
+            out.extend({**m, "detail": True} for m in members)
+        elif b.get("kind") != "calibration":
+            out.append(dict(b))
+    return out
+
+
+def budget_rows(budget: Sequence[dict[str, Any]]) -> list[list[str]]:
+    """Uncertainty budget rows as text: input, value, u, sensitivity, contribution (cm3), share of u_c^2;
+    the calibration's inputs as one group row with its members indented below it."""
+    rows = []
+    for b in grouped_budget(budget):
+        if b.get("kind") == "calibration_group":
+            share = b.get("share")
+            rows.append([str(b["name"]), "-", "-", "-", _num(b["contribution"] * 1e6, ".3g"),
+                         "-" if share is None else f"{100 * share:.1f} %"])
+            continue
         unit, scale, fmt = _BUDGET_UNITS.get(b.get("kind", ""), ("", 1.0, ".4g"))
         val = b.get("value")
         is_cov = b.get("std_u") is None and b.get("kind") == "calibration"
@@ -185,7 +217,8 @@ def budget_rows(budget: Sequence[dict[str, Any]]) -> list[list[str]]:
             f"{_num(val * scale if val is not None else None, fmt)} {unit}")
         u = "-" if b.get("std_u") is None else f"{_num(b['std_u'] * scale, '.3g')} {unit}"
         share = b.get("share")
-        rows.append([str(b.get("name")), value, u, _num(b.get("sensitivity"), ".4g"),
+        name = ("  - " if b.get("detail") else "") + str(b.get("name"))
+        rows.append([name, value, u, _num(b.get("sensitivity"), ".4g"),
                      _num((b.get("contribution") or 0.0) * 1e6, ".3g"),
                      "-" if share is None else f"{100 * share:.1f} %"])
     return rows
@@ -250,8 +283,13 @@ def report_html(run: StoredRun, png_name: str, png_bytes: bytes) -> str:
 
 
 def render_report(run_folder: Path, out: Path | None = None) -> Path:
-    """Write the run's HTML report (figure embedded, and saved beside it as PNG); returns the HTML path."""
+    """Write the run's HTML report (figure embedded, and saved beside it as PNG), or its PDF report when
+    ``out`` ends in .pdf; returns the path written."""
     run_folder = Path(run_folder)
+    if out is not None and Path(out).suffix.lower() == ".pdf":
+        from pycnoctl.controller.record.pdf import run_report_pdf
+
+        return run_report_pdf(run_folder, Path(out))
     run = load_run(run_folder, trace_columns=FIGURE_COLUMNS)
     if not run.meta:
         raise FileNotFoundError(f"{run_folder}: not a run folder (no meta.json)")
@@ -273,6 +311,8 @@ class SampleStats:
     run_ids: list[str] = field(default_factory=list)
     densities: list[float] = field(default_factory=list)  # g/cm3
     volumes: list[float] = field(default_factory=list)  # cm3
+    # each run's own result with its expanded U (k = 2), for the plot: (run, density, U, volume, U)
+    points: list[dict[str, Any]] = field(default_factory=list)
 
     @property
     def n(self) -> int:
@@ -311,20 +351,65 @@ def sample_set(catalog: Any, *, prefix: str | None = None, run_ids: Sequence[str
             g.densities.append(r.density / 1e3)
         if r.volume_m3 is not None:
             g.volumes.append(r.volume_m3 * 1e6)
+        vol, u_vol = r.volume_m3, r.u_volume_m3  # the catalog keeps the expanded U of the volume
+        rel = u_vol / vol if vol and u_vol is not None else None
+        # the density's U from the volume's relative U: the mass's (0.1 mg on grams) is far below it
+        g.points.append({"run_id": r.id, "sample_id": r.sample_id or "",
+                         "density": r.density / 1e3 if r.density is not None else None,
+                         "U_density": r.density / 1e3 * rel if r.density is not None and rel is not None else None,
+                         "volume": vol * 1e6 if vol is not None else None,
+                         "U_volume": u_vol * 1e6 if u_vol is not None else None})
     return [groups[k] for k in sorted(groups)]
 
 
 def render_sample_set(stats: Sequence[SampleStats], out: Path, *, title: str = "sample set") -> Path:
-    """An HTML table of the sample set (mean density per sample and its spread)."""
+    """The sample set as HTML (a table and the plot of each run's result with its U, embedded), or as PDF
+    when ``out`` ends in .pdf; the plot is also saved beside it as PNG."""
     rows = []
+    table = []
     for s in stats:
         d = s.as_dict()
-        rows.append([s.sample_id or "(none)", str(s.n), _num(d["mean_density_g_cm3"]), _num(d["sd_density_g_cm3"]),
-                     _num(d["range_density_g_cm3"]), _num(d["mean_volume_cm3"]), _num(d["sd_volume_cm3"]),
-                     ", ".join(s.run_ids)])
-    stamp = _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
-    text = _TEMPLATES.get_template("sample_set.html.j2").render(title=title, rows=rows, stamp=stamp)
+        row = [s.sample_id or "(none)", str(s.n), _num(d["mean_density_g_cm3"]), _num(d["sd_density_g_cm3"]),
+               _num(d["range_density_g_cm3"]), _num(d["mean_volume_cm3"]), _num(d["sd_volume_cm3"]),
+               ", ".join(s.run_ids)]
+        rows.append(row)
+        table.append({"sample": row[0], "runs": row[1], "mean_density": row[2], "sd_density": row[3],
+                      "mean_volume": row[5], "sd_volume": row[6]})
     out = Path(out)
     out.parent.mkdir(parents=True, exist_ok=True)
+    png = render_sample_plot(stats, out.with_suffix(".png"))
+    if out.suffix.lower() == ".pdf":
+        from pycnoctl.controller.record.pdf import sample_set_pdf
+
+        return sample_set_pdf(table, [p for s in stats for p in s.points], out, title=title, png=png)
+    stamp = _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
+    text = _TEMPLATES.get_template("sample_set.html.j2").render(
+        title=title, rows=rows, stamp=stamp, png_name=png.name,
+        png_data=base64.b64encode(png.read_bytes()).decode("ascii"))
     out.write_text(text, encoding="utf-8")
     return out
+
+
+def render_sample_plot(stats: Sequence[SampleStats], png: Path) -> Path:
+    """Each run's density with its expanded U, grouped by sample, and each sample's mean."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(9, 4), dpi=DPI)
+    ax = fig.add_axes((0.1, 0.22, 0.86, 0.7))
+    for i, s in enumerate(stats):
+        pts = [p for p in s.points if p["density"] is not None]
+        if not pts:
+            continue
+        xs = [i + (j - (len(pts) - 1) / 2) * min(0.6 / max(len(pts), 1), 0.15) for j in range(len(pts))]
+        ax.errorbar(xs, [p["density"] for p in pts], yerr=[p["U_density"] or 0.0 for p in pts], fmt="o", ms=3,
+                    capsize=2, lw=0.8, color="tab:blue")
+        ax.hlines(statistics.fmean(p["density"] for p in pts), i - 0.3, i + 0.3, color="tab:red", lw=1)
+    ax.set_xticks(range(len(stats)), [s.sample_id or "(none)" for s in stats], rotation=30, ha="right", fontsize=8)
+    ax.set_ylabel("skeletal density / g/cm³")
+    ax.set_title("each run with its expanded U (k = 2); red: the sample's mean", fontsize=9)
+    ax.grid(alpha=0.3)
+    fig.savefig(png)
+    return png

@@ -188,11 +188,13 @@ def submit(req: s.RunRequest, d: DaemonDep, response: Response) -> Any:
         mass = parse_mass(req.mass) if req.mass is not None else None
         u_mass = parse_mass(req.u_mass) if req.u_mass is not None else 1e-7
         bulk = parse_volume(req.bulk_volume) if req.bulk_volume is not None else None
+        u_bulk = parse_volume(req.u_bulk_volume) if req.u_bulk_volume is not None else 0.0
     except (UnitError, ValueError, TypeError) as exc:
-        return _error(400, f"mass/u_mass/bulk_volume: {exc}")
+        return _error(400, f"mass/u_mass/bulk_volume/u_bulk_volume: {exc}")
     try:
         out = d.submit(sequence=req.sequence, sequence_text=req.sequence_text, sample_id=req.sample_id.strip(),
-                       mass=mass, u_mass=u_mass, bulk_volume=bulk, operator=req.operator.strip(),
+                       mass=mass, u_mass=u_mass, bulk_volume=bulk, u_bulk_volume=u_bulk,
+                       operator=req.operator.strip(),
                        expansion_volume=req.expansion_volume, note=req.note)
     except SubmitError as exc:
         return _error(exc.status, str(exc), problems=exc.problems)

@@ -576,7 +576,8 @@ class Daemon:
 
     def submit(self, *, sequence: str | None = None, sequence_text: str | None = None, sample_id: str = "",
                mass: float | None = None, u_mass: float = 0.0, bulk_volume: float | None = None,
-               operator: str = "", expansion_volume: str | None = None, note: str = "") -> dict[str, Any]:
+               operator: str = "", expansion_volume: str | None = None, note: str = "",
+               u_bulk_volume: float = 0.0) -> dict[str, Any]:
         """Validate a run request against the instrument, queue it and return its issued ID.
 
         The sequence is a shipped sequence's name or the text of one; never a path on this machine.
@@ -597,8 +598,13 @@ class Daemon:
             raise SubmitError("bulk volume must be positive")
         if not (math.isfinite(u_mass) and u_mass >= 0):
             raise SubmitError("mass uncertainty must be zero or positive")
+        if not (math.isfinite(u_bulk_volume) and u_bulk_volume >= 0) or (
+                u_bulk_volume and (bulk_volume is None or u_bulk_volume >= 0.5 * bulk_volume)):
+            raise SubmitError("bulk volume uncertainty must be zero or positive, below half the bulk volume, "
+                              "and given with a bulk volume")
         request = {"sequence": sequence, "sequence_text": sequence_text, "sample_id": sample_id, "mass": mass,
-                   "u_mass": u_mass, "bulk_volume": bulk_volume, "operator": operator,
+                   "u_mass": u_mass, "bulk_volume": bulk_volume, "u_bulk_volume": u_bulk_volume,
+                   "operator": operator,
                    "expansion_volume": expansion_volume, "note": note}
         run_id = self.catalog.new_run_id()
         prepared = self._prepare(run_id, request)  # raises SubmitError; nothing is queued then
@@ -631,6 +637,7 @@ class Daemon:
         path = self._sequence_path(run_id, request)
         rr = RunRequest(path, sample_id=request.get("sample_id") or "", mass=request.get("mass"),
                         u_mass=request.get("u_mass") or 0.0, bulk_volume=request.get("bulk_volume"),
+                        u_bulk_volume=request.get("u_bulk_volume") or 0.0,
                         operator=request.get("operator") or "", expansion_volume=request.get("expansion_volume"),
                         note=request.get("note") or "")
         try:

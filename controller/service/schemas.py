@@ -93,6 +93,8 @@ class RunRequest(BaseModel):
     mass: Mass | None = Field(None, description="specimen mass, '19.62 g' (a number is grams)")
     u_mass: Mass | None = Field(None, description="standard uncertainty of the mass (default 0.1 mg)")
     bulk_volume: Volume | None = Field(None, description="envelope volume ('6 cm^3'; a number is cm^3)")
+    u_bulk_volume: Volume | None = Field(None, description="standard uncertainty of the envelope volume "
+                                                           "('0.02 cm^3'; a number is cm^3)")
     operator: Text200 = ""
     expansion_volume: Annotated[str, StringConstraints(min_length=1, max_length=100)] | None = Field(
         None, description="override the sequence's choice of expansion volume")
