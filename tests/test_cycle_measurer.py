@@ -130,3 +130,22 @@ def test_drift_fit_picks_the_same_time_constant_as_a_plain_scan() -> None:
         assert d is not None and best is not None
         assert d.tau == best[1]
         assert d.slope == pytest.approx(best[2], rel=1e-9, abs=1e-12)
+
+
+def test_the_leak_slope_is_the_least_squares_slope_in_constant_memory() -> None:
+    """OnlineSlope against numpy's batch least-squares fit (numpy.polyfit, an outside reference)."""
+    import numpy as np
+
+    from pycnoctl.controller.maths.cycle import OnlineSlope
+
+    rng = np.random.default_rng(3)
+    t = 1e5 + np.arange(200_000) * 0.1  # a long hold, late in a long run (large, offset times)
+    p = 130_000.0 - 0.013 * (t - t[0]) + rng.normal(0.0, 20.0, t.size)
+    acc = OnlineSlope()
+    for a, b in zip(t.tolist(), p.tolist(), strict=True):
+        acc.add(a, b)
+    assert acc.slope == pytest.approx(np.polyfit(t - t[0], p, 1)[0], rel=1e-9)
+    assert math.isnan(OnlineSlope().slope)
+    one = OnlineSlope()
+    one.add(1.0, 2.0)
+    assert math.isnan(one.slope)

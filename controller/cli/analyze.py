@@ -71,14 +71,14 @@ def _chambers(args: argparse.Namespace, stored: dict[str, Any], root: Any) -> An
 def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.jobs.measurement import data_dir, jsonable
     from pycnoctl.controller.maths.cycle import AmbientModel
-    from pycnoctl.controller.record.replay import reanalyze
+    from pycnoctl.controller.record.replay import REPLAY_COLUMNS, reanalyze
     from pycnoctl.controller.record.runfolder import load_run
     from pycnoctl.controller.run.sequence import load_sequence, resolve_sequence, sequence_from_text
 
     units = parse_units(args.units)
     root = data_dir(args.data)
     folder = resolve_run_folder(root, args.run)
-    run = load_run(folder)
+    run = load_run(folder, trace_columns=REPLAY_COLUMNS)
     if run.summary is None:
         raise UsageError(f"{folder}: no summary.json (the run was interrupted before it was written); "
                          "pass --sequence and the chamber volumes to analyze its trace")

@@ -79,15 +79,15 @@ class CalibrationRun:
 
 
 def chi2_quantile(p: float, dof: int) -> float:
-    """Chi-square quantile: the value that p of the distribution lies below (exact, from scipy).
+    """Chi-square quantile: the value that p of the distribution lies below (exact: maths/chisq.py).
 
     The calibration's residual test compares chi-square with it; an approximation was off by several
     per cent at few degrees of freedom, which is where small calibrations live."""
     if dof <= 0:
         return math.nan
-    from scipy.stats import chi2  # imported here: scipy.stats costs a few hundred ms at start-up
+    from pycnoctl.controller.maths.chisq import chi2_ppf
 
-    return float(chi2.ppf(p, dof))
+    return chi2_ppf(p, dof)
 
 
 @dataclass

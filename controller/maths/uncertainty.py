@@ -254,13 +254,12 @@ def scatter_check(values: Sequence[float], predicted: float) -> ScatterCheck | N
     x = [float(v) for v in values]
     if len(x) < 2 or not predicted > 0.0:
         return None
-    from scipy.stats import chi2  # imported here: scipy.stats is slow to import
+    from pycnoctl.controller.maths.chisq import chi2_cdf, chi2_sf
 
     sd = statistics.stdev(x)
     dof = len(x) - 1
     stat = dof * (sd / predicted) ** 2
-    return ScatterCheck(len(x), sd, predicted, sd / predicted, float(chi2.sf(stat, dof)),
-                        float(chi2.cdf(stat, dof)))
+    return ScatterCheck(len(x), sd, predicted, sd / predicted, chi2_sf(stat, dof), chi2_cdf(stat, dof))
 
 
 def combine_run(cycle_volumes: Sequence[float], cycle_budgets: Sequence[Budget]) -> Budget:

@@ -9,6 +9,7 @@ run did, the phase's estimate at its end is used and the cycle is flagged.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -49,16 +50,26 @@ def phases(states: np.ndarray) -> list[Phase]:
     return [Phase(str(states[a]), a, b) for a, b in zip(starts, stops, strict=True)]
 
 
-def rows(run: StoredRun, pressure_is_gauge: bool) -> list[tuple[str, Row]]:
-    """The trace as the engine saw it: (state, row) with the gauge pressure, NaN where invalid."""
+#: the trace columns a replay reads (load_run(trace_columns=...) keeps only these)
+REPLAY_COLUMNS = ("t", "state", "pressure_pa", "pressure_valid", "ambient_pa", "temperature_k", "temperature_valid")
+_CHUNK = 65536  # rows turned into Python objects at a time: memory stays flat however long the trace
+
+
+def rows(run: StoredRun, pressure_is_gauge: bool) -> Iterator[tuple[str, Row]]:
+    """The trace as the engine saw it: (state, row) with the gauge pressure, NaN where invalid; made
+    a chunk at a time from the numpy columns, so a 16-hour trace never exists as 577k Python rows."""
     tr = run.trace
     valid = tr["pressure_valid"] == "valid"
     p = tr["pressure_pa"]
     ambient = tr["ambient_pa"]
     gauge = np.where(valid, p if pressure_is_gauge else p - ambient, np.nan)
     temp = np.where(tr["temperature_valid"] == "valid", tr["temperature_k"], np.nan)
-    return [(str(s), Row(float(t), float(g), float(a), float(k)))
-            for s, t, g, a, k in zip(tr["state"], tr["t"], gauge, ambient, temp, strict=True)]
+    states, times = tr["state"], tr["t"]
+    for a in range(0, len(times), _CHUNK):
+        b = a + _CHUNK
+        for s, t, g, amb, k in zip(np.asarray(states[a:b]).tolist(), times[a:b].tolist(), gauge[a:b].tolist(),
+                                   ambient[a:b].tolist(), temp[a:b].tolist(), strict=True):
+            yield str(s), Row(t, g, amb, k)
 
 
 def reanalyze(run: StoredRun, sequence: Sequence, *, chambers: ChamberCalibration, gas: str,
