@@ -150,7 +150,9 @@ def test_queue_removal_and_pause(client: TestClient, daemon: Daemon) -> None:
     time.sleep(0.2)
     assert client.get(f"/api/runs/{rid}").json()["status"] == "queued"  # paused: not started
     assert client.delete(f"/api/queue/{rid}").status_code == 200
-    assert client.get(f"/api/runs/{rid}").json()["status"] == "aborted"
+    gone = client.get(f"/api/runs/{rid}").json()
+    assert gone["status"] == "cancelled" and "before it started" in gone["message"]  # not 'aborted': it never ran
+    assert client.get(f"/api/runs/{rid}/summary.json").status_code == 404  # and it has no record
     assert client.delete(f"/api/queue/{rid}").status_code == 409
     assert client.get("/api/queue").json()["items"] == []
     rid2 = client.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
@@ -295,3 +297,35 @@ def test_deeply_nested_sequence_text_is_refused_and_leaves_no_file(client: TestC
     assert r.status_code == 422, r.text
     assert list((daemon.data / "sequences").iterdir()) == []
     assert daemon.catalog.list_runs() == []
+
+
+def test_the_operator_sees_calibration_warnings_and_provenance(client: TestClient, daemon: Daemon) -> None:
+    """The current run carries the calibration it uses (here none: UNCALIBRATED, with the stated nominal
+    u) and its warnings as they come; the last run says whether it converged, was calibrated and
+    simulated; the instrument says it is simulated; the trace serves each point's state."""
+    s = client.get("/api/status").json()
+    assert s["instrument"]["simulated"] is True and s["instrument"]["identity"].startswith("sim:")
+    seen: dict = {}
+    body = {"sequence": "quick-demo", "sample_id": "P-1", "mass": "0.1 g"}
+    rid = client.post("/api/runs", json=body).json()["run_id"]
+    t_end = time.monotonic() + 20
+    while time.monotonic() < t_end and not seen.get("warnings"):
+        cur = client.get("/api/status").json()["current_run"]
+        if cur and cur["run_id"] == rid:
+            seen = cur
+        time.sleep(0.02)
+    assert seen, "the run was never seen running"
+    assert seen["calibration"]["uncalibrated"] is True and seen["calibration"]["nominal_u"] == pytest.approx(0.005)
+    assert any(w.startswith("UNCALIBRATED") for w in seen["warnings"])
+    done = wait_status(client, rid, {"completed"})
+    last = client.get("/api/status").json()["last_run"]
+    assert last["run_id"] == rid and last["calibrated"] is False and last["simulated"] is True
+    assert "converged" in last and last["calibration_id"] is None
+    # 0.1 g of a 5 cm^3 solid: 0.02 g/cm^3, below any solid's density: a warning on the record
+    assert any("outside any solid's" in w for w in done["summary"]["warnings"])
+    assert any("outside any solid's" in w for w in last["warnings"])
+    assert set(done["links"]) == {"trace.csv", "summary.json", "report"}
+    tr = client.get("/api/trace?seconds=600").json()
+    names = {st["name"] for st in client.get("/api/states").json()}
+    # at most 10 points a wall second: this fast simulator leaves few, but each carries its state
+    assert len(tr["state"]) == len(tr["t"]) and set(tr["state"]) <= names and set(tr["state"]) - {"idle"}

@@ -131,6 +131,11 @@ def test_a_run_submitted_from_the_page_completes_and_shows_its_result(page: obje
     assert pg.text_content("#run-id") == rid
     pg.wait_for_function("() => document.querySelector('g.valve[data-valve=inlet]').classList.contains('open')",
                          timeout=20000)  # the schematic follows the valves: the inlet opens to fill
+    running = f"#results tr[data-run='{rid}'] .status.running"
+    pg.wait_for_selector(running, timeout=10000)
+    cells = pg.eval_on_selector_all(f"#results tr[data-run='{rid}'] td", "els => els.map(e => e.textContent)")
+    assert cells[0] == "" and cells[7] == ""  # not finished yet, and no files to link to yet
+    assert "calibration" in pg.text_content("#run-info") and "UNCALIBRATED" in pg.text_content("#run-cal")
     row = f"#results tr[data-run='{rid}'] .status.completed"
     pg.wait_for_selector(row, timeout=100000)
     cells = pg.eval_on_selector_all(f"#results tr[data-run='{rid}'] td", "els => els.map(e => e.textContent)")
@@ -141,7 +146,69 @@ def test_a_run_submitted_from_the_page_completes_and_shows_its_result(page: obje
     assert abs(v - 5.0) <= max(u, 1e-4) + 5e-5  # the clean bench's sample: 5 cm^3 (sim/configs/clean.yaml)
     assert re.match(r"[\d.]+ ± [\d.]+", cells[6])  # density with its uncertainty
     pg.wait_for_selector("#run-info.hidden", state="attached", timeout=5000)
+    assert cells[0].startswith("20")  # finished: a time, now
+    pg.wait_for_function("() => document.getElementById('msg').textContent === ''", timeout=10000)  # cleared
     shot = Path(__file__).parents[1] / "docs" / "dashboard.png"
     if os.environ.get("PYCNOCTL_SCREENSHOT"):
         pg.screenshot(path=str(shot), full_page=True)
+    assert pg.errors == []
+
+
+def test_after_a_reload_the_history_keeps_its_phase_shading(page: object, daemon_url: tuple[str, Path]) -> None:
+    """GET /api/trace serves each point's run state: the history drawn after a reload is shaded by
+    phase, not all 'idle' (the run of the test before is in the last five minutes of instrument time)."""
+    pg = page
+    tr = httpx.get(daemon_url[0] + "/api/trace?seconds=300", timeout=5).json()
+    assert len(tr["state"]) == len(tr["t"]) and set(tr["state"]) - {"idle"}, "no run in the served history"
+    pg.reload()
+    pg.wait_for_selector("#conn.live", timeout=10000)
+    states = pg.evaluate("view.states")
+    assert {"fill", "settle_filled", "settle_expanded"} <= set(states)
+    # and the bands are drawn: a pixel of the fill colour's band on the canvas
+    assert pg.evaluate("Object.keys(STATE_COLOUR).length") > 0
+    assert pg.is_visible("#sim-badge") and "SIMULATED" in pg.text_content("#sim-badge")
+    last = pg.text_content("#last")
+    assert "UNCALIBRATED" in last  # the built-in simulator has no calibration on record
+    assert pg.errors == []
+
+
+def test_the_form_puts_each_error_beside_its_field(page: object, daemon_url: tuple[str, Path]) -> None:
+    pg = page
+    before = len(httpx.get(daemon_url[0] + "/api/runs?limit=100", timeout=5).json()["runs"])
+    pg.fill("#f-sample", "")
+    pg.fill("#f-mass", "19.62 cm3")
+    pg.fill("#f-bulk", "6000 L")
+    pg.click("#btn-submit")
+    assert "ID" in pg.text_content("#e-sample_id")
+    assert "not a mass unit" in pg.text_content("#e-mass")
+    assert pg.text_content("#e-bulk_volume").strip() != ""
+    assert "invalid" in (pg.get_attribute("#f-mass", "class") or "")
+    pg.fill("#f-sample", "TILE-B2")
+    pg.fill("#f-mass", "19620 kg")
+    pg.fill("#f-bulk", "")
+    pg.click("#btn-submit")
+    assert "is the unit right" in pg.text_content("#e-mass") and pg.text_content("#e-sample_id") == ""
+    assert len(httpx.get(daemon_url[0] + "/api/runs?limit=100", timeout=5).json()["runs"]) == before
+    # the daemon refuses the same, naming the field, for a client that skips the form's checks
+    r = httpx.post(daemon_url[0] + "/api/runs", json={"sequence": "quick-demo", "mass": "50 kg"}, timeout=5)
+    assert r.status_code == 422 and r.json()["field"] == "mass"
+    r = httpx.post(daemon_url[0] + "/api/runs", json={"sequence": "quick-demo", "mass": "19 cm3"}, timeout=5)
+    assert r.status_code == 400 and r.json()["field"] == "mass"
+    assert pg.errors == []
+
+
+def test_a_run_removed_from_the_queue_is_cancelled_without_links(page: object,
+                                                                 daemon_url: tuple[str, Path]) -> None:
+    pg = page
+    url = daemon_url[0]
+    assert httpx.post(url + "/api/queue/pause", timeout=5).json()["paused"]
+    body = {"sequence": "quick-demo", "sample_id": "GONE-1"}
+    rid = httpx.post(url + "/api/runs", json=body, timeout=5).json()["run_id"]
+    assert httpx.delete(url + f"/api/queue/{rid}", timeout=5).status_code == 200
+    pg.evaluate("refreshRuns()")
+    pg.wait_for_selector(f"#results tr[data-run='{rid}'] .status.cancelled", timeout=5000)
+    cells = pg.eval_on_selector_all(f"#results tr[data-run='{rid}'] td", "els => els.map(e => e.textContent)")
+    assert cells[0] == "" or cells[0].startswith("20")  # finished: when it was taken off the queue, or nothing
+    assert cells[7] == ""  # no links to files that do not exist
+    httpx.post(url + "/api/queue/resume", timeout=5)
     assert pg.errors == []

@@ -151,11 +151,32 @@ def test_a_version_1_catalog_is_migrated_and_its_calibrations_wait_to_be_bound(t
         INSERT INTO calibrations (id, created, expansion_volume, gas, vc, vr, cov)
             VALUES ('C20261101T000000Z-abcdef', '2026-11-01T00:00:00.000000Z', 'small', 'helium', 1.2e-05,
                     8e-06, '[[1e-16, 0.0], [0.0, 1e-16]]');
+        CREATE TABLE runs (id TEXT PRIMARY KEY, created TEXT NOT NULL, sample_id TEXT, sequence_name TEXT,
+            kind TEXT NOT NULL,
+            status TEXT NOT NULL CHECK (status IN ('queued','running','completed','fault','aborted','interrupted')),
+            started TEXT, ended TEXT, folder TEXT, volume_m3 REAL, u_volume_m3 REAL, density REAL, mass REAL,
+            message TEXT, calibration_id TEXT REFERENCES calibrations (id));
+        CREATE TABLE cycles (run_id TEXT NOT NULL REFERENCES runs (id) ON DELETE CASCADE, idx INTEGER NOT NULL,
+            p1 REAL, p2 REAL, volume REAL, kept INTEGER NOT NULL, PRIMARY KEY (run_id, idx));
+        INSERT INTO runs (id, created, sample_id, kind, status, volume_m3, calibration_id) VALUES
+            ('R20261101T000000Z-aaaaaa', '2026-11-01T01:00:00.000000Z', 'AL-1', 'measure', 'completed', 5e-06,
+             'C20261101T000000Z-abcdef'),
+            ('R20261101T000000Z-bbbbbb', '2026-11-01T02:00:00.000000Z', 'AL-2', 'measure', 'queued', NULL, NULL);
+        INSERT INTO cycles VALUES ('R20261101T000000Z-aaaaaa', 1, 1.3e5, 0.6e5, 5e-06, 1);
     """)
     con.commit()
     con.close()
     cat = Catalog(path)
     assert cat.schema_version() == SCHEMA_VERSION == 2
+    # the runs table was rebuilt to take the status 'cancelled'; rows, cycles and indexes kept
+    assert cat.get_run("R20261101T000000Z-aaaaaa").volume_m3 == 5e-06
+    assert [c.p1 for c in cat.get_cycles("R20261101T000000Z-aaaaaa")] == [1.3e5]
+    cat.update_status("R20261101T000000Z-bbbbbb", "cancelled", "removed from the queue")
+    assert cat.get_run("R20261101T000000Z-bbbbbb").status == "cancelled"
+    assert cat.integrity_check() == "ok"
+    assert cat._read("PRAGMA foreign_key_check") == [] and cat._read("PRAGMA foreign_keys")[0][0] == 1
+    indexes = {r[0] for r in cat._read("SELECT name FROM sqlite_master WHERE type = 'index' AND tbl_name = 'runs'")}
+    assert {"runs_by_created", "runs_by_sample", "runs_by_status"} <= indexes
     rec = cat.get_calibration("C20261101T000000Z-abcdef")
     assert rec is not None and rec.instrument is None and rec.vc == 1.2e-05
     inst = build_sim_instrument(bench())

@@ -71,7 +71,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--since", metavar="TIME", help="created at or after (date or ISO time, UTC)")
     p.add_argument("--until", metavar="TIME", help="created before (date or ISO time, UTC)")
     p.add_argument("--status", action="append", metavar="STATUS",
-                   help="completed, fault, aborted, interrupted, running or queued (repeatable)")
+                   help="completed, fault, aborted, interrupted, cancelled, running or queued (repeatable)")
     p.add_argument("--limit", type=int, default=50, help="at most this many, newest first (default 50)")
     p.add_argument("--before", metavar="RUN_ID", help="only runs listed after this one (the next page)")
     add_units_arg(p)

@@ -122,17 +122,9 @@ def use_latest_calibration(instrument: Instrument, catalog: Catalog, *, expansio
     another's run are a silent bias of percents.  Without one the nominal volumes are used with the
     uncertainty the instrument config states; where it states none, CalibrationRefused."""
     policy = policy or CalibrationPolicy.from_env()
-    rec = catalog.latest_calibration(expansion_volume, gas, instrument.identity)
+    rec, elsewhere = find_calibration(instrument, catalog, expansion_volume=expansion_volume, gas=gas)
     use = CalibrationUse(rec, expansion_volume, gas, policy)
     if rec is None:
-        elsewhere = [c for c in catalog.list_calibrations(expansion_volume=expansion_volume, gas=gas)
-                     if c.instrument != instrument.identity]
-        if instrument.chambers.nominal_u is None:
-            raise CalibrationRefused(
-                f"no calibration of expansion volume {expansion_volume!r} in {gas} on instrument "
-                f"{instrument.identity!r}{_elsewhere(elsewhere)}, and the instrument config states no "
-                "uncertainty of its nominal volumes (chambers: nominal_u): calibrate with pycnoctl calibrate, "
-                "import the volumes with pycnoctl calibrations import, or state nominal_u")
         use.warnings.append(
             f"UNCALIBRATED: no calibration of expansion volume {expansion_volume!r} in {gas} on instrument "
             f"{instrument.identity!r}{_elsewhere(elsewhere)}; computing with the nominal volumes of the "
@@ -163,6 +155,37 @@ def use_latest_calibration(instrument: Instrument, catalog: Catalog, *, expansio
                                 f"{target / 1e5:.3f} bar by {100 * rel:+.1f} % (tolerance "
                                 f"{100 * policy.fill_tolerance:g} %)")
     return use
+
+
+def find_calibration(instrument: Instrument, catalog: Catalog, *, expansion_volume: str, gas: str
+                     ) -> tuple[CalibrationRecord | None, list[CalibrationRecord]]:
+    """The calibration a run would use (changes nothing), and the ones of other instruments that it
+    will not.  CalibrationRefused when there is none and the config states no nominal uncertainty:
+    the daemon asks this at submit time, so such a run is refused before it is queued."""
+    rec = catalog.latest_calibration(expansion_volume, gas, instrument.identity)
+    if rec is not None:
+        return rec, []
+    elsewhere = [c for c in catalog.list_calibrations(expansion_volume=expansion_volume, gas=gas)
+                 if c.instrument != instrument.identity]
+    if instrument.chambers.nominal_u is None:
+        raise CalibrationRefused(
+            f"no calibration of expansion volume {expansion_volume!r} in {gas} on instrument "
+            f"{instrument.identity!r}{_elsewhere(elsewhere)}, and the instrument config states no "
+            "uncertainty of its nominal volumes (chambers: nominal_u): calibrate with pycnoctl calibrate, "
+            "import the volumes with pycnoctl calibrations import, or state nominal_u")
+    return None, elsewhere
+
+
+def calibration_brief(instrument: Instrument, catalog: Catalog, *, expansion_volume: str, gas: str,
+                      now: _dt.datetime | None = None) -> dict[str, Any]:
+    """What a dashboard shows of the calibration a run uses: its id and age, or 'uncalibrated' with
+    the nominal volumes' stated uncertainty."""
+    rec, _ = find_calibration(instrument, catalog, expansion_volume=expansion_volume, gas=gas)
+    if rec is None:
+        return {"id": None, "uncalibrated": True, "nominal_u": instrument.chambers.nominal_u}
+    age = ((now or _dt.datetime.now(_dt.UTC)) - parse_created(rec.created)).total_seconds() if rec.created else None
+    return {"id": rec.id, "uncalibrated": False, "created": rec.created, "gas": rec.gas,
+            "age_days": age / 86400.0 if age is not None else None}
 
 
 def _elsewhere(records: list[CalibrationRecord]) -> str:

@@ -43,6 +43,11 @@ def data_dir(explicit: str | Path | None = None) -> Path:
     return Path(base).absolute() / "pycnoctl"
 
 
+#: g/cm^3: no solid's skeletal density lies outside this (lithium, the least dense solid element, is
+#: 0.534 g/cm^3 and osmium, the densest, 22.59 g/cm^3: handbook values, quoted from memory, with margin)
+SOLID_DENSITY_G_CM3 = (0.3, 23.0)
+
+
 @dataclass
 class RunRequest:
     """What the operator asks for; masses in kg, volumes in m^3."""
@@ -228,6 +233,11 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
         if res.density_kg_m3 is not None:
             out["density_g_cm3"] = res.density_kg_m3 / 1e3
             out["density_u_g_cm3"] = (res.U_density_kg_m3 or 0.0) / 1e3
+            lo, hi = SOLID_DENSITY_G_CM3
+            if not lo <= out["density_g_cm3"] <= hi:
+                out["warnings"].append(
+                    f"density {out['density_g_cm3']:.4g} g/cm3 lies outside any solid's ({lo:g}-{hi:g} g/cm3): "
+                    "check the mass and its unit, and the sample volume")
         if req.bulk_volume and res.volume_m3 > 0:
             from pycnoctl.controller.maths.uncertainty import porosity
 
@@ -298,6 +308,7 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
     try:
         for w in prepared.warnings:
             recorder.event("warning", t0, w)
+            controller.notify("warning", {"t": t0, "message": w})  # the daemon's run view and a live terminal
         controller.start(engine, recorder)
         controller.run_until_done(should_stop, max_duration)
     except Exception as exc:  # outside a tick (the stop check, the clock): the same guarded path

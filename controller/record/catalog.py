@@ -33,16 +33,35 @@ from pathlib import Path
 from typing import Any
 
 SCHEMA_VERSION = 2  # 2: calibrations bound to an instrument; retire and choose them
-STATUSES = ("queued", "running", "completed", "fault", "aborted", "interrupted")
-TERMINAL = frozenset({"completed", "fault", "aborted", "interrupted"})
+STATUSES = ("queued", "running", "completed", "fault", "aborted", "interrupted", "cancelled")
+TERMINAL = frozenset({"completed", "fault", "aborted", "interrupted", "cancelled"})
 _ALLOWED = {
-    "queued": {"running", "aborted", "fault", "interrupted"},
+    # cancelled: taken off the queue before it started (nothing ran, no record exists)
+    "queued": {"running", "aborted", "fault", "interrupted", "cancelled"},
     "running": TERMINAL,
 }
 _RUN_ID = re.compile(r"^R(\d{8})T(\d{6})Z-([0-9a-f]{6})$")
 _CAL_ID = re.compile(r"^C(\d{8})T(\d{6})Z-([0-9a-f]{6})$")
 _FOLDER = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,79}$")
 
+_RUNS_TABLE = """CREATE TABLE IF NOT EXISTS runs (
+    id TEXT PRIMARY KEY,
+    created TEXT NOT NULL,
+    sample_id TEXT,
+    sequence_name TEXT,
+    kind TEXT NOT NULL,
+    status TEXT NOT NULL CHECK (status IN ('queued','running','completed','fault','aborted','interrupted',
+                                           'cancelled')),
+    started TEXT,
+    ended TEXT,
+    folder TEXT,
+    volume_m3 REAL,
+    u_volume_m3 REAL,
+    density REAL,
+    mass REAL,
+    message TEXT,
+    calibration_id TEXT REFERENCES calibrations (id)
+);"""
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL);
 CREATE TABLE IF NOT EXISTS calibrations (
@@ -73,23 +92,7 @@ CREATE TABLE IF NOT EXISTS calibration_choice (
     chosen TEXT NOT NULL,
     PRIMARY KEY (instrument, expansion_volume, gas)
 );
-CREATE TABLE IF NOT EXISTS runs (
-    id TEXT PRIMARY KEY,
-    created TEXT NOT NULL,
-    sample_id TEXT,
-    sequence_name TEXT,
-    kind TEXT NOT NULL,
-    status TEXT NOT NULL CHECK (status IN ('queued','running','completed','fault','aborted','interrupted')),
-    started TEXT,
-    ended TEXT,
-    folder TEXT,
-    volume_m3 REAL,
-    u_volume_m3 REAL,
-    density REAL,
-    mass REAL,
-    message TEXT,
-    calibration_id TEXT REFERENCES calibrations (id)
-);
+""" + _RUNS_TABLE + """
 CREATE INDEX IF NOT EXISTS runs_by_created ON runs (created);
 CREATE INDEX IF NOT EXISTS runs_by_sample ON runs (sample_id, created);
 CREATE INDEX IF NOT EXISTS runs_by_status ON runs (status);
@@ -123,6 +126,21 @@ def _migrate(con: sqlite3.Connection, version: int) -> None:
         for col in ("instrument", "fingerprint", "source", "retired"):
             if col not in have:
                 con.execute(f"ALTER TABLE calibrations ADD COLUMN {col} TEXT")
+        # runs gain the status 'cancelled': SQLite cannot alter a CHECK, so the table is rebuilt
+        # (foreign keys are off while the catalog opens) and its indexes made again
+        sql = con.execute("SELECT sql FROM sqlite_master WHERE type = 'table' AND name = 'runs'").fetchone()
+        if sql is not None and "'cancelled'" not in sql[0]:
+            cols = ", ".join(r[1] for r in con.execute("PRAGMA table_info(runs)"))
+            con.execute(_RUNS_TABLE.replace("CREATE TABLE IF NOT EXISTS runs (", "CREATE TABLE runs__new ("))
+            con.execute(f"INSERT INTO runs__new ({cols}) SELECT {cols} FROM runs")
+            con.execute("DROP TABLE runs")
+            con.execute("ALTER TABLE runs__new RENAME TO runs")
+            for stmt in _SCHEMA.split(";"):
+                if "CREATE INDEX" in stmt and " ON runs " in stmt:
+                    con.execute(stmt)
+            bad = con.execute("PRAGMA foreign_key_check").fetchall()
+            if bad:
+                raise CatalogError(f"catalog migration: {len(bad)} rows break a foreign key")
     con.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION,))
 
 
@@ -333,8 +351,7 @@ class Catalog:
         if str(mode).lower() != "wal":
             raise CatalogError(f"{self.path}: WAL journal mode refused (got {mode!r})")
         self._con.execute("PRAGMA synchronous=FULL")
-        self._con.execute("PRAGMA foreign_keys=ON")
-        self._con.execute("PRAGMA busy_timeout=5000")
+        self._con.execute("PRAGMA busy_timeout=5000")  # foreign keys go on below, once a migration is done
         with self._write() as con:
             for stmt in _SCHEMA.split(";"):
                 if stmt.strip():
@@ -348,6 +365,7 @@ class Catalog:
                 )
             elif row[0] < SCHEMA_VERSION:
                 _migrate(con, int(row[0]))
+        self._con.execute("PRAGMA foreign_keys=ON")
 
     @classmethod
     def for_reading(cls, path: Path | str) -> Catalog:

@@ -80,6 +80,14 @@ class Controller:
         instrument.safe_state()
 
     # ----- events -----------------------------------------------------------------------------
+    def notify(self, kind: str, data: dict[str, Any]) -> None:
+        """Tell the listeners only (what the record already holds: a run's warnings from before it started)."""
+        for listener in list(self.listeners):
+            try:
+                listener(kind, data)
+            except Exception:  # a broken viewer must never stop the loop
+                log.exception("listener failed on %s", kind)
+
     def emit(self, kind: str, data: dict[str, Any]) -> None:
         """Tell the record and every listener (terminal view, daemon stream)."""
         if "t" not in data and self.last is not None:

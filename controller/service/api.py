@@ -127,7 +127,7 @@ def status(d: DaemonDep) -> dict[str, Any]:
 def trace(d: DaemonDep, seconds: Annotated[float, Query(gt=0, allow_inf_nan=False,
                                                         description="how far back, in s")] = 600.0) -> s.Trace:
     pts = d.recent_trace(seconds)
-    return s.Trace(t=[p[0] for p in pts], gauge_pa=[p[1] for p in pts])
+    return s.Trace(t=[p[0] for p in pts], gauge_pa=[p[1] for p in pts], state=[p[2] for p in pts])
 
 
 @router.get("/api/states", response_model=list[s.StateInfo], responses=_errors(),
@@ -184,20 +184,24 @@ def sequences(d: DaemonDep) -> s.Sequences:
 def submit(req: s.RunRequest, d: DaemonDep, response: Response) -> Any:
     from pycnoctl.controller.domain.units import UnitError, parse_mass, parse_volume
 
-    try:
-        mass = parse_mass(req.mass) if req.mass is not None else None
-        u_mass = parse_mass(req.u_mass) if req.u_mass is not None else 1e-7
-        bulk = parse_volume(req.bulk_volume) if req.bulk_volume is not None else None
-        u_bulk = parse_volume(req.u_bulk_volume) if req.u_bulk_volume is not None else 0.0
-    except (UnitError, ValueError, TypeError) as exc:
-        return _error(400, f"mass/u_mass/bulk_volume/u_bulk_volume: {exc}")
+    values: dict[str, float | None] = {}
+    for name, parse, default in (("mass", parse_mass, None), ("u_mass", parse_mass, 1e-7),
+                                 ("bulk_volume", parse_volume, None), ("u_bulk_volume", parse_volume, 0.0)):
+        text = getattr(req, name)
+        try:  # one field at a time, so the refusal names the field a form puts it beside
+            values[name] = parse(text) if text is not None else default
+        except (UnitError, ValueError, TypeError) as exc:
+            return _error(400, f"{name}: {exc}", field=name)
+    mass, bulk = values["mass"], values["bulk_volume"]
+    u_mass, u_bulk = float(values["u_mass"] or 0.0), float(values["u_bulk_volume"] or 0.0)
     try:
         out = d.submit(sequence=req.sequence, sequence_text=req.sequence_text, sample_id=req.sample_id.strip(),
                        mass=mass, u_mass=u_mass, bulk_volume=bulk, u_bulk_volume=u_bulk,
                        operator=req.operator.strip(),
                        expansion_volume=req.expansion_volume, note=req.note)
     except SubmitError as exc:
-        return _error(exc.status, str(exc), problems=exc.problems)
+        extra: dict[str, Any] = {"field": exc.field} if exc.field else {}
+        return _error(exc.status, str(exc), problems=exc.problems, **extra)
     response.headers["location"] = f"/api/runs/{out['run_id']}"
     return out
 
@@ -231,7 +235,11 @@ def get_run(run_id: RunId, d: DaemonDep) -> Any:
     if summary is not None and summary.exists():
         with contextlib.suppress(OSError, ValueError, RecursionError):
             out["summary"] = json.loads(summary.read_text(encoding="utf-8")).get("results", {})
-    out["links"] = {k: f"/api/runs/{row.id}/{k}" for k in ("trace.csv", "summary.json", "report")}
+    # links only to what exists: a run cancelled in the queue, or refused before it started, has no record
+    have = {"trace.csv": folder is not None and (folder / "trace.csv").exists(),
+            "summary.json": summary is not None and summary.exists()}
+    have["report"] = have["summary.json"]
+    out["links"] = {k: f"/api/runs/{row.id}/{k}" for k, ok in have.items() if ok}
     return out
 
 
@@ -423,8 +431,10 @@ async def _invalid(request: Request, exc: Exception) -> Response:
     problems = [f"{'.'.join(str(p) for p in e.get('loc', ()))}: {e.get('msg', '')}"[:300] for e in errs[:20]]
     if any(e.get("type") == "json_invalid" for e in errs):
         return _error(400, "the body is not valid JSON", problems=problems)
+    loc = tuple(errs[0].get("loc", ())) if errs else ()
+    extra = {"field": str(loc[1])} if len(loc) == 2 and loc[0] == "body" else {}  # a form puts it beside the field
     return _error(400, "the request does not match the API schema" + (f": {problems[0]}" if problems else ""),
-                  problems=problems)
+                  problems=problems, **extra)
 
 
 async def _http_error(request: Request, exc: Exception) -> Response:

@@ -36,6 +36,7 @@ from pathlib import Path
 from typing import Any
 
 from pycnoctl.controller.domain.yamlio import ConfigError, Problem
+from pycnoctl.controller.jobs.calibration_use import CalibrationRefused, calibration_brief, find_calibration
 from pycnoctl.controller.jobs.measurement import RunFault, RunRequest, execute, prepare
 from pycnoctl.controller.record.catalog import Catalog, is_run_id
 from pycnoctl.controller.record.storagefault import StorageFault
@@ -50,13 +51,21 @@ SAMPLE_EVENT_INTERVAL = 0.1  # s of wall time between sample events on the bus (
 TRACE_POINTS = 3000  # decimated (t, gauge) points kept for a dashboard that connects late
 
 
+#: What a specimen can weigh and occupy in a home-built pycnometer (common practice: cells of about
+#: 1-500 cm^3): a value outside is a unit mistake, refused with the field named.
+MASS_RANGE = (1e-6, 10.0)  # kg: 1 mg to 10 kg
+BULK_RANGE = (1e-8, 1e-3)  # m^3: 0.01 cm^3 to 1 litre
+
+
 class SubmitError(Exception):
     """A run request the daemon refuses; ``problems`` lists file:line:col lines for sequence text."""
 
-    def __init__(self, message: str, problems: list[str] | None = None, status: int = 422) -> None:
+    def __init__(self, message: str, problems: list[str] | None = None, status: int = 422,
+                 field: str | None = None) -> None:
         super().__init__(message)
         self.problems = problems or []
         self.status = status
+        self.field = field  # the request field at fault, so a form can put the message beside it
 
 
 # ----------------------------------------------------------------------------- systemd notify
@@ -332,6 +341,8 @@ def describe_instrument(instrument: Instrument) -> dict[str, Any]:
         },
         "thermometer": instrument.thermometer is not None,
         "barometer": instrument.barometer is not None,
+        "identity": instrument.identity,
+        "simulated": instrument.simulated,
     }
 
 
@@ -356,7 +367,9 @@ class Daemon:
         self.bus = EventBus()
         self.stats = LoopStats()
         self.description = describe_instrument(instrument)
-        self.trace: deque[tuple[float, float | None]] = deque(maxlen=TRACE_POINTS)
+        # (t, gauge Pa, run state) at the sample events' pace: a dashboard that connects late draws the
+        # history with its phase shading from it
+        self.trace: deque[tuple[float, float | None, str]] = deque(maxlen=TRACE_POINTS)
         self._lock = threading.Lock()
         self._commands: deque[_Command] = deque()
         self._wake = threading.Event()
@@ -593,15 +606,23 @@ class Daemon:
         elif len(sequence_text.encode("utf-8")) > MAX_SEQUENCE_TEXT:  # type: ignore[union-attr]
             raise SubmitError(f"sequence text over {MAX_SEQUENCE_TEXT} bytes", status=413)
         if mass is not None and not (math.isfinite(mass) and mass > 0):
-            raise SubmitError("mass must be positive")
+            raise SubmitError("mass must be positive", field="mass")
+        if mass is not None and not MASS_RANGE[0] <= mass <= MASS_RANGE[1]:
+            raise SubmitError(f"mass {mass * 1e3:.6g} g is not a specimen a pycnometer cell holds (give it between "
+                              f"{MASS_RANGE[0] * 1e3:g} g and {MASS_RANGE[1] * 1e3:g} g; is the unit right?)",
+                              field="mass")
         if bulk_volume is not None and not (math.isfinite(bulk_volume) and bulk_volume > 0):
-            raise SubmitError("bulk volume must be positive")
+            raise SubmitError("bulk volume must be positive", field="bulk_volume")
+        if bulk_volume is not None and not BULK_RANGE[0] <= bulk_volume <= BULK_RANGE[1]:
+            raise SubmitError(f"bulk volume {bulk_volume * 1e6:.6g} cm3 is not a specimen's (give it between "
+                              f"{BULK_RANGE[0] * 1e6:g} and {BULK_RANGE[1] * 1e6:g} cm3; is the unit right?)",
+                              field="bulk_volume")
         if not (math.isfinite(u_mass) and u_mass >= 0):
-            raise SubmitError("mass uncertainty must be zero or positive")
+            raise SubmitError("mass uncertainty must be zero or positive", field="u_mass")
         if not (math.isfinite(u_bulk_volume) and u_bulk_volume >= 0) or (
                 u_bulk_volume and (bulk_volume is None or u_bulk_volume >= 0.5 * bulk_volume)):
             raise SubmitError("bulk volume uncertainty must be zero or positive, below half the bulk volume, "
-                              "and given with a bulk volume")
+                              "and given with a bulk volume", field="u_bulk_volume")
         request = {"sequence": sequence, "sequence_text": sequence_text, "sample_id": sample_id, "mass": mass,
                    "u_mass": u_mass, "bulk_volume": bulk_volume, "u_bulk_volume": u_bulk_volume,
                    "operator": operator,
@@ -641,7 +662,11 @@ class Daemon:
                         operator=request.get("operator") or "", expansion_volume=request.get("expansion_volume"),
                         note=request.get("note") or "")
         try:
-            return prepare(rr, self.instrument, self.catalog)
+            prepared = prepare(rr, self.instrument, self.catalog)
+            if prepared.sequence.kind == "measure":  # no calibration and no stated nominal u: refused now
+                find_calibration(self.instrument, self.catalog, expansion_volume=prepared.expansion_volume,
+                                 gas=prepared.sequence.gas)
+            return prepared
         except (ConfigError, ValueError, RecursionError) as exc:
             if request.get("sequence") is None:  # submitted text that will never run leaves no file behind
                 with contextlib.suppress(OSError):
@@ -663,11 +688,11 @@ class Daemon:
         return out
 
     def remove_queued(self, run_id: str) -> bool:
-        """Take a queued run off the queue (it becomes 'aborted' in the catalog)."""
+        """Take a queued run off the queue (it becomes 'cancelled' in the catalog: it never started)."""
         if not self.catalog.queue_remove(run_id):
             return False
         with contextlib.suppress(Exception):
-            self.catalog.update_status(run_id, "aborted", "removed from the queue by the operator")
+            self.catalog.update_status(run_id, "cancelled", "removed from the queue by the operator before it started")
         log.info("run %s removed from the queue", run_id, extra={"data": {"event": "dequeued", "run_id": run_id}})
         self._refresh_queue_len()
         self.bus.publish("queue", self._queue_event())
@@ -710,7 +735,8 @@ class Daemon:
                    "sequence": seq.name, "kind": seq.kind, "expansion_volume": prepared.expansion_volume,
                    "cycles_total": seq.cycles.count if seq.expands else 0, "cycle": 0, "cycles": [],
                    "expected_s": estimate_duration(seq), "t_start": self.instrument.clock.now(),
-                   "started_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()), "purge_pulse": None}
+                   "started_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()), "purge_pulse": None,
+                   "warnings": [], "calibration": self._calibration_brief(prepared)}  # warnings: as they come
         self._set(current_run=current, activity="running")
         self.bus.publish("run_started", {k: v for k, v in current.items() if k != "cycles"})
         self.bus.publish("queue", self._queue_event())
@@ -719,6 +745,12 @@ class Daemon:
         try:
             summary = execute(prepared, self.controller, root=self.data / "runs", catalog=self.catalog,
                               run_id=rid, should_stop=self._should_stop)
+        except CalibrationRefused as exc:  # the calibrations changed since it was queued; nothing moved
+            log.error("run %s refused: %s", rid, exc, extra={"data": {"event": "not_started", "run_id": rid}})
+            self.bus.publish("run_finished", {"run_id": rid, "status": "aborted", "message": f"refused: {exc}"})
+            self._set(activity="idle")
+            self.pause(f"run {rid} refused: {exc}")
+            return
         except (StorageFault, RunFault) as exc:  # safe state reached, row closed where it could be written:
             # the loop goes on (the interlocks watch while idle); the queue waits for the operator
             log.error("run %s not stored: %s", rid, exc, extra={"data": {"event": "not_stored", "run_id": rid}})
@@ -741,6 +773,17 @@ class Daemon:
             self.pause(f"run {rid} ended {status}" + (f" ({brief['message']})" if brief.get("message") else "")
                        + "; check the instrument, then resume the queue")
 
+    def _calibration_brief(self, prepared: Any) -> dict[str, Any] | None:
+        """The calibration the run will compute with (id and age, or uncalibrated); None for a run that
+        computes no volume."""
+        if prepared.sequence.kind != "measure":
+            return None
+        try:
+            return calibration_brief(self.instrument, self.catalog, expansion_volume=prepared.expansion_volume,
+                                     gas=prepared.sequence.gas)
+        except CalibrationRefused:
+            return None  # execute() refuses it with the reason
+
     def _should_stop(self) -> bool:
         # Called by the tick loop on every tick of a run: answer waiting commands (a reset is refused
         # while running) and honour abort / shutdown.
@@ -762,6 +805,8 @@ class Daemon:
                 cur["cycle"] = data.get("cycle", cur["cycle"])
             elif kind == "purge_pulse" and cur is not None:
                 cur["purge_pulse"] = f"{data.get('pulse')} of {data.get('of')}"
+            elif kind == "warning" and cur is not None and data.get("message"):
+                cur["warnings"] = [*cur.get("warnings", []), str(data["message"])]
         if kind == "cycle_done":
             brief = {"cycle": data.get("cycle"), **self._cycle_brief(data)}
             with self._lock:
@@ -807,7 +852,7 @@ class Daemon:
         self._ping_watchdog()
         if wall >= self._next_sample_pub:  # a schedule, not a gap: <= 10/s on average, none lost to jitter
             self._next_sample_pub = max(self._next_sample_pub + SAMPLE_EVENT_INTERVAL, wall - SAMPLE_EVENT_INTERVAL / 2)
-            self.trace.append((float(t) if t is not None else math.nan, gauge))
+            self.trace.append((float(t) if t is not None else math.nan, gauge, str(data.get("state") or "idle")))
             self.bus.publish("sample", {"t": t, "gauge_pa": gauge, "valid": data.get("valid"),
                                         "state": data.get("state"), "valves": dict(data.get("valves") or {})})
 
@@ -841,7 +886,7 @@ class Daemon:
         snap["events_seq"] = self.bus.last_seq
         return snap
 
-    def recent_trace(self, seconds: float | None = None) -> list[tuple[float, float | None]]:
+    def recent_trace(self, seconds: float | None = None) -> list[tuple[float, float | None, str]]:
         pts = list(self.trace)
         if seconds is not None and pts:
             t_end = pts[-1][0]
@@ -858,6 +903,12 @@ def brief_result(summary: dict[str, Any]) -> dict[str, Any]:
     out["sequence"] = (summary.get("sequence") or {}).get("name")
     out["message"] = (summary.get("fault") or {}).get("message") or summary.get("abort_reason")
     out["warnings"] = list(summary.get("warnings") or [])
+    out["converged"] = summary.get("converged")
+    out["simulated"] = summary.get("simulated")
+    out["calibrated"] = summary.get("calibrated")
+    cal = summary.get("calibration") or {}
+    out["calibration_id"] = cal.get("record_id")
+    out["calibration_created"] = (cal.get("record") or {}).get("created")
     return _clean(out)
 
 

@@ -34,7 +34,7 @@ _QTY = r"^\s*(\d{1,9}(\.\d{0,9})?|\.\d{1,9})([eE][-+]?\d{1,2})?\s*{units}\s*$"
 MASS_PATTERN = _QTY.replace("{units}", "(mg|g|kg)?")
 VOLUME_PATTERN = _QTY.replace("{units}", r"(mm\^3|cm\^3|mL|ml|m\^3)?")
 
-RunStatus = Literal["queued", "running", "completed", "fault", "aborted", "interrupted"]
+RunStatus = Literal["queued", "running", "completed", "fault", "aborted", "interrupted", "cancelled"]
 assert set(RunStatus.__args__) == set(STATUSES)  # type: ignore[attr-defined]  # one list of statuses
 
 Text200 = Annotated[str, StringConstraints(max_length=200)]
@@ -173,6 +173,7 @@ class Status(BaseModel):
 class Trace(BaseModel):
     t: list[float | None]
     gauge_pa: list[float | None]
+    state: list[str] = Field(description="the run state at each point (GET /api/states names them)")
 
 
 class Sequences(BaseModel):

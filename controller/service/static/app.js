@@ -28,7 +28,66 @@ async function api(method, path, body) {
   return data;
 }
 
-function say(text, ok) { const m = $("msg"); m.textContent = text; m.className = "msg " + (ok ? "ok" : "err"); }
+let sayTimer = null;
+function say(text, ok) {  // a confirmation clears itself; an error stays until the next action
+  const m = $("msg"); m.textContent = text; m.className = "msg " + (ok ? "ok" : "err");
+  clearTimeout(sayTimer);
+  if (ok) sayTimer = setTimeout(() => { if (m.textContent === text) { m.textContent = ""; m.className = "msg"; } }, 6000);
+}
+
+// Pressures in messages from the daemon are in Pa (SI); people read bar here, as on the trace.
+function inBar(text) {
+  return String(text ?? "")
+    .replace(/(-?\d+(?:\.\d+)?(?:e[+-]?\d+)?) Pa\/s/g, (m, v) => `${(Number(v) / 100).toPrecision(4)} mbar/s`)
+    .replace(/(-?\d+(?:\.\d+)?(?:e[+-]?\d+)?) Pa\b/g, (m, v) => `${fmtBar(Number(v), 4)} bar`);
+}
+
+function calText(cal) {
+  if (!cal) return "–";
+  if (cal.uncalibrated) return `UNCALIBRATED: nominal volumes` + (cal.nominal_u ? ` (±${(100 * cal.nominal_u).toPrecision(2)} %, k = 1)` : "");
+  const age = cal.age_days == null ? "" : cal.age_days < 1 ? `, ${(24 * cal.age_days).toFixed(1)} h old` : `, ${cal.age_days.toFixed(1)} days old`;
+  return `${cal.id}${age}`;
+}
+
+function warningsHtml(list) { return (list || []).map((w) => `<li>${esc(inBar(w))}</li>`).join(""); }
+
+// ----------------------------------------------------------------------------- form checks
+// What a specimen can weigh and occupy (common practice for pycnometer cells of about 1-500 cm³); the
+// daemon refuses the same, naming the field, so a script gets the same answer as the form.
+const MASS_G = { mg: 1e-3, g: 1, kg: 1e3 };
+const VOLUME_CM3 = { mm3: 1e-3, "mm³": 1e-3, cm3: 1, "cm³": 1, "cm^3": 1, ml: 1, mL: 1, cc: 1 };
+function quantity(text, units, fallback) {
+  const m = String(text).trim().match(/^([0-9]*\.?[0-9]+(?:[eE][+-]?[0-9]+)?)\s*([A-Za-z³^0-9]*)$/);
+  if (!m) return null;
+  const unit = m[2] || fallback;
+  if (!(unit in units)) return { bad: unit };
+  return { value: Number(m[1]) * units[unit] };
+}
+function checkForm() {
+  const errs = {};
+  if (!$("f-sample").value.trim()) errs.sample_id = "give the specimen's ID";
+  const mass = $("f-mass").value.trim();
+  if (mass) {
+    const q = quantity(mass, MASS_G, "g");
+    if (!q) errs.mass = "a number and a mass unit, e.g. 19.62 g";
+    else if (q.bad !== undefined) errs.mass = `"${q.bad}" is not a mass unit (mg, g or kg)`;
+    else if (!(q.value >= 1e-3 && q.value <= 1e4)) errs.mass = "between 1 mg and 10 kg: is the unit right?";
+  }
+  const bulk = $("f-bulk").value.trim();
+  if (bulk) {
+    const q = quantity(bulk, VOLUME_CM3, "cm3");
+    if (!q) errs.bulk_volume = "a number and a volume unit, e.g. 6 cm3";
+    else if (q.bad !== undefined) errs.bulk_volume = `"${q.bad}" is not a volume unit (mm3, cm3, mL)`;
+    else if (!(q.value >= 0.01 && q.value <= 1000)) errs.bulk_volume = "between 0.01 and 1000 cm³: is the unit right?";
+  }
+  return errs;
+}
+function showFieldErrors(errs) {
+  for (const [field, input] of [["sample_id", "f-sample"], ["mass", "f-mass"], ["bulk_volume", "f-bulk"], ["operator", "f-operator"]]) {
+    $(`e-${field}`).textContent = errs[field] || "";
+    $(input).classList.toggle("invalid", !!errs[field]);
+  }
+}
 
 // ----------------------------------------------------------------------------- schematic
 function el(tag, attrs, parent, text) {
@@ -215,6 +274,7 @@ function renderStatus(s) {
   view.status = s;
   if (!view.desc || JSON.stringify(view.desc) !== JSON.stringify(s.instrument)) { view.desc = s.instrument; drawSchematic(s.instrument); }
   $("inst-name").textContent = s.instrument.name;
+  $("sim-badge").classList.toggle("hidden", !s.instrument.simulated);
   let act = s.activity;
   if (act === "idle" && s.queue.paused) act = "paused";
   if (s.interlock.latched) act = "tripped";
@@ -226,7 +286,7 @@ function renderStatus(s) {
   const b = $("banner");
   if (s.interlock.latched) {
     b.className = "banner trip";
-    b.textContent = `Interlock latched — ${s.interlock.kind}: ${s.interlock.message}. The system is in the safe state; reset once the cause is cleared.`;
+    b.textContent = `Interlock latched — ${s.interlock.kind}: ${inBar(s.interlock.message)}. The system is in the safe state; reset once the cause is cleared.`;
   } else if (s.queue.paused && s.queue.paused_reason) {
     b.className = "banner paused"; b.textContent = `Queue paused — ${s.queue.paused_reason}`;
   } else { b.className = "banner hidden"; }
@@ -256,7 +316,14 @@ function renderLast(last) {
   if (last.volume_cm3 != null) html += `<div class="big">${pm(last.volume_cm3, last.volume_u_cm3, 4)} cm³</div>`;
   if (last.density_g_cm3 != null) html += `<div class="big">${pm(last.density_g_cm3, last.density_u_g_cm3, 4)} g/cm³</div>`;
   if (last.volume_cm3 != null) html += `<div class="cap">expanded uncertainty, k = ${last.k ?? 2}</div>`;
-  if (last.message) html += `<div class="cap">${esc(last.message)}</div>`;
+  if (last.message) html += `<div class="cap">${esc(inBar(last.message))}</div>`;
+  if (last.volume_cm3 != null) {
+    const conv = { true: "converged", false: "NOT converged" }[String(last.converged)] || "convergence not judged";
+    const cal = last.calibrated === false ? "UNCALIBRATED (nominal volumes)" : last.calibration_id
+      ? `calibration ${esc(last.calibration_id)}` : "";
+    html += `<div class="cap">${esc(conv)}${cal ? " · " + cal : ""}${last.simulated ? " · SIMULATED" : ""}</div>`;
+  }
+  if ((last.warnings || []).length) html += `<ul class="warnings">${warningsHtml(last.warnings)}</ul>`;
   box.innerHTML = html;
 }
 
@@ -265,6 +332,8 @@ function renderRun(cur) {
   $("run-sample").textContent = cur.sample_id || "–";
   $("run-seq").textContent = `${cur.sequence} (${cur.expansion_volume} volume)`;
   $("run-cycle").textContent = cur.cycles_total ? `${cur.cycle} of ${cur.cycles_total}` + (cur.purge_pulse && !cur.cycle ? ` · purge ${cur.purge_pulse}` : "") : (cur.purge_pulse ? `purge ${cur.purge_pulse}` : "–");
+  $("run-cal").textContent = calText(cur.calibration);
+  $("run-warnings").innerHTML = warningsHtml(cur.warnings);
   const done = (cur.cycles || []).length, total = cur.cycles_total || 1;
   $("run-bar").style.width = `${Math.min(100, (100 * done) / total)}%`;
   const body = $("run-cycles").querySelector("tbody");
@@ -299,7 +368,10 @@ async function refreshRuns() {
   runs = runs.filter((r) => r.status !== "queued");
   for (const r of runs) {
     if (r.status !== "running" && !view.details[r.run_id]) {
-      try { view.details[r.run_id] = (await api("GET", `/api/runs/${r.run_id}`)).summary || {}; } catch (e) { view.details[r.run_id] = {}; }
+      try {
+        const one = await api("GET", `/api/runs/${r.run_id}`);
+        view.details[r.run_id] = { ...(one.summary || {}), links: one.links || {} };
+      } catch (e) { view.details[r.run_id] = { links: {} }; }
     }
   }
   const body = $("results").querySelector("tbody");
@@ -307,8 +379,10 @@ async function refreshRuns() {
     const d = view.details[r.run_id] || {};
     const vol = r.volume_cm3 == null ? "–" : pm(r.volume_cm3, r.volume_u_cm3, 4);
     const den = d.density_g_cm3 == null ? "–" : pm(d.density_g_cm3, d.density_u_g_cm3, 4);
-    const when = (r.ended || r.started || r.created || "").replace("T", " ").slice(0, 19);
-    const files = r.status === "running" ? "" : `<a href="/api/runs/${r.run_id}/trace.csv">trace</a> · <a href="/api/runs/${r.run_id}/summary.json">summary</a> · <a href="/api/runs/${r.run_id}/report">report</a>`;
+    // "finished" is when it finished: empty while it runs
+    const when = r.status === "running" ? "" : (r.ended || "").replace("T", " ").slice(0, 19);
+    const names = { "trace.csv": "trace", "summary.json": "summary", report: "report" };
+    const files = Object.entries(d.links || {}).map(([k, href]) => `<a href="${esc(href)}">${names[k] || esc(k)}</a>`).join(" · ");
     const why = r.message ? ` title="${esc(r.message)}"` : "";
     return `<tr data-run="${esc(r.run_id)}"><td>${esc(when)}</td><td>${esc(r.run_id)}</td><td>${esc(r.sample_id || "–")}</td><td>${esc(r.sequence)}</td>` +
       `<td><span class="status ${esc(r.status)}"${why}>${esc(r.status)}</span></td><td class="num">${vol}</td><td class="num">${den}</td><td>${files}</td></tr>`;
@@ -342,7 +416,7 @@ async function init() {
   await refreshStatus();
   try {
     const tr = await api("GET", "/api/trace?seconds=" + WINDOW_S);
-    tr.t.forEach((t, i) => addPoint(t, tr.gauge_pa[i], "idle"));
+    tr.t.forEach((t, i) => addPoint(t, tr.gauge_pa[i], (tr.state || [])[i] || "idle"));
   } catch (e) { /* empty trace */ }
   try {
     const seqs = (await api("GET", "/api/sequences")).sequences;
@@ -355,14 +429,22 @@ async function init() {
   setInterval(refreshStatus, 5000);
   $("submit-form").addEventListener("submit", async (ev) => {
     ev.preventDefault();
-    const body = { sequence: $("f-seq").value, sample_id: $("f-sample").value, operator: $("f-operator").value };
+    const errs = checkForm();
+    showFieldErrors(errs);
+    if (Object.keys(errs).length) { say("Not queued: see the marked fields."); return; }
+    const body = { sequence: $("f-seq").value, sample_id: $("f-sample").value.trim(), operator: $("f-operator").value };
     if ($("f-mass").value.trim()) body.mass = $("f-mass").value.trim();
     if ($("f-bulk").value.trim()) body.bulk_volume = $("f-bulk").value.trim();
     try {
       const out = await api("POST", "/api/runs", body);
       say(`Queued ${out.run_id}.`, true); $("f-sample").value = ""; $("f-mass").value = ""; $("f-bulk").value = "";
+      showFieldErrors({});
       refreshQueue();
-    } catch (e) { say(e.message + (e.data && e.data.problems && e.data.problems.length ? ": " + e.data.problems.join("; ") : "")); }
+    } catch (e) {
+      const field = e.data && e.data.field;
+      if (field && $(`e-${field}`)) { showFieldErrors({ [field]: e.message }); say("Not queued: see the marked field."); }
+      else say(e.message + (e.data && e.data.problems && e.data.problems.length ? ": " + e.data.problems.join("; ") : ""));
+    }
   });
   $("btn-abort").onclick = async () => {
     if (!confirm("Abort the active run? The instrument goes to the safe state and the queue pauses.")) return;
