@@ -201,10 +201,15 @@ def _paced_limits(limits: Limits, realtime: bool, speed: float) -> Limits:
 
 
 def build_sim_instrument(
-    config: SimConfig | str | Path | None = None, *, realtime: bool = False, speed: float = 1.0
+    config: SimConfig | str | Path | None = None, *, realtime: bool = False, speed: float = 1.0,
+    seed: int | None = None,
 ) -> Instrument:
-    """An Instrument over a fresh simulator bench; ``extras['sim']`` is the bench (the truth)."""
+    """An Instrument over a fresh simulator bench; ``extras['sim']`` is the bench (the truth).
+
+    ``seed`` pins the noise realisation (else the config's, else a fresh one: see sim.bench.fresh_seed)."""
     cfg = config if isinstance(config, SimConfig) else load_sim_config(config)
+    if seed is not None:
+        cfg = cfg.model_copy(update={"seed": int(seed)})
     bench = SimBench(cfg, SimClock(realtime=realtime, speed=speed))
     ins = cfg.instruments
     roles = _roles(cfg)

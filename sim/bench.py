@@ -15,6 +15,8 @@ from __future__ import annotations
 
 import math
 import operator
+import os
+import secrets
 import threading
 from collections.abc import Mapping
 from pathlib import Path
@@ -31,6 +33,20 @@ from pycnoctl.sim.sensors import SensorModel
 
 SUPPLY, AMBIENT = 0, 1
 
+
+
+#: environment variable that pins the seed of every simulator whose config gives none (the test suite
+#: sets it, so its figures do not change from run to run; nobody else needs it: use --seed)
+SEED_ENV = "PYCNOCTL_SIM_SEED"
+
+
+def fresh_seed() -> int:
+    """A new noise realisation for each simulated instrument, unless the environment pins one.
+
+    Why: a simulator that gives bit-identical readings run after run makes every repeatability figure
+    measured on it zero; the seed actually used is recorded with each run, so any run can be replayed."""
+    pinned = os.environ.get(SEED_ENV)
+    return int(pinned) if pinned else secrets.randbits(32)
 
 class SensorSample(NamedTuple):
     """What a sensor delivers: time, value (NaN if none) and the mode it is in.
@@ -130,7 +146,8 @@ class SimBench:
 
     def _build_sensors(self) -> None:
         cfg = self.config.instruments
-        seeds = np.random.SeedSequence(self.config.seed).spawn(3)
+        self.seed = fresh_seed() if self.config.seed is None else int(self.config.seed)
+        seeds = np.random.SeedSequence(self.seed).spawn(3)
         p = cfg.pressure
         span = p.full_scale - p.range_min
         self.p_low, self.p_high = p.range_min - 0.05 * span, p.full_scale + 0.05 * span

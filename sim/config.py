@@ -258,7 +258,7 @@ class Solver(_Strict):
 class SimConfig(_Strict):
     name: str = "simulated pycnometer"
     description: str = ""
-    seed: int = 0
+    seed: int | None = None  # the noise realisation; None: a fresh one for every simulated instrument
     gas: str = "helium"
     cell: str = "cell"  # which volume is the sample cell
     lab: Lab = Lab()

@@ -17,6 +17,13 @@ def _own_data_folder(tmp_path_factory: pytest.TempPathFactory, monkeypatch: pyte
     monkeypatch.setenv("XDG_DATA_HOME", str(tmp_path_factory.mktemp("xdg-data")))
 
 
+@pytest.fixture(autouse=True)
+def _pinned_simulator_noise(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The simulator draws fresh noise for every instrument unless pinned; the suite pins it, so its
+    figures are the same on every run (tests/test_sim_seed.py checks the fresh draws themselves)."""
+    monkeypatch.setenv("PYCNOCTL_SIM_SEED", "1")
+
+
 def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
     if config.getoption("--hardware"):
         return

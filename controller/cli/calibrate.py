@@ -79,7 +79,9 @@ def _calibrate(args: argparse.Namespace, spheres: list[Any], say: Any) -> int:
 
     instrument = None
     if args.sim is not None and not args.instrument:
-        loader: Any = SimCellLoader(args.sim or None, announce=say)
+        from pycnoctl.controller.cli.common import sim_seed
+
+        loader: Any = SimCellLoader(args.sim or None, announce=say, seed=sim_seed(args))
     else:
         check_before_opening(args, args.sequence, one_volume=False)  # it runs each volume in turn
         instrument = open_instrument(args)

@@ -96,7 +96,9 @@ def main(args: argparse.Namespace) -> int:
     from pycnoctl.drivers.simulated import build_sim_instrument
 
     def make() -> Instrument:
-        return build_sim_instrument(args.sim or None)
+        from pycnoctl.controller.cli.common import sim_seed
+
+        return build_sim_instrument(args.sim or None, seed=sim_seed(args))
 
     factory: Callable[[], Instrument] | None = make
     where = str(args.sim) if args.sim else "built-in clean simulator"

@@ -26,6 +26,9 @@ def add_instrument_args(p: argparse.ArgumentParser, *, realtime: bool = True, al
     g.add_argument("--instrument", metavar="CONFIG", help="instrument config (YAML) describing the hardware")
     g.add_argument("--sim", nargs="?", const="", metavar="SIMCONFIG",
                    help="run on the gas-system simulator (its clean default instrument without a file)")
+    p.add_argument("--seed", type=int, metavar="N",
+                   help="with --sim: pin the simulator's noise (default: a fresh realisation every time; each "
+                        "run records the seed it had, so --seed with it replays that run)")
     if always_realtime:
         p.add_argument("--realtime", action="store_true",
                        help="with --sim: the simulator runs in real time (always so for the service; accepted "
@@ -49,6 +52,14 @@ def sim_pace(args: argparse.Namespace) -> tuple[bool, float]:
     if speed is not None and not (0 < speed <= 1000):
         raise UsageError("--speed: must be in (0, 1000]")
     return realtime, 1.0 if speed is None else float(speed)
+
+
+def sim_seed(args: argparse.Namespace) -> int | None:
+    """--seed, which only the simulator takes."""
+    seed = getattr(args, "seed", None)
+    if seed is not None and getattr(args, "sim", None) is None:
+        raise UsageError("--seed: only with --sim (the simulator); real hardware has its own noise")
+    return seed
 
 
 def add_sample_args(p: argparse.ArgumentParser, *, u_mass_default: str | None) -> None:
@@ -217,7 +228,7 @@ def open_instrument(args: argparse.Namespace, *, default_sim: bool = False) -> I
             from pycnoctl.drivers.simulated import build_sim_instrument
 
             realtime, speed = sim_pace(args)
-            return build_sim_instrument(args.sim or None, realtime=realtime, speed=speed)
+            return build_sim_instrument(args.sim or None, realtime=realtime, speed=speed, seed=sim_seed(args))
     except FileNotFoundError as exc:
         raise UsageError(str(exc)) from None
     raise UsageError("name the hardware with --instrument CONFIG, or use --sim [SIMCONFIG]")

@@ -24,6 +24,7 @@ from pycnoctl.controller.cli.common import (
     lock_data_folder,
     open_instrument,
     sim_pace,
+    sim_seed,
 )
 from pycnoctl.controller.cli.main import UsageError
 
@@ -71,7 +72,8 @@ def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
         from pycnoctl.drivers.simulated import build_sim_instrument
 
         try:
-            instrument = build_sim_instrument(args.sim or None, realtime=True, speed=sim_pace(args)[1])
+            instrument = build_sim_instrument(args.sim or None, realtime=True, speed=sim_pace(args)[1],
+                                              seed=sim_seed(args))
         except FileNotFoundError as exc:
             raise UsageError(str(exc)) from None
     else:

@@ -204,28 +204,39 @@ class CellLoader(Protocol):
 class SimCellLoader:
     """On the simulator the workflow places the sphere itself: a fresh bench with a solid of that volume.
 
-    ``actual`` maps a sphere label to the volume really placed, to simulate a mixed-up sphere.
+    Each sphere's true volume is drawn once from its certificate (normal, mean the stated volume, its
+    standard uncertainty), as a real sphere differs from its certificate by an unknown amount within it:
+    a calibration on the simulator then meets the error its uncertainty claims to cover.  ``actual`` maps
+    a sphere label to the volume really placed instead (a mixed-up sphere, or a known draw).  ``seed``
+    pins the draws and each step's noise (step i gets seed + i); None: fresh ones.
     """
 
     def __init__(self, config: Any, *, actual: dict[str, float] | None = None,
-                 announce: Callable[[str], None] | None = None) -> None:
+                 announce: Callable[[str], None] | None = None, seed: int | None = None) -> None:
+        from pycnoctl.sim.bench import fresh_seed
         from pycnoctl.sim.config import SimConfig, load_sim_config
 
         self.config = config if isinstance(config, SimConfig) else load_sim_config(config)
         self.actual = dict(actual or {})
         self.announce = announce or (lambda text: None)
+        self.seed = seed if seed is not None else self.config.seed
+        self._rng = np.random.default_rng(self.seed if self.seed is not None else fresh_seed())
+        self.placed: dict[str, float] = {}  # label -> the volume really in the cell (the truth)
 
     def load(self, index: int, sphere: Sphere) -> Instrument:
         from pycnoctl.drivers.simulated import build_sim_instrument
         from pycnoctl.sim.config import Sample, check
 
-        volume = self.actual.get(sphere.label, sphere.volume)
+        if sphere.label not in self.placed:
+            drawn = float(self._rng.normal(sphere.volume, sphere.u_volume)) if sphere.u_volume > 0 else sphere.volume
+            self.placed[sphere.label] = self.actual.get(sphere.label, drawn)
+        volume = self.placed[sphere.label]
         # the config's quantity parsers read a bare number in cm^3: give the unit
         sample = Sample(solid_volume=f"{volume!r} m^3")  # type: ignore[arg-type]
         cfg = check(self.config.model_copy(update={"sample": sample}))
         self.announce(f"simulator: {sphere.label} placed in the sample cell" if index else
                       "simulator: sample cell emptied")
-        return build_sim_instrument(cfg)
+        return build_sim_instrument(cfg, seed=None if self.seed is None else self.seed + index)
 
     def unload(self, instrument: Instrument) -> None:
         instrument.close()

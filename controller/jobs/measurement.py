@@ -158,6 +158,8 @@ def instrument_description(instrument: Instrument) -> dict[str, Any]:
         "ambient_drift_rate": instrument.ambient_drift_rate,
         "sample_period": instrument.sample_period,
         "config": instrument.extras.get("config"),
+        # the simulator's noise realisation: `--seed` with this number replays the run exactly
+        "sim_seed": getattr(instrument.extras.get("sim"), "seed", None),
     })
 
 
