@@ -227,8 +227,10 @@ def build_sim_instrument(
         supply=SimSupplyGauge(bench) if ins.supply_gauge else None,
         sample_period=cfg.sample_period,
         pressure_u=max(ins.pressure.noise, ins.pressure.resolution / math.sqrt(12.0), 1.0),
-        # the simulated transducer is linear unless its config says otherwise: its noise is all random
-        pressure_u_linearity=float(getattr(ins.pressure, "nonlinearity", 0.0)),
+        # what the simulated transducer's datasheet would state: its bow (largest deviation d at mid-range)
+        # as a rectangular bound, u = d / sqrt(3); a linear one states 0 and its noise is all random
+        pressure_u_linearity=ins.pressure.nonlinearity * (ins.pressure.full_scale - ins.pressure.range_min)
+        / math.sqrt(3.0),
         temperature_u=max(ins.thermometer.noise if ins.thermometer else 0.05, 0.01),
         barometer_u=max(ins.barometer.noise, ins.barometer.resolution / math.sqrt(12.0), 0.1)
         if ins.barometer is not None else 5.0,

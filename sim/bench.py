@@ -152,6 +152,7 @@ class SimBench:
         span = p.full_scale - p.range_min
         self.p_low, self.p_high = p.range_min - 0.05 * span, p.full_scale + 0.05 * span
         self.pressure_is_gauge = p.kind == "gauge"
+        self._nl, self._nl_lo, self._nl_span = p.nonlinearity, p.range_min, span
         self._p_node = self.node_index[p.node]
         self.p_sensor = SensorModel(noise=p.noise, zero_offset=p.zero_offset, resolution=p.resolution,
                                     update_rate=p.update_rate, lag=p.lag, low=self.p_low,
@@ -527,6 +528,10 @@ class SimBench:
             x = self._interp(self._P0, self._P1, self._Pm, self._p_node, t)
             if self.pressure_is_gauge:
                 x -= self.ambient_pressure(t)
+            if self._nl:  # the transducer's bow: 4 d u (1 - u) over its range, d at mid-range
+                lo, span = self._nl_lo, self._nl_span
+                u = (x - lo) / span
+                x += 4.0 * self._nl * span * u * (1.0 - u)
             y = self.p_sensor.sample(t, x)
             if mode == "frozen":
                 if self._frozen is None:

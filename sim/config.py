@@ -172,6 +172,10 @@ class PressureInstrument(SensorBase):
     noise: NonNegPressure = 0.0
     zero_offset: Pressure = 0.0
     resolution: NonNegPressure = 0.0
+    # terminal-based non-linearity: the largest deviation from the straight line through the range's ends,
+    # at mid-range, as a fraction of the span (a parabola: 0 at both ends).  Calibrated datasheets of
+    # thin-film gauges state 0.05-0.25 % (from memory); 0 is a perfectly linear transducer.
+    nonlinearity: Annotated[float, Field(ge=0.0, le=0.05)] = 0.0
 
 
 class ThermometerInstrument(SensorBase):

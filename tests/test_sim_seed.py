@@ -74,3 +74,29 @@ def test_calibration_spheres_are_placed_within_their_certificates() -> None:
     mixed = SimCellLoader(None, seed=5, actual={sphere.label: 8.0e-6})
     mixed.load(1, sphere).close()
     assert mixed.placed[sphere.label] == 8.0e-6  # a known placement wins
+
+
+def test_a_bowed_transducer_reads_off_the_line_and_its_instrument_says_by_how_much() -> None:
+    """Terminal-based non-linearity: zero error at the range's ends, the stated share of the span at
+    mid-range; the simulated instrument states it as a rectangular bound d / sqrt(3) (GUM 4.3.7)."""
+    from pycnoctl.sim.testing import make
+
+    d_rel = 0.001  # 0.1 % of a 3.5 bar span: 350 Pa at mid-range
+    inst = build_sim_instrument(make({"instruments": {"pressure": {"nonlinearity": d_rel}}}), seed=1)
+    span = 3.5e5
+    assert inst.pressure_u_linearity == pytest.approx(d_rel * span / np.sqrt(3.0))
+    linear = build_sim_instrument(make(), seed=1)
+    assert linear.pressure_u_linearity == 0.0
+    # the bow itself, through the bench's own read path: hold the cell at ambient (vent open) -> 0 error
+    assert abs(inst.pressure.read().value - linear.pressure.read().value) < 1e-6
+    # filled alike for the same time, both cells hold the same gas; the bowed gauge reads the bow more
+    for b in (inst, linear):
+        b.valves.set_valves({"vent": False, "exp_small": False, "exp_large": False})
+        b.valves.set_valves({"inlet": True})
+        b.clock.sleep(2.0)
+        b.valves.set_valves({"inlet": False})
+        b.clock.sleep(1.0)
+    x = linear.pressure.read().value  # the linear gauge reads the truth here (noise-free bench)
+    assert 0.2 * span < x < 0.8 * span, x
+    u = x / span
+    assert inst.pressure.read().value - x == pytest.approx(4 * d_rel * span * u * (1 - u), rel=1e-6)
