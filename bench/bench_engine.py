@@ -177,6 +177,33 @@ def interlock_reaction(events: int) -> None:
           f"largest overshoot / rise of the tripping sample: {ratio:.2f} (<= 1: within one sample's rise)")
 
 
+def _with_drift(rule: str) -> Path:
+    data = yaml.safe_load(resolve_sequence("grain-volume").read_text())
+    data["settle"]["max_drift"] = rule
+    data["name"] = f"grain-volume-{rule.replace(' ', '').replace('/', '-')}"
+    path = Path(tempfile.mkstemp(suffix=".yaml")[1])
+    path.write_text(yaml.safe_dump(data))
+    return path
+
+
+def auto_vs_fixed(repeat: int) -> None:
+    """CPU of the adaptive ('auto') drift rule against the fixed one on the same run (target <= 1.3x)."""
+    print("== settle rule CPU: grain-volume with max_drift auto against 0.5 Pa/s, clean simulator")
+    cpu: dict[str, list[float]] = {"0.5 Pa/s": [], "auto": []}
+    times: dict[str, float] = {}
+    paths = {rule: _with_drift(rule) for rule in cpu}
+    for _ in range(repeat):
+        for rule, path in paths.items():
+            s, _ = run_once(path)
+            cpu[rule].append(s["cpu_s"])
+            times[rule] = s["instrument_time_s"]
+    for path in paths.values():
+        path.unlink()
+    fixed, auto = statistics.median(cpu["0.5 Pa/s"]), statistics.median(cpu["auto"])
+    print(f"   fixed 0.5 Pa/s: CPU {fixed:.3f} s ({times['0.5 Pa/s']:.0f} s of instrument time); "
+          f"auto: CPU {auto:.3f} s ({times['auto']:.0f} s); ratio {auto / fixed:.2f} (median of {repeat})")
+
+
 def main() -> None:
     logging.disable(logging.CRITICAL)  # the trips are the point here, not their log lines
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -185,6 +212,7 @@ def main() -> None:
     ap.add_argument("--skip-settle", action="store_true")
     args = ap.parse_args()
     speed(args.repeat)
+    auto_vs_fixed(max(args.repeat // 2, 1))
     if not args.skip_settle:
         settle_vs_fixed()
     interlock_reaction(args.events)

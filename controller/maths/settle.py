@@ -340,6 +340,7 @@ class SettleDetector:
         self._decided_at: float | None = None
         self._fit: ExpFit | None = None
         self._fit_t: float = -math.inf  # sample time of the last exponential fit
+        self._fit_precise = False  # whether that fit was polished (golden section and Gauss-Newton)
         self._sound: ExpFit | None = None  # the latest sound fit, while the data still agree with it
         self._threshold: float | None = criteria.max_drift
         self._quiet_since: float | None = None  # first sample of the current unbroken run under the limit
@@ -410,6 +411,7 @@ class SettleDetector:
             fit = None
         self._fit = fit
         self._fit_t = self._t_last
+        self._fit_precise = precise
         if fit is not None and fit.sound and self._agrees(fit):
             self._sound = fit  # a fit of the noise (tau far below a sample spacing) does not replace a real one
         return fit
@@ -512,13 +514,15 @@ class SettleDetector:
         if c.max_drift is not None:
             self._threshold = c.max_drift
             return abs(slope) < c.max_drift
+        # the threshold needs only the time constant's size: the fine grid's value (about 0.1 % in tau)
+        # costs a fraction of the polished fit, which is made once, at the decision, if extrapolating
         if self._t_last - self._fit_t >= c.fit_interval:
-            self._refit()
+            self._refit(precise=False)
         self._threshold = self._adaptive_threshold()
         if abs(slope) >= self._threshold:
             return False
         if self._fit_t != self._t_last:  # confirm with a fit on the current window
-            self._refit()
+            self._refit(precise=False)
             self._threshold = self._adaptive_threshold()
         return abs(slope) < self._threshold
 
@@ -530,7 +534,8 @@ class SettleDetector:
         # one fit at decision time even without extrapolation: its tau tells how much relaxation
         # is left beyond the window (the engine adds |drift|*tau to the estimate's uncertainty)
         extrapolate = self.criteria.extrapolate
-        fit = self._fit if self._fit_t == self._t_last else self._refit(precise=extrapolate)
+        current = self._fit_t == self._t_last and (self._fit_precise or not extrapolate)
+        fit = self._fit if current else self._refit(precise=extrapolate)
         if extrapolate and fit is not None and fit.sound:
             value, u_value, how = fit.p_inf, fit.u_p_inf, "extrapolated"
         self._frozen = (value, u_value, slope, u_slope, how)
