@@ -31,7 +31,7 @@ from pycnoctl.controller.service.daemon import EventBus
 from pycnoctl.drivers.simulated import build_sim_instrument
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from bench_catalog import _median_time, generated_catalog  # noqa: E402 - the same generated catalogs
+from bench_catalog import _median_time, generated_catalog
 
 
 def cycles(n: int, root: Path, *, traced: bool) -> tuple[float, float]:
