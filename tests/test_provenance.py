@@ -214,7 +214,8 @@ def test_sample_defaults_of_the_sequence_are_used(tmp_path: Path) -> None:
     assert p.request.mass == pytest.approx(1e-3)
 
 
-def test_the_calibrations_verb(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_the_calibrations_verb(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                               monkeypatch: pytest.MonkeyPatch) -> None:
     data = ["--data", str(tmp_path)]
     # an import needs both uncertainties, and a sane one
     assert cli.main(["calibrations", "import", "--sim", "--expansion-volume", "small", "--cell-volume", "12.01 cm3",
@@ -228,6 +229,11 @@ def test_the_calibrations_verb(tmp_path: Path, capsys: pytest.CaptureFixture[str
     assert cli.main(["calibrations", "list", "--sim", "--json", *data]) == 0
     rows = json.loads(capsys.readouterr().out)
     assert [(r["id"], r["in_use"], r["source"]) for r in rows] == [(cid, True, "imported")]
+    monkeypatch.setenv("COLUMNS", "80")  # the table at 80 columns: the ID (what show and select take) is never cut
+    assert cli.main(["calibrations", "list", "--sim", *data]) == 0
+    monkeypatch.delenv("COLUMNS")
+    table = capsys.readouterr().out
+    assert cid in table and max(len(line) for line in table.splitlines()) <= 80
     assert rows[0]["u_vc_cm3"] == pytest.approx(0.005) and rows[0]["vr_cm3"] == pytest.approx(8.0)
     # a run on this instrument computes with it
     cat = Catalog(tmp_path / "catalog.sqlite")
