@@ -96,6 +96,8 @@ def test_no_calibration_and_no_stated_nominal_uncertainty_is_refused_before_anyt
     with pytest.raises(CalibrationRefused, match="states no uncertainty of its nominal volumes"):
         _run(inst, cat, tmp_path)
     assert cat.list_runs() == []  # no row, no record: nothing started
+    # the command line says it in one line, exit 2 (input missing), no traceback
+    assert cli.main(["run", "quick-demo", "--instrument", str(cfg), "--quiet", "--data", str(tmp_path / "d")]) == 2
     if moved_before is not None:
         assert dict(bank.valve_states()) == moved_before
     # stating it in the config lets the run go, uncalibrated

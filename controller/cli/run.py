@@ -122,9 +122,14 @@ def _run(args: argparse.Namespace, request: Any, root: Any) -> int:
         try:
             if view is not None:
                 view.start()
+            from pycnoctl.controller.jobs.calibration_use import CalibrationRefused
+
             with held_log_lines() as logged:
-                summary = execute(prepared, controller, root=root / "runs", catalog=catalog,
-                                  should_stop=lambda: stop["flag"])
+                try:
+                    summary = execute(prepared, controller, root=root / "runs", catalog=catalog,
+                                      should_stop=lambda: stop["flag"])
+                except CalibrationRefused as exc:  # nothing moved, no record: the operator's input is missing
+                    raise UsageError(f"refused: {exc}") from None
         finally:
             signal.signal(signal.SIGINT, old)
             if view is not None:
