@@ -403,7 +403,7 @@ class RunEngine:
                     f"about {tau:.0f} s ({abs(left):.0f} Pa still to {'fall' if left > 0 else 'rise'}, drift "
                     f"{self.meter.drift:.3g} Pa/s) - a "
                     "porous sample filling, sample heat or a slow thermal relaxation; no number is given for "
-                    f"it. Settling it needs a max_time of about {5 * tau:.0f} s, or extrapolate: true")
+                    f"it. Settling it needs a max_time of about {5 * tau:.0f} s")
             raise SequenceFault("settle_timeout", f"pressure did not settle within {settle.max_time:g} s "
                                 f"(drift {self.meter.drift:.3g} Pa/s) - a leak, a porous sample still filling, "
                                 "or a thermal transient")
