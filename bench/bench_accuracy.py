@@ -126,12 +126,17 @@ def sim_config(spec: Spec, seed: int, solid_cm3: float) -> SimConfig:
     return check(config_from_dict(data))
 
 
+SETTLE_RULE: str | None = None  # --drift: max_drift for every sequence (e.g. 'auto'); None: the shipped 0.5 Pa/s
+
+
 def _sequence(spec: Spec, kind: str, folder: Path) -> Path:
     """The shipped grain-volume / calibration sequences, for this gas and expansion volume."""
     data = yaml.safe_load((ROOT / "sequences" / "grain-volume.yaml").read_text())
     data.update(name=f"{kind}-{spec.name}", kind=kind, gas=spec.gas)
     data["fill"]["target"] = f"{spec.fill_bar} bar"
     data["expand"] = {"volume": f"x{spec.use}"}
+    if SETTLE_RULE:  # --drift: another settle rule for both the calibration and the measurement
+        data["settle"]["max_drift"] = SETTLE_RULE
     data.pop("sample_defaults", None)
     data["cycles"] = {"count": 6, "discard": 1} if kind == "calibrate" else \
         {"count": 8, "discard": 2, "converge": data["cycles"]["converge"], "stop_on_converge": False}
@@ -250,7 +255,11 @@ def main() -> None:
     ap.add_argument("--calibrations", type=int, default=None, help="calibrations per instrument (default 2)")
     ap.add_argument("--jobs", type=int, default=2, help="worker processes")
     ap.add_argument("--only", action="append", help="instrument name (repeatable)")
+    ap.add_argument("--drift", help="settle rule max_drift for calibration and measurement, e.g. 'auto' or "
+                                    "'1 Pa/s' (default: the shipped sequence's)")
     args = ap.parse_args()
+    global SETTLE_RULE
+    SETTLE_RULE = args.drift  # read by the workers, which fork from here
     specs = [s for s in SPECS if (not args.quick or s.name in QUICK) and (not args.only or s.name in args.only)]
     n_cal = args.calibrations or (1 if args.quick else 2)
     n_run = args.runs or (4 if args.quick else 6)
