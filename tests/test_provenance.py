@@ -259,3 +259,12 @@ def test_the_calibrations_verb(tmp_path: Path, capsys: pytest.CaptureFixture[str
     assert cli.main(["calibrations", "list", "--all", "--csv", *data]) == 0
     assert "superseded" in capsys.readouterr().out
     assert cli.main(["calibrations", "show", "C20990101T000000Z-000000", *data]) == 2
+
+
+def test_the_runs_table_says_simulated_and_uncalibrated(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("COLUMNS", "160")
+    assert cli.main(["run", "quick-demo", "--sim", "--quiet", "--data", str(tmp_path)]) == 0
+    capsys.readouterr()
+    assert cli.main(["runs", "--data", str(tmp_path)]) == 0
+    assert "simulated, uncalibrated" in capsys.readouterr().out

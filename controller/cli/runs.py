@@ -150,7 +150,7 @@ def main(args: argparse.Namespace) -> int:
 
         write_csv(rows, CSV_COLUMNS, sys.stdout)
     else:
-        print_table(rows, units)
+        print_table([with_record(row, r, root / "runs") for row, r in zip(rows, found, strict=True)], units)
     return 0
 
 
@@ -159,13 +159,28 @@ def table_columns(units: Any) -> list[Any]:
 
     return [Column("run"), Column("created (UTC)", priority=4), Column("sample"), Column("sequence", priority=3),
             Column("status"), Column("volume / cm3", True), Column("U / cm3 (k=2)", True, 1),
-            Column(f"density / {units.density}", True, 2)]
+            Column(f"density / {units.density}", True, 2), Column("notes", priority=5, wrap=True)]
+
+
+def notes(r: dict[str, Any]) -> str:
+    """What a result needs said beside it: simulated, uncalibrated, not converged, warnings."""
+    out = []
+    if r.get("simulated"):
+        out.append("simulated")
+    if r.get("calibrated") is False and r.get("volume_cm3") is not None:
+        out.append("uncalibrated")
+    if r.get("converged") is False:
+        out.append("NOT converged")
+    n = len(r.get("warnings") or [])
+    if n:
+        out.append(f"{n} warning{'s' if n > 1 else ''}")
+    return ", ".join(out) or "-"
 
 
 def table_rows(rows: list[dict[str, Any]], units: Any) -> list[list[str]]:
     return [[r["run_id"], (r["created"] or "")[:16].replace("T", " "), r["sample_id"] or "-",
              r["sequence"] or "-", r["status"], _f(r["volume_cm3"]), _f(r["U_volume_cm3"]),
-             units.rho(None if r["density_g_cm3"] is None else r["density_g_cm3"] * 1e3)] for r in rows]
+             units.rho(None if r["density_g_cm3"] is None else r["density_g_cm3"] * 1e3), notes(r)] for r in rows]
 
 
 def print_table(rows: list[dict[str, Any]], units: Any = None) -> None:
