@@ -268,3 +268,32 @@ def test_the_runs_table_says_simulated_and_uncalibrated(tmp_path: Path, capsys: 
     capsys.readouterr()
     assert cli.main(["runs", "--data", str(tmp_path)]) == 0
     assert "simulated, uncalibrated" in capsys.readouterr().out
+
+
+def test_calibrations_of_a_hardware_config_need_no_device_opened(tmp_path: Path,
+                                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    """import / list / select with --instrument read the config only: the serial ports named in the
+    shipped example do not exist here, and nothing tries to open them."""
+    cfg = str(Path(__file__).resolve().parents[1] / "drivers" / "instruments" / "usb-relay-serial-gauge.yaml")
+    data = ["--data", str(tmp_path)]
+    assert cli.main(["calibrations", "import", "--instrument", cfg, "--expansion-volume", "small",
+                     "--cell-volume", "12.02 cm3", "--u-cell-volume", "0.01 cm3", "--volume", "8.49 cm3",
+                     "--u-volume", "0.01 cm3", "--note", "water filling", *data]) == 0
+    assert "on soils-pyc-02" in capsys.readouterr().out  # the config's instrument_id
+    assert cli.main(["calibrations", "list", "--instrument", cfg, "--json", *data]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert len(rows) == 1 and rows[0]["in_use"] and rows[0]["instrument"] == "soils-pyc-02"
+    # an unknown volume name is refused with the instrument's own
+    assert cli.main(["calibrations", "import", "--instrument", cfg, "--expansion-volume", "tiny",
+                     "--cell-volume", "12 cm3", "--u-cell-volume", "0.01 cm3", "--volume", "8 cm3",
+                     "--u-volume", "0.01 cm3", "--note", "x", *data]) == 2
+    assert "small" in capsys.readouterr().err
+    # a calibration from before identities (unbound) is bound by selecting it for this instrument
+    cat = Catalog(tmp_path / "catalog.sqlite")
+    old = cat.put_calibration(CalibrationRecord("large", "helium", 12e-6, 22e-6, cov=[[1e-16, 0], [0, 1e-16]]))
+    cat.close()
+    assert cli.main(["calibrations", "select", old, "--instrument", cfg, *data]) == 0
+    capsys.readouterr()
+    assert cli.main(["calibrations", "list", "--instrument", cfg, "--json", *data]) == 0
+    rows = {r["id"]: r for r in json.loads(capsys.readouterr().out)}
+    assert rows[old]["instrument"] == "soils-pyc-02" and rows[old]["in_use"]
