@@ -417,7 +417,8 @@ class SettleDetector:
         return fit
 
     def _adaptive_threshold(self) -> float:
-        """k u_p / tau; tau from the latest sound fit, else the window length.
+        """k u / tau; tau from the latest sound fit, else the window length; u the stated u_p, or the
+        noise the sound fit measured when that is larger.
 
         Using the window when no exponential is resolved means: over one window the pressure
         may move no more than k u_p.  (A trace with tau much longer than the window looks like
@@ -425,7 +426,14 @@ class SettleDetector:
         """
         c = self.criteria
         assert c.u_p is not None
-        return c.drift_k * c.u_p / self._supported_tau()
+        tau = self._supported_tau()
+        u = c.u_p
+        f = self._sound
+        if f is not None and tau == f.tau and math.isfinite(f.residual_sd):
+            # the noise as measured: the residuals of a sound fit of the window are the gauge's own
+            # scatter, so a config that understates it does not leave the rule waiting on noise
+            u = max(u, f.residual_sd)
+        return c.drift_k * u / tau
 
     def _supported_tau(self) -> float:
         """The latest sound fit's tau while the window's slope agrees with it, else the window.
