@@ -164,7 +164,7 @@ def test_after_a_reload_the_history_keeps_its_phase_shading(page: object, daemon
     pg.wait_for_selector("#conn.live", timeout=10000)
     states = pg.evaluate("view.states")
     assert {"fill", "settle_filled", "settle_expanded"} <= set(states)
-    # and the bands are drawn: a pixel of the fill colour's band on the canvas
+    # the vocabulary the bands are drawn in has loaded
     assert pg.evaluate("Object.keys(STATE_COLOUR).length") > 0
     assert pg.is_visible("#sim-badge") and "SIMULATED" in pg.text_content("#sim-badge")
     last = pg.text_content("#last")

@@ -229,11 +229,3 @@ def run_result(cycles: Sequence[CycleResult], *, converge: Any = None, mass: flo
 
 def has_converged(volumes: Sequence[float], last: int, within: float) -> bool:
     return len(volumes) >= last and stats.converged(volumes, last_k=last, within_fraction=within)
-
-
-def slope(t: Sequence[float], p: Sequence[float]) -> float:
-    """Least-squares slope dp/dt (NaN with fewer than two samples)."""
-    if len(t) < 2:
-        return math.nan
-    tt = np.asarray(t, dtype=float)
-    return float(np.polyfit(tt - tt[0], np.asarray(p, dtype=float), 1)[0])
