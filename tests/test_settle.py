@@ -302,3 +302,40 @@ def test_auto_rule_takes_the_noise_it_measures_when_the_config_understates_it(se
     assert run(det, t, p) is SettleStatus.SETTLED
     assert det.decided_at < 45.0
     assert amp * math.exp(-det.decided_at / tau) < noise  # the remainder is below the gauge's own noise
+
+
+@pytest.mark.parametrize(("tau", "hint"), [(4.0, 4.4), (4.0, 3.0), (15.0, 17.0), (4.0, 40.0), (15.0, 0.5)])
+def test_a_hinted_fit_finds_the_least_squares_time_constant_or_searches_everything(tau, hint):
+    """The periodic threshold refits search near the last fit's tau: within a factor 1.5 of it they must
+    find the least-squares tau the whole-range search finds (to a few per mille: a threshold k u / tau
+    needs no more); a hint far off (the best point on the edge of its grid) falls back to the whole
+    range and finds the same tau.  Reference: the unhinted fit of the same data, itself checked above."""
+    t = np.arange(100) * 0.1 + 500.0
+    p = 130000 + 50 * np.exp(-(t - t[0]) / tau) + np.random.default_rng(3).normal(0, 0.5, t.size)
+    whole = fit_exponential_detail(t, p, precise=False)
+    hinted = fit_exponential_detail(t, p, precise=False, tau_hint=hint)
+    assert hinted.tau == pytest.approx(whole.tau, rel=3e-3)
+    assert hinted.sound == whole.sound and hinted.interior == whole.interior
+    assert hinted.p_inf == pytest.approx(whole.p_inf, abs=3 * whole.u_p_inf)
+
+
+def test_auto_rule_decides_on_a_fit_of_the_window_it_decides_on():
+    """Between refits the hold is checked against a fit up to fit_interval old; the decision itself
+    refits the current window (a decision on a stale fit's threshold is what the confirmation is for),
+    and refitting is not done on every quiet sample (that cost a fit per sample for a whole hold)."""
+    t = np.arange(0.0, 120.0, DT)
+    p = model(t, 1.2e5, 800.0, 4.0) + np.random.default_rng(5).normal(0.0, 2.0, t.size)
+    det = SettleDetector(SettleCriteria(10.0, None, 0.0, 120.0, False, u_p=2.0), t0=0.0)
+    fits: list[float] = []
+    refit = det._refit
+
+    def counting(*args, **kwargs):
+        fits.append(det._t_last)
+        return refit(*args, **kwargs)
+
+    det._refit = counting  # type: ignore[method-assign]
+    assert run(det, t, p) is SettleStatus.SETTLED
+    assert fits[-1] == det.decided_at  # the decision's own fit
+    quiet_samples = det.criteria.hold_time / DT
+    assert len(fits) < (det.decided_at - det.criteria.window) / det.criteria.fit_interval + 3
+    assert len(fits) < quiet_samples  # not one per quiet sample

@@ -127,24 +127,28 @@ class ExpFit:
 
 def _ssr_for_tau(s: np.ndarray, y: np.ndarray, tau: float) -> tuple[float, float, float]:
     """Residual sum of squares and (a, b) of y = a + b exp(-s/tau), solved linearly."""
+    n = s.size
     e = np.exp(-s / tau)
-    ec = e - e.mean()
-    yc = y - y.mean()
+    e_mean = float(np.add.reduce(e)) / n
+    y_mean = float(np.add.reduce(y)) / n
+    ec = e - e_mean
+    yc = y - y_mean
     see = float(ec @ ec)
     if see <= 1e-300:
-        return float(yc @ yc), float(y.mean()), 0.0
+        return float(yc @ yc), y_mean, 0.0
     sey = float(ec @ yc)
     b = sey / see
-    a = float(y.mean()) - b * float(e.mean())
+    a = y_mean - b * e_mean
     ssr = max(float(yc @ yc) - b * sey, 0.0)
     return ssr, a, b
 
 
 def _ssr_grid(s: np.ndarray, y: np.ndarray, taus: np.ndarray) -> np.ndarray:
     """_ssr_for_tau's residual sum of squares for many taus at once (one array operation)."""
+    n = s.size  # sums over n rather than .mean(): the same numbers without numpy's per-call overhead
     e = np.exp(-s[None, :] / taus[:, None])
-    ec = e - e.mean(axis=1, keepdims=True)
-    yc = y - y.mean()
+    ec = e - np.add.reduce(e, axis=1, keepdims=True) / n
+    yc = y - np.add.reduce(y) / n
     see = np.einsum("ij,ij->i", ec, ec)
     sey = ec @ yc
     syy = float(yc @ yc)
@@ -153,11 +157,16 @@ def _ssr_grid(s: np.ndarray, y: np.ndarray, taus: np.ndarray) -> np.ndarray:
     return np.maximum(ssr, 0.0)
 
 
+_FAR = 2.0  # a slope this many thresholds away is refitted this many times less often
+_COARSE = 90  # log-spaced points of the whole tau search range
 _FINE = 65  # points of the finer grid over the best bracket of the coarse one
+# around a tau hint: 25 points from hint/1.5 to hint*1.5 (3.4 % apart; the parabola's vertex then
+# gives tau to a few per mille, all a threshold needs); a refit 1-2 s later rarely moves tau that far
+_WARM_LOGS = np.linspace(-math.log(1.5), math.log(1.5), 25)
 
 
 def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[float], *,
-                           precise: bool = True) -> ExpFit:
+                           precise: bool = True, tau_hint: float | None = None) -> ExpFit:
     """Fit p = p_inf + A exp(-(t - t[0])/tau) by least squares.
 
     For each trial tau the model is linear in (p_inf, A), so only tau is searched: a log-spaced
@@ -166,7 +175,9 @@ def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[flo
     ``precise=False`` takes tau from a finer grid over the best bracket (about 0.1 % in tau, from
     the vertex of a parabola through its best three points) and skips the golden section and the
     polish: enough when only the time constant's size is wanted (the settle uncertainty), at a
-    fraction of the cost.
+    fraction of the cost.  ``tau_hint`` (a recent fit's tau) searches a fine grid within a factor
+    1.5 of it first, and the whole range only when the best point lies on its edge: a refit of a
+    window that moved by a second needs no search over six decades.
     """
     t_arr = np.asarray(t, dtype=float)
     p_arr = np.asarray(p, dtype=float)
@@ -175,33 +186,46 @@ def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[flo
     n = t_arr.size
     if n < 3:
         raise ValueError("an exponential fit needs at least three samples")
-    if not (np.all(np.isfinite(t_arr)) and np.all(np.isfinite(p_arr))):
+    if not (np.isfinite(t_arr).all() and np.isfinite(p_arr).all()):
         raise ValueError("non-finite sample in fit")
     t_ref = float(t_arr[0])
     s = t_arr - t_ref
     span = float(s[-1] - s[0])
     steps = np.diff(s)
-    if span <= 0 or np.any(steps <= 0):
+    if span <= 0 or (steps <= 0).any():
         raise ValueError("sample times must increase")
     # condition the pressures: centre and scale
-    p_mid = float(p_arr.mean())
-    p_scale = float(np.ptp(p_arr)) or 1.0
+    p_mid = float(np.add.reduce(p_arr)) / n
+    p_scale = float(p_arr.max() - p_arr.min()) or 1.0
     y = (p_arr - p_mid) / p_scale
 
     tau_lo = max(float(np.min(steps)) * 0.25, span * 1e-4)
     tau_hi = span * 100.0
-    grid = np.geomspace(tau_lo, tau_hi, 90)
-    ssr = _ssr_grid(s, y, grid)
-    k = int(np.argmin(ssr))
-    interior = 0 < k < grid.size - 1
-    lo = math.log(grid[max(k - 1, 0)])
-    hi = math.log(grid[min(k + 1, grid.size - 1)])
-    # a finer grid over the bracket narrows it 32 times in one array operation (a golden-section
-    # search needs seven sequential evaluations for that)
-    fine = np.linspace(lo, hi, _FINE)
-    fssr = _ssr_grid(s, y, np.exp(fine))
-    j = int(np.argmin(fssr))
-    lo, hi = float(fine[max(j - 1, 0)]), float(fine[min(j + 1, _FINE - 1)])
+    j = -1
+    if tau_hint is not None:
+        # a fine grid around the hint straight away; the whole range when the best point is an edge
+        fine = math.log(tau_hint) + _WARM_LOGS
+        if fine[0] > math.log(tau_lo) and fine[-1] < math.log(tau_hi):
+            fssr = _ssr_grid(s, y, np.exp(fine))
+            j = int(np.argmin(fssr))
+            n_fine = fine.size
+            interior = 0 < j < n_fine - 1
+            if not interior:
+                j = -1
+    if j < 0:
+        grid = np.geomspace(tau_lo, tau_hi, _COARSE)
+        ssr = _ssr_grid(s, y, grid)
+        k = int(np.argmin(ssr))
+        interior = 0 < k < grid.size - 1
+        lo = math.log(grid[max(k - 1, 0)])
+        hi = math.log(grid[min(k + 1, grid.size - 1)])
+        # a finer grid over the bracket narrows it 32 times in one array operation (a golden-section
+        # search needs seven sequential evaluations for that)
+        n_fine = _FINE
+        fine = np.linspace(lo, hi, n_fine)
+        fssr = _ssr_grid(s, y, np.exp(fine))
+        j = int(np.argmin(fssr))
+    lo, hi = float(fine[max(j - 1, 0)]), float(fine[min(j + 1, n_fine - 1)])
     if precise:
         golden = (math.sqrt(5.0) - 1.0) / 2.0
         c = hi - golden * (hi - lo)
@@ -222,20 +246,21 @@ def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[flo
         log_tau = (lo + hi) / 2.0
     else:  # the vertex of the parabola through the fine grid's three best points is close enough
         log_tau = float(fine[j])
-        if 0 < j < _FINE - 1:
+        if 0 < j < n_fine - 1:
             f0, f1, f2 = float(fssr[j - 1]), float(fssr[j]), float(fssr[j + 1])
             curv = f0 - 2.0 * f1 + f2
             if curv > 0.0:
                 log_tau += 0.5 * (f0 - f2) / curv * float(fine[1] - fine[0])
     tau = math.exp(log_tau)
     _, a, b = _ssr_for_tau(s, y, tau)
-    # the polish compares residual sums computed directly: _ssr_for_tau's shortcut cancels to
-    # round-off (or to its zero floor) near an exact fit and would turn every improving step away
-    resid = y - (a + b * np.exp(-s / tau))
-    f_best = float(resid @ resid)
+    jac = np.empty((n, 3))
+    if precise:
+        # the polish compares residual sums computed directly: _ssr_for_tau's shortcut cancels to
+        # round-off (or to its zero floor) near an exact fit and would turn every improving step away
+        resid = y - (a + b * np.exp(-s / tau))
+        f_best = float(resid @ resid)
 
     # Gauss-Newton polish on (a, b, tau) and covariance from the Jacobian
-    jac = np.empty((n, 3))
     for _ in range(8 if precise else 0):
         e = np.exp(-s / tau)
         jac[:, 0] = 1.0
@@ -333,7 +358,8 @@ class SettleDetector:
     def __init__(self, criteria: SettleCriteria, t0: float) -> None:
         self.criteria = criteria
         self.t0 = float(t0)
-        self._buf: deque[tuple[float, float]] = deque()
+        self._bt: deque[float] = deque()  # window sample times and pressures, kept apart so a fit
+        self._bp: deque[float] = deque()  # reads them into arrays without a tuple per sample
         self._evicted = 0
         self._status = SettleStatus.WAITING
         self._t_last = math.nan
@@ -364,9 +390,9 @@ class SettleDetector:
         self._syy += sign * y * y
 
     def _resync(self) -> None:
-        t_first, p_first = self._buf[0]
+        t_first, p_first = self._bt[0], self._bp[0]
         self._reset_sums(t_first, p_first)
-        for t, p in self._buf:
+        for t, p in zip(self._bt, self._bp, strict=True):
             self._add(t, p, 1.0)
         self._evicted = 0
 
@@ -401,12 +427,16 @@ class SettleDetector:
         return value, u_value, slope, u_slope
 
     # -- exponential fit over the window ------------------------------------------------------
-    def _refit(self, precise: bool = True) -> ExpFit | None:
-        if len(self._buf) < 5:
+    def _refit(self, precise: bool = True, warm: bool = False) -> ExpFit | None:
+        """Fit the window; ``warm``: search around the last fit's tau first (the periodic refits
+        that only set the threshold; the fit a decision records always searches the whole range)."""
+        n = len(self._bt)
+        if n < 5:
             return None
-        arr = np.array(self._buf)
+        hint = self._fit.tau if warm and self._fit is not None and self._fit.interior else None
         try:
-            fit = fit_exponential_detail(arr[:, 0], arr[:, 1], precise=precise)
+            fit = fit_exponential_detail(np.fromiter(self._bt, float, n), np.fromiter(self._bp, float, n),
+                                         precise=precise, tau_hint=hint)
         except ValueError:
             fit = None
         self._fit = fit
@@ -456,7 +486,7 @@ class SettleDetector:
         """Whether the window's regression slope is within 3 standard errors of the fit's mean slope
         over the same window (what a regression slope measures, not the end value)."""
         slope = self._slope()
-        ta, tb = self._buf[0][0], self._t_last
+        ta, tb = self._bt[0], self._t_last
         if not (math.isfinite(slope) and tb > ta):
             return True
         predicted = f.amplitude * (math.exp(-max(ta - f.t_ref, 0.0) / f.tau)
@@ -484,20 +514,21 @@ class SettleDetector:
         p = float(p)
         if not (math.isfinite(t) and math.isfinite(p)):
             raise ValueError("settle detector takes only valid, finite samples")
-        if self._buf and t <= self._t_last:
+        if self._bt and t <= self._t_last:
             raise ValueError(f"sample time {t} does not advance past {self._t_last}")
         c = self.criteria
-        if not self._buf:
+        if not self._bt:
             self._reset_sums(t, p)
-        self._buf.append((t, p))
+        self._bt.append(t)
+        self._bp.append(p)
         self._t_last = t
         self._add(t, p, 1.0)
         edge = t - c.window * (1.0 + 1e-9)
-        while self._buf[0][0] < edge:
-            ot, op = self._buf.popleft()
+        while self._bt[0] < edge:
+            ot, op = self._bt.popleft(), self._bp.popleft()
             self._add(ot, op, -1.0)
             self._evicted += 1
-        if self._evicted >= max(len(self._buf), 16):
+        if self._evicted >= max(len(self._bt), 16):
             self._resync()
 
         elapsed = t - self.t0
@@ -508,6 +539,9 @@ class SettleDetector:
         elif self._quiet_since is None:
             self._quiet_since = t
         held = quiet and self._quiet_since is not None and t - self._quiet_since >= c.hold_time * (1.0 - 1e-9)
+        if held and elapsed >= c.min_time and not self._confirmed():
+            held = False
+            self._quiet_since = None
         if held and elapsed >= c.min_time:
             self._decide(SettleStatus.SETTLED)
         elif elapsed >= c.max_time:
@@ -523,16 +557,26 @@ class SettleDetector:
             self._threshold = c.max_drift
             return abs(slope) < c.max_drift
         # the threshold needs only the time constant's size: the fine grid's value (about 0.1 % in tau)
-        # costs a fraction of the polished fit, which is made once, at the decision, if extrapolating
-        if self._t_last - self._fit_t >= c.fit_interval:
-            self._refit(precise=False)
+        # costs a fraction of the polished fit, which is made once, at the decision, if extrapolating.
+        # A slope several times over the last threshold cannot pass unless tau shrank as many times,
+        # so far from the limit the fit is refreshed at a third of the pace (the fit's agreement with
+        # the window is still checked on every sample, and a decision always refits)
+        far = self._threshold is not None and abs(slope) >= _FAR * self._threshold
+        if self._t_last - self._fit_t >= c.fit_interval * (_FAR if far else 1.0):
+            self._refit(precise=False, warm=True)
         self._threshold = self._adaptive_threshold()
-        if abs(slope) >= self._threshold:
-            return False
-        if self._fit_t != self._t_last:  # confirm with a fit on the current window
-            self._refit(precise=False)
-            self._threshold = self._adaptive_threshold()
         return abs(slope) < self._threshold
+
+    def _confirmed(self) -> bool:
+        """The adaptive rule's last word before a decision: the threshold from a fit of the current
+        window, not one up to ``fit_interval`` old (between refits the hold is checked against the
+        latest fit; refitting on every quiet sample cost a fit per sample for a whole hold)."""
+        c = self.criteria
+        if c.max_drift is not None or self._fit_t == self._t_last:
+            return True
+        self._refit(precise=False)
+        self._threshold = self._adaptive_threshold()
+        return abs(self._slope()) < self._threshold
 
     def _decide(self, status: SettleStatus) -> None:
         self._status = status
@@ -598,7 +642,7 @@ class SettleDetector:
 
     @property
     def n_window(self) -> int:
-        return len(self._buf)
+        return len(self._bt)
 
     @property
     def fit(self) -> ExpFit | None:
