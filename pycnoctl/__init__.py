@@ -4,3 +4,5 @@ The code lives in the top-level folders controller/, drivers/, sim/ and sequence
 links them under one import name, so an editable install is a plain path entry that type checkers
 and import-contract tools can follow.
 """
+
+__version__ = "0.1.0"

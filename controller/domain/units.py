@@ -14,7 +14,6 @@ from __future__ import annotations
 import functools
 import math
 import re
-import tokenize
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
@@ -132,6 +131,8 @@ def _dim_key(dimension: str) -> str:
 
 def to_quantity(value: Any, default_unit: str, *, difference: bool = False) -> pint.Quantity[Any]:
     """Text, number or Quantity -> Quantity of this registry (bare numbers get ``default_unit``)."""
+    import tokenize  # with pint: its parser raises tokenize errors on some garbage
+
     import pint
 
     ureg = registry()
