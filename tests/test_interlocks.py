@@ -13,6 +13,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import assume, given, settings
+from hypothesis import strategies as st
 
 from pycnoctl.controller.domain.devices import Reading, Validity
 from pycnoctl.controller.domain.gaspath import Limits, ValveRoles
@@ -188,6 +190,32 @@ def test_regulator_failure_trips_on_first_sample_of_the_surge_before_overpressur
     assert idx == k0  # 3-point slope of (0, 0, step) is step / (2 dt) = 2.5e5 > 2e5 Pa/s
     assert samples[idx][1] <= LIMITS.max_pressure  # tripped before the overpressure limit
     assert h.calls == ["act", "trip:rise_rate"]
+
+
+@settings(max_examples=300, deadline=None)
+@given(steps=st.lists(st.tuples(st.floats(0.001, 0.5), st.floats(-4e4, 4e4)), min_size=3, max_size=40),
+       n=st.integers(2, 6))
+def test_rise_rate_trips_exactly_where_the_regression_over_the_last_samples_exceeds_the_limit(steps, n):
+    """The rule skips its regression while every step of the window is under the limit (a least-squares
+    slope is a weighted mean of the step slopes, so it cannot exceed their maximum); the first trip must
+    still come exactly where numpy's least-squares slope (np.polyfit, degree 1) of the last n samples
+    first exceeds max_rise_rate.  Random traces with steps well over and under the 2e5 Pa/s limit."""
+    mon = InterlockMonitor(LIMITS, ROLES, lambda: True, rise_samples=n)
+    t, g = 0.0, 1.0e5
+    ts, gs = [], []
+    expected = got = None
+    for i, (dt, dg) in enumerate(steps):
+        t, g = t + dt, min(max(g + dg, 0.0), 2.9e5)  # under max_pressure: only the rise rule can trip
+        ts.append(t)
+        gs.append(g)
+        if expected is None and len(ts) >= n and np.polyfit(ts[-n:], gs[-n:], 1)[0] > LIMITS.max_rise_rate:
+            expected = i
+        trip = mon.observe(obs(t, g, CLOSED))
+        if trip is not None:
+            assume(trip.kind == "rise_rate")  # a rising closed cell may trip the leak rule first: not this test's
+            got = i
+            break
+    assert got == expected
 
 
 # --------------------------------------------------------------------- invalid readings

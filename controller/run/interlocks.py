@@ -238,12 +238,26 @@ class RiseRate(Rule):
         super().__init__(limits, tuning)
         self.n = tuning.rise_samples
         self.recent: deque[tuple[float, float]] = deque(maxlen=self.n)
+        # below this step-to-step slope a step is calm (the margin keeps rounding out of the argument)
+        self.calm = limits.max_rise_rate * (1.0 - 1e-6)
+        self.calm_steps = 0  # consecutive calm steps up to this sample
 
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
-        self.recent.append((seen.t, float(obs.gauge)))
-        if len(self.recent) < self.n:
+        t, g = seen.t, float(obs.gauge)
+        recent = self.recent
+        if recent:
+            t_prev, g_prev = recent[-1]
+            dt = t - t_prev
+            self.calm_steps = self.calm_steps + 1 if dt > 0 and g - g_prev < self.calm * dt else 0
+        recent.append((t, g))
+        if len(recent) < self.n:
             return None
-        rate = _slope_pairs(self.recent)
+        # The least-squares slope is a weighted mean of the pairwise slopes (weights (tj - ti)^2), and
+        # each pairwise slope a weighted mean of the step slopes between them (weights tj - ti): with
+        # every step of the window calm it cannot exceed the limit, and the regression is not needed.
+        if self.calm_steps >= self.n - 1:
+            return None
+        rate = _slope_pairs(recent)
         limit = self.limits.max_rise_rate
         if not (math.isfinite(rate) and rate > limit):
             return None
@@ -470,6 +484,7 @@ class InterlockMonitor:
     def _fresh(self) -> None:
         """New rule memories and a new view (at start and after a reset)."""
         self._seen = Seen()
+        self._vent_open = False  # the vent's commanded state, as of the last valve change seen
         self.rules = [cls(self.limits, self.tuning) for cls in RULES]
         self._arm()
 
@@ -586,27 +601,29 @@ class InterlockMonitor:
         seen = self._seen
         t = seen.t = float(obs.t)
         valves = obs.valves
-        inlet_open = seen.inlet_open = bool(valves.get(self._inlet, False))
         seen.opened_now = False
         changed_now = seen.valves != valves
-        if changed_now:
+        if changed_now:  # the valve roles' states are looked up only when the valves change
+            inlet_open = seen.inlet_open = bool(valves.get(self._inlet, False))
+            self._vent_open = bool(valves.get(self._vent, False))
             if seen.valves is not None:
                 before = seen.valves
                 seen.opened_now = any(v and not before.get(k, False) for k, v in valves.items())
                 changed = {k for k, v in valves.items() if before.get(k) != v}
                 seen.inlet_closed_last = changed == {self.roles.inlet} and not inlet_open
-                seen.vent_closed_last = self._vent in changed and not valves.get(self._vent, False) \
-                    and not inlet_open
+                seen.vent_closed_last = self._vent in changed and not self._vent_open and not inlet_open
             seen.valves_changed_at = t
             seen.valves = dict(valves)  # a copy only when something changed: this runs on every sample
             seen.valve_changes += 1
+        else:
+            inlet_open = seen.inlet_open
         if inlet_open:
             if seen.inlet_open_since is None:
                 seen.inlet_open_since = t
             seen.vented_since = None
         else:
             seen.inlet_open_since = None
-            if not valves.get(self._vent, False):
+            if not self._vent_open:
                 seen.vented_since = None
             elif seen.vented_since is None:
                 seen.vented_since = t
