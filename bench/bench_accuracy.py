@@ -126,6 +126,7 @@ def sim_config(spec: Spec, seed: int, solid_cm3: float) -> SimConfig:
     return check(config_from_dict(data))
 
 
+ALL_CYCLES = False  # --all-cycles: every measurement run goes through its 8 cycles (no stop once converged)
 SETTLE_RULE: str | None = None  # --drift: max_drift for every sequence (e.g. 'auto'); None: the shipped 0.5 Pa/s
 
 
@@ -138,8 +139,10 @@ def _sequence(spec: Spec, kind: str, folder: Path) -> Path:
     if SETTLE_RULE:  # --drift: another settle rule for both the calibration and the measurement
         data["settle"]["max_drift"] = SETTLE_RULE
     data.pop("sample_defaults", None)
-    data["cycles"] = {"count": 6, "discard": 1} if kind == "calibrate" else \
-        {"count": 8, "discard": 2, "converge": data["cycles"]["converge"], "stop_on_converge": False}
+    if kind == "calibrate":
+        data["cycles"] = {"count": 6, "discard": 1}
+    elif ALL_CYCLES:
+        data["cycles"]["stop_on_converge"] = False
     path = folder / f"{kind}.yaml"
     path.write_text(yaml.safe_dump(data))
     return path
@@ -257,9 +260,13 @@ def main() -> None:
     ap.add_argument("--only", action="append", help="instrument name (repeatable)")
     ap.add_argument("--drift", help="settle rule max_drift for calibration and measurement, e.g. 'auto' or "
                                     "'1 Pa/s' (default: the shipped sequence's)")
+    ap.add_argument("--all-cycles", action="store_true",
+                    help="measurement runs go through all 8 cycles (default: the shipped sequence's rule, which "
+                         "stops once the last cycles agree)")
     args = ap.parse_args()
-    global SETTLE_RULE
+    global SETTLE_RULE, ALL_CYCLES
     SETTLE_RULE = args.drift  # read by the workers, which fork from here
+    ALL_CYCLES = args.all_cycles
     specs = [s for s in SPECS if (not args.quick or s.name in QUICK) and (not args.only or s.name in args.only)]
     n_cal = args.calibrations or (1 if args.quick else 2)
     n_run = args.runs or (4 if args.quick else 6)

@@ -96,7 +96,8 @@ def test_show_at_terminal_widths(data: Path, capsys: pytest.CaptureFixture[str],
     text = _out(capsys, "show", rid, "--data", str(data))
     lines = [line for line in text.splitlines() if not line.startswith("record: ")]
     assert all(len(line) <= width for line in lines)
-    assert "no (warm-up)" in text and text.count("yes") >= 6  # grain-volume discards its first two cycles
+    # grain-volume discards its first two cycles and ends once three kept ones agree (the clean bench)
+    assert "no (warm-up)" in text and len(re.findall(r"^\s+\d+ .* yes\s*$", text, re.M)) == 3
     assert "expanded U, k = 2" in text and "standard u = " in text and "u / cm3" in text
     assert "converged: yes (last 3 kept cycles within 0.1 % of their mean)" in " ".join(text.split())
     assert "porosity:" in text
@@ -113,7 +114,7 @@ def test_run_final_table_at_80_columns(tmp_path: Path, capsys: pytest.CaptureFix
     assert "SIMULATED: this result came from the gas-system simulator, not from a specimen" in flat
     assert "P1 / P2 / kPa kPa" in flat and "109.6" in text  # P1 of ~1.097 bar shown in kPa
     assert re.search(r"density: 3924\.\d\d kg/m3 \+/- \d+\.\d\d kg/m3 \(expanded U, k = 2", flat)
-    assert "6 of 8 kept (the first 2 discarded as warm-up)" in flat
+    assert "3 of 5 kept (the first 2 discarded as warm-up)" in flat
     assert RUN_ID.search(text)
 
 
@@ -137,7 +138,7 @@ def test_runs_csv_carries_the_record(data: Path, capsys: pytest.CaptureFixture[s
     assert len(rows) == 2
     for r in rows:
         assert r["gas"] == "helium" and r["instrument"] and r["operator"] == "tech-b"
-        assert r["expansion_volume"] == "small" and r["cycles"] == "8" and r["cycles_kept"] == "6"
+        assert r["expansion_volume"] == "small" and r["cycles"] == "5" and r["cycles_kept"] == "3"
         assert r["converged"] == "yes" and 0 < float(r["porosity"]) < 1 and float(r["rsd"]) >= 0
         assert "UNCALIBRATED" in r["warnings"] and r["calibrated"] == "no"
         assert {"simulated", "calibration_id", "U_porosity"} <= set(r)
@@ -147,7 +148,7 @@ def test_csv_and_json_of_a_run(data: Path, capsys: pytest.CaptureFixture[str]) -
     rid = json.loads(_out(capsys, "runs", "--data", str(data), "--json"))[0]["run_id"]
     rows = list(csv.DictReader(io.StringIO(_out(capsys, "show", rid, "--data", str(data), "--csv",
                                                 "--units", "psi"))))
-    assert [r["cycle"] for r in rows] == [str(i) for i in range(1, 9)]
+    assert [r["cycle"] for r in rows] == [str(i) for i in range(1, 6)]  # stopped once converged
     assert rows[0]["kept"] == "no" and rows[0]["note"] == "no (warm-up)"
     p1 = float(rows[-1]["p1_gauge_psi"])
     assert p1 == pytest.approx(1.0969e5 / 6894.757293168361, rel=1e-3)  # scipy.constants.psi

@@ -44,6 +44,7 @@ class Plan:
     lead: int = 0  # phases before the first cycle (the purge pulses)
     rules_known: bool = True  # False when only the daemon's brief is known (no discard or convergence rule)
     per_cycle: int = 6  # phases of one cycle
+    stop_on_converge: bool = False  # the run may end once converged: discard + converge_last cycles at least
 
     def cycle_start(self, cycle: int) -> int:
         """Index in the timeline of the first phase of this cycle (1-based)."""
@@ -65,7 +66,17 @@ class Plan:
         conv = seq.cycles.converge if seq.expands else None
         return cls(seq.name, seq.kind, seq.cycles.count if seq.expands else 0,
                    seq.cycles.discard if seq.expands else 0, conv.last if conv else None,
-                   conv.within if conv else None, timeline, static, lead, len(per_cycle))
+                   conv.within if conv else None, timeline, static, lead, len(per_cycle),
+                   stop_on_converge=bool(conv and seq.kind == "measure" and seq.cycles.stop_on_converge))
+
+    def earliest_end(self, cycle: int) -> int:
+        """Index in the timeline of the final vent if the run stops as soon as it may (the last index
+        when it cannot stop early): the cycles it must run, or the current one if later."""
+        last = len(self.timeline) - 1
+        if not (self.stop_on_converge and self.converge_last):
+            return last
+        need = max(self.discard + self.converge_last, cycle)
+        return min(self.lead + need * self.per_cycle, last)
 
     @classmethod
     def from_brief(cls, brief: dict[str, Any]) -> Plan:
@@ -218,7 +229,11 @@ class LiveModel:
         if self.pos < 0 or self.pos >= len(tl) or self.finished:
             return None
         left = max(self._base(tl[self.pos]) - self._in_phase(), 0.0)
-        return left + sum(self.expected(p) for p in tl[self.pos + 1:])
+        # a run that stops once converged is expected to converge at its first chance: the estimate
+        # grows by a cycle each time it does not (the final vent is the last phase either way)
+        end = max(self.plan.earliest_end(self.cycle), self.pos)
+        rest = tl[self.pos + 1:end] + ([tl[-1]] if end > self.pos else [])
+        return left + sum(self.expected(p) for p in rest)
 
     def pace(self) -> float:
         """Wall seconds per instrument second, as seen (1 before there is enough to tell)."""
