@@ -82,7 +82,7 @@ def generated_catalog(path: Path, n: int, seed: int = 1) -> Catalog:
     return cat
 
 
-def _median_time(fn: Callable[[], object], repeat: int) -> float:
+def median_time(fn: Callable[[], object], repeat: int) -> float:
     fn()  # warm the page cache
     times = []
     for _ in range(repeat):
@@ -107,22 +107,22 @@ def _bench_size(folder: Path, n: int) -> None:
     t0 = time.perf_counter()
     cat = generated_catalog(folder / f"runs-{n}.sqlite", n)
     built = time.perf_counter() - t0
-    exact = _median_time(lambda: query(cat, sample="AL-0042", limit=50), 51)
+    exact = median_time(lambda: query(cat, sample="AL-0042", limit=50), 51)
     n_exact = len(query(cat, sample="AL-0042", limit=50))
-    prefix = _median_time(lambda: query(cat, sample="AL-00*", limit=50), 51)
+    prefix = median_time(lambda: query(cat, sample="AL-00*", limit=50), 51)
     # the same query returning as many rows as the exact one: the index work compared, not the
     # cost of reading and building 50 rows against a handful
-    equal = _median_time(lambda: query(cat, sample="AL-00*", limit=n_exact), 51)
+    equal = median_time(lambda: query(cat, sample="AL-00*", limit=n_exact), 51)
     matches = len(cat.list_runs(sample_prefix="AL-00", limit=None))
-    same = _median_time(lambda: query(cat, sample="AL-0042*", limit=50), 51)
-    narrow = _median_time(lambda: query(cat, sample="AL-004*", limit=50), 51)
+    same = median_time(lambda: query(cat, sample="AL-0042*", limit=50), 51)
+    narrow = median_time(lambda: query(cat, sample="AL-004*", limit=50), 51)
     few = len(cat.list_runs(sample_prefix="AL-004", limit=None))
-    deep = _median_time(lambda: query(cat, sample="A*", limit=50), 21)
+    deep = median_time(lambda: query(cat, sample="A*", limit=50), 21)
     wide = len(cat.list_runs(sample_prefix="A", limit=None))
     page = query(cat, sample="AL-00*", limit=50)
-    nxt = _median_time(lambda: query(cat, sample="AL-00*", limit=50, before=page[-1].id), 51)
-    sset = _median_time(lambda: sample_set(cat, prefix="AL-00"), 11)
-    old = _median_time(lambda: _python_filter(cat, "AL-00", 50), 3)
+    nxt = median_time(lambda: query(cat, sample="AL-00*", limit=50, before=page[-1].id), 51)
+    sset = median_time(lambda: sample_set(cat, prefix="AL-00"), 11)
+    old = median_time(lambda: _python_filter(cat, "AL-00", 50), 3)
     assert _python_filter(cat, "AL-00", 50) == page
     cat.close()
     print(f"  {n} runs (generated in {built:.1f} s):")

@@ -20,7 +20,9 @@ import math
 import statistics
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import yaml
 
@@ -56,25 +58,31 @@ def run_once(seq: str | Path, sim: object = None) -> tuple[dict, float]:
     return summary, wall
 
 
-def _all_cycles() -> Path:
-    """The shipped grain-volume with all 8 cycles run (it stops once converged, after 5 on the clean bench):
-    the same work in every version, so speed figures compare across versions."""
+def _variant(edit: Callable[[dict[str, Any]], None]) -> Path:
+    """The shipped grain-volume, edited, in a temporary file (the caller unlinks it)."""
     data = yaml.safe_load(resolve_sequence("grain-volume").read_text())
-    data["cycles"]["stop_on_converge"] = False
-    path = _DATA / "grain-volume-8.yaml"
+    edit(data)
+    path = Path(tempfile.mkstemp(suffix=".yaml", dir=_DATA)[1])
     path.write_text(yaml.safe_dump(data))
     return path
+
+
+def _all_cycles(data: dict[str, Any]) -> None:
+    """All 8 cycles run (the shipped sequence stops once converged, after 5 on the clean bench): the same
+    work in every version, so speed figures compare across versions."""
+    data["cycles"]["stop_on_converge"] = False
 
 
 def speed(repeat: int) -> None:
     print("== full-stack speed: grain-volume (purge + 8 cycles), clean simulator")
     ratios, cpu_ratios, rates = [], [], []
-    seq = _all_cycles()
+    seq = _variant(_all_cycles)
     for _ in range(repeat):
         s, wall = run_once(seq)
         ratios.append(s["instrument_time_s"] / wall)
         cpu_ratios.append(s["instrument_time_s"] / s["cpu_s"])
         rates.append(s["ticks"] / wall)
+    seq.unlink()
     s_time = s["instrument_time_s"]
     print(f"   instrument time {s_time:.0f} s; wall {s_time / statistics.median(ratios):.3f} s (median of {repeat})")
     med = statistics.median(ratios)
@@ -86,15 +94,13 @@ def speed(repeat: int) -> None:
 
 
 def _fixed_wait(seconds: float) -> Path:
-    data = yaml.safe_load(resolve_sequence("grain-volume").read_text())
-    for key in ("settle", "settle_filled", "settle_expanded", "settle_baseline"):
-        data[key] = {} if key != "settle" else data["settle"]
-    data["settle"].update({"window": "2 s", "max_drift": "1e9 Pa/s", "min_time": f"{seconds} s",
-                           "max_time": f"{seconds + 1} s"})
-    data["name"] = f"fixed-wait-{seconds:g}"
-    path = Path(tempfile.mkstemp(suffix=".yaml")[1])
-    path.write_text(yaml.safe_dump(data))
-    return path
+    def edit(data: dict[str, Any]) -> None:
+        for key in ("settle_filled", "settle_expanded", "settle_baseline"):
+            data[key] = {}
+        data["settle"].update({"window": "2 s", "max_drift": "1e9 Pa/s", "min_time": f"{seconds} s",
+                               "max_time": f"{seconds + 1} s"})
+        data["name"] = f"fixed-wait-{seconds:g}"
+    return _variant(edit)
 
 
 def settle_vs_fixed() -> None:
@@ -189,12 +195,10 @@ def interlock_reaction(events: int) -> None:
 
 
 def _with_drift(rule: str) -> Path:
-    data = yaml.safe_load(resolve_sequence("grain-volume").read_text())
-    data["settle"]["max_drift"] = rule
-    data["name"] = f"grain-volume-{rule.replace(' ', '').replace('/', '-')}"
-    path = Path(tempfile.mkstemp(suffix=".yaml")[1])
-    path.write_text(yaml.safe_dump(data))
-    return path
+    def edit(data: dict[str, Any]) -> None:
+        data["settle"]["max_drift"] = rule
+        data["name"] = f"grain-volume-{rule.replace(' ', '').replace('/', '-')}"
+    return _variant(edit)
 
 
 def auto_vs_fixed(repeat: int) -> None:

@@ -27,11 +27,11 @@ from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
 from pycnoctl.controller.record.catalog import Catalog
 from pycnoctl.controller.run.control import Controller
 from pycnoctl.controller.run.sequence import resolve_sequence
-from pycnoctl.controller.service.daemon import EventBus
 from pycnoctl.drivers.simulated import build_sim_instrument
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from bench_catalog import _median_time, generated_catalog
+from bench_catalog import generated_catalog, median_time
+from bench_status import filled_bus, read_shared
 
 
 def cycles(n: int, root: Path, *, traced: bool) -> tuple[float, float]:
@@ -59,14 +59,7 @@ def cycles(n: int, root: Path, *, traced: bool) -> tuple[float, float]:
 
 
 def fanout(clients: int, events: int = 1000) -> float:
-    def go() -> None:
-        bus = EventBus(maxlen=4096)
-        for i in range(events):
-            bus.publish("sample", {"t": i * 0.1, "gauge_pa": 1e5 + i, "valid": True, "state": "settle_filled",
-                                   "valves": {"inlet": False, "vent": False, "exp_small": True}})
-        for _ in range(clients):
-            bus.since_text(0, limit=events)
-    return _median_time(go, 7)
+    return median_time(lambda: read_shared(filled_bus(events), clients, events), 7)
 
 
 def main() -> None:
@@ -82,8 +75,8 @@ def main() -> None:
         times = {}
         for n in (10_000, 100_000):
             cat = generated_catalog(root / f"runs-{n}.sqlite", n)
-            times[n] = (_median_time(lambda c=cat: query(c, sample="AL-0042", limit=50), 51),
-                        _median_time(lambda c=cat: query(c, sample="AL-0042*", limit=50), 51))
+            times[n] = (median_time(lambda c=cat: query(c, sample="AL-0042", limit=50), 51),
+                        median_time(lambda c=cat: query(c, sample="AL-0042*", limit=50), 51))
             cat.close()
         (e1, p1), (e2, p2) = times[10_000], times[100_000]
         print(f"   catalog runs 10k -> 100k: exact sample {1e3 * e1:.3f} -> {1e3 * e2:.3f} ms ({e2 / e1:.1f}x), "

@@ -18,23 +18,15 @@ from __future__ import annotations
 import argparse
 import json
 import random
-import statistics
+import sys
 import tempfile
-import time
-from collections.abc import Callable
+from pathlib import Path
 
 from pycnoctl.controller.service.daemon import Daemon, EventBus, LoopStats
 from pycnoctl.drivers.simulated import build_sim_instrument
 
-
-def median_time(fn: Callable[[], object], repeat: int) -> float:
-    fn()
-    times = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from bench_catalog import median_time
 
 
 def sorted_window_summary(stats: LoopStats) -> dict[str, float]:
@@ -69,24 +61,31 @@ def bench_status(repeat: int) -> None:
           f"(former sort: {aged[3] / fresh[3]:.1f})")
 
 
+def filled_bus(events: int) -> EventBus:
+    """An event bus holding ``events`` sample events, as a run publishes them."""
+    bus = EventBus(maxlen=4096)
+    for i in range(events):
+        bus.publish("sample", {"t": i * 0.1, "gauge_pa": 1e5 + i, "valid": True, "state": "settle_filled",
+                               "valves": {"inlet": False, "vent": False, "exp_small": True}})
+    return bus
+
+
+def read_shared(bus: EventBus, clients: int, events: int) -> None:
+    """Every stream client reads the events as the daemon serves them: one shared text per event."""
+    for _ in range(clients):
+        bus.since_text(0, limit=events)
+
+
 def bench_fanout(repeat: int) -> None:
     events = 1000
     print(f"event fan-out: {events} sample events read by N streams (median of {repeat}):")
     base_new = base_old = 0.0
     for clients in (1, 10, 50):
         def new_way(c: int = clients) -> None:
-            fresh = EventBus(maxlen=4096)
-            for i in range(events):
-                fresh.publish("sample", {"t": i * 0.1, "gauge_pa": 1e5 + i, "valid": True, "state": "settle",
-                                         "valves": {"inlet": False, "vent": False, "exp_small": True}})
-            for _ in range(c):
-                fresh.since_text(0, limit=events)
+            read_shared(filled_bus(events), c, events)
 
         def old_way(c: int = clients) -> None:
-            fresh = EventBus(maxlen=4096)
-            for i in range(events):
-                fresh.publish("sample", {"t": i * 0.1, "gauge_pa": 1e5 + i, "valid": True, "state": "settle",
-                                         "valves": {"inlet": False, "vent": False, "exp_small": True}})
+            fresh = filled_bus(events)
             for _ in range(c):
                 for _s, _k, data in fresh.since(0, limit=events)[0]:
                     json.dumps(data, default=str)

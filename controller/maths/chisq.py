@@ -43,26 +43,30 @@ def _upper_finite(k: int, y: float) -> float:
     return min(math.erfc(math.sqrt(y)) + tail, 1.0)
 
 
-def chi2_sf(x: float, k: int) -> float:
-    """P(X > x) for X chi-square with k degrees of freedom."""
+def _tails(x: float, k: int) -> tuple[float, float]:
+    """(P(X <= x), P(X > x)) for X chi-square with k degrees of freedom: below y = k/2 + 1 the lower
+    series, above it the upper finite sum (each where it converges), the other tail one minus it."""
     _check(k)
     if not x > 0.0:
-        return 1.0
+        return 0.0, 1.0
     if math.isinf(x):
-        return 0.0
+        return 1.0, 0.0
     s, y = k / 2.0, x / 2.0
-    return 1.0 - _lower_series(s, y) if y < s + 1.0 else _upper_finite(k, y)
+    if y < s + 1.0:
+        lower = _lower_series(s, y)
+        return lower, 1.0 - lower
+    upper = _upper_finite(k, y)
+    return 1.0 - upper, upper
+
+
+def chi2_sf(x: float, k: int) -> float:
+    """P(X > x) for X chi-square with k degrees of freedom."""
+    return _tails(x, k)[1]
 
 
 def chi2_cdf(x: float, k: int) -> float:
     """P(X <= x) for X chi-square with k degrees of freedom."""
-    _check(k)
-    if not x > 0.0:
-        return 0.0
-    if math.isinf(x):
-        return 1.0
-    s, y = k / 2.0, x / 2.0
-    return _lower_series(s, y) if y < s + 1.0 else 1.0 - _upper_finite(k, y)
+    return _tails(x, k)[0]
 
 
 def chi2_ppf(p: float, k: int) -> float:

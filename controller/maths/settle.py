@@ -157,7 +157,7 @@ def _ssr_grid(s: np.ndarray, y: np.ndarray, taus: np.ndarray) -> np.ndarray:
     return np.maximum(ssr, 0.0)
 
 
-_FAR = 2.0  # a slope this many thresholds away is refitted this many times less often
+_FAR = 2.0  # a slope this many thresholds away is refitted this many times less often (see _check_drift)
 _COARSE = 90  # log-spaced points of the whole tau search range
 _FINE = 65  # points of the finer grid over the best bracket of the coarse one
 # around a tau hint: 25 points from hint/1.5 to hint*1.5 (3.4 % apart; the parabola's vertex then
@@ -539,12 +539,12 @@ class SettleDetector:
         elif self._quiet_since is None:
             self._quiet_since = t
         held = quiet and self._quiet_since is not None and t - self._quiet_since >= c.hold_time * (1.0 - 1e-9)
-        if held and elapsed >= c.min_time and not self._confirmed():
-            held = False
-            self._quiet_since = None
         if held and elapsed >= c.min_time:
-            self._decide(SettleStatus.SETTLED)
-        elif elapsed >= c.max_time:
+            if self._confirmed():
+                self._decide(SettleStatus.SETTLED)
+                return self._status
+            self._quiet_since = None  # a fit of the current window says the hold is broken
+        if elapsed >= c.max_time:
             self._decide(SettleStatus.TIMED_OUT)
         return self._status
 
@@ -559,7 +559,7 @@ class SettleDetector:
         # the threshold needs only the time constant's size: the fine grid's value (about 0.1 % in tau)
         # costs a fraction of the polished fit, which is made once, at the decision, if extrapolating.
         # A slope several times over the last threshold cannot pass unless tau shrank as many times,
-        # so far from the limit the fit is refreshed at a third of the pace (the fit's agreement with
+        # so far from the limit the fit is refreshed at half the pace (the fit's agreement with
         # the window is still checked on every sample, and a decision always refits)
         far = self._threshold is not None and abs(slope) >= _FAR * self._threshold
         if self._t_last - self._fit_t >= c.fit_interval * (_FAR if far else 1.0):

@@ -99,11 +99,7 @@ class Controller:
             except Exception as exc:  # a record that cannot be written ends the run (write_error)
                 log.error("event %s not recorded: %s", kind, exc)
                 self._record_failed = str(exc)
-        for listener in list(self.listeners):
-            try:
-                listener(kind, data)
-            except Exception:  # a broken viewer must never stop the loop
-                log.exception("listener failed on %s", kind)
+        self.notify(kind, data)
 
     def _on_trip(self, trip: Trip) -> None:
         self.emit("trip", {"interlock": trip.kind, "message": trip.message, "t": trip.t,

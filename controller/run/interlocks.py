@@ -94,6 +94,7 @@ class Seen:
     t: float = math.nan
     gap: float = 0.0  # s since the last valid sample before this one (or the start reference)
     inlet_open: bool = False
+    vent_open: bool = False  # commanded; both valve roles are looked up only when the valves change
     t_ref_valid: float | None = None  # last valid sample time (or the start reference)
     last_valid_gauge: float | None = None  # this sample's gauge when it is valid
     inlet_open_since: float | None = None
@@ -484,7 +485,6 @@ class InterlockMonitor:
     def _fresh(self) -> None:
         """New rule memories and a new view (at start and after a reset)."""
         self._seen = Seen()
-        self._vent_open = False  # the vent's commanded state, as of the last valve change seen
         self.rules = [cls(self.limits, self.tuning) for cls in RULES]
         self._arm()
 
@@ -605,13 +605,13 @@ class InterlockMonitor:
         changed_now = seen.valves != valves
         if changed_now:  # the valve roles' states are looked up only when the valves change
             inlet_open = seen.inlet_open = bool(valves.get(self._inlet, False))
-            self._vent_open = bool(valves.get(self._vent, False))
+            seen.vent_open = bool(valves.get(self._vent, False))
             if seen.valves is not None:
                 before = seen.valves
                 seen.opened_now = any(v and not before.get(k, False) for k, v in valves.items())
                 changed = {k for k, v in valves.items() if before.get(k) != v}
                 seen.inlet_closed_last = changed == {self.roles.inlet} and not inlet_open
-                seen.vent_closed_last = self._vent in changed and not self._vent_open and not inlet_open
+                seen.vent_closed_last = self._vent in changed and not seen.vent_open and not inlet_open
             seen.valves_changed_at = t
             seen.valves = dict(valves)  # a copy only when something changed: this runs on every sample
             seen.valve_changes += 1
@@ -623,7 +623,7 @@ class InterlockMonitor:
             seen.vented_since = None
         else:
             seen.inlet_open_since = None
-            if not self._vent_open:
+            if not seen.vent_open:
                 seen.vented_since = None
             elif seen.vented_since is None:
                 seen.vented_since = t
