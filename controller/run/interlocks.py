@@ -294,11 +294,12 @@ class Frozen(Rule):
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
         # valid readings are finite: equal floats are the same bits, but for the sign of a zero
         value = obs.reading.value
-        pressurised = abs(obs.gauge) > self.tolerance
-        if value != self.last:
+        if value != self.last:  # it moved: held is 0 and frozen_after > 0, so nothing more to ask
             self.last, self.since = value, seen.t
-            self.expect = None  # it moved
-        elif seen.opened_now and pressurised and self.expect is None:
+            self.expect = None
+            return None
+        pressurised = abs(obs.gauge) > self.tolerance
+        if seen.opened_now and pressurised and self.expect is None:
             self.expect = seen.t
         venting = seen.vented_since if pressurised else None
         inlet = seen.inlet_open_since
@@ -615,19 +616,17 @@ class InterlockMonitor:
             seen.valves_changed_at = t
             seen.valves = dict(valves)  # a copy only when something changed: this runs on every sample
             seen.valve_changes += 1
-        else:
-            inlet_open = seen.inlet_open
-        if inlet_open:
-            if seen.inlet_open_since is None:
-                seen.inlet_open_since = t
-            seen.vented_since = None
-        else:
-            seen.inlet_open_since = None
-            if not seen.vent_open:
+            # the open-since times move only with the commanded valves
+            if inlet_open:
+                if seen.inlet_open_since is None:
+                    seen.inlet_open_since = t
                 seen.vented_since = None
-            elif seen.vented_since is None:
-                seen.vented_since = t
-        if changed_now:
+            else:
+                seen.inlet_open_since = None
+                if not seen.vent_open:
+                    seen.vented_since = None
+                elif seen.vented_since is None:
+                    seen.vented_since = t
             self._arm()
         if seen.t_ref_valid is None:
             seen.t_ref_valid = t  # the stale clock starts with the first observation
