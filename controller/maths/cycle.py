@@ -48,6 +48,7 @@ class Zero:
     u_relax: float = 0.0  # Pa, standard: relaxation still to come (the same sign every cycle)
     n_temps: int = 0  # distinct thermometer readings averaged into temp_k
     t_at: float = math.nan  # s, when it was taken
+    window: float = math.nan  # s, the regression window the decision used (longer than stated where noise needs it)
 
 
 @dataclass
@@ -105,6 +106,7 @@ class Settled:
     n_temps: int = 0  # distinct thermometer readings in t
     ambient: float = math.nan  # Pa absolute, lab pressure over the last samples
     t_at: float = math.nan  # s, when it was taken
+    window: float = math.nan  # s, the regression window the decision used (longer than stated where noise needs it)
 
 
 @dataclass(frozen=True)
@@ -453,7 +455,8 @@ class CycleMeasurer:
             u_reg, u_relax = settled_u_parts(det)
             self.zero = Zero(det.estimate, u_reg, sum(w[0] for w in recent) / len(recent), temp, u_relax, n_temps,
                              self._last_t)
-            self.last = Settled(det.estimate, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps)
+            self.last = Settled(det.estimate, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps,
+                                window=det.window)
             return
         cyc = self.current
         if cyc is None:
@@ -469,7 +472,7 @@ class CycleMeasurer:
         ambients = [a for a in self._ambients[-_LAST:] if math.isfinite(a)]
         ambient = sum(ambients) / len(ambients) if ambients else math.nan
         val = Settled(det.estimate - cyc.baseline_pa, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps,
-                      ambient, self._last_t)
+                      ambient, self._last_t, det.window)
         since = self._last_t - self.zero.t_at if self.zero is not None else math.nan
         self.last = val
         which = "p1" if self._state == RunState.SETTLE_FILLED else "p2"

@@ -36,6 +36,11 @@ __all__ = [
 ]
 
 
+#: The fixed rule's window is lengthened until noise alone leaves its slope max_drift / RESOLVE of
+#: standard error (see SettleDetector._resolving_span).
+RESOLVE = 2.0
+
+
 class SettleStatus(enum.Enum):
     WAITING = "waiting"
     SETTLED = "settled"
@@ -371,6 +376,9 @@ class SettleDetector:
         self._threshold: float | None = criteria.max_drift
         self._quiet_since: float | None = None  # first sample of the current unbroken run under the limit
         self._frozen: tuple[float, float, float, float, str] | None = None  # est, u, drift, u_drift, how
+        # the regression window in use: the stated one, or longer where the noise needs it (below)
+        self._span = criteria.window
+        self._span_set = criteria.max_drift is None or criteria.u_p is None
         self._reset_sums(self.t0, math.nan)
 
     # -- running sums --------------------------------------------------------------------------
@@ -523,7 +531,7 @@ class SettleDetector:
         self._bp.append(p)
         self._t_last = t
         self._add(t, p, 1.0)
-        edge = t - c.window * (1.0 + 1e-9)
+        edge = t - self._span * (1.0 + 1e-9)
         while self._bt[0] < edge:
             ot, op = self._bt.popleft(), self._bp.popleft()
             self._add(ot, op, -1.0)
@@ -532,7 +540,13 @@ class SettleDetector:
             self._resync()
 
         elapsed = t - self.t0
-        window_full = elapsed >= c.window * (1.0 - 1e-9) and self._n >= 3
+        window_full = elapsed >= self._span * (1.0 - 1e-9) and self._n >= 3
+        if window_full and not self._span_set:
+            self._span_set = True
+            span = self._resolving_span()
+            if span > self._span:  # keep the samples from here on until the longer window is full
+                self._span = span
+                window_full = False
         quiet = window_full and self._check_drift()
         if not quiet:
             self._quiet_since = None
@@ -547,6 +561,35 @@ class SettleDetector:
         if elapsed >= c.max_time:
             self._decide(SettleStatus.TIMED_OUT)
         return self._status
+
+    def _resolving_span(self) -> float:
+        """The shortest window over which white noise of u_p leaves the slope a standard error of at
+        most max_drift / RESOLVE, at the sample spacing seen so far (capped at half of max_time).
+
+        Why: the fixed rule compares the window's slope with max_drift, and the slope of a window of N
+        samples dt apart carries u_p / (dt sqrt(N (N^2 - 1) / 12)) of noise alone.  Where that is
+        comparable with max_drift (20 Pa of noise, 0.1 s samples and a 10 s window give 0.69 Pa/s
+        against 0.5 Pa/s) a still gas passes the test only now and then, the hold never completes
+        and the settle times out; a moving one may pass by chance.  With the standard error at
+        max_drift / 2 a still gas passes 95 % of looks.  Decided once, when the stated window is
+        first full, so the live run and its replay lengthen it alike."""
+        c = self.criteria
+        assert c.max_drift is not None and c.u_p is not None
+        n = len(self._bt)
+        dt = (self._t_last - self._bt[0]) / (n - 1)
+        if not dt > 0:
+            return self._span
+        target = c.max_drift / RESOLVE
+
+        def noise_se(m: int) -> float:
+            return c.u_p / (dt * math.sqrt(m * (m * m - 1) / 12.0))
+
+        if noise_se(n) <= target:  # the stated window resolves the limit: it stays as it is
+            return self._span
+        m = max(n + 1, math.ceil((c.u_p * math.sqrt(12.0) / (target * dt)) ** (2.0 / 3.0)))
+        while noise_se(m) > target:
+            m += 1
+        return min((m - 1) * dt, max(c.window, c.max_time / 2.0))
 
     def _check_drift(self) -> bool:
         c = self.criteria
@@ -639,6 +682,11 @@ class SettleDetector:
     @property
     def decided_at(self) -> float | None:
         return self._decided_at
+
+    @property
+    def window(self) -> float:
+        """The regression window in use (s): the stated one, or the longer one the noise needs."""
+        return self._span
 
     @property
     def n_window(self) -> int:

@@ -411,7 +411,7 @@ class RunEngine:
         assert val is not None
         self.emit("settled", {"cycle": self.cycle_number, "which": f"p{which}", "p": val.p, "u": val.u,
                               "u_relax": val.u_relax, "t": self._now, "temp_k": val.t, "time": val.time,
-                              "drift": val.drift})
+                              "drift": val.drift, "window": val.window})
         self._fire("settled")
 
     def _step_settle_filled(self, s: Sample) -> None:
