@@ -580,16 +580,17 @@ class SettleDetector:
         if not dt > 0:
             return self._span
         target = c.max_drift / RESOLVE
+        u_p: float = c.u_p
 
         def noise_se(m: int) -> float:
-            return c.u_p / (dt * math.sqrt(m * (m * m - 1) / 12.0))
+            return u_p / (dt * math.sqrt(m * (m * m - 1) / 12.0))
 
         if noise_se(n) <= target:  # the stated window resolves the limit: it stays as it is
             return self._span
-        m = max(n + 1, math.ceil((c.u_p * math.sqrt(12.0) / (target * dt)) ** (2.0 / 3.0)))
+        m = max(n + 1, math.ceil((u_p * math.sqrt(12.0) / (target * dt)) ** (2.0 / 3.0)))
         while noise_se(m) > target:
             m += 1
-        return min((m - 1) * dt, max(c.window, c.max_time / 2.0))
+        return float(min((m - 1) * dt, max(c.window, c.max_time / 2.0)))
 
     def _check_drift(self) -> bool:
         c = self.criteria
