@@ -15,15 +15,18 @@ one line says which, and that ``--csv`` has them all) until it fits; what is lef
 from __future__ import annotations
 
 import argparse
-import csv
 import io
-import json
 import os
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any
 
 from pycnoctl.controller.cli.main import UsageError
+
+# Start-up time of the command line: csv and json are imported by the functions that use them, and
+# typing not at all (typing.TYPE_CHECKING without the import; type checkers take the name as True).
+TYPE_CHECKING = False
+if TYPE_CHECKING:
+    from typing import Any
 
 # Pa per display unit. psi: 0.45359237 kg x 9.80665 m/s^2 / (0.0254 m)^2 (exact definitions).
 PRESSURE_UNITS: dict[str, float] = {"bar": 1e5, "kPa": 1e3, "psi": 0.45359237 * 9.80665 / 0.0254 ** 2}
@@ -187,6 +190,8 @@ def print_table(columns: Sequence[Column], rows: Sequence[Sequence[str]], *, tit
 def write_csv(rows: Sequence[dict[str, Any]], columns: Sequence[str], out: Any) -> None:
     """Rows as CSV with exactly these columns: floats at full precision (repr), None as empty, lists
     joined with ' | ' (warnings)."""
+    import csv
+
     w = csv.DictWriter(out, fieldnames=list(columns), lineterminator="\n", extrasaction="ignore")
     w.writeheader()
     for r in rows:
@@ -213,6 +218,8 @@ def csv_text(rows: Sequence[dict[str, Any]], columns: Sequence[str]) -> str:
 
 def dumps(obj: Any) -> str:
     """Strict JSON (NaN and infinities become null), indented for people."""
+    import json
+
     return json.dumps(_clean(obj), indent=2, allow_nan=False, default=str)
 
 

@@ -10,7 +10,6 @@ only when their verb is used: ``pycnoctl --help`` lists the verbs from the light
 from __future__ import annotations
 
 import argparse
-import contextlib
 import importlib
 import os
 import sys
@@ -48,6 +47,39 @@ class UsageError(Exception):
     """Bad input from the user: reported as one line, exit code 2, no traceback."""
 
 
+def terminal_columns() -> int:
+    """The terminal's width as ``shutil.get_terminal_size()`` tells it ($COLUMNS when a positive
+    number, else the terminal on stdout, else 80), without importing shutil: it pulls in bz2, lzma
+    and zlib, 2 ms of every start of the command line."""
+    try:
+        columns = int(os.environ["COLUMNS"])
+    except (KeyError, ValueError):
+        columns = 0
+    if columns > 0:
+        return columns
+    stdout = sys.__stdout__
+    if stdout is None:
+        return 80
+    try:
+        return os.get_terminal_size(stdout.fileno()).columns or 80
+    except (AttributeError, ValueError, OSError):  # stdout closed, detached or not a terminal
+        return 80
+
+
+class HelpFormatter(argparse.HelpFormatter):
+    """argparse's help formatter with its width from terminal_columns(): argparse builds one for every
+    option it registers, and its own measures the terminal with shutil (see terminal_columns)."""
+
+    def __init__(self, prog: str, indent_increment: int = 2, max_help_position: int = 24,
+                 width: int | None = None) -> None:
+        super().__init__(prog, indent_increment, max_help_position,
+                         terminal_columns() - 2 if width is None else width)
+
+
+class RawDescriptionHelpFormatter(HelpFormatter, argparse.RawDescriptionHelpFormatter):
+    """argparse.RawDescriptionHelpFormatter (the description keeps its line breaks), measured as HelpFormatter."""
+
+
 def _available() -> dict[str, str]:
     """Every verb of the table: each module ships with the package (a search of the import path for
     each one cost `--help` and every verb a few milliseconds at start-up, for nothing)."""
@@ -63,13 +95,15 @@ def build_parser(verbs: dict[str, str] | None = None, *, light: bool = False) ->
     parser = argparse.ArgumentParser(
         prog="pycnoctl",
         description="Run, simulate and analyse gas-expansion pycnometer measurements.",
+        formatter_class=HelpFormatter,
     )
     parser.add_argument("--version", action="store_true", help="print the version and exit")
     sub = parser.add_subparsers(dest="verb", metavar="VERB")
     chosen = verbs if verbs is not None else _available()
     if light:
         for verb in chosen:
-            sub.add_parser(verb, help=VERB_TABLE[verb][1] if verb in VERB_TABLE else None)
+            sub.add_parser(verb, help=VERB_TABLE[verb][1] if verb in VERB_TABLE else None,
+                           formatter_class=HelpFormatter)
         return parser
     seen: set[str] = set()
     for mod in chosen.values():
@@ -113,6 +147,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         print("interrupted", file=sys.stderr)
         return 130
     except BrokenPipeError:  # the reader left (| head): nothing more to say, and nobody to say it to
+        import contextlib  # here, not at the top: no start of the command line pays for it
+
         with contextlib.suppress(OSError):
             sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - replaces stdout for the interpreter's exit flush
         return 141
