@@ -48,7 +48,6 @@ class Zero:
     u_relax: float = 0.0  # Pa, standard: relaxation still to come (the same sign every cycle)
     n_temps: int = 0  # distinct thermometer readings averaged into temp_k
     t_at: float = math.nan  # s, when it was taken
-    window: float = math.nan  # s, the regression window the decision used (longer than stated where noise needs it)
 
 
 @dataclass
@@ -148,7 +147,10 @@ def settled_u_parts(det: SettleDetector) -> tuple[float, float]:
     relaxation).  Kept apart: the first is noise and averages over cycles, the second has the same
     sign every cycle.  An exponential still drifting at dP/dt has |dP/dt|*tau to go (methods: drift
     criterion); taken as a rectangular bound (divide by sqrt 3), tau from a sound fit of the window,
-    else three windows (the longest time constant a window can resolve)."""
+    else three windows (the longest time constant a window can resolve).  The window stated, not the
+    longer one the fixed rule may use on a noisy gauge: that lengthening buys slope resolution, not
+    slower physics, and three of the longer window raised U by up to 24 % on the accuracy bench's
+    noisier instruments with coverage unchanged (99.4 % of 170 runs either way)."""
     fit = det.fit
     tau = fit.tau if fit is not None and fit.sound else 3.0 * det.criteria.window
     drift = det.drift if math.isfinite(det.drift) else 0.0
