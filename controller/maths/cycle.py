@@ -22,7 +22,13 @@ import numpy as np
 from pycnoctl.controller.domain.gaspath import ChamberCalibration
 from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.maths import results
-from pycnoctl.controller.maths.settle import SettleCriteria, SettleDetector, SettleStatus, fit_exponential_detail
+from pycnoctl.controller.maths.settle import (
+    ExpFit,
+    SettleCriteria,
+    SettleDetector,
+    SettleStatus,
+    fit_exponential_detail,
+)
 
 _LAST = 20  # samples averaged for the ambient pressure and the gas temperature of a settled value
 
@@ -233,6 +239,17 @@ MISFIT_REL = 1e-4
 MISFIT_READINGS = 3.0
 #: Standard errors a steady slope must stand out by.
 DRIFT_SIGNIFICANCE = 4.0
+#: A slow relaxation's remainder counts when beyond this many of its standard errors ...
+SLOW_SIGNIFICANCE = 3.0
+#: ... and holds a decision back while beyond this many of the settled pressure's stated u.
+SLOW_LEFT_U = 2.0
+#: ... but only a relaxation the fit resolves: tau at most this share of the span fitted.  A slower
+#: one cannot be told from the lab's own wander (a room's temperature cycle moves a closed chamber by
+#: tens of Pa over minutes; the noisy demo bench's was fitted as tau 300-500 s over a 400 s span).
+SLOW_RESOLVED = 0.5
+#: The whole-settle fit takes block means down to this many points: a relaxation slow enough to
+#: matter is smooth over a block (a 300 s settle's blocks are 2 s), and the fit costs what it must.
+SLOW_POINTS = 60
 
 
 def drift_unexplained(t: list[float], p: list[float], u_p: float) -> Drift | None:
@@ -319,6 +336,7 @@ class CycleMeasurer:
         self._ambients: list[float] = []  # lab pressure of the valid rows of a P1 / P2 phase
         self._trace: tuple[list[float], list[float]] = ([], [])  # valid (t, gauge) of a P1 / P2 phase
         self._leak = OnlineSlope()
+        self._slow_cache: tuple[list[float], int, ExpFit | None] | None = None  # (trace times, length, fit)
 
     # ----- the feed ---------------------------------------------------------------------------
     def feed(self, state: str, row: Row) -> SettleStatus | None:
@@ -386,18 +404,65 @@ class CycleMeasurer:
         thermal transients); None when no sound fit is found.  Why: a settle that runs out of time
         must say what it waited for - a time constant of minutes is a porous sample filling or
         sample heat, not a leak - and how long it would take."""
+        fit = self._slow_fit()
+        if fit is None or not (fit.interior and math.isfinite(fit.tau) and fit.tau > 0):
+            return None
+        return fit.tau, self._still_to_come(fit)
+
+    def _slow_fit(self) -> ExpFit | None:
+        """One exponential fitted to the last two thirds of the current P1 / P2 settle (None for the
+        baseline, below 30 samples, or when no fit is found)."""
         t, p = self._trace
         if self._state == _BASELINE or len(t) < 30:
             return None
-        start = len(t) // 3
+        if self._slow_cache is not None and self._slow_cache[0] is t and self._slow_cache[1] == len(t):
+            return self._slow_cache[2]  # the veto just fitted these samples: the decision reuses it
+        ts = np.asarray(t[len(t) // 3:], dtype=float)
+        ps = np.asarray(p[len(p) // 3:], dtype=float)
+        b = -(-ts.size // SLOW_POINTS)  # block means of b samples: at most SLOW_POINTS points to fit
+        if b > 1:
+            cut = ts.size % b  # the oldest few go, so the blocks end on the last sample
+            ts = ts[cut:].reshape(-1, b).mean(axis=1)
+            ps = ps[cut:].reshape(-1, b).mean(axis=1)
         try:
-            fit = fit_exponential_detail(t[start:], p[start:], precise=False)
+            fit: ExpFit | None = fit_exponential_detail(ts, ps, precise=False)
         except ValueError:
+            fit = None
+        self._slow_cache = (t, len(t), fit)
+        return fit
+
+    def _still_to_come(self, fit: ExpFit) -> float:
+        """Pa the fitted relaxation has yet to move the pressure after the last sample (signed)."""
+        return fit.amplitude * math.exp(-(self._trace[0][-1] - fit.t_ref) / fit.tau)
+
+    def _slow_remainder(self) -> float | None:
+        """|Pa| still to come of a relaxation the whole settle resolves (a sound fit, its remainder
+        beyond 3 standard errors), else None."""
+        fit = self._slow_fit()
+        if fit is None or not fit.sound or fit.tau > SLOW_RESOLVED * (self._trace[0][-1] - fit.t_ref):
             return None
-        if not (fit.interior and math.isfinite(fit.tau) and fit.tau > 0):
-            return None
-        left = fit.amplitude * math.exp(-(t[-1] - fit.t_ref) / fit.tau)
-        return fit.tau, left
+        left = abs(self._still_to_come(fit))
+        return left if left > SLOW_SIGNIFICANCE * fit.u_p_inf else None
+
+    def _slow_pending(self) -> bool:
+        """The detector's veto on a P1 / P2 decision: a relaxation slower than its window, resolved over
+        the whole settle, still has more to come than SLOW_LEFT_U times the settled pressure's stated u
+        and than ``MISFIT_REL`` of the pressure (about 0.03 % of a typical sample volume: below that a
+        noise-free gauge would wait for what the volume cannot show; the budget takes the remainder as a
+        rectangular bound either way).
+
+        Why: the drift rule sees only its window, and a relaxation of minutes (gas filling a porous
+        specimen's open pores, sample heat) looks like a straight line there; its remainder |dP/dt| tau
+        then exceeds the bound the budget takes (tau at most three windows) several times over (a
+        specimen with 0.5 cm^3 of pores filling with 120 s gave +0.38 %, none of 30 runs within U,
+        once max_time let it settle).  Held back, such a settle either waits the relaxation out or
+        times out with the message that names it."""
+        det = self._det
+        assert det is not None
+        left = self._slow_remainder()
+        if left is None:
+            return False
+        return left > max(SLOW_LEFT_U * math.hypot(*settled_u_parts(det)), MISFIT_REL * abs(det.estimate))
 
     @property
     def estimate(self) -> float:
@@ -414,6 +479,8 @@ class CycleMeasurer:
             crit = {RunState.BASELINE: self.plan.baseline, RunState.SETTLE_FILLED: self.plan.filled,
                     RunState.SETTLE_EXPANDED: self.plan.expanded}[RunState(state)]
             self._det = SettleDetector(crit, self._last_t)
+            if state != _BASELINE:
+                self._det.veto = self._slow_pending
             self._open = True
             self._window, self._temps, self._ambients = [], [], []
             self._trace = ([], [])
@@ -465,6 +532,9 @@ class CycleMeasurer:
             return
         temp, n_temps = _mean_of_readings(self._temps[-_LAST:])
         u_reg, u_relax = settled_u_parts(det)
+        slow = self._slow_remainder()
+        if slow is not None:  # what a resolved slow relaxation still has to move, as a rectangular bound
+            u_relax = max(u_relax, slow / math.sqrt(3.0))
         drift = None if timed_out else drift_unexplained(*self._trace, self.plan.u_p)
         if drift is not None:
             # a steady slope the relaxation does not explain (a leak, gas going into the sample): the

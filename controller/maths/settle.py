@@ -21,6 +21,7 @@ from __future__ import annotations
 import enum
 import math
 from collections import deque
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -379,6 +380,9 @@ class SettleDetector:
         # the regression window in use: the stated one, or longer where the noise needs it (below)
         self._span = criteria.window
         self._span_set = criteria.max_drift is None or criteria.u_p is None
+        # the owner's last word before a decision (True: not yet): what the window alone cannot see,
+        # e.g. a relaxation slower than it, judged from the whole settle (CycleMeasurer._slow_pending)
+        self.veto: Callable[[], bool] | None = None
         self._reset_sums(self.t0, math.nan)
 
     # -- running sums --------------------------------------------------------------------------
@@ -554,10 +558,10 @@ class SettleDetector:
             self._quiet_since = t
         held = quiet and self._quiet_since is not None and t - self._quiet_since >= c.hold_time * (1.0 - 1e-9)
         if held and elapsed >= c.min_time:
-            if self._confirmed():
+            if self._confirmed() and not (self.veto is not None and self.veto()):
                 self._decide(SettleStatus.SETTLED)
                 return self._status
-            self._quiet_since = None  # a fit of the current window says the hold is broken
+            self._quiet_since = None  # the hold is broken: a fit of the window, or the veto, says so
         if elapsed >= c.max_time:
             self._decide(SettleStatus.TIMED_OUT)
         return self._status
