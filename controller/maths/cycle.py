@@ -415,6 +415,8 @@ class CycleMeasurer:
         t, p = self._trace
         if self._state == _BASELINE or len(t) < 30:
             return None
+        if self._det is not None and self._det.window_start <= t[len(t) // 3]:
+            return None  # all of it lies in the detector's window, whose own fit and bound speak for it
         if self._slow_cache is not None and self._slow_cache[0] is t and self._slow_cache[1] == len(t):
             return self._slow_cache[2]  # the veto just fitted these samples: the decision reuses it
         ts = np.asarray(t[len(t) // 3:], dtype=float)

@@ -689,6 +689,11 @@ class SettleDetector:
         return self._decided_at
 
     @property
+    def window_start(self) -> float:
+        """Time of the oldest sample in the window (s; NaN before the first)."""
+        return self._bt[0] if self._bt else math.nan
+
+    @property
     def window(self) -> float:
         """The regression window in use (s): the stated one, or the longer one the noise needs."""
         return self._span
