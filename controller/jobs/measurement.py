@@ -25,7 +25,7 @@ from pycnoctl.controller.domain.yamlio import ConfigError
 from pycnoctl.controller.maths import results
 from pycnoctl.controller.maths.advisor import advise
 from pycnoctl.controller.record.catalog import Catalog
-from pycnoctl.controller.record.runfolder import RecordWriteError, RunRecorder
+from pycnoctl.controller.record.runfolder import RecordWriteError, RunRecorder, software_version
 from pycnoctl.controller.record.storagefault import StorageFault, storage_cause
 from pycnoctl.controller.run.control import Controller
 from pycnoctl.controller.run.engine import RunEngine, linearity_u
@@ -203,7 +203,7 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
         "calibration": jsonable(cal),
         "calibrated": cal.record_id is not None,
         "simulated": instrument.simulated,
-        "software": {"name": "pycnoctl", "version": _version()},
+        "software": {"name": "pycnoctl", "version": software_version()},
         "gas": seq.gas,
         "expansion_volume": prepared.expansion_volume,
         "expansion_volume_choice": "request" if req.expansion_volume else (
@@ -249,13 +249,6 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
     return jsonable(out)
 
 
-def _version() -> str:
-    from importlib.metadata import PackageNotFoundError, version
-
-    try:
-        return version("pycnoctl")
-    except PackageNotFoundError:
-        return "unknown"
 
 
 def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalog: Catalog,

@@ -31,6 +31,7 @@ import contextlib
 import csv
 import dataclasses
 import datetime as _dt
+import functools
 import io
 import itertools
 import json
@@ -76,8 +77,11 @@ class RecordWriteError(OSError):
         super().__init__(f"not saved: {what} ({self.path}){detail}")
 
 
+@functools.cache
 def software_version() -> str:
-    """The installed pycnoctl version, recorded with every run."""
+    """The installed pycnoctl version, recorded with every run (looked up once per process: the
+    package metadata search costs about a millisecond, and the version cannot change under a
+    running process)."""
     try:
         from importlib.metadata import PackageNotFoundError, version
     except ImportError:  # pragma: no cover
