@@ -35,6 +35,11 @@ def test_porous_specimen_is_refused_naming_its_slow_relaxation(tmp_path: Path) -
     assert m, message
     assert 60 <= int(m.group(1)) <= 240  # the pores' 120 s, as fitted from the settle's own trace
     assert "porous" in message and "max_time" in message
+    # the time it names is one it did not have: beyond the 600 s max_time that ran out (it once named
+    # 5 tau, about 550 s, less than the time already spent), and not wildly beyond it
+    needed = re.search(r"would take about (\d+) s", message)
+    assert needed, message
+    assert 600 < int(needed.group(1)) < 1500, message
 
 
 def test_porous_specimen_with_time_to_settle_is_within_its_u_or_refused(tmp_path: Path) -> None:

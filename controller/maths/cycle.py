@@ -398,16 +398,29 @@ class CycleMeasurer:
         """Least-squares slope (Pa/s) of the valid gauge readings of the leak hold so far."""
         return self._leak.slope
 
-    def slow_relaxation(self) -> tuple[float, float] | None:
-        """(time constant s, pressure still to come Pa) of the relaxation the current settle is in,
-        from an exponential fitted to its last two thirds (the first third holds the fast flow and
-        thermal transients); None when no sound fit is found.  Why: a settle that runs out of time
-        must say what it waited for - a time constant of minutes is a porous sample filling or
-        sample heat, not a leak - and how long it would take."""
+    def slow_relaxation(self) -> tuple[float, float, float] | None:
+        """(time constant s, pressure still to come Pa, settle time s it would need) of the relaxation
+        the current settle is in, from an exponential fitted to its last two thirds (the first third
+        holds the fast flow and thermal transients); None when no sound fit is found.  Why: a settle
+        that runs out of time must say what it waited for - a time constant of minutes is a porous
+        sample filling or sample heat, not a leak - and how long it would take.
+
+        The time needed is when the fitted remainder falls below what the decision waits for (the
+        veto's bound) and, under a fixed drift limit, when its slope falls below that limit."""
         fit = self._slow_fit()
-        if fit is None or not (fit.interior and math.isfinite(fit.tau) and fit.tau > 0):
+        det = self._det
+        if det is None or fit is None or not (fit.interior and math.isfinite(fit.tau) and fit.tau > 0):
             return None
-        return fit.tau, self._still_to_come(fit)
+        left = self._still_to_come(fit)
+        elapsed = self._trace[0][-1] - det.t0
+        waits = [0.0]
+        bound = max(SLOW_LEFT_U * math.hypot(*settled_u_parts(det)), MISFIT_REL * abs(det.estimate))
+        if bound > 0 and abs(left) > bound:
+            waits.append(fit.tau * math.log(abs(left) / bound))
+        limit = det.criteria.max_drift
+        if limit is not None and abs(left) / fit.tau > limit:
+            waits.append(fit.tau * math.log(abs(left) / (fit.tau * limit)))
+        return fit.tau, left, elapsed + max(waits)
 
     def _slow_fit(self) -> ExpFit | None:
         """One exponential fitted to the last two thirds of the current P1 / P2 settle (None for the

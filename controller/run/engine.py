@@ -396,14 +396,14 @@ class RunEngine:
         if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
             slow = self.meter.slow_relaxation()
             if slow is not None and slow[0] > settle.window:
-                tau, left = slow
+                tau, left, needed = slow
                 raise SequenceFault(
                     "settle_timeout",
                     f"pressure did not settle within {settle.max_time:g} s: still relaxing with a time constant of "
                     f"about {tau:.0f} s ({abs(left):.0f} Pa still to {'fall' if left > 0 else 'rise'}, drift "
                     f"{self.meter.drift:.3g} Pa/s) - a "
                     "porous sample filling, sample heat or a slow thermal relaxation; no number is given for "
-                    f"it. Settling it needs a max_time of about {5 * tau:.0f} s")
+                    f"it. Settling it would take about {needed:.0f} s (max_time; the fit's estimate)")
             raise SequenceFault("settle_timeout", f"pressure did not settle within {settle.max_time:g} s "
                                 f"(drift {self.meter.drift:.3g} Pa/s) - a leak, a porous sample still filling, "
                                 "or a thermal transient")
