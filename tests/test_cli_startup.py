@@ -41,7 +41,7 @@ def _modules_after(args: list[str]) -> set[str]:
 # Standard modules the start of the command line leaves to the functions that need them (typing
 # only for type checkers, json and csv for --json and --csv; shutil, which pulls in bz2 and lzma,
 # replaced by cli.main.terminal_columns): each costs 1-3 ms of a start of about 25 ms.
-DEFERRED = {"typing", "json", "csv", "shutil", "bz2", "lzma"}
+DEFERRED = {"typing", "json", "csv", "shutil", "bz2", "lzma", "dataclasses", "inspect"}
 
 COMPUTE = ["compute", "--cell-volume", "12 cm3", "--expansion-volume", "8 cm3", "--p1", "2.4 bar", "--p2",
            "1.6 bar", "--absolute", "--temperature", "25 degC", "--mass", "19.62 g"]

@@ -18,12 +18,16 @@ import argparse
 import io
 import os
 from collections.abc import Sequence
-from dataclasses import dataclass, field
 
 from pycnoctl.controller.cli.main import UsageError
 
 # Start-up time of the command line: csv and json are imported by the functions that use them, and
 # typing not at all (typing.TYPE_CHECKING without the import; type checkers take the name as True).
+# Units, Column and Fitted are plain classes written out, not dataclasses: importing dataclasses (it
+# imports inspect) and building the seven on the `pycnoctl compute` path cost that command 8.5 ms of its
+# 27.4 ms start (18.9 ms without; bench/bench_startup.py). Each keeps what it had as a dataclass: the
+# same constructor, attributes, == and repr; Units is immutable and hashable, Column and Fitted are not
+# hashable.
 TYPE_CHECKING = False
 if TYPE_CHECKING:
     from typing import Any
@@ -39,12 +43,32 @@ _P_DECIMALS = {"bar": 5, "kPa": 3, "psi": 4}
 _RHO_DECIMALS = {"g/cm3": 5, "kg/m3": 2}
 
 
-@dataclass(frozen=True)
 class Units:
-    """The units figures are shown in."""
+    """The units figures are shown in (immutable)."""
 
-    pressure: str = "bar"
-    density: str = "g/cm3"
+    pressure: str
+    density: str
+
+    def __init__(self, pressure: str = "bar", density: str = "g/cm3") -> None:
+        object.__setattr__(self, "pressure", pressure)
+        object.__setattr__(self, "density", density)
+
+    def __setattr__(self, name: str, value: object) -> None:
+        raise AttributeError(f"cannot assign to field {name!r}")
+
+    def __delattr__(self, name: str) -> None:
+        raise AttributeError(f"cannot delete field {name!r}")
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, Units) or other.__class__ is not self.__class__:
+            return NotImplemented
+        return (self.pressure, self.density) == (other.pressure, other.density)
+
+    def __hash__(self) -> int:
+        return hash((self.pressure, self.density))
+
+    def __repr__(self) -> str:
+        return f"{type(self).__qualname__}(pressure={self.pressure!r}, density={self.density!r})"
 
     def p(self, gauge_pa: float | None) -> str:
         """A gauge pressure (Pa) as a number in the display unit ('-' when there is none)."""
@@ -101,23 +125,49 @@ def add_output_args(p: argparse.ArgumentParser, *, what: str) -> None:
 
 
 # ----------------------------------------------------------------------------------------- tables
-@dataclass
 class Column:
     """A table column: its header, whether it is numeric (right-aligned) and how much it matters
     (0 = never dropped; higher numbers are dropped first when the terminal is narrow)."""
 
     header: str
-    numeric: bool = False
-    priority: int = 0
-    wrap: bool = False  # free text that may wrap between words (never an ID or a figure)
+    numeric: bool
+    priority: int
+    wrap: bool  # free text that may wrap between words (never an ID or a figure)
+
+    def __init__(self, header: str, numeric: bool = False, priority: int = 0, wrap: bool = False) -> None:
+        self.header = header
+        self.numeric = numeric
+        self.priority = priority
+        self.wrap = wrap
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, Column) or other.__class__ is not self.__class__:
+            return NotImplemented
+        return (self.header, self.numeric, self.priority, self.wrap) == (other.header, other.numeric,
+                                                                          other.priority, other.wrap)
+
+    def __repr__(self) -> str:
+        return (f"{type(self).__qualname__}(header={self.header!r}, numeric={self.numeric!r}, "
+                f"priority={self.priority!r}, wrap={self.wrap!r})")
 
 
-@dataclass
 class Fitted:
     """A table fitted to a width: the columns kept (their indices) and the headers left out."""
 
     keep: list[int]
-    dropped: list[str] = field(default_factory=list)
+    dropped: list[str]
+
+    def __init__(self, keep: list[int], dropped: list[str] | None = None) -> None:
+        self.keep = keep
+        self.dropped = [] if dropped is None else dropped
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, Fitted) or other.__class__ is not self.__class__:
+            return NotImplemented
+        return (self.keep, self.dropped) == (other.keep, other.dropped)
+
+    def __repr__(self) -> str:
+        return f"{type(self).__qualname__}(keep={self.keep!r}, dropped={self.dropped!r})"
 
 
 def _cell_width(text: str) -> int:

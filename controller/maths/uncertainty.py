@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
 
 from pycnoctl.controller.domain.gas import Gas, get_gas
 from pycnoctl.controller.maths.volume import expansion_ratio, resolve_temperatures, sample_volume
@@ -41,7 +40,14 @@ def stdev(data: Sequence[float], xbar: float | None = None) -> float:
 K_DEFAULT = 2.0
 
 
-@dataclass
+# Contribution, Budget and ScatterCheck are plain classes written out, not dataclasses: importing
+# dataclasses (it imports inspect) and building the seven on the `pycnoctl compute` path cost that
+# command 8.5 ms of its 27.4 ms start (18.9 ms without; bench/bench_startup.py), and it builds a Budget.
+# Each keeps what it had as a dataclass: the same constructor (positional order and defaults),
+# attributes, == and repr; the two mutable ones are unhashable (a class that defines __eq__ alone is),
+# ScatterCheck is immutable and hashable.
+
+
 class Contribution:
     """One input: its value, standard uncertainty, sensitivity coefficient and c*u (signed).
 
@@ -59,17 +65,39 @@ class Contribution:
     std_u: float
     sensitivity: float
     contribution: float
-    variance: float = math.nan
-    kind: str = ""
-    random: bool = False
-    evaluation: str = "B"
+    variance: float  # default: contribution**2
+    kind: str
+    random: bool
+    evaluation: str
 
-    def __post_init__(self) -> None:
-        if math.isnan(self.variance):
-            self.variance = self.contribution**2
+    def __init__(self, name: str, value: float, std_u: float, sensitivity: float, contribution: float,
+                 variance: float = math.nan, kind: str = "", random: bool = False, evaluation: str = "B") -> None:
+        self.name = name
+        self.value = value
+        self.std_u = std_u
+        self.sensitivity = sensitivity
+        self.contribution = contribution
+        self.variance = contribution**2 if math.isnan(variance) else variance
+        self.kind = kind
+        self.random = random
+        self.evaluation = evaluation
+
+    def _fields(self) -> tuple[object, ...]:
+        return (self.name, self.value, self.std_u, self.sensitivity, self.contribution, self.variance, self.kind,
+                self.random, self.evaluation)
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, Contribution) or other.__class__ is not self.__class__:
+            return NotImplemented
+        return self._fields() == other._fields()
+
+    def __repr__(self) -> str:
+        return (f"{type(self).__qualname__}(name={self.name!r}, value={self.value!r}, std_u={self.std_u!r}, "
+                f"sensitivity={self.sensitivity!r}, contribution={self.contribution!r}, "
+                f"variance={self.variance!r}, kind={self.kind!r}, random={self.random!r}, "
+                f"evaluation={self.evaluation!r})")
 
 
-@dataclass
 class Budget:
     """Combined standard uncertainty of one quantity and the rows that make it up."""
 
@@ -77,15 +105,38 @@ class Budget:
     value: float
     contributions: list[Contribution]
     combined: float
-    k: float = K_DEFAULT
-    expanded: float = math.nan
-    unit: str = "m^3"
-    notes: list[str] = field(default_factory=list)
-    scatter: ScatterCheck | None = None  # a run's budget: its cycles' scatter against the prediction
+    k: float
+    expanded: float  # default: k * combined
+    unit: str
+    notes: list[str]
+    scatter: ScatterCheck | None  # a run's budget: its cycles' scatter against the prediction
 
-    def __post_init__(self) -> None:
-        if math.isnan(self.expanded):
-            self.expanded = self.k * self.combined
+    def __init__(self, quantity: str, value: float, contributions: list[Contribution], combined: float,
+                 k: float = K_DEFAULT, expanded: float = math.nan, unit: str = "m^3", notes: list[str] | None = None,
+                 scatter: ScatterCheck | None = None) -> None:
+        self.quantity = quantity
+        self.value = value
+        self.contributions = contributions
+        self.combined = combined
+        self.k = k
+        self.expanded = k * combined if math.isnan(expanded) else expanded
+        self.unit = unit
+        self.notes = [] if notes is None else notes
+        self.scatter = scatter
+
+    def _fields(self) -> tuple[object, ...]:
+        return (self.quantity, self.value, self.contributions, self.combined, self.k, self.expanded, self.unit,
+                self.notes, self.scatter)
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, Budget) or other.__class__ is not self.__class__:
+            return NotImplemented
+        return self._fields() == other._fields()
+
+    def __repr__(self) -> str:
+        return (f"{type(self).__qualname__}(quantity={self.quantity!r}, value={self.value!r}, "
+                f"contributions={self.contributions!r}, combined={self.combined!r}, k={self.k!r}, "
+                f"expanded={self.expanded!r}, unit={self.unit!r}, notes={self.notes!r}, scatter={self.scatter!r})")
 
     def as_table(self) -> list[dict[str, float | str]]:
         """Rows for printing or JSON: name, value, std_u, sensitivity, contribution, share of u_c^2."""
@@ -230,14 +281,15 @@ def type_a(values: Sequence[float]) -> tuple[float, float, float]:
 SCATTER_ALPHA = 0.01
 
 
-@dataclass(frozen=True)
 class ScatterCheck:
     """The cycles' observed scatter against the per-cycle budget's random part (a Birge ratio).
 
     Why: the budget predicts how far cycles should scatter from the noise it knows of; a scatter
     well above it means an effect the budget lacks (drift, leaks, a moving barometer), and one well
     below means the random inputs are overstated.  Tested as chi-square = (n-1) s^2 / sigma^2 with
-    n-1 degrees of freedom (GUM Annex; a Birge ratio R = s/sigma)."""
+    n-1 degrees of freedom (GUM Annex; a Birge ratio R = s/sigma).
+
+    Immutable (see the note above Contribution for why it is not a dataclass)."""
 
     n: int
     sd: float  # observed cycle-to-cycle standard deviation
@@ -245,6 +297,36 @@ class ScatterCheck:
     birge_ratio: float  # sd / predicted
     p_above: float  # P(chi-square >= observed): small when the scatter is too large
     p_below: float  # P(chi-square <= observed): small when the scatter is too small
+
+    def __init__(self, n: int, sd: float, predicted: float, birge_ratio: float, p_above: float,
+                 p_below: float) -> None:
+        object.__setattr__(self, "n", n)
+        object.__setattr__(self, "sd", sd)
+        object.__setattr__(self, "predicted", predicted)
+        object.__setattr__(self, "birge_ratio", birge_ratio)
+        object.__setattr__(self, "p_above", p_above)
+        object.__setattr__(self, "p_below", p_below)
+
+    def __setattr__(self, name: str, value: object) -> None:
+        raise AttributeError(f"cannot assign to field {name!r}")
+
+    def __delattr__(self, name: str) -> None:
+        raise AttributeError(f"cannot delete field {name!r}")
+
+    def _fields(self) -> tuple[object, ...]:
+        return (self.n, self.sd, self.predicted, self.birge_ratio, self.p_above, self.p_below)
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, ScatterCheck) or other.__class__ is not self.__class__:
+            return NotImplemented
+        return self._fields() == other._fields()
+
+    def __hash__(self) -> int:
+        return hash(self._fields())
+
+    def __repr__(self) -> str:
+        return (f"{type(self).__qualname__}(n={self.n!r}, sd={self.sd!r}, predicted={self.predicted!r}, "
+                f"birge_ratio={self.birge_ratio!r}, p_above={self.p_above!r}, p_below={self.p_below!r})")
 
     @property
     def verdict(self) -> str:
