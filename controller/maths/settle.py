@@ -53,7 +53,9 @@ class SettleCriteria:
     """When to call a chamber settled.
 
     window: s of samples in the regression; max_drift: Pa/s, or None for the adaptive rule
-    |dP/dt| < drift_k * u_p / tau (u_p: standard uncertainty of one pressure reading, Pa);
+    |dP/dt| < drift_k * u_p / tau (u_p: standard uncertainty of one pressure reading, Pa), or, with
+    ``max_remainder`` (Pa), the remainder rule: the relaxation still to come after the last sample
+    under max(max_remainder, drift_k * u_p);
     min_time / max_time: s since the detector's t0; extrapolate: record the fitted Pinf when
     the exponential fit is sound.
     """
@@ -67,6 +69,9 @@ class SettleCriteria:
     u_p: float | None = None
     fit_interval: float = 1.0  # s of sample time between exponential refits (adaptive rule)
     hold: float | None = None  # s the drift rule must hold without a break; None -> half the window
+    # Pa: the remainder rule (replaces max_drift): accept when the relaxation still to come after the
+    # last sample is under max(max_remainder, drift_k * u_p) - see SettleDetector._remainder
+    max_remainder: float | None = None
 
     def __post_init__(self) -> None:
         if not (self.window > 0 and math.isfinite(self.window)):
@@ -75,6 +80,11 @@ class SettleCriteria:
             raise ValueError(f"max_drift must be > 0 Pa/s or None, got {self.max_drift!r}")
         if self.max_drift is None and not (self.u_p is not None and self.u_p > 0):
             raise ValueError("the adaptive drift rule (max_drift=None) needs u_p > 0 Pa")
+        if self.max_remainder is not None:
+            if not (self.max_remainder > 0 and math.isfinite(self.max_remainder)):
+                raise ValueError(f"max_remainder must be a finite pressure > 0 Pa, got {self.max_remainder!r}")
+            if self.max_drift is not None:
+                raise ValueError("the remainder rule replaces max_drift: give max_drift=None with it")
         if not self.drift_k > 0:
             raise ValueError(f"drift_k must be > 0, got {self.drift_k!r}")
         if self.min_time < 0 or not self.max_time > 0 or self.max_time < self.min_time:
@@ -163,6 +173,13 @@ def _ssr_grid(s: np.ndarray, y: np.ndarray, taus: np.ndarray) -> np.ndarray:
     return np.maximum(ssr, 0.0)
 
 
+#: The remainder rule fits at most this many block means of the settle (see SettleDetector._fit_settle).
+SETTLE_FIT_POINTS = 60
+#: ... and takes its fit as the settle's model only while the fit's residual SD is at most MISFIT_NOISE
+#: times the block means' noise plus MISFIT_FLOOR of max_remainder (a misfit well under the tolerance
+#: cannot move the prediction by it; the floor keeps a noise-free trace from failing on rounding).
+MISFIT_NOISE = 1.5
+MISFIT_FLOOR = 0.1
 _FAR = 2.0  # a slope this many thresholds away is refitted this many times less often (see _check_drift)
 _COARSE = 90  # log-spaced points of the whole tau search range
 _FINE = 65  # points of the finer grid over the best bracket of the coarse one
@@ -377,9 +394,17 @@ class SettleDetector:
         self._threshold: float | None = criteria.max_drift
         self._quiet_since: float | None = None  # first sample of the current unbroken run under the limit
         self._frozen: tuple[float, float, float, float, str] | None = None  # est, u, drift, u_drift, how
+        self._left = math.nan  # remainder rule: Pa still to come after the decision's last sample
         # the regression window in use: the stated one, or longer where the noise needs it (below)
         self._span = criteria.window
-        self._span_set = criteria.max_drift is None or criteria.u_p is None
+        self._span_set = (criteria.max_drift is None and criteria.max_remainder is None) or criteria.u_p is None
+        # the remainder rule: the settle's samples so far, for the fit of its relaxation (see _remainder)
+        self._all_t: list[float] = []
+        self._all_p: list[float] = []
+        self._sfit: ExpFit | None = None
+        self._sfit_t = -math.inf
+        self._sfit_span = 0.0
+        self._sfit_adequate = True
         # the owner's last word before a decision (True: not yet): what the window alone cannot see,
         # e.g. a relaxation slower than it, judged from the whole settle (CycleMeasurer._slow_pending)
         self.veto: Callable[[], bool] | None = None
@@ -534,6 +559,9 @@ class SettleDetector:
         self._bt.append(t)
         self._bp.append(p)
         self._t_last = t
+        if c.max_remainder is not None:
+            self._all_t.append(t)
+            self._all_p.append(p)
         self._add(t, p, 1.0)
         edge = t - self._span * (1.0 + 1e-9)
         while self._bt[0] < edge:
@@ -578,12 +606,15 @@ class SettleDetector:
         max_drift / 2 a still gas passes 95 % of looks.  Decided once, when the stated window is
         first full, so the live run and its replay lengthen it alike."""
         c = self.criteria
-        assert c.max_drift is not None and c.u_p is not None
+        assert c.u_p is not None
+        # the remainder rule's fallback compares |slope| x 3 windows with its limit: the same as a drift
+        # limit of limit / (3 windows)
+        limit = c.max_drift if c.max_drift is not None else self._remainder_limit() / (3.0 * c.window)
         n = len(self._bt)
         dt = (self._t_last - self._bt[0]) / (n - 1)
         if not dt > 0:
             return self._span
-        target = c.max_drift / RESOLVE
+        target = limit / RESOLVE
         u_p: float = c.u_p
 
         def noise_se(m: int) -> float:
@@ -604,6 +635,10 @@ class SettleDetector:
         if c.max_drift is not None:
             self._threshold = c.max_drift
             return abs(slope) < c.max_drift
+        if c.max_remainder is not None:
+            if self._t_last - self._sfit_t >= c.fit_interval:
+                self._fit_settle(precise=False)
+            return self._remainder_small()
         # the threshold needs only the time constant's size: the fine grid's value (about 0.1 % in tau)
         # costs a fraction of the polished fit, which is made once, at the decision, if extrapolating.
         # A slope several times over the last threshold cannot pass unless tau shrank as many times,
@@ -620,11 +655,91 @@ class SettleDetector:
         window, not one up to ``fit_interval`` old (between refits the hold is checked against the
         latest fit; refitting on every quiet sample cost a fit per sample for a whole hold)."""
         c = self.criteria
+        if c.max_remainder is not None:
+            if self._sfit_t != self._t_last:
+                self._fit_settle(precise=False)
+            return self._remainder_small()
         if c.max_drift is not None or self._fit_t == self._t_last:
             return True
         self._refit(precise=False)
         self._threshold = self._adaptive_threshold()
         return abs(self._slope()) < self._threshold
+
+    # -- the remainder rule ---------------------------------------------------------------------
+    def _fit_settle(self, precise: bool) -> ExpFit | None:
+        """One exponential fitted to the last two thirds of the settle so far (block means, at most
+        ``SETTLE_FIT_POINTS``): the remainder rule's model of the relaxation since the valve event.
+        The first third goes: it holds the flow transient and the faster thermal parts, which one
+        exponential does not describe."""
+        n = len(self._all_t)
+        self._sfit_t = self._t_last
+        self._sfit = None
+        self._sfit_adequate = True
+        if n < 15:
+            return None
+        ts = np.asarray(self._all_t[n // 3:], dtype=float)
+        ps = np.asarray(self._all_p[n // 3:], dtype=float)
+        # the readings' own noise, from successive differences (a relaxation's curvature hardly
+        # touches them): what the fit's residuals may be, so that a misfit can be seen
+        noise = float(np.std(np.diff(ps))) / math.sqrt(2.0) if ps.size > 2 else 0.0
+        b = -(-ts.size // SETTLE_FIT_POINTS)
+        if b > 1:
+            cut = ts.size % b  # the oldest few go, so the blocks end on the last sample
+            ts = ts[cut:].reshape(-1, b).mean(axis=1)
+            ps = ps[cut:].reshape(-1, b).mean(axis=1)
+        try:
+            fit: ExpFit | None = fit_exponential_detail(ts, ps, precise=precise)
+        except ValueError:
+            fit = None
+        self._sfit = fit
+        self._sfit_span = float(ts[-1] - ts[0]) if ts.size > 1 else 0.0
+        if fit is not None:
+            assert self.criteria.max_remainder is not None
+            allowed = MISFIT_NOISE * noise / math.sqrt(b) + MISFIT_FLOOR * self.criteria.max_remainder
+            self._sfit_adequate = bool(fit.residual_sd <= allowed)
+        return fit
+
+    def _remainder(self) -> tuple[float, bool]:
+        """(|Pa| the relaxation has still to go after the last sample, whether a fit said so).
+
+        From the latest fit of the settle (``_fit_settle``, at most ``fit_interval`` old) when it is
+        sound and its time constant at most the span it was fitted on: its exponential at the last
+        sample, with two standard errors of its amplitude - the pressure's own prediction, free of the
+        lag of a window slope (a 10 s window's slope over a 2 s relaxation is its mean over the window,
+        several times the slope at its end).  Otherwise the bound the budget takes: |slope| times three
+        windows, the slowest relaxation a window can tell from a line.  Neither while the fit leaves
+        residuals the readings' noise does not explain: the settle then holds more than one relaxation,
+        or a turning point (after an expansion into a slow volume the pressure rises for 40 s and falls
+        for minutes; at its top a window's slope is zero and a fit of its bend looks sound), and what is
+        left cannot be told - the rule waits (infinite remainder)."""
+        f = self._sfit
+        if not self._sfit_adequate:  # the settle is not one relaxation yet (a turning point in view)
+            return math.inf, False
+        if self._fit_supports(f):
+            assert f is not None
+            decay = math.exp(-max(self._t_last - f.t_ref, 0.0) / f.tau)
+            return (abs(f.amplitude) + 2.0 * f.u_amplitude) * decay, True
+        return abs(self._slope()) * 3.0 * self.criteria.window, False
+
+    def _fit_supports(self, f: ExpFit | None) -> bool:
+        return (f is not None and f.sound and f.tau <= self._sfit_span
+                and self._t_last - self._sfit_t <= self.criteria.fit_interval)
+
+    def _remainder_limit(self, fitted: bool = False) -> float:
+        """Pa: max_remainder; for the slope bound (no fit resolves the relaxation), k times a reading's
+        noise where that is larger - a window slope of 20 Pa noise cannot show a 3 Pa remainder, while a
+        fit of the whole settle can, so its prediction is held to max_remainder itself.  The budget
+        takes what is left either way."""
+        c = self.criteria
+        assert c.max_remainder is not None and c.u_p is not None
+        return c.max_remainder if fitted else max(c.max_remainder, c.drift_k * c.u_p)
+
+    def _remainder_small(self) -> bool:
+        left, fitted = self._remainder()
+        limit = self._remainder_limit(fitted)
+        tau = self._sfit.tau if fitted and self._sfit is not None else 3.0 * self.criteria.window
+        self._threshold = limit / tau  # the slope that leaves ``limit`` to come: shown as the drift limit
+        return math.isfinite(left) and left < limit
 
     def _decide(self, status: SettleStatus) -> None:
         self._status = status
@@ -634,9 +749,22 @@ class SettleDetector:
         # one fit at decision time even without extrapolation: its tau tells how much relaxation
         # is left beyond the window (the engine adds |drift|*tau to the estimate's uncertainty)
         extrapolate = self.criteria.extrapolate
+        remainder_rule = self.criteria.max_remainder is not None
         current = self._fit_t == self._t_last and (self._fit_precise or not extrapolate)
         fit = self._fit if current else self._refit(precise=extrapolate)
-        if extrapolate and fit is not None and fit.sound:
+        if remainder_rule:
+            fit = self._fit_settle(precise=True)  # the settle's model, polished, on the samples decided on
+            left, fitted = self._remainder()
+            if fitted and fit is not None:
+                # the window bends: its regression line would miss the end of the curve, so the
+                # value is the fit's own at the last sample (or its asymptote when extrapolating)
+                self._left = 0.0 if extrapolate else left
+                at_end = fit.p_inf + fit.amplitude * math.exp(-max(self._t_last - fit.t_ref, 0.0) / fit.tau)
+                value, u_value = (fit.p_inf, fit.u_p_inf) if extrapolate else (at_end, fit.u_p_inf)
+                how = "extrapolated" if extrapolate else "fitted"
+            else:
+                self._left = abs(slope) * 3.0 * self.criteria.window if math.isfinite(slope) else math.nan
+        elif extrapolate and fit is not None and fit.sound:
             value, u_value, how = fit.p_inf, fit.u_p_inf, "extrapolated"
         self._frozen = (value, u_value, slope, u_slope, how)
 
@@ -671,8 +799,18 @@ class SettleDetector:
 
     @property
     def method(self) -> str:
-        """'regression' or 'extrapolated': how ``estimate`` was obtained."""
+        """'regression', 'fitted' (the remainder rule's fit at the last sample) or 'extrapolated'."""
         return self._current()[4]
+
+    @property
+    def remainder(self) -> float:
+        """Remainder rule: |Pa| the relaxation had still to go after the decision (0 when the value is
+        the fit's asymptote), or, before it, has still to go now; NaN under the drift rules."""
+        if self.criteria.max_remainder is None:
+            return math.nan
+        if self._frozen is not None:
+            return self._left
+        return self._remainder()[0] if self._bt else math.nan
 
     @property
     def threshold(self) -> float | None:

@@ -460,9 +460,11 @@ class RunEngine:
 
 def criteria(settle: Any, u_p: float) -> SettleCriteria:
     """A sequence's settle section as the detector's criteria."""
-    max_drift = None if settle.max_drift == "auto" else float(settle.max_drift)
+    remainder = getattr(settle, "max_remainder", None)  # records written before the rule have none
+    max_drift = None if settle.max_drift == "auto" or remainder is not None else float(settle.max_drift)
     return SettleCriteria(window=settle.window, max_drift=max_drift, min_time=settle.min_time,
-                          max_time=settle.max_time, extrapolate=settle.extrapolate, u_p=u_p)
+                          max_time=settle.max_time, extrapolate=settle.extrapolate, u_p=u_p,
+                          max_remainder=None if remainder is None else float(remainder))
 
 
 def linearity_u(pressure_u: float, pressure_u_linearity: float | None) -> float:

@@ -93,6 +93,8 @@ def _adapter(parse: Callable[[Any], float]) -> Callable[[Any], float]:
 
 Pressure = Annotated[float, BeforeValidator(_adapter(units.parse_pressure))]  # Pa, bare number = bar
 Duration = Annotated[float, BeforeValidator(_adapter(units.parse_duration))]  # s, bare number = s
+# Pa, bare number = Pa: a few pascals, and a settle block is validated again when its overrides merge
+SmallPressure = Annotated[float, BeforeValidator(_adapter(lambda v: units.parse_pressure(v, default_unit="Pa")))]
 MAX_TIMEOUT = 3600.0  # s: the longest fill or vent time-out that still protects
 Volume = Annotated[float, BeforeValidator(_adapter(units.parse_volume))]  # m^3, bare number = cm^3
 Rate = Annotated[float, BeforeValidator(_adapter(units.parse_rate))]  # Pa/s, bare number = Pa/s
@@ -166,6 +168,8 @@ class Settle(_Strict):
 
     window: Duration = Field(10.0, gt=0)
     max_drift: DriftLimit = "auto"
+    # the remainder rule, which replaces max_drift when given: Pa of relaxation still to come
+    max_remainder: SmallPressure | None = Field(None, gt=0)
     min_time: Duration = Field(5.0, ge=0)
     max_time: Duration = Field(300.0, gt=0)
     extrapolate: StrictBool = False
@@ -199,6 +203,7 @@ class SettleOverride(_Strict):
 
     window: Duration | None = Field(None, gt=0)
     max_drift: DriftLimit | None = None
+    max_remainder: SmallPressure | None = Field(None, gt=0)
     min_time: Duration | None = Field(None, ge=0)
     max_time: Duration | None = Field(None, gt=0)
     extrapolate: StrictBool | None = None
