@@ -132,6 +132,9 @@ def sim_config(spec: Spec, seed: int, solid_cm3: float) -> SimConfig:
 
 
 ALL_CYCLES = False  # --all-cycles: every measurement run goes through its 8 cycles (no stop once converged)
+REMAINDER: str | None = None  # --remainder: the remainder rule's limit for every sequence (e.g. '5 Pa')
+WINDOW: str | None = None  # --window: the settle window for every sequence (e.g. '6 s')
+EXTRAPOLATE = False  # --extrapolate: every sequence records the fitted asymptote where it has a sound fit
 SETTLE_RULE: str | None = None  # --drift: max_drift for every sequence (e.g. 'auto'); None: the shipped 0.5 Pa/s
 
 
@@ -143,6 +146,12 @@ def _sequence(spec: Spec, kind: str, folder: Path) -> Path:
     data["expand"] = {"volume": f"x{spec.use}"}
     if SETTLE_RULE:  # --drift: another settle rule for both the calibration and the measurement
         data["settle"]["max_drift"] = SETTLE_RULE
+    if REMAINDER:  # --remainder: the remainder rule for both
+        data["settle"]["max_remainder"] = REMAINDER
+    if WINDOW:  # --window: another settle window for both
+        data["settle"]["window"] = WINDOW
+    if EXTRAPOLATE:  # --extrapolate: record the fitted asymptote where the rule has a fit
+        data["settle"]["extrapolate"] = True
     data.pop("sample_defaults", None)
     if kind == "calibrate":
         data["cycles"] = {"count": 6, "discard": 1}
@@ -248,7 +257,8 @@ def summarise(spec: str, cals: list[dict[str, Any]]) -> dict[str, Any]:
     z = [(c["vc_z"], c["vr_z"]) for c in cals if "vc_z" in c]
     row: dict[str, Any] = {"instrument": spec, "runs": len(runs), "failed": failed,
                            "cal_within_U": sum(abs(a) <= 2 and abs(b) <= 2 for a, b in z), "cals": len(z),
-                           "z_vc": [round(a, 2) for a, _ in z], "z_vr": [round(b, 2) for _, b in z]}
+                           "z_vc": [round(a, 2) for a, _ in z], "z_vr": [round(b, 2) for _, b in z],
+                           "chi2": [f"{c['chi2']:.0f}/{c['dof']}" for c in cals if "chi2" in c]}
     if not runs:
         return row
     err = np.array([r["v"] - r["truth"] for r in runs])
@@ -278,12 +288,17 @@ def main() -> None:
     ap.add_argument("--only", action="append", help="instrument name (repeatable)")
     ap.add_argument("--drift", help="settle rule max_drift for calibration and measurement, e.g. 'auto' or "
                                     "'1 Pa/s' (default: the shipped sequence's)")
+    ap.add_argument("--remainder", help="settle by the remainder rule with this limit for calibration and "
+                                        "measurement, e.g. '5 Pa' (default: the shipped sequence's rule)")
+    ap.add_argument("--window", help="settle window for calibration and measurement, e.g. '6 s'")
+    ap.add_argument("--extrapolate", action="store_true", help="settles record the fitted asymptote")
     ap.add_argument("--all-cycles", action="store_true",
                     help="measurement runs go through all 8 cycles (default: the shipped sequence's rule, which "
                          "stops once the last cycles agree)")
     args = ap.parse_args()
-    global SETTLE_RULE, ALL_CYCLES
+    global SETTLE_RULE, ALL_CYCLES, REMAINDER, WINDOW, EXTRAPOLATE
     SETTLE_RULE = args.drift  # read by the workers, which fork from here
+    REMAINDER, WINDOW, EXTRAPOLATE = args.remainder, args.window, args.extrapolate
     ALL_CYCLES = args.all_cycles
     specs = [s for s in SPECS if (not args.quick or s.name in QUICK) and (not args.only or s.name in args.only)]
     n_cal = args.calibrations or (1 if args.quick else 2)
@@ -306,7 +321,8 @@ def main() -> None:
               f"{r['U_pct']:7.4f} {r['coverage']:6.0%} {r['random_u_over_sd']:8.2f} {r['cycle_u_over_sd']:8.2f} "
               f"{r['cycle_sd_over_noise']:8.2f} {r['cal_within_U']:>4d}/{r['cals']:<3d} {r['minutes']:7.1f}")
     for r in rows:
-        print(f"   {r['instrument']}: calibration z(Vc) {r['z_vc']}, z(Vr) {r['z_vr']}; failed {r['failed']}"
+        print(f"   {r['instrument']}: calibration z(Vc) {r['z_vc']}, z(Vr) {r['z_vr']}, chi-square {r['chi2']}; "
+              f"failed {r['failed']}"
               + (f"; warnings: {r['warnings']}" if r.get("warnings") else ""))
     for d in done:
         why = next((r["why"] for r in d["runs"] if r["v"] is None and r["why"]), None)
