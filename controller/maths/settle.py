@@ -758,7 +758,8 @@ class SettleDetector:
             if fitted and fit is not None:
                 # the window bends: its regression line would miss the end of the curve, so the
                 # value is the fit's own at the last sample (or its asymptote when extrapolating)
-                self._left = 0.0 if extrapolate else left
+                # extrapolated, the doubt is the model's: at most the whole correction applied
+                self._left = left
                 at_end = fit.p_inf + fit.amplitude * math.exp(-max(self._t_last - fit.t_ref, 0.0) / fit.tau)
                 value, u_value = (fit.p_inf, fit.u_p_inf) if extrapolate else (at_end, fit.u_p_inf)
                 how = "extrapolated" if extrapolate else "fitted"
@@ -804,8 +805,9 @@ class SettleDetector:
 
     @property
     def remainder(self) -> float:
-        """Remainder rule: |Pa| the relaxation had still to go after the decision (0 when the value is
-        the fit's asymptote), or, before it, has still to go now; NaN under the drift rules."""
+        """Remainder rule: |Pa| the relaxation had still to go after the decision (when the value is
+        the fit's asymptote, the correction that took it there), or, before it, has still to go now;
+        NaN under the drift rules."""
         if self.criteria.max_remainder is None:
             return math.nan
         if self._frozen is not None:
