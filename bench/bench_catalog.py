@@ -118,6 +118,8 @@ def _bench_size(folder: Path, n: int) -> None:
     narrow = median_time(lambda: query(cat, sample="AL-004*", limit=50), 51)
     few = len(cat.list_runs(sample_prefix="AL-004", limit=None))
     deep = median_time(lambda: query(cat, sample="A*", limit=50), 21)
+    deep_equal = median_time(lambda: query(cat, sample="A*", limit=n_exact), 21)
+    assert query(cat, sample="A*", limit=50) == [r for r in _python_filter(cat, "A", 50)]
     wide = len(cat.list_runs(sample_prefix="A", limit=None))
     page = query(cat, sample="AL-00*", limit=50)
     nxt = median_time(lambda: query(cat, sample="AL-00*", limit=50, before=page[-1].id), 51)
@@ -135,6 +137,8 @@ def _bench_size(folder: Path, n: int) -> None:
     print(f"    prefix 'AL-004*' ({few} matching runs)   {narrow * 1e3:8.3f} ms   ratio to exact {narrow / exact:5.1f}")
     print(f"    its next page (--before)               {nxt * 1e3:8.3f} ms   ratio to exact {nxt / exact:5.1f}")
     print(f"    prefix 'A*' ({wide} matching runs)      {deep * 1e3:8.3f} ms   ratio to exact {deep / exact:5.1f}")
+    print(f"    the same, first {n_exact} rows only          {deep_equal * 1e3:8.3f} ms   "
+          f"ratio to exact {deep_equal / exact:5.1f}  (rows for rows)")
     print(f"    sample set 'AL-00' (report --samples)  {sset * 1e3:8.3f} ms")
     print(f"    former way: fetch all, filter in Python {old * 1e3:8.1f} ms   "
           f"ratio to the SQL prefix query {old / prefix:6.0f}")

@@ -129,11 +129,34 @@ def test_prefix_query_is_an_index_range(tmp_path):
             cat._con.set_trace_callback(sql.append)
             cat.list_runs(**args)
             cat._con.set_trace_callback(None)
-            select = next(s for s in sql if s.startswith("SELECT"))
+            select = next(s for s in sql if s.startswith("SELECT") and "ORDER BY" in s)
             plan = " ".join(r[3] for r in cat._read("EXPLAIN QUERY PLAN " + select))
             assert "USING INDEX runs_by_sample_order (sample_id>? AND sample_id<?)" in plan.replace(
                 "COVERING INDEX", "INDEX"), plan
             assert "SCAN runs" not in plan, plan
+
+
+def test_a_broad_prefix_is_paged_on_the_creation_index_with_the_same_rows(tmp_path, monkeypatch):
+    """Where many runs match, the newest page is met walking the creation-time index (the range would
+    sort every match: 1.6 ms for 19,932 of 100k runs, 0.29 ms this way; bench/bench_catalog.py)."""
+    import pycnoctl.controller.record.catalog as catalog_module
+
+    monkeypatch.setattr(catalog_module, "BROAD_PREFIX", 4)
+    with Catalog(tmp_path / "c.sqlite") as cat:
+        for i in range(12):
+            cat.create_run(kind="measure", sample_id=f"{'AB'[i % 2]}-{i:03d}")
+        everything = cat.list_runs(limit=None)
+        for prefix, limit in (("A", 3), ("A", 50), ("B-01", 50), ("", 5)):
+            want = [r for r in everything if (r.sample_id or "").startswith(prefix)][:limit]
+            assert cat.list_runs(sample_prefix=prefix, limit=limit) == want, prefix
+        sql: list[str] = []
+        cat._con.set_trace_callback(sql.append)
+        cat.list_runs(sample_prefix="A", limit=3)
+        cat._con.set_trace_callback(None)
+        select = next(s for s in sql if s.startswith("SELECT") and "ORDER BY" in s)
+        # the sample index is kept out of the page query (on 100k runs SQLite then walks runs_by_created;
+        # on a dozen it may as well scan the table)
+        assert "+sample_id >=" in select, select
 
 
 def test_an_old_catalog_gains_the_indexes_and_keeps_its_version(tmp_path):

@@ -33,6 +33,9 @@ from pathlib import Path
 from typing import Any
 
 SCHEMA_VERSION = 2  # 2: calibrations bound to an instrument; retire and choose them
+#: A sample prefix matching at least this many runs is paged on the creation-time index (see
+#: Catalog.list_runs): below it, sorting the matches costs less than walking past the others.
+BROAD_PREFIX = 1000
 STATUSES = ("queued", "running", "completed", "fault", "aborted", "interrupted", "cancelled")
 TERMINAL = frozenset({"completed", "fault", "aborted", "interrupted", "cancelled"})
 _ALLOWED = {
@@ -599,11 +602,26 @@ class Catalog:
         if limit is not None:
             sql += " LIMIT ?"
             args.append(int(limit))
-            if sample_prefix:
+            if sample_prefix and self._broad(sample_prefix, bound):
+                # many runs match: walking the creation-time index newest first meets a page of them
+                # after about limit x (runs / matches) rows, where the range below would sort them all
+                sql = sql.replace("sample_id >= ?", "+sample_id >= ?").replace("sample_id < ?", "+sample_id < ?")
+            elif sample_prefix:
                 # the newest page of a prefix range is chosen on the (sample_id, created, id) index
                 # alone; only the rows kept are read from the table
                 sql = f"SELECT {_RUN_COLUMNS} FROM runs WHERE rowid IN ({sql.replace(_RUN_COLUMNS, 'rowid', 1)}){order}"
         return [RunRow(*r) for r in self._read(sql, args)]
+
+    def _broad(self, prefix: str, bound: str | None) -> bool:
+        """Whether at least BROAD_PREFIX runs start with ``prefix`` (counted on the sample index,
+        stopping there: the count costs at most that many index entries)."""
+        sql = "SELECT count(*) FROM (SELECT 1 FROM runs WHERE sample_id >= ?"
+        args: list[Any] = [prefix]
+        if bound is not None:
+            sql += " AND sample_id < ?"
+            args.append(bound)
+        args.append(BROAD_PREFIX)
+        return bool(self._read(sql + " LIMIT ?)", args)[0][0] >= BROAD_PREFIX)
 
     def mark_interrupted_on_startup(self, message: str = "daemon stopped while running; not resumed") -> list[str]:
         """Runs left 'running' by a dead daemon become 'interrupted'; nothing is resumed."""
