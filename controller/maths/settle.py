@@ -139,6 +139,7 @@ class ExpFit:
     n: int
     interior: bool  # the best tau lies strictly inside the search range (not a boundary)
     sound: bool  # fit can be trusted for extrapolation (see _is_sound)
+    u_last: float = math.nan  # standard error of the fitted curve at the last sample (tau's part included)
 
 
 def _ssr_for_tau(s: np.ndarray, y: np.ndarray, tau: float) -> tuple[float, float, float]:
@@ -313,12 +314,14 @@ def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[flo
     resid = y - (a + b * e)
     ssr_final = float(resid @ resid)
     resid_sd = math.sqrt(ssr_final / dof) if dof > 0 else 0.0
-    u_a = u_b = math.nan
+    u_a = u_b = u_last = math.nan
     if dof > 0:
         try:
             cov = np.linalg.inv(jac.T @ jac) * (ssr_final / dof)
             u_a = math.sqrt(max(cov[0, 0], 0.0))
             u_b = math.sqrt(max(cov[1, 1], 0.0))
+            g = jac[-1]  # the fitted curve's gradient in (a, b, tau) at the last sample
+            u_last = math.sqrt(max(float(g @ cov @ g), 0.0))
         except np.linalg.LinAlgError:
             pass
     interior = interior and tau_lo < tau < tau_hi
@@ -328,6 +331,7 @@ def fit_exponential_detail(t: np.ndarray | list[float], p: np.ndarray | list[flo
         tau=float(tau),
         residual_sd=p_scale * resid_sd,
         u_p_inf=p_scale * u_a,
+        u_last=p_scale * u_last,
         u_amplitude=p_scale * u_b,
         t_ref=t_ref,
         n=n,
@@ -761,7 +765,8 @@ class SettleDetector:
                 # extrapolated, the doubt is the model's: at most the whole correction applied
                 self._left = left
                 at_end = fit.p_inf + fit.amplitude * math.exp(-max(self._t_last - fit.t_ref, 0.0) / fit.tau)
-                value, u_value = (fit.p_inf, fit.u_p_inf) if extrapolate else (at_end, fit.u_p_inf)
+                u_end = fit.u_last if math.isfinite(fit.u_last) else fit.u_p_inf
+                value, u_value = (fit.p_inf, fit.u_p_inf) if extrapolate else (at_end, u_end)
                 how = "extrapolated" if extrapolate else "fitted"
             else:
                 self._left = abs(slope) * 3.0 * self.criteria.window if math.isfinite(slope) else math.nan
