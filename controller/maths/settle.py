@@ -409,6 +409,8 @@ class SettleDetector:
         self._sfit_t = -math.inf
         self._sfit_span = 0.0
         self._sfit_adequate = True
+        self._sfit_hidden = 0.0  # Pa of misfit the readings' noise can hide from the fit (see _remainder)
+        self._sfit_noise = 0.0  # Pa: the readings' noise, measured from their successive differences
         # the owner's last word before a decision (True: not yet): what the window alone cannot see,
         # e.g. a relaxation slower than it, judged from the whole settle (CycleMeasurer._slow_pending)
         self.veto: Callable[[], bool] | None = None
@@ -683,9 +685,11 @@ class SettleDetector:
             return None
         ts = np.asarray(self._all_t[n // 3:], dtype=float)
         ps = np.asarray(self._all_p[n // 3:], dtype=float)
-        # the readings' own noise, from successive differences (a relaxation's curvature hardly
-        # touches them): what the fit's residuals may be, so that a misfit can be seen
-        noise = float(np.std(np.diff(ps))) / math.sqrt(2.0) if ps.size > 2 else 0.0
+        # the readings' own noise, from their third differences (white noise of sigma gives them
+        # sigma sqrt(20); a relaxation's slope and curvature hardly reach them), robustly (median
+        # absolute deviation): what the fit's residuals may be, so that a misfit can be seen
+        d3 = np.diff(ps, 3)
+        noise = 1.4826 * float(np.median(np.abs(d3 - np.median(d3)))) / math.sqrt(20.0) if d3.size else 0.0
         b = -(-ts.size // SETTLE_FIT_POINTS)
         if b > 1:
             cut = ts.size % b  # the oldest few go, so the blocks end on the last sample
@@ -701,6 +705,7 @@ class SettleDetector:
             assert self.criteria.max_remainder is not None
             allowed = MISFIT_NOISE * noise / math.sqrt(b) + MISFIT_FLOOR * self.criteria.max_remainder
             self._sfit_adequate = bool(fit.residual_sd <= allowed)
+            self._sfit_hidden, self._sfit_noise = allowed, noise
         return fit
 
     def _remainder(self) -> tuple[float, bool]:
@@ -722,7 +727,10 @@ class SettleDetector:
         if self._fit_supports(f):
             assert f is not None
             decay = math.exp(-max(self._t_last - f.t_ref, 0.0) / f.tau)
-            return (abs(f.amplitude) + 2.0 * f.u_amplitude) * decay, True
+            # plus the misfit the noise lets pass: a second, slower relaxation that small is not seen
+            # by the fit, and its remainder is of that size (at 2 Pa without it, the bench's 30 s
+            # thermal instrument was covered in 70 % of runs)
+            return (abs(f.amplitude) + 2.0 * f.u_amplitude) * decay + self._sfit_hidden, True
         return abs(self._slope()) * 3.0 * self.criteria.window, False
 
     def _fit_supports(self, f: ExpFit | None) -> bool:
@@ -730,13 +738,15 @@ class SettleDetector:
                 and self._t_last - self._sfit_t <= self.criteria.fit_interval)
 
     def _remainder_limit(self, fitted: bool = False) -> float:
-        """Pa: max_remainder; for the slope bound (no fit resolves the relaxation), k times a reading's
-        noise where that is larger - a window slope of 20 Pa noise cannot show a 3 Pa remainder, while a
-        fit of the whole settle can, so its prediction is held to max_remainder itself.  The budget
-        takes what is left either way."""
+        """Pa: max_remainder, or k times a reading's noise where that is larger: neither a window slope
+        nor a fit hiding a misfit of the noise's size can show a remainder below it.  For the fit the
+        noise is the one measured on its samples (the clean simulator states 21 Pa and has none); for
+        the slope bound the stated one.  The budget takes what is left either way."""
         c = self.criteria
         assert c.max_remainder is not None and c.u_p is not None
-        return c.max_remainder if fitted else max(c.max_remainder, c.drift_k * c.u_p)
+        if fitted:  # the noise as measured on the samples fitted: a config may overstate it
+            return max(c.max_remainder, c.drift_k * self._sfit_noise)
+        return max(c.max_remainder, c.drift_k * c.u_p)
 
     def _remainder_small(self) -> bool:
         left, fitted = self._remainder()
