@@ -91,6 +91,32 @@ def test_the_top_of_a_turning_point_is_not_taken_for_a_settled_gas() -> None:
         assert abs(det.estimate - P_INF) <= det.remainder + 3.0 * det.u_estimate + 2.0, det.estimate - P_INF
 
 
+def test_a_wandering_lab_does_not_keep_a_settled_gas_waiting() -> None:
+    """A relaxation on top of a lab that wanders (a 6 Pa wave of 20 minutes, as the shipped noisy
+    simulator's lab does) bends a long settle by a pascal or two, more than one exponential explains at
+    8 Pa of noise: the rule must still decide, by the slope with that misfit added, not time out."""
+    def wander(t: float) -> float:
+        return _fill(t) + 6.0 * math.sin(2.0 * math.pi * t / 1200.0)
+    for seed in range(3):
+        det = _settle(_rule(2.0, u_p=8.0), wander, noise=8.0, seed=seed)
+        assert det.status is SettleStatus.SETTLED, seed
+        truth = wander(det.decided_at or 0.0)
+        assert abs(det.estimate - truth) <= det.remainder + 3.0 * det.u_estimate, (seed, det.estimate - truth)
+
+
+@pytest.mark.xfail(strict=True, reason="known limit of the remainder rule (sequences/README.md): a slower "
+                   "relaxation hidden under the noise is not in the remainder it states")
+def test_a_slower_relaxation_hidden_under_the_noise_is_in_the_stated_remainder() -> None:
+    """60 Pa relaxing with 40 s under the fill's 2 s one, at 8 Pa of noise, bends the settle less than the
+    noise, so the fit of one exponential is not refused, and the remainder it states misses most of the
+    slow part (measured 24-35 Pa off against a stated 7-8 Pa; the drift rule, 12-18 Pa off, is fooled
+    less).  Strict: the day the rule sees it, this passes, fails the suite, and the guide is updated."""
+    def hidden(t: float) -> float:
+        return _fill(t) + 60.0 * math.exp(-t / 40.0)
+    det = _settle(_rule(2.0, u_p=8.0), hidden, noise=8.0, seed=0)
+    assert abs(det.estimate - P_INF) <= det.remainder + 3.0 * det.u_estimate
+
+
 def test_a_steady_leak_is_not_taken() -> None:
     """No relaxation, only a straight fall of 1 Pa/s: what is left cannot be bounded, the settle times out."""
     det = _settle(SettleCriteria(window=10.0, max_drift=None, min_time=5.0, max_time=120.0, extrapolate=False,

@@ -720,10 +720,17 @@ class SettleDetector:
         residuals the readings' noise does not explain: the settle then holds more than one relaxation,
         or a turning point (after an expansion into a slow volume the pressure rises for 40 s and falls
         for minutes; at its top a window's slope is zero and a fit of its bend looks sound), and what is
-        left cannot be told - the rule waits (infinite remainder)."""
+        left cannot be told - the rule waits (infinite remainder).  Unless that misfit is itself under
+        the limit (a lab whose temperature wanders over a settle of minutes bends it by a pascal or two):
+        then the slope bound decides, with the misfit added and the time constant the fit found where it
+        is longer than three windows (up to the span fitted: nothing slower can be told from it)."""
         f = self._sfit
-        if not self._sfit_adequate:  # the settle is not one relaxation yet (a turning point in view)
-            return math.inf, False
+        if not self._sfit_adequate:  # not one relaxation yet: a turning point, or a wandering lab
+            misfit = f.residual_sd if f is not None else math.inf
+            if f is None or not misfit <= self._remainder_limit(False):
+                return math.inf, False
+            tau = max(3.0 * self.criteria.window, min(f.tau, self._sfit_span))
+            return abs(self._slope()) * tau + misfit, False
         if self._fit_supports(f):
             assert f is not None
             decay = math.exp(-max(self._t_last - f.t_ref, 0.0) / f.tau)
@@ -778,6 +785,8 @@ class SettleDetector:
                 u_end = fit.u_last if math.isfinite(fit.u_last) else fit.u_p_inf
                 value, u_value = (fit.p_inf, fit.u_p_inf) if extrapolate else (at_end, u_end)
                 how = "extrapolated" if extrapolate else "fitted"
+            elif math.isfinite(left):  # the slope bound (and any misfit it carries), as the rule saw it
+                self._left = left
             else:
                 self._left = abs(slope) * 3.0 * self.criteria.window if math.isfinite(slope) else math.nan
         elif extrapolate and fit is not None and fit.sound:
