@@ -104,17 +104,16 @@ def test_a_wandering_lab_does_not_keep_a_settled_gas_waiting() -> None:
         assert abs(det.estimate - truth) <= det.remainder + 3.0 * det.u_estimate, (seed, det.estimate - truth)
 
 
-@pytest.mark.xfail(strict=True, reason="known limit of the remainder rule (sequences/README.md): a slower "
-                   "relaxation hidden under the noise is not in the remainder it states")
 def test_a_slower_relaxation_hidden_under_the_noise_is_in_the_stated_remainder() -> None:
     """60 Pa relaxing with 40 s under the fill's 2 s one, at 8 Pa of noise, bends the settle less than the
-    noise, so the fit of one exponential is not refused, and the remainder it states misses most of the
-    slow part (measured 24-35 Pa off against a stated 7-8 Pa; the drift rule, 12-18 Pa off, is fooled
-    less).  Strict: the day the rule sees it, this passes, fails the suite, and the guide is updated."""
+    noise, so the fit of one exponential is not refused; but over the span fitted it falls 0.8 Pa/s, a
+    straight line six standard errors from none.  Without the line under the fit the rule took it 24-35 Pa
+    off with 7-8 Pa stated (the drift rule: 12-18 Pa off)."""
     def hidden(t: float) -> float:
         return _fill(t) + 60.0 * math.exp(-t / 40.0)
-    det = _settle(_rule(2.0, u_p=8.0), hidden, noise=8.0, seed=0)
-    assert abs(det.estimate - P_INF) <= det.remainder + 3.0 * det.u_estimate
+    for seed in range(3):
+        det = _settle(_rule(2.0, u_p=8.0), hidden, noise=8.0, seed=seed)
+        assert abs(det.estimate - P_INF) <= det.remainder + 3.0 * det.u_estimate, (seed, det.estimate - P_INF)
 
 
 def test_a_steady_leak_is_not_taken() -> None:
@@ -150,7 +149,9 @@ def test_live_and_replay_decide_alike_under_the_rule(tmp_path: Path, capsys: pyt
     live = json.loads(capsys.readouterr().out)
     main(["analyze", live["run_id"], "--data", str(tmp_path), "--json"])
     replay = json.loads(capsys.readouterr().out)
-    assert live["status"] == "completed", live.get("fault")
+    # the noisy simulator's specimen keeps relaxing for minutes: a fault, named, is a fair outcome there;
+    # what is checked is that the record replays to the same decisions either way
+    assert live["status"] == "completed" or config == "noisy", live.get("fault")
     assert replay["volume_cm3"] == live["volume_cm3"] and replay["volume_u_cm3"] == live["volume_u_cm3"]
     assert [c["p1_gauge_pa"] for c in replay["cycles"]] == [c["p1_gauge_pa"] for c in live["cycles"]]
     assert [c["settle1_s"] for c in replay["cycles"]] == [c["settle1_s"] for c in live["cycles"]]
