@@ -52,3 +52,27 @@ def test_calibration_covariance_per_volume_can_change_the_choice():
 def test_bad_input(vs, vc, choices):
     with pytest.raises(AdviceError):
         advise(vs, vc, choices, p1_gauge=1.4e5, u_p=70.0)
+
+
+def test_the_settled_u_the_advisor_weighs_is_over_the_window_the_engine_will_use():
+    """A fixed drift limit the noise cannot resolve over the stated window is met over a longer one
+    (SettleDetector._resolving_span): 20 Pa of noise, 0.1 s samples, 0.5 Pa/s and a 10 s window need
+    about 16 s, so the settled pressure's regression u is that of about 160 samples, not 100.  The
+    end-point standard error of a straight-line fit, 2 u_p / sqrt(n), is the textbook regression result
+    (common practice)."""
+    from types import SimpleNamespace
+
+    from pycnoctl.controller.jobs.measurement import _settled_u
+    from pycnoctl.controller.maths.settle import resolving_span
+
+    def seq(max_drift: object) -> SimpleNamespace:
+        return SimpleNamespace(settle_expanded=SimpleNamespace(window=10.0, max_drift=max_drift, max_time=600.0,
+                                                               max_remainder=None))
+
+    inst = SimpleNamespace(sample_period=0.1, pressure_u=20.0, pressure_u_linearity=0.0)
+    span = resolving_span(101, 0.1, 10.0, 0.5, 20.0, 300.0)
+    assert 14.0 < span < 20.0
+    assert _settled_u(seq(0.5), inst) == pytest.approx(2.0 * 20.0 / np.sqrt(span / 0.1))
+    assert _settled_u(seq("auto"), inst) == pytest.approx(2.0 * 20.0 / np.sqrt(100.0))  # auto keeps it
+    quiet = SimpleNamespace(sample_period=0.1, pressure_u=2.0, pressure_u_linearity=0.0)
+    assert _settled_u(seq(0.5), quiet) == pytest.approx(2.0 * 2.0 / np.sqrt(100.0))  # resolved: as stated

@@ -24,6 +24,7 @@ from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.domain.yamlio import ConfigError
 from pycnoctl.controller.maths import results
 from pycnoctl.controller.maths.advisor import advise
+from pycnoctl.controller.maths.settle import resolving_span
 from pycnoctl.controller.record.catalog import Catalog
 from pycnoctl.controller.record.runfolder import RecordWriteError, RunRecorder, software_version
 from pycnoctl.controller.record.storagefault import StorageFault, storage_cause
@@ -113,9 +114,18 @@ def prepare(request: RunRequest, instrument: Instrument, catalog: Catalog | None
 def _settled_u(seq: Sequence, instrument: Instrument) -> float:
     """The u a settled pressure will have, for the advisor: the end-point standard error of a regression
     over the settle window of white noise (2 u_p / sqrt(n) for n samples) with the transducer's
-    systematic part.  The advisor weighs it against each volume's calibration covariance, so its
-    size matters, not only its ratio between volumes."""
-    n = max(seq.settle_expanded.window / max(instrument.sample_period, 1e-3), 3.0)
+    systematic part; the window the engine will use (a fixed drift limit lengthens it on a noisy
+    gauge).  The advisor weighs it against each volume's calibration covariance, so its size matters,
+    not only its ratio between volumes."""
+    settle = seq.settle_expanded
+    dt = max(instrument.sample_period, 1e-3)
+    window = settle.window
+    if settle.max_drift != "auto" and getattr(settle, "max_remainder", None) is None:
+        # a fixed limit the noise cannot resolve over the stated window: the engine lengthens it
+        n_stated = int(window / dt) + 1
+        window = resolving_span(n_stated, dt, window, float(settle.max_drift), instrument.pressure_u,
+                                max(window, settle.max_time / 2.0))
+    n = max(window / dt, 3.0)
     return math.hypot(2.0 * instrument.pressure_u / math.sqrt(n),
                       linearity_u(instrument.pressure_u, instrument.pressure_u_linearity))
 

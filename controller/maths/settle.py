@@ -33,6 +33,7 @@ __all__ = [
     "SettleStatus",
     "fit_exponential",
     "fit_exponential_detail",
+    "resolving_span",
     "three_point_extrapolation",
 ]
 
@@ -416,6 +417,26 @@ def _line_under(t: np.ndarray, p: np.ndarray) -> float:
     return slope if slope > 2.0 * u_slope else 0.0
 
 
+def resolving_span(n: int, dt: float, span: float, limit: float, u_p: float, cap: float) -> float:
+    """The window (s) a drift limit needs: ``span`` (n samples dt apart) where white noise of u_p leaves
+    its regression slope a standard error of at most limit / RESOLVE, else the shortest window that
+    does, at most ``cap`` (see SettleDetector._resolving_span; the expansion-volume advisor predicts a
+    settled pressure's u over the same window)."""
+    if not dt > 0:
+        return span
+    target = limit / RESOLVE
+
+    def noise_se(m: int) -> float:
+        return u_p / (dt * math.sqrt(m * (m * m - 1) / 12.0))
+
+    if noise_se(n) <= target:  # the stated window resolves the limit: it stays as it is
+        return span
+    m = max(n + 1, math.ceil((u_p * math.sqrt(12.0) / (target * dt)) ** (2.0 / 3.0)))
+    while noise_se(m) > target:
+        m += 1
+    return float(min((m - 1) * dt, cap))
+
+
 # ----------------------------------------------------------------------------- the detector
 
 
@@ -665,20 +686,7 @@ class SettleDetector:
         limit = c.max_drift if c.max_drift is not None else self._remainder_limit() / (3.0 * c.window)
         n = len(self._bt)
         dt = (self._t_last - self._bt[0]) / (n - 1)
-        if not dt > 0:
-            return self._span
-        target = limit / RESOLVE
-        u_p: float = c.u_p
-
-        def noise_se(m: int) -> float:
-            return u_p / (dt * math.sqrt(m * (m * m - 1) / 12.0))
-
-        if noise_se(n) <= target:  # the stated window resolves the limit: it stays as it is
-            return self._span
-        m = max(n + 1, math.ceil((u_p * math.sqrt(12.0) / (target * dt)) ** (2.0 / 3.0)))
-        while noise_se(m) > target:
-            m += 1
-        return float(min((m - 1) * dt, max(c.window, c.max_time / 2.0)))
+        return resolving_span(n, dt, self._span, limit, c.u_p, max(c.window, c.max_time / 2.0))
 
     def _check_drift(self) -> bool:
         c = self.criteria
