@@ -155,3 +155,26 @@ def test_live_and_replay_decide_alike_under_the_rule(tmp_path: Path, capsys: pyt
     assert replay["volume_cm3"] == live["volume_cm3"] and replay["volume_u_cm3"] == live["volume_u_cm3"]
     assert [c["p1_gauge_pa"] for c in replay["cycles"]] == [c["p1_gauge_pa"] for c in live["cycles"]]
     assert [c["settle1_s"] for c in replay["cycles"]] == [c["settle1_s"] for c in live["cycles"]]
+
+
+@pytest.mark.parametrize("seed", range(40))
+def test_any_relaxation_ends_in_a_decision_with_a_finite_value_and_bound(seed: int) -> None:
+    """Random relaxations (one or two exponentials of either sign, 0.5-200 s, 0-30 Pa of noise, a steady
+    drift now and then): the rule never raises, always ends (settled or timed out at max_time), and a
+    settled value is finite with a finite, non-negative stated remainder."""
+    rng = np.random.default_rng(seed)
+    a1, a2 = rng.choice([-1, 1]) * 10 ** rng.uniform(0, 4.5), rng.choice([-1, 1]) * 10 ** rng.uniform(-1, 2.5)
+    t1, t2 = 10 ** rng.uniform(-0.3, 1.5), 10 ** rng.uniform(0.5, 2.3)
+    slope = rng.choice([0.0, rng.normal(0.0, 0.3)])
+    noise = float(rng.choice([0.0, rng.uniform(0.5, 30.0)]))
+
+    def shape(t: float) -> float:
+        return P_INF + a1 * math.exp(-t / t1) + a2 * math.exp(-t / t2) + slope * t
+
+    crit = SettleCriteria(window=float(rng.choice([3.0, 10.0])), max_drift=None, min_time=2.0, max_time=240.0,
+                          extrapolate=bool(rng.integers(2)), u_p=max(noise, 1.0),
+                          max_remainder=float(rng.choice([1.0, 5.0, 20.0])))
+    det = _settle(crit, shape, noise=noise, seed=seed)
+    assert det.status in (SettleStatus.SETTLED, SettleStatus.TIMED_OUT)
+    if det.status is SettleStatus.SETTLED:
+        assert math.isfinite(det.estimate) and math.isfinite(det.remainder) and det.remainder >= 0.0
