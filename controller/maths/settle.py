@@ -762,8 +762,8 @@ class SettleDetector:
             allowed = MISFIT_NOISE * noise / math.sqrt(b) + MISFIT_FLOOR * self.criteria.max_remainder
             self._sfit_adequate = bool(fit.residual_sd <= allowed)
             self._sfit_hidden, self._sfit_noise = allowed, noise
-            if self._sfit_line * self._sfit_span <= allowed:  # a line no larger than a misfit could hide
-                self._sfit_line = 0.0
+            if self._sfit_line * self._sfit_span <= MISFIT_FLOOR * self.criteria.max_remainder:
+                self._sfit_line = 0.0  # the time-constant grid's own step leaves a line that small
         return fit
 
     def _remainder(self) -> tuple[float, bool]:
@@ -800,7 +800,12 @@ class SettleDetector:
             # windows): 60 Pa relaxing with 40 s under a 2 s relaxation, at 8 Pa of noise, bends the
             # settle less than the noise but falls 0.8 Pa/s (taken 34 Pa off without this)
             return left + self._sfit_line * 3.0 * self.criteria.window, True
-        return abs(self._slope()) * 3.0 * self.criteria.window, False
+        # the slope bound: three windows, or the settle's own time constant where a sound fit of it
+        # finds a longer one it cannot yet pin down (a 50 s relaxation seen over 11 s)
+        tau = 3.0 * self.criteria.window
+        if f is not None and f.sound:
+            tau = max(tau, f.tau)
+        return abs(self._slope()) * tau, False
 
     def _fit_supports(self, f: ExpFit | None) -> bool:
         return (f is not None and f.sound and f.tau <= self._sfit_span
