@@ -56,7 +56,7 @@ class SettleCriteria:
     window: s of samples in the regression; max_drift: Pa/s, or None for the adaptive rule
     |dP/dt| < drift_k * u_p / tau (u_p: standard uncertainty of one pressure reading, Pa), or, with
     ``max_remainder`` (Pa), the remainder rule: the relaxation still to come after the last sample
-    under max(max_remainder, drift_k * u_p);
+    under max_remainder (or drift_k times the readings' noise where larger);
     min_time / max_time: s since the detector's t0; extrapolate: record the fitted Pinf when
     the exponential fit is sound.
     """
@@ -71,7 +71,8 @@ class SettleCriteria:
     fit_interval: float = 1.0  # s of sample time between exponential refits (adaptive rule)
     hold: float | None = None  # s the drift rule must hold without a break; None -> half the window
     # Pa: the remainder rule (replaces max_drift): accept when the relaxation still to come after the
-    # last sample is under max(max_remainder, drift_k * u_p) - see SettleDetector._remainder
+    # last sample is under max_remainder, or k times the readings' noise where larger - see
+    # SettleDetector._remainder
     max_remainder: float | None = None
 
     def __post_init__(self) -> None:
@@ -478,7 +479,7 @@ class SettleDetector:
         self._sfit_adequate = True
         self._sfit_line = 0.0  # |Pa/s| of a significant straight line under the fitted relaxation
         self._sfit_hidden = 0.0  # Pa of misfit the readings' noise can hide from the fit (see _remainder)
-        self._sfit_noise = 0.0  # Pa: the readings' noise, measured from their successive differences
+        self._sfit_noise = 0.0  # Pa: the readings' noise, measured from their third differences
         # the owner's last word before a decision (True: not yet): what the window alone cannot see,
         # e.g. a relaxation slower than it, judged from the whole settle (CycleMeasurer._slow_pending)
         self.veto: Callable[[], bool] | None = None
@@ -773,8 +774,9 @@ class SettleDetector:
         sound and its time constant at most the span it was fitted on: its exponential at the last
         sample, with two standard errors of its amplitude - the pressure's own prediction, free of the
         lag of a window slope (a 10 s window's slope over a 2 s relaxation is its mean over the window,
-        several times the slope at its end).  Otherwise the bound the budget takes: |slope| times three
-        windows, the slowest relaxation a window can tell from a line.  Neither while the fit leaves
+        several times the slope at its end); plus what a fit of one exponential cannot see (below).
+        Otherwise a slope bound: |slope| times three windows, the slowest relaxation a window can tell
+        from a line, or a sound fit's longer time constant.  Neither while the fit leaves
         residuals the readings' noise does not explain: the settle then holds more than one relaxation,
         or a turning point (after an expansion into a slow volume the pressure rises for 40 s and falls
         for minutes; at its top a window's slope is zero and a fit of its bend looks sound), and what is
@@ -845,8 +847,8 @@ class SettleDetector:
             left, fitted = self._remainder()
             if fitted and fit is not None:
                 # the window bends: its regression line would miss the end of the curve, so the
-                # value is the fit's own at the last sample (or its asymptote when extrapolating)
-                # extrapolated, the doubt is the model's: at most the whole correction applied
+                # value is the fit's own at the last sample, or its asymptote when extrapolating (then
+                # what it stated is the model's doubt: at most the whole correction applied)
                 self._left = left
                 at_end = fit.p_inf + fit.amplitude * math.exp(-max(self._t_last - fit.t_ref, 0.0) / fit.tau)
                 u_end = fit.u_last if math.isfinite(fit.u_last) else fit.u_p_inf
