@@ -20,6 +20,7 @@ import os
 from collections.abc import Sequence
 
 from pycnoctl.controller.cli.main import UsageError
+from pycnoctl.controller.domain.values import FrozenValue, Value
 
 # Start-up time of the command line: csv and json are imported by the functions that use them, and
 # typing not at all (typing.TYPE_CHECKING without the import; type checkers take the name as True).
@@ -43,32 +44,15 @@ _P_DECIMALS = {"bar": 5, "kPa": 3, "psi": 4}
 _RHO_DECIMALS = {"g/cm3": 5, "kg/m3": 2}
 
 
-class Units:
+class Units(FrozenValue):
     """The units figures are shown in (immutable)."""
 
+    _FIELDS = ("pressure", "density")
     pressure: str
     density: str
 
     def __init__(self, pressure: str = "bar", density: str = "g/cm3") -> None:
-        object.__setattr__(self, "pressure", pressure)
-        object.__setattr__(self, "density", density)
-
-    def __setattr__(self, name: str, value: object) -> None:
-        raise AttributeError(f"cannot assign to field {name!r}")
-
-    def __delattr__(self, name: str) -> None:
-        raise AttributeError(f"cannot delete field {name!r}")
-
-    def __eq__(self, other: object) -> bool:
-        if not isinstance(other, Units) or other.__class__ is not self.__class__:
-            return NotImplemented
-        return (self.pressure, self.density) == (other.pressure, other.density)
-
-    def __hash__(self) -> int:
-        return hash((self.pressure, self.density))
-
-    def __repr__(self) -> str:
-        return f"{type(self).__qualname__}(pressure={self.pressure!r}, density={self.density!r})"
+        self._freeze(pressure=pressure, density=density)
 
     def p(self, gauge_pa: float | None) -> str:
         """A gauge pressure (Pa) as a number in the display unit ('-' when there is none)."""
@@ -125,10 +109,11 @@ def add_output_args(p: argparse.ArgumentParser, *, what: str) -> None:
 
 
 # ----------------------------------------------------------------------------------------- tables
-class Column:
+class Column(Value):
     """A table column: its header, whether it is numeric (right-aligned) and how much it matters
     (0 = never dropped; higher numbers are dropped first when the terminal is narrow)."""
 
+    _FIELDS = ("header", "numeric", "priority", "wrap")
     header: str
     numeric: bool
     priority: int
@@ -140,34 +125,17 @@ class Column:
         self.priority = priority
         self.wrap = wrap
 
-    def __eq__(self, other: object) -> bool:
-        if not isinstance(other, Column) or other.__class__ is not self.__class__:
-            return NotImplemented
-        return (self.header, self.numeric, self.priority, self.wrap) == (other.header, other.numeric,
-                                                                          other.priority, other.wrap)
 
-    def __repr__(self) -> str:
-        return (f"{type(self).__qualname__}(header={self.header!r}, numeric={self.numeric!r}, "
-                f"priority={self.priority!r}, wrap={self.wrap!r})")
-
-
-class Fitted:
+class Fitted(Value):
     """A table fitted to a width: the columns kept (their indices) and the headers left out."""
 
+    _FIELDS = ("keep", "dropped")
     keep: list[int]
     dropped: list[str]
 
     def __init__(self, keep: list[int], dropped: list[str] | None = None) -> None:
         self.keep = keep
         self.dropped = [] if dropped is None else dropped
-
-    def __eq__(self, other: object) -> bool:
-        if not isinstance(other, Fitted) or other.__class__ is not self.__class__:
-            return NotImplemented
-        return (self.keep, self.dropped) == (other.keep, other.dropped)
-
-    def __repr__(self) -> str:
-        return f"{type(self).__qualname__}(keep={self.keep!r}, dropped={self.dropped!r})"
 
 
 def _cell_width(text: str) -> int:

@@ -31,6 +31,8 @@ from __future__ import annotations
 
 from collections.abc import Callable
 
+from pycnoctl.controller.domain.values import FrozenValue
+
 #: Molar gas constant, J/(mol K): N_A k with both exact since the 2019 SI (CODATA 2018 prints it
 #: as 8.314462618...; the product keeps all digits).
 R: float = 6.02214076e23 * 1.380649e-23
@@ -56,15 +58,16 @@ def _series(coeffs: tuple[float, ...], t: float) -> float:
     return total
 
 
-class Gas:
+class Gas(FrozenValue):
     """One working gas.  ``b_coeffs`` in cm^3/mol, ``c_coeffs`` in cm^6/mol^2 (series in T_FIT/T).
 
     Immutable; equal (and hashed) on every field but ``source``; its repr shows name, molar mass and
-    gamma: what it was as ``@dataclass(frozen=True)``.  Written out because importing dataclasses
-    (it imports inspect) and building the seven on the ``pycnoctl compute`` path cost that command
-    8.5 ms of its 27.4 ms start (18.9 ms without; bench/bench_startup.py).
+    gamma (not a dataclass: see domain.values).
     """
 
+    _FIELDS = ("name", "molar_mass", "gamma", "b_coeffs", "c_coeffs", "source")
+    _COMPARED = ("name", "molar_mass", "gamma", "b_coeffs", "c_coeffs")
+    _SHOWN = ("name", "molar_mass", "gamma")
     name: str
     molar_mass: float  # kg/mol
     gamma: float  # ideal-gas Cp/Cv near room temperature
@@ -74,32 +77,8 @@ class Gas:
 
     def __init__(self, name: str, molar_mass: float, gamma: float, b_coeffs: tuple[float, ...] = (),
                  c_coeffs: tuple[float, ...] = (), source: str = "") -> None:
-        object.__setattr__(self, "name", name)
-        object.__setattr__(self, "molar_mass", molar_mass)
-        object.__setattr__(self, "gamma", gamma)
-        object.__setattr__(self, "b_coeffs", b_coeffs)
-        object.__setattr__(self, "c_coeffs", c_coeffs)
-        object.__setattr__(self, "source", source)
-
-    def __setattr__(self, name: str, value: object) -> None:
-        raise AttributeError(f"cannot assign to field {name!r}")
-
-    def __delattr__(self, name: str) -> None:
-        raise AttributeError(f"cannot delete field {name!r}")
-
-    def _key(self) -> tuple[object, ...]:
-        return (self.name, self.molar_mass, self.gamma, self.b_coeffs, self.c_coeffs)
-
-    def __eq__(self, other: object) -> bool:
-        if not isinstance(other, Gas) or other.__class__ is not self.__class__:
-            return NotImplemented
-        return self._key() == other._key()
-
-    def __hash__(self) -> int:
-        return hash(self._key())
-
-    def __repr__(self) -> str:
-        return f"{type(self).__qualname__}(name={self.name!r}, molar_mass={self.molar_mass!r}, gamma={self.gamma!r})"
+        self._freeze(name=name, molar_mass=molar_mass, gamma=gamma, b_coeffs=b_coeffs, c_coeffs=c_coeffs,
+                     source=source)
 
     @property
     def is_ideal(self) -> bool:

@@ -27,6 +27,7 @@ from pycnoctl.controller.maths.settle import (
     SettleCriteria,
     SettleDetector,
     SettleStatus,
+    block_means,
     fit_exponential_detail,
 )
 
@@ -440,11 +441,7 @@ class CycleMeasurer:
             return self._slow_cache[2]  # the veto just fitted these samples: the decision reuses it
         ts = np.asarray(t[len(t) // 3:], dtype=float)
         ps = np.asarray(p[len(p) // 3:], dtype=float)
-        b = -(-ts.size // SLOW_POINTS)  # block means of b samples: at most SLOW_POINTS points to fit
-        if b > 1:
-            cut = ts.size % b  # the oldest few go, so the blocks end on the last sample
-            ts = ts[cut:].reshape(-1, b).mean(axis=1)
-            ps = ps[cut:].reshape(-1, b).mean(axis=1)
+        ts, ps, _ = block_means(ts, ps, SLOW_POINTS)
         try:
             fit: ExpFit | None = fit_exponential_detail(ts, ps, precise=False)
         except ValueError:

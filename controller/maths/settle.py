@@ -31,6 +31,7 @@ __all__ = [
     "SettleCriteria",
     "SettleDetector",
     "SettleStatus",
+    "block_means",
     "fit_exponential",
     "fit_exponential_detail",
     "resolving_span",
@@ -418,6 +419,18 @@ def _line_under(t: np.ndarray, p: np.ndarray) -> float:
     return slope if slope > 2.0 * u_slope else 0.0
 
 
+def block_means(t: np.ndarray, p: np.ndarray, points: int) -> tuple[np.ndarray, np.ndarray, int]:
+    """(times, pressures, samples per block): means of blocks of equal size, at most ``points`` of
+    them, the oldest few samples left out so that the last block ends on the last sample.  A fit of a
+    whole settle then costs what a fit of ``points`` samples costs."""
+    b = -(-t.size // points)
+    if b > 1:
+        cut = t.size % b
+        t = t[cut:].reshape(-1, b).mean(axis=1)
+        p = p[cut:].reshape(-1, b).mean(axis=1)
+    return t, p, b
+
+
 def resolving_span(n: int, dt: float, span: float, limit: float, u_p: float, cap: float) -> float:
     """The window (s) a drift limit needs: ``span`` (n samples dt apart) where white noise of u_p leaves
     its regression slope a standard error of at most limit / RESOLVE, else the shortest window that
@@ -746,25 +759,24 @@ class SettleDetector:
         # absolute deviation): what the fit's residuals may be, so that a misfit can be seen
         d3 = np.diff(ps, 3)
         noise = 1.4826 * float(np.median(np.abs(d3 - np.median(d3)))) / math.sqrt(20.0) if d3.size else 0.0
-        b = -(-ts.size // SETTLE_FIT_POINTS)
-        if b > 1:
-            cut = ts.size % b  # the oldest few go, so the blocks end on the last sample
-            ts = ts[cut:].reshape(-1, b).mean(axis=1)
-            ps = ps[cut:].reshape(-1, b).mean(axis=1)
+        ts, ps, b = block_means(ts, ps, SETTLE_FIT_POINTS)
         try:
             fit: ExpFit | None = fit_exponential_detail(ts, ps, precise=precise)
         except ValueError:
             fit = None
         self._sfit = fit
         self._sfit_span = float(ts[-1] - ts[0]) if ts.size > 1 else 0.0
-        self._sfit_line = _line_under(ts, ps) if fit is not None and ts.size >= 8 else 0.0
+        self._sfit_line = 0.0
         if fit is not None:
             assert self.criteria.max_remainder is not None
             allowed = MISFIT_NOISE * noise / math.sqrt(b) + MISFIT_FLOOR * self.criteria.max_remainder
             self._sfit_adequate = bool(fit.residual_sd <= allowed)
             self._sfit_hidden, self._sfit_noise = allowed, noise
-            if self._sfit_line * self._sfit_span <= MISFIT_FLOOR * self.criteria.max_remainder:
-                self._sfit_line = 0.0  # the time-constant grid's own step leaves a line that small
+            # the line under it counts only where the fit speaks for the settle: fitted only then
+            if self._sfit_adequate and self._fit_supports(fit) and ts.size >= 8:
+                line = _line_under(ts, ps)
+                if line * self._sfit_span > MISFIT_FLOOR * self.criteria.max_remainder:
+                    self._sfit_line = line  # smaller, it is the time-constant grid's own step
         return fit
 
     def _remainder(self) -> tuple[float, bool]:

@@ -15,6 +15,7 @@ import math
 from collections.abc import Callable, Sequence
 
 from pycnoctl.controller.domain.gas import Gas, get_gas
+from pycnoctl.controller.domain.values import FrozenValue, Value
 from pycnoctl.controller.maths.volume import expansion_ratio, resolve_temperatures, sample_volume
 
 # typing.TYPE_CHECKING without importing typing (about 2 ms of every start of the command line; the
@@ -40,15 +41,12 @@ def stdev(data: Sequence[float], xbar: float | None = None) -> float:
 K_DEFAULT = 2.0
 
 
-# Contribution, Budget and ScatterCheck are plain classes written out, not dataclasses: importing
-# dataclasses (it imports inspect) and building the seven on the `pycnoctl compute` path cost that
-# command 8.5 ms of its 27.4 ms start (18.9 ms without; bench/bench_startup.py), and it builds a Budget.
-# Each keeps what it had as a dataclass: the same constructor (positional order and defaults),
-# attributes, == and repr; the two mutable ones are unhashable (a class that defines __eq__ alone is),
-# ScatterCheck is immutable and hashable.
+# Contribution, Budget and ScatterCheck are not dataclasses (see domain.values: the start-up of
+# `pycnoctl compute`, which builds a Budget): the two mutable ones are unhashable, ScatterCheck is
+# immutable and hashable, as they were.
 
 
-class Contribution:
+class Contribution(Value):
     """One input: its value, standard uncertainty, sensitivity coefficient and c*u (signed).
 
     ``variance`` is what the row adds to u_c^2 (c^2 u^2, or 2 c_i c_j cov for a covariance row,
@@ -60,6 +58,7 @@ class Contribution:
     or "B" (from stated figures: certificates, specifications, a calibration).
     """
 
+    _FIELDS = ("name", "value", "std_u", "sensitivity", "contribution", "variance", "kind", "random", "evaluation")
     name: str
     value: float
     std_u: float
@@ -82,25 +81,12 @@ class Contribution:
         self.random = random
         self.evaluation = evaluation
 
-    def _fields(self) -> tuple[object, ...]:
-        return (self.name, self.value, self.std_u, self.sensitivity, self.contribution, self.variance, self.kind,
-                self.random, self.evaluation)
-
-    def __eq__(self, other: object) -> bool:
-        if not isinstance(other, Contribution) or other.__class__ is not self.__class__:
-            return NotImplemented
-        return self._fields() == other._fields()
-
-    def __repr__(self) -> str:
-        return (f"{type(self).__qualname__}(name={self.name!r}, value={self.value!r}, std_u={self.std_u!r}, "
-                f"sensitivity={self.sensitivity!r}, contribution={self.contribution!r}, "
-                f"variance={self.variance!r}, kind={self.kind!r}, random={self.random!r}, "
-                f"evaluation={self.evaluation!r})")
 
 
-class Budget:
+class Budget(Value):
     """Combined standard uncertainty of one quantity and the rows that make it up."""
 
+    _FIELDS = ("quantity", "value", "contributions", "combined", "k", "expanded", "unit", "notes", "scatter")
     quantity: str
     value: float
     contributions: list[Contribution]
@@ -123,20 +109,6 @@ class Budget:
         self.unit = unit
         self.notes = [] if notes is None else notes
         self.scatter = scatter
-
-    def _fields(self) -> tuple[object, ...]:
-        return (self.quantity, self.value, self.contributions, self.combined, self.k, self.expanded, self.unit,
-                self.notes, self.scatter)
-
-    def __eq__(self, other: object) -> bool:
-        if not isinstance(other, Budget) or other.__class__ is not self.__class__:
-            return NotImplemented
-        return self._fields() == other._fields()
-
-    def __repr__(self) -> str:
-        return (f"{type(self).__qualname__}(quantity={self.quantity!r}, value={self.value!r}, "
-                f"contributions={self.contributions!r}, combined={self.combined!r}, k={self.k!r}, "
-                f"expanded={self.expanded!r}, unit={self.unit!r}, notes={self.notes!r}, scatter={self.scatter!r})")
 
     def as_table(self) -> list[dict[str, float | str]]:
         """Rows for printing or JSON: name, value, std_u, sensitivity, contribution, share of u_c^2."""
@@ -281,7 +253,7 @@ def type_a(values: Sequence[float]) -> tuple[float, float, float]:
 SCATTER_ALPHA = 0.01
 
 
-class ScatterCheck:
+class ScatterCheck(FrozenValue):
     """The cycles' observed scatter against the per-cycle budget's random part (a Birge ratio).
 
     Why: the budget predicts how far cycles should scatter from the noise it knows of; a scatter
@@ -291,6 +263,7 @@ class ScatterCheck:
 
     Immutable (see the note above Contribution for why it is not a dataclass)."""
 
+    _FIELDS = ("n", "sd", "predicted", "birge_ratio", "p_above", "p_below")
     n: int
     sd: float  # observed cycle-to-cycle standard deviation
     predicted: float  # the budget's random standard uncertainty of one cycle
@@ -300,33 +273,7 @@ class ScatterCheck:
 
     def __init__(self, n: int, sd: float, predicted: float, birge_ratio: float, p_above: float,
                  p_below: float) -> None:
-        object.__setattr__(self, "n", n)
-        object.__setattr__(self, "sd", sd)
-        object.__setattr__(self, "predicted", predicted)
-        object.__setattr__(self, "birge_ratio", birge_ratio)
-        object.__setattr__(self, "p_above", p_above)
-        object.__setattr__(self, "p_below", p_below)
-
-    def __setattr__(self, name: str, value: object) -> None:
-        raise AttributeError(f"cannot assign to field {name!r}")
-
-    def __delattr__(self, name: str) -> None:
-        raise AttributeError(f"cannot delete field {name!r}")
-
-    def _fields(self) -> tuple[object, ...]:
-        return (self.n, self.sd, self.predicted, self.birge_ratio, self.p_above, self.p_below)
-
-    def __eq__(self, other: object) -> bool:
-        if not isinstance(other, ScatterCheck) or other.__class__ is not self.__class__:
-            return NotImplemented
-        return self._fields() == other._fields()
-
-    def __hash__(self) -> int:
-        return hash(self._fields())
-
-    def __repr__(self) -> str:
-        return (f"{type(self).__qualname__}(n={self.n!r}, sd={self.sd!r}, predicted={self.predicted!r}, "
-                f"birge_ratio={self.birge_ratio!r}, p_above={self.p_above!r}, p_below={self.p_below!r})")
+        self._freeze(n=n, sd=sd, predicted=predicted, birge_ratio=birge_ratio, p_above=p_above, p_below=p_below)
 
     @property
     def verdict(self) -> str:
