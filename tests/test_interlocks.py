@@ -521,3 +521,26 @@ def test_leak_after_a_vent_is_still_caught_within_three_windows():
     idx, trip = Harness().run(seq)
     assert trip is not None and trip.kind == "inlet_leak"
     assert seq[idx][0] - 10.0 <= 3 * LIMITS.closed_inlet_window + 2 * DT
+
+
+def _approach_after_vent(supply: float, tau: float, seed: int = 5):
+    """Vented, then the vent closes at t=10 s behind an inlet stuck open: the cell approaches the
+    supply pressure as supply (1 - exp(-t/tau)), fast in a small volume."""
+    rng = np.random.default_rng(seed)
+    out = [(round(k * DT, 10), rng.normal(0, 15.0), VENTED) for k in range(100)]
+    for k in range(100, 600):
+        t = round(k * DT, 10)
+        out.append((t, supply * (1.0 - math.exp(-(t - 10.0) / tau)) + rng.normal(0, 15.0), CLOSED))
+    return out
+
+
+@pytest.mark.parametrize("tau", [2.0, 3.0, 5.0])
+def test_an_inlet_stuck_open_behind_a_closed_vent_trips_however_fast_it_fills(tau):
+    # A small cell behind a stuck inlet nears its supply within one window, so the rise slows like a
+    # rewarming's and the persistence test would excuse it: a cell at 140 kPa passed as "settled
+    # above ambient". A rewarming after a vent cannot rise HUGE_RISE x closed_inlet_rise (20 kPa)
+    # within one window: that needs gas some 60 K below the wall when the vent shuts.
+    seq = _approach_after_vent(140e3, tau)
+    idx, trip = Harness().run(seq)
+    assert trip is not None and trip.kind == "inlet_leak"
+    assert seq[idx][0] - 10.0 <= LIMITS.closed_inlet_window + 2 * DT

@@ -343,7 +343,10 @@ class InletLeak(Rule):
     ``leak_persist_ratio`` of the slope over the W that began (LONG_WINDOWS - 1) W earlier.  A constant
     leak passes that at once; a rewarming decays by exp(-2 W/tau) and is excused up to tau = 9 W
     (45 s with the defaults), at the cost of a leak after a vent being caught 3 W after the vent
-    closed, not 1 W.  A rise above ``HUGE_RISE`` times the limit within one W trips without waiting.
+    closed, not 1 W.  A rise above ``HUGE_RISE`` times the limit within one W after a vent trips
+    without waiting and whether or not it slows: a rewarming that large needs gas some 60 K below the
+    wall when the vent shuts, while a small cell behind an inlet stuck open nears its supply within a
+    window and slows like a rewarming.
     """
 
     LONG_WINDOWS = 3
@@ -397,9 +400,10 @@ class InletLeak(Rule):
             return None
         s1 = _slope(ts[first], ps[first])
         s2 = _slope(ts[~first], ps[~first])
-        if not seen.inlet_closed_last and not (s1 > 0 and s2 >= self.persist * s1):
-            return None  # decaying rise: gas rewarming, not a leak
-        if seen.vent_closed_last and rise <= self.HUGE_RISE * lim.closed_inlet_rise:
+        huge_after_vent = seen.vent_closed_last and rise > self.HUGE_RISE * lim.closed_inlet_rise
+        if not seen.inlet_closed_last and not huge_after_vent and not (s1 > 0 and s2 >= self.persist * s1):
+            return None  # decaying rise: gas rewarming, not a leak (a huge one after a vent cannot be)
+        if seen.vent_closed_last and not huge_after_vent:
             span = self.LONG_WINDOWS * w
             if t - seen.valves_changed_at < span * (1 - 1e-9):
                 return None  # not yet a long enough record to tell a slow rewarming from a leak
