@@ -205,9 +205,15 @@ class RunEngine:
         self.machine.events["abort"].trigger(self)
 
     # ----- state entry: valve commands only --------------------------------------------------
+    def _expansions_for_run(self) -> dict[str, bool]:
+        """The run's own expansion volume open, every other one shut. Why: a volume this run never
+        expands into need not be purged (on the clean demo it more than doubled each purge pulse's
+        fill), and shut it cannot pass its air to the cell through the vents and zeros between
+        cycles; its own run purges it."""
+        return {v: v == self.exp_valve for v in self.roles.expansion.values()}
+
     def on_enter_purge_fill(self) -> None:
-        expansion = {v: True for v in self.roles.expansion.values()}
-        self._set(**{self.roles.vent: False}, **expansion)
+        self._set(**{self.roles.vent: False}, **self._expansions_for_run())
         self._check_supply()
         self._set(**{self.roles.inlet: True})
 
@@ -236,7 +242,7 @@ class RunEngine:
 
     def on_enter_vent(self) -> None:
         self._set(**{self.roles.inlet: False})
-        self._set(**{self.roles.vent: True, **{v: True for v in self.roles.expansion.values()}})
+        self._set(**{self.roles.vent: True, **self._expansions_for_run()})
 
     def on_enter_baseline(self) -> None:
         self._set(**{self.roles.vent: False})
