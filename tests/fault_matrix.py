@@ -43,7 +43,9 @@ class Case:
     sequence: str = "quick-demo"
     stuck: dict[str, bool] = field(default_factory=dict)  # valves the fault holds, whatever is commanded
     flag: str | None = None
-    flag_every_cycle: bool = True  # False: on at least the last cycle (a marginal leak shows as it accumulates)
+    # False: on at least one cycle (a marginal leak is found in some cycles, not in all: its slope is
+    # near what the noise can tell from the relaxation, and which cycles show it varies with the noise)
+    flag_every_cycle: bool = True
     bench: dict[str, Any] | None = None  # replaces the pressure instrument section (None: BASE's)
     board_lost: bool = False  # no command reaches the valves: software cannot move them (see problems)
 
@@ -201,8 +203,8 @@ def problems(o: Outcome) -> list[str]:
             bad.append(f"expected a completed run, got {o.status} / {o.trip}")
         if c.flag and c.flag_every_cycle and not (o.flags and all(c.flag in f for f in o.flags)):
             bad.append(f"expected flag {c.flag} on every cycle, got {o.flags}")
-        if c.flag and not c.flag_every_cycle and not (o.flags and c.flag in o.flags[-1]):
-            bad.append(f"expected flag {c.flag} on the last cycle, got {o.flags}")
+        if c.flag and not c.flag_every_cycle and not any(c.flag in f for f in o.flags):
+            bad.append(f"expected flag {c.flag} on at least one cycle, got {o.flags}")
     else:
         if o.trip not in c.expect:
             bad.append(f"tripped {o.trip}, expected one of {c.expect}")

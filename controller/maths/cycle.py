@@ -575,10 +575,11 @@ class CycleMeasurer:
         longer = self._slower_tau(det)
         if longer is not None:  # the window's slope goes on for the settle's own time constant
             u_relax = max(u_relax, abs(det.drift) * longer / math.sqrt(3.0))
-        drift = None if timed_out else drift_unexplained(*self._trace, self.plan.u_p)
+        drift = drift_unexplained(*self._trace, self.plan.u_p)
         if drift is not None:
             # a steady slope the relaxation does not explain (a leak, gas going into the sample): the
-            # pressure it moved over the settle is the error it may have left, as a rectangular bound
+            # pressure it moved over the settle is the error it may have left, as a rectangular bound;
+            # on a settle given up at its time limit too (a leak the hold would not pass ends there)
             span = self._trace[0][-1] - self._trace[0][0]
             u_relax = math.hypot(u_relax, abs(drift.slope) * span / math.sqrt(3.0))
         ambients = [a for a in self._ambients[-_LAST:] if math.isfinite(a)]
@@ -597,9 +598,9 @@ class CycleMeasurer:
             cyc.settle2_s, cyc.drift2_pa_s, cyc.n_t2 = val.time, val.drift, n_temps
             cyc.ambient2_pa, cyc.since_zero2_s = ambient, since
         if timed_out:
-            cyc.flags.append(f"unsettled_{which}")  # already says the drift remained
-        elif drift is not None:
-            cyc.flags.append(f"drift_{which}")  # settled by the drift rule, yet a steady slope: a leak
+            cyc.flags.append(f"unsettled_{which}")  # the time limit ran out with the pressure still moving
+        if drift is not None:
+            cyc.flags.append(f"drift_{which}")  # a steady slope no relaxation explains: a leak
 
     def _complete(self) -> None:
         cyc = self.current

@@ -42,6 +42,10 @@ __all__ = [
 #: The fixed rule's window is lengthened until noise alone leaves its slope max_drift / RESOLVE of
 #: standard error (see SettleDetector._resolving_span).
 RESOLVE = 2.0
+#: A drift rule's hold is at least this share of the time the settle took to get under its limit
+#: (see SettleDetector._hold).
+HOLD_SHARE = 0.2
+HOLD_CAP = 1.0  # ... but not over this many windows: under noise a longer unbroken hold seldom completes
 
 
 class SettleStatus(enum.Enum):
@@ -672,7 +676,7 @@ class SettleDetector:
             self._quiet_since = None
         elif self._quiet_since is None:
             self._quiet_since = t
-        held = quiet and self._quiet_since is not None and t - self._quiet_since >= c.hold_time * (1.0 - 1e-9)
+        held = quiet and self._quiet_since is not None and t - self._quiet_since >= self._hold() * (1.0 - 1e-9)
         if held and elapsed >= c.min_time:
             if self._confirmed() and not (self.veto is not None and self.veto()):
                 self._decide(SettleStatus.SETTLED)
@@ -681,6 +685,21 @@ class SettleDetector:
         if elapsed >= c.max_time:
             self._decide(SettleStatus.TIMED_OUT)
         return self._status
+
+    def _hold(self) -> float:
+        """How long the slope must stay under the limit: the rule's hold, or HOLD_SHARE of the time
+        the settle took to get there (at most HOLD_CAP windows), whichever is longer. Why: where two
+        relaxations of opposite sign and like time constants meet (the cell's gas warming while the
+        expansion volume's cools) the pressure rises, stays level for many seconds and falls again,
+        and with noise a hold of half a window passed on the level top (a 7.19 cm3 specimen measured
+        6.99 on a 30 s thermal bench). A top comes after a rise that took a time like the relaxations' own; a slope that
+        needed minutes to fall under the limit is confirmed over a time in proportion. A gas that
+        gets quiet within 2.5 windows keeps the stated hold (window / 2)."""
+        c = self.criteria
+        quiet = self._quiet_since
+        if quiet is None:
+            return c.hold_time
+        return max(c.hold_time, min(HOLD_SHARE * (quiet - self.t0), HOLD_CAP * self._span))
 
     def _resolving_span(self) -> float:
         """The shortest window over which white noise of u_p leaves the slope a standard error of at
