@@ -92,7 +92,8 @@ def main(args: argparse.Namespace) -> int:
                    pressure_u=float(inst["pressure_u"]), temperature_u=float(inst["temperature_u"]),
                    pressure_u_linearity=inst.get("pressure_u_linearity"),
                    ambient=AmbientModel(bool(inst.get("barometer")), float(inst.get("barometer_u") or 0.0),
-                                        float(inst.get("ambient_drift_rate") or 0.0)))
+                                        float(inst.get("ambient_drift_rate") or 0.0),
+                                        bool(inst["pressure_is_gauge"])))
     res = re.result
     out: dict[str, Any] = {
         "run_id": stored["run_id"], "sequence": seq.name, "gas": gas,

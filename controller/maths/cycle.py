@@ -15,6 +15,7 @@ is followed by the vent (a fault or an abort cuts it short). Pure code: no I/O, 
 from __future__ import annotations
 
 import math
+from collections import deque
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -32,6 +33,12 @@ from pycnoctl.controller.maths.settle import (
 )
 
 _LAST = 20  # samples averaged for the ambient pressure and the gas temperature of a settled value
+# s: under a gauge transducer a settle follows the lab by a straight line through its readings over
+# the last LAB_SPAN (the lab changes over minutes; one reading carries its noise), once they span
+# LAB_LINE_FROM; before that, by their mean (see LabLine)
+LAB_SPAN = 30.0
+LAB_LINE_FROM = 10.0
+LAB_READ_EVERY = 1.0  # s between barometer readings (the controller reads it once a second)
 
 
 @dataclass(slots=True)  # made on every tick: slots, not frozen (a frozen __init__ is markedly slower)
@@ -147,6 +154,27 @@ class AmbientModel:
     barometer: bool
     u_barometer: float = 0.0  # Pa, one barometer reading's noise (its means average it down)
     drift_rate: float = 0.0  # Pa/s, the largest lab-pressure change rate assumed without a barometer
+    reads_gauge: bool = True  # the transducer reads against the lab (False: absolute, gauge = abs - lab)
+
+    @property
+    def follows_lab(self) -> bool:
+        """True when the settle detector should see the closed cell's own pressure, not the gauge
+        reading: a read lab pressure moves a gauge reading (or an absolute reading less the lab) while
+        the closed gas stays put, and the detector took a 20 Pa barometric wave over a settle for a
+        relaxation still under way."""
+        return self.barometer or not self.reads_gauge
+
+    @property
+    def u_followed(self) -> float | None:
+        """Pa, standard: the lab pressure's error in a settled value where the settle follows the lab
+        (None where it does not). An absolute transducer's value is its own reading: none. Under a gauge
+        transducer, the line through LAB_SPAN s of readings at its newest end: 2 u / sqrt(n) for n
+        evenly spaced readings (the standard error of a fitted line's end point)."""
+        if not self.follows_lab:
+            return None
+        if not self.reads_gauge:
+            return 0.0
+        return 2.0 * self.u_barometer / math.sqrt(LAB_SPAN / LAB_READ_EVERY)
 
 
 def settled_u_parts(det: SettleDetector) -> tuple[float, float]:
@@ -291,6 +319,7 @@ _SETTLES = frozenset({RunState.BASELINE.value, RunState.SETTLE_FILLED.value, Run
 _BASELINE = RunState.BASELINE.value
 _LEAK_HOLD = RunState.LEAK_HOLD.value
 _MEASURED = _SETTLES | {_LEAK_HOLD}  # states whose rows feed a detector or the leak fit
+_VENT = RunState.VENT.value
 
 
 class OnlineSlope:
@@ -320,6 +349,61 @@ class OnlineSlope:
         return self.ctp / self.ctt if self.n >= 2 and self.ctt > 0.0 else math.nan
 
 
+class LabLine:
+    """The lab pressure now, from the readings the run's settles saw: a least-squares line through
+    those of the last LAB_SPAN s evaluated at the newest time, once they span LAB_LINE_FROM s (their
+    mean before, in the run's first settle). Why a line: a smoothing average lags a steady change by
+    half its span and the settle would see that lag come and go; a line follows a steady change
+    (weather, an air handler) without lag and averages 30 one-second readings' noise. It runs on from
+    one settle into the next (the gaps between are the fill's few seconds), so a settle does not
+    start on a line of one reading. Running sums: it runs on every sample."""
+
+    __slots__ = ("a0", "buf", "evicted", "n", "sa", "st", "sta", "stt", "t0")
+
+    def __init__(self) -> None:
+        self.buf: deque[tuple[float, float]] = deque()
+        self.n = self.evicted = 0
+        self.st = self.sa = self.stt = self.sta = 0.0
+        self.t0 = self.a0 = math.nan  # times and pressures are taken from these, for well-conditioned sums
+
+    def _put(self, x: float, a: float, sign: float) -> None:
+        self.n += int(sign)
+        self.st += sign * x
+        self.sa += sign * a
+        self.stt += sign * x * x
+        self.sta += sign * x * a
+
+    def add(self, t: float, a: float) -> None:
+        if not math.isfinite(self.t0):
+            self.t0, self.a0 = t, a
+        x, y = t - self.t0, a - self.a0
+        self.buf.append((x, y))
+        self._put(x, y, 1.0)
+        edge = x - LAB_SPAN
+        while self.buf[0][0] < edge:
+            ox, oy = self.buf.popleft()
+            self._put(ox, oy, -1.0)
+            self.evicted += 1
+        if self.evicted >= len(self.buf):  # start the sums afresh now and then, from the oldest reading
+            dx, dy = self.buf[0]  # kept: no rounding builds up and the times stay small
+            self.t0 += dx
+            self.a0 += dy
+            self.buf = deque((ox - dx, oy - dy) for ox, oy in self.buf)
+            self.n = self.evicted = 0
+            self.st = self.sa = self.stt = self.sta = 0.0
+            for ox, oy in self.buf:
+                self._put(ox, oy, 1.0)
+
+    def at(self, t: float) -> float:
+        n = self.n
+        mt, ma = self.st / n, self.sa / n
+        if self.buf[-1][0] - self.buf[0][0] < LAB_LINE_FROM:
+            return self.a0 + ma
+        var = self.stt / n - mt * mt
+        slope = (self.sta / n - mt * ma) / var if var > 0.0 else 0.0
+        return self.a0 + ma + slope * (t - self.t0 - mt)
+
+
 class CycleMeasurer:
     """Turns a run's (state, row) stream into cycles: zeros, P1, P2, leak rates and cycle results."""
 
@@ -338,7 +422,16 @@ class CycleMeasurer:
         self._window: list[tuple[float, float]] = []  # (ambient, temp K) of valid-pressure rows: the zero
         self._temps: list[float] = []  # valid temperatures of a P1 / P2 phase
         self._ambients: list[float] = []  # lab pressure of the valid rows of a P1 / P2 phase
-        self._trace: tuple[list[float], list[float]] = ([], [])  # valid (t, gauge) of a P1 / P2 phase
+        self._trace: tuple[list[float], list[float]] = ([], [])  # valid (t, cell pressure) of a P1 / P2 phase
+        amb = plan.ambient
+        self._follow = amb is not None and amb.follows_lab
+        self._smooth = amb is not None and amb.reads_gauge
+        self._lab = math.nan  # the lab pressure the current settle adds back (smoothed under a gauge)
+        self._lab_ref = math.nan  # its first value in the settle: the detector sees gauge + lab - ref
+        self._lab_line = LabLine()
+        # the vent's rows feed the lab line too where it smooths: the run's first zero then starts on
+        # a line, not on one reading
+        self._measured = _MEASURED | {_VENT} if self._follow and self._smooth else _MEASURED
         self._leak = OnlineSlope()
         self._slow_cache: tuple[list[float], int, ExpFit | None] | None = None  # (trace times, length, fit)
 
@@ -360,6 +453,8 @@ class CycleMeasurer:
             if not self._open:
                 return det.status
             finite = math.isfinite(gauge)
+            if self._follow and finite:
+                gauge = self._cell_pressure(t, gauge, ambient)
             if state == _BASELINE:
                 if finite:
                     self._window.append((ambient, temp_k))
@@ -376,13 +471,45 @@ class CycleMeasurer:
             return status
         if state == _LEAK_HOLD and math.isfinite(gauge):
             self._leak.add(t, gauge)
+        elif state == _VENT and self._measured is not _MEASURED and math.isfinite(ambient):
+            self._lab_line.add(t, ambient)
         return None
+
+    def _cell_pressure(self, t: float, gauge: float, ambient: float) -> float:
+        """The closed cell's pressure, less a constant: the gauge reading plus the lab pressure's change
+        since the settle began. An absolute transducer's reading comes back exactly (its gauge is the
+        reading less the same lab value); under a gauge transducer the lab readings are smoothed
+        by a line through them (LabLine), so one reading's noise and the one-second updates do not
+        enter. ``_as_gauge`` turns a value taken back into a gauge value, so the stored values keep
+        their meaning."""
+        if math.isfinite(ambient):
+            if not math.isfinite(self._lab_ref):
+                self._lab_ref = ambient
+            if self._smooth:
+                line = self._lab_line
+                line.add(t, ambient)
+                self._lab = line.at(t)
+            else:
+                self._lab = ambient
+        return gauge + self._offset()
+
+    def _offset(self) -> float:
+        """What _cell_pressure adds to the gauge reading now (0 before any valid lab reading)."""
+        return self._lab - self._lab_ref if math.isfinite(self._lab) else 0.0
+
+    def _as_gauge(self, estimate: float, lab: float) -> float:
+        """A settled estimate back as a gauge value against ``lab``, the lab pressure the computation
+        adds to it (the mean of the last readings): so the absolute pressure it computes is the
+        detector's own estimate of the closed cell's, with no barometer reading's noise added."""
+        if not (self._follow and math.isfinite(self._lab_ref) and math.isfinite(lab)):
+            return estimate
+        return estimate + self._lab_ref - lab
 
     def passes(self, state: str, t: float) -> bool:
         """True, with the time noted, for a row that feed() would only time-stamp (the same state as the
         last row, and not one whose samples are measured): the live engine then builds no Row.  Replay
         may feed every row; both give the same cycles."""
-        if state != self._state or state in _MEASURED:
+        if state != self._state or state in self._measured:
             return False
         self._last_t = t
         return True
@@ -521,6 +648,7 @@ class CycleMeasurer:
             self._open = True
             self._window, self._temps, self._ambients = [], [], []
             self._trace = ([], [])
+            self._lab = self._lab_ref = math.nan  # the line runs on: the lab is the lab in every settle
         elif state == RunState.FILL:
             self.current = None
             if self.zero is not None:
@@ -559,9 +687,10 @@ class CycleMeasurer:
             recent = self._window[-_LAST:]
             temp, n_temps = _mean_of_readings([w[1] for w in recent if math.isfinite(w[1])])
             u_reg, u_relax = settled_u_parts(det)
-            self.zero = Zero(det.estimate, u_reg, sum(w[0] for w in recent) / len(recent), temp, u_relax, n_temps,
-                             self._last_t)
-            self.last = Settled(det.estimate, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps,
+            lab = sum(w[0] for w in recent) / len(recent)
+            estimate = self._as_gauge(det.estimate, lab)
+            self.zero = Zero(estimate, u_reg, lab, temp, u_relax, n_temps, self._last_t)
+            self.last = Settled(estimate, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps,
                                 window=det.window)
             return
         cyc = self.current
@@ -584,8 +713,8 @@ class CycleMeasurer:
             u_relax = math.hypot(u_relax, abs(drift.slope) * span / math.sqrt(3.0))
         ambients = [a for a in self._ambients[-_LAST:] if math.isfinite(a)]
         ambient = sum(ambients) / len(ambients) if ambients else math.nan
-        val = Settled(det.estimate - cyc.baseline_pa, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps,
-                      ambient, self._last_t, det.window)
+        val = Settled(self._as_gauge(det.estimate, ambient) - cyc.baseline_pa, u_reg, temp, det.elapsed, det.drift,
+                      u_relax, n_temps, ambient, self._last_t, det.window)
         since = self._last_t - self.zero.t_at if self.zero is not None else math.nan
         self.last = val
         which = "p1" if self._state == RunState.SETTLE_FILLED else "p2"
@@ -613,4 +742,4 @@ class CycleMeasurer:
         self.results.append(results.cycle_result(
             cyc, p.chambers, gas=p.gas, u_p_sys=p.u_p_sys, u_t=p.u_t, discard=p.discard,
             barometer=amb is not None and amb.barometer, u_barometer=amb.u_barometer if amb else 0.0,
-            ambient_drift_rate=amb.drift_rate if amb else 0.0))
+            ambient_drift_rate=amb.drift_rate if amb else 0.0, u_lab=amb.u_followed if amb else None))

@@ -111,7 +111,7 @@ def _u_mean(u_t: float, n: int) -> float:
 
 def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str, u_p_sys: float, u_t: float,
                  discard: int, barometer: bool = False, u_barometer: float = 0.0,
-                 ambient_drift_rate: float = 0.0) -> CycleResult:
+                 ambient_drift_rate: float = 0.0, u_lab: float | None = None) -> CycleResult:
     """Volume of one cycle and its GUM budget.
 
     Each random input is counted once: a settled pressure's noise is in its window regression's
@@ -128,7 +128,9 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
     amb1 = cyc.ambient1_pa if barometer and math.isfinite(cyc.ambient1_pa) else pa
     amb2 = cyc.ambient2_pa if barometer and math.isfinite(cyc.ambient2_pa) else pa
     p1, p2 = amb1 + cyc.p1_gauge_pa, amb2 + cyc.p2_gauge_pa
-    u_baro = u_barometer / math.sqrt(2.0) if barometer else 0.0  # a mean of about two 1 s readings
+    # the lab pressure each settled value carries: a mean of about two 1 s readings, or where the settle
+    # followed the lab (maths.cycle.AmbientModel.u_followed) what that line leaves
+    u_baro = (u_barometer / math.sqrt(2.0) if barometer else 0.0) if u_lab is None else u_lab
     u_p1 = math.hypot(_fin(cyc.u_p1_settle_pa), u_baro)
     u_p2 = math.hypot(_fin(cyc.u_p2_settle_pa), u_baro)
     drift1 = 0.0 if barometer else ambient_drift_rate * _fin(cyc.since_zero1_s) / math.sqrt(3.0)

@@ -132,7 +132,7 @@ class RunEngine:
                           u_p_sys=linearity_u(instrument.pressure_u, instrument.pressure_u_linearity),
                           volume_name=expansion_volume,
                           ambient=AmbientModel(instrument.barometer is not None, instrument.barometer_u,
-                                               instrument.ambient_drift_rate))
+                                               instrument.ambient_drift_rate, instrument.pressure_is_gauge))
 
     # ----- machine plumbing -------------------------------------------------------------------
     state: str  # set by transitions
