@@ -28,9 +28,13 @@ def _text(renderable: Any, width: int) -> str:
     return buf.getvalue()
 
 
+SEQ = load_sequence(resolve_sequence("grain-volume"))
+VENT = SEQ.vent.time  # s, the shipped sequence's vent
+
+
 def _cycle(model: LiveModel, n: int, t: float, settle: float, *, kept: bool = True) -> float:
     """Feed one measurement cycle whose settles each take ``settle`` s; returns the time at its end."""
-    for state, dur in (("vent", 15.0), ("baseline", settle), ("fill", 5.0), ("settle_filled", settle),
+    for state, dur in (("vent", VENT), ("baseline", settle), ("fill", 5.0), ("settle_filled", settle),
                        ("expand", 0.1), ("settle_expanded", settle)):
         if state == "fill":
             model.apply("cycle", {"cycle": n}, t)
@@ -59,11 +63,11 @@ def test_time_left_learns_from_the_settles_seen(stops: bool) -> None:
     m.apply("state", {"state": "vent", "t": t}, t)
     left = m.left_instrument_s()
     assert left is not None
-    # more cycles of 15 + 3 x 300 + 5 + 0.1 s (the vent under way is the first 15 s), and the final vent:
-    # seven when all eight cycles run; four when the run may stop once converged (2 discarded + the 3
-    # that must agree: it is expected to converge at its first chance)
-    more = 4 if stops else 7
-    assert left == pytest.approx(more * (15 + 900 + 5.1) + 15, rel=1e-9)
+    # more cycles of vent + 3 x 300 + 5 + 0.1 s (the vent under way is the first), and the final vent:
+    # seven when all eight cycles run; when the run may stop once converged, those up to the discarded
+    # ones and the 3 that must agree, less the one done (it is expected to converge at its first chance)
+    more = SEQ.cycles.discard + 3 - 1 if stops else SEQ.cycles.count - 1
+    assert left == pytest.approx(more * (VENT + 900 + 5.1) + VENT, rel=1e-9)
     assert m.elapsed() + left > 5 * static_total  # far beyond the static estimate
 
 

