@@ -144,6 +144,16 @@ def test_queue(cat):
 
 
 def test_sigint_during_a_commit_is_deferred_until_after_it(cat):
+    # Python's own Ctrl-C handler, whatever this process inherited: a shell starts a background job
+    # with SIGINT ignored, and an ignored interrupt is rightly dropped (the catalog restores SIG_IGN)
+    before = signal.signal(signal.SIGINT, signal.default_int_handler)
+    try:
+        _deferred_then_delivered(cat)
+    finally:
+        signal.signal(signal.SIGINT, before)
+
+
+def _deferred_then_delivered(cat):
     rid = cat.new_run_id()
     seen = []
 
