@@ -119,3 +119,58 @@ def test_the_lab_line_is_the_least_squares_line_of_its_span_over_a_long_run():
             keep = tt >= t - LAB_SPAN * (1 + 1e-12)
             _slope, end = np.polyfit(tt[keep] - t, aa[keep], 1)
             assert line.at(t) == pytest.approx(end, abs=1e-6)
+
+
+def _measure_wall(ramp_k_s: float, seed: int = 7):
+    """One cycle on a still lab whose wall warms at ramp_k_s: the shut gas relaxes to the wall and
+    follows it (P proportional to the wall temperature once relaxed); the thermometer reads the wall
+    with 0.01 K of noise twice a second."""
+    amb = AmbientModel(barometer=True, u_barometer=2.0)
+    plan = CyclePlan(baseline=CRIT, filled=CRIT, expanded=CRIT, chambers=ChamberCalibration(12e-6, 8e-6),
+                     gas="helium", u_p=5.0, u_t=0.01, discard=0, ambient=amb)
+    m = CycleMeasurer(plan)
+    rng = np.random.default_rng(seed)
+    t, temp = 0.0, 295.0
+    taken: dict[str, float] = {}
+
+    def wall(x: float) -> float:
+        return 295.0 + ramp_k_s * x
+
+    def run(state: str, cell, seconds: float) -> None:
+        nonlocal t, temp
+        t0 = t
+        for _ in range(round(seconds / 0.1)):
+            t = round(t + 0.1, 10)
+            if abs(t * 2 - round(t * 2)) < 1e-9:
+                temp = wall(t) + rng.normal(0.0, 0.01)
+            p_abs = cell(t - t0) * wall(t) / 295.0 + rng.normal(0.0, 5.0)
+            if m.feed(state, Row(t, p_abs - PA0, PA0, temp)) is SettleStatus.SETTLED:
+                taken[state] = t - t0
+                return
+
+    run("vent", lambda x: PA0 * 295.0 / wall(t), 30.0)
+    run("baseline", lambda x: PA0, 40.0)
+    run("fill", lambda x: PA0 + 1e4 * x, 5.0)
+    run("settle_filled", lambda x: PA0 + 130e3 + 2e3 * math.exp(-x / 2.0), 60.0)
+    run("expand", lambda x: PA0 + 80e3, 0.1)
+    run("settle_expanded", lambda x: PA0 + 80e3 - 1e3 * math.exp(-x / 2.0), 60.0)
+    run("vent", lambda x: PA0, 1.0)
+    assert m.results, "the cycle did not complete"
+    return m, taken, wall
+
+
+def test_a_warming_wall_does_not_hold_up_the_settle_and_the_value_is_the_gas_at_its_temperature():
+    # 3 mK/s (about 11 K/h, far beyond a lab's drift, so that the 0.5 Pa/s rule tells it apart: it moves
+    # a shut P1 of 230 kPa by 2.4 Pa/s); the pressure taken must be the gas's at the temperature stored
+    # with it, so that P/T (what the volume computation uses) is the relaxed gas's
+    m, taken, wall = _measure_wall(3e-3)
+    _, still, _ = _measure_wall(0.0)
+    for s in ("settle_filled", "settle_expanded"):
+        assert s in taken, f"{s} never settled"
+        assert taken[s] == pytest.approx(still[s], abs=1.0)
+    r = m.results[-1]
+    assert r.t1_k is not None and r.t2_k is not None
+    p1 = r.p1_ambient_pa + r.p1_gauge_pa + r.baseline_pa  # absolute, the zero added back
+    p2 = r.p2_ambient_pa + r.p2_gauge_pa + r.baseline_pa
+    assert p1 / r.t1_k == pytest.approx((PA0 + 130e3) / 295.0, rel=3e-5)
+    assert p2 / r.t2_k == pytest.approx((PA0 + 80e3) / 295.0, rel=3e-5)

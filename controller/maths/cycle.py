@@ -38,6 +38,10 @@ _LAST = 20  # samples averaged for the ambient pressure and the gas temperature 
 # LAB_LINE_FROM; before that, by their mean (see LabLine)
 LAB_SPAN = 30.0
 LAB_LINE_FROM = 10.0
+# s: a settle follows the wall temperature (the thermometer) by a line through the last WALL_SPAN of
+# its readings: a wall changes over many minutes, and a shorter line's slope wanders by 0.1 Pa/s of
+# P1 with 0.01 K of thermometer noise
+WALL_SPAN = 120.0
 LAB_READ_EVERY = 1.0  # s between barometer readings (the controller reads it once a second)
 
 
@@ -358,9 +362,10 @@ class LabLine:
     one settle into the next (the gaps between are the fill's few seconds), so a settle does not
     start on a line of one reading. Running sums: it runs on every sample."""
 
-    __slots__ = ("a0", "buf", "evicted", "n", "sa", "st", "sta", "stt", "t0")
+    __slots__ = ("a0", "buf", "evicted", "n", "sa", "span", "st", "sta", "stt", "t0")
 
-    def __init__(self) -> None:
+    def __init__(self, span: float = LAB_SPAN) -> None:
+        self.span = span
         self.buf: deque[tuple[float, float]] = deque()
         self.n = self.evicted = 0
         self.st = self.sa = self.stt = self.sta = 0.0
@@ -379,7 +384,7 @@ class LabLine:
         x, y = t - self.t0, a - self.a0
         self.buf.append((x, y))
         self._put(x, y, 1.0)
-        edge = x - LAB_SPAN
+        edge = x - self.span
         while self.buf[0][0] < edge:
             ox, oy = self.buf.popleft()
             self._put(ox, oy, -1.0)
@@ -429,9 +434,12 @@ class CycleMeasurer:
         self._lab = math.nan  # the lab pressure the current settle adds back (smoothed under a gauge)
         self._lab_ref = math.nan  # its first value in the settle: the detector sees gauge + lab - ref
         self._lab_line = LabLine()
-        # the vent's rows feed the lab line too where it smooths: the run's first zero then starts on
-        # a line, not on one reading
-        self._measured = _MEASURED | {_VENT} if self._follow and self._smooth else _MEASURED
+        self._wall_line = LabLine(WALL_SPAN)  # the thermometer's readings (the wall's temperature)
+        self._wall = math.nan  # K, the line's value at the last sample of the current settle
+        self._wall_ref = math.nan  # K, its first value in the settle
+        self._amb0 = math.nan  # Pa, the first lab reading of the settle: gauge + this ~ the absolute pressure
+        # the vent's rows feed the lines too: the run's first zero then starts on a line, not on one reading
+        self._measured = _MEASURED | {_VENT}
         self._leak = OnlineSlope()
         self._slow_cache: tuple[list[float], int, ExpFit | None] | None = None  # (trace times, length, fit)
 
@@ -453,8 +461,12 @@ class CycleMeasurer:
             if not self._open:
                 return det.status
             finite = math.isfinite(gauge)
-            if self._follow and finite:
-                gauge = self._cell_pressure(t, gauge, ambient)
+            if finite:
+                if not math.isfinite(self._amb0) and math.isfinite(ambient):
+                    self._amb0 = ambient
+                if self._follow:
+                    gauge = self._cell_pressure(t, gauge, ambient)
+                gauge = self._at_wall_ref(t, gauge, temp_k)
             if state == _BASELINE:
                 if finite:
                     self._window.append((ambient, temp_k))
@@ -471,9 +483,34 @@ class CycleMeasurer:
             return status
         if state == _LEAK_HOLD and math.isfinite(gauge):
             self._leak.add(t, gauge)
-        elif state == _VENT and self._measured is not _MEASURED and math.isfinite(ambient):
-            self._lab_line.add(t, ambient)
+        elif state == _VENT:
+            if self._follow and self._smooth and math.isfinite(ambient):
+                self._lab_line.add(t, ambient)
+            if math.isfinite(temp_k):
+                self._wall_line.add(t, temp_k)
         return None
+
+    def _at_wall_ref(self, t: float, gauge: float, temp_k: float) -> float:
+        """The settle's pressure as it would be at the wall temperature the settle began at. Why: a shut
+        gas follows its wall; a lab whose temperature swings 0.15 K over 50 minutes moves P1 by up to
+        0.2 Pa/s, which the rules took for relaxation still under way (the volume's computation already
+        takes each pressure with its own temperature). The wall is read by the thermometer, the gas's
+        own cooling and warming is not: that relaxation is what the rules wait for. Off without one."""
+        if math.isfinite(temp_k):
+            self._wall_line.add(t, temp_k)
+        if not self._wall_line.n or not math.isfinite(self._amb0):
+            return gauge
+        wall = self._wall_line.at(t)
+        if not math.isfinite(self._wall_ref):
+            self._wall_ref = wall
+        self._wall = wall
+        return (gauge + self._amb0) * (self._wall_ref / wall) - self._amb0
+
+    def _from_wall_ref(self, estimate: float) -> float:
+        """An estimate taken at the settle's reference wall temperature back at the wall's temperature now."""
+        if not (math.isfinite(self._wall) and math.isfinite(self._wall_ref) and math.isfinite(self._amb0)):
+            return estimate
+        return (estimate + self._amb0) * (self._wall / self._wall_ref) - self._amb0
 
     def _cell_pressure(self, t: float, gauge: float, ambient: float) -> float:
         """The closed cell's pressure, less a constant: the gauge reading plus the lab pressure's change
@@ -649,6 +686,7 @@ class CycleMeasurer:
             self._window, self._temps, self._ambients = [], [], []
             self._trace = ([], [])
             self._lab = self._lab_ref = math.nan  # the line runs on: the lab is the lab in every settle
+            self._wall = self._wall_ref = self._amb0 = math.nan
         elif state == RunState.FILL:
             self.current = None
             if self.zero is not None:
@@ -688,7 +726,7 @@ class CycleMeasurer:
             temp, n_temps = _mean_of_readings([w[1] for w in recent if math.isfinite(w[1])])
             u_reg, u_relax = settled_u_parts(det)
             lab = sum(w[0] for w in recent) / len(recent)
-            estimate = self._as_gauge(det.estimate, lab)
+            estimate = self._as_gauge(self._from_wall_ref(det.estimate), lab)
             self.zero = Zero(estimate, u_reg, lab, temp, u_relax, n_temps, self._last_t)
             self.last = Settled(estimate, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps,
                                 window=det.window)
@@ -713,8 +751,9 @@ class CycleMeasurer:
             u_relax = math.hypot(u_relax, abs(drift.slope) * span / math.sqrt(3.0))
         ambients = [a for a in self._ambients[-_LAST:] if math.isfinite(a)]
         ambient = sum(ambients) / len(ambients) if ambients else math.nan
-        val = Settled(self._as_gauge(det.estimate, ambient) - cyc.baseline_pa, u_reg, temp, det.elapsed, det.drift,
-                      u_relax, n_temps, ambient, self._last_t, det.window)
+        value = self._as_gauge(self._from_wall_ref(det.estimate), ambient)
+        val = Settled(value - cyc.baseline_pa, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps, ambient,
+                      self._last_t, det.window)
         since = self._last_t - self.zero.t_at if self.zero is not None else math.nan
         self.last = val
         which = "p1" if self._state == RunState.SETTLE_FILLED else "p2"
