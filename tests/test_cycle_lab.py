@@ -163,7 +163,7 @@ def test_a_warming_wall_does_not_hold_up_the_settle_and_the_value_is_the_gas_at_
     # 3 mK/s (about 11 K/h, far beyond a lab's drift, so that the 0.5 Pa/s rule tells it apart: it moves
     # a shut P1 of 230 kPa by 2.4 Pa/s); the pressure taken must be the gas's at the temperature stored
     # with it, so that P/T (what the volume computation uses) is the relaxed gas's
-    m, taken, wall = _measure_wall(3e-3)
+    m, taken, _ = _measure_wall(3e-3)
     _, still, _ = _measure_wall(0.0)
     for s in ("settle_filled", "settle_expanded"):
         assert s in taken, f"{s} never settled"
