@@ -94,8 +94,9 @@ def test_without_the_lab_followed_the_gauge_ramp_holds_the_drift_rule_back():
     assert "unsettled_p1" in m.results[-1].flags
 
 
-def test_a_still_lab_without_a_barometer_measures_exactly_as_before():
-    # the lab pressure constant and not read: nothing is added to the gauge reading at all
+def test_without_a_barometer_a_gauge_reading_is_not_followed_by_the_lab():
+    # AmbientModel(barometer=False) on a gauge transducer must take the path of no lab model at all:
+    # nothing is added to the gauge reading for the lab
     a, _, _ = _measure(None, absolute=False, ramp=0.0)
     b, _, _ = _measure(AmbientModel(barometer=False), absolute=False, ramp=0.0)
     assert a.results[-1].p1_gauge_pa == b.results[-1].p1_gauge_pa
@@ -104,10 +105,10 @@ def test_a_still_lab_without_a_barometer_measures_exactly_as_before():
 
 def test_the_lab_line_is_the_least_squares_line_of_its_span_over_a_long_run():
     # running sums, rebased now and then, against a batch fit (numpy.polyfit) of the same readings
-    from pycnoctl.controller.maths.cycle import LAB_SPAN, LabLine
+    from pycnoctl.controller.maths.cycle import LAB_SPAN, SlidingLine
 
     rng = np.random.default_rng(1)
-    line, ts, labs = LabLine(), [], []
+    line, ts, labs = SlidingLine(), [], []
     for k in range(40000):  # 4000 s at 10 samples a second, a reading held for a second
         t = k * 0.1
         a = PA0 + 0.05 * t + rng.normal(0.0, 2.0) if k % 10 == 0 else labs[-1]

@@ -35,7 +35,7 @@ from pycnoctl.controller.maths.settle import (
 _LAST = 20  # samples averaged for the ambient pressure and the gas temperature of a settled value
 # s: under a gauge transducer a settle follows the lab by a straight line through its readings over
 # the last LAB_SPAN (the lab changes over minutes; one reading carries its noise), once they span
-# LAB_LINE_FROM; before that, by their mean (see LabLine)
+# LAB_LINE_FROM; before that, by their mean (see SlidingLine)
 LAB_SPAN = 30.0
 LAB_LINE_FROM = 10.0
 # s: a settle follows the wall temperature (the thermometer) by a line through the last WALL_SPAN of
@@ -353,14 +353,14 @@ class OnlineSlope:
         return self.ctp / self.ctt if self.n >= 2 and self.ctt > 0.0 else math.nan
 
 
-class LabLine:
-    """The lab pressure now, from the readings the run's settles saw: a least-squares line through
-    those of the last LAB_SPAN s evaluated at the newest time, once they span LAB_LINE_FROM s (their
-    mean before, in the run's first settle). Why a line: a smoothing average lags a steady change by
-    half its span and the settle would see that lag come and go; a line follows a steady change
-    (weather, an air handler) without lag and averages 30 one-second readings' noise. It runs on from
-    one settle into the next (the gaps between are the fill's few seconds), so a settle does not
-    start on a line of one reading. Running sums: it runs on every sample."""
+class SlidingLine:
+    """A slowly changing reading now (the lab pressure, the wall temperature), from the readings of
+    the last ``span`` s: a least-squares line through them evaluated at the newest time, once they span
+    LAB_LINE_FROM s (their mean before). Why a line: a smoothing average lags a steady change by half
+    its span and a settle would see that lag come and go; a line follows a steady change (weather, an
+    air handler) without lag and averages the readings' noise. The measurer keeps one running from
+    settle to settle (the gaps between are the fill's few seconds), so a settle does not start on a
+    line of one reading. Running sums: it runs on every sample."""
 
     __slots__ = ("a0", "buf", "evicted", "n", "sa", "span", "st", "sta", "stt", "t0")
 
@@ -433,8 +433,8 @@ class CycleMeasurer:
         self._smooth = amb is not None and amb.reads_gauge
         self._lab = math.nan  # the lab pressure the current settle adds back (smoothed under a gauge)
         self._lab_ref = math.nan  # its first value in the settle: the detector sees gauge + lab - ref
-        self._lab_line = LabLine()
-        self._wall_line = LabLine(WALL_SPAN)  # the thermometer's readings (the wall's temperature)
+        self._lab_line = SlidingLine()
+        self._wall_line = SlidingLine(WALL_SPAN)  # the thermometer's readings (the wall's temperature)
         self._wall = math.nan  # K, the line's value at the last sample of the current settle
         self._wall_ref = math.nan  # K, its first value in the settle
         self._amb0 = math.nan  # Pa, the first lab reading of the settle: gauge + this ~ the absolute pressure
@@ -516,7 +516,7 @@ class CycleMeasurer:
         """The closed cell's pressure, less a constant: the gauge reading plus the lab pressure's change
         since the settle began. An absolute transducer's reading comes back exactly (its gauge is the
         reading less the same lab value); under a gauge transducer the lab readings are smoothed
-        by a line through them (LabLine), so one reading's noise and the one-second updates do not
+        by a line through them (SlidingLine), so one reading's noise and the one-second updates do not
         enter. ``_as_gauge`` turns a value taken back into a gauge value, so the stored values keep
         their meaning."""
         if math.isfinite(ambient):

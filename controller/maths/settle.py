@@ -692,9 +692,9 @@ class SettleDetector:
         relaxations of opposite sign and like time constants meet (the cell's gas warming while the
         expansion volume's cools) the pressure rises, stays level for many seconds and falls again,
         and with noise a hold of half a window passed on the level top (a 7.19 cm3 specimen measured
-        6.99 on a 30 s thermal bench). A top comes after a rise that took a time like the relaxations' own; a slope that
-        needed minutes to fall under the limit is confirmed over a time in proportion. A gas that
-        gets quiet within 2.5 windows keeps the stated hold (window / 2)."""
+        6.99 on a 30 s thermal bench). A top comes after a rise that took a time like the
+        relaxations' own; a slope that needed minutes to fall under the limit is confirmed over a
+        time in proportion. A gas quiet within 2.5 windows keeps the stated hold (window / 2)."""
         c = self.criteria
         quiet = self._quiet_since
         if quiet is None:
