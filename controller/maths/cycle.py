@@ -382,15 +382,18 @@ class SlidingLine:
         if not math.isfinite(self.t0):
             self.t0, self.a0 = t, a
         x, y = t - self.t0, a - self.a0
-        self.buf.append((x, y))
-        self._put(x, y, 1.0)
+        buf = self.buf
+        buf.append((x, y))
+        # the sums inline, not through _put: this runs on every sample of every settle and vent
+        n, st, sa, stt, sta = self.n + 1, self.st + x, self.sa + y, self.stt + x * x, self.sta + x * y
         edge = x - self.span
-        while self.buf[0][0] < edge:
-            ox, oy = self.buf.popleft()
-            self._put(ox, oy, -1.0)
+        while buf[0][0] < edge:
+            ox, oy = buf.popleft()
+            n, st, sa, stt, sta = n - 1, st - ox, sa - oy, stt - ox * ox, sta - ox * oy
             self.evicted += 1
-        if self.evicted >= len(self.buf):  # start the sums afresh now and then, from the oldest reading
-            dx, dy = self.buf[0]  # kept: no rounding builds up and the times stay small
+        self.n, self.st, self.sa, self.stt, self.sta = n, st, sa, stt, sta
+        if self.evicted >= 8 * len(buf):  # start the sums afresh now and then, from the oldest reading
+            dx, dy = buf[0]  # kept: no rounding builds up and the times stay small
             self.t0 += dx
             self.a0 += dy
             self.buf = deque((ox - dx, oy - dy) for ox, oy in self.buf)
