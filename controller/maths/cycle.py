@@ -470,6 +470,9 @@ class CycleMeasurer:
                 if self._follow:
                     gauge = self._cell_pressure(t, gauge, ambient)
                 gauge = self._at_wall_ref(t, gauge, temp_k)
+            if finite:  # the trace of every settle: a time-out names the relaxation it waited for
+                self._trace[0].append(t)
+                self._trace[1].append(gauge)
             if state == _BASELINE:
                 if finite:
                     self._window.append((ambient, temp_k))
@@ -477,8 +480,6 @@ class CycleMeasurer:
                 if math.isfinite(temp_k):
                     self._temps.append(temp_k)
                 if finite:
-                    self._trace[0].append(t)
-                    self._trace[1].append(gauge)
                     self._ambients.append(ambient)
             status = det.feed(t, gauge) if finite else SettleStatus.WAITING
             if status is not SettleStatus.WAITING:
@@ -597,10 +598,10 @@ class CycleMeasurer:
         return fit.tau, left, elapsed + max(waits)
 
     def _slow_fit(self) -> ExpFit | None:
-        """One exponential fitted to the last two thirds of the current P1 / P2 settle (None for the
-        baseline, below 30 samples, or when no fit is found)."""
+        """One exponential fitted to the last two thirds of the current settle (None below 30 samples,
+        or when no fit is found)."""
         t, p = self._trace
-        if self._state == _BASELINE or len(t) < 30:
+        if len(t) < 30:
             return None
         if self._det is not None and self._det.window_start <= t[len(t) // 3]:
             return None  # all of it lies in the detector's window, whose own fit and bound speak for it

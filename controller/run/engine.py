@@ -347,6 +347,7 @@ class RunEngine:
         if leaking_in:
             pass  # the leak hold measures that rise and fails the check
         elif status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
+            self._refuse_slow("the vented system", settle)
             raise SequenceFault("settle_timeout", f"the vented system did not settle within {settle.max_time:g} s "
                                 f"(drift {self.meter.drift:.3g} Pa/s) - a leaking inlet or a thermal transient")
         zero = self.meter.zero
@@ -400,16 +401,7 @@ class RunEngine:
                 return
             status = SettleStatus.TIMED_OUT  # no valid samples at all
         if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
-            slow = self.meter.slow_relaxation()
-            if slow is not None and slow[0] > settle.window:
-                tau, left, needed = slow
-                raise SequenceFault(
-                    "settle_timeout",
-                    f"pressure did not settle within {settle.max_time:g} s: still relaxing with a time constant of "
-                    f"about {tau:.0f} s ({abs(left):.0f} Pa still to {'fall' if left > 0 else 'rise'}, drift "
-                    f"{self.meter.drift:.3g} Pa/s) - a "
-                    "porous sample filling, sample heat or a slow thermal relaxation; no number is given for "
-                    f"it. Settling it would take about {needed:.0f} s (max_time; the fit's estimate)")
+            self._refuse_slow("pressure", settle)
             raise SequenceFault("settle_timeout", f"pressure did not settle within {settle.max_time:g} s "
                                 f"(drift {self.meter.drift:.3g} Pa/s) - a leak, a porous sample still filling, "
                                 "or a thermal transient")
@@ -419,6 +411,24 @@ class RunEngine:
                               "u_relax": val.u_relax, "t": self._now, "temp_k": val.t, "time": val.time,
                               "drift": val.drift, "window": val.window})
         self._fire("settled")
+
+    def _refuse_slow(self, what: str, settle: Any) -> None:
+        """A settle out of time whose trace is a relaxation slower than its window: refused naming it.
+        Why: minutes-long time constants are a porous sample filling (or, at the zero, giving its gas
+        back), sample heat or a slow thermal relaxation, not a leak; the operator needs the time it
+        would take, not a guess at a fault."""
+        slow = self.meter.slow_relaxation()
+        if slow is None or slow[0] <= settle.window:
+            return
+        tau, left, needed = slow
+        filling = "filling" if what == "pressure" else "giving back gas it took up"
+        raise SequenceFault(
+            "settle_timeout",
+            f"{what} did not settle within {settle.max_time:g} s: still relaxing with a time constant of "
+            f"about {tau:.0f} s ({abs(left):.0f} Pa still to {'fall' if left > 0 else 'rise'}, drift "
+            f"{self.meter.drift:.3g} Pa/s) - a porous sample {filling}, sample heat or a slow thermal "
+            f"relaxation; no number is given for it. Settling it would take about {needed:.0f} s "
+            "(max_time; the fit's estimate)")
 
     def _step_settle_filled(self, s: Sample) -> None:
         if self._status is SettleStatus.WAITING and \
