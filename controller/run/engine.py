@@ -113,6 +113,7 @@ class RunEngine:
         self._purge_pulse = 0
         self._status: SettleStatus | None = None  # the measurer's answer on the current sample
         self.converged_early = False
+        self._final_vent: bool | None = None  # the vent now open ends the run (None: not yet known)
         self._steps = {name: getattr(self, f"_step_{name}") for name in ACTIVE if name != S.IDLE}
         self.machine = Machine(
             model=self,
@@ -243,6 +244,7 @@ class RunEngine:
     def on_enter_vent(self) -> None:
         self._set(**{self.roles.inlet: False})
         self._set(**{self.roles.vent: True, **self._expansions_for_run()})
+        self._final_vent = None  # known at the first vent sample, once the cycle's result is complete
 
     def on_enter_baseline(self) -> None:
         self._set(**{self.roles.vent: False})
@@ -321,7 +323,11 @@ class RunEngine:
 
     def _step_vent(self, s: Sample) -> None:
         vent = self.seq.vent
-        if self._elapsed() < vent.time:
+        if self._final_vent is None:
+            self._final_vent = self._all_cycles_done() or self._kept_converged()
+        # vent.time lets the vented gas warm back to the wall before the next zero; after the last
+        # cycle there is none, so the run ends once the system is at ambient (and done opens every vent)
+        if self._elapsed() < vent.time and not self._final_vent:
             return
         elapsed = self._elapsed()
         vented = math.isfinite(s.gauge) and abs(s.gauge) <= vent.baseline_tolerance
@@ -462,11 +468,16 @@ class RunEngine:
             else None
         self.emit("cycle_done", {"cycle": cyc.index, "result": done.as_dict() if done is not None else
                                  {"index": cyc.index, "flags": list(cyc.flags)}})
+        if self._kept_converged():
+            self.converged_early = True
+
+    def _kept_converged(self) -> bool:
+        """A measurement that stops once converged, whose kept cycles so far have."""
         cycles = self.seq.cycles
-        if self.seq.kind == "measure" and cycles.converge is not None and cycles.stop_on_converge:
-            kept = [c for c in self.meter.results if c.kept]
-            if results.has_converged([c.volume_m3 for c in kept], cycles.converge.last, cycles.converge.within):
-                self.converged_early = True
+        if not (self.seq.kind == "measure" and cycles.converge is not None and cycles.stop_on_converge):
+            return False
+        kept = [c for c in self.meter.results if c.kept]
+        return results.has_converged([c.volume_m3 for c in kept], cycles.converge.last, cycles.converge.within)
 
     # ----- results ----------------------------------------------------------------------------
     def cycle_results(self) -> list[results.CycleResult]:
