@@ -135,7 +135,7 @@ ALL_CYCLES = False  # --all-cycles: every measurement run goes through its 8 cyc
 REMAINDER: str | None = None  # --remainder: the remainder rule's limit for every sequence (e.g. '5 Pa')
 WINDOW: str | None = None  # --window: the settle window for every sequence (e.g. '6 s')
 EXTRAPOLATE = False  # --extrapolate: every sequence records the fitted asymptote where it has a sound fit
-SETTLE_RULE: str | None = None  # --drift: max_drift for every sequence (e.g. 'auto'); None: the shipped 0.5 Pa/s
+SETTLE_RULE: str | None = None  # --drift: the drift rule with this max_drift (e.g. '0.5 Pa/s', 'auto')
 
 
 def _sequence(spec: Spec, kind: str, folder: Path) -> Path:
@@ -144,8 +144,9 @@ def _sequence(spec: Spec, kind: str, folder: Path) -> Path:
     data.update(name=f"{kind}-{spec.name}", kind=kind, gas=spec.gas)
     data["fill"]["target"] = f"{spec.fill_bar} bar"
     data["expand"] = {"volume": f"x{spec.use}"}
-    if SETTLE_RULE:  # --drift: another settle rule for both the calibration and the measurement
+    if SETTLE_RULE:  # --drift: the drift rule instead of the shipped one, for both
         data["settle"]["max_drift"] = SETTLE_RULE
+        data["settle"].pop("max_remainder", None)
     if REMAINDER:  # --remainder: the remainder rule for both
         data["settle"]["max_remainder"] = REMAINDER
     if WINDOW:  # --window: another settle window for both
@@ -257,6 +258,9 @@ def summarise(spec: str, cals: list[dict[str, Any]]) -> dict[str, Any]:
     z = [(c["vc_z"], c["vr_z"]) for c in cals if "vc_z" in c]
     row: dict[str, Any] = {"instrument": spec, "runs": len(runs), "failed": failed,
                            "cal_within_U": sum(abs(a) <= 2 and abs(b) <= 2 for a, b in z), "cals": len(z),
+                           "cal_refused": sum(1 for c in cals if "cal_message" in c),
+                           "cal_stored_within_U": sum(abs(c["vc_z"]) <= 2 and abs(c["vr_z"]) <= 2 for c in cals
+                                                      if "vc_z" in c and "cal_message" not in c),
                            "z_vc": [round(a, 2) for a, _ in z], "z_vr": [round(b, 2) for _, b in z],
                            "chi2": [f"{c['chi2']:.0f}/{c['dof']}" for c in cals if "chi2" in c]}
     if not runs:
@@ -286,8 +290,8 @@ def main() -> None:
     ap.add_argument("--calibrations", type=int, default=None, help="calibrations per instrument (default 2)")
     ap.add_argument("--jobs", type=int, default=2, help="worker processes")
     ap.add_argument("--only", action="append", help="instrument name (repeatable)")
-    ap.add_argument("--drift", help="settle rule max_drift for calibration and measurement, e.g. 'auto' or "
-                                    "'1 Pa/s' (default: the shipped sequence's)")
+    ap.add_argument("--drift", help="settle by the drift rule with this max_drift for calibration and "
+                                    "measurement, e.g. '0.5 Pa/s' or 'auto' (default: the shipped sequence's rule)")
     ap.add_argument("--remainder", help="settle by the remainder rule with this limit for calibration and "
                                         "measurement, e.g. '5 Pa' (default: the shipped sequence's rule)")
     ap.add_argument("--window", help="settle window for calibration and measurement, e.g. '6 s'")
@@ -334,8 +338,10 @@ def main() -> None:
     if ok:
         cov = sum(r["coverage"] * r["runs"] for r in ok) / sum(r["runs"] for r in ok)
         cals = sum(r["cal_within_U"] for r in rows), sum(r["cals"] for r in rows)
+        refused, stored_ok = sum(r["cal_refused"] for r in rows), sum(r["cal_stored_within_U"] for r in rows)
         print(f"pooled: coverage {cov:.1%} of {sum(r['runs'] for r in ok)} runs; calibrations within U "
-              f"{cals[0]}/{cals[1]}; instruments under 90 % coverage: "
+              f"{cals[0]}/{cals[1]} (refused by their own residual test {refused}; stored and within U "
+              f"{stored_ok}); instruments under 90 % coverage: "
               f"{[r['instrument'] for r in ok if r['coverage'] < 0.9] or 'none'}")
 
 

@@ -102,6 +102,7 @@ def _fixed_wait(seconds: float) -> Path:
         # same moment takes the estimate (on_timeout: accept) - a fixed wait judges nothing
         data["settle"].update({"window": "2 s", "max_drift": "1e9 Pa/s", "min_time": f"{seconds} s",
                                "max_time": f"{seconds} s", "on_timeout": "accept"})
+        data["settle"].pop("max_remainder", None)  # the drift rule, whose limit never binds
         data["name"] = f"fixed-wait-{seconds:g}"
     return _variant(edit)
 
@@ -200,6 +201,7 @@ def interlock_reaction(events: int) -> None:
 def _with_drift(rule: str) -> Path:
     def edit(data: dict[str, Any]) -> None:
         data["settle"]["max_drift"] = rule
+        data["settle"].pop("max_remainder", None)  # the drift rule at this limit
         data["name"] = f"grain-volume-{rule.replace(' ', '').replace('/', '-')}"
     return _variant(edit)
 
