@@ -171,8 +171,11 @@ def test_clients_dropping_mid_stream_leave_the_loop_alone(served: tuple[Daemon, 
     busy = d.stats.values()
     assert got == 8
     assert d.running and len(busy) >= 0.8 * len(quiet)  # ticks kept coming (10 a second)
-    # lateness is a matter of milliseconds either way; period 100 ms (common practice for 10 Hz loops)
-    assert _p99(busy) <= max(3 * _p99(quiet), _p99(quiet) + 0.02), (_p99(quiet), _p99(busy))
+    # lateness is a matter of milliseconds either way; period 100 ms (common practice for 10 Hz loops).
+    # A stall on a dropped client lasts as long as a socket write blocks (seconds); half a period of
+    # margin keeps scheduling jitter on a loaded 2-core machine from failing it (a 20 ms margin failed
+    # now and then in full-suite runs)
+    assert _p99(busy) <= max(3 * _p99(quiet), _p99(quiet) + 0.05), (_p99(quiet), _p99(busy))
     s = httpx.get(url + "/api/status").json()
     assert s["loop"]["running"] and s["activity"] == "idle"
 
