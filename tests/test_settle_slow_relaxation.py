@@ -68,3 +68,31 @@ def test_porous_specimen_with_time_to_settle_is_within_its_u_or_refused(tmp_path
     else:
         message = s["fault"]["message"]
         assert "time constant of about" in message and "porous" in message, message
+
+
+def test_a_vented_zero_waiting_for_the_pores_is_refused_naming_them_not_a_leak(tmp_path: Path) -> None:
+    """The zero of a cycle settles the closed, vented system, into which a porous specimen gives back
+    the gas it took up. Under the remainder rule that zero waits for the pores (a 2 Pa limit; a
+    fixed 0.5 Pa/s slope limit passes it earlier) and runs out of time: the refusal must name the slow
+    relaxation and the time it would need, as P1 and P2 do, not blame a leaking inlet. Failed before
+    the fix (the message said "a leaking inlet or a thermal transient")."""
+    data = yaml.safe_load(resolve_sequence("grain-volume").read_text())
+    data["settle"].pop("max_drift", None)
+    data["settle"]["max_remainder"] = "2 Pa"
+    data["settle_baseline"] = {"max_time": "300 s"}  # the zero runs out of time first
+    seq = tmp_path / "zero-waits.yaml"
+    seq.write_text(yaml.safe_dump(data))
+    base = load_sim_config(None)
+    cfg = check(base.model_copy(update={"sample": Sample(solid_volume="5 cm^3", pore_volume="0.5 cm^3",
+                                                         pore_tau="120 s")}))  # type: ignore[arg-type]
+    inst = build_sim_instrument(cfg)
+    with Catalog(tmp_path / "catalog.sqlite") as cat:
+        s = execute(prepare(RunRequest(str(seq)), inst), Controller(inst), root=tmp_path / "runs", catalog=cat)
+    assert s["status"] == "fault" and s["volume_cm3"] is None
+    message = s["fault"]["message"]
+    assert message.startswith("the vented system did not settle"), message
+    m = re.search(r"time constant of about (\d+) s", message)
+    assert m and 60 <= int(m.group(1)) <= 240, message  # the pores' 120 s
+    assert "porous" in message and "leaking inlet" not in message
+    needed = re.search(r"would take about (\d+) s", message)
+    assert needed and int(needed.group(1)) > 300, message
