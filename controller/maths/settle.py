@@ -79,6 +79,10 @@ class SettleCriteria:
     # last sample is under max_remainder, or k times the readings' noise where larger - see
     # SettleDetector._remainder
     max_remainder: float | None = None
+    # Pa/s: under the remainder rule, a steady slope up to this much is the lab's, not relaxation still
+    # to come (a gauge transducer with no barometer reads against a lab whose pressure drifts; the
+    # instrument config bounds that drift and the budget counts it) - see SettleDetector._relaxing
+    steady_slope: float = 0.0
 
     def __post_init__(self) -> None:
         if not (self.window > 0 and math.isfinite(self.window)):
@@ -94,6 +98,8 @@ class SettleCriteria:
                 raise ValueError("the remainder rule replaces max_drift: give max_drift=None with it")
         if not self.drift_k > 0:
             raise ValueError(f"drift_k must be > 0, got {self.drift_k!r}")
+        if not (self.steady_slope >= 0 and math.isfinite(self.steady_slope)):
+            raise ValueError(f"steady_slope must be a finite rate >= 0 Pa/s, got {self.steady_slope!r}")
         if self.min_time < 0 or not self.max_time > 0 or self.max_time < self.min_time:
             raise ValueError(f"need 0 <= min_time <= max_time, got {self.min_time!r}, {self.max_time!r}")
         if not self.fit_interval > 0:
@@ -821,7 +827,7 @@ class SettleDetector:
             if f is None or not misfit <= self._remainder_limit(False):
                 return math.inf, False
             tau = max(3.0 * self.criteria.window, min(f.tau, self._sfit_span))
-            return abs(self._slope()) * tau + misfit, False
+            return self._relaxing(self._slope()) * tau + misfit, False
         if self._fit_supports(f):
             assert f is not None
             decay = math.exp(-max(self._t_last - f.t_ref, 0.0) / f.tau)
@@ -832,13 +838,20 @@ class SettleDetector:
             # and a slope the fit of one exponential leaves out, as the slope bound takes one (three
             # windows): 60 Pa relaxing with 40 s under a 2 s relaxation, at 8 Pa of noise, bends the
             # settle less than the noise but falls 0.8 Pa/s (taken 34 Pa off without this)
-            return left + self._sfit_line * 3.0 * self.criteria.window, True
+            return left + self._relaxing(self._sfit_line) * 3.0 * self.criteria.window, True
         # the slope bound: three windows, or the settle's own time constant where a sound fit of it
         # finds a longer one it cannot yet pin down (a 50 s relaxation seen over 11 s)
         tau = 3.0 * self.criteria.window
         if f is not None and f.sound:
             tau = max(tau, f.tau)
-        return abs(self._slope()) * tau, False
+        return self._relaxing(self._slope()) * tau, False
+
+    def _relaxing(self, slope: float) -> float:
+        """|Pa/s| of a slope that may be relaxation still under way: what exceeds the steady slope the
+        criteria allow for the lab (0 unless a gauge transducer reads against an unread lab). Why: a lab
+        whose pressure changes 0.08 Pa/s (a fast weather front) moves a quiet gauge reading steadily;
+        three windows of it are more than a 2 Pa limit, so no settle of such an instrument decided."""
+        return max(abs(slope) - self.criteria.steady_slope, 0.0)
 
     def _fit_supports(self, f: ExpFit | None) -> bool:
         return (f is not None and f.sound and f.tau <= self._sfit_span

@@ -355,7 +355,8 @@ class RunEngine:
         elif status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
             self._refuse_slow("the vented system", settle)
             raise SequenceFault("settle_timeout", f"the vented system did not settle within {settle.max_time:g} s "
-                                f"(drift {self.meter.drift:.3g} Pa/s) - a leaking inlet or a thermal transient")
+                                f"(drift {self.meter.drift:.3g} Pa/s) - a leaking inlet or a thermal transient"
+                                f"{self._lab_hint()}")
         zero = self.meter.zero
         assert zero is not None
         counts = self.cycle_number + 1 > self.seq.cycles.discard  # discarded cycles may start unsettled
@@ -410,7 +411,7 @@ class RunEngine:
             self._refuse_slow("pressure", settle)
             raise SequenceFault("settle_timeout", f"pressure did not settle within {settle.max_time:g} s "
                                 f"(drift {self.meter.drift:.3g} Pa/s) - a leak, a porous sample still filling, "
-                                "or a thermal transient")
+                                f"or a thermal transient{self._lab_hint()}")
         val = self.meter.last
         assert val is not None
         self.emit("settled", {"cycle": self.cycle_number, "which": f"p{which}", "p": val.p, "u": val.u,
@@ -424,8 +425,8 @@ class RunEngine:
         back), sample heat or a slow thermal relaxation, not a leak; the operator needs the time it
         would take, not a guess at a fault."""
         slow = self.meter.slow_relaxation()
-        if slow is None or slow[0] <= settle.window:
-            return
+        if slow is None or not settle.window < slow[0] <= self._elapsed():
+            return  # none, or none the settle resolves: a time constant longer than it is a straight line
         tau, left, needed = slow
         filling = "filling" if what == "pressure" else "giving back gas it took up"
         raise SequenceFault(
@@ -435,6 +436,15 @@ class RunEngine:
             f"{self.meter.drift:.3g} Pa/s) - a porous sample {filling}, sample heat or a slow thermal "
             f"relaxation; no number is given for it. Settling it would take about {needed:.0f} s "
             "(max_time; the fit's estimate)")
+
+    def _lab_hint(self) -> str:
+        """Where a gauge transducer reads against a lab pressure nothing reads, a time-out may be the lab's."""
+        inst = self.instrument
+        if inst.barometer is not None or not inst.pressure_is_gauge:
+            return ""
+        return (", or the lab's pressure changing faster than the instrument config's ambient_drift_rate "
+                f"({inst.ambient_drift_rate:.3g} Pa/s): a gauge transducer reads against it and no barometer "
+                "reads it")
 
     def _step_settle_filled(self, s: Sample) -> None:
         if self._status is SettleStatus.WAITING and \
@@ -485,13 +495,14 @@ class RunEngine:
         return list(self.meter.results)
 
 
-def criteria(settle: Any, u_p: float) -> SettleCriteria:
-    """A sequence's settle section as the detector's criteria."""
+def criteria(settle: Any, u_p: float, steady_slope: float = 0.0) -> SettleCriteria:
+    """A sequence's settle section as the detector's criteria (``steady_slope``: see cycle_plan)."""
     remainder = getattr(settle, "max_remainder", None)  # records written before the rule have none
     max_drift = None if settle.max_drift == "auto" or remainder is not None else float(settle.max_drift)
     return SettleCriteria(window=settle.window, max_drift=max_drift, min_time=settle.min_time,
                           max_time=settle.max_time, extrapolate=settle.extrapolate, u_p=u_p,
-                          max_remainder=None if remainder is None else float(remainder))
+                          max_remainder=None if remainder is None else float(remainder),
+                          steady_slope=steady_slope)
 
 
 def linearity_u(pressure_u: float, pressure_u_linearity: float | None) -> float:
@@ -501,8 +512,14 @@ def linearity_u(pressure_u: float, pressure_u_linearity: float | None) -> float:
 
 def cycle_plan(sequence: Any, *, chambers: Any, gas: str, u_p: float, u_t: float, volume_name: str,
                u_p_sys: float = 0.0, ambient: AmbientModel | None = None) -> CyclePlan:
-    """The measurer's plan from a sequence: the live engine and replay both build it here."""
-    return CyclePlan(baseline=criteria(sequence.settle_baseline, u_p), filled=criteria(sequence.settle_filled, u_p),
-                     expanded=criteria(sequence.settle_expanded, u_p), chambers=chambers, gas=gas, u_p=u_p,
+    """The measurer's plan from a sequence: the live engine and replay both build it here.
+
+    Where the settles cannot follow the lab pressure (a gauge transducer and no barometer), the
+    instrument config's bound on the lab's drift is a steady slope the remainder rule does not wait
+    out: the budget already counts that drift between a cycle's zero and its P1, P2."""
+    steady = ambient.drift_rate if ambient is not None and not ambient.follows_lab else 0.0
+    return CyclePlan(baseline=criteria(sequence.settle_baseline, u_p, steady),
+                     filled=criteria(sequence.settle_filled, u_p, steady),
+                     expanded=criteria(sequence.settle_expanded, u_p, steady), chambers=chambers, gas=gas, u_p=u_p,
                      u_p_sys=u_p_sys, ambient=ambient, u_t=u_t, discard=sequence.cycles.discard,
                      volume_name=volume_name)
