@@ -353,7 +353,7 @@ class RunEngine:
         if leaking_in:
             pass  # the leak hold measures that rise and fails the check
         elif status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
-            self._refuse_slow("the vented system", settle)
+            self._refuse_slow("the vented system", settle, "giving back gas it took up")
             raise SequenceFault("settle_timeout", f"the vented system did not settle within {settle.max_time:g} s "
                                 f"(drift {self.meter.drift:.3g} Pa/s) - a leaking inlet or a thermal transient"
                                 f"{self._lab_hint()}")
@@ -408,7 +408,7 @@ class RunEngine:
                 return
             status = SettleStatus.TIMED_OUT  # no valid samples at all
         if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
-            self._refuse_slow("pressure", settle)
+            self._refuse_slow("pressure", settle, "filling")
             raise SequenceFault("settle_timeout", f"pressure did not settle within {settle.max_time:g} s "
                                 f"(drift {self.meter.drift:.3g} Pa/s) - a leak, a porous sample still filling, "
                                 f"or a thermal transient{self._lab_hint()}")
@@ -419,7 +419,7 @@ class RunEngine:
                               "drift": val.drift, "window": val.window})
         self._fire("settled")
 
-    def _refuse_slow(self, what: str, settle: Any) -> None:
+    def _refuse_slow(self, what: str, settle: Any, pores: str) -> None:
         """A settle out of time whose trace is a relaxation slower than its window: refused naming it.
         Why: minutes-long time constants are a porous sample filling (or, at the zero, giving its gas
         back), sample heat or a slow thermal relaxation, not a leak; the operator needs the time it
@@ -428,23 +428,22 @@ class RunEngine:
         if slow is None or not settle.window < slow[0] <= self._elapsed():
             return  # none, or none the settle resolves: a time constant longer than it is a straight line
         tau, left, needed = slow
-        filling = "filling" if what == "pressure" else "giving back gas it took up"
         raise SequenceFault(
             "settle_timeout",
             f"{what} did not settle within {settle.max_time:g} s: still relaxing with a time constant of "
             f"about {tau:.0f} s ({abs(left):.0f} Pa still to {'fall' if left > 0 else 'rise'}, drift "
-            f"{self.meter.drift:.3g} Pa/s) - a porous sample {filling}, sample heat or a slow thermal "
+            f"{self.meter.drift:.3g} Pa/s) - a porous sample {pores}, sample heat or a slow thermal "
             f"relaxation; no number is given for it. Settling it would take about {needed:.0f} s "
             "(max_time; the fit's estimate)")
 
     def _lab_hint(self) -> str:
-        """Where a gauge transducer reads against a lab pressure nothing reads, a time-out may be the lab's."""
-        inst = self.instrument
-        if inst.barometer is not None or not inst.pressure_is_gauge:
+        """Where the settles cannot follow the lab (the plan's AmbientModel: a gauge transducer, no
+        barometer), a time-out may be the lab's drift beyond the bound the rules allow for it."""
+        amb = self.meter.plan.ambient
+        if amb is None or amb.follows_lab:
             return ""
         return (", or the lab's pressure changing faster than the instrument config's ambient_drift_rate "
-                f"({inst.ambient_drift_rate:.3g} Pa/s): a gauge transducer reads against it and no barometer "
-                "reads it")
+                f"({amb.drift_rate:.3g} Pa/s): a gauge transducer reads against it and no barometer reads it")
 
     def _step_settle_filled(self, s: Sample) -> None:
         if self._status is SettleStatus.WAITING and \
