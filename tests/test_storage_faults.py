@@ -308,7 +308,7 @@ def test_a_daemon_restarted_on_a_still_full_disk_asserts_the_safe_state_and_exit
         rc = main(["serve", "--sim", "--data", str(data), "--port", str(port)])
     finally:
         undo()
-        logging.getLogger("pycnoctl").handlers[:] = handlers  # serve leaves its log handler attached
+        logging.getLogger("pycnoctl").handlers[:] = handlers  # as found, whatever the failure left
     out = capsys.readouterr()
     assert plan.fired == "catalog commit"
     v = seen["truth"].actual_valves()

@@ -12,6 +12,7 @@ With --sim the simulator runs in real time (--speed 10 runs it ten times faster 
 from __future__ import annotations
 
 import argparse
+import logging
 import signal
 import sys
 import threading
@@ -80,6 +81,7 @@ def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
         instrument = open_instrument(args)
     server: dict[str, Any] = {}
     caught: list[int] = []
+    previous: dict[int, Any] = {}  # the handlers found, put back on return (serve may run in a process that goes on)
     failure: dict[str, BaseException] = {}
 
     def on_fatal(exc: BaseException) -> None:
@@ -108,14 +110,17 @@ def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
         # uvicorn restores the handlers it found and re-raises the signal it caught after its own
         # shutdown; ours only note it, so the safe-state shutdown below always runs.
         for sig in (signal.SIGTERM, signal.SIGINT):
-            signal.signal(sig, lambda signum, frame: caught.append(signum))
+            previous[sig] = signal.signal(sig, lambda signum, frame: caught.append(signum))
         srv.run()
         close_workers(app)
         daemon.stop()
         daemon.catalog.close()
     finally:
         instrument.close()  # safe state, then release the devices
+        logging.getLogger("pycnoctl").removeHandler(handler)
         handler.close()
+        for sig, old in previous.items():  # only now: a second Ctrl-C must not cut the safe-state shutdown short
+            signal.signal(sig, old)
     if failure:
         print(f"pycnoctl serve: control loop failed: {failure['exc']!r}; instrument left in the safe state",
               file=sys.stderr)

@@ -1,0 +1,58 @@
+"""``pycnoctl serve`` run in a process that goes on afterwards (an embedding script, a test): on return it
+leaves the process as it found it - the SIGINT/SIGTERM handlers it found, no log handler of its own -
+and the instrument in the safe state. Before, a Ctrl-C after serve had returned was only noted by its
+leftover handler and never stopped the process."""
+
+from __future__ import annotations
+
+import logging
+import os
+import signal
+import socket
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+from pycnoctl.controller.cli.main import main
+from pycnoctl.drivers import simulated
+
+
+def test_serve_stopped_by_sigterm_puts_back_what_it_found(tmp_path: Path, monkeypatch: Any) -> None:
+    seen: dict[str, Any] = {}
+    real_build = simulated.build_sim_instrument
+
+    def build(*a: Any, **kw: Any) -> Any:
+        inst = real_build(*a, **kw)
+        seen["truth"] = inst.extras["sim"]
+        return inst
+
+    monkeypatch.setattr(simulated, "build_sim_instrument", build)
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    before = {sig: signal.getsignal(sig) for sig in (signal.SIGINT, signal.SIGTERM)}
+    handlers = list(logging.getLogger("pycnoctl").handlers)
+
+    def stop_when_listening() -> None:
+        deadline = time.monotonic() + 30.0
+        while time.monotonic() < deadline:
+            try:
+                with socket.create_connection(("127.0.0.1", port), timeout=0.2):
+                    break
+            except OSError:
+                time.sleep(0.05)
+        os.kill(os.getpid(), signal.SIGTERM)
+
+    threading.Thread(target=stop_when_listening, daemon=True).start()
+    try:
+        rc = main(["serve", "--sim", "--data", str(tmp_path / "data"), "--port", str(port)])
+    finally:
+        after = {sig: signal.getsignal(sig) for sig in before}
+        for sig, h in before.items():
+            signal.signal(sig, h)
+    assert rc == 0
+    assert after == before
+    assert logging.getLogger("pycnoctl").handlers == handlers
+    v = seen["truth"].actual_valves()
+    assert v["inlet"] is False and v["vent"] is True
