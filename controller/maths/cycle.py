@@ -192,7 +192,7 @@ def settled_u_parts(det: SettleDetector) -> tuple[float, float]:
     noisier instruments with coverage unchanged (99.4 % of 170 runs either way)."""
     u_reg = det.u_estimate if math.isfinite(det.u_estimate) else 0.0
     if det.criteria.max_remainder is not None:  # the remainder rule measured what was left: its bound
-        left = det.remainder
+        left = det.remainder_bound
         return u_reg, (left if math.isfinite(left) else 0.0) / math.sqrt(3.0)
     fit = det.fit
     tau = fit.tau if fit is not None and fit.sound else 3.0 * det.criteria.window
@@ -593,6 +593,8 @@ class CycleMeasurer:
         if limit is not None and abs(left) / fit.tau > limit:
             waits.append(fit.tau * math.log(abs(left) / (fit.tau * limit)))
         rest = det.criteria.max_remainder
+        if rest is not None:  # the decision compares the remainder times its gain with the limit
+            rest /= det.criteria.remainder_gain
         if rest is not None and abs(left) > rest:
             waits.append(fit.tau * math.log(abs(left) / rest))
         return fit.tau, left, elapsed + max(waits)

@@ -83,6 +83,12 @@ class SettleCriteria:
     # to come (a gauge transducer with no barometer reads against a lab whose pressure drifts; the
     # instrument config bounds that drift and the budget counts it) - see SettleDetector._relaxing
     steady_slope: float = 0.0
+    # under the remainder rule: Pa of error per Pa of a fitted relaxation the settled system has still
+    # to go (1 for P1, P2). The zero is read on the cell and the expansion volume together, but only the
+    # expansion volume's gas, closed off at the fill, carries what is left into the result; where its
+    # relaxation is the slower one it holds nearly all of it: up to (Vc + Vr) / Vr times the pair's
+    # remainder. Only the relaxation the fit resolves: a bound at the noise floor cannot be waited down
+    remainder_gain: float = 1.0
 
     def __post_init__(self) -> None:
         if not (self.window > 0 and math.isfinite(self.window)):
@@ -98,6 +104,8 @@ class SettleCriteria:
                 raise ValueError("the remainder rule replaces max_drift: give max_drift=None with it")
         if not self.drift_k > 0:
             raise ValueError(f"drift_k must be > 0, got {self.drift_k!r}")
+        if not (self.remainder_gain >= 1.0 and math.isfinite(self.remainder_gain)):
+            raise ValueError(f"remainder_gain must be a finite factor >= 1, got {self.remainder_gain!r}")
         if not (self.steady_slope >= 0 and math.isfinite(self.steady_slope)):
             raise ValueError(f"steady_slope must be a finite rate >= 0 Pa/s, got {self.steady_slope!r}")
         if self.min_time < 0 or not self.max_time > 0 or self.max_time < self.min_time:
@@ -490,6 +498,7 @@ class SettleDetector:
         self._quiet_since: float | None = None  # first sample of the current unbroken run under the limit
         self._frozen: tuple[float, float, float, float, str] | None = None  # est, u, drift, u_drift, how
         self._left = math.nan  # remainder rule: Pa still to come after the decision's last sample
+        self._unfitted = math.nan  # ... of which the part no fitted relaxation accounts for (see _remainder)
         # the regression window in use: the stated one, or longer where the noise needs it (below)
         self._span = criteria.window
         self._span_set = (criteria.max_drift is None and criteria.max_remainder is None) or criteria.u_p is None
@@ -822,29 +831,35 @@ class SettleDetector:
         then the slope bound decides, with the misfit added and the time constant the fit found where it
         is longer than three windows (up to the span fitted: nothing slower can be told from it)."""
         f = self._sfit
+        self._unfitted = math.inf
         if not self._sfit_adequate:  # not one relaxation yet: a turning point, or a wandering lab
             misfit = f.residual_sd if f is not None else math.inf
             if f is None or not misfit <= self._remainder_limit(False):
                 return math.inf, False
             tau = max(3.0 * self.criteria.window, min(f.tau, self._sfit_span))
-            return self._relaxing(self._slope()) * tau + misfit, False
+            self._unfitted = self._relaxing(self._slope()) * tau + misfit
+            return self._unfitted, False
         if self._fit_supports(f):
             assert f is not None
             decay = math.exp(-max(self._t_last - f.t_ref, 0.0) / f.tau)
             # plus the misfit the noise lets pass: a second, slower relaxation that small is not seen
             # by the fit, and its remainder is of that size (at 2 Pa without it, the bench's 30 s
             # thermal instrument was covered in 70 % of runs)
-            left = (abs(f.amplitude) + 2.0 * f.u_amplitude) * decay + self._sfit_hidden
+            fitted = (abs(f.amplitude) + 2.0 * f.u_amplitude) * decay
             # and a slope the fit of one exponential leaves out, as the slope bound takes one (three
             # windows): 60 Pa relaxing with 40 s under a 2 s relaxation, at 8 Pa of noise, bends the
             # settle less than the noise but falls 0.8 Pa/s (taken 34 Pa off without this)
-            return left + self._relaxing(self._sfit_line) * 3.0 * self.criteria.window, True
+            self._unfitted = self._sfit_hidden + self._relaxing(self._sfit_line) * 3.0 * self.criteria.window
+            # the fitted relaxation times the gain (the zero: what the expansion volume's gas alone may
+            # still hold of it); the rest is at the noise floor, which waiting does not lower
+            return fitted * self.criteria.remainder_gain + self._unfitted, True
         # the slope bound: three windows, or the settle's own time constant where a sound fit of it
         # finds a longer one it cannot yet pin down (a 50 s relaxation seen over 11 s)
         tau = 3.0 * self.criteria.window
         if f is not None and f.sound:
             tau = max(tau, f.tau)
-        return self._relaxing(self._slope()) * tau, False
+        self._unfitted = self._relaxing(self._slope()) * tau
+        return self._unfitted, False
 
     def _relaxing(self, slope: float) -> float:
         """|Pa/s| of a slope that may be relaxation still under way: what exceeds the steady slope the
@@ -901,7 +916,8 @@ class SettleDetector:
             elif math.isfinite(left):  # the slope bound (and any misfit it carries), as the rule saw it
                 self._left = left
             else:
-                self._left = abs(slope) * 3.0 * self.criteria.window if math.isfinite(slope) else math.nan
+                self._left = self._unfitted = (abs(slope) * 3.0 * self.criteria.window if math.isfinite(slope)
+                                               else math.nan)
         elif extrapolate and fit is not None and fit.sound:
             value, u_value, how = fit.p_inf, fit.u_p_inf, "extrapolated"
         self._frozen = (value, u_value, slope, u_slope, how)
@@ -950,6 +966,17 @@ class SettleDetector:
         if self._frozen is not None:
             return self._left
         return self._remainder()[0] if self._bt else math.nan
+
+    @property
+    def remainder_bound(self) -> float:
+        """Remainder rule: the bound the budget takes on what the relaxation left reaches the result - the
+        decision's ``remainder`` with its unfitted part (the noise floor) times remainder_gain as well:
+        the decision cannot wait that part down, but the expansion volume may hold it all the same."""
+        left = self.remainder
+        gain = self.criteria.remainder_gain
+        if gain == 1.0 or not math.isfinite(self._unfitted):
+            return left
+        return left + (gain - 1.0) * self._unfitted
 
     @property
     def threshold(self) -> float | None:

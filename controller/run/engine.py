@@ -494,14 +494,14 @@ class RunEngine:
         return list(self.meter.results)
 
 
-def criteria(settle: Any, u_p: float, steady_slope: float = 0.0) -> SettleCriteria:
+def criteria(settle: Any, u_p: float, steady_slope: float = 0.0, gain: float = 1.0) -> SettleCriteria:
     """A sequence's settle section as the detector's criteria (``steady_slope``: see cycle_plan)."""
     remainder = getattr(settle, "max_remainder", None)  # records written before the rule have none
     max_drift = None if settle.max_drift == "auto" or remainder is not None else float(settle.max_drift)
     return SettleCriteria(window=settle.window, max_drift=max_drift, min_time=settle.min_time,
                           max_time=settle.max_time, extrapolate=settle.extrapolate, u_p=u_p,
                           max_remainder=None if remainder is None else float(remainder),
-                          steady_slope=steady_slope)
+                          steady_slope=steady_slope, remainder_gain=gain)
 
 
 def linearity_u(pressure_u: float, pressure_u_linearity: float | None) -> float:
@@ -517,7 +517,9 @@ def cycle_plan(sequence: Any, *, chambers: Any, gas: str, u_p: float, u_t: float
     instrument config's bound on the lab's drift is a steady slope the remainder rule does not wait
     out: the budget already counts that drift between a cycle's zero and its P1, P2."""
     steady = ambient.drift_rate if ambient is not None and not ambient.follows_lab else 0.0
-    return CyclePlan(baseline=criteria(sequence.settle_baseline, u_p, steady),
+    # the zero's remainder reaches the result through the expansion volume's gas alone (SettleCriteria)
+    gain = (chambers.vc + chambers.vr) / chambers.vr if chambers.vr > 0 else 1.0
+    return CyclePlan(baseline=criteria(sequence.settle_baseline, u_p, steady, gain),
                      filled=criteria(sequence.settle_filled, u_p, steady),
                      expanded=criteria(sequence.settle_expanded, u_p, steady), chambers=chambers, gas=gas, u_p=u_p,
                      u_p_sys=u_p_sys, ambient=ambient, u_t=u_t, discard=sequence.cycles.discard,
