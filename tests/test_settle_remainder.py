@@ -178,3 +178,14 @@ def test_any_relaxation_ends_in_a_decision_with_a_finite_value_and_bound(seed: i
     assert det.status in (SettleStatus.SETTLED, SettleStatus.TIMED_OUT)
     if det.status is SettleStatus.SETTLED:
         assert math.isfinite(det.estimate) and math.isfinite(det.remainder) and det.remainder >= 0.0
+
+
+def test_a_settle_the_fit_has_decided_is_held_for_two_refits_not_half_a_window() -> None:
+    """An expansion's small, fast relaxation (500 Pa, tau 1 s) is over when the 10 s window fills; the
+    fit of the settle says so at every refit. The hold is then two refits (one second apart), as a
+    turning point would show in that fit as misfit: taken at about 12 s, not at 15 s as with half a
+    window (the shipped demo's P2 and zeros waited so)."""
+    det = _settle(_rule(2.0), lambda t: P_INF + 500.0 * math.exp(-t / 1.0))
+    assert det.status is SettleStatus.SETTLED and det.method == "fitted"
+    assert 10.0 <= det.elapsed <= 12.5, det.elapsed
+    assert abs(det.estimate - P_INF) <= det.remainder

@@ -46,6 +46,11 @@ RESOLVE = 2.0
 #: (see SettleDetector._hold).
 HOLD_SHARE = 0.2
 HOLD_CAP = 1.0  # ... but not over this many windows: under noise a longer unbroken hold seldom completes
+#: Under the remainder rule, where a fit of the settle's last two thirds gives the remainder, this
+#: many refits (fit_interval apart) in a row: a turning point shows in that fit as misfit (the rule then
+#: waits) rather than as a slope that is level for a moment, so half a window only added 5 s to settles
+#: the fit had decided (the clean demo's P2 and zeros)
+FITTED_HOLD = 2.0
 
 
 class SettleStatus(enum.Enum):
@@ -498,6 +503,7 @@ class SettleDetector:
         self._quiet_since: float | None = None  # first sample of the current unbroken run under the limit
         self._frozen: tuple[float, float, float, float, str] | None = None  # est, u, drift, u_drift, how
         self._left = math.nan  # remainder rule: Pa still to come after the decision's last sample
+        self._fitted_now = False  # remainder rule: the last remainder came from a fit of the relaxation
         self._unfitted = math.nan  # ... of which the part no fitted relaxation accounts for (see _remainder)
         # the regression window in use: the stated one, or longer where the noise needs it (below)
         self._span = criteria.window
@@ -709,12 +715,14 @@ class SettleDetector:
         and with noise a hold of half a window passed on the level top (a 7.19 cm3 specimen measured
         6.99 on a 30 s thermal bench). A top comes after a rise that took a time like the
         relaxations' own; a slope that needed minutes to fall under the limit is confirmed over a
-        time in proportion. A gas quiet within 2.5 windows keeps the stated hold (window / 2)."""
+        time in proportion. A gas quiet within 2.5 windows keeps the stated hold (window / 2) - unless
+        the remainder rule's fit of the whole settle says what is left (then FITTED_HOLD fits)."""
         c = self.criteria
+        floor = FITTED_HOLD * c.fit_interval if self._fitted_now else c.hold_time
         quiet = self._quiet_since
         if quiet is None:
-            return c.hold_time
-        return max(c.hold_time, min(HOLD_SHARE * (quiet - self.t0), HOLD_CAP * self._span))
+            return floor
+        return max(floor, min(HOLD_SHARE * (quiet - self.t0), HOLD_CAP * self._span))
 
     def _resolving_span(self) -> float:
         """The shortest window over which white noise of u_p leaves the slope a standard error of at
@@ -885,6 +893,7 @@ class SettleDetector:
 
     def _remainder_small(self) -> bool:
         left, fitted = self._remainder()
+        self._fitted_now = fitted
         limit = self._remainder_limit(fitted)
         tau = self._sfit.tau if fitted and self._sfit is not None else 3.0 * self.criteria.window
         self._threshold = limit / tau  # the slope that leaves ``limit`` to come: shown as the drift limit
