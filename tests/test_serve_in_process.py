@@ -14,20 +14,12 @@ import time
 from pathlib import Path
 from typing import Any
 
+from fault_matrix import captured_bench
+
 from pycnoctl.controller.cli.main import main
-from pycnoctl.drivers import simulated
 
 
 def test_serve_stopped_by_sigterm_puts_back_what_it_found(tmp_path: Path, monkeypatch: Any) -> None:
-    seen: dict[str, Any] = {}
-    real_build = simulated.build_sim_instrument
-
-    def build(*a: Any, **kw: Any) -> Any:
-        inst = real_build(*a, **kw)
-        seen["truth"] = inst.extras["sim"]
-        return inst
-
-    monkeypatch.setattr(simulated, "build_sim_instrument", build)
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]
@@ -46,7 +38,8 @@ def test_serve_stopped_by_sigterm_puts_back_what_it_found(tmp_path: Path, monkey
 
     threading.Thread(target=stop_when_listening, daemon=True).start()
     try:
-        rc = main(["serve", "--sim", "--data", str(tmp_path / "data"), "--port", str(port)])
+        with captured_bench(monkeypatch) as seen:
+            rc = main(["serve", "--sim", "--data", str(tmp_path / "data"), "--port", str(port)])
     finally:
         after = {sig: signal.getsignal(sig) for sig in before}
         for sig, h in before.items():
@@ -54,5 +47,5 @@ def test_serve_stopped_by_sigterm_puts_back_what_it_found(tmp_path: Path, monkey
     assert rc == 0
     assert after == before
     assert logging.getLogger("pycnoctl").handlers == handlers
-    v = seen["truth"].actual_valves()
+    v = seen["sim"].actual_valves()
     assert v["inlet"] is False and v["vent"] is True
