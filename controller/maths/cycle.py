@@ -14,6 +14,7 @@ is followed by the vent (a fault or an abort cuts it short). Pure code: no I/O, 
 
 from __future__ import annotations
 
+import functools
 import math
 from collections import deque
 from dataclasses import dataclass, field
@@ -38,6 +39,14 @@ _LAST = 20  # samples averaged for the ambient pressure and the gas temperature 
 # LAB_LINE_FROM; before that, by their mean (see SlidingLine)
 LAB_SPAN = 30.0
 LAB_LINE_FROM = 10.0
+# s: what the settle detector sees follows the lab by a second line, through the last LAB_FRAME_SPAN
+# of the same readings. Why two: a line's newest end wanders with the readings' noise (2 Pa readings
+# once a second: 0.73 Pa over 30 s) and tilts a 10 s window's slope by 0.1 Pa/s (measured), which a
+# quiet transducer's settles took for relaxation still under way and never decided. The detector needs
+# only the lab's changes, which the longer line follows as well (a steady change without lag; a
+# 20-minute barometric wave's curvature as a near-constant offset) at a quarter of the tilt; the
+# settled value is still taken against the shorter line, whose newest end lags the lab least.
+LAB_FRAME_SPAN = 120.0
 # s: a settle follows the wall temperature (the thermometer) by a line through the last WALL_SPAN of
 # its readings: a wall changes over many minutes, and a shorter line's slope wanders by 0.1 Pa/s of
 # P1 with 0.01 K of thermometer noise
@@ -181,6 +190,29 @@ class AmbientModel:
         return 2.0 * self.u_barometer / math.sqrt(LAB_SPAN / LAB_READ_EVERY)
 
 
+@functools.lru_cache(maxsize=256)
+def frame_slope_u(u_barometer: float, window: float, span: float = LAB_FRAME_SPAN,
+                  every: float = LAB_READ_EVERY) -> float:
+    """Pa/s, standard: the slope a settle window of ``window`` s sees in the lab line the detector
+    follows (the newest end of a line through ``span`` s of readings ``every`` s apart, each with
+    ``u_barometer`` of white noise) when the lab itself is still.
+
+    Why: the line's newest end moves with every new reading, and a window's slope takes up that wander
+    as if the closed gas moved (2 Pa readings once a second: 0.026 Pa/s over a 10 s window, as much as
+    a 1 Pa transducer's own slope noise). Exact for white reading noise: the end value after each
+    reading is a fixed weighting of the readings, and the window's slope a fixed weighting of those
+    values, so the slope's variance is u^2 times the sum of the squared combined weights."""
+    n = max(round(span / every), 2)
+    m = max(round(window / every), 2)
+    age = -every * np.arange(n)  # the line's readings, newest first
+    centred = age - age.mean()
+    end = 1.0 / n - centred * age.mean() / float(centred @ centred)  # weights of the end value at age 0
+    tk = every * np.arange(m)
+    c = (tk - tk.mean()) / float((tk - tk.mean()) @ (tk - tk.mean()))  # a window's slope, oldest first
+    g = np.convolve(c, end)
+    return u_barometer * math.sqrt(float(g @ g))
+
+
 def settled_u_parts(det: SettleDetector) -> tuple[float, float]:
     """Standard uncertainties of a settled pressure: (the window regression's own, what is left of the
     relaxation).  Kept apart: the first is noise and averages over cycles, the second has the same
@@ -322,7 +354,6 @@ _SETTLES = frozenset({RunState.BASELINE.value, RunState.SETTLE_FILLED.value, Run
 # plain strings for the per-row comparisons: looking up an enum member costs several times a str compare
 _BASELINE = RunState.BASELINE.value
 _LEAK_HOLD = RunState.LEAK_HOLD.value
-_MEASURED = _SETTLES | {_LEAK_HOLD}  # states whose rows feed a detector or the leak fit
 _VENT = RunState.VENT.value
 
 
@@ -437,12 +468,12 @@ class CycleMeasurer:
         self._lab = math.nan  # the lab pressure the current settle adds back (smoothed under a gauge)
         self._lab_ref = math.nan  # its first value in the settle: the detector sees gauge + lab - ref
         self._lab_line = SlidingLine()
+        self._frame_line = SlidingLine(LAB_FRAME_SPAN)  # the lab as the detector's frame follows it
+        self._frame = math.nan  # the frame line's value at the last sample of the current settle
         self._wall_line = SlidingLine(WALL_SPAN)  # the thermometer's readings (the wall's temperature)
         self._wall = math.nan  # K, the line's value at the last sample of the current settle
         self._wall_ref = math.nan  # K, its first value in the settle
         self._amb0 = math.nan  # Pa, the first lab reading of the settle: gauge + this ~ the absolute pressure
-        # the vent's rows feed the lines too: the run's first zero then starts on a line, not on one reading
-        self._measured = _MEASURED | {_VENT}
         self._leak = OnlineSlope()
         self._slow_cache: tuple[list[float], int, ExpFit | None] | None = None  # (trace times, length, fit)
 
@@ -487,11 +518,14 @@ class CycleMeasurer:
             return status
         if state == _LEAK_HOLD and math.isfinite(gauge):
             self._leak.add(t, gauge)
-        elif state == _VENT:
-            if self._follow and self._smooth and math.isfinite(ambient):
-                self._lab_line.add(t, ambient)
-            if math.isfinite(temp_k):
-                self._wall_line.add(t, temp_k)
+        # every other state's rows feed the lab lines (the lab is what it is whatever the valves do):
+        # the run's first zero then starts on the purge's readings, not on a line of a few. The wall
+        # line only the vent's: a thermometer placed in the gas would show a fill's heating
+        if self._follow and self._smooth and math.isfinite(ambient):
+            self._lab_line.add(t, ambient)
+            self._frame_line.add(t, ambient)
+        if state == _VENT and math.isfinite(temp_k):
+            self._wall_line.add(t, temp_k)
         return None
 
     def _at_wall_ref(self, t: float, gauge: float, temp_k: float) -> float:
@@ -524,19 +558,22 @@ class CycleMeasurer:
         enter. ``_as_gauge`` turns a value taken back into a gauge value, so the stored values keep
         their meaning."""
         if math.isfinite(ambient):
-            if not math.isfinite(self._lab_ref):
-                self._lab_ref = ambient
             if self._smooth:
                 line = self._lab_line
                 line.add(t, ambient)
                 self._lab = line.at(t)
+                frame = self._frame_line
+                frame.add(t, ambient)
+                self._frame = frame.at(t)
             else:
-                self._lab = ambient
+                self._lab = self._frame = ambient
+            if not math.isfinite(self._lab_ref):
+                self._lab_ref = self._frame
         return gauge + self._offset()
 
     def _offset(self) -> float:
         """What _cell_pressure adds to the gauge reading now (0 before any valid lab reading)."""
-        return self._lab - self._lab_ref if math.isfinite(self._lab) else 0.0
+        return self._frame - self._lab_ref if math.isfinite(self._frame) else 0.0
 
     def _as_gauge(self, estimate: float, lab: float) -> float:
         """A settled estimate back as a gauge value against ``lab``, the lab pressure the computation
@@ -544,16 +581,7 @@ class CycleMeasurer:
         detector's own estimate of the closed cell's, with no barometer reading's noise added."""
         if not (self._follow and math.isfinite(self._lab_ref) and math.isfinite(lab)):
             return estimate
-        return estimate + self._lab_ref - lab
-
-    def passes(self, state: str, t: float) -> bool:
-        """True, with the time noted, for a row that feed() would only time-stamp (the same state as the
-        last row, and not one whose samples are measured): the live engine then builds no Row.  Replay
-        may feed every row; both give the same cycles."""
-        if state != self._state or state in self._measured:
-            return False
-        self._last_t = t
-        return True
+        return estimate + self._lab_ref - self._frame + self._lab - lab
 
     def give_up(self) -> bool:
         """The engine's time limit ran out with the detector still waiting: take its estimate so far,
@@ -688,10 +716,13 @@ class CycleMeasurer:
             self._det = SettleDetector(crit, self._last_t)
             if state != _BASELINE:
                 self._det.veto = self._slow_pending
+            amb = self.plan.ambient
+            if self._follow and self._smooth and amb is not None and amb.u_barometer > 0:
+                self._det.slope_noise = functools.partial(frame_slope_u, amb.u_barometer)
             self._open = True
             self._window, self._temps, self._ambients = [], [], []
             self._trace = ([], [])
-            self._lab = self._lab_ref = math.nan  # the line runs on: the lab is the lab in every settle
+            self._lab = self._lab_ref = self._frame = math.nan  # the lines run on: the lab is the lab throughout
             self._wall = self._wall_ref = self._amb0 = math.nan
         elif state == RunState.FILL:
             self.current = None

@@ -454,20 +454,33 @@ def block_means(t: np.ndarray, p: np.ndarray, points: int) -> tuple[np.ndarray, 
     return t, p, b
 
 
-def resolving_span(n: int, dt: float, span: float, limit: float, u_p: float, cap: float) -> float:
+def resolving_span(n: int, dt: float, span: float, limit: float, u_p: float, cap: float,
+                   extra: Callable[[float], float] | None = None) -> float:
     """The window (s) a drift limit needs: ``span`` (n samples dt apart) where white noise of u_p leaves
     its regression slope a standard error of at most limit / RESOLVE, else the shortest window that
     does, at most ``cap`` (see SettleDetector._resolving_span; the expansion-volume advisor predicts a
-    settled pressure's u over the same window)."""
+    settled pressure's u over the same window).  ``extra``: Pa/s of slope noise over a window of the
+    given length that the samples carry besides their own white noise (the lab line a settle follows),
+    added in quadrature."""
     if not dt > 0:
         return span
     target = limit / RESOLVE
 
     def noise_se(m: int) -> float:
-        return u_p / (dt * math.sqrt(m * (m * m - 1) / 12.0))
+        own = u_p / (dt * math.sqrt(m * (m * m - 1) / 12.0))
+        return own if extra is None else math.hypot(own, extra((m - 1) * dt))
 
     if noise_se(n) <= target:  # the stated window resolves the limit: it stays as it is
         return span
+    if extra is not None:  # both parts fall as the window grows: the shortest that resolves, by bisection
+        top = max(n + 1, math.floor(cap / dt) + 1)
+        if noise_se(top) > target:
+            return float(max(cap, span))
+        lo = n
+        while top - lo > 1:
+            mid = (lo + top) // 2
+            lo, top = (lo, mid) if noise_se(mid) <= target else (mid, top)
+        return float(min((top - 1) * dt, cap))
     m = max(n + 1, math.ceil((u_p * math.sqrt(12.0) / (target * dt)) ** (2.0 / 3.0)))
     while noise_se(m) > target:
         m += 1
@@ -521,6 +534,9 @@ class SettleDetector:
         # the owner's last word before a decision (True: not yet): what the window alone cannot see,
         # e.g. a relaxation slower than it, judged from the whole settle (CycleMeasurer._slow_pending)
         self.veto: Callable[[], bool] | None = None
+        # Pa/s of slope noise over a window of the given length (s) that the samples carry besides the
+        # transducer's own: the owner's following of the lab through noisy readings (CycleMeasurer)
+        self.slope_noise: Callable[[float], float] | None = None
         self._reset_sums(self.t0, math.nan)
 
     # -- running sums --------------------------------------------------------------------------
@@ -742,7 +758,7 @@ class SettleDetector:
         limit = c.max_drift if c.max_drift is not None else self._remainder_limit() / (3.0 * c.window)
         n = len(self._bt)
         dt = (self._t_last - self._bt[0]) / (n - 1)
-        return resolving_span(n, dt, self._span, limit, c.u_p, max(c.window, c.max_time / 2.0))
+        return resolving_span(n, dt, self._span, limit, c.u_p, max(c.window, c.max_time / 2.0), self.slope_noise)
 
     def _check_drift(self) -> bool:
         c = self.criteria

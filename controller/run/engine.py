@@ -281,11 +281,8 @@ class RunEngine:
         state = self.state
         step = self._steps.get(state)
         if step is not None:  # idle and the end states have no step
-            if self.meter.passes(state, s.t):
-                self._status = None
-            else:
-                temp = s.temperature.value if s.temperature is not None and s.temperature.valid else math.nan
-                self._status = self.meter.take_sample(state, s.t, s.gauge, s.ambient, temp)
+            temp = s.temperature.value if s.temperature is not None and s.temperature.valid else math.nan
+            self._status = self.meter.take_sample(state, s.t, s.gauge, s.ambient, temp)
             step(s)
 
     def _elapsed(self) -> float:
