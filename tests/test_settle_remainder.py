@@ -104,6 +104,25 @@ def test_a_wandering_lab_does_not_keep_a_settled_gas_waiting() -> None:
         assert abs(det.estimate - truth) <= det.remainder + 3.0 * det.u_estimate, (seed, det.estimate - truth)
 
 
+def test_a_bound_on_a_long_time_constant_judges_a_slope_resolved_for_it() -> None:
+    """After an expansion into a slow volume the pressure is two relaxations of opposite sign (here the
+    two a simulated 30 s thermal instrument's P2 fitted to: +2889 Pa at 61.5 s, -2879 Pa at 30.3 s),
+    and a lab that wanders by 2 Pa over a minute and a half leaves one exponential a misfit: the rule
+    bounds the remainder by |slope| x the fit's 60 s. Over the window (16 s, resolved for three 10 s
+    windows) an 8 Pa gauge's slope carries 0.13 Pa/s of noise alone, 8 Pa once times 60 s - the 8 Pa
+    limit itself, so a hold survives only by chance: 6 of these 10
+    settles ran to the 600 s limit on the revision before, the gas within 3 Pa of its end from 430 s.
+    The slope over the stretch that resolves the longer time constant decides them all."""
+    def shape(t: float) -> float:
+        wander = 2.0 * math.sin(2.0 * math.pi * t / 90.0)
+        return P_INF + 2889.0 * math.exp(-t / 61.5) - 2879.0 * math.exp(-t / 30.3) + wander
+    for seed in range(10):
+        det = _settle(_rule(2.0, u_p=8.0), shape, noise=8.0, seed=seed)
+        assert det.status is SettleStatus.SETTLED, seed
+        truth = shape(det.decided_at or 0.0)
+        assert abs(det.estimate - truth) <= det.remainder + 3.0 * det.u_estimate, (seed, det.estimate - truth)
+
+
 def test_a_slower_relaxation_hidden_under_the_noise_is_in_the_stated_remainder() -> None:
     """60 Pa relaxing with 40 s under the fill's 2 s one, at 8 Pa of noise, bends the settle less than the
     noise, so the fit of one exponential is not refused; but over the span fitted it falls 0.8 Pa/s, a
