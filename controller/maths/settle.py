@@ -473,19 +473,15 @@ def resolving_span(n: int, dt: float, span: float, limit: float, u_p: float, cap
 
     if noise_se(n) <= target:  # the stated window resolves the limit: it stays as it is
         return span
-    if extra is not None:  # both parts fall as the window grows: the shortest that resolves, by bisection
-        top = max(n + 1, math.floor(cap / dt) + 1)
-        if noise_se(top) > target:
-            return float(max(cap, span))
-        lo = n
-        while top - lo > 1:
-            mid = (lo + top) // 2
-            lo, top = (lo, mid) if noise_se(mid) <= target else (mid, top)
-        return float(min((top - 1) * dt, cap))
-    m = max(n + 1, math.ceil((u_p * math.sqrt(12.0) / (target * dt)) ** (2.0 / 3.0)))
-    while noise_se(m) > target:
-        m += 1
-    return float(min((m - 1) * dt, cap))
+    # every part falls as the window grows: the shortest that resolves, by bisection, up to the cap
+    top = max(n + 1, math.floor(cap / dt) + 1)
+    if noise_se(top) > target:
+        return float(cap)
+    lo = n
+    while top - lo > 1:
+        mid = (lo + top) // 2
+        lo, top = (lo, mid) if noise_se(mid) <= target else (mid, top)
+    return float(min((top - 1) * dt, cap))
 
 
 # ----------------------------------------------------------------------------- the detector
