@@ -15,6 +15,7 @@ is followed by the vent (a fault or an abort cuts it short). Pure code: no I/O, 
 from __future__ import annotations
 
 import functools
+import itertools
 import math
 from collections import deque
 from dataclasses import dataclass, field
@@ -442,6 +443,26 @@ class SlidingLine:
         slope = (self.sta / n - mt * ma) / var if var > 0.0 else 0.0
         return self.a0 + ma + slope * (t - self.t0 - mt)
 
+    def equivalent_readings(self, t: float) -> float:
+        """How many independent readings a plain mean would need to be as certain as ``at(t)``.
+
+        The line's value at t carries one reading's noise times sqrt(1/n + (t - mean)^2 / sum of the
+        squared deviations of the times); rows that repeat one reading (a thermometer read more slowly
+        than the pressure) count once, as in a mean (``_mean_of_readings``)."""
+        n = self.n
+        if n == 0:
+            return 0.0
+        buf = self.buf
+        distinct = 1 + sum(1 for (_, a), (_, b) in itertools.pairwise(buf) if a != b)
+        if buf[-1][0] - buf[0][0] < LAB_LINE_FROM:
+            return float(distinct)
+        mt = self.st / n
+        sxx = self.stt - n * mt * mt
+        if not sxx > 0.0:
+            return float(distinct)
+        factor = 1.0 / n + (t - self.t0 - mt) ** 2 / sxx
+        return distinct / (n * factor)
+
 
 class CycleMeasurer:
     """Turns a run's (state, row) stream into cycles: zeros, P1, P2, leak rates and cycle results."""
@@ -760,7 +781,7 @@ class CycleMeasurer:
             if timed_out:
                 self.notes.append(f"baseline before fill {len(self.cycles) + 1}: not settled under these rules")
             recent = self._window[-_LAST:]
-            temp, n_temps = _mean_of_readings([w[1] for w in recent if math.isfinite(w[1])])
+            temp, n_temps = self._settled_temperature([w[1] for w in recent if math.isfinite(w[1])])
             u_reg, u_relax = settled_u_parts(det)
             lab = sum(w[0] for w in recent) / len(recent)
             estimate = self._as_gauge(self._from_wall_ref(det.estimate), lab)
@@ -771,7 +792,7 @@ class CycleMeasurer:
         cyc = self.current
         if cyc is None:
             return
-        temp, n_temps = _mean_of_readings(self._temps[-_LAST:])
+        temp, n_temps = self._settled_temperature(self._temps[-_LAST:])
         u_reg, u_relax = settled_u_parts(det)
         slow = self._slow_remainder()
         if slow is not None:  # what a resolved slow relaxation still has to move, as a rectangular bound
@@ -806,6 +827,18 @@ class CycleMeasurer:
             cyc.flags.append(f"unsettled_{which}")  # the time limit ran out with the pressure still moving
         if drift is not None:
             cyc.flags.append(f"drift_{which}")  # a steady slope no relaxation explains: a leak
+
+    def _settled_temperature(self, readings: list[float]) -> tuple[float, int]:
+        """(K, equivalent number of readings): the gas temperature of the value just settled. The
+        thermometer reads the wall (see _at_wall_ref) and a settled gas is at its wall's temperature,
+        so this is the wall line's value now - a line through the last WALL_SPAN of readings - not the
+        mean of the settle's last few rows. Why: with 0.01 K of reading noise a mean of 20 readings
+        moved each cycle's volume several times as much as the pressures' own noise did; the line
+        averages hundreds and still follows a wall that drifts. The readings' mean where no line runs."""
+        line = self._wall_line
+        if line.n == 0 or not math.isfinite(self._last_t):
+            return _mean_of_readings(readings)
+        return line.at(self._last_t), max(int(line.equivalent_readings(self._last_t)), 1)
 
     def _complete(self) -> None:
         cyc = self.current

@@ -1,0 +1,111 @@
+"""The gas temperature of a settled value is the wall's, read through the thermometer's line.
+
+A settled gas is at its wall's temperature, and the thermometer reads the wall: so each settled value
+(zero, P1, P2) takes the wall line's value at its last sample - a least-squares line through the last
+WALL_SPAN of readings - with the uncertainty of that line's end, not the mean of the settle's last few
+readings. The reference for the line's uncertainty is ordinary least squares (the prediction variance
+of a fitted straight line, any regression textbook), checked here against numpy.polyfit by Monte Carlo.
+The 0.01 K reading noise is the accuracy bench's thermometer (an invented instrument)."""
+
+from __future__ import annotations
+
+import math
+import statistics
+
+import numpy as np
+import pytest
+
+from pycnoctl.controller.domain.gaspath import ChamberCalibration
+from pycnoctl.controller.maths.cycle import WALL_SPAN, CycleMeasurer, CyclePlan, Row, SlidingLine
+from pycnoctl.controller.maths.settle import SettleCriteria, SettleStatus
+
+WALL = 295.15
+U_T = 0.01  # K per reading
+CRIT = SettleCriteria(window=10.0, max_drift=0.5, min_time=3.0, max_time=60.0, extrapolate=False)
+
+
+@pytest.mark.parametrize("hold", [1, 10], ids=["a reading per row", "a reading held for ten rows"])
+def test_equivalent_readings_give_the_scatter_of_the_lines_end(hold: int) -> None:
+    # 150 s of rows 0.1 s apart with a 6 s gap (a fill) 20 s before the end; the line at the last row
+    # over the last WALL_SPAN. Its scatter over realisations is one reading's noise / sqrt(equivalent)
+    rng = np.random.default_rng(3)
+    times = [round(k * 0.1, 10) for k in range(1500) if not 1240 <= k < 1300]
+    ends, batch, n_eq = [], [], math.nan
+    for _ in range(600):
+        line = SlidingLine(WALL_SPAN)
+        kept: list[tuple[float, float]] = []
+        reading = math.nan
+        for i, t in enumerate(times):
+            if i % hold == 0:
+                reading = WALL + rng.normal(0.0, U_T)
+            line.add(t, reading)
+            kept.append((t, reading))
+        t_end = times[-1]
+        ends.append(line.at(t_end))
+        n_eq = line.equivalent_readings(t_end)
+        span = [(t, a) for t, a in kept if t >= t_end - WALL_SPAN]
+        coef = np.polyfit([t - t_end for t, _ in span], [a for _, a in span], 1)
+        batch.append(float(coef[1]))
+    assert ends == pytest.approx(batch, abs=1e-9)  # the running line is the batch least-squares line
+    predicted = U_T / math.sqrt(n_eq)
+    assert statistics.stdev(ends) == pytest.approx(predicted, rel=0.1)
+    # a row per reading: about a quarter of the 1,140 readings (a line's end is four times a mean's
+    # variance); held readings count once
+    assert n_eq == pytest.approx(1140 / 4 / hold, rel=0.15)
+
+
+def _cycles(wall, *, n: int, seed: int) -> tuple[CycleMeasurer, list[float]]:
+    """n cycles of a cell relaxing with tau 2 s after each valve event; the thermometer reads ``wall(t)``
+    with 0.01 K of noise on every row. Returns the measurer and the times P1 was taken."""
+    plan = CyclePlan(baseline=CRIT, filled=CRIT, expanded=CRIT, chambers=ChamberCalibration(12e-6, 8e-6),
+                     gas="helium", u_p=1.0, u_t=U_T, discard=0)
+    m = CycleMeasurer(plan)
+    rng = np.random.default_rng(seed)
+    t = 0.0
+    taken: list[float] = []
+
+    def run(state: str, gauge, seconds: float) -> None:
+        nonlocal t
+        t0 = t
+        for _ in range(round(seconds / 0.1)):
+            t = round(t + 0.1, 10)
+            status = m.feed(state, Row(t, gauge(t - t0), 101325.0, wall(t) + rng.normal(0.0, U_T)))
+            if status is SettleStatus.SETTLED:
+                if state == "settle_filled":
+                    taken.append(t)
+                return
+
+    for _ in range(n):
+        run("vent", lambda x: 0.0, 15.0)
+        run("baseline", lambda x: 0.0, 60.0)
+        run("fill", lambda x: 2e4 * x, 5.0)
+        run("settle_filled", lambda x: 1.3e5 + 2e3 * math.exp(-x / 2.0), 60.0)
+        run("expand", lambda x: 6e4, 0.1)
+        run("settle_expanded", lambda x: 6e4 - 1e3 * math.exp(-x / 2.0), 60.0)
+    run("vent", lambda x: 0.0, 1.0)
+    assert len(m.results) == n and len(taken) == n, "a cycle did not complete"
+    return m, taken
+
+
+def test_settled_temperatures_scatter_as_stated_and_far_less_than_a_mean_of_twenty_readings() -> None:
+    m, _ = _cycles(lambda t: WALL, n=40, seed=11)
+    t1 = [r.t1_k for r in m.results]
+    t2 = [r.t2_k for r in m.results]
+    stated = statistics.mean(r.u_t1_k for r in m.results)
+    sd = statistics.stdev(t1 + t2)
+    # the mean of a settle's last 20 readings scatters by 0.01 / sqrt(20) = 0.0022 K: the line by under half
+    assert sd < 0.5 * U_T / math.sqrt(20)
+    # and the stated u of each (the budget's u_t1, u_t2) is that scatter: within the Monte Carlo's
+    # sampling error (80 values, about 8 %), the settles' lines overlapping as they do
+    assert sd == pytest.approx(stated, rel=0.25)
+    assert statistics.mean(t1) == pytest.approx(WALL, abs=3 * sd / math.sqrt(len(t1)) + 1e-6)
+
+
+def test_a_drifting_wall_is_followed_without_lag() -> None:
+    # 1 K/h (a lab warming fast): each settled temperature is the wall's at the settle's last sample,
+    # not the mean of its span (a 120 s mean would lag by 60 s, 0.017 K)
+    rate = 1.0 / 3600.0
+    m, taken = _cycles(lambda t: WALL + rate * t, n=6, seed=2)
+    for r, t in zip(m.results, taken, strict=True):
+        assert r.t1_k == pytest.approx(WALL + rate * t, abs=4 * r.u_t1_k)
+        assert 4 * r.u_t1_k < 0.017
