@@ -109,3 +109,11 @@ def test_a_drifting_wall_is_followed_without_lag() -> None:
     for r, t in zip(m.results, taken, strict=True):
         assert r.t1_k == pytest.approx(WALL + rate * t, abs=4 * r.u_t1_k)
         assert 4 * r.u_t1_k < 0.017
+
+
+def test_a_thermometer_that_stops_answering_gives_no_temperature_not_a_stretched_line() -> None:
+    # valid readings for the first cycle, none after: the later cycles' temperatures are unknown (as
+    # with no thermometer), not the first cycle's line extended over minutes
+    m, _ = _cycles(lambda t: WALL + 0.5 if t < 100.0 else math.nan, n=3, seed=4)
+    assert m.results[0].ta_k is not None
+    assert all(r.t1_k is None and r.t2_k is None for r in m.results[1:])

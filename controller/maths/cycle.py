@@ -834,9 +834,11 @@ class CycleMeasurer:
         so this is the wall line's value now - a line through the last WALL_SPAN of readings - not the
         mean of the settle's last few rows. Why: with 0.01 K of reading noise a mean of 20 readings
         moved each cycle's volume several times as much as the pressures' own noise did; the line
-        averages hundreds and still follows a wall that drifts. The readings' mean where no line runs."""
+        averages hundreds and still follows a wall that drifts. The readings' mean where no line runs,
+        and no temperature where the settle had no valid reading (a line is never stretched over a
+        thermometer that stopped answering)."""
         line = self._wall_line
-        if line.n == 0 or not math.isfinite(self._last_t):
+        if not readings or line.n == 0 or not math.isfinite(self._last_t):
             return _mean_of_readings(readings)
         return line.at(self._last_t), max(int(line.equivalent_readings(self._last_t)), 1)
 
