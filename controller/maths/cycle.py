@@ -34,7 +34,7 @@ from pycnoctl.controller.maths.settle import (
     fit_exponential_detail,
 )
 
-_LAST = 20  # samples averaged for the ambient pressure and the gas temperature of a settled value
+_LAST = 20  # samples averaged for the ambient pressure of a settled value (the temperature: the wall line)
 # s: under a gauge transducer a settle follows the lab by a straight line through its readings over
 # the last LAB_SPAN (the lab changes over minutes; one reading carries its noise), once they span
 # LAB_LINE_FROM; before that, by their mean (see SlidingLine)
