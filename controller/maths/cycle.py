@@ -191,7 +191,6 @@ class AmbientModel:
         return 2.0 * self.u_barometer / math.sqrt(LAB_SPAN / LAB_READ_EVERY)
 
 
-@functools.lru_cache(maxsize=256)
 def frame_slope_u(u_barometer: float, window: float, span: float = LAB_FRAME_SPAN,
                   every: float = LAB_READ_EVERY) -> float:
     """Pa/s, standard: the slope a settle window of ``window`` s sees in the lab line the detector
@@ -203,15 +202,20 @@ def frame_slope_u(u_barometer: float, window: float, span: float = LAB_FRAME_SPA
     a 1 Pa transducer's own slope noise). Exact for white reading noise: the end value after each
     reading is a fixed weighting of the readings, and the window's slope a fixed weighting of those
     values, so the slope's variance is u^2 times the sum of the squared combined weights."""
-    n = max(round(span / every), 2)
-    m = max(round(window / every), 2)
+    return u_barometer * _frame_slope_gain(max(round(span / every), 2), max(round(window / every), 2), every)
+
+
+@functools.lru_cache(maxsize=256)
+def _frame_slope_gain(n: int, m: int, every: float) -> float:
+    """frame_slope_u for unit reading noise, by the counts of readings in the line (n) and the window (m):
+    cached on those counts, as the windows a detector asks about differ only by rounding."""
     age = -every * np.arange(n)  # the line's readings, newest first
     centred = age - age.mean()
     end = 1.0 / n - centred * age.mean() / float(centred @ centred)  # weights of the end value at age 0
     tk = every * np.arange(m)
     c = (tk - tk.mean()) / float((tk - tk.mean()) @ (tk - tk.mean()))  # a window's slope, oldest first
     g = np.convolve(c, end)
-    return u_barometer * math.sqrt(float(g @ g))
+    return math.sqrt(float(g @ g))
 
 
 def settled_u_parts(det: SettleDetector) -> tuple[float, float]:
