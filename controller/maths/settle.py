@@ -27,6 +27,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from pycnoctl.controller.maths.twoexp import TwoExpFit, fit_two_exponentials
+
 __all__ = [
     "ExpFit",
     "SettleCriteria",
@@ -528,6 +530,7 @@ class SettleDetector:
         self._sfit_line = 0.0  # |Pa/s| of a significant straight line under the fitted relaxation
         self._sfit_hidden = 0.0  # Pa of misfit the readings' noise can hide from the fit (see _remainder)
         self._sfit_noise = 0.0  # Pa: the readings' noise, measured from their third differences
+        self._sfit2: TwoExpFit | None = None  # two relaxations, where one misfits and two fit (see _fit_settle)
         # the owner's last word before a decision (True: not yet): what the window alone cannot see,
         # e.g. a relaxation slower than it, judged from the whole settle (CycleMeasurer._slow_pending)
         self.veto: Callable[[], bool] | None = None
@@ -804,6 +807,7 @@ class SettleDetector:
         n = len(self._all_t)
         self._sfit_t = self._t_last
         self._sfit = None
+        self._sfit2 = None
         self._sfit_adequate = True
         if n < 15:
             return None
@@ -827,6 +831,10 @@ class SettleDetector:
             allowed = MISFIT_NOISE * noise / math.sqrt(b) + MISFIT_FLOOR * self.criteria.max_remainder
             self._sfit_adequate = bool(fit.residual_sd <= allowed)
             self._sfit_hidden, self._sfit_noise = allowed, noise
+            if not self._sfit_adequate:  # model selection: a second relaxation where one misfits
+                two = fit_two_exponentials(ts, ps)
+                if two is not None and two.sound and two.residual_sd <= allowed:
+                    self._sfit2 = two
             # the line under it counts only where the fit speaks for the settle: fitted only then
             if self._sfit_adequate and self._fit_supports(fit) and ts.size >= 8:
                 line = _line_under(ts, ps)
@@ -853,6 +861,13 @@ class SettleDetector:
         is longer than three windows (up to the span fitted: nothing slower can be told from it)."""
         f = self._sfit
         self._unfitted = math.inf
+        two = self._sfit2
+        if two is not None and self._t_last - self._sfit_t <= self.criteria.fit_interval:
+            # two relaxations fit where one misfits: their sum at the last sample is what is left, known
+            # to its own covariance (what the slope bound below could only bound, stopping early under
+            # noise and always on the same side); plus, as for one, what the noise lets the fit hide
+            self._unfitted = self._sfit_hidden
+            return (abs(two.left) + 2.0 * two.u_left) * self.criteria.remainder_gain + self._unfitted, True
         if not self._sfit_adequate:  # not one relaxation yet: a turning point, or a wandering lab
             misfit = f.residual_sd if f is not None else math.inf
             if f is None or not misfit <= self._remainder_limit(False):
@@ -938,7 +953,8 @@ class SettleDetector:
         left, fitted = self._remainder()
         self._fitted_now = fitted
         limit = self._remainder_limit(fitted)
-        tau = self._sfit.tau if fitted and self._sfit is not None else 3.0 * self.criteria.window
+        model: ExpFit | TwoExpFit | None = self._sfit2 if self._sfit2 is not None else self._sfit
+        tau = model.tau if fitted and model is not None else 3.0 * self.criteria.window
         self._threshold = limit / tau  # the slope that leaves ``limit`` to come: shown as the drift limit
         return math.isfinite(left) and left < limit
 
@@ -956,7 +972,13 @@ class SettleDetector:
         if remainder_rule:
             fit = self._fit_settle(precise=True)  # the settle's model, polished, on the samples decided on
             left, fitted = self._remainder()
-            if fitted and fit is not None:
+            self._fitted_now = fitted
+            two = self._sfit2
+            if fitted and two is not None:  # two relaxations: their curve's end, or its asymptote
+                self._left = left
+                value, u_value = (two.p_inf, two.u_p_inf) if extrapolate else (two.at_last, two.u_at_last)
+                how = "extrapolated" if extrapolate else "fitted"
+            elif fitted and fit is not None:
                 # the window bends: its regression line would miss the end of the curve, so the
                 # value is the fit's own at the last sample, or its asymptote when extrapolating (then
                 # what it stated is the model's doubt: at most the whole correction applied)
@@ -1029,6 +1051,14 @@ class SettleDetector:
         if gain == 1.0 or not math.isfinite(self._unfitted):
             return left
         return left + (gain - 1.0) * self._unfitted
+
+    @property
+    def relaxations(self) -> int:
+        """Remainder rule: exponentials in the model the last remainder came from (2 where one misfit and
+        two fit, 1 for one, 0 for the slope bound); 0 under the drift rules."""
+        if self.criteria.max_remainder is None or not self._fitted_now:
+            return 0
+        return 2 if self._sfit2 is not None else 1
 
     @property
     def threshold(self) -> float | None:
