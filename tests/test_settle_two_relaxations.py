@@ -4,7 +4,11 @@ After an expansion into a volume whose gas relaxes more slowly than the cell's, 
 while the cell's gas warms and falls while the expansion volume's gas cools (two exponentials of
 opposite sign: the textbook thermal relaxation of each chamber, common practice).  Where one
 exponential leaves a misfit the noise does not explain, the rule fits two and waits until their sum
-still to come is under its limit.  The synthetic shape has its asymptote known exactly.
+still to come is under its limit.  And where a fit resolves the relaxation, what it can still see must
+be under ``max_remainder``, not under one reading's noise: before that, a 30 s thermal bench (8 Pa
+gauge) settled 5.7 Pa short of its P2 and 7.4 Pa short of its P1, always on the same side, and its
+calibrations' Vr came out low by 1.5 of their standard uncertainties on average.  The synthetic
+shapes have their asymptote known exactly.
 """
 
 from __future__ import annotations
@@ -12,6 +16,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pytest
 
 from pycnoctl.controller.maths.settle import SettleCriteria, SettleDetector, SettleStatus
 
@@ -55,3 +60,24 @@ def test_two_relaxations_are_fitted_and_the_value_is_within_what_the_rule_says_i
     error = det.estimate - P_INF  # the pressure still falls: the recorded value is above its end
     assert 0.0 <= error <= det.remainder_bound
     assert error < 2.0 + 0.5  # within the stated limit (and the fit's floor), not one reading's noise
+
+
+@pytest.mark.parametrize("shape", [
+    pytest.param(_turning, id="two-relaxations", marks=pytest.mark.xfail(strict=True, reason=(
+        "known shortfall: at 8 Pa of noise the top of this turning point (24 s in, 130 Pa above the end) "
+        "is taken for a settled gas in 4 of 12 settles: the misfit of one exponential is hidden by the "
+        "noise there and the hold (a fifth of the time to quiet) ends before the fall shows"))),
+    pytest.param(_slow, id="one-slow"),
+])
+def test_under_noise_the_settle_ends_within_the_limit_of_its_end_not_the_noise(shape) -> None:
+    """8 Pa readings, 12 settles each: the mean error is held near the 2 Pa limit (it was 5-7 Pa with the
+    limit at one reading's noise) and no settle ends beyond its stated bound."""
+    errors, bounds = [], []
+    for seed in range(12):
+        det = _settle(shape, 8.0, seed)
+        assert det.status is SettleStatus.SETTLED
+        errors.append(det.estimate - P_INF)
+        bounds.append(det.remainder_bound)
+    errors_a = np.asarray(errors)
+    assert float(np.mean(errors_a)) < 1.7, errors  # one slow: 2.28 Pa before, 1.18 after
+    assert np.all(np.abs(errors_a) <= np.asarray(bounds) + 3.0 * 8.0 / math.sqrt(100)), (errors, bounds)
