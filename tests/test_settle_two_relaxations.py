@@ -81,3 +81,56 @@ def test_under_noise_the_settle_ends_within_the_limit_of_its_end_not_the_noise(s
     errors_a = np.asarray(errors)
     assert float(np.mean(errors_a)) < 1.7, errors  # one slow: 2.28 Pa before, 1.18 after
     assert np.all(np.abs(errors_a) <= np.asarray(bounds) + 3.0 * 8.0 / math.sqrt(100)), (errors, bounds)
+
+
+# --- the same turning point, cycle after cycle: the run's own history holds a decision far too soon ---
+
+def _cycle_rule(noise: float) -> SettleCriteria:
+    return SettleCriteria(window=10.0, max_drift=None, min_time=5.0, max_time=900.0, extrapolate=False,
+                          u_p=noise, max_remainder=2.0)
+
+
+def _run_of_cycles(seed: int, cycles: int = 5, noise: float = 8.0) -> list[float]:
+    """P2's error against its end (Pa) in each cycle of a run whose every expansion turns like _turning;
+    the zero and P1 are quick fills' relaxations (2 s) at the same noise."""
+    from pycnoctl.controller.domain.gaspath import ChamberCalibration
+    from pycnoctl.controller.maths.cycle import CycleMeasurer, CyclePlan
+
+    rule = _cycle_rule(noise)
+    meter = CycleMeasurer(CyclePlan(baseline=rule, filled=rule, expanded=rule,
+                                    chambers=ChamberCalibration(12e-6, 8e-6), gas="helium", u_p=noise,
+                                    u_t=0.01, discard=0))
+    rng = np.random.default_rng(seed)
+    clock = [0.0]
+
+    def phase(state: str, shape, seconds: float) -> None:
+        start = clock[0]
+        for _ in range(round(seconds / 0.1)):
+            clock[0] += 0.1
+            p = shape(clock[0] - start) + rng.normal(0.0, noise)
+            status = meter.take_sample(state, clock[0], p, 101_325.0, 295.15)
+            if status is not None and status is not SettleStatus.WAITING:
+                return
+
+    for _ in range(cycles):
+        phase("vent", lambda s: 0.0, 2.0)
+        phase("baseline", lambda s: 40.0 * math.exp(-s / 2.0), 900.0)
+        phase("fill", lambda s: 60_000.0, 1.0)
+        phase("settle_filled", lambda s: 70_000.0 + 500.0 * math.exp(-s / 2.0), 900.0)
+        phase("expand", lambda s: P_INF, 0.2)
+        phase("settle_expanded", _turning, 900.0)
+    phase("vent", lambda s: 0.0, 1.0)
+    return [c.p2_gauge_pa - P_INF for c in meter.results]
+
+
+def test_a_run_does_not_take_a_turning_top_once_its_cycles_know_the_phase() -> None:
+    """8 runs of 5 cycles: P2 taken at the top (over 20 Pa above its end) in at most 2 of the 32 cycles
+    after the first (1 measured: a run whose first cycle was itself fooled, so its history is short);
+    without the run's history, 11 of 32 (the detector alone, xfail above)."""
+    fooled_later = 0
+    for seed in range(8):
+        errors = _run_of_cycles(seed)
+        assert len(errors) == 5
+        fooled_later += sum(1 for e in errors[1:] if abs(e) > 20.0)
+        assert all(abs(e) < 6.0 for e in errors if abs(e) <= 20.0)  # the rest end near their end
+    assert fooled_later <= 2, fooled_later

@@ -320,6 +320,10 @@ SLOW_LEFT_U = 2.0
 #: one cannot be told from the lab's own wander (a room's temperature cycle moves a closed chamber by
 #: tens of Pa over minutes; the noisy demo bench's was fitted as tau 300-500 s over a 400 s span).
 SLOW_RESOLVED = 0.5
+#: A settle may not end sooner than this share of the median time the same phase took to settle in the
+#: run's earlier cycles (see CycleMeasurer._too_soon).  Decision times of one phase vary by about a
+#: third from cycle to cycle under noise (a 30 s thermal bench's P2: 420-470 s); a half leaves that room.
+SOONER_SHARE = 0.5
 #: The whole-settle fit takes block means down to this many points: a relaxation slow enough to
 #: matter is smooth over a block (a 300 s settle's blocks are 2 s), and the fit costs what it must.
 SLOW_POINTS = 60
@@ -501,6 +505,7 @@ class CycleMeasurer:
         self._amb0 = math.nan  # Pa, the first lab reading of the settle: gauge + this ~ the absolute pressure
         self._leak = OnlineSlope()
         self._slow_cache: tuple[list[float], int, ExpFit | None] | None = None  # (trace times, length, fit)
+        self._took: dict[str, list[float]] = {}  # s each settle state took to decide, in this run's cycles
 
     # ----- the feed ---------------------------------------------------------------------------
     def feed(self, state: str, row: Row) -> SettleStatus | None:
@@ -704,6 +709,28 @@ class CycleMeasurer:
         left = abs(self._still_to_come(fit))
         return left if left > SLOW_SIGNIFICANCE * fit.u_p_inf else None
 
+    def _veto(self, state: str) -> bool:
+        """The detector's last word before a decision: too soon for this phase, or (P1, P2) a slow
+        relaxation still pending."""
+        return self._too_soon(state) or (state != _BASELINE and self._slow_pending())
+
+    def _too_soon(self, state: str) -> bool:
+        """Whether the settle would end before SOONER_SHARE of the median time this phase took in the
+        run's earlier cycles.
+
+        Why: one chamber, gas and fill relax alike from cycle to cycle, and a decision far sooner than
+        the same phase's before is one the data fooled: where the cell's gas warms while a slower
+        expansion volume's cools, the pressure rises, stays level at its top for many seconds and then
+        falls for minutes, and under 8 Pa of noise one exponential fits the top as a finished rise (4 of
+        12 synthetic settles taken there, 130 Pa above their end).  The first cycle has no history: the
+        discarded one, in the shipped sequences.  Held back, the settle goes on and decides on what
+        follows the top."""
+        took = self._took.get(state)
+        det = self._det
+        if not took or det is None:
+            return False
+        return det.elapsed < SOONER_SHARE * float(np.median(took))
+
     def _slow_pending(self) -> bool:
         """The detector's veto on a P1 / P2 decision: a relaxation slower than its window, resolved over
         the whole settle, still has more to come than SLOW_LEFT_U times the settled pressure's stated u
@@ -739,8 +766,7 @@ class CycleMeasurer:
             crit = {RunState.BASELINE: self.plan.baseline, RunState.SETTLE_FILLED: self.plan.filled,
                     RunState.SETTLE_EXPANDED: self.plan.expanded}[RunState(state)]
             self._det = SettleDetector(crit, self._last_t)
-            if state != _BASELINE:
-                self._det.veto = self._slow_pending
+            self._det.veto = functools.partial(self._veto, state)
             amb = self.plan.ambient
             if self._follow and self._smooth and amb is not None and amb.u_barometer > 0:
                 self._det.slope_noise = functools.partial(frame_slope_u, amb.u_barometer)
@@ -781,6 +807,8 @@ class CycleMeasurer:
         det = self._det
         assert det is not None
         self._open = False
+        if not timed_out and self._state is not None:
+            self._took.setdefault(self._state, []).append(det.elapsed)
         if self._state == RunState.BASELINE:
             if timed_out:
                 self.notes.append(f"baseline before fill {len(self.cycles) + 1}: not settled under these rules")
