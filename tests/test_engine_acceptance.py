@@ -143,6 +143,12 @@ def test_run_record_is_complete_and_reanalysable(tmp_path):
     assert purge == ["purge_fill", "purge_hold", "purge_vent"] * seq.purge.pulses
     kinds = [e["kind"] for e in run.events]
     assert kinds.count("state") >= 10 and "settled" in kinds
+    # each taken pressure says what it was taken on (the quick demo's drift rule, or the remainder rule's
+    # slope bound / fitted relaxations), so a re-reader can tell a measured end from a model's
+    models = {e["model"] for e in run.events if e["kind"] == "settled"}
+    assert models and models <= {"drift rule", "slope bound", "one relaxation", "two relaxations",
+                                 "one relaxation, extrapolated", "two relaxations, extrapolated",
+                                 "drift rule, extrapolated", "slope bound, extrapolated"}
     assert len(run.cycles) == 3
     stored = json.loads((tmp_path / "runs" / summary["run_id"] / "summary.json").read_text())
     assert stored["sequence_text"].startswith("# ") or "pycnoctl-sequence/1" in stored["sequence_text"]

@@ -134,6 +134,7 @@ class Settled:
     ambient: float = math.nan  # Pa absolute, lab pressure over the last samples
     t_at: float = math.nan  # s, when it was taken
     window: float = math.nan  # s, the regression window the decision used (longer than stated where noise needs it)
+    model: str = ""  # what decided it (settle_model): the record says on what a value was taken
 
 
 @dataclass(frozen=True)
@@ -235,6 +236,18 @@ def settled_u_parts(det: SettleDetector) -> tuple[float, float]:
     tau = fit.tau if fit is not None and fit.sound else 3.0 * det.criteria.window
     drift = det.drift if math.isfinite(det.drift) else 0.0
     return u_reg, abs(drift) * tau / math.sqrt(3.0)
+
+
+def settle_model(det: SettleDetector) -> str:
+    """What a decided settle was taken on, in words for the record: the drift rule, or under the remainder
+    rule the slope bound, one relaxation or two (fitted over the settle), and whether the value is the
+    model's asymptote.  Why: a scientist re-reading a run sees which values rest on a model's
+    extrapolation and which on a measured end."""
+    if det.criteria.max_remainder is None:
+        how = "drift rule"
+    else:
+        how = {0: "slope bound", 1: "one relaxation", 2: "two relaxations"}.get(det.relaxations, "slope bound")
+    return f"{how}, extrapolated" if det.method == "extrapolated" else how
 
 
 def settled_u(det: SettleDetector) -> float:
@@ -819,7 +832,7 @@ class CycleMeasurer:
             estimate = self._as_gauge(self._from_wall_ref(det.estimate), lab)
             self.zero = Zero(estimate, u_reg, lab, temp, u_relax, n_temps, self._last_t)
             self.last = Settled(estimate, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps,
-                                window=det.window)
+                                window=det.window, model=settle_model(det))
             return
         cyc = self.current
         if cyc is None:
@@ -843,7 +856,7 @@ class CycleMeasurer:
         ambient = sum(ambients) / len(ambients) if ambients else math.nan
         value = self._as_gauge(self._from_wall_ref(det.estimate), ambient)
         val = Settled(value - cyc.baseline_pa, u_reg, temp, det.elapsed, det.drift, u_relax, n_temps, ambient,
-                      self._last_t, det.window)
+                      self._last_t, det.window, settle_model(det))
         since = self._last_t - self.zero.t_at if self.zero is not None else math.nan
         self.last = val
         which = "p1" if self._state == RunState.SETTLE_FILLED else "p2"

@@ -413,7 +413,7 @@ class RunEngine:
         assert val is not None
         self.emit("settled", {"cycle": self.cycle_number, "which": f"p{which}", "p": val.p, "u": val.u,
                               "u_relax": val.u_relax, "t": self._now, "temp_k": val.t, "time": val.time,
-                              "drift": val.drift, "window": val.window})
+                              "drift": val.drift, "window": val.window, "model": val.model})
         self._fire("settled")
 
     def _refuse_slow(self, what: str, settle: Any, pores: str) -> None:
