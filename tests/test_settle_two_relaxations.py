@@ -18,6 +18,8 @@ import math
 import numpy as np
 import pytest
 
+from pycnoctl.controller.domain.gaspath import ChamberCalibration
+from pycnoctl.controller.maths.cycle import CycleMeasurer, CyclePlan
 from pycnoctl.controller.maths.settle import SettleCriteria, SettleDetector, SettleStatus
 
 P_INF = 27_620.0
@@ -93,9 +95,6 @@ def _cycle_rule(noise: float) -> SettleCriteria:
 def _run_of_cycles(seed: int, cycles: int = 5, noise: float = 8.0) -> list[float]:
     """P2's error against its end (Pa) in each cycle of a run whose every expansion turns like _turning;
     the zero and P1 are quick fills' relaxations (2 s) at the same noise."""
-    from pycnoctl.controller.domain.gaspath import ChamberCalibration
-    from pycnoctl.controller.maths.cycle import CycleMeasurer, CyclePlan
-
     rule = _cycle_rule(noise)
     meter = CycleMeasurer(CyclePlan(baseline=rule, filled=rule, expanded=rule,
                                     chambers=ChamberCalibration(12e-6, 8e-6), gas="helium", u_p=noise,

@@ -75,9 +75,10 @@ def test_stated_uncertainty_of_what_is_left_covers_the_truth() -> None:
     assert abs(float(np.mean(z))) < 0.2
 
 
-def test_one_relaxation_is_not_a_sound_pair() -> None:
+def test_one_relaxation_gives_no_pair_or_one_that_still_says_what_is_left() -> None:
     """A single exponential gives the pair nothing to resolve: the two time constants run together, or one
-    amplitude is lost in the other; the rule then keeps to its one-exponential model."""
+    amplitude is lost in the other (no sound pair); where a pair is still taken, what it says is left is
+    the truth within three of its standard errors."""
     s = T - T[0]
     p = 1000.0 - 30.0 * np.exp(-s / 40.0)
     f = fit_two_exponentials(T, p + np.random.default_rng(2).normal(0.0, 0.2, T.size))

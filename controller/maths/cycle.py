@@ -246,7 +246,7 @@ def settle_model(det: SettleDetector) -> str:
     if det.criteria.max_remainder is None:
         how = "drift rule"
     else:
-        how = {0: "slope bound", 1: "one relaxation", 2: "two relaxations"}.get(det.relaxations, "slope bound")
+        how = ("slope bound", "one relaxation", "two relaxations")[det.relaxations]
     return f"{how}, extrapolated" if det.method == "extrapolated" else how
 
 

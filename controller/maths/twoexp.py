@@ -43,7 +43,7 @@ class TwoExpFit:
     at_last: float  # the curve's value at the last sample
     u_at_last: float
     n: int
-    sound: bool  # both relaxations resolved: see _sound
+    sound: bool  # both relaxations resolved (see fit_two_exponentials)
 
     @property
     def tau(self) -> float:
@@ -159,24 +159,17 @@ def fit_two_exponentials(t: np.ndarray | list[float], p: np.ndarray | list[float
     def su(g: np.ndarray) -> float:
         return scale * math.sqrt(max(float(g @ cov @ g), 0.0))
 
-    fit = TwoExpFit(
-        p_inf=p_mid + scale * c, u_p_inf=scale * float(u[0]), taus=(t1, t2),
+    u_left, u_p_inf = su(g_left), scale * float(u[0])
+    # sound when both relaxations are resolved: time constants apart by _RATIO, the faster above the
+    # search floor and the slower within the span fitted (a slower one cannot be told from a line), and
+    # finite uncertainties.  Not each amplitude beyond its standard errors: at 8 Pa of noise the two trade
+    # off (each within two of its errors of zero) while their sum at the last sample, what the rule needs,
+    # is known to 1-2 Pa and within that of the truth (a 30 s thermal bench's P2, 250-450 s into it)
+    sound = (t1 > tau_lo and t2 >= _RATIO * t1 * (1.0 - 1e-9) and t2 <= span
+             and math.isfinite(u_left) and math.isfinite(u_p_inf))
+    return TwoExpFit(
+        p_inf=p_mid + scale * c, u_p_inf=u_p_inf, taus=(t1, t2),
         amplitudes=(scale * a1, scale * a2), u_amplitudes=(scale * float(u[1]), scale * float(u[2])),
         residual_sd=scale * resid_sd, t_ref=t_ref, t_last=float(t_arr[-1]),
-        left=-scale * (a1 * e1 + a2 * e2), u_left=su(g_left), at_last=p_mid + scale * float(model[-1]),
-        u_at_last=su(g_last), n=n, sound=False)
-    return _sound(fit, span, tau_lo)
-
-
-def _sound(fit: TwoExpFit, span: float, tau_lo: float) -> TwoExpFit:
-    """Sound when both relaxations are resolved: time constants apart by _RATIO, the faster above the
-    search floor and the slower within the span fitted (a slower one cannot be told from a line), and
-    finite uncertainties.  Not each amplitude beyond its standard errors: at 8 Pa of noise the two trade
-    off (each within two of its errors of zero) while their sum at the last sample, what the rule needs,
-    is known to 1-2 Pa and within that of the truth (a 30 s thermal bench's P2, 250-450 s into it)."""
-    t1, t2 = fit.taus
-    sound = (
-        t1 > tau_lo and t2 >= _RATIO * t1 * (1.0 - 1e-9) and t2 <= span
-        and math.isfinite(fit.u_left) and math.isfinite(fit.u_p_inf)
-    )
-    return TwoExpFit(**{**fit.__dict__, "sound": bool(sound)})
+        left=-scale * (a1 * e1 + a2 * e2), u_left=u_left, at_last=p_mid + scale * float(model[-1]),
+        u_at_last=su(g_last), n=n, sound=bool(sound))
