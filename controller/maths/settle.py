@@ -1061,6 +1061,18 @@ class SettleDetector:
         return left + (gain - 1.0) * self._unfitted
 
     @property
+    def slowest_tau(self) -> float:
+        """Remainder rule: s, the slowest time constant the settle's latest fit resolves (the slower of
+        two where two fit), NaN where no fit speaks for the settle or under the drift rules."""
+        if self.criteria.max_remainder is None:
+            return math.nan
+        two = self._sfit2
+        if two is not None and self._t_last - self._sfit_t <= self.criteria.fit_interval:
+            return float(two.tau)
+        f = self._sfit
+        return float(f.tau) if f is not None and self._fit_supports(f) else math.nan
+
+    @property
     def relaxations(self) -> int:
         """Remainder rule: exponentials in the model the last remainder came from (2 where one misfit and
         two fit, 1 for one, 0 for the slope bound); 0 under the drift rules."""
