@@ -748,7 +748,7 @@ class CycleMeasurer:
         a two-chamber model (each gas relaxing to its wall, both compressed alike) the expansion volume's
         own remainder is 1/(a_x + a_c v_c/v_x) times the pressure's (a: volume shares, v: the slow mode),
         about 5 for a 12 cm^3 cell relaxing in 30 s and an 8 cm^3 volume in 39 s, and without bound as
-        the two time constants meet.  The simulated 30 s thermal bench closed its expansion volume 8-11
+        the two time constants meet.  The simulated 30 s thermal bench closed its expansion volume 7-11
         Pa short, 0.02 K cold, when the zero's own remainder was 2 Pa; its calibrations came out 0.03 %
         low in Vr (mean z -1.4).  So no multiple of the visible remainder bounds it - only time: the
         imbalance began no larger than the vent's adiabatic cooling, Pa (1 - (Pa/P2)^((g-1)/g)), and
