@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from pycnoctl.controller.domain.gas import get_gas
+from pycnoctl.controller.domain.gas import UnknownGas, get_gas
 from pycnoctl.controller.domain.gaspath import ChamberCalibration
 from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.maths import results
@@ -937,8 +937,12 @@ class CycleMeasurer:
             return math.nan
         if p <= pa:
             return 0.0
-        g = float(get_gas(self.plan.gas).gamma)
-        return float(pa * (1.0 - (pa / p) ** ((g - 1.0) / g)))
+        try:
+            g = float(get_gas(self.plan.gas).gamma)
+            exponent = (g - 1.0) / g
+        except UnknownGas:  # no gamma known: (g - 1)/g < 1 for every gas, so 1 bounds the cooling from above
+            exponent = 1.0
+        return float(pa * (1.0 - (pa / p) ** exponent))
 
     def _settled_temperature(self, readings: list[float]) -> tuple[float, int]:
         """(K, equivalent number of readings): the gas temperature of the value just settled. The
