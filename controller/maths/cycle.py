@@ -733,7 +733,7 @@ class CycleMeasurer:
 
     def _veto(self, state: str) -> bool:
         """The detector's last word before a decision: too soon for this phase, or (P1, P2) a slow
-        relaxation still pending."""
+        relaxation still pending, or (the zero) the imbalance the transducer cannot see still too large."""
         if state == _BASELINE:
             return self._too_soon(state) or self._imbalance_pending()
         return self._too_soon(state) or self._slow_pending()
@@ -751,8 +751,9 @@ class CycleMeasurer:
         the two time constants meet.  The simulated 30 s thermal bench closed its expansion volume 7-11
         Pa short, 0.02 K cold, when the zero's own remainder was 2 Pa; its calibrations came out 0.03 %
         low in Vr (mean z -1.4).  So no multiple of the visible remainder bounds it - only time: the
-        imbalance began no larger than the vent's adiabatic cooling, Pa (1 - (Pa/P2)^((g-1)/g)), and
-        decays at least as fast as the slowest relaxation the cycle's settles resolved."""
+        imbalance began no larger than the vent's adiabatic cooling, Pa (1 - (Pa/P)^((g-1)/g)) from the
+        pressure P the vent started at, and decays at least as fast as the slowest relaxation the
+        cycle's settles resolved."""
         det = self._det
         vents = [(t, d) for t, d in self._vents if math.isfinite(d)]
         if not vents or det is None:
