@@ -255,7 +255,7 @@ class Solver(_Strict):
     interp_rel: Annotated[float, Field(ge=0.0, le=1.0)] = 0.02  # ...or this share of the step's change
     max_step: PosDuration = 10.0
     first_step: PosDuration = 1e-3
-    coupling: Annotated[float, Field(gt=0.0, le=10.0)] = 0.5  # step / thermal tau while flowing and relaxing
+    coupling: Annotated[float, Field(gt=0.0, le=10.0)] = 0.05  # step / thermal tau while flowing and relaxing
     thermal_tol: NonNegTempDiff = 1e-3  # K from the wall below which that limit is lifted
 
 

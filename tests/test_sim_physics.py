@@ -375,3 +375,30 @@ def test_moles_match_equation_of_state():
     b.advance(60.0)
     p, t = b.pressure("cell"), b.gas_temperature("cell")
     assert b.moles("cell") == pytest.approx(get_gas("nitrogen").moles(p, 7e-6, t), rel=1e-12)
+
+
+def test_equal_time_constants_hide_the_imbalance_from_the_pressure():
+    """Two chambers whose gases relax to their walls with the same time constant, joined after an
+    expansion (the cell's gas cooled, the expansion volume's heated): linearised, with both gases
+    compressed alike (first law, ideal gas; common practice), the pressure follows the volume-weighted
+    mean temperature deviation, which decays with tau / gamma (14 s here); their difference decays with
+    tau at constant pressure.  So after a few of the fast time constants the cell reads its end while
+    the gases are still kelvins apart.  At the old default coupling (0.5) the heat/flow splitting held
+    the cell 7.5 and 4.4 Pa off its end at 35 and 50 s (a 20 s nitrogen bench), enough to mislead a
+    settle rule that works to 2 Pa; settings 5 times finer than today's default give 0.07 and 0.12."""
+    cfg = make({"gas": "nitrogen", "volumes": {"cell": {"volume": "15 cm^3", "thermal_tau": "20 s"},
+                                               "small": {"volume": "15 cm^3", "thermal_tau": "20 s"}},
+                "sample": {"solid_volume": "6 cm^3"}})
+    b = SimBench(cfg)
+    fill(b, 6.0)
+    b.advance(300.0)  # the cell's gas at its wall
+    b.set_valves({"exp_small": True})
+    t0 = b.clock.now()
+    readings, apart = {}, {}
+    for t in (35.0, 50.0, 600.0):
+        b.advance(t0 + t - b.clock.now())
+        readings[t] = b.read_pressure().value
+        apart[t] = b.gas_temperature("small") - b.gas_temperature("cell")
+    assert apart[35.0] > 5.0  # the premise: the gases still kelvins apart
+    assert abs(readings[35.0] - readings[600.0]) < 1.0, readings
+    assert abs(readings[50.0] - readings[600.0]) < 1.0, readings
