@@ -524,7 +524,7 @@ class CycleMeasurer:
         self._slow_cache: tuple[list[float], int, ExpFit | None] | None = None  # (trace times, length, fit)
         self._took: dict[str, list[float]] = {}  # s each settle state took to decide, in this run's cycles
         self._taus: list[float] = []  # s, the time constants this cycle's P1 and P2 fits resolved
-        self._vents: list[tuple[float, float]] = []  # (s, Pa): each vent since the last fill: start, cooling
+        self._vents: list[tuple[float, float]] = []  # (s, Pa): each vent since the last fill with a known start
         self._before = (math.nan, math.nan)  # the last finite (gauge, lab) reading: what a vent starts from
 
     # ----- the feed ---------------------------------------------------------------------------
@@ -755,14 +755,13 @@ class CycleMeasurer:
         pressure P the vent started at, and decays at least as fast as the slowest relaxation the
         cycle's settles resolved."""
         det = self._det
-        vents = [(t, d) for t, d in self._vents if math.isfinite(d)]
-        if not vents or det is None:
+        if not self._vents or det is None:
             return math.nan
         taus = [x for x in (*self._taus, det.slowest_tau) if math.isfinite(x) and x > 0]
         if not taus:
             return math.nan
         tau = max(taus)
-        return max(d * math.exp(-max(self._last_t - t, 0.0) / tau) for t, d in vents)
+        return max(d * math.exp(-max(self._last_t - t, 0.0) / tau) for t, d in self._vents)
 
     def _imbalance_pending(self) -> bool:
         """The baseline's veto: the hidden imbalance is still above max_remainder (the remainder rule's
@@ -848,7 +847,9 @@ class CycleMeasurer:
         elif state == RunState.LEAK_HOLD:
             self._leak = OnlineSlope()
         elif state in (RunState.VENT, RunState.PURGE_VENT):
-            self._vents.append((self._last_t, self._vent_cooling()))
+            cooling = self._vent_cooling()
+            if math.isfinite(cooling):
+                self._vents.append((self._last_t, cooling))
 
     def _leave(self, state: str | None, nxt: str) -> None:
         """A phase ended: an undecided settle followed by its next step was accepted on time-out."""

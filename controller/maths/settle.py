@@ -862,7 +862,7 @@ class SettleDetector:
         f = self._sfit
         self._unfitted = math.inf
         two = self._sfit2
-        if two is not None and self._t_last - self._sfit_t <= self.criteria.fit_interval:
+        if two is not None and self._sfit_current():
             # two relaxations fit where one misfits: their sum at the last sample is what is left, known
             # to its own covariance (what the slope bound below could only bound, stopping early under
             # noise and always on the same side); plus, as for one, what the noise lets the fit hide
@@ -934,9 +934,12 @@ class SettleDetector:
         three windows of it are more than a 2 Pa limit, so no settle of such an instrument decided."""
         return max(abs(slope) - self.criteria.steady_slope, 0.0)
 
+    def _sfit_current(self) -> bool:
+        """Whether the settle's latest fit (_fit_settle) is at most fit_interval old."""
+        return self._t_last - self._sfit_t <= self.criteria.fit_interval
+
     def _fit_supports(self, f: ExpFit | None) -> bool:
-        return (f is not None and f.sound and f.tau <= self._sfit_span
-                and self._t_last - self._sfit_t <= self.criteria.fit_interval)
+        return f is not None and f.sound and f.tau <= self._sfit_span and self._sfit_current()
 
     def _remainder_limit(self, fitted: bool = False) -> float:
         """Pa: max_remainder, or k times a reading's noise where that is larger: neither a window slope
@@ -1067,7 +1070,7 @@ class SettleDetector:
         if self.criteria.max_remainder is None:
             return math.nan
         two = self._sfit2
-        if two is not None and self._t_last - self._sfit_t <= self.criteria.fit_interval:
+        if two is not None and self._sfit_current():
             return float(two.tau)
         f = self._sfit
         return float(f.tau) if f is not None and self._fit_supports(f) else math.nan
