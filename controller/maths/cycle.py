@@ -53,6 +53,11 @@ LAB_FRAME_SPAN = 120.0
 # its readings: a wall changes over many minutes, and a shorter line's slope wanders by 0.1 Pa/s of
 # P1 with 0.01 K of thermometer noise
 WALL_SPAN = 120.0
+#: a settle follows the wall only where the line's slope is this many standard errors from zero at the
+#: settle's start: a line through a noisy or coarse thermometer wanders by far more than a steady wall
+#: moves, and a frame that follows the wander shows the detector a drift that is not the gas's (a
+#: nitrogen bench with a 1 Hz, 0.03 K thermometer never settled its empty cell in 600 s)
+WALL_SLOPE_Z = 3.0
 LAB_READ_EVERY = 1.0  # s between barometer readings (the controller reads it once a second)
 
 
@@ -459,6 +464,22 @@ class SlidingLine:
             for ox, oy in self.buf:
                 self._put(ox, oy, 1.0)
 
+    def slope_z(self, u_reading: float) -> float:
+        """|slope| over its standard error for readings of noise ``u_reading`` (rows repeating one
+        reading count once); 0 before the readings span LAB_LINE_FROM s, inf for a noise-free sensor."""
+        n = self.n
+        if n < 3 or self.buf[-1][0] - self.buf[0][0] < LAB_LINE_FROM:
+            return 0.0
+        mt, ma = self.st / n, self.sa / n
+        sxx = self.stt - n * mt * mt
+        if not sxx > 0.0:
+            return 0.0
+        slope = (self.sta - n * mt * ma) / sxx
+        if not u_reading > 0.0:
+            return math.inf if slope != 0.0 else 0.0
+        distinct = 1 + sum(1 for (_, a), (_, b) in itertools.pairwise(self.buf) if a != b)
+        return abs(slope) / (u_reading / math.sqrt(sxx * distinct / n))
+
     def at(self, t: float) -> float:
         n = self.n
         mt, ma = self.st / n, self.sa / n
@@ -519,6 +540,8 @@ class CycleMeasurer:
         self._wall_line = SlidingLine(WALL_SPAN)  # the thermometer's readings (the wall's temperature)
         self._wall = math.nan  # K, the line's value at the last sample of the current settle
         self._wall_ref = math.nan  # K, its first value in the settle
+        self._wall_moves = False  # whether this settle follows the wall yet (WALL_SLOPE_Z)
+        self._wall_check = -math.inf  # s, when the wall line's slope is next tested
         self._amb0 = math.nan  # Pa, the first lab reading of the settle: gauge + this ~ the absolute pressure
         self._leak = OnlineSlope()
         self._slow_cache: tuple[list[float], int, ExpFit | None] | None = None  # (trace times, length, fit)
@@ -589,6 +612,13 @@ class CycleMeasurer:
         if math.isfinite(temp_k):
             self._wall_line.add(t, temp_k)
         if not self._wall_line.n or not math.isfinite(self._amb0):
+            return gauge
+        if not self._wall_moves and t >= self._wall_check:  # looked at once a second until it moves
+            self._wall_check = t + 1.0
+            if self._wall_line.slope_z(self.plan.u_t) >= WALL_SLOPE_Z:
+                self._wall_moves, self._wall_ref = True, math.nan  # followed from here on
+        if not self._wall_moves:  # a wall steady within the thermometer's noise: nothing to follow
+            self._wall = self._wall_ref = 1.0
             return gauge
         wall = self._wall_line.at(t)
         if not math.isfinite(self._wall_ref):
@@ -835,6 +865,7 @@ class CycleMeasurer:
             self._trace = ([], [])
             self._lab = self._lab_ref = self._frame = math.nan  # the lines run on: the lab is the lab throughout
             self._wall = self._wall_ref = self._amb0 = math.nan
+            self._wall_moves, self._wall_check = False, -math.inf
         elif state == RunState.FILL:
             self.current = None
             self._taus, self._vents = [], []
