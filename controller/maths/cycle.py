@@ -53,10 +53,11 @@ LAB_FRAME_SPAN = 120.0
 # its readings: a wall changes over many minutes, and a shorter line's slope wanders by 0.1 Pa/s of
 # P1 with 0.01 K of thermometer noise
 WALL_SPAN = 120.0
-#: a settle follows the wall only where the line's slope is this many standard errors from zero at the
-#: settle's start: a line through a noisy or coarse thermometer wanders by far more than a steady wall
-#: moves, and a frame that follows the wander shows the detector a drift that is not the gas's (a
-#: nitrogen bench with a 1 Hz, 0.03 K thermometer never settled its empty cell in 600 s)
+#: a settle follows the wall only once the line's slope is this many standard errors from zero (tested
+#: at its first sample and once a second after): a line through a noisy or coarse thermometer wanders
+#: by far more than a steady wall moves, and a frame that follows the wander shows the detector a
+#: drift that is not the gas's (a nitrogen bench with a 1 Hz, 0.03 K thermometer never settled its
+#: empty cell in 600 s)
 WALL_SLOPE_Z = 3.0
 LAB_READ_EVERY = 1.0  # s between barometer readings (the controller reads it once a second)
 
@@ -477,8 +478,12 @@ class SlidingLine:
         slope = (self.sta - n * mt * ma) / sxx
         if not u_reading > 0.0:
             return math.inf if slope != 0.0 else 0.0
-        distinct = 1 + sum(1 for (_, a), (_, b) in itertools.pairwise(self.buf) if a != b)
-        return abs(slope) / (u_reading / math.sqrt(sxx * distinct / n))
+        return abs(slope) / (u_reading / math.sqrt(sxx * self._distinct() / n))
+
+    def _distinct(self) -> int:
+        """Readings in the line, rows that repeat one reading (a sensor read more slowly than the
+        pressure) counted once."""
+        return 1 + sum(1 for (_, a), (_, b) in itertools.pairwise(self.buf) if a != b)
 
     def at(self, t: float) -> float:
         n = self.n
@@ -499,7 +504,7 @@ class SlidingLine:
         if n == 0:
             return 0.0
         buf = self.buf
-        distinct = 1 + sum(1 for (_, a), (_, b) in itertools.pairwise(buf) if a != b)
+        distinct = self._distinct()
         if buf[-1][0] - buf[0][0] < LAB_LINE_FROM:
             return float(distinct)
         mt = self.st / n
@@ -615,11 +620,9 @@ class CycleMeasurer:
             return gauge
         if not self._wall_moves and t >= self._wall_check:  # looked at once a second until it moves
             self._wall_check = t + 1.0
-            if self._wall_line.slope_z(self.plan.u_t) >= WALL_SLOPE_Z:
-                self._wall_moves, self._wall_ref = True, math.nan  # followed from here on
-        if not self._wall_moves:  # a wall steady within the thermometer's noise: nothing to follow
-            self._wall = self._wall_ref = 1.0
-            return gauge
+            self._wall_moves = self._wall_line.slope_z(self.plan.u_t) >= WALL_SLOPE_Z  # followed from here on
+        if not self._wall_moves:  # a wall steady within the thermometer's noise: nothing to follow, and
+            return gauge  # _wall_ref stays unset, so _from_wall_ref gives the estimate back as it is
         wall = self._wall_line.at(t)
         if not math.isfinite(self._wall_ref):
             self._wall_ref = wall
