@@ -8,8 +8,23 @@ import numpy as np
 import pytest
 from uncertainties import ufloat
 
-from pycnoctl.controller.jobs.calibration import EMPTY, Point, Sphere, fit_points, parse_sphere, refusal_reason
-from pycnoctl.controller.maths.calibration import CalibrationRun, chi2_quantile, fit_calibration, two_point
+from pycnoctl.controller.domain.gas import get_gas
+from pycnoctl.controller.jobs.calibration import (
+    EMPTY,
+    Point,
+    Sphere,
+    fit_points,
+    parse_sphere,
+    points_from_summary,
+    refusal_reason,
+)
+from pycnoctl.controller.maths.calibration import (
+    CalibrationRun,
+    _u_y_temperatures,
+    chi2_quantile,
+    fit_calibration,
+    two_point,
+)
 
 PA = 101325.0
 
@@ -109,3 +124,20 @@ def test_refuses_scatter_the_noise_does_not_explain() -> None:
     reason = refusal_reason(bad, 0.01)
     assert reason is not None and "chi-square" in reason
     assert bad.chi2 > chi2_quantile(0.99, bad.dof)
+
+
+def test_a_points_temperatures_weigh_with_their_correlations() -> None:
+    # Ideal gas: y depends on the temperatures only through P/T, so one error common to T1, T2 and Ta
+    # (correlation 1, equal u) cancels and adds nothing to a point's u(y); independent errors of the same
+    # size do. The stored correlations are read back from a run summary's cycles.
+    base = {"p1": PA + 1.4e5, "p2": PA + 6e4, "pa": PA, "inserted_volume": 0.0, "t1": 296.0, "t2": 296.0,
+            "ta": 296.0, "u_t1": 0.01, "u_t2": 0.01, "u_ta": 0.01}
+    independent = _u_y_temperatures(CalibrationRun(**base), gas=get_gas("ideal"), mode="sample_first")
+    common = _u_y_temperatures(CalibrationRun(**base, r_t=(1.0, 1.0, 1.0)), gas=get_gas("ideal"),
+                               mode="sample_first")
+    assert independent > 1e-5 and common < 1e-6 * independent
+    cycle = {"kept": True, "ambient_pa": PA, "p1_gauge_pa": 1.4e5, "p2_gauge_pa": 6e4, "u_p1_pa": 1.0,
+             "u_p2_pa": 1.0, "index": 1, "t1_k": 296.0, "t2_k": 296.0, "ta_k": 296.0, "u_t1_k": 0.01,
+             "u_t2_k": 0.01, "u_ta_k": 0.01, "r_t1_t2": 0.5, "r_t1_ta": 0.25, "r_t2_ta": float("nan")}
+    (point,) = points_from_summary({"cycles": [cycle]}, 0, 0.0)
+    assert point.r_t == (0.5, 0.25, 0.0)  # a correlation not known is taken as none

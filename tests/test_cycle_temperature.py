@@ -101,6 +101,45 @@ def test_settled_temperatures_scatter_as_stated_and_far_less_than_a_mean_of_twen
     assert statistics.mean(t1) == pytest.approx(WALL, abs=3 * sd / math.sqrt(len(t1)) + 1e-6)
 
 
+def test_two_values_of_one_line_are_correlated_as_their_weights_say() -> None:
+    # the wall line taken at 100 s and again at 130 s (a P1 and its P2): they share the readings of
+    # 10-100 s. The weights reproduce the line's value, and their correlation is the one a Monte Carlo
+    # of white reading noise shows (GUM Supplement 1's method; 2,000 realisations, sampling error 0.02)
+    rng = np.random.default_rng(8)
+    times = [round(k * 0.1, 10) for k in range(1, 1301)]
+    first, second = [], []
+    w1 = w2 = None
+    for _ in range(2000):
+        line = SlidingLine(WALL_SPAN)
+        noise = rng.normal(0.0, U_T, len(times))
+        for i, t in enumerate(times):
+            line.add(t, WALL + noise[i])
+            if t == 100.0:
+                w1 = line.weights(t)
+                first.append(line.at(t))
+                assert sum(w * WALL + w * noise[w1.first - 1 + j] for j, w in enumerate(w1.weights)) == \
+                    pytest.approx(first[-1], abs=1e-9)
+        w2 = line.weights(times[-1])
+        second.append(line.at(times[-1]))
+    assert w1 is not None and w2 is not None
+    observed = float(np.corrcoef(first, second)[0, 1])
+    assert w1.correlation(w2) == pytest.approx(observed, abs=0.05)
+    assert 0.2 < observed < 0.9  # the premise: correlated, not nearly independent or identical
+    assert w1.correlation(w1) == pytest.approx(1.0)
+
+
+def test_a_cycles_stated_random_u_is_the_scatter_its_temperatures_give() -> None:
+    # noise-free pressures and a thermometer with 0.01 K of noise per reading on a steady wall: every
+    # cycle's scatter comes from its three temperatures, values of one line a minute or two apart. Treated
+    # as independent they over-stated the random u by 1.2-1.4 (9c7da0a); with the correlations of their
+    # shared readings it is the observed scatter, within the sampling error of 150 cycles (about 6 %)
+    results = [r for seed in (5, 6, 7) for r in _cycles(lambda t: WALL, n=50, seed=seed)[0].results]
+    sd = statistics.stdev(r.volume_m3 for r in results)
+    stated = statistics.mean(r.u_random_m3 for r in results)
+    assert 0.85 < stated / sd < 1.15
+    assert all(0.2 < r.r_t1_t2 < 0.9 for r in results)  # P1 and P2 share readings
+
+
 def test_a_drifting_wall_is_followed_without_lag() -> None:
     # 1 K/h (a lab warming fast): each settled temperature is the wall's at the settle's last sample,
     # not the mean of its span (a 120 s mean would lag by 60 s, 0.017 K)

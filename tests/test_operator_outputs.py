@@ -66,7 +66,7 @@ def test_the_budget_shows_the_calibration_as_one_row(data: Path, capsys: pytest.
     top = [r for r in rows if not r.get("detail")]
     assert sum(r["share"] for r in top if r["share"] is not None) == pytest.approx(1.0, abs=1e-9)
     text = _out(capsys, "show", rid, "--data", str(data))  # at 80 columns the label wraps inside its cell
-    assert "calibration (Vc, Vr" in text and "and their covariance)" in text and "  - cell volume Vc" in text
+    assert "calibration (Vc, Vr" in text and "covariance)" in text and "  - cell volume Vc" in text
 
 
 def test_porosity_carries_the_bulk_volume_uncertainty(data: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -148,3 +148,12 @@ def test_pdf_reports_carry_the_result_its_u_and_the_warnings(data: Path, capsys:
     assert "AL-1" in text and "AL-2" in text and "each run's density with its expanded U" in text
     html = Path(_out(capsys, "report", "--samples", "AL-", "--data", str(data)).strip())
     assert "data:image/png;base64," in html.read_text()
+
+
+def test_a_correlation_row_shows_its_coefficient_without_a_unit() -> None:
+    from pycnoctl.controller.record.report import budget_rows
+
+    row = {"name": "correlation T1, T2", "kind": "temperature", "value": 0.716, "std_u": None,
+           "sensitivity": None, "contribution": -2e-11, "variance": -4e-22, "share": -0.01}
+    (text,) = budget_rows([row])
+    assert text[0] == "correlation T1, T2" and text[1].strip() == "0.716" and text[2] == "-"

@@ -89,6 +89,32 @@ def test_real_gas_budget_with_temperatures_vs_monte_carlo():
     assert b.variance_of("temperature") > 0
 
 
+def test_correlated_temperatures_vs_monte_carlo():
+    # T1, T2 and Ta as values of one thermometer line that share readings (correlations as a zero, P1
+    # and P2 a minute apart give): the budget's covariance rows against a JCGM 101 Monte Carlo drawing the
+    # three from their joint normal distribution, with a common part that cancels in the mass balance
+    gas = get_gas("nitrogen")
+    t1, t2, ta = 296.0, 296.01, 295.99
+    u = np.array([6e-4, 5e-4, 7e-4])
+    r12, r1a, r2a = 0.6, 0.4, 0.1
+    corr = np.array([[1.0, r12, r1a], [r12, 1.0, r2a], [r1a, r2a, 1.0]])
+    p2 = expansion_pressure(VS, P1, PA, VC, VR, gas=gas, t1=t1, t2=t2, ta=ta)
+    b = cycle_volume_budget(P1, p2, PA, VC, VR, u_p1=1.0, u_p2=1.0, t1=t1, t2=t2, ta=ta, gas=gas,
+                            u_t1=u[0], u_t2=u[1], u_ta=u[2], r_t=(r12, r1a, r2a))
+    rng = np.random.default_rng(7)
+    n = 400_000
+    t1s, t2s, tas = rng.multivariate_normal([t1, t2, ta], corr * np.outer(u, u), size=n).T
+    r1, r2, ra = gas.molar_density(P1, t1s), gas.molar_density(p2, t2s), gas.molar_density(PA, tas)
+    vs_mc = VC - VR * (r2 - ra) / (r1 - r2)
+    assert math.sqrt(b.variance_of("temperature")) / vs_mc.std(ddof=1) == pytest.approx(1.0, abs=0.01)
+    independent = cycle_volume_budget(P1, p2, PA, VC, VR, u_p1=1.0, u_p2=1.0, t1=t1, t2=t2, ta=ta, gas=gas,
+                                      u_t1=u[0], u_t2=u[1], u_ta=u[2])
+    # the premise: the correlations matter here (T1 and T2 enter with opposite signs)
+    assert independent.variance_of("temperature") > 1.3 * b.variance_of("temperature")
+    rows = [c for c in b.contributions if c.name.startswith("correlation")]
+    assert len(rows) == 3 and all(c.random and c.kind == "temperature" for c in rows)
+
+
 def test_f_of_x_minimum_and_flatness():
     # methods.md [D]: f(x) = (1+x) sqrt(1+(1+x)^2)/x smallest near x = 1.21 (f = 4.43), f <= 4.8 on [0.7, 2]
     xs = np.linspace(0.3, 5.0, 47001)

@@ -136,6 +136,13 @@ class Point:
     u_t1: float = 0.0  # random parts of the temperatures
     u_t2: float = 0.0
     u_ta: float = 0.0
+    r_t: tuple[float, float, float] = (0.0, 0.0, 0.0)  # their correlations (T1-T2, T1-Ta, T2-Ta)
+
+
+def _r(c: dict[str, Any], key: str) -> float:
+    """A stored correlation; 0 where the record predates it or holds none."""
+    v = c.get(key)
+    return float(v) if v is not None and math.isfinite(v) else 0.0
 
 
 def points_from_summary(summary: dict[str, Any], step: int, inserted: float, *, u_pa: float = 0.0) -> list[Point]:
@@ -154,7 +161,8 @@ def points_from_summary(summary: dict[str, Any], step: int, inserted: float, *, 
                          c["u_p2_pa"], u_zero, c.get("t1_k"), c.get("t2_k"), c.get("ta_k"),
                          summary.get("run_id", ""), int(c["index"]), float(c.get("u_p1_relax_pa") or 0.0),
                          float(c.get("u_p2_relax_pa") or 0.0), float(c.get("u_baseline_relax_pa") or 0.0),
-                         float(c.get("u_t1_k") or 0.0), float(c.get("u_t2_k") or 0.0), float(c.get("u_ta_k") or 0.0)))
+                         float(c.get("u_t1_k") or 0.0), float(c.get("u_t2_k") or 0.0), float(c.get("u_ta_k") or 0.0),
+                         (_r(c, "r_t1_t2"), _r(c, "r_t1_ta"), _r(c, "r_t2_ta"))))
     return out
 
 
@@ -172,7 +180,7 @@ def fit_points(points: Sequence[Point], spheres: Sequence[Sphere], *, gas: str) 
     runs = [CalibrationRun(p.p1, p.p2, p.pa, p.inserted, t1=p.t1, t2=p.t2, ta=p.ta,
                            u_inserted=spheres[p.step].u_volume, u_p=p.u_p1, u_p2=p.u_p2, u_pa=p.u_pa, group=p.step,
                            u_p1_relax=p.u_p1_relax, u_p2_relax=p.u_p2_relax, u_pa_relax=p.u_pa_relax,
-                           u_t1=p.u_t1, u_t2=p.u_t2, u_ta=p.u_ta)
+                           u_t1=p.u_t1, u_t2=p.u_t2, u_ta=p.u_ta, r_t=p.r_t)
             for p in pts]
     return fit_calibration(runs, gas=gas)
 

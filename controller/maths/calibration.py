@@ -76,6 +76,9 @@ class CalibrationRun:
     u_t1: float = 0.0
     u_t2: float = 0.0
     u_ta: float = 0.0
+    # correlations of those errors (T1 with T2, T1 with Ta, T2 with Ta): values of one line through the
+    # thermometer's readings share the readings they overlap on
+    r_t: tuple[float, float, float] = (0.0, 0.0, 0.0)
 
 
 def chi2_quantile(p: float, dof: int) -> float:
@@ -195,11 +198,11 @@ def _u_y_pressures(p1: float, p2: float, pa: float, u_p: float, u_pa: float, *, 
 
 
 def _u_y_temperatures(r: CalibrationRun, *, gas: Gas, mode: str) -> float:
-    """Uncertainty of y from the run's independent temperature errors (central differences)."""
+    """Uncertainty of y from the run's temperature errors, with their correlations (central differences)."""
     if r.t1 is None:
         return 0.0
     base = {"t1": r.t1, "t2": r.t2, "ta": r.ta}
-    var = 0.0
+    cu = {}  # c_i u_i of each temperature
     for name, u in (("t1", r.u_t1), ("t2", r.u_t2), ("ta", r.u_ta)):
         if not u > 0.0 or base[name] is None:
             continue
@@ -208,8 +211,12 @@ def _u_y_temperatures(r: CalibrationRun, *, gas: Gas, mode: str) -> float:
         dn[name] = base[name] - 1e-3 * u  # type: ignore[operator]
         d = (expansion_ratio(r.p1, r.p2, r.pa, gas=gas, mode=mode, **up)
              - expansion_ratio(r.p1, r.p2, r.pa, gas=gas, mode=mode, **dn)) / (2e-3 * u)
-        var += (d * u) ** 2
-    return math.sqrt(var)
+        cu[name] = d * u
+    var = sum(x * x for x in cu.values())
+    for (a, b), rho in zip((("t1", "t2"), ("t1", "ta"), ("t2", "ta")), r.r_t, strict=True):
+        if a in cu and b in cu and math.isfinite(rho):
+            var += 2.0 * cu[a] * cu[b] * max(-1.0, min(1.0, rho))
+    return math.sqrt(max(var, 0.0))
 
 
 def fit_calibration(

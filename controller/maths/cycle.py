@@ -117,6 +117,9 @@ class CycleData:
     t2_k: float = math.nan
     n_t2: int = 0
     settle2_s: float = math.nan
+    r_t1_t2: float = 0.0  # correlations of the temperatures' errors (lines sharing readings)
+    r_t1_ta: float = 0.0
+    r_t2_ta: float = 0.0
     drift2_pa_s: float = math.nan
     fill_s: float = math.nan  # set by the engine: when its fill target was reached
     ambient1_pa: float = math.nan  # lab pressure (absolute) over P1's last samples, and P2's
@@ -416,6 +419,27 @@ class OnlineSlope:
         return self.ctp / self.ctt if self.n >= 2 and self.ctt > 0.0 else math.nan
 
 
+@dataclass(frozen=True)
+class LineWeights:
+    """A SlidingLine value as a weighted sum of its rows: ``weights[i]`` is row ``first + i``'s."""
+
+    first: int
+    weights: tuple[float, ...]
+
+    def correlation(self, other: LineWeights) -> float:
+        """Correlation of two values' errors from the rows' noise (white, alike in every row): the
+        rows they share over each one's own spread. Rows that repeat one slow reading count alike in
+        both, so this stays the readings' correlation while the weights change slowly over a reading."""
+        a, b = self.weights, other.weights
+        if not a or not b:
+            return 0.0
+        lo = max(self.first, other.first)
+        hi = min(self.first + len(a), other.first + len(b))
+        shared = sum(a[i - self.first] * b[i - other.first] for i in range(lo, hi))
+        norm = math.sqrt(sum(w * w for w in a) * sum(w * w for w in b))
+        return max(-1.0, min(1.0, shared / norm)) if norm > 0.0 else 0.0
+
+
 class SlidingLine:
     """A slowly changing reading now (the lab pressure, the wall temperature), from the readings of
     the last ``span`` s: a least-squares line through them evaluated at the newest time, once they span
@@ -425,12 +449,13 @@ class SlidingLine:
     settle to settle (the gaps between are the fill's few seconds), so a settle does not start on a
     line of one reading. Running sums: it runs on every sample."""
 
-    __slots__ = ("a0", "buf", "evicted", "n", "sa", "span", "st", "sta", "stt", "t0")
+    __slots__ = ("a0", "buf", "evicted", "n", "sa", "seq", "span", "st", "sta", "stt", "t0")
 
     def __init__(self, span: float = LAB_SPAN) -> None:
         self.span = span
         self.buf: deque[tuple[float, float]] = deque()
         self.n = self.evicted = 0
+        self.seq = 0  # rows ever added: the newest row's number (LineWeights keys rows by it)
         self.st = self.sa = self.stt = self.sta = 0.0
         self.t0 = self.a0 = math.nan  # times and pressures are taken from these, for well-conditioned sums
 
@@ -447,6 +472,7 @@ class SlidingLine:
         x, y = t - self.t0, a - self.a0
         buf = self.buf
         buf.append((x, y))
+        self.seq += 1
         # the sums inline, not through _put: this runs on every sample of every settle and vent
         n, st, sa, stt, sta = self.n + 1, self.st + x, self.sa + y, self.stt + x * x, self.sta + x * y
         edge = x - self.span
@@ -493,6 +519,24 @@ class SlidingLine:
         var = self.stt / n - mt * mt
         slope = (self.sta / n - mt * ma) / var if var > 0.0 else 0.0
         return self.a0 + ma + slope * (t - self.t0 - mt)
+
+    def weights(self, t: float) -> LineWeights:
+        """What each row in the line weighs in ``at(t)``: at(t) = sum of weight * reading. Two values of
+        one line taken at different times share the readings their spans overlap on, so their errors
+        are correlated (LineWeights.correlation)."""
+        n = self.n
+        if n == 0:
+            return LineWeights(self.seq + 1, ())
+        buf = self.buf
+        first = self.seq - n + 1
+        if buf[-1][0] - buf[0][0] < LAB_LINE_FROM:
+            return LineWeights(first, (1.0 / n,) * n)
+        mt = self.st / n
+        sxx = self.stt - n * mt * mt
+        if not sxx > 0.0:
+            return LineWeights(first, (1.0 / n,) * n)
+        k = (t - self.t0 - mt) / sxx
+        return LineWeights(first, tuple(1.0 / n + k * (x - mt) for x, _ in buf))
 
     def equivalent_readings(self, t: float) -> float:
         """How many independent readings a plain mean would need to be as certain as ``at(t)``.
@@ -554,6 +598,11 @@ class CycleMeasurer:
         self._taus: list[float] = []  # s, the time constants this cycle's P1 and P2 fits resolved
         self._vents: list[tuple[float, float]] = []  # (s, Pa): each vent since the last fill with a known start
         self._before = (math.nan, math.nan)  # the last finite (gauge, lab) reading: what a vent starts from
+        # the wall line's weights behind each settled temperature (ta, t1, t2) of this cycle: the three
+        # share readings where their lines overlap, so their errors are correlated (_temperature_correlations)
+        self._settled_weights: LineWeights | None = None
+        self._zero_tw: LineWeights | None = None
+        self._tw: dict[str, LineWeights] = {}
 
     # ----- the feed ---------------------------------------------------------------------------
     def feed(self, state: str, row: Row) -> SettleStatus | None:
@@ -872,6 +921,7 @@ class CycleMeasurer:
         elif state == RunState.FILL:
             self.current = None
             self._taus, self._vents = [], []
+            self._tw = {"ta": self._zero_tw} if self._zero_tw is not None else {}
             if self.zero is not None:
                 z = self.zero
                 self.current = CycleData(index=len(self.cycles) + 1, volume_name=self.plan.volume_name,
@@ -913,6 +963,7 @@ class CycleMeasurer:
                 self.notes.append(f"baseline before fill {len(self.cycles) + 1}: not settled under these rules")
             recent = self._window[-_LAST:]
             temp, n_temps = self._settled_temperature([w[1] for w in recent if math.isfinite(w[1])])
+            self._zero_tw = self._settled_weights
             u_reg, u_relax = settled_u_parts(det)
             hidden = self._imbalance_left()
             if math.isfinite(hidden):  # what the expansion volume may still hold unseen, as a rectangular bound
@@ -927,6 +978,11 @@ class CycleMeasurer:
         if cyc is None:
             return
         temp, n_temps = self._settled_temperature(self._temps[-_LAST:])
+        key = "t1" if self._state == RunState.SETTLE_FILLED else "t2"
+        if self._settled_weights is None:
+            self._tw.pop(key, None)
+        else:
+            self._tw[key] = self._settled_weights
         u_reg, u_relax = settled_u_parts(det)
         slow = self._slow_remainder()
         if slow is not None:  # what a resolved slow relaxation still has to move, as a rectangular bound
@@ -990,9 +1046,23 @@ class CycleMeasurer:
         and no temperature where the settle had no valid reading (a line is never stretched over a
         thermometer that stopped answering)."""
         line = self._wall_line
+        self._settled_weights = None
         if not readings or line.n == 0 or not math.isfinite(self._last_t):
             return _mean_of_readings(readings)
+        self._settled_weights = line.weights(self._last_t)
         return line.at(self._last_t), max(int(line.equivalent_readings(self._last_t)), 1)
+
+    def _temperature_correlations(self) -> tuple[float, float, float]:
+        """Correlations of the errors of T1 and T2, T1 and Ta, T2 and Ta: each is a value of one line
+        through the last WALL_SPAN of thermometer readings, and a zero, its P1 and its P2 are often
+        less than that apart, so their lines share most readings. Independent where one was a plain
+        mean (no line ran)."""
+        w = self._tw
+
+        def r(a: str, b: str) -> float:
+            return w[a].correlation(w[b]) if a in w and b in w else 0.0
+
+        return r("t1", "t2"), r("t1", "ta"), r("t2", "ta")
 
     def _complete(self) -> None:
         cyc = self.current
@@ -1000,6 +1070,7 @@ class CycleMeasurer:
             return
         if self.results and self.results[-1].index == cyc.index:
             return
+        cyc.r_t1_t2, cyc.r_t1_ta, cyc.r_t2_ta = self._temperature_correlations()
         p = self.plan
         amb = p.ambient
         self.results.append(results.cycle_result(

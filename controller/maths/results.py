@@ -41,6 +41,9 @@ class CyclePressures(Protocol):
     t2_k: float
     n_t2: int
     settle2_s: float
+    r_t1_t2: float
+    r_t1_ta: float
+    r_t2_ta: float
     drift2_pa_s: float
     fill_s: float
     ambient1_pa: float
@@ -84,6 +87,9 @@ class CycleResult:
     u_t1_k: float = 0.0  # random standard uncertainties of the temperatures (means of readings)
     u_t2_k: float = 0.0
     u_ta_k: float = 0.0
+    r_t1_t2: float = 0.0  # correlations of the temperatures' errors (their lines share readings)
+    r_t1_ta: float = 0.0
+    r_t2_ta: float = 0.0
     u_random_m3: float = math.nan  # the part of u_volume_m3 that changes from cycle to cycle
 
     def as_dict(self) -> dict[str, Any]:
@@ -150,7 +156,7 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
             p1, p2, pa, chambers.vc, chambers.vr, u_p1=u_p1, u_p2=u_p2, u_pa=u_pa, cov_cal=chambers.cov,
             t1=t1, t2=t2, ta=ta, u_t=u_t if t1 is not None else 0.0, gas=gas,
             u_p1_sys=u_p1_sys, u_p2_sys=u_p2_sys, u_pa_sys=u_pa_sys, pressures_type_a=True,
-            u_t1=u_t1, u_t2=u_t2, u_ta=u_ta,
+            u_t1=u_t1, u_t2=u_t2, u_ta=u_ta, r_t=(cyc.r_t1_t2, cyc.r_t1_ta, cyc.r_t2_ta),
         )
         volume, u_volume = budget.value, budget.combined
     except VolumeError as exc:
@@ -166,7 +172,8 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
         drift1_pa_s=cyc.drift1_pa_s, drift2_pa_s=cyc.drift2_pa_s, fill_s=cyc.fill_s,
         u_baseline_pa=u_pa, u_p1_sys_pa=u_p1_sys, u_p2_sys_pa=u_p2_sys, u_baseline_relax_pa=u_pa_sys,
         u_p1_relax_pa=_fin(cyc.u_p1_relax_pa), u_p2_relax_pa=_fin(cyc.u_p2_relax_pa),
-        u_t1_k=u_t1, u_t2_k=u_t2, u_ta_k=u_ta, p1_ambient_pa=amb1, p2_ambient_pa=amb2,
+        u_t1_k=u_t1, u_t2_k=u_t2, u_ta_k=u_ta, r_t1_t2=cyc.r_t1_t2, r_t1_ta=cyc.r_t1_ta, r_t2_ta=cyc.r_t2_ta,
+        p1_ambient_pa=amb1, p2_ambient_pa=amb2,
         u_random_m3=math.sqrt(budget.random_variance) if budget is not None else math.nan,
     )
 

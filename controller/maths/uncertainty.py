@@ -173,6 +173,7 @@ def cycle_volume_budget(
     u_t2: float | None = None,
     u_ta: float | None = None,
     pressures_type_a: bool = False,
+    r_t: tuple[float, float, float] = (0.0, 0.0, 0.0),
 ) -> Budget:
     """Budget for the sample volume of one expansion.
 
@@ -183,6 +184,9 @@ def cycle_volume_budget(
     ``u_t`` is the standard uncertainty of each temperature, taken as independent between t1, t2 and
     ta (noise, drift and non-uniformity; a common thermometer offset cancels and is left out);
     ``u_t1``/``u_t2``/``u_ta`` override it per temperature (a mean of n readings has u_t/sqrt(n)).
+    ``r_t``: the correlations of the temperatures' random errors (T1 with T2, T1 with Ta, T2 with Ta),
+    e.g. values of one line through the thermometer's readings that share readings; each non-zero
+    one is a covariance row 2 c_i c_j r u_i u_j of its own, random like the temperatures.
     """
     g = get_gas(gas)
     t1_, t2_, ta_ = resolve_temperatures(t1, t2, ta)
@@ -229,8 +233,25 @@ def cycle_volume_budget(
 
         c = _derivative(at, x, u)
         rows.append(Contribution(label, x, u, c, c * u, kind=kind, random=rand, evaluation=ev))
+    rows.extend(_temperature_covariances(rows, r_t))
     combined = math.sqrt(max(sum(r.variance for r in rows), 0.0))
     return Budget("sample volume", value, rows, combined, k=k)
+
+
+def _temperature_covariances(rows: list[Contribution], r_t: tuple[float, float, float]) -> list[Contribution]:
+    """Covariance rows for correlated temperature errors (GUM 5.2.2: 2 c_i c_j u_i u_j r_ij)."""
+    temps = {r.name: r for r in rows if r.kind == "temperature"}
+    out = []
+    for (a, b), r in zip((("T1", "T2"), ("T1", "Ta"), ("T2", "Ta")), r_t, strict=True):
+        ra, rb = temps.get(f"temperature {a}"), temps.get(f"temperature {b}")
+        if ra is None or rb is None or r == 0.0 or not math.isfinite(r):
+            continue
+        r = max(-1.0, min(1.0, r))
+        var = 2.0 * ra.contribution * rb.contribution * r
+        out.append(Contribution(f"correlation {a}, {b}", r, math.nan, math.nan,
+                                math.copysign(math.sqrt(abs(var)), var), variance=var, kind="temperature",
+                                random=True, evaluation="B"))
+    return out
 
 
 def type_a(values: Sequence[float]) -> tuple[float, float, float]:

@@ -213,6 +213,8 @@ def budget_rows(budget: Sequence[dict[str, Any]]) -> list[list[str]]:
         unit, scale, fmt = _BUDGET_UNITS.get(b.get("kind", ""), ("", 1.0, ".4g"))
         val = b.get("value")
         is_cov = b.get("std_u") is None and b.get("kind") == "calibration"
+        if str(b.get("name", "")).startswith("correlation "):  # a correlation coefficient: no unit
+            unit, scale, fmt = "", 1.0, ".3f"
         value = _num(val * scale * (1e6 if is_cov else 1.0), ".4g") + " cm⁶" if is_cov and val is not None else (
             f"{_num(val * scale if val is not None else None, fmt)} {unit}")
         u = "-" if b.get("std_u") is None else f"{_num(b['std_u'] * scale, '.3g')} {unit}"
