@@ -8,7 +8,10 @@ realisation (its own simulator seed).  Printed per instrument and pooled:
 - observed SD of the run results within one calibration, and the mean stated U (k = 2);
 - coverage: the share of runs whose |result - truth| <= U;
 - stated random u of a run's mean / observed SD (the budget's prediction of its own scatter), and
-  the same for single cycles (a cycle's random u / the cycle-to-cycle SD within runs);
+  the same for single cycles (a cycle's random u / the cycle-to-cycle SD within runs); and the run
+  ratio pooled over the instruments (their chi-square) with the range an exact budget gives, and how
+  many instruments an exact budget leaves outside 0.8-1.25 by sampling alone (a 27-degree-of-freedom
+  SD is known to about 14 %, so about one in ten);
 - calibration z-scores (fitted - true) / u for Vc and Vr, and the share within 2 u - per quantity,
   both at once, and what exactly N(0,1) z-scores at the observed Vc-Vr correlation would give for
   both at once (about 94 % at their usual 0.97: honest k = 2 uncertainties reach 95.4 % only for one);
@@ -265,8 +268,12 @@ def _noise_only_u(c: dict[str, Any], vc: float, vr: float, gas: str) -> float:
 
 def _pooled_sd(groups: list[list[float]]) -> float:
     num = sum((len(g) - 1) * statistics.variance(g) for g in groups if len(g) > 1)
-    dof = sum(len(g) - 1 for g in groups if len(g) > 1)
+    dof = _pooled_dof(groups)
     return math.sqrt(num / dof) if dof else math.nan
+
+
+def _pooled_dof(groups: list[list[float]]) -> int:
+    return sum(len(g) - 1 for g in groups if len(g) > 1)
 
 
 def summarise(spec: str, cals: list[dict[str, Any]]) -> dict[str, Any]:
@@ -285,7 +292,8 @@ def summarise(spec: str, cals: list[dict[str, Any]]) -> dict[str, Any]:
     err = np.array([r["v"] - r["truth"] for r in runs])
     U = np.array([r["U"] for r in runs])
     truth = runs[0]["truth"]
-    sd = _pooled_sd([[r["v"] for r in c["runs"] if r["v"] is not None] for c in cals])
+    groups = [[r["v"] for r in c["runs"] if r["v"] is not None] for c in cals]
+    sd = _pooled_sd(groups)
     cyc_sd = _pooled_sd([r["cycle_v"] for r in runs if len(r["cycle_v"]) > 1])
     cyc_u = float(np.mean([u for r in runs for u in r["cycle_u_random"]]))
     cyc_noise = float(np.mean([u for r in runs for u in r["cycle_u_noise"]]))
@@ -293,6 +301,7 @@ def summarise(spec: str, cals: list[dict[str, Any]]) -> dict[str, Any]:
     row.update(truth_cm3=truth, bias_pct=100 * err.mean() / truth, bias_over_U=float(err.mean() / U.mean()),
                sd_pct=100 * sd / truth, U_pct=100 * U.mean() / truth,
                coverage=float(np.mean(np.abs(err) <= U)), random_u_over_sd=pred_run / sd if sd > 0 else math.nan,
+               sd_dof=_pooled_dof(groups),
                cycle_u_over_sd=cyc_u / cyc_sd if cyc_sd > 0 else math.nan,
                cycle_sd_over_noise=cyc_sd / cyc_noise if cyc_noise > 0 else math.nan,
                minutes=float(np.mean([r["time_s"] for r in runs])) / 60.0,
@@ -365,6 +374,32 @@ def main() -> None:
     z = np.array([(a, b) for r in rows for a, b in zip(r["z_vc"], r["z_vr"], strict=True)])
     if len(z) >= 3:
         print(_joint_coverage_line(z))
+    ratios = [(r["random_u_over_sd"], r["sd_dof"]) for r in ok
+              if math.isfinite(r["random_u_over_sd"]) and r["sd_dof"] > 0]
+    if ratios:
+        print(_random_u_line(ratios))
+
+
+def _random_u_figures(ratios: list[tuple[float, int]]) -> dict[str, float]:
+    """The stated random u / run SD of every instrument, pooled, against what sampling alone gives.
+    Why: each instrument's run SD rests on a few tens of runs (27 degrees of freedom at 3 x 10), so even
+    an exact budget leaves a ratio outside 0.8-1.25 about one time in ten; the pooled ratio (the runs'
+    chi-square over all instruments) tells an over- or under-stated budget from that scatter."""
+    from pycnoctl.controller.maths.chisq import chi2_cdf, chi2_ppf, chi2_sf
+
+    dof = sum(n for _, n in ratios)
+    chi2 = sum(n / (r * r) for r, n in ratios)  # sum of dof x (SD / u)^2: chi-square with dof if u is exact
+    return {"pooled": math.sqrt(dof / chi2), "dof": dof, "n": len(ratios),
+            "lo": math.sqrt(dof / chi2_ppf(0.975, dof)), "hi": math.sqrt(dof / chi2_ppf(0.025, dof)),
+            "outside": sum(1 for r, _ in ratios if not 0.8 <= r <= 1.25),
+            "expected": sum(chi2_cdf(n * 0.8**2, n) + chi2_sf(n * 1.25**2, n) for _, n in ratios)}
+
+
+def _random_u_line(ratios: list[tuple[float, int]]) -> str:
+    f = _random_u_figures(ratios)
+    return (f"random u: stated / run SD pooled over {f['n']} instruments {f['pooled']:.2f} ({f['dof']} degrees "
+            f"of freedom; an exact budget gives {f['lo']:.2f}-{f['hi']:.2f} in 95 % of benches); outside "
+            f"0.8-1.25 {f['outside']} of {f['n']}, where an exact budget leaves {f['expected']:.1f} by sampling alone")
 
 
 def _joint_coverage_line(z: np.ndarray) -> str:
