@@ -134,8 +134,10 @@ def main(args: argparse.Namespace) -> int:
         return 0
     print(f"run {out['run_id']} re-analysed with sequence {seq.name!r}, gas {gas}, "
           f"Vc {out['chambers']['vc_cm3']:.5f} cm3, Vr {out['chambers']['vr_cm3']:.5f} cm3")
+    from pycnoctl.controller.maths.results import WARM_UP
+
     for c in out["cycles"]:
-        mark = "" if c["kept"] else " (discarded)"
+        mark = "" if c["kept"] else " (warm-up)" if WARM_UP in c["flags"] else " (discarded)"
         print(f"  cycle {c['index']}: P1 {units.p(c['p1_gauge_pa'])}, P2 {units.p(c['p2_gauge_pa'])} {units.p_label}, "
               f"V {c['volume_cm3']:.5f} cm3{mark} {' '.join(c['flags'])}")
     if out["volume_cm3"] is not None:

@@ -194,6 +194,10 @@ class LiveModel:
         u = r.get("u_volume_cm3")
         if u is None and isinstance(r.get("u_volume_m3"), (int, float)):
             u = r["u_volume_m3"] * 1e6
+        out = set(data.get("left_out") or ())
+        for c in self.cycles:
+            if c.index in out:
+                c.kept = False
         self.cycles.append(CycleRow(idx, r.get("p1_gauge_pa"), r.get("p2_gauge_pa"), vol, u,
                                     bool(r.get("kept")), list(r.get("flags") or [])))
 

@@ -35,14 +35,19 @@ def converge_rule(summary: dict[str, Any]) -> tuple[int, float] | None:
 
 def why(c: dict[str, Any], discard: int, outliers: list[int]) -> str:
     """A cycle's place in the result, in a word or three."""
+    from pycnoctl.controller.maths.results import SETTLED_TOO_SOON, WARM_UP  # here: listing runs needs no numpy
+
     flags = [f for f in c.get("flags") or [] if f]
     extra = f"; {', '.join(flags)}" if flags else ""
     if c.get("kept"):
         if c.get("index") in outliers:
             return "yes (outlier)" + extra
         return "yes" + extra
-    if c.get("index", 0) <= discard:
-        return "no (warm-up)" + extra
+    if SETTLED_TOO_SOON in flags:
+        return "no (" + "; ".join(flags) + ")"
+    if c.get("index", 0) <= discard or WARM_UP in flags:
+        rest = [f for f in flags if f != WARM_UP]
+        return "no (warm-up)" + (f"; {', '.join(rest)}" if rest else "")
     if c.get("volume_cm3") is None:
         return "no (no volume)" + extra
     return "no" + extra
@@ -116,6 +121,12 @@ def result_lines(summary: dict[str, Any], units: Units, *, simulated: bool | Non
         rsd = summary.get("rsd")
         first = "the first" if discard == 1 else f"the first {discard}"
         words = f"cycles:   {kept} of {n_cycles} kept" + (f" ({first} discarded as warm-up)" if discard else "")
+        from pycnoctl.controller.maths.results import WARM_UP
+
+        settling = [str(c.get("index")) for c in summary.get("cycles") or [] if WARM_UP in (c.get("flags") or [])]
+        if settling:
+            words += (f" (cycle{'s' if len(settling) > 1 else ''} {', '.join(settling)} left out as warm-up: "
+                      "the cycles after agreed and they had not)")
         if rsd is not None:
             words += f"; spread of the kept volumes (RSD) {rsd * 100:.3f} %"
         lines.append(words)

@@ -184,7 +184,7 @@ class Outcome:
 def outcome(prepared: PreparedRun, engine: RunEngine) -> Outcome:
     """The cycles as the engine's measurer finished them (never recomputed) and the run result."""
     seq, req = prepared.sequence, prepared.request
-    cycles = engine.cycle_results()
+    cycles = results.agreeing_only(engine.cycle_results(), seq.cycles.converge if seq.expands else None)
     res = results.run_result(cycles, converge=seq.cycles.converge, mass=req.mass, u_mass=req.u_mass) \
         if seq.expands else None
     return Outcome(cycles, res)

@@ -18,7 +18,7 @@ import functools
 import itertools
 import math
 from collections import deque
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -864,9 +864,9 @@ class CycleMeasurer:
         the same phase's before is one the data fooled: where the cell's gas warms while a slower
         expansion volume's cools, the pressure rises, stays level at its top for many seconds and then
         falls for minutes, and under 8 Pa of noise one exponential fits the top as a finished rise (4 of
-        12 synthetic settles taken there, 130 Pa above their end).  The first cycle has no history: the
-        discarded one, in the shipped sequences.  Held back, the settle goes on and decides on what
-        follows the top."""
+        12 synthetic settles taken there, 130 Pa above their end).  The first cycle has no history: it is
+        judged once two later cycles have settled (``_doubt_first``).  Held back, the settle goes on and
+        decides on what follows the top."""
         took = self._took.get(state)
         det = self._det
         if not took or det is None:
@@ -1077,3 +1077,22 @@ class CycleMeasurer:
             cyc, p.chambers, gas=p.gas, u_p_sys=p.u_p_sys, u_t=p.u_t, discard=p.discard,
             barometer=amb is not None and amb.barometer, u_barometer=amb.u_barometer if amb else 0.0,
             ambient_drift_rate=amb.drift_rate if amb else 0.0, u_lab=amb.u_followed if amb else None))
+        self._doubt_first()
+
+    def _doubt_first(self) -> None:
+        """Leave the run's first cycle out once two later ones show that one of its settles (P1 or P2)
+        ended before SOONER_SHARE of the time the same phase took in them.
+
+        Why: ``_too_soon`` holds back a decision far sooner than the run's earlier ones, but the first
+        cycle has none before it, so a top that looked finished (see ``_too_soon``) could only be caught
+        afterwards.  Where a sequence keeps its first cycle (no discard) this is that check, late."""
+        res = self.results
+        if len(res) < 3 or not res[0].kept:
+            return
+        first = res[0]
+        for name in ("settle1_s", "settle2_s"):
+            own = getattr(first, name)
+            later = [t for t in (getattr(c, name) for c in res[1:]) if math.isfinite(t)]
+            if math.isfinite(own) and len(later) >= 2 and own < SOONER_SHARE * float(np.median(later)):
+                res[0] = replace(first, kept=False, flags=[*first.flags, results.SETTLED_TOO_SOON])
+                return

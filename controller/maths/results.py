@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass, field, fields, replace
 from typing import Any, Protocol
 
 import numpy as np
@@ -236,6 +236,33 @@ def run_result(cycles: Sequence[CycleResult], *, converge: Any = None, mass: flo
         rho, u_rho = uncertainty.density(budget.value, budget.combined, mass, u_mass)
         res.density_kg_m3, res.u_density_kg_m3, res.U_density_kg_m3 = rho, u_rho, budget.k * u_rho
     return res
+
+
+#: The flag of a run's first cycle left out because one of its settles ended in under half the time the
+#: same phase took in the later cycles: with no history to hold it back, the data may have fooled it.
+SETTLED_TOO_SOON = "settled in under half the later cycles' time"
+#: The flag of a kept cycle left out because the cycles after it agreed and it had not (``result_from:
+#: agreeing``): it was still settling in.
+WARM_UP = "warm-up: before the agreeing cycles"
+
+
+def agreeing_only(cycles: Sequence[CycleResult], converge: Any = None) -> list[CycleResult]:
+    """The cycles with those before the agreeing group no longer kept, where the sequence takes its
+    result from the cycles that agreed (``converge.result_from: agreeing``) and the last ``last`` kept
+    ones do agree; otherwise the cycles as they are.
+
+    Why: a fixed ``discard`` guesses how many cycles a specimen takes to settle in; the agreement of the
+    last few says it.  For normally distributed cycles the mean of a group is independent of its
+    spread, so choosing the group by its agreement does not bias the mean."""
+    out = list(cycles)
+    if converge is None or getattr(converge, "result_from", "kept") != "agreeing":
+        return out
+    kept = [c for c in out if c.kept and c.budget is not None]
+    if not has_converged([c.volume_m3 for c in kept], converge.last, converge.within):
+        return out
+    group = {c.index for c in kept[-converge.last:]}
+    return [replace(c, kept=False, flags=[*c.flags, WARM_UP]) if c.kept and c.index not in group else c
+            for c in out]
 
 
 def has_converged(volumes: Sequence[float], last: int, within: float) -> bool:

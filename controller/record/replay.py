@@ -81,6 +81,6 @@ def reanalyze(run: StoredRun, sequence: Sequence, *, chambers: ChamberCalibratio
                                      ambient=ambient))
     for state, row in rows(run, pressure_is_gauge):
         meter.feed(state, row)
-    out = meter.results
+    out = results.agreeing_only(meter.results, sequence.cycles.converge if sequence.expands else None)
     res = results.run_result(out, converge=sequence.cycles.converge) if sequence.expands else None
     return Reanalysis(out, res, chambers, gas, list(meter.notes))

@@ -472,8 +472,10 @@ class RunEngine:
         assert cyc is not None
         done = self.meter.results[-1] if self.meter.results and self.meter.results[-1].index == cyc.index \
             else None
+        # "left_out": earlier cycles no longer kept (a first cycle its successors showed settled too soon)
         self.emit("cycle_done", {"cycle": cyc.index, "result": done.as_dict() if done is not None else
-                                 {"index": cyc.index, "flags": list(cyc.flags)}})
+                                 {"index": cyc.index, "flags": list(cyc.flags)},
+                                 "left_out": [c.index for c in self.meter.results[:-1] if not c.kept]})
         if self._kept_converged():
             self.converged_early = True
 

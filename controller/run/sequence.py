@@ -241,6 +241,11 @@ class Converge(_Strict):
 
     last: StrictInt = Field(2, ge=2)
     within: Fraction = 0.001  # 0.1 % each side of the mean = 0.2 % apart
+    # what the result is the mean of: every kept cycle ("kept"), or, once the last ``last`` agree, only
+    # those ("agreeing"): kept cycles before them were still settling in (a specimen coming to the cell's
+    # temperature, giving off moisture) and are shown as warm-up, so no fixed discard has to guess how
+    # many cycles that takes.  Where they never agree the result is every kept cycle, as with "kept".
+    result_from: Literal["kept", "agreeing"] = "kept"
 
     @field_validator("within")
     @classmethod

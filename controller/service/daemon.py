@@ -812,7 +812,9 @@ class Daemon:
             with self._lock:
                 cur = self._snap.get("current_run")
                 if cur is not None:
-                    cur["cycles"] = [*cur["cycles"], brief]
+                    out = set(data.get("left_out") or ())
+                    cur["cycles"] = [*({**c, "kept": False} if c.get("cycle") in out else c for c in cur["cycles"]),
+                                     brief]
         if kind in ("trip", "reset"):
             self._refresh_interlock()
             if kind == "trip":
