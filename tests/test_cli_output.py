@@ -21,7 +21,7 @@ from pycnoctl.controller.cli.display import (
     parse_units,
 )
 from pycnoctl.controller.cli.main import UsageError
-from pycnoctl.controller.cli.result_view import result_lines
+from pycnoctl.controller.cli.result_view import result_lines, why
 
 RUN_ID = re.compile(r"R\d{8}T\d{6}Z-[0-9a-f]{6}")
 
@@ -96,8 +96,8 @@ def test_show_at_terminal_widths(data: Path, capsys: pytest.CaptureFixture[str],
     text = _out(capsys, "show", rid, "--data", str(data))
     lines = [line for line in text.splitlines() if not line.startswith("record: ")]
     assert all(len(line) <= width for line in lines)
-    # grain-volume discards its first two cycles and ends once three kept ones agree (the clean bench)
-    assert "no (warm-up)" in text and len(re.findall(r"^\s+\d+ .* yes\s*$", text, re.M)) == 3
+    # grain-volume ends once three cycles agree; on the clean bench the first three do, all kept
+    assert "warm-up" not in text and len(re.findall(r"^\s+\d+ .* yes\s*$", text, re.M)) == 3
     assert "expanded U, k = 2" in text and "standard u = " in text and "u / cm3" in text
     assert "converged: yes (last 3 kept cycles within 0.1 % of their mean)" in " ".join(text.split())
     assert "porosity:" in text
@@ -114,7 +114,7 @@ def test_run_final_table_at_80_columns(tmp_path: Path, capsys: pytest.CaptureFix
     assert "SIMULATED: this result came from the gas-system simulator, not from a specimen" in flat
     assert "P1 / P2 / kPa kPa" in flat and re.search(r" 10\d\.\d{3} ", text)  # P1 of ~1.1 bar shown in kPa
     assert re.search(r"density: 392\d\.\d\d kg/m3 \+/- \d+\.\d\d kg/m3 \(expanded U, k = 2", flat)
-    assert "3 of 4 kept (the first discarded as warm-up)" in flat
+    assert "3 of 3 kept; spread" in flat and "warm-up" not in flat  # the first three agreed
     assert RUN_ID.search(text)
 
 
@@ -133,12 +133,25 @@ def test_result_words_for_a_run_that_did_not_converge() -> None:
     assert "calibration: NONE - uncalibrated" in text and "warning: w1" in text
 
 
+def test_result_words_for_cycles_left_out_before_the_agreeing_ones() -> None:
+    summary = {"status": "completed", "expansion_volume": "small", "gas": "helium", "k": 2.0,
+               "volume_cm3": 5.0012, "volume_u_cm3": 0.004, "volume_u_std_cm3": 0.002, "n_kept": 3,
+               "rsd": 0.0003, "converged": True,
+               "sequence": {"parsed": {"cycles": {"discard": 0, "converge": {"last": 3, "within": 0.001}}}},
+               "cycles": [{"index": i, "kept": i > 2, "volume_cm3": 5.0,
+                           "flags": [] if i > 2 else ["warm-up: before the agreeing cycles"]} for i in range(1, 6)],
+               "calibration": {"record": None}}
+    text = " ".join("\n".join(result_lines(summary, Units(), simulated=False)).split())
+    assert "cycles: 3 of 5 kept (cycles 1, 2 left out as warm-up: the cycles after agreed and they had not)" in text
+    assert [why(c, 0, []) for c in summary["cycles"]] == ["no (warm-up)"] * 2 + ["yes"] * 3
+
+
 def test_runs_csv_carries_the_record(data: Path, capsys: pytest.CaptureFixture[str]) -> None:
     rows = list(csv.DictReader(io.StringIO(_out(capsys, "runs", "--data", str(data), "--csv"))))
     assert len(rows) == 2
     for r in rows:
         assert r["gas"] == "helium" and r["instrument"] and r["operator"] == "tech-b"
-        assert r["expansion_volume"] == "small" and r["cycles"] == "4" and r["cycles_kept"] == "3"
+        assert r["expansion_volume"] == "small" and r["cycles"] == "3" and r["cycles_kept"] == "3"
         assert r["converged"] == "yes" and 0 < float(r["porosity"]) < 1 and float(r["rsd"]) >= 0
         assert "UNCALIBRATED" in r["warnings"] and r["calibrated"] == "no"
         assert {"simulated", "calibration_id", "U_porosity"} <= set(r)
@@ -148,8 +161,8 @@ def test_csv_and_json_of_a_run(data: Path, capsys: pytest.CaptureFixture[str]) -
     rid = json.loads(_out(capsys, "runs", "--data", str(data), "--json"))[0]["run_id"]
     rows = list(csv.DictReader(io.StringIO(_out(capsys, "show", rid, "--data", str(data), "--csv",
                                                 "--units", "psi"))))
-    assert [r["cycle"] for r in rows] == [str(i) for i in range(1, 5)]  # stopped once converged
-    assert rows[0]["kept"] == "no" and rows[0]["note"] == "no (warm-up)"
+    assert [r["cycle"] for r in rows] == [str(i) for i in range(1, 4)]  # stopped once three agreed
+    assert rows[0]["kept"] == "yes" and rows[0]["note"] == "yes"
     p1 = float(rows[-1]["p1_gauge_psi"])
     in_kpa = list(csv.DictReader(io.StringIO(_out(capsys, "show", rid, "--data", str(data), "--csv",
                                                   "--units", "kPa"))))
