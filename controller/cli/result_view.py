@@ -35,7 +35,8 @@ def converge_rule(summary: dict[str, Any]) -> tuple[int, float] | None:
 
 def why(c: dict[str, Any], discard: int, outliers: list[int]) -> str:
     """A cycle's place in the result, in a word or three."""
-    from pycnoctl.controller.maths.results import SETTLED_TOO_SOON, WARM_UP  # here: listing runs needs no numpy
+    # imported here: listing runs needs no numpy
+    from pycnoctl.controller.maths.results import SETTLED_TOO_SOON, STILL_SETTLING_IN, WARM_UP
 
     flags = [f for f in c.get("flags") or [] if f]
     extra = f"; {', '.join(flags)}" if flags else ""
@@ -43,7 +44,7 @@ def why(c: dict[str, Any], discard: int, outliers: list[int]) -> str:
         if c.get("index") in outliers:
             return "yes (outlier)" + extra
         return "yes" + extra
-    if SETTLED_TOO_SOON in flags:
+    if SETTLED_TOO_SOON in flags or STILL_SETTLING_IN in flags:
         return "no (" + "; ".join(flags) + ")"
     if c.get("index", 0) <= discard or WARM_UP in flags:
         rest = [f for f in flags if f != WARM_UP]

@@ -241,6 +241,9 @@ def run_result(cycles: Sequence[CycleResult], *, converge: Any = None, mass: flo
 #: The flag of a run's first cycle left out because one of its settles ended in under half the time the
 #: same phase took in the later cycles: with no history to hold it back, the data may have fooled it.
 SETTLED_TOO_SOON = "settled in under half the later cycles' time"
+#: The flag of a run's first cycle left out because its volume lies beyond its random u from the later
+#: cycles': the specimen and the gas were still settling in after the purge.
+STILL_SETTLING_IN = "beyond its noise from the later cycles: still settling in"
 #: The flag of a kept cycle left out because the cycles after it agreed and it had not (``result_from:
 #: agreeing``): it was still settling in.
 WARM_UP = "warm-up: before the agreeing cycles"
