@@ -158,6 +158,17 @@ def test_convergence_words_follow_the_kept_cycles() -> None:
     assert m.convergence().startswith("converged: last 3 kept within 0 %")
 
 
+def test_a_first_cycle_left_out_later_is_shown_not_kept() -> None:
+    # the engine's cycle_done names earlier cycles no longer kept (a first cycle judged late)
+    m = LiveModel(_plan())
+    t = 0.0
+    for n in range(1, 4):
+        t = _cycle(m, n, t, settle=10.0)
+    m.apply("cycle_done", {"cycle": 4, "result": {"index": 4, "volume_m3": 5e-6, "kept": True, "flags": []},
+                           "left_out": [1]}, t)
+    assert [c.kept for c in m.cycles] == [False, True, True, True]
+
+
 def test_plain_frame_line_for_a_pipe() -> None:
     m = LiveModel(_plan(), run_id="R1")
     _cycle(m, 1, 0.0, settle=10.0)

@@ -193,3 +193,19 @@ def test_sample_events_are_decimated_to_ten_a_second(served: tuple[Daemon, str])
             if t_end is not None and time.monotonic() > t_end:
                 break
     assert 5 <= n <= 17  # <= 10/s over 1.5 s (+ one at each edge)
+
+
+def test_a_cycle_left_out_later_is_shown_not_kept_on_the_dashboard(tmp_path: Path) -> None:
+    inst = build_sim_instrument(None)
+    d = Daemon(inst, tmp_path / "data")
+    try:
+        with d._lock:
+            d._snap["current_run"] = {"run_id": "R1", "cycle": 0, "cycles": []}
+        for n in (1, 2, 3):
+            d._on_event("cycle_done", {"cycle": n, "result": {"index": n, "volume_m3": 5e-6, "kept": True}})
+        d._on_event("cycle_done", {"cycle": 4, "result": {"index": 4, "volume_m3": 5e-6, "kept": True},
+                                   "left_out": [1]})
+        assert [c["kept"] for c in d.snapshot()["current_run"]["cycles"]] == [False, True, True, True]
+    finally:
+        d.catalog.close()
+        inst.close()
