@@ -1088,13 +1088,15 @@ class CycleMeasurer:
 
     def _doubt_first(self) -> None:
         """Leave the run's first cycle out once two later ones show that one of its settles (P1 or P2)
-        ended before SOONER_SHARE of the time the same phase took in them.
+        ended before SOONER_SHARE of the time the same phase took in them, or that its volume lies
+        more than FIRST_Z of its random u from theirs.
 
         Why: ``_too_soon`` holds back a decision far sooner than the run's earlier ones, but the first
         cycle has none before it, so a top that looked finished (see ``_too_soon``) could only be caught
-        afterwards.  Where a sequence keeps its first cycle (no discard) this is that check, late."""
+        afterwards; and the first cycle alone follows the purge (``_first_z``).  Where a sequence keeps
+        its first cycle (no discard) these are those checks, late."""
         res = self.results
-        if len(res) < 3 or not res[0].kept:
+        if len(res) < 3 or not res[0].kept or res[0].index != 1:
             return
         first = res[0]
         for name in ("settle1_s", "settle2_s"):
@@ -1112,7 +1114,7 @@ class CycleMeasurer:
 
         Why: the first cycle follows the purge, whose vents leave the gas and the specimen another
         thermal history than a cycle's; on a 30 s thermal bench it came out within the 0.1 % agreement
-        but several of its own u from the rest, and a third of that reached the mean."""
+        but about 2 of its own u below the rest, and a third of that reached the mean."""
         first, later = self.results[0], [c for c in self.results[1:] if c.kept and c.budget is not None]
         if first.budget is None or len(later) < 2:
             return 0.0

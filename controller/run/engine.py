@@ -472,7 +472,8 @@ class RunEngine:
         assert cyc is not None
         done = self.meter.results[-1] if self.meter.results and self.meter.results[-1].index == cyc.index \
             else None
-        # "left_out": earlier cycles no longer kept (a first cycle its successors showed settled too soon)
+        # "left_out": earlier cycles no longer kept (a first cycle its successors showed settled too soon
+        # or still settling in: CycleMeasurer._doubt_first)
         self.emit("cycle_done", {"cycle": cyc.index, "result": done.as_dict() if done is not None else
                                  {"index": cyc.index, "flags": list(cyc.flags)},
                                  "left_out": [c.index for c in self.meter.results[:-1] if not c.kept]})
