@@ -1115,9 +1115,10 @@ class CycleMeasurer:
         Why: the first cycle follows the purge, whose vents leave the gas and the specimen another
         thermal history than a cycle's; on a 30 s thermal bench it came out within the 0.1 % agreement
         but about 2 of its own u below the rest, and a third of that reached the mean."""
-        first, later = self.results[0], [c for c in self.results[1:] if c.kept and c.budget is not None]
+        first = self.results[0]
+        later = [(c.volume_m3, c.budget.random_variance) for c in self.results[1:] if c.kept and c.budget is not None]
         if first.budget is None or len(later) < 2:
             return 0.0
-        mean = float(np.mean([c.volume_m3 for c in later]))
-        var = first.budget.random_variance + float(np.mean([c.budget.random_variance for c in later])) / len(later)
+        mean = float(np.mean([v for v, _ in later]))
+        var = first.budget.random_variance + float(np.mean([r for _, r in later])) / len(later)
         return (first.volume_m3 - mean) / math.sqrt(var) if var > 0 else 0.0
