@@ -591,6 +591,24 @@ def test_estimate_duration_follows_its_documented_formula(tmp_path: Path) -> Non
         3 * (2.0 + 5) + 8 * (2.0 + 300 + 300 + 5 + 300))
 
 
+def test_a_run_that_stops_once_converged_is_estimated_at_its_fewest_cycles_too() -> None:
+    seq = sq.load_sequence(sq.resolve_sequence("grain-volume"))  # up to 8, stops once 3 agree, no discard
+    assert sq.earliest_cycles(seq) == seq.cycles.discard + seq.cycles.converge.last == 3
+    full, early = sq.estimate_duration(seq), sq.estimate_duration(seq, cycles=3)
+    per_cycle = (full - early) / (seq.cycles.count - 3)
+    assert early == pytest.approx(full - 5 * per_cycle) and early < full
+    calib = sq.load_sequence(sq.resolve_sequence("calibration"))  # no early stop: every cycle runs
+    assert sq.earliest_cycles(calib) == calib.cycles.count
+
+
+def test_check_prints_both_static_estimates(capsys: pytest.CaptureFixture[str]) -> None:
+    from pycnoctl.controller.cli.main import main
+
+    assert main(["check", "grain-volume", "--no-dry-run"]) == 0
+    out = " ".join(capsys.readouterr().out.split())
+    assert "for all 8 cycle(s);" in out and "if it stops after 3, as soon as its last cycles can agree" in out
+
+
 def test_resolve_sequence(tmp_path: Path) -> None:
     shipped = sq.list_shipped()
     assert sq.resolve_sequence("quick-demo") == shipped["quick-demo"]

@@ -92,7 +92,7 @@ def _facts(inst: Instrument) -> tuple[list[str], float, str]:
 
 
 def main(args: argparse.Namespace) -> int:
-    from pycnoctl.controller.run.sequence import SequenceNotFound, estimate_duration
+    from pycnoctl.controller.run.sequence import SequenceNotFound, earliest_cycles, estimate_duration
     from pycnoctl.drivers.simulated import build_sim_instrument
 
     def make() -> Instrument:
@@ -125,7 +125,10 @@ def main(args: argparse.Namespace) -> int:
     except SequenceNotFound as exc:
         raise UsageError(str(exc)) from None
     report: dict[str, Any] = {"sequence": seq.name, "file": str(seq.path), "kind": seq.kind, "problems": [],
-                              "warnings": warnings, "static_estimate_s": estimate_duration(seq)}
+                              "warnings": warnings, "static_estimate_s": estimate_duration(seq),
+                              "static_estimate_earliest_s": estimate_duration(seq, cycles=earliest_cycles(seq)),
+                              "cycles": seq.cycles.count if seq.expands else None,
+                              "earliest_cycles": earliest_cycles(seq) if seq.expands else None}
     if real_hardware:
         sim_names = _facts(make())[0]
         if seq.expands and seq.expand.volume not in ("auto", *sim_names):
@@ -160,7 +163,13 @@ def _print(r: dict[str, Any]) -> None:
     print(f"{r['file']}: sequence {r['sequence']!r} ({r['kind']}) is valid")
     for w in r["warnings"]:
         print(f"warning: {w}")
-    print(f"static estimate: {_dur(r['static_estimate_s'])}")
+    words = f"static estimate: {_dur(r['static_estimate_s'])}"
+    if r["cycles"] is not None:
+        words += f" for all {r['cycles']} cycle(s)"
+        if r["earliest_cycles"] < r["cycles"]:
+            words += (f"; {_dur(r['static_estimate_earliest_s'])} if it stops after {r['earliest_cycles']}, as "
+                      "soon as its last cycles can agree")
+    print(words)
     d = r.get("dry_run")
     if d:
         print(f"dry run on the {d['simulator']}: {d['status']} after {_dur(d['expected_duration_s'])} of "

@@ -725,14 +725,24 @@ def _settle_time(s: Settle, typical: float | None) -> float:
     return min(max(t, 0.0), s.max_time)
 
 
-def estimate_duration(seq: Sequence, *, fill_time: float = 5.0, settle_typical: float | None = None) -> float:
+def earliest_cycles(seq: Sequence) -> int:
+    """The fewest cycles a run of ``seq`` can end after: ``discard + last`` where it stops once its last
+    cycles agree, else ``count``."""
+    c = seq.cycles
+    if seq.expands and c.stop_on_converge and c.converge is not None:
+        return min(c.count, c.discard + c.converge.last)
+    return c.count
+
+
+def estimate_duration(seq: Sequence, *, fill_time: float = 5.0, settle_typical: float | None = None,
+                      cycles: int | None = None) -> float:
     """Static estimate of instrument time in s, before any run (the engine's dry run gives the real one).
 
     Each settle is taken as ``settle_typical`` or else the earliest it can be accepted,
     max(min_time, window), never beyond max_time; each fill takes ``fill_time``; valves switch
     instantly.  Purge: pulses x (fill + hold + vent).  Measure/calibrate: every cycle runs
     (converge may stop earlier) as fill + settle_filled + settle_expanded + vent.time + the baseline
-    settle.  Leak check:
+    settle (``cycles`` of them: ``earliest_cycles`` for a run that stops as soon as it can).  Leak check:
     fill + settle_filled + hold + vent.time.
     """
     total = 0.0
@@ -742,7 +752,7 @@ def estimate_duration(seq: Sequence, *, fill_time: float = 5.0, settle_typical: 
         per_cycle = (fill_time + _settle_time(seq.settle_filled, settle_typical)
                      + _settle_time(seq.settle_expanded, settle_typical) + seq.vent.time
                      + _settle_time(seq.settle_baseline, settle_typical))
-        total += seq.cycles.count * per_cycle
+        total += (seq.cycles.count if cycles is None else cycles) * per_cycle
     elif seq.kind == "leak_check" and seq.leak_check is not None:
         total += (fill_time + _settle_time(seq.settle_filled, settle_typical)
                   + seq.leak_check.hold + seq.vent.time)
