@@ -9,8 +9,9 @@ import numpy as np
 import pytest
 
 from pycnoctl.controller.domain.gaspath import ChamberCalibration
-from pycnoctl.controller.maths.cycle import CycleMeasurer, CyclePlan, Row, drift_unexplained, linear_drift
-from pycnoctl.controller.maths.settle import SettleCriteria, SettleStatus
+from pycnoctl.controller.maths.cycle import CycleMeasurer, CyclePlan, drift_unexplained, linear_drift
+from pycnoctl.controller.maths.settle import SettleCriteria
+from tests.measurer_feed import StateFeeder
 
 PA = 101325.0
 CRIT = SettleCriteria(window=4.0, max_drift=2.0, min_time=3.0, max_time=60.0, extrapolate=False)
@@ -43,16 +44,7 @@ def _cycle(slope: float) -> list[str]:
     plan = CyclePlan(baseline=CRIT, filled=CRIT, expanded=CRIT, chambers=ChamberCalibration(12e-6, 8e-6),
                      gas="helium", u_p=1.0, u_t=0.1, discard=0)
     m = CycleMeasurer(plan)
-    t = 0.0
-    rng = np.random.default_rng(5)
-
-    def run(state: str, f, seconds: float) -> None:
-        nonlocal t
-        t0 = t
-        for _ in range(round(seconds / 0.1)):
-            t += 0.1
-            if m.feed(state, Row(t, f(t - t0) + rng.normal(0, 1.0), PA, 295.0)) is SettleStatus.SETTLED:
-                return
+    run = StateFeeder(m, noise=1.0, seed=5).hold
 
     run("vent", lambda x: 0.0, 2.0)
     run("baseline", lambda x: 0.0, 20.0)

@@ -26,6 +26,7 @@ from typing import Any
 import numpy as np
 
 from pycnoctl.controller.domain.gas import Gas, get_gas
+from pycnoctl.controller.maths.uncertainty import temperature_pair_covariances
 from pycnoctl.controller.maths.volume import VolumeError, expansion_ratio
 
 
@@ -202,7 +203,7 @@ def _u_y_temperatures(r: CalibrationRun, *, gas: Gas, mode: str) -> float:
     if r.t1 is None:
         return 0.0
     base = {"t1": r.t1, "t2": r.t2, "ta": r.ta}
-    cu = {}  # c_i u_i of each temperature
+    cu = {}  # c_i u_i of each temperature, keyed as the volume budget keys them
     for name, u in (("t1", r.u_t1), ("t2", r.u_t2), ("ta", r.u_ta)):
         if not u > 0.0 or base[name] is None:
             continue
@@ -211,11 +212,8 @@ def _u_y_temperatures(r: CalibrationRun, *, gas: Gas, mode: str) -> float:
         dn[name] = base[name] - 1e-3 * u  # type: ignore[operator]
         d = (expansion_ratio(r.p1, r.p2, r.pa, gas=gas, mode=mode, **up)
              - expansion_ratio(r.p1, r.p2, r.pa, gas=gas, mode=mode, **dn)) / (2e-3 * u)
-        cu[name] = d * u
-    var = sum(x * x for x in cu.values())
-    for (a, b), rho in zip((("t1", "t2"), ("t1", "ta"), ("t2", "ta")), r.r_t, strict=True):
-        if a in cu and b in cu and math.isfinite(rho):
-            var += 2.0 * cu[a] * cu[b] * max(-1.0, min(1.0, rho))
+        cu["T" + name[1:]] = d * u
+    var = sum(x * x for x in cu.values()) + sum(v for *_, v in temperature_pair_covariances(cu, r.r_t))
     return math.sqrt(max(var, 0.0))
 
 

@@ -238,20 +238,28 @@ def cycle_volume_budget(
     return Budget("sample volume", value, rows, combined, k=k)
 
 
+#: The temperature pairs whose correlations ``r_t`` gives, in its order.
+TEMPERATURE_PAIRS = (("T1", "T2"), ("T1", "Ta"), ("T2", "Ta"))
+
+
+def temperature_pair_covariances(cu: dict[str, float], r_t: tuple[float, float, float]
+                                 ) -> list[tuple[str, str, float, float]]:
+    """(a, b, r, 2 c_a u_a c_b u_b r) for each correlated pair of the temperatures in ``cu`` (their c u,
+    keyed T1, T2, Ta): GUM 5.2.2.  The volume budget and the calibration fit both add these."""
+    out = []
+    for (a, b), r in zip(TEMPERATURE_PAIRS, r_t, strict=True):
+        if a in cu and b in cu and r != 0.0 and math.isfinite(r):
+            r = max(-1.0, min(1.0, r))
+            out.append((a, b, r, 2.0 * cu[a] * cu[b] * r))
+    return out
+
+
 def _temperature_covariances(rows: list[Contribution], r_t: tuple[float, float, float]) -> list[Contribution]:
     """Covariance rows for correlated temperature errors (GUM 5.2.2: 2 c_i c_j u_i u_j r_ij)."""
-    temps = {r.name: r for r in rows if r.kind == "temperature"}
-    out = []
-    for (a, b), r in zip((("T1", "T2"), ("T1", "Ta"), ("T2", "Ta")), r_t, strict=True):
-        ra, rb = temps.get(f"temperature {a}"), temps.get(f"temperature {b}")
-        if ra is None or rb is None or r == 0.0 or not math.isfinite(r):
-            continue
-        r = max(-1.0, min(1.0, r))
-        var = 2.0 * ra.contribution * rb.contribution * r
-        out.append(Contribution(f"correlation {a}, {b}", r, math.nan, math.nan,
-                                math.copysign(math.sqrt(abs(var)), var), variance=var, kind="temperature",
-                                random=True, evaluation="B"))
-    return out
+    cu = {r.name.removeprefix("temperature "): r.contribution for r in rows if r.kind == "temperature"}
+    return [Contribution(f"correlation {a}, {b}", r, math.nan, math.nan, math.copysign(math.sqrt(abs(var)), var),
+                         variance=var, kind="temperature", random=True, evaluation="B")
+            for a, b, r, var in temperature_pair_covariances(cu, r_t)]
 
 
 def type_a(values: Sequence[float]) -> tuple[float, float, float]:
