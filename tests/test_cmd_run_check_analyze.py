@@ -115,10 +115,11 @@ def _wait_for_rows(tmp_path: Path, rows: int, timeout: float = 120.0) -> Path:
     raise AssertionError("the run did not start")
 
 
-def test_ctrl_c_aborts_into_the_safe_state_and_keeps_the_record(tmp_path):
+@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM, signal.SIGHUP], ids=["int", "term", "hup"])
+def test_ctrl_c_kill_or_a_closed_terminal_aborts_into_the_safe_state_and_keeps_the_record(tmp_path, sig):
     proc = _start(tmp_path)
     folder = _wait_for_rows(tmp_path, 150)
-    proc.send_signal(signal.SIGINT)
+    proc.send_signal(sig)
     out, _ = proc.communicate(timeout=30)
     assert proc.returncode == 4
     summary = json.loads(out)
@@ -127,6 +128,9 @@ def test_ctrl_c_aborts_into_the_safe_state_and_keeps_the_record(tmp_path):
     last = {k: run.trace[k][-1] for k in ("state", "valve_inlet", "valve_vent")}
     assert last == {"state": "aborted", "valve_inlet": 0, "valve_vent": 1}
     assert run.summary["results"]["status"] == "aborted"
+    con = sqlite3.connect(tmp_path / "catalog.sqlite")
+    assert con.execute("SELECT status FROM runs WHERE id = ?", (folder.name,)).fetchone()[0] == "aborted"
+    con.close()
 
 
 def test_sigkill_mid_run_leaves_a_readable_trace_and_a_consistent_catalog(tmp_path):

@@ -118,7 +118,11 @@ def _run(args: argparse.Namespace, request: Any, root: Any) -> int:
         def on_sigint(signum: int, frame: Any) -> None:
             stop["flag"] = True
 
-        old = signal.signal(signal.SIGINT, on_sigint)
+        # a closed terminal (SIGHUP) or a kill (SIGTERM) ends the run as Ctrl-C does: safe state, record
+        # closed as aborted. Left to their defaults they ended the process with the inlet open and the
+        # catalog row still "running"
+        stopping = [signal.SIGINT, signal.SIGTERM, *([signal.SIGHUP] if hasattr(signal, "SIGHUP") else [])]
+        old = {sig: signal.signal(sig, on_sigint) for sig in stopping}
         try:
             if view is not None:
                 view.start()
@@ -131,7 +135,8 @@ def _run(args: argparse.Namespace, request: Any, root: Any) -> int:
                 except CalibrationRefused as exc:  # nothing moved, no record: the operator's input is missing
                     raise UsageError(f"refused: {exc}") from None
         finally:
-            signal.signal(signal.SIGINT, old)
+            for sig, handler in old.items():
+                signal.signal(sig, handler)
             if view is not None:
                 view.stop()
         catalog.close()
