@@ -124,11 +124,12 @@ def main(args: argparse.Namespace) -> int:
         seq, warnings = static_check(args.sequence, expansion_volumes=names, max_pressure=max_p, gas=gas)
     except SequenceNotFound as exc:
         raise UsageError(str(exc)) from None
+    earliest = earliest_cycles(seq)
     report: dict[str, Any] = {"sequence": seq.name, "file": str(seq.path), "kind": seq.kind, "problems": [],
                               "warnings": warnings, "static_estimate_s": estimate_duration(seq),
-                              "static_estimate_earliest_s": estimate_duration(seq, cycles=earliest_cycles(seq)),
+                              "static_estimate_earliest_s": estimate_duration(seq, cycles=earliest),
                               "cycles": seq.cycles.count if seq.expands else None,
-                              "earliest_cycles": earliest_cycles(seq) if seq.expands else None}
+                              "earliest_cycles": earliest if seq.expands else None}
     if real_hardware:
         sim_names = _facts(make())[0]
         if seq.expands and seq.expand.volume not in ("auto", *sim_names):
