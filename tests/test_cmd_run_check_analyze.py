@@ -133,6 +133,32 @@ def test_ctrl_c_kill_or_a_closed_terminal_aborts_into_the_safe_state_and_keeps_t
     con.close()
 
 
+@pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGHUP], ids=["term", "hup"])
+def test_a_kill_or_a_closed_terminal_ends_a_calibration_in_the_safe_state_and_stores_nothing(tmp_path, sig):
+    # Before the fix calibrate left SIGTERM and SIGHUP to their defaults: the process ended mid-step with
+    # the valves as they were and the step's catalog row 'running'.
+    env = {**os.environ, "PYTHONUNBUFFERED": "1"}
+    proc = subprocess.Popen([*PYCNOCTL, "calibrate", "--sim", "--sphere", "V=8.5802 cm^3,u=0.0004 cm^3",
+                             "--data", str(tmp_path), "--yes", "--json"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env)
+    _wait_for_rows(tmp_path, 50)
+    proc.send_signal(sig)
+    out, err = proc.communicate(timeout=60)
+    assert proc.returncode == 4, err
+    outcome = json.loads(out)
+    assert outcome["status"] == "aborted"
+    assert signal.Signals(sig).name in outcome["message"]
+    con = sqlite3.connect(tmp_path / "catalog.sqlite")
+    rows = dict(con.execute("SELECT id, status FROM runs").fetchall())
+    assert con.execute("SELECT COUNT(*) FROM calibrations").fetchone()[0] == 0
+    con.close()
+    assert "running" not in rows.values()
+    for run_id in (r for r, status in rows.items() if status == "aborted"):
+        run = load_run(tmp_path / "runs" / run_id)
+        last = {k: run.trace[k][-1] for k in ("state", "valve_inlet", "valve_vent")}
+        assert last == {"state": "aborted", "valve_inlet": 0, "valve_vent": 1}
+
+
 def test_sigkill_mid_run_leaves_a_readable_trace_and_a_consistent_catalog(tmp_path):
     proc = _start(tmp_path)
     folder = _wait_for_rows(tmp_path, 300)

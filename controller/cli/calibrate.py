@@ -9,6 +9,8 @@ Volumes in cm3 with standard uncertainties (k = 1); the table never cuts a figur
 terminal it leaves out the less important columns and says which; --csv and --json have all).
 
 Exit codes: 0 stored, 2 bad input, 3 a run faulted, 4 aborted, 6 refused (residuals too large).
+Ctrl-C, a kill (SIGTERM) or a closed terminal (SIGHUP) ends the running step through the safe state,
+closes its record as aborted and stores no calibration.
 """
 
 from __future__ import annotations
@@ -18,7 +20,7 @@ import json
 import sys
 from typing import Any
 
-from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, lock_data_folder
+from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, lock_data_folder, stop_requests
 from pycnoctl.controller.cli.display import add_output_args
 from pycnoctl.controller.cli.main import UsageError
 
@@ -60,12 +62,13 @@ def main(args: argparse.Namespace) -> int:
     say = (lambda text: None) if (args.json or args.csv) else (lambda text: print(text, file=sys.stderr))
     lock = lock_data_folder(data_dir(args.data), "calibrate")  # before any device is opened
     try:
-        return _calibrate(args, spheres, say)
+        with stop_requests() as stop:  # Ctrl-C, a kill or a closed terminal: safe state, record aborted
+            return _calibrate(args, spheres, say, stop)
     finally:
         lock.release()
 
 
-def _calibrate(args: argparse.Namespace, spheres: list[Any], say: Any) -> int:
+def _calibrate(args: argparse.Namespace, spheres: list[Any], say: Any, stop: Any) -> int:
     from pycnoctl.controller.cli.common import check_before_opening, open_instrument
     from pycnoctl.controller.jobs.calibration import (
         CalibrationError,
@@ -87,7 +90,8 @@ def _calibrate(args: argparse.Namespace, spheres: list[Any], say: Any) -> int:
         instrument = open_instrument(args)
 
         def prompt(text: str) -> None:
-            answer = input(f"{text} (q to stop): ")
+            with stop.prompting():  # nothing else would read a stop while input() waits
+                answer = input(f"{text} (q to stop): ")
             if answer.strip().lower() in ("q", "quit"):
                 raise KeyboardInterrupt
 
@@ -98,7 +102,7 @@ def _calibrate(args: argparse.Namespace, spheres: list[Any], say: Any) -> int:
     try:
         outcome = calibrate(spheres, loader, catalog=catalog, root=root / "runs",
                             expansion_volumes=args.expansion_volume, sequence=args.sequence,
-                            operator=args.operator, alpha=args.alpha, progress=say)
+                            operator=args.operator, alpha=args.alpha, progress=say, should_stop=stop)
     except (CalibrationError, SequenceNotFound) as exc:
         raise UsageError(str(exc)) from None
     except ValueError as exc:  # unknown expansion volume and the like

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import logging
+import signal
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -99,6 +100,53 @@ def held_log_lines(level: int = logging.WARNING) -> Iterator[list[str]]:
         yield lines
     finally:
         logger.removeHandler(handler)
+
+
+_STOP_REASONS = {"SIGINT": "stopped by the operator (Ctrl-C)", "SIGTERM": "stopped by SIGTERM (a kill)",
+                 "SIGHUP": "stopped by SIGHUP (the terminal or session closed)"}
+
+
+class StopRequest:
+    """A stop asked by a signal, read by the work at its next step: a measurement then ends through its
+    safe state and closes its record as aborted.  While the verb waits at a prompt nothing would read
+    the request, so there it interrupts at once (no valve moves while a prompt waits)."""
+
+    def __init__(self) -> None:
+        self.reason: str | None = None
+        self._at_prompt = False
+
+    def __call__(self) -> str | bool:
+        return self.reason or False
+
+    def _on_signal(self, signum: int, frame: Any) -> None:
+        self.reason = _STOP_REASONS.get(signal.Signals(signum).name, f"stopped by signal {signum}")
+        if self._at_prompt:
+            raise KeyboardInterrupt
+
+    @contextmanager
+    def prompting(self) -> Iterator[None]:
+        self._at_prompt = True
+        try:
+            if self.reason:
+                raise KeyboardInterrupt
+            yield
+        finally:
+            self._at_prompt = False
+
+
+@contextmanager
+def stop_requests() -> Iterator[StopRequest]:
+    """Ctrl-C (SIGINT), a kill (SIGTERM) and a closed terminal (SIGHUP) all ask the work to stop; left to
+    their defaults the last two ended the process with whatever valves were open and the catalog row
+    still 'running'.  The previous handlers come back on the way out."""
+    stop = StopRequest()
+    stopping = [signal.SIGINT, signal.SIGTERM, *([signal.SIGHUP] if hasattr(signal, "SIGHUP") else [])]
+    old = {sig: signal.signal(sig, stop._on_signal) for sig in stopping}
+    try:
+        yield stop
+    finally:
+        for sig, handler in old.items():
+            signal.signal(sig, handler)
 
 
 def lock_data_folder(root: Path, verb: str, *, mark_interrupted: bool = True) -> DataLock:

@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import signal
 import sys
 from typing import Any
 
@@ -31,6 +30,7 @@ from pycnoctl.controller.cli.common import (
     lock_data_folder,
     open_instrument,
     sim_pace,
+    stop_requests,
 )
 from pycnoctl.controller.cli.display import add_output_args, add_units_arg, parse_units
 from pycnoctl.controller.cli.main import UsageError
@@ -113,32 +113,21 @@ def _run(args: argparse.Namespace, request: Any, root: Any) -> int:
             model = LiveModel(Plan.from_sequence(prepared.sequence), simulated=simulated)
             view = LiveScreen(model, parse_units(args.units), console(sys.stderr))
             controller.listeners.append(view.on_event)
-        stop = {"flag": False}
+        with stop_requests() as stop:
+            try:
+                if view is not None:
+                    view.start()
+                from pycnoctl.controller.jobs.calibration_use import CalibrationRefused
 
-        def on_sigint(signum: int, frame: Any) -> None:
-            stop["flag"] = True
-
-        # a closed terminal (SIGHUP) or a kill (SIGTERM) ends the run as Ctrl-C does: safe state, record
-        # closed as aborted. Left to their defaults they ended the process with the inlet open and the
-        # catalog row still "running"
-        stopping = [signal.SIGINT, signal.SIGTERM, *([signal.SIGHUP] if hasattr(signal, "SIGHUP") else [])]
-        old = {sig: signal.signal(sig, on_sigint) for sig in stopping}
-        try:
-            if view is not None:
-                view.start()
-            from pycnoctl.controller.jobs.calibration_use import CalibrationRefused
-
-            with held_log_lines() as logged:
-                try:
-                    summary = execute(prepared, controller, root=root / "runs", catalog=catalog,
-                                      should_stop=lambda: stop["flag"])
-                except CalibrationRefused as exc:  # nothing moved, no record: the operator's input is missing
-                    raise UsageError(f"refused: {exc}") from None
-        finally:
-            for sig, handler in old.items():
-                signal.signal(sig, handler)
-            if view is not None:
-                view.stop()
+                with held_log_lines() as logged:
+                    try:
+                        summary = execute(prepared, controller, root=root / "runs", catalog=catalog,
+                                          should_stop=stop)
+                    except CalibrationRefused as exc:  # nothing moved, no record: the operator's input is missing
+                        raise UsageError(f"refused: {exc}") from None
+            finally:
+                if view is not None:
+                    view.stop()
         catalog.close()
     finally:
         instrument.close()

@@ -339,9 +339,12 @@ def calibrate(
     operator: str = "",
     alpha: float = 0.01,
     progress: Callable[[str], None] = lambda text: None,
+    should_stop: Callable[[], bool | str] = lambda: False,
 ) -> CalibrationOutcome:
     """Run the calibration sequence on the empty cell and each sphere, for each expansion volume; fit,
-    test and store.  Nothing is stored for a volume whose fit is refused."""
+    test and store.  Nothing is stored for a volume whose fit is refused, nor for any once a stop is
+    asked (``should_stop``, read before each step and by each run): the running step ends through its
+    safe state and its record is closed as aborted."""
     from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
     from pycnoctl.controller.run.control import Controller
 
@@ -357,6 +360,12 @@ def calibrate(
     seq_model: Any = None
     made_on: tuple[str, str] | None = None  # (identity, fingerprint) of the instrument every step ran on
     for index, sphere in enumerate(steps):
+        if stopped := should_stop():
+            why = stopped if isinstance(stopped, str) else "stopped"
+            return CalibrationOutcome(
+                [VolumeOutcome(n, None, False, f"{why} before step {index} ({sphere.label})", run_ids=ids)
+                 for n, ids in run_ids.items()],
+                "aborted", f"{why} before step {index} ({sphere.label}); nothing stored")
         inst = loader.load(index, sphere)
         try:
             if made_on is None:
@@ -374,7 +383,7 @@ def calibrate(
                                            f"{prepared.sequence.kind!r}, not 'calibrate'")
                 seq_model = prepared.sequence
                 progress(f"{name}: {sphere.label} ...")
-                summary = execute(prepared, Controller(inst), root=root, catalog=catalog)
+                summary = execute(prepared, Controller(inst), root=root, catalog=catalog, should_stop=should_stop)
                 run_ids.setdefault(name, []).append(summary["run_id"])
                 if summary["status"] != "completed":
                     why = (summary.get("fault") or {}).get("message") or summary.get("abort_reason") or ""
