@@ -262,7 +262,8 @@ class Solver(_Strict):
 class SimConfig(_Strict):
     name: str = "simulated pycnometer"
     description: str = ""
-    seed: int | None = None  # the noise realisation; None: a fresh one for every simulated instrument
+    # the noise realisation; None: a fresh one for every simulated instrument (the generator takes 0 and up)
+    seed: Annotated[int, Field(ge=0)] | None = None
     gas: str = "helium"
     cell: str = "cell"  # which volume is the sample cell
     lab: Lab = Lab()

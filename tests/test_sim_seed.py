@@ -100,3 +100,25 @@ def test_a_bowed_transducer_reads_off_the_line_and_its_instrument_says_by_how_mu
     assert 0.2 * span < x < 0.8 * span, x
     u = x / span
     assert inst.pressure.read().value - x == pytest.approx(4 * d_rel * span * u * (1 - u), rel=1e-6)
+
+
+@pytest.mark.parametrize("seed", ["-1", "1.5", "x"])
+def test_a_seed_that_is_not_a_whole_number_from_0_is_an_input_error(seed: str, tmp_path: Path,
+                                                                    capsys: pytest.CaptureFixture[str]) -> None:
+    # numpy's generator takes seeds from 0 up; a negative one ended "failed: ValueError" (exit 3)
+    with pytest.raises(SystemExit) as exc:
+        cli.main(["run", "grain-volume", "--sim", "--seed", seed, "--data", str(tmp_path), "--quiet"])
+    assert exc.value.code == 2
+    assert "--seed" in capsys.readouterr().err
+    assert not (tmp_path / "runs").exists()
+
+
+def test_a_negative_seed_in_a_simulator_config_is_refused_at_its_line(tmp_path: Path) -> None:
+    from pycnoctl.controller.domain.yamlio import ConfigError
+
+    path = tmp_path / "sim.yaml"
+    path.write_text(Path(shipped_configs()["clean"]).read_text() + "seed: -3\n")
+    with pytest.raises(ConfigError) as exc:
+        load_sim_config(path)
+    [problem] = exc.value.problems
+    assert str(problem).startswith(f"{path}:{len(path.read_text().splitlines())}:") and "seed" in str(problem)

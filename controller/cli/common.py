@@ -18,6 +18,17 @@ from pycnoctl.drivers.instrument import Instrument
 ROLES = ("valves", "pressure", "thermometer", "barometer")
 
 
+def _seed(text: str) -> int:
+    """A whole number from 0 up: the simulator's generator takes no negative seed (it ended in a traceback)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"{value} is negative; a seed is a whole number from 0 up")
+    return value
+
+
 def add_instrument_args(p: argparse.ArgumentParser, *, realtime: bool = True, always_realtime: bool = False) -> None:
     """--instrument CONFIG | --sim [SIMCONFIG], and the simulator's pace: one spelling on every verb.
 
@@ -27,7 +38,7 @@ def add_instrument_args(p: argparse.ArgumentParser, *, realtime: bool = True, al
     g.add_argument("--instrument", metavar="CONFIG", help="instrument config (YAML) describing the hardware")
     g.add_argument("--sim", nargs="?", const="", metavar="SIMCONFIG",
                    help="run on the gas-system simulator (its clean default instrument without a file)")
-    p.add_argument("--seed", type=int, metavar="N",
+    p.add_argument("--seed", type=_seed, metavar="N",
                    help="with --sim: pin the simulator's noise (default: a fresh realisation every time; each "
                         "run records the seed it had, so --seed with it replays that run)")
     if always_realtime:
