@@ -103,6 +103,8 @@ def result_lines(summary: dict[str, Any], units: Units, *, simulated: bool | Non
         std = f"; standard u = {u_std:.5f} cm3" if u_std is not None else ""
         lines.append(f"volume:   {summary['volume_cm3']:.5f} cm3 +/- {summary['volume_u_cm3']:.5f} cm3 "
                      f"(expanded U, k = {k:g}, about 95 % coverage{std})")
+        if summary.get("impossible"):
+            lines.append(f"NOT A MEASUREMENT: {summary['impossible']}")
     if summary.get("density_g_cm3") is not None:
         rho, u_rho = summary["density_g_cm3"] * 1e3, (summary.get("density_u_g_cm3") or 0.0) * 1e3
         lines.append(f"density:  {units.rho(rho)} {units.density} +/- {units.rho(u_rho)} {units.density} "
@@ -144,7 +146,8 @@ def result_lines(summary: dict[str, Any], units: Units, *, simulated: bool | Non
     if sim:
         lines.append("SIMULATED: this result came from the gas-system simulator, not from a specimen")
     for w in summary.get("warnings") or []:
-        lines.append(f"warning: {w}")
+        if not (summary.get("impossible") and w == f"NOT A MEASUREMENT: {summary['impossible']}"):  # said above
+            lines.append(f"warning: {w}")
     return lines
 
 
@@ -195,7 +198,7 @@ def print_summary(summary: dict[str, Any], folder: Any, units: Units | None = No
         con.print(title)
         print_table(cycle_columns(units), cycle_rows(summary, units), con=con)
     for line in result_lines(summary, units, simulated=simulated):
-        style = "bold red" if line.startswith(("fault", "converged: NO", "SIMULATED")) else (
+        style = "bold red" if line.startswith(("fault", "converged: NO", "SIMULATED", "NOT A MEASUREMENT")) else (
             "yellow" if line.startswith("warning") else None)
         con.print(line, style=style, markup=False, highlight=False)
     con.print(f"record: {folder}", markup=False, soft_wrap=True)  # a path is never folded mid-name

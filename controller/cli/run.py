@@ -10,7 +10,9 @@ saying so when the result came from the simulator.  Pressures are gauge (above a
 Exit codes: 0 completed, 2 bad input (or the data folder held by another writer), 3 fault (an
 interlock, a sequence failure, an unexpected error, or a record that could not be written during the
 run: one line on stderr, details in the run's events), 4 aborted, 5 a leak check that found a leak,
-6 a storage fault (disk full, I/O error, read-only media) that kept the run from starting.
+6 a storage fault (disk full, I/O error, read-only media) that kept the run from starting, 7 a result
+no specimen can have (below zero or above the sample cell's volume beyond its U: the chamber volumes or
+the readings are wrong; the record is kept for re-analysis).
 Ctrl-C aborts into the safe state; the record up to that moment is kept.
 """
 
@@ -152,4 +154,6 @@ def _run(args: argparse.Namespace, request: Any, root: Any) -> int:
             print(f"pycnoctl run: {line}", file=sys.stderr)
     if summary["status"] == "completed" and summary.get("leak_ok") is False:
         return 5
+    if summary["status"] == "completed" and summary.get("impossible"):
+        return 7
     return EXIT.get(summary["status"], 3)

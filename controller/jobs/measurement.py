@@ -228,7 +228,7 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
         "cycles": [c.as_dict() for c in cycles],
         "mass_g": req.mass * 1e3 if req.mass else None,
         "volume_cm3": None, "volume_u_cm3": None, "volume_u_std_cm3": None, "k": None,
-        "density_g_cm3": None, "density_u_g_cm3": None, "converged": None,
+        "density_g_cm3": None, "density_u_g_cm3": None, "converged": None, "impossible": None,
     }
     if seq.kind == "leak_check":
         rates = [c.leak_rate_pa_s for c in engine.cycles if math.isfinite(c.leak_rate_pa_s)]
@@ -250,12 +250,24 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
                 out["warnings"].append(
                     f"density {out['density_g_cm3']:.4g} g/cm3 lies outside any solid's ({lo:g}-{hi:g} g/cm3): "
                     "check the mass and its unit, and the sample volume")
+        impossible = results.outside_cell(res.volume_m3, res.U_volume_m3, cal.vc)
+        out["impossible"] = impossible
+        if impossible:
+            out["warnings"].append(f"NOT A MEASUREMENT: {impossible}")
         if req.bulk_volume and res.volume_m3 > 0:
             from pycnoctl.controller.maths.uncertainty import porosity
 
             phi, u_phi = porosity(req.bulk_volume, req.u_bulk_volume, res.volume_m3, res.u_volume_m3)
             out["porosity"], out["porosity_u"] = phi, res.k * u_phi
             out["bulk_volume_cm3"], out["u_bulk_volume_cm3"] = req.bulk_volume * 1e6, req.u_bulk_volume * 1e6
+            if phi + res.k * u_phi < 0:
+                out["warnings"].append(
+                    f"porosity {100 * phi:.2f} % is below zero beyond its U: the bulk volume "
+                    f"{req.bulk_volume * 1e6:.4g} cm3 is smaller than the grain volume {res.volume_m3 * 1e6:.4g} cm3, "
+                    "which no specimen can be; check the bulk volume, its unit and that it is of this specimen")
+            elif phi < 0:
+                out["warnings"].append(f"porosity {100 * phi:.2f} % is below zero but within its U of it: no open "
+                                       "porosity found")
     return jsonable(out)
 
 
@@ -393,7 +405,8 @@ def _store(summary: dict[str, Any], done: Outcome, prepared: PreparedRun, record
             _note_after_close(recorder, "not saved: " + "; ".join(str(f) for f in failures), "write_error" if any(
                 storage_cause(f) for f in failures) else type(failures[0]).__name__)
     req = prepared.request
-    message = (summary["fault"] or {}).get("message") or summary["abort_reason"] or None
+    message = (summary["fault"] or {}).get("message") or summary["abort_reason"] or (
+        f"NOT A MEASUREMENT: {summary['impossible']}" if summary.get("impossible") else None)
     try:
         res = done.result
         catalog.finish_run(run_id, summary["status"], volume_m3=_si(res.volume_m3) if res else None,

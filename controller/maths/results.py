@@ -162,7 +162,7 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
     except VolumeError as exc:
         budget, volume, u_volume = None, math.nan, math.nan
         flags.append(f"no volume: {exc}")
-    if math.isfinite(volume) and not 0.0 < volume <= chambers.vc:
+    if math.isfinite(volume) and outside_cell(volume, 2.0 * u_volume, chambers.vc):
         flags.append("volume outside the cell")
     return CycleResult(
         index=cyc.index, volume_name=cyc.volume_name, baseline_pa=cyc.baseline_pa, ambient_pa=pa,
@@ -176,6 +176,23 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
         p1_ambient_pa=amb1, p2_ambient_pa=amb2,
         u_random_m3=math.sqrt(budget.random_variance) if budget is not None else math.nan,
     )
+
+
+def outside_cell(volume: float, expanded_u: float, cell: float) -> str | None:
+    """Why a volume cannot be a specimen's (below zero or above the sample cell's volume by more than its
+    expanded uncertainty), or None.  Within its U of either end it can: an empty cell measures about
+    zero, and a run must not be called impossible for its noise.  Such a result says the chamber volumes
+    or the readings are wrong, not something about the specimen."""
+    if not (math.isfinite(volume) and math.isfinite(expanded_u)):
+        return None
+    if volume + expanded_u < 0.0:
+        return (f"the volume {volume * 1e6:.5g} cm3 is below zero by more than its U ({expanded_u * 1e6:.3g} cm3): "
+                "the chamber volumes (calibration) or the pressure readings are wrong")
+    if volume - expanded_u > cell:
+        return (f"the volume {volume * 1e6:.5g} cm3 exceeds the sample cell's {cell * 1e6:.5g} cm3 by more than "
+                f"its U ({expanded_u * 1e6:.3g} cm3): the chamber volumes (calibration) or the pressure readings "
+                "are wrong")
+    return None
 
 
 @dataclass

@@ -903,7 +903,9 @@ def brief_result(summary: dict[str, Any]) -> dict[str, Any]:
             "expansion_volume", "started_utc", "ended_utc", "instrument_time_s", "mass_g")
     out = {k: summary.get(k) for k in keys}
     out["sequence"] = (summary.get("sequence") or {}).get("name")
-    out["message"] = (summary.get("fault") or {}).get("message") or summary.get("abort_reason")
+    out["message"] = (summary.get("fault") or {}).get("message") or summary.get("abort_reason") or (
+        f"NOT A MEASUREMENT: {summary['impossible']}" if summary.get("impossible") else None)
+    out["impossible"] = summary.get("impossible")  # a result no specimen can have: the dashboard says so
     out["warnings"] = list(summary.get("warnings") or [])
     out["converged"] = summary.get("converged")
     out["simulated"] = summary.get("simulated")
