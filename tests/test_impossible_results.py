@@ -2,7 +2,8 @@
 its U (the chamber volumes or the readings are wrong) ends `run` with exit 7 and "NOT A MEASUREMENT"
 wherever the result appears; an empty cell, which measures zero within its noise, is not called
 impossible; a bulk volume smaller than the grain volume is warned about instead of printing a negative
-porosity as if it were one.
+porosity as if it were one; and what no specimen can be (a negative mass uncertainty, a mass in the
+wrong unit) is refused by the command line as by the daemon.
 
 References: that a skeletal volume lies between zero and the sample cell's volume, and a porosity
 1 - Vs/Vb between 0 and 1, is the definition of the quantities (common practice); the simulator's
@@ -82,3 +83,16 @@ def test_a_bulk_volume_below_the_grain_volume_is_warned_not_shown_as_a_porosity(
     code, summary = _run(tmp_path, "", capsys, "--bulk-volume", "6 cm3", "--u-bulk-volume", "0.01 cm3")
     assert 0 < summary["porosity"] < 1
     assert not [w for w in summary["warnings"] if "porosity" in w]
+
+
+@pytest.mark.parametrize(("args", "field"), [
+    (["--u-mass=-0.1 mg", "--mass", "19 g"], "--u-mass"),  # was taken by its magnitude
+    (["--mass", "19 g", "--u-mass", "12 g"], "--u-mass"),
+    (["--mass", "19 kg"], "--mass"),  # a wrong unit: the daemon refused it, the command line did not
+    (["--bulk-volume", "3 m3"], "--bulk-volume"),
+])
+def test_the_command_line_refuses_what_the_daemon_refuses_about_the_specimen(
+        args: list[str], field: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert cli.main(["run", "quick-demo", "--sim", "--quiet", "--data", str(tmp_path), *args]) == 2
+    assert capsys.readouterr().err.startswith(f"pycnoctl run: error: {field}:")
+    assert not (tmp_path / "runs").exists()

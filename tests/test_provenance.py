@@ -224,6 +224,12 @@ def test_the_calibrations_verb(tmp_path: Path, capsys: pytest.CaptureFixture[str
                      "--u-cell-volume", "0 cm3", "--volume", "8.0 cm3", "--u-volume", "0.004 cm3",
                      "--note", "water filling", *data]) == 2
     assert "never true" in capsys.readouterr().err
+    # a negative volume is wrong for its own reason: the message must not talk of an uncertainty
+    assert cli.main(["calibrations", "import", "--sim", "--expansion-volume", "small", "--cell-volume", "12.01 cm3",
+                     "--u-cell-volume", "0.005 cm3", "--volume", "-8.0 cm3", "--u-volume", "0.004 cm3",
+                     "--note", "water filling", *data]) == 2
+    err = capsys.readouterr().err
+    assert "--volume: must be a positive volume" in err and "uncertainty" not in err
     assert cli.main(["calibrations", "import", "--sim", "--expansion-volume", "small", "--cell-volume", "12.01 cm3",
                      "--u-cell-volume", "0.005 cm3", "--volume", "8.0 cm3", "--u-volume", "0.004 cm3",
                      "--note", "water filling", "--operator", "tech-a", *data]) == 0

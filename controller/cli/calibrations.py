@@ -278,8 +278,8 @@ def _import(args: argparse.Namespace, catalog: Any) -> int:
         except (UnitError, ValueError) as exc:
             raise UsageError(f"--{key.replace('_', '-')}: {exc}") from None
         if not (math.isfinite(values[key]) and values[key] > 0):
-            raise UsageError(f"--{key.replace('_', '-')}: must be a positive volume (an uncertainty of zero is "
-                             "never true)")
+            raise UsageError(f"--{key.replace('_', '-')}: must be a positive volume" + (
+                " (an uncertainty of zero is never true)" if key.startswith("u_") else ""))
     for v, u in (("cell_volume", "u_cell_volume"), ("volume", "u_volume")):
         if values[u] >= 0.5 * values[v]:
             raise UsageError(f"--{u.replace('_', '-')}: {values[u] * 1e6:g} cm3 is not an uncertainty of a "

@@ -55,7 +55,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 
 def request_from_args(args: argparse.Namespace) -> Any:
     from pycnoctl.controller.domain.units import UnitError, parse_mass, parse_volume
-    from pycnoctl.controller.jobs.measurement import RunRequest
+    from pycnoctl.controller.jobs.measurement import RunRequest, specimen_problem
 
     try:
         mass = parse_mass(args.mass) if args.mass else None
@@ -64,12 +64,9 @@ def request_from_args(args: argparse.Namespace) -> Any:
         u_bulk = parse_volume(args.u_bulk_volume) if args.u_bulk_volume else 0.0
     except UnitError as exc:
         raise UsageError(f"--mass/--u-mass/--bulk-volume/--u-bulk-volume: {exc}") from None
-    if mass is not None and mass <= 0:
-        raise UsageError("--mass: must be positive")
-    if u_bulk and bulk is None:
-        raise UsageError("--u-bulk-volume: give --bulk-volume too")
-    if not (u_bulk >= 0 and (bulk is None or u_bulk < 0.5 * bulk)):
-        raise UsageError("--u-bulk-volume: must be zero or positive and well below the bulk volume")
+    problem = specimen_problem(mass, u_mass, bulk, u_bulk)
+    if problem is not None:
+        raise UsageError(f"--{problem[0].replace('_', '-')}: {problem[1]}")
     return RunRequest(args.sequence, sample_id=args.sample, mass=mass, u_mass=u_mass, bulk_volume=bulk,
                       u_bulk_volume=u_bulk, operator=args.operator, expansion_volume=args.expansion_volume)
 

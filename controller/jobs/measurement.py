@@ -49,6 +49,37 @@ def data_dir(explicit: str | Path | None = None) -> Path:
 SOLID_DENSITY_G_CM3 = (0.3, 23.0)
 
 
+MASS_RANGE = (1e-6, 10.0)  # kg: 1 mg to 10 kg, what a pycnometer cell can hold (a wrong unit falls outside)
+BULK_RANGE = (1e-8, 1e-3)  # m^3: 0.01 cm^3 to 1 litre
+
+
+def specimen_problem(mass: float | None, u_mass: float, bulk_volume: float | None,
+                     u_bulk_volume: float) -> tuple[str, str] | None:
+    """The first thing wrong with what the operator says about the specimen, as (field, message), or
+    None.  One set of rules for the command line and the daemon: a negative uncertainty was taken by
+    its magnitude on one and refused on the other."""
+    if mass is not None and not (math.isfinite(mass) and mass > 0):
+        return "mass", "mass must be positive"
+    if mass is not None and not MASS_RANGE[0] <= mass <= MASS_RANGE[1]:
+        return "mass", (f"mass {mass * 1e3:.6g} g is not a specimen a pycnometer cell holds (give it between "
+                        f"{MASS_RANGE[0] * 1e3:g} g and {MASS_RANGE[1] * 1e3:g} g; is the unit right?)")
+    if bulk_volume is not None and not (math.isfinite(bulk_volume) and bulk_volume > 0):
+        return "bulk_volume", "bulk volume must be positive"
+    if bulk_volume is not None and not BULK_RANGE[0] <= bulk_volume <= BULK_RANGE[1]:
+        return "bulk_volume", (f"bulk volume {bulk_volume * 1e6:.6g} cm3 is not a specimen's (give it between "
+                               f"{BULK_RANGE[0] * 1e6:g} and {BULK_RANGE[1] * 1e6:g} cm3; is the unit right?)")
+    if not (math.isfinite(u_mass) and u_mass >= 0):
+        return "u_mass", "mass uncertainty must be zero or positive"
+    if mass is not None and u_mass >= 0.5 * mass:
+        return "u_mass", (f"mass uncertainty {u_mass * 1e3:.6g} g is not below half the mass {mass * 1e3:.6g} g "
+                          "(is the unit right?)")
+    if not (math.isfinite(u_bulk_volume) and u_bulk_volume >= 0) or (
+            u_bulk_volume and (bulk_volume is None or u_bulk_volume >= 0.5 * bulk_volume)):
+        return "u_bulk_volume", ("bulk volume uncertainty must be zero or positive, below half the bulk volume, "
+                                 "and given with a bulk volume")
+    return None
+
+
 @dataclass
 class RunRequest:
     """What the operator asks for; masses in kg, volumes in m^3."""

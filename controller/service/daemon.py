@@ -37,7 +37,7 @@ from typing import Any
 
 from pycnoctl.controller.domain.yamlio import ConfigError, Problem
 from pycnoctl.controller.jobs.calibration_use import CalibrationRefused, calibration_brief, find_calibration
-from pycnoctl.controller.jobs.measurement import RunFault, RunRequest, execute, prepare
+from pycnoctl.controller.jobs.measurement import RunFault, RunRequest, execute, prepare, specimen_problem
 from pycnoctl.controller.record.catalog import Catalog, is_run_id
 from pycnoctl.controller.record.storagefault import StorageFault
 from pycnoctl.controller.run.control import Controller
@@ -53,8 +53,6 @@ TRACE_POINTS = 3000  # decimated (t, gauge) points kept for a dashboard that con
 
 #: What a specimen can weigh and occupy in a home-built pycnometer (common practice: cells of about
 #: 1-500 cm^3): a value outside is a unit mistake, refused with the field named.
-MASS_RANGE = (1e-6, 10.0)  # kg: 1 mg to 10 kg
-BULK_RANGE = (1e-8, 1e-3)  # m^3: 0.01 cm^3 to 1 litre
 
 
 class SubmitError(Exception):
@@ -605,24 +603,9 @@ class Daemon:
             sequence = stem
         elif len(sequence_text.encode("utf-8")) > MAX_SEQUENCE_TEXT:  # type: ignore[union-attr]
             raise SubmitError(f"sequence text over {MAX_SEQUENCE_TEXT} bytes", status=413)
-        if mass is not None and not (math.isfinite(mass) and mass > 0):
-            raise SubmitError("mass must be positive", field="mass")
-        if mass is not None and not MASS_RANGE[0] <= mass <= MASS_RANGE[1]:
-            raise SubmitError(f"mass {mass * 1e3:.6g} g is not a specimen a pycnometer cell holds (give it between "
-                              f"{MASS_RANGE[0] * 1e3:g} g and {MASS_RANGE[1] * 1e3:g} g; is the unit right?)",
-                              field="mass")
-        if bulk_volume is not None and not (math.isfinite(bulk_volume) and bulk_volume > 0):
-            raise SubmitError("bulk volume must be positive", field="bulk_volume")
-        if bulk_volume is not None and not BULK_RANGE[0] <= bulk_volume <= BULK_RANGE[1]:
-            raise SubmitError(f"bulk volume {bulk_volume * 1e6:.6g} cm3 is not a specimen's (give it between "
-                              f"{BULK_RANGE[0] * 1e6:g} and {BULK_RANGE[1] * 1e6:g} cm3; is the unit right?)",
-                              field="bulk_volume")
-        if not (math.isfinite(u_mass) and u_mass >= 0):
-            raise SubmitError("mass uncertainty must be zero or positive", field="u_mass")
-        if not (math.isfinite(u_bulk_volume) and u_bulk_volume >= 0) or (
-                u_bulk_volume and (bulk_volume is None or u_bulk_volume >= 0.5 * bulk_volume)):
-            raise SubmitError("bulk volume uncertainty must be zero or positive, below half the bulk volume, "
-                              "and given with a bulk volume", field="u_bulk_volume")
+        problem = specimen_problem(mass, u_mass, bulk_volume, u_bulk_volume)
+        if problem is not None:
+            raise SubmitError(problem[1], field=problem[0])
         request = {"sequence": sequence, "sequence_text": sequence_text, "sample_id": sample_id, "mass": mass,
                    "u_mass": u_mass, "bulk_volume": bulk_volume, "u_bulk_volume": u_bulk_volume,
                    "operator": operator,
