@@ -16,15 +16,16 @@ from __future__ import annotations
 
 import logging
 from pathlib import Path
-from typing import Any
+from typing import Annotated, Any
 
-from pydantic import field_validator
+from pydantic import AfterValidator, field_validator
 
 from pycnoctl.controller.domain import yamlio
 from pycnoctl.controller.domain.clock import WallClock
 from pycnoctl.controller.domain.devices import PressureSensor, Thermometer, ValveBank
 from pycnoctl.controller.domain.gas import get_gas
 from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
+from pycnoctl.controller.domain.text import plain
 from pycnoctl.drivers import registry
 from pycnoctl.drivers.fields import Pressure, PressureRate, Seconds, Strict, Temperature
 from pycnoctl.drivers.guarded import GuardedValveBank, violations
@@ -44,10 +45,10 @@ DEVICE_ROLES = ("valves", "pressure", "thermometer", "barometer", "supply")
 class InstrumentConfig(Strict):
     """One pycnometer: drivers per role, gas-path layout, interlock limits."""
 
-    name: str
+    name: Annotated[str, AfterValidator(plain)]
     # a stable identity for this pycnometer (a serial number, an inventory tag); default: the name.
     # Calibrations are bound to it: give every build its own, and keep it when the config is edited.
-    instrument_id: str | None = None
+    instrument_id: Annotated[str, AfterValidator(plain)] | None = None
     valves: ValveDevice
     pressure: PressureDevice
     thermometer: ThermometerDevice | None = None

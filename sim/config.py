@@ -13,10 +13,11 @@ import math
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
+from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
 
 from pycnoctl.controller.domain.gas import get_gas
 from pycnoctl.controller.domain.gaspath import Limits
+from pycnoctl.controller.domain.text import plain
 from pycnoctl.controller.domain.units import (
     UnitError,
     parse_duration,
@@ -260,7 +261,7 @@ class Solver(_Strict):
 
 
 class SimConfig(_Strict):
-    name: str = "simulated pycnometer"
+    name: Annotated[str, AfterValidator(plain)] = "simulated pycnometer"
     description: str = ""
     # the noise realisation; None: a fresh one for every simulated instrument (the generator takes 0 and up)
     seed: Annotated[int, Field(ge=0)] | None = None

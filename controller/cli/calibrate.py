@@ -20,7 +20,7 @@ import json
 import sys
 from typing import Any
 
-from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, lock_data_folder, stop_requests
+from pycnoctl.controller.cli.common import add_data_arg, add_instrument_args, lock_data_folder, plain_arg, stop_requests
 from pycnoctl.controller.cli.display import add_output_args
 from pycnoctl.controller.cli.main import UsageError
 
@@ -41,7 +41,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--expansion-volume", action="append", metavar="NAME",
                    help="calibrate only this expansion volume (repeatable; default all)")
     p.add_argument("--sequence", default="calibration", help="calibration sequence (default: the shipped one)")
-    p.add_argument("--operator", default="", help="who calibrated, for the record")
+    p.add_argument("--operator", default="", type=plain_arg, help="who calibrated, for the record")
     p.add_argument("--alpha", type=float, default=0.01,
                    help="significance of the chi-square refusal test (default 0.01)")
     p.add_argument("--yes", action="store_true", help="no prompts between steps (the cell is loaded already)")

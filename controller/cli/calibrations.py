@@ -24,7 +24,7 @@ import math
 import sys
 from typing import Any
 
-from pycnoctl.controller.cli.common import add_data_arg
+from pycnoctl.controller.cli.common import add_data_arg, note_arg, plain_arg
 from pycnoctl.controller.cli.display import add_output_args
 from pycnoctl.controller.cli.main import UsageError
 
@@ -78,8 +78,8 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     im.add_argument("--u-volume", required=True, metavar="VOLUME", help="its standard uncertainty (k = 1)")
     im.add_argument("--correlation", type=float, default=0.0, metavar="R",
                     help="correlation of the two errors, from -1 to 1 (default 0)")
-    im.add_argument("--operator", default="", help="who recorded it")
-    im.add_argument("--note", required=True, help="how the volumes were determined, for the record")
+    im.add_argument("--operator", default="", type=plain_arg, help="who recorded it")
+    im.add_argument("--note", required=True, type=note_arg, help="how the volumes were determined, for the record")
     add_data_arg(im)
     p.set_defaults(func=main)
 

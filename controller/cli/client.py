@@ -13,7 +13,7 @@ import sys
 import time
 from typing import Any
 
-from pycnoctl.controller.cli.common import add_sample_args
+from pycnoctl.controller.cli.common import add_sample_args, note_arg
 from pycnoctl.controller.cli.display import Units, add_output_args, add_units_arg, parse_units
 from pycnoctl.controller.cli.main import UsageError
 from pycnoctl.controller.service.client import DEFAULT_URL, DaemonClient, DaemonError
@@ -63,7 +63,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p = _verb(sub, "submit")
     p.add_argument("sequence", help="name of a shipped sequence, or a local sequence file whose text is sent")
     add_sample_args(p, u_mass_default=None)  # the daemon takes 0.1 mg when none is sent
-    p.add_argument("--note", default="", help="free text for the record")
+    p.add_argument("--note", default="", type=note_arg, help="free text for the record")
     p.add_argument("--json", action="store_true", help="print the daemon's answer as JSON")
     _common(p)
     p.set_defaults(func=submit)

@@ -18,6 +18,27 @@ from pycnoctl.drivers.instrument import Instrument
 ROLES = ("valves", "pressure", "thermometer", "barometer")
 
 
+def plain_arg(text: str) -> str:
+    """An argparse type for a name or ID: plain text (a control character would reach every terminal and
+    CSV that later shows it)."""
+    from pycnoctl.controller.domain.text import control_problem
+
+    problem = control_problem(text)
+    if problem is not None:
+        raise argparse.ArgumentTypeError(problem)
+    return text
+
+
+def note_arg(text: str) -> str:
+    """An argparse type for a note: plain text apart from line breaks and tabs."""
+    from pycnoctl.controller.domain.text import control_problem
+
+    problem = control_problem(text, note=True)
+    if problem is not None:
+        raise argparse.ArgumentTypeError(problem)
+    return text
+
+
 def _seed(text: str) -> int:
     """A whole number from 0 up: the simulator's generator takes no negative seed (it ended in a traceback)."""
     try:
@@ -76,7 +97,7 @@ def sim_seed(args: argparse.Namespace) -> int | None:
 
 def add_sample_args(p: argparse.ArgumentParser, *, u_mass_default: str | None) -> None:
     """What the operator says about the specimen and the run, the same for `run` and `submit`."""
-    p.add_argument("--sample", default="", metavar="ID", help="specimen identifier for the record")
+    p.add_argument("--sample", default="", metavar="ID", type=plain_arg, help="specimen identifier for the record")
     p.add_argument("--mass", metavar="VALUE", help="specimen mass for the density, e.g. '19.62 g' (default unit g)")
     p.add_argument("--u-mass", metavar="VALUE", default=u_mass_default,
                    help="standard uncertainty of the mass (default 0.1 mg)")
@@ -84,7 +105,7 @@ def add_sample_args(p: argparse.ArgumentParser, *, u_mass_default: str | None) -
     p.add_argument("--u-bulk-volume", metavar="VALUE",
                    help="standard uncertainty of the bulk volume, e.g. '0.02 cm^3' (default: none; the porosity's "
                         "U then leaves it out and says so)")
-    p.add_argument("--operator", default="", help="who ran it, for the record")
+    p.add_argument("--operator", default="", type=plain_arg, help="who ran it, for the record")
     p.add_argument("--expansion-volume", metavar="NAME", help="override the sequence's expansion volume")
 
 

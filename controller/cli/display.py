@@ -20,6 +20,7 @@ import os
 from collections.abc import Sequence
 
 from pycnoctl.controller.cli.main import UsageError
+from pycnoctl.controller.domain.text import visible
 from pycnoctl.controller.domain.values import FrozenValue, Value
 
 # Start-up time of the command line: csv and json are imported by the functions that use them, and
@@ -188,6 +189,8 @@ def print_table(columns: Sequence[Column], rows: Sequence[Sequence[str]], *, tit
     from rich.table import Table
 
     con = con or console()
+    # older records may hold control characters: shown escaped (and measured so), never sent to the terminal
+    rows = [[visible(cell) for cell in r] for r in rows]
     fitted = fit_columns(columns, rows, con.width)
     table = Table(title=title, box=box.SIMPLE_HEAD, title_justify="left")
     for i in fitted.keep:
@@ -224,8 +227,8 @@ def _csv_cell(v: Any) -> Any:
     if isinstance(v, float):
         return repr(float(v))  # full precision; a numpy float prints as a plain number
     if isinstance(v, (list, tuple)):
-        return " | ".join(str(x) for x in v)
-    return v
+        return visible(" | ".join(str(x) for x in v))
+    return visible(v) if isinstance(v, str) else v
 
 
 def csv_text(rows: Sequence[dict[str, Any]], columns: Sequence[str]) -> str:

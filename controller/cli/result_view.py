@@ -11,6 +11,7 @@ from __future__ import annotations
 from typing import Any
 
 from pycnoctl.controller.cli.display import Column, Units, console, print_table
+from pycnoctl.controller.domain.text import visible
 
 
 def is_simulated(summary: dict[str, Any]) -> bool | None:
@@ -200,7 +201,7 @@ def print_summary(summary: dict[str, Any], folder: Any, units: Units | None = No
     for line in result_lines(summary, units, simulated=simulated):
         style = "bold red" if line.startswith(("fault", "converged: NO", "SIMULATED", "NOT A MEASUREMENT")) else (
             "yellow" if line.startswith("warning") else None)
-        con.print(line, style=style, markup=False, highlight=False)
+        con.print(visible(line), style=style, markup=False, highlight=False)
     con.print(f"record: {folder}", markup=False, soft_wrap=True)  # a path is never folded mid-name
 
 

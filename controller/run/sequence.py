@@ -30,6 +30,7 @@ from pathlib import Path
 from typing import Annotated, Any, Literal
 
 from pydantic import (
+    AfterValidator,
     BaseModel,
     BeforeValidator,
     ConfigDict,
@@ -48,6 +49,7 @@ from pydantic_core import PydanticCustomError
 
 from pycnoctl.controller.domain import units
 from pycnoctl.controller.domain.gas import GASES, UnknownGas, get_gas
+from pycnoctl.controller.domain.text import plain
 from pycnoctl.controller.domain.yamlio import MAX_BYTES, ConfigError, Document, Loc, Problem, load_file, parse_text
 
 FORMAT = "pycnoctl-sequence/1"
@@ -313,7 +315,7 @@ class Sequence(_Strict):
     """
 
     format: Literal["pycnoctl-sequence/1"]
-    name: StrictStr = Field(min_length=1, max_length=80)
+    name: Annotated[StrictStr, AfterValidator(plain)] = Field(min_length=1, max_length=80)
     description: StrictStr = Field("", max_length=2000)
     kind: Literal["measure", "calibrate", "leak_check", "purge"]
     gas: StrictStr = "helium"

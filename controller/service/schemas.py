@@ -37,7 +37,10 @@ VOLUME_PATTERN = _QTY.replace("{units}", r"(mm\^3|cm\^3|mL|ml|m\^3)?")
 RunStatus = Literal["queued", "running", "completed", "fault", "aborted", "interrupted", "cancelled"]
 assert set(RunStatus.__args__) == set(STATUSES)  # type: ignore[attr-defined]  # one list of statuses
 
-Text200 = Annotated[str, StringConstraints(max_length=200)]
+# names and IDs are plain text, a note may run over lines (controller/domain/text.py says why)
+# (as patterns, so the published schema says it too)
+Text200 = Annotated[str, StringConstraints(max_length=200, pattern=r"^[^\x00-\x1f\x7f-\x9f]*$")]
+Note200 = Annotated[str, StringConstraints(max_length=200, pattern=r"^[^\x00-\x08\x0b-\x1f\x7f-\x9f]*$")]
 
 
 def _iso_only(v: object) -> object:
@@ -98,7 +101,7 @@ class RunRequest(BaseModel):
     operator: Text200 = ""
     expansion_volume: Annotated[str, StringConstraints(min_length=1, max_length=100)] | None = Field(
         None, description="override the sequence's choice of expansion volume")
-    note: Text200 = ""
+    note: Note200 = ""
 
 
 class Submitted(BaseModel):
