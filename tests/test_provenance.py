@@ -303,3 +303,26 @@ def test_calibrations_of_a_hardware_config_need_no_device_opened(tmp_path: Path,
     assert cli.main(["calibrations", "list", "--instrument", cfg, "--json", *data]) == 0
     rows = {r["id"]: r for r in json.loads(capsys.readouterr().out)}
     assert rows[old]["instrument"] == "soils-pyc-02" and rows[old]["in_use"]
+
+
+def test_show_says_when_the_calibration_a_run_used_was_retired_since(tmp_path: Path,
+                                                                     capsys: pytest.CaptureFixture[str],
+                                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    # calibrations retire takes no data-folder lock (it changes the catalog in one transaction, and must
+    # work while the daemon serves): a run keeps the calibration it started with, and show must say
+    # when that one was retired after the run
+    monkeypatch.setenv("COLUMNS", "200")
+    data = ["--data", str(tmp_path)]
+    assert cli.main(["calibrations", "import", "--sim", "--expansion-volume", "small", "--cell-volume", "12.0 cm3",
+                     "--u-cell-volume", "0.005 cm3", "--volume", "8.0 cm3", "--u-volume", "0.004 cm3",
+                     "--note", "water filling", *data]) == 0
+    cid = capsys.readouterr().out.split()[1]
+    assert cli.main(["run", "quick-demo", "--sim", "--quiet", "--json", *data]) == 0
+    run_id = json.loads(capsys.readouterr().out)["run_id"]
+    assert cli.main(["show", run_id, *data]) == 0
+    assert "RETIRED" not in capsys.readouterr().out
+    assert cli.main(["calibrations", "retire", cid, "--reason", "expansion valve replaced", *data]) == 0
+    capsys.readouterr()
+    assert cli.main(["show", run_id, *data]) == 0
+    out = " ".join(capsys.readouterr().out.split())
+    assert f"RETIRED since this run: calibration {cid}" in out and "expansion valve replaced" in out

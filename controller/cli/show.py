@@ -53,8 +53,25 @@ def main(args: argparse.Namespace) -> int:
 
         write_csv(cycle_records(_result(run.summary), units), cycle_csv_columns(units), sys.stdout)
     else:
-        print_run(run.summary, folder, units)
+        print_run(run.summary, folder, units, retired=_retired_since(folder, run.summary))
     return 0
+
+
+def _retired_since(folder: Path, doc: dict[str, Any]) -> str | None:
+    """When and why the calibration this run computed with was taken out of use since, if it was.
+
+    Why: `calibrations retire` changes only the catalog (one transaction, no lock, so it works while the
+    daemon serves); a run keeps the calibration it started with, and its record must not read as if that
+    calibration were still trusted."""
+    rec = (doc.get("calibration") or {}).get("record") or {}
+    catalog_path = folder.parent.parent / "catalog.sqlite" if folder.parent.name == "runs" else None
+    if not rec.get("id") or catalog_path is None or not catalog_path.exists():
+        return None
+    from pycnoctl.controller.record.catalog import Catalog
+
+    with Catalog.for_reading(catalog_path) as catalog:
+        now = catalog.get_calibration(rec["id"])
+    return now.retired if now is not None else None
 
 
 def _result(doc: dict[str, Any]) -> dict[str, Any]:
@@ -66,7 +83,7 @@ def _result(doc: dict[str, Any]) -> dict[str, Any]:
     return res
 
 
-def print_run(doc: dict[str, Any], folder: Path, units: Any = None) -> None:
+def print_run(doc: dict[str, Any], folder: Path, units: Any = None, *, retired: str | None = None) -> None:
     from pycnoctl.controller.cli.display import Column, Units, console, print_table
     from pycnoctl.controller.cli.result_view import print_summary
     from pycnoctl.controller.record.report import budget_rows
@@ -87,6 +104,10 @@ def print_run(doc: dict[str, Any], folder: Path, units: Any = None) -> None:
         con.print(f"calibration {rec['id']} of {rec['created'][:10]} ({rec['gas']}): Vc {rec['vc_m3'] * 1e6:.5f} "
                   f"+/- {rec['u_vc_m3'] * 1e6:.5f} cm3, Vr {rec['vr_m3'] * 1e6:.5f} +/- {rec['u_vr_m3'] * 1e6:.5f} cm3 "
                   "(standard u)", markup=False)
+        if retired:
+            con.print(f"RETIRED since this run: calibration {rec['id']} ({retired}); the result rests on it: "
+                      f"`pycnoctl analyze {doc.get('run_id')} --calibration ID` recomputes it with another",
+                      style="bold red", markup=False)
     else:
         from pycnoctl.controller.cli.result_view import nominal_words
 
