@@ -26,6 +26,7 @@ from pycnoctl.controller.domain.devices import PressureSensor, Thermometer, Valv
 from pycnoctl.controller.domain.gas import get_gas
 from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
 from pycnoctl.controller.domain.text import plain
+from pycnoctl.controller.domain.units import lab_pressure_problem
 from pycnoctl.drivers import registry
 from pycnoctl.drivers.fields import Pressure, PressureRate, Seconds, Strict, Temperature
 from pycnoctl.drivers.guarded import GuardedValveBank, violations
@@ -66,6 +67,17 @@ class InstrumentConfig(Strict):
     barometer_u: Pressure = 5.0
     ambient_drift_rate: PressureRate = 100.0 / 3600.0
     ambient_nominal: Pressure = STANDARD_ATMOSPHERE
+
+    @field_validator("ambient_nominal", mode="wrap")
+    @classmethod
+    def _a_lab_pressure(cls, v: Any, parse: Any) -> float:
+        """The air pressure of the lab: a gauge transducer's readings are referred to it where no
+        barometer reads it, so a wrong unit would shift every absolute pressure."""
+        out = float(parse(v))
+        problem = lab_pressure_problem(v, out)
+        if problem is not None:
+            raise ValueError(problem)
+        return out
 
     @field_validator("gas")
     @classmethod

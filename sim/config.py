@@ -20,6 +20,8 @@ from pycnoctl.controller.domain.gaspath import Limits
 from pycnoctl.controller.domain.text import plain
 from pycnoctl.controller.domain.units import (
     UnitError,
+    lab_pressure_problem,
+    lab_temperature_problem,
     parse_duration,
     parse_length,
     parse_pressure,
@@ -71,6 +73,27 @@ Pressure = Annotated[float, BeforeValidator(lambda v: parse_pressure(v))]
 PosPressure = Annotated[float, BeforeValidator(_pos(lambda v: parse_pressure(v)))]
 NonNegPressure = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_pressure(v)))]
 Temperature = Annotated[float, BeforeValidator(lambda v: parse_temperature(v))]
+
+
+def _lab_pressure(v: Any) -> float:
+    out = parse_pressure(v)
+    problem = lab_pressure_problem(v, out)
+    if problem is not None:
+        raise ValueError(problem)
+    return out
+
+
+def _lab_temperature(v: Any) -> float:
+    out = parse_temperature(v)
+    problem = lab_temperature_problem(v, out)
+    if problem is not None:
+        raise ValueError(problem)
+    return out
+
+
+# a lab's air pressure and temperature: a bare number in the wrong unit (1013 for hPa, 295 for K) is refused
+LabPressure = Annotated[float, BeforeValidator(_lab_pressure)]
+LabTemperature = Annotated[float, BeforeValidator(_lab_temperature)]
 TempDiff = Annotated[float, BeforeValidator(lambda v: parse_temperature_difference(v))]
 NonNegTempDiff = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_temperature_difference(v)))]
 PosVolume = Annotated[float, BeforeValidator(_pos(lambda v: parse_volume(v)))]
@@ -108,8 +131,8 @@ class TemperatureWave(Wave):
 
 
 class Lab(_Strict):
-    temperature: Temperature = 295.15
-    pressure: PosPressure = 101325.0
+    temperature: LabTemperature = 295.15
+    pressure: LabPressure = 101325.0
     temperature_drift: TempRate = 0.0
     temperature_wave: TemperatureWave | None = None
     pressure_drift: Rate = 0.0
@@ -119,7 +142,7 @@ class Lab(_Strict):
 class Supply(_Strict):
     set_pressure: PosPressure = 1.4e5  # gauge, what the regulator delivers
     cylinder_pressure: PosPressure = 150e5  # gauge, the ceiling of a failed regulator
-    temperature: Temperature | None = None  # default: lab temperature
+    temperature: LabTemperature | None = None  # default: lab temperature
 
 
 class Volume(_Strict):

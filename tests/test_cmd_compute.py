@@ -98,6 +98,12 @@ def test_human_output(capsys):
         (["--u-p", "-1"], "--u-p"),
         (["--mass", "-2"], "--mass"),
         (["--water-temperature", "20"], "--water-temperature"),  # needs --mass
+        # a bare number in the wrong unit: 1013 meant as hPa reads as bar, 295 meant as K reads as degC
+        # (a lab's air pressure and temperature: the standard atmosphere is 101.325 kPa; common practice)
+        (["--ambient", "1013"], "--ambient"),
+        (["--ambient", "14.7"], "--ambient"),  # psi
+        (["--temperature", "295"], "--temperature"),
+        (["--ta", "-60 degC"], "--ta"),
     ],
 )
 def test_bad_input_is_one_line_exit_2(capsys, args, flag):
@@ -153,3 +159,11 @@ def test_roundtrip_with_expansion_pressure(capsys):
                    "--p2", f"{p2!r} Pa", "--gas", "N2", "--temperature", "295 K", "--mode", "sample_first",
                    "--absolute")
     assert out["volume_cm3"] == pytest.approx(3.3, rel=1e-10)
+
+
+def test_a_lab_pressure_or_temperature_with_its_unit_is_taken(capsys):
+    a = run_json(capsys, "--cell-volume", "10", "--expansion-volume", "7", "--p1", "1.4", "--p2", "0.58",
+                 "--ambient", "1013.25 hPa", "--temperature", "295.15 K")
+    b = run_json(capsys, "--cell-volume", "10", "--expansion-volume", "7", "--p1", "1.4", "--p2", "0.58",
+                 "--ambient", "1.01325", "--temperature", "22")
+    assert a["volume_cm3"] == pytest.approx(b["volume_cm3"], rel=1e-12)

@@ -187,3 +187,18 @@ def test_usb_pulled_mid_fill_then_operator_reset(bench):
     result = reconnect_instrument(inst)
     assert result == {"valves": None, "pressure": None, "safe_state": None}
     assert inst.pressure.read().valid
+
+
+def test_an_ambient_pressure_that_no_lab_has_is_refused(tmp_path):
+    # ambient_nominal refers a gauge transducer's readings to absolute where no barometer reads the lab:
+    # '1013 bar' (meant hPa) would shift every absolute pressure a thousandfold (a lab's air pressure lies
+    # between 30 and 120 kPa: common practice)
+    text = USB.read_text()
+    assert "ambient_nominal" not in text
+    path = tmp_path / "ambient.yaml"
+    path.write_text(text + "ambient_nominal: 1013 bar\n")
+    with pytest.raises(ConfigError) as exc:
+        load_instrument_config(path)
+    assert any("ambient_nominal" in str(p) and "give the unit" in str(p) for p in exc.value.problems)
+    path.write_text(text + "ambient_nominal: 1013 hPa\n")
+    assert load_instrument_config(path).ambient_nominal == pytest.approx(101300.0)

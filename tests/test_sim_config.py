@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import pytest
 
 from pycnoctl.controller.domain.yamlio import ConfigError
@@ -84,3 +86,20 @@ def test_fault_needs_its_fields(tmp_path):
 def test_sample_must_fit_the_cell(tmp_path):
     probs = _problems(tmp_path, BASE + "sample: {solid_volume: 13 cm^3}\n")
     assert probs[0].line == 9 and "smaller than the cell" in probs[0].message
+
+
+@pytest.mark.parametrize(("line", "new"), [("pressure: 1013.25 hPa", "pressure: 1013.25"),
+                                          ("temperature: 22 degC", "temperature: 295.15")])
+def test_a_lab_pressure_or_temperature_in_the_wrong_unit_is_refused_at_its_line(tmp_path, line, new):
+    # a bare 1013.25 reads as bar and 295.15 as degC: the simulated lab would be at 1000 atmospheres or
+    # hotter than boiling water, and every result computed against it (a lab's air pressure 30-120 kPa
+    # and temperature -40 to 80 degC: common practice)
+    lines = Path(shipped_configs()["clean"]).read_text().splitlines()
+    at = next(i for i, x in enumerate(lines) if x.strip() == line)
+    lines[at] = lines[at].replace(line, new)
+    path = tmp_path / "lab.yaml"
+    path.write_text("\n".join(lines) + "\n")
+    with pytest.raises(ConfigError) as exc:
+        load_sim_config(path)
+    [problem] = exc.value.problems
+    assert str(problem).startswith(f"{path}:{at + 1}:") and "give the unit" in str(problem)

@@ -7,7 +7,9 @@ Units: every value may carry a unit ('10 cm^3', '241.325 kPa', '25 degC', '1.4 b
 volumes cm^3, pressures (and --u-p, --u-ambient) bar, temperatures degC, --u-temperature K, masses g.
 P1 and P2 are gauge pressures (above --ambient), as everywhere in pycnoctl, unless --absolute is
 given; a single value may also be tagged, e.g. --p1 '1.4 bar gauge' or --p2 '2.4 bar abs'.
---ambient is always absolute.
+--ambient is always absolute, and must be a lab's air pressure (30-120 kPa); temperatures must be a
+lab's (-40 to 80 degC): a bare 1013 (read as bar) or 295 (read as degC) is refused with a hint to give
+the unit.
 Uncertainties: U is expanded (k = 2 unless --k says otherwise), u standard (k = 1); in --json the
 fields named *_u_* are expanded (with the factor in the field k) and *_u_std_* standard.
 """
@@ -23,6 +25,8 @@ from pycnoctl.controller.cli.main import RawDescriptionHelpFormatter, UsageError
 from pycnoctl.controller.domain.gas import GASES, UnknownGas, get_gas
 from pycnoctl.controller.domain.units import (
     UnitError,
+    lab_pressure_problem,
+    lab_temperature_problem,
     parse_mass,
     parse_pressure_spec,
     parse_temperature,
@@ -114,6 +118,8 @@ def compute(args: argparse.Namespace) -> dict[str, Any]:
     vc = _parse("--cell-volume", parse_volume, args.cell_volume, positive=True)
     vr = _parse("--expansion-volume", parse_volume, args.expansion_volume, positive=True)
     pa = _pressure("--ambient", args.ambient, gauge_default=False, ambient=0.0)
+    if (problem := lab_pressure_problem(args.ambient, pa)) is not None:
+        raise UsageError(f"--ambient: {problem}")
     p1 = _pressure("--p1", args.p1, gauge_default=not args.absolute, ambient=pa)
     p2 = _pressure("--p2", args.p2, gauge_default=not args.absolute, ambient=pa)
     try:
@@ -124,6 +130,10 @@ def compute(args: argparse.Namespace) -> dict[str, Any]:
     t1 = _parse("--t1", parse_temperature, args.t1) if args.t1 else t
     t2 = _parse("--t2", parse_temperature, args.t2) if args.t2 else t
     ta = _parse("--ta", parse_temperature, args.ta) if args.ta else t
+    for flag, text, kelvin in (("--temperature", args.temperature, t), ("--t1", args.t1, t1), ("--t2", args.t2, t2),
+                               ("--ta", args.ta, ta)):
+        if text and (problem := lab_temperature_problem(text, kelvin)) is not None:
+            raise UsageError(f"{flag}: {problem}")
     u_p = _pressure_u("--u-p", args.u_p)
     u_pa = _pressure_u("--u-ambient", args.u_ambient)
     u_vc = _parse("--u-cell-volume", parse_volume, args.u_cell_volume, nonneg=True)

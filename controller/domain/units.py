@@ -202,6 +202,45 @@ def _show(value: Any) -> str:
     return repr(value) if isinstance(value, str) else repr(str(value))
 
 
+#: Pa, absolute: the air pressure of any lab, from about 5500 m up to below sea level (a standard
+#: atmosphere is 101.325 kPa; the barometric formula gives about 50 kPa at 5500 m; margins both ways)
+LAB_PRESSURE = (30e3, 120e3)
+#: K: the temperature of a lab and of the gas a pycnometer holds in it, -40 to +80 degC (common practice;
+#: the instruments are run near room temperature)
+LAB_TEMPERATURE = (233.15, 353.15)
+
+
+def _bare(value: Any) -> bool:
+    try:
+        float(value)
+    except (TypeError, ValueError):
+        return False
+    return not isinstance(value, bool)
+
+
+def lab_pressure_problem(value: Any, pa: float, *, default_unit: str = "bar") -> str | None:
+    """Why an absolute lab pressure read from ``value`` (``pa`` in Pa) cannot be one, or None.
+
+    Why: a bare 1013 meant as hPa is read as 1013 bar, and a bare 295 meant as kelvin as degC; each gave
+    a result with no word of the mistake."""
+    if LAB_PRESSURE[0] <= pa <= LAB_PRESSURE[1]:
+        return None
+    read = f" (a bare number is {default_unit})" if _bare(value) else ""
+    return (f"{_show(value)} reads as {pa / 1e3:.6g} kPa absolute{read}; a lab's air pressure lies between "
+            f"{LAB_PRESSURE[0] / 1e3:g} and {LAB_PRESSURE[1] / 1e3:g} kPa: give the unit, e.g. '1013 hPa' or "
+            "'101.3 kPa'")
+
+
+def lab_temperature_problem(value: Any, kelvin: float, *, default_unit: str = "degC") -> str | None:
+    """Why a lab or gas temperature read from ``value`` (``kelvin``) cannot be one, or None."""
+    if LAB_TEMPERATURE[0] <= kelvin <= LAB_TEMPERATURE[1]:
+        return None
+    read = f" (a bare number is {default_unit})" if _bare(value) else ""
+    return (f"{_show(value)} reads as {kelvin - 273.15:.6g} degC{read}; a lab's temperature lies between "
+            f"{LAB_TEMPERATURE[0] - 273.15:g} and {LAB_TEMPERATURE[1] - 273.15:g} degC: give the unit, e.g. "
+            "'22 degC' or '295.15 K'")
+
+
 def parse_pressure(value: Any, *, default_unit: str = "bar") -> float:
     """Pressure in Pa (as given: absolute or gauge is the caller's business)."""
     return parse_quantity(value, "pressure", default_unit=default_unit)
