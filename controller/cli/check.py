@@ -22,6 +22,12 @@ from pycnoctl.controller.cli.main import UsageError
 from pycnoctl.drivers.instrument import Instrument
 
 
+def _data_folder(text: str) -> str:
+    from pycnoctl.controller.cli.common import data_folder_arg  # not at import: check starts light
+
+    return data_folder_arg(text)
+
+
 def add_parser(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("check", help="validate a sequence and dry-run it on the simulator",
                        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -30,7 +36,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     g.add_argument("--instrument", metavar="CONFIG", help="check against this instrument config (read only)")
     g.add_argument("--sim", nargs="?", const="", metavar="SIMCONFIG",
                    help="dry-run on this simulator config (the clean default without a file; the default anyway)")
-    p.add_argument("--data", metavar="DIR",
+    p.add_argument("--data", metavar="DIR", type=_data_folder,
                    help="keep the dry run's record in this data folder (read it with pycnoctl show; sample "
                         "'dry-run'); default: a temporary folder, deleted afterwards")
     p.add_argument("--no-dry-run", action="store_true", help="only the static checks")

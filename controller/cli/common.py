@@ -109,8 +109,18 @@ def add_sample_args(p: argparse.ArgumentParser, *, u_mass_default: str | None) -
     p.add_argument("--expansion-volume", metavar="NAME", help="override the sequence's expansion volume")
 
 
+def data_folder_arg(text: str) -> str:
+    """An argparse type for --data: a folder, or a path where one can be made (an existing file there
+    ended in 'File exists' or a FileExistsError traceback)."""
+    path = Path(text)
+    if path.exists() and not path.is_dir():
+        raise argparse.ArgumentTypeError(f"{text} is a file, not a folder: give the folder for run records "
+                                         "and the catalog (made if missing)")
+    return text
+
+
 def add_data_arg(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--data", metavar="DIR",
+    p.add_argument("--data", metavar="DIR", type=data_folder_arg,
                    help="folder for run records and the catalog (default $PYCNOCTL_DATA, else "
                         "$XDG_DATA_HOME/pycnoctl, i.e. ~/.local/share/pycnoctl)")
 

@@ -312,7 +312,7 @@ class RunEngine:
                 shown = f"{s.gauge:.0f} Pa" if math.isfinite(s.gauge) else "no valid pressure"
                 raise SequenceFault("vent_timeout", f"purge pulse {self._purge_pulse + 1}: vent did not return to "
                                     f"ambient within {max(vent.timeout, purge.vent):g} s ({shown}; tolerance "
-                                    f"{vent.baseline_tolerance:.0f} Pa)")
+                                    f"{vent.baseline_tolerance:.6g} Pa)")
             return
         self._purge_pulse += 1
         self.emit("purge_pulse", {"pulse": self._purge_pulse, "of": purge.pulses})
@@ -332,7 +332,7 @@ class RunEngine:
             if elapsed > vent.timeout:
                 shown = f"{s.gauge:.0f} Pa" if math.isfinite(s.gauge) else "no valid pressure"
                 raise SequenceFault("vent_timeout", f"vent did not return to ambient within {vent.timeout:g} s "
-                                    f"({shown}; tolerance {vent.baseline_tolerance:.0f} Pa)")
+                                    f"({shown}; tolerance {vent.baseline_tolerance:.6g} Pa)")
             return
         if self.current is not None:
             self._finish_cycle()
