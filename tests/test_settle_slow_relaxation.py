@@ -96,3 +96,22 @@ def test_a_vented_zero_waiting_for_the_pores_is_refused_naming_them_not_a_leak(t
     assert "porous" in message and "leaking inlet" not in message
     needed = re.search(r"would take about (\d+) s", message)
     assert needed and int(needed.group(1)) > 300, message
+
+
+def test_a_slow_thermal_relaxation_is_not_blamed_on_the_specimen(tmp_path: Path) -> None:
+    """No pores, but a cell whose gas exchanges heat with its walls with a 150 s time constant (an
+    invented, poorly conducting build). The refusal named "a porous sample" first; the pressure cannot
+    tell pores from heat exchange (both relax in proportion to the step, with one sign), so it must name
+    the instrument's cause alongside and say which run tells them apart."""
+    base = load_sim_config(None)
+    slow = {name: v.model_copy(update={"thermal_tau": 150.0}) for name, v in base.volumes.items()}
+    cfg = check(base.model_copy(update={"volumes": slow}))
+    inst = build_sim_instrument(cfg, seed=3)
+    with Catalog(tmp_path / "catalog.sqlite") as cat:
+        s = execute(prepare(RunRequest("grain-volume"), inst), Controller(inst), root=tmp_path / "runs", catalog=cat)
+    assert s["status"] == "fault" and s["volume_cm3"] is None
+    message = s["fault"]["message"]
+    m = re.search(r"time constant of about (\d+) s", message)
+    assert m and 60 <= int(m.group(1)) <= 400, message
+    assert message.index("exchanging heat") < message.index("porous"), message
+    assert "empty cell or a calibration sphere" in message

@@ -420,7 +420,9 @@ class RunEngine:
         """A settle out of time whose trace is a relaxation slower than its window: refused naming it.
         Why: minutes-long time constants are a porous sample filling (or, at the zero, giving its gas
         back), sample heat or a slow thermal relaxation, not a leak; the operator needs the time it
-        would take, not a guess at a fault."""
+        would take, not a guess at a fault.  Pores and heat exchange both relax in proportion to the
+        pressure step, with the same sign, so the trace cannot tell them apart; the message names
+        neither first and says the run that can (the same sequence without the specimen)."""
         slow = self.meter.slow_relaxation()
         if slow is None or not settle.window < slow[0] <= self._elapsed():
             return  # none, or none the settle resolves: a time constant longer than it is a straight line
@@ -429,9 +431,11 @@ class RunEngine:
             "settle_timeout",
             f"{what} did not settle within {settle.max_time:g} s: still relaxing with a time constant of "
             f"about {tau:.0f} s ({abs(left):.0f} Pa still to {'fall' if left > 0 else 'rise'}, drift "
-            f"{self.meter.drift:.3g} Pa/s) - a porous sample {pores}, sample heat or a slow thermal "
-            f"relaxation; no number is given for it. Settling it would take about {needed:.0f} s "
-            "(max_time; the fit's estimate)")
+            f"{self.meter.drift:.3g} Pa/s); no number is given for it. Settling it would take about "
+            f"{needed:.0f} s (max_time; the fit's estimate). The pressure alone cannot say whose relaxation "
+            f"it is: the instrument's (the gas exchanging heat slowly with the chamber walls) or the "
+            f"specimen's (a porous sample {pores}, or sample heat). Run the empty cell or a calibration "
+            "sphere with the same sequence: if it relaxes as slowly, the instrument is slow")
 
     def _lab_hint(self) -> str:
         """Where the settles cannot follow the lab (the plan's AmbientModel: a gauge transducer, no
