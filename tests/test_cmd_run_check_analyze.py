@@ -98,6 +98,35 @@ def test_analyze_reproduces_the_stored_run_and_applies_a_new_calibration(tmp_pat
     assert main(["analyze", "R20990101T000000Z-000000", "--data", str(tmp_path)]) == 2
 
 
+#: what a recomputation takes of the instrument (the arguments of record/replay.py's reanalyze)
+INSTRUMENT_FACTS = ("gas", "pressure_is_gauge", "pressure_u", "pressure_u_linearity", "temperature_u", "barometer",
+                    "barometer_u", "ambient_drift_rate")
+
+
+def _calibrated_run(tmp_path: Path, capsys) -> tuple[dict, Path]:
+    """A finished quick-demo run that computed with a calibration record from the catalog."""
+    assert main(["calibrations", "import", "--sim", "--expansion-volume", "small", "--cell-volume", "12.003 cm3",
+                 "--u-cell-volume", "0.002 cm3", "--volume", "8.004 cm3", "--u-volume", "0.002 cm3",
+                 "--note", "test volumes", "--data", str(tmp_path)]) == 0
+    capsys.readouterr()
+    code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path), "--expansion-volume", "small",
+                         "--mass", "19.62 g")
+    assert code == 0 and out["calibration"]["record_id"]
+    return out, tmp_path / "runs" / out["run_id"]
+
+
+def test_meta_json_keeps_from_the_start_what_a_recomputation_needs(tmp_path, capsys):
+    out, folder = _calibrated_run(tmp_path, capsys)
+    meta = json.loads((folder / "meta.json").read_text())["meta"]
+    summary = json.loads((folder / "summary.json").read_text())
+    assert meta["sequence_text"] == summary["sequence_text"] != ""
+    assert meta["instrument"] == {k: summary["instrument"][k] for k in INSTRUMENT_FACTS}
+    assert meta["gas"] == summary["results"]["gas"] == "helium"
+    assert meta["calibration_id"] == out["calibration"]["record_id"]
+    assert meta["mass_g"] == pytest.approx(19.62)
+    assert (meta["sample_id"], meta["sequence"], meta["expansion_volume"]) == ("", "quick-demo", "small")
+
+
 def _start(tmp_path: Path, *extra: str) -> subprocess.Popen:
     env = {**os.environ, "PYTHONUNBUFFERED": "1"}
     return subprocess.Popen([*PYCNOCTL, "run", "grain-volume", "--sim", "--realtime", "--speed", "40",
@@ -172,3 +201,5 @@ def test_sigkill_mid_run_leaves_a_readable_trace_and_a_consistent_catalog(tmp_pa
     status = con.execute("SELECT status FROM runs WHERE id = ?", (folder.name,)).fetchone()[0]
     assert status == "running"  # the next start of the daemon marks it interrupted, never resumes it
     con.close()
+
+

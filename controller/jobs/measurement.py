@@ -204,6 +204,36 @@ def instrument_description(instrument: Instrument) -> dict[str, Any]:
     })
 
 
+#: What a recomputation of a run's trace takes of its instrument (record/replay.py's reanalyze): kept in
+#: meta.json from the run's start as well as in summary.json at its end, so that a run killed before its
+#: summary was written can still be recomputed.
+REPLAY_FACTS = ("gas", "pressure_is_gauge", "pressure_u", "pressure_u_linearity", "temperature_u", "barometer",
+                "barometer_u", "ambient_drift_rate")
+
+
+def replay_facts(instrument: Instrument) -> dict[str, Any]:
+    """The instrument's REPLAY_FACTS, taken from the same description the summary keeps (one source)."""
+    description = instrument_description(instrument)
+    return {key: description[key] for key in REPLAY_FACTS}
+
+
+def start_meta(prepared: PreparedRun, instrument: Instrument) -> dict[str, Any]:
+    """What meta.json keeps from the run's start: who and what, and everything a recomputation of the
+    trace needs but the chamber volumes' values (the sequence text, the instrument's facts, the gas and
+    the calibration record the run computes with, None for the config's nominal volumes).  meta.json is
+    written once, before anything moves; summary.json comes only at the end, and a killed run has none."""
+    seq, req = prepared.sequence, prepared.request
+    return jsonable({
+        "sample_id": req.sample_id, "sequence": seq.name, "operator": req.operator,
+        "expansion_volume": prepared.expansion_volume,
+        "sequence_text": seq.raw_text or "",
+        "gas": seq.gas,
+        "mass_g": req.mass * 1e3 if req.mass else None,
+        "calibration_id": instrument.chambers.for_expansion(prepared.expansion_volume).record_id,
+        "instrument": replay_facts(instrument),
+    })
+
+
 @dataclass
 class Outcome:
     """A run's measured result in SI units: the engine's finished cycles and the result over them."""
@@ -329,6 +359,7 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
             raise
         prepared.warnings.extend(cal_use.warnings)
         prepared.warnings.extend(settle_mismatch(cal_use.record, seq))
+    meta = start_meta(prepared, inst)  # before the catalog row: a failure here leaves no row 'running'
     try:
         if run_id is None:
             run_id = catalog.create_run(kind=seq.kind, sample_id=req.sample_id, sequence_name=seq.name,
@@ -342,9 +373,7 @@ def execute(prepared: PreparedRun, controller: Controller, *, root: Path, catalo
         raise StorageFault(f"the catalog cannot be written ({cause}: {exc}); the run did not start, "
                            "the instrument is in the safe state") from exc
     try:
-        recorder = RunRecorder(root, run_id, inst.valves.valve_names,
-                               meta={"sample_id": req.sample_id, "sequence": seq.name, "operator": req.operator,
-                                     "expansion_volume": prepared.expansion_volume})
+        recorder = RunRecorder(root, run_id, inst.valves.valve_names, meta=meta)
     except RecordWriteError as exc:  # nothing has moved: close the row and say why
         message = f"write_error: run record not created ({storage_cause(exc) or 'write failed'}): {exc}"
         with contextlib.suppress(Exception):  # the catalog may be on the same full disk: the next writer closes it

@@ -1,7 +1,9 @@
 """The complete raw record of one run, in a folder of plain files that outlive the software.
 
 root/<run_id>/
-  meta.json      written once at creation (atomically): run id, valve names, columns, meta
+  meta.json      written once at creation (atomically): run id, valve names, columns, meta (a run's
+                 sequence text, gas, calibration record and instrument facts: what a recomputation of
+                 the trace needs when the run was killed before summary.json was written)
   trace.csv      every sample, appended; header then one row per sample
   events.jsonl   state changes, trips, warnings, operator actions; one JSON object a line
   cycles.csv     one row per cycle, rewritten atomically whenever a cycle completes
