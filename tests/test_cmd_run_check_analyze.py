@@ -127,6 +127,54 @@ def test_meta_json_keeps_from_the_start_what_a_recomputation_needs(tmp_path, cap
     assert (meta["sample_id"], meta["sequence"], meta["expansion_volume"]) == ("", "quick-demo", "small")
 
 
+def test_analyze_of_a_run_without_its_summary_recomputes_it_from_meta_json(tmp_path, capsys):
+    run_out, folder = _calibrated_run(tmp_path, capsys)
+    rid = folder.name
+    assert main(["analyze", rid, "--data", str(tmp_path), "--json"]) == 0
+    whole = json.loads(capsys.readouterr().out)
+    (folder / "summary.json").unlink()  # as if the process had been killed before writing it
+    assert main(["analyze", rid, "--data", str(tmp_path), "--json"]) == 0
+    cut = json.loads(capsys.readouterr().out)
+    assert cut["interrupted"] is True and whole["interrupted"] is False
+    assert cut["stored_volume_cm3"] is None and whole["stored_volume_cm3"] is not None
+    # the same facts, the same sequence text and the calibration record from the catalog: the same numbers
+    assert cut["chambers"] == whole["chambers"] and cut["chambers"]["source"] == run_out["calibration"]["record_id"]
+    assert [c["volume_cm3"] for c in cut["cycles"]] == [c["volume_cm3"] for c in whole["cycles"]]
+    assert (cut["volume_cm3"], cut["volume_u_cm3"]) == (whole["volume_cm3"], whole["volume_u_cm3"])
+    assert cut["density_g_cm3"] == whole["density_g_cm3"]
+    assert main(["analyze", rid, "--data", str(tmp_path)]) == 0
+    text = capsys.readouterr().out
+    assert "INTERRUPTED" in text and "no stored result" in text and "stored result:" not in text
+    # --sequence overrides the stored text: with no cycle discarded, the first one counts too
+    text = json.loads((folder / "meta.json").read_text())["meta"]["sequence_text"]
+    assert "discard: 1" in text
+    seq = tmp_path / "keep-all.yaml"
+    seq.write_text(text.replace("discard: 1", "discard: 0"))
+    assert main(["analyze", rid, "--data", str(tmp_path), "--json", "--sequence", str(seq)]) == 0
+    kept = json.loads(capsys.readouterr().out)
+    assert [c["kept"] for c in kept["cycles"]] == [True, True, True]
+    assert [c["kept"] for c in cut["cycles"]] == [False, True, True]
+
+
+def test_analyze_of_an_interrupted_run_names_what_is_missing(tmp_path, capsys):
+    _out, folder = _calibrated_run(tmp_path, capsys)
+    (folder / "summary.json").unlink()
+    (tmp_path / "catalog.sqlite").rename(tmp_path / "elsewhere.sqlite")  # the record it names cannot be found
+    assert main(["analyze", folder.name, "--data", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert "interrupted" in err and "--cell-volume" in err and "--expansion-volume" in err
+    assert "--sequence" not in err  # meta.json keeps the sequence text
+    # a run folder from before meta.json kept the instrument's facts: told so, not a KeyError
+    doc = json.loads((folder / "meta.json").read_text())
+    for key in ("instrument", "sequence_text", "gas", "calibration_id", "mass_g"):
+        del doc["meta"][key]
+    (folder / "meta.json").write_text(json.dumps(doc))
+    assert main(["analyze", folder.name, "--data", str(tmp_path), "--cell-volume", "12 cm^3",
+                 "--expansion-volume", "8 cm^3", "--sequence", "quick-demo"]) == 2
+    err = capsys.readouterr().err
+    assert len(err.splitlines()) == 1 and "cannot be recomputed" in err and "pressure" in err
+
+
 def _start(tmp_path: Path, *extra: str) -> subprocess.Popen:
     env = {**os.environ, "PYTHONUNBUFFERED": "1"}
     return subprocess.Popen([*PYCNOCTL, "run", "grain-volume", "--sim", "--realtime", "--speed", "40",
@@ -203,3 +251,21 @@ def test_sigkill_mid_run_leaves_a_readable_trace_and_a_consistent_catalog(tmp_pa
     con.close()
 
 
+def test_a_run_killed_before_its_summary_is_analysed_from_its_trace(tmp_path, capsys):
+    proc = _start(tmp_path)
+    folder = _wait_for_rows(tmp_path, 300)
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.communicate(timeout=10)
+    assert not (folder / "summary.json").exists()
+    # it ran on the simulator's nominal volumes (no calibration in this catalog): those must be given
+    assert main(["analyze", folder.name, "--data", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert "interrupted" in err and "--cell-volume" in err and "--expansion-volume" in err
+    assert main(["analyze", folder.name, "--data", str(tmp_path), "--json", "--sequence", "grain-volume",
+                 "--cell-volume", "12 cm^3", "--expansion-volume", "8 cm^3"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["interrupted"] is True and out["stored_volume_cm3"] is None
+    assert out["sequence"] == "grain-volume" and out["chambers"]["source"] == "command line"
+    assert main(["analyze", folder.name, "--data", str(tmp_path), "--cell-volume", "12 cm^3",
+                 "--expansion-volume", "8 cm^3"]) == 0
+    assert "INTERRUPTED" in capsys.readouterr().out

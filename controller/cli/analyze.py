@@ -4,6 +4,13 @@ RUN is a run ID in the data folder or a run folder. By default the run's own seq
 volumes and gas are used (and reproduce the stored result); --sequence applies other settle rules,
 --calibration ID or --cell-volume/--expansion-volume a newer calibration, --gas another gas model.
 The stored record is never changed; --save writes reanalysis.json beside it.
+
+A run interrupted before its summary.json was written (the process killed, the power lost) is
+recomputed from what meta.json kept at its start: the sequence text, the gas and the instrument's
+pressure and temperature facts. Its chamber volumes come from the calibration record it named, in
+the catalog, or from --cell-volume/--expansion-volume; for a run on the config's nominal volumes,
+give them. The output says the run was interrupted, and there is no stored result to compare with.
+A run folder written before meta.json kept these facts cannot be recomputed without its summary.
 """
 
 from __future__ import annotations
@@ -11,11 +18,18 @@ from __future__ import annotations
 import argparse
 import json
 import math
-from typing import Any
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 from pycnoctl.controller.cli.common import add_data_arg, lock_data_folder, resolve_run_folder
 from pycnoctl.controller.cli.display import add_output_args, add_units_arg, parse_units
 from pycnoctl.controller.cli.main import UsageError
+
+if TYPE_CHECKING:  # the modules themselves are imported where they are used, after the command line is read
+    from pycnoctl.controller.domain.gaspath import ChamberCalibration
+    from pycnoctl.controller.record.catalog import CalibrationRecord
+    from pycnoctl.controller.record.runfolder import StoredRun
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
@@ -38,7 +52,47 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=main)
 
 
-def _chambers(args: argparse.Namespace, stored: dict[str, Any], root: Any) -> Any:
+#: The instrument facts a recomputation cannot do without (the others have a neutral default)
+_NEEDED_FACTS = ("pressure_is_gauge", "pressure_u", "temperature_u")
+
+
+@dataclass
+class Recorded:
+    """What the run folder says about the run: from summary.json for a run that reached its end, else
+    from the facts meta.json has kept since the run's start (an interrupted run)."""
+
+    run_id: str
+    interrupted: bool
+    instrument: dict[str, Any] | None  # None: not recorded (a run folder from before meta.json kept it)
+    sequence_text: str | None
+    sequence_source: str  # where the text is kept, for the position of a problem in it
+    gas: str | None
+    mass_g: float | None
+    calibration: dict[str, Any] | None  # a finished run's chambers as it computed with them
+    calibration_id: str | None  # the calibration record an interrupted run computed with (None: nominal)
+    stored_volume_cm3: float | None  # the result the run stored (None: it stored none)
+
+    @classmethod
+    def from_run(cls, run: StoredRun, folder: Path) -> Recorded:
+        if run.summary is not None:
+            doc = run.summary
+            inst, results = doc["instrument"], doc["results"]
+            return cls(doc["run_id"], False, inst, doc["sequence_text"], f"{folder}/summary.json: sequence_text",
+                       results.get("gas") or inst.get("gas"), results.get("mass_g"), doc.get("calibration") or {},
+                       None, results.get("volume_cm3"))
+        meta = run.meta.get("meta") or {}
+        facts = meta.get("instrument")
+        if not (isinstance(facts, dict) and all(k in facts for k in _NEEDED_FACTS)):
+            facts = None
+        return cls(run.meta.get("run_id") or folder.name, True, facts, meta.get("sequence_text") or None,
+                   f"{folder}/meta.json: sequence_text", meta.get("gas") or (facts or {}).get("gas"),
+                   meta.get("mass_g"), None, meta.get("calibration_id"), None)
+
+
+def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path
+              ) -> tuple[ChamberCalibration | None, str | None]:
+    """The chamber volumes to compute with, or (None, what to pass) when nothing gives them: the
+    command line first, then what the run computed with (its summary, else the record meta.json names)."""
     from pycnoctl.controller.domain.gaspath import ChamberCalibration
     from pycnoctl.controller.domain.units import UnitError, parse_volume
 
@@ -46,11 +100,10 @@ def _chambers(args: argparse.Namespace, stored: dict[str, Any], root: Any) -> An
         from pycnoctl.controller.record.catalog import Catalog
 
         with Catalog.for_reading(root / "catalog.sqlite") as cat:
-            rec = cat.get_calibration(args.calibration)
-        if rec is None:
+            found = cat.get_calibration(args.calibration)
+        if found is None:
             raise UsageError(f"--calibration: no calibration {args.calibration!r} in the catalog")
-        cov = tuple(tuple(float(x) for x in row) for row in rec.cov) if rec.cov else ((0.0, 0.0), (0.0, 0.0))
-        return ChamberCalibration(rec.vc, rec.vr, cov, rec.id)
+        return _from_record(found), None
     if args.cell_volume or args.expansion_volume:
         if not (args.cell_volume and args.expansion_volume):
             raise UsageError("--cell-volume and --expansion-volume go together")
@@ -61,11 +114,42 @@ def _chambers(args: argparse.Namespace, stored: dict[str, Any], root: Any) -> An
             raise UsageError(f"--cell-volume/--expansion-volume: {exc}") from None
         if vc <= 0 or vr <= 0:
             raise UsageError("--cell-volume/--expansion-volume: volumes must be positive")
-        return ChamberCalibration(vc, vr, ((uc * uc, 0.0), (0.0, ur * ur)), "command line")
-    cal = stored.get("calibration") or {}
-    cov = cal.get("cov") or ((0.0, 0.0), (0.0, 0.0))
-    return ChamberCalibration(float(cal["vc"]), float(cal["vr"]), tuple(tuple(map(float, r)) for r in cov),
-                              cal.get("record_id"))
+        return ChamberCalibration(vc, vr, ((uc * uc, 0.0), (0.0, ur * ur)), "command line"), None
+    give = ("the chamber volumes: --cell-volume V and --expansion-volume V (their uncertainties with "
+            "--u-cell-volume and --u-expansion-volume), or --calibration ID")
+    if rec.calibration is not None:
+        cal = rec.calibration
+        return ChamberCalibration(float(cal["vc"]), float(cal["vr"]), _cov(cal.get("cov")), cal.get("record_id")), None
+    if rec.calibration_id is None:
+        return None, f"{give} (meta.json names no calibration record: the run computed with the nominal volumes)"
+    # the record the run named lives in the catalog of the data folder the run is in
+    catalog_path = folder.parent.parent / "catalog.sqlite" if folder.parent.name == "runs" else None
+    found = None
+    if catalog_path is not None and catalog_path.exists():
+        from pycnoctl.controller.record.catalog import Catalog
+
+        with Catalog.for_reading(catalog_path) as cat:
+            found = cat.get_calibration(rec.calibration_id)
+    if found is None:
+        why = f"is not in {catalog_path}" if catalog_path is not None and catalog_path.exists() else \
+            "cannot be looked up: there is no catalog beside this run folder"
+        return None, f"{give} (the calibration {rec.calibration_id} that meta.json names {why})"
+    return _from_record(found), None
+
+
+def _from_record(found: CalibrationRecord) -> ChamberCalibration:
+    """A catalog record as the volumes a recomputation takes (a record without covariance: exact)."""
+    from pycnoctl.controller.domain.gaspath import ChamberCalibration
+
+    return ChamberCalibration(found.vc, found.vr, _cov(found.cov), found.id)
+
+
+def _cov(rows: Any) -> tuple[tuple[float, float], tuple[float, float]]:
+    """The 2x2 covariance of (Vc, Vr) as stored; none stored: the volumes are taken as exact."""
+    if not rows:
+        return (0.0, 0.0), (0.0, 0.0)
+    (a, b), (c, d) = rows
+    return (float(a), float(b)), (float(c), float(d))
 
 
 def main(args: argparse.Namespace) -> int:
@@ -79,15 +163,21 @@ def main(args: argparse.Namespace) -> int:
     root = data_dir(args.data)
     folder = resolve_run_folder(root, args.run)
     run = load_run(folder, trace_columns=REPLAY_COLUMNS)
-    if run.summary is None:
-        raise UsageError(f"{folder}: no summary.json (the run was interrupted before it was written); "
-                         "pass --sequence and the chamber volumes to analyze its trace")
-    stored = run.summary
+    rec = Recorded.from_run(run, folder)
+    cut = f"{folder}: no summary.json (the run was interrupted before it was written)"
+    if rec.instrument is None:
+        raise UsageError(f"{cut}, and its meta.json does not keep the instrument's facts a recomputation needs "
+                         "(gauge or absolute pressure, the pressure and temperature uncertainties, the barometer): "
+                         "it was written before meta.json kept them, and this run cannot be recomputed")
+    chambers, give_chambers = _chambers(args, rec, root, folder)
+    give = [g for g in ("the sequence: --sequence FILE (meta.json keeps no sequence text)"
+                        if not (args.sequence or rec.sequence_text) else None, give_chambers) if g]
+    if give or chambers is None:
+        raise UsageError(f"{cut}; to analyze its trace, pass {'; and '.join(give)}")
     seq = load_sequence(resolve_sequence(args.sequence)) if args.sequence else \
-        sequence_from_text(stored["sequence_text"], f"{folder}/summary.json: sequence_text")
-    inst = stored["instrument"]
-    gas = args.gas or stored["results"].get("gas") or inst.get("gas", "helium")
-    chambers = _chambers(args, stored, root)
+        sequence_from_text(rec.sequence_text or "", rec.sequence_source)
+    inst = rec.instrument
+    gas = args.gas or rec.gas or "helium"
     re = reanalyze(run, seq, chambers=chambers, gas=gas, pressure_is_gauge=bool(inst["pressure_is_gauge"]),
                    pressure_u=float(inst["pressure_u"]), temperature_u=float(inst["temperature_u"]),
                    pressure_u_linearity=inst.get("pressure_u_linearity"),
@@ -96,16 +186,16 @@ def main(args: argparse.Namespace) -> int:
                                         bool(inst["pressure_is_gauge"])))
     res = re.result
     out: dict[str, Any] = {
-        "run_id": stored["run_id"], "sequence": seq.name, "gas": gas,
+        "run_id": rec.run_id, "interrupted": rec.interrupted, "sequence": seq.name, "gas": gas,
         "chambers": {"vc_cm3": chambers.vc * 1e6, "vr_cm3": chambers.vr * 1e6, "source": chambers.record_id},
-        "stored_volume_cm3": stored["results"].get("volume_cm3"),
+        "stored_volume_cm3": rec.stored_volume_cm3,
         "volume_cm3": res.volume_m3 * 1e6 if res else None,
         "volume_u_cm3": res.U_volume_m3 * 1e6 if res else None,
         "k": res.k if res else None,
         "cycles": [c.as_dict() for c in re.cycles],
         "flags": re.flags,
     }
-    mass = stored["results"].get("mass_g")
+    mass = rec.mass_g
     if res and mass:
         from pycnoctl.controller.maths.uncertainty import density
 
@@ -134,6 +224,9 @@ def main(args: argparse.Namespace) -> int:
         return 0
     print(f"run {out['run_id']} re-analysed with sequence {seq.name!r}, gas {gas}, "
           f"Vc {out['chambers']['vc_cm3']:.5f} cm3, Vr {out['chambers']['vr_cm3']:.5f} cm3")
+    if rec.interrupted:
+        print("INTERRUPTED: the run ended before its summary was written; this is its trace as far as it goes, "
+              "and there is no stored result to compare with")
     from pycnoctl.controller.maths.results import WARM_UP
 
     for c in out["cycles"]:
