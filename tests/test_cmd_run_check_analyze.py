@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import csv
 import json
 import os
 import signal
@@ -173,6 +174,30 @@ def test_analyze_of_an_interrupted_run_names_what_is_missing(tmp_path, capsys):
                  "--expansion-volume", "8 cm^3", "--sequence", "quick-demo"]) == 2
     err = capsys.readouterr().err
     assert len(err.splitlines()) == 1 and "cannot be recomputed" in err and "pressure" in err
+
+
+def _finished_run_with_its_trace_cut(tmp_path: Path, capsys, keep) -> Path:
+    """A finished quick-demo run whose trace.csv keeps the header and the rows keep(row_fields) accepts."""
+    _code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
+    folder = tmp_path / "runs" / out["run_id"]
+    header, *lines = (folder / "trace.csv").read_text().splitlines(keepends=True)
+    cols = next(csv.reader([header]))
+    kept = [line for line in lines if keep(dict(zip(cols, next(csv.reader([line])), strict=True)))]
+    (folder / "trace.csv").write_text(header + "".join(kept))
+    (folder / "trace.npz").unlink(missing_ok=True)
+    return folder
+
+
+@pytest.mark.parametrize("empty", ["header only", "zero bytes"])
+def test_analyze_of_a_trace_without_samples_is_an_input_error(tmp_path, capsys, empty):
+    folder = _finished_run_with_its_trace_cut(tmp_path, capsys, lambda row: False)
+    if empty == "zero bytes":
+        (folder / "trace.csv").write_bytes(b"")
+    assert main(["analyze", folder.name, "--data", str(tmp_path)]) == 2
+    captured = capsys.readouterr()
+    assert captured.out == ""
+    assert len(captured.err.splitlines()) == 1
+    assert str(folder / "trace.csv") in captured.err and "no samples" in captured.err
 
 
 def _start(tmp_path: Path, *extra: str) -> subprocess.Popen:

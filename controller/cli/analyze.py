@@ -163,6 +163,9 @@ def main(args: argparse.Namespace) -> int:
     root = data_dir(args.data)
     folder = resolve_run_folder(root, args.run)
     run = load_run(folder, trace_columns=REPLAY_COLUMNS)
+    if run.n_samples == 0:
+        raise UsageError(f"{folder / 'trace.csv'}: the trace has no samples (an empty file, or its header only); "
+                         "there is nothing to analyze")
     rec = Recorded.from_run(run, folder)
     cut = f"{folder}: no summary.json (the run was interrupted before it was written)"
     if rec.instrument is None:
