@@ -200,6 +200,21 @@ def test_analyze_of_a_trace_without_samples_is_an_input_error(tmp_path, capsys, 
     assert str(folder / "trace.csv") in captured.err and "no samples" in captured.err
 
 
+def test_analyze_of_a_trace_cut_before_any_complete_cycle_says_so(tmp_path, capsys):
+    folder = _finished_run_with_its_trace_cut(tmp_path, capsys, lambda row: row["cycle"] in ("", "0"))
+    assert main(["analyze", folder.name, "--data", str(tmp_path), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["cycles"] == [] and out["volume_cm3"] is None
+    assert any("no complete cycle" in f for f in out["flags"])
+    assert main(["analyze", folder.name, "--data", str(tmp_path)]) == 0
+    assert "no complete cycle was found in the trace, so there is no volume" in capsys.readouterr().out
+    # a whole trace has its cycles, and no such flag
+    assert main(["analyze", _finished_run_with_its_trace_cut(tmp_path / "whole", capsys, lambda row: True).name,
+                 "--data", str(tmp_path / "whole"), "--json"]) == 0
+    whole = json.loads(capsys.readouterr().out)
+    assert len(whole["cycles"]) == 3 and not any("no complete cycle" in f for f in whole["flags"])
+
+
 def _start(tmp_path: Path, *extra: str) -> subprocess.Popen:
     env = {**os.environ, "PYTHONUNBUFFERED": "1"}
     return subprocess.Popen([*PYCNOCTL, "run", "grain-volume", "--sim", "--realtime", "--speed", "40",

@@ -55,6 +55,9 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 #: The instrument facts a recomputation cannot do without (the others have a neutral default)
 _NEEDED_FACTS = ("pressure_is_gauge", "pressure_u", "temperature_u")
 
+#: What the output says when the trace holds no complete cycle of an expanding sequence
+NO_COMPLETE_CYCLE = "no complete cycle was found in the trace, so there is no volume"
+
 
 @dataclass
 class Recorded:
@@ -188,6 +191,9 @@ def main(args: argparse.Namespace) -> int:
                                         float(inst.get("ambient_drift_rate") or 0.0),
                                         bool(inst["pressure_is_gauge"])))
     res = re.result
+    flags = list(re.flags)
+    if seq.expands and not re.cycles:
+        flags.append(NO_COMPLETE_CYCLE)
     out: dict[str, Any] = {
         "run_id": rec.run_id, "interrupted": rec.interrupted, "sequence": seq.name, "gas": gas,
         "chambers": {"vc_cm3": chambers.vc * 1e6, "vr_cm3": chambers.vr * 1e6, "source": chambers.record_id},
@@ -196,7 +202,7 @@ def main(args: argparse.Namespace) -> int:
         "volume_u_cm3": res.U_volume_m3 * 1e6 if res else None,
         "k": res.k if res else None,
         "cycles": [c.as_dict() for c in re.cycles],
-        "flags": re.flags,
+        "flags": flags,
     }
     mass = rec.mass_g
     if res and mass:
