@@ -6,11 +6,14 @@ volumes and gas are used (and reproduce the stored result); --sequence applies o
 The stored record is never changed; --save writes reanalysis.json beside it.
 
 A run interrupted before its summary.json was written (the process killed, the power lost) is
-recomputed from what meta.json kept at its start: the sequence text, the gas and the instrument's
-pressure and temperature facts. Its chamber volumes come from the calibration record it named, in
-the catalog, or from --cell-volume/--expansion-volume; for a run on the config's nominal volumes,
-give them. The output says the run was interrupted, and there is no stored result to compare with.
-A run folder written before meta.json kept these facts cannot be recomputed without its summary.
+recomputed from what meta.json kept at its start: the sequence text (--sequence still overrides it),
+the gas and the instrument's pressure and temperature facts. Its chamber volumes come from the
+calibration record meta.json names, in the run's catalog; a run on the config's nominal volumes
+needs --cell-volume and --expansion-volume (with --u-cell-volume and --u-expansion-volume). The
+output says the run was interrupted, and there is no stored result to compare with. A run folder
+from before meta.json kept these facts cannot be recomputed without its summary.
+
+A trace with no samples is refused; one cut before its first cycle ended gives no volume and says so.
 """
 
 from __future__ import annotations
