@@ -161,6 +161,14 @@ def test_analyze_of_an_interrupted_run_names_what_is_missing(tmp_path, capsys):
     _out, folder = _calibrated_run(tmp_path, capsys)
     (folder / "summary.json").unlink()
     (tmp_path / "catalog.sqlite").rename(tmp_path / "elsewhere.sqlite")  # the record it names cannot be found
+    # meta.json keeps the volumes themselves: no catalog needed
+    assert main(["analyze", folder.name, "--data", str(tmp_path), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["chambers"]["source"] == json.loads(
+        (folder / "meta.json").read_text())["meta"]["calibration_id"]
+    # a meta.json from before it kept the volumes: the record it names is looked up, and is not there
+    doc = json.loads((folder / "meta.json").read_text())
+    del doc["meta"]["calibration"]
+    (folder / "meta.json").write_text(json.dumps(doc))
     assert main(["analyze", folder.name, "--data", str(tmp_path)]) == 2
     err = capsys.readouterr().err
     assert "interrupted" in err and "--cell-volume" in err and "--expansion-volume" in err
@@ -297,10 +305,11 @@ def test_a_run_killed_before_its_summary_is_analysed_from_its_trace(tmp_path, ca
     os.kill(proc.pid, signal.SIGKILL)
     proc.communicate(timeout=10)
     assert not (folder / "summary.json").exists()
-    # it ran on the simulator's nominal volumes (no calibration in this catalog): those must be given
-    assert main(["analyze", folder.name, "--data", str(tmp_path)]) == 2
-    err = capsys.readouterr().err
-    assert "interrupted" in err and "--cell-volume" in err and "--expansion-volume" in err
+    # it ran on the simulator's nominal volumes (no calibration in this catalog): meta.json keeps them
+    assert main(["analyze", folder.name, "--data", str(tmp_path), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["interrupted"] is True and out["chambers"]["source"] is None  # nominal: no record
+    assert (out["chambers"]["vc_cm3"], out["chambers"]["vr_cm3"]) == pytest.approx((12.0, 8.0))
     assert main(["analyze", folder.name, "--data", str(tmp_path), "--json", "--sequence", "grain-volume",
                  "--cell-volume", "12 cm^3", "--expansion-volume", "8 cm^3"]) == 0
     out = json.loads(capsys.readouterr().out)

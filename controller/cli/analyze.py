@@ -7,10 +7,11 @@ The stored record is never changed; --save writes reanalysis.json beside it.
 
 A run interrupted before its summary.json was written (the process killed, the power lost) is
 recomputed from what meta.json kept at its start: the sequence text (--sequence still overrides it),
-the gas and the instrument's pressure and temperature facts. Its chamber volumes come from the
-calibration record meta.json names, in the run's catalog; a run on the config's nominal volumes
-needs --cell-volume and --expansion-volume (with --u-cell-volume and --u-expansion-volume). The
-output says the run was interrupted, and there is no stored result to compare with. A run folder
+the gas, the instrument's pressure and temperature facts and the chamber volumes the run computed
+with (a calibration's or the config's nominal ones, with their covariance). A run folder whose
+meta.json has no volumes (written before it kept them) takes them from the calibration record it
+names, in the run's catalog, or needs --cell-volume and --expansion-volume (with --u-cell-volume and
+--u-expansion-volume). The output says the run was interrupted, and there is no stored result to compare with. A run folder
 from before meta.json kept these facts cannot be recomputed without its summary.
 
 A trace with no samples is refused; one cut before its first cycle ended gives no volume and says so.
@@ -74,7 +75,7 @@ class Recorded:
     sequence_source: str  # where the text is kept, for the position of a problem in it
     gas: str | None
     mass_g: float | None
-    calibration: dict[str, Any] | None  # a finished run's chambers as it computed with them
+    calibration: dict[str, Any] | None  # the chambers as the run computed with them (summary, else meta.json)
     calibration_id: str | None  # the calibration record an interrupted run computed with (None: nominal)
     stored_volume_cm3: float | None  # the result the run stored (None: it stored none)
 
@@ -92,7 +93,8 @@ class Recorded:
             facts = None
         return cls(run.meta.get("run_id") or folder.name, True, facts, meta.get("sequence_text") or None,
                    f"{folder}/meta.json: sequence_text", meta.get("gas") or (facts or {}).get("gas"),
-                   meta.get("mass_g"), None, meta.get("calibration_id"), None)
+                   meta.get("mass_g"), meta.get("calibration") if isinstance(meta.get("calibration"), dict) else None,
+                   meta.get("calibration_id"), None)
 
 
 def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path

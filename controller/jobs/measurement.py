@@ -219,17 +219,21 @@ def replay_facts(instrument: Instrument) -> dict[str, Any]:
 
 def start_meta(prepared: PreparedRun, instrument: Instrument) -> dict[str, Any]:
     """What meta.json keeps from the run's start: who and what, and everything a recomputation of the
-    trace needs but the chamber volumes' values (the sequence text, the instrument's facts, the gas and
-    the calibration record the run computes with, None for the config's nominal volumes).  meta.json is
-    written once, before anything moves; summary.json comes only at the end, and a killed run has none."""
+    trace needs (the sequence text, the instrument's facts, the gas, the calibration record the run
+    computes with, None for the config's nominal volumes, and the chamber volumes themselves with their
+    covariance, as the summary keeps them).  meta.json is written once, before anything moves;
+    summary.json comes only at the end, and a killed run has none."""
     seq, req = prepared.sequence, prepared.request
+    cal = instrument.chambers.for_expansion(prepared.expansion_volume)
     return jsonable({
         "sample_id": req.sample_id, "sequence": seq.name, "operator": req.operator,
         "expansion_volume": prepared.expansion_volume,
         "sequence_text": seq.raw_text or "",
         "gas": seq.gas,
         "mass_g": req.mass * 1e3 if req.mass else None,
-        "calibration_id": instrument.chambers.for_expansion(prepared.expansion_volume).record_id,
+        "calibration_id": cal.record_id,
+        # the volumes themselves: a run on the nominal ones is then recomputed with no volumes typed in
+        "calibration": cal,
         "instrument": replay_facts(instrument),
     })
 
