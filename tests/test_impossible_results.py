@@ -61,6 +61,10 @@ def test_a_negative_result_is_not_a_measurement_and_exits_7(tmp_path: Path,
     capsys.readouterr()
     assert cli.main(["show", summary["run_id"], "--data", str(tmp_path / "data")]) == 0
     assert "NOT A MEASUREMENT" in capsys.readouterr().out
+    assert cli.main(["runs", "--data", str(tmp_path / "data"), "--csv"]) == 0  # the catalog row's message
+    assert "NOT A MEASUREMENT" in capsys.readouterr().out
+    assert cli.main(["runs", "--data", str(tmp_path / "data")]) == 0  # and the table, even at 80 columns
+    assert "not a measurement" in " ".join(capsys.readouterr().out.split())
 
 
 def test_an_empty_cell_measures_zero_without_being_called_impossible(tmp_path: Path,

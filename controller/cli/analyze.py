@@ -11,8 +11,9 @@ the gas, the instrument's pressure and temperature facts and the chamber volumes
 with (a calibration's or the config's nominal ones, with their covariance). A run folder whose
 meta.json has no volumes (written before it kept them) takes them from the calibration record it
 names, in the run's catalog, or needs --cell-volume and --expansion-volume (with --u-cell-volume and
---u-expansion-volume). The output says the run was interrupted, and there is no stored result to compare with. A run folder
-from before meta.json kept these facts cannot be recomputed without its summary.
+--u-expansion-volume). The output says the run was interrupted, and there is no stored result to
+compare with. A run folder from before meta.json kept these facts cannot be recomputed without its
+summary.
 
 A trace with no samples is refused; one cut before its first cycle ended gives no volume and says so.
 """

@@ -163,8 +163,11 @@ def table_columns(units: Any) -> list[Any]:
 
 
 def notes(r: dict[str, Any]) -> str:
-    """What a result needs said beside it: simulated, uncalibrated, not converged, warnings."""
+    """What a result needs said beside it: not a measurement, simulated, uncalibrated, not converged,
+    warnings."""
     out = []
+    if _impossible(r):
+        out.append("NOT A MEASUREMENT")
     if r.get("simulated"):
         out.append("simulated")
     if r.get("calibrated") is False and r.get("volume_cm3") is not None:
@@ -177,9 +180,17 @@ def notes(r: dict[str, Any]) -> str:
     return ", ".join(out) or "-"
 
 
+def _impossible(r: dict[str, Any]) -> bool:
+    """A result no specimen can have (the run exited 7): its catalog row's message says so."""
+    return str(r.get("message") or "").startswith("NOT A MEASUREMENT")
+
+
 def table_rows(rows: list[dict[str, Any]], units: Any) -> list[list[str]]:
+    # the volume cell itself carries an impossible result's mark: the notes column is the first a
+    # narrow terminal leaves out
     return [[r["run_id"], (r["created"] or "")[:16].replace("T", " "), r["sample_id"] or "-",
-             r["sequence"] or "-", r["status"], _f(r["volume_cm3"]), _f(r["U_volume_cm3"]),
+             r["sequence"] or "-", r["status"],
+             _f(r["volume_cm3"]) + (" (not a measurement)" if _impossible(r) else ""), _f(r["U_volume_cm3"]),
              units.rho(None if r["density_g_cm3"] is None else r["density_g_cm3"] * 1e3), notes(r)] for r in rows]
 
 
