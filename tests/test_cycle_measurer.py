@@ -174,3 +174,39 @@ def test_a_settle_slower_than_three_windows_is_budgeted_for_its_own_time_constan
     left = cyc.p1_gauge_pa - p_inf  # what the relaxation had still to move when P1 was taken
     assert left > 10.0  # the limit passed with a good part of the relaxation to come
     assert math.sqrt(3.0) * cyc.u_p1_relax_pa >= left, (left, cyc.u_p1_relax_pa)  # the bound holds it
+
+
+#: a window of one and a half sample periods: it never holds the three samples a slope's standard error needs
+SHORT = SettleCriteria(window=0.15, max_drift=1.0, min_time=1.0, max_time=5.0, extrapolate=False)
+
+
+def test_give_up_refuses_a_settle_whose_window_never_held_three_samples() -> None:
+    """on_timeout: accept must not take a pressure the drift test never judged: with two samples in the
+    window the regression gives a value but no standard error, and it was taken with a regression u of 0."""
+    meter = CycleMeasurer(plan(filled=SHORT))
+    f = Feeder(meter)
+    f.hold("vent", 0.0, 1.0)
+    f.hold("baseline", 0.0, 10.0)
+    f.hold("fill", 5e4, 0.5)
+    assert f.hold("settle_filled", 1e5, 8.0)[-1] is SettleStatus.TIMED_OUT
+    assert meter.shortfall is not None and meter.shortfall.startswith("not settled: too few samples (2 in")
+    assert meter.give_up() is False
+    assert math.isnan(meter.cycles[0].p1_gauge_pa) and meter.cycles[0].flags == []  # no P1 taken
+    assert meter.notes == ["P1 of cycle 1: " + meter.shortfall]
+
+
+def test_a_short_window_settle_followed_by_its_next_step_is_not_taken() -> None:
+    """Replay (analyze --sequence) of a trace under a window too short for its samples: no value without a
+    standard error, and no cycle from it; the notes say why."""
+    meter = CycleMeasurer(plan(filled=SHORT))
+    f = Feeder(meter)
+    f.hold("vent", 0.0, 1.0)
+    f.hold("baseline", 0.0, 10.0)
+    f.hold("fill", 5e4, 0.5)
+    f.hold("settle_filled", 1e5, 3.0)  # under max_time: still waiting when the trace moves on
+    f.hold("expand", 0.45e5, 0.1)
+    f.hold("settle_expanded", 0.45e5, 10.0)
+    f.hold("vent", 0.0, 0.5)
+    assert meter.results == []
+    assert meter.notes == ["P1 of cycle 1: not settled: too few samples (2 in the 0.15 s window; the drift "
+                           "test needs at least 3)"]

@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 import yaml
 
-from pycnoctl.controller.jobs.measurement import RunRequest, execute, jsonable, prepare
+from pycnoctl.controller.jobs.measurement import PreparedRun, RunRequest, execute, jsonable, prepare
 from pycnoctl.controller.record.catalog import Catalog
 from pycnoctl.controller.record.runfolder import load_run
 from pycnoctl.controller.run.control import Controller
@@ -376,3 +376,37 @@ def test_only_the_last_vent_ends_at_ambient_without_waiting_for_the_gas_to_warm(
     assert all(d >= seq.vent.time for _, d in vents[:-1])
     assert vents[-1][1] < seq.vent.time / 2, vents[-1]
     assert states[-1][0] == "done" and bench.actual_valves()["vent"]
+
+
+def _short_window_sequence(tmp_path: Path, window: str, rule: str, on_timeout: str) -> Path:
+    f = tmp_path / "short-window.yaml"
+    f.write_text(f"""format: pycnoctl-sequence/1
+name: short-window
+kind: measure
+fill: {{target: 1.3 bar, timeout: 30 s}}
+settle: {{window: {window}, {rule}, min_time: 1 s, max_time: 8 s, on_timeout: {on_timeout}}}
+expand: {{volume: small}}
+vent: {{time: 2 s, timeout: 30 s}}
+cycles: {{count: 1}}
+""", encoding="utf-8")
+    return f
+
+
+@pytest.mark.parametrize("rule", ["max_drift: 2 Pa/s", "max_drift: auto", "max_remainder: 2 Pa"])
+@pytest.mark.parametrize(("window", "held", "on_timeout"), [("0.05 s", 1, "fault"), ("0.15 s", 2, "accept")])
+def test_a_settle_window_of_too_few_samples_faults_saying_so(tmp_path, rule, window, held, on_timeout):
+    """Past prepare() (which refuses it) a window too short for the sample period still never ends in a
+    NaN drift or a value without a standard error: the run faults naming the samples and the window
+    needed, also where the sequence accepts a time-out (that took the two-sample value, u = 0)."""
+    path = _short_window_sequence(tmp_path, window, rule, on_timeout)
+    inst = build_sim_instrument()
+    assert inst.sample_period == 0.1
+    catalog = Catalog(tmp_path / "catalog.sqlite")
+    prepared = PreparedRun(RunRequest(str(path)), load_sequence(path), "small")
+    summary = execute(prepared, Controller(inst), root=tmp_path / "runs", catalog=catalog)
+    assert summary["status"] == "fault" and summary["cycles"] == []
+    message = summary["fault"]["message"]
+    assert summary["fault"]["kind"] == "settle_timeout" and "nan" not in message
+    assert message == (f"the vented system did not settle within 8 s - not settled: too few samples ({held} in "
+                       f"the {window} window; the drift test needs at least 3); at one sample every 0.1 s the "
+                       "window must be at least 0.2 s")

@@ -391,3 +391,64 @@ def test_adaptive_rule_never_lengthens_its_window():
     t = np.round(np.arange(1, 3001) * DT, 10)
     run(det, t, 1.2e5 + rng.normal(0.0, 20.0, t.size))
     assert det.window == 10.0
+
+
+# ------------------------------------------------------------------ a window that holds too few samples
+
+
+def _flat(det: SettleDetector, seconds: float) -> SettleStatus:
+    """Still gas read noise-free every DT (times rounded as a sample clock gives them)."""
+    t = np.round(np.arange(1, round(seconds / DT) + 2) * DT, 10)
+    return run(det, t, np.full(t.size, 1.2e5))
+
+
+RULES = {"fixed": {"max_drift": 0.5}, "auto": {"max_drift": None},
+         "remainder": {"max_drift": None, "max_remainder": 2.0}}
+
+
+@pytest.mark.parametrize("rule", sorted(RULES))
+@pytest.mark.parametrize(("window", "held"), [(0.05, 1), (0.15, 2)])
+def test_a_window_of_fewer_than_three_samples_times_out_saying_so(rule, window, held):
+    """A regression through n points has n - 2 degrees of freedom: below three samples there is no slope
+    with a standard error to test.  Such a settle must end as 'not settled: too few samples', not as a
+    NaN drift (what the operator was shown before) nor a ZeroDivisionError (the fixed rule's window
+    lengthening divided by sqrt(n (n^2 - 1)), zero for one sample)."""
+    det = SettleDetector(SettleCriteria(window=window, min_time=1.0, max_time=20.0, extrapolate=False,
+                                        u_p=5.0, **RULES[rule]), 0.0)
+    assert _flat(det, 30.0) is SettleStatus.TIMED_OUT
+    assert det.decided_at == pytest.approx(20.0, abs=DT)
+    assert det.n_window == held
+    assert det.shortfall == (f"not settled: too few samples ({held} in the {window:g} s window; the drift "
+                             "test needs at least 3)")
+
+
+@pytest.mark.parametrize("rule", sorted(RULES))
+def test_a_window_of_two_sample_periods_holds_three_samples_and_decides(rule):
+    det = SettleDetector(SettleCriteria(window=2 * DT, min_time=1.0, max_time=20.0, extrapolate=False,
+                                        u_p=5.0, **RULES[rule]), 0.0)
+    assert _flat(det, 30.0) is SettleStatus.SETTLED
+    assert det.n_window >= 3 and det.shortfall is None
+    assert math.isfinite(det.drift) and math.isfinite(det.drift_se)
+
+
+def test_window_samples_counts_both_ends_as_the_detector_keeps_them():
+    from pycnoctl.controller.maths.settle import MIN_WINDOW_SAMPLES, min_window, window_samples
+
+    assert [window_samples(w, DT) for w in (0.05, 0.1, 0.15, 0.2, 0.3, 10.0)] == [1, 2, 2, 3, 4, 101]
+    assert window_samples(min_window(DT), DT) == MIN_WINDOW_SAMPLES == 3
+    # the detector agrees: a 0.3 s window (0.3 / 0.1 is 2.9999999999999996 in floating point) keeps 4
+    det = SettleDetector(SettleCriteria(window=0.3, max_drift=0.5, min_time=0.0, max_time=5.0,
+                                        extrapolate=False, u_p=1e-3), 0.0)  # resolved: not lengthened
+    for i in range(1, 11):
+        det.feed(round(i * DT, 10), 1.2e5 + i)  # a rise: never settles, the window just slides
+    assert det.n_window == window_samples(0.3, DT) == 4
+
+
+def test_resolving_span_of_a_single_sample_window_is_the_shortest_that_resolves():
+    """One sample has no slope: its noise is taken as unbounded and the window grows to the shortest whose
+    noise-only slope error is at most limit / RESOLVE (was: ZeroDivisionError)."""
+    from pycnoctl.controller.maths.settle import RESOLVE, resolving_span
+
+    span = resolving_span(1, DT, 0.05, 0.5, 20.0, 150.0)
+    n = round(span / DT) + 1
+    assert _noise_slope_se(20.0, n) <= 0.5 / RESOLVE < _noise_slope_se(20.0, n - 1)

@@ -649,7 +649,7 @@ class CycleMeasurer:
                 if finite:
                     self._ambients.append(ambient)
             status = det.feed(t, gauge) if finite else SettleStatus.WAITING
-            if status is not SettleStatus.WAITING:
+            if status is not SettleStatus.WAITING and not (status is SettleStatus.TIMED_OUT and self._too_few(det)):
                 self._take(timed_out=status is SettleStatus.TIMED_OUT)
             return status
         if state == _LEAK_HOLD and math.isfinite(gauge):
@@ -728,10 +728,31 @@ class CycleMeasurer:
         """The engine's time limit ran out with the detector still waiting: take its estimate so far,
         flagged. False when there is no estimate to take."""
         det = self._det
-        if det is None or not math.isfinite(det.estimate):
+        if det is None or not math.isfinite(det.estimate) or det.shortfall is not None:
             return False
         if self._open:
             self._take(timed_out=True)
+        return True
+
+    @property
+    def shortfall(self) -> str | None:
+        """The current settle's 'not settled: too few samples' (SettleDetector.shortfall), else None."""
+        return self._det.shortfall if self._det is not None else None
+
+    def _too_few(self, det: SettleDetector) -> bool:
+        """Whether a settle that ran out of time never had the samples its drift test needs: then nothing
+        is taken (its value would carry no standard error: a zero u for a pressure nobody judged) and a
+        note says why; a zero not taken leaves the next fill without a cycle."""
+        short = det.shortfall
+        if short is None:
+            return False
+        self._open = False
+        if self._state == RunState.BASELINE:
+            self.zero = None
+            self.notes.append(f"baseline before fill {len(self.cycles) + 1}: {short}")
+        else:
+            which = "P1" if self._state == RunState.SETTLE_FILLED else "P2"
+            self.notes.append(f"{which} of cycle {len(self.cycles)}: {short}")
         return True
 
     @property
@@ -949,7 +970,8 @@ class CycleMeasurer:
         goes_on = {RunState.BASELINE: (RunState.FILL,),
                    RunState.SETTLE_FILLED: (RunState.EXPAND, RunState.LEAK_HOLD),
                    RunState.SETTLE_EXPANDED: (RunState.VENT,)}[RunState(state)]
-        if self._open and nxt in goes_on and self._det is not None and math.isfinite(self._det.estimate):
+        if self._open and nxt in goes_on and self._det is not None and math.isfinite(self._det.estimate) \
+                and not self._too_few(self._det):
             self._take(timed_out=True)
         elif self._open and state == RunState.BASELINE:
             self.zero = None  # no zero: the next fill (if any) starts no cycle

@@ -30,6 +30,7 @@ import numpy as np
 from pycnoctl.controller.maths.twoexp import TwoExpFit, fit_two_exponentials
 
 __all__ = [
+    "MIN_WINDOW_SAMPLES",
     "ExpFit",
     "SettleCriteria",
     "SettleDetector",
@@ -37,8 +38,10 @@ __all__ = [
     "block_means",
     "fit_exponential",
     "fit_exponential_detail",
+    "min_window",
     "resolving_span",
     "three_point_extrapolation",
+    "window_samples",
 ]
 
 
@@ -54,6 +57,25 @@ HOLD_CAP = 1.0  # ... but not over this many windows: under noise a longer unbro
 #: waits) rather than as a slope that is level for a moment, so half a window only added 5 s to settles
 #: the fit had decided (the clean demo's P2 and zeros)
 FITTED_HOLD = 2.0
+
+
+#: The fewest samples the regression window must hold.  A straight line through n points leaves n - 2
+#: degrees of freedom for its residuals: only from three points on has its slope a standard error
+#: (``SettleDetector._regression``, ``_slope_se``), so the drift test has nothing to judge below that.
+MIN_WINDOW_SAMPLES = 3
+
+
+def window_samples(window: float, dt: float) -> int:
+    """How many samples a window of ``window`` s holds at one sample every ``dt`` s, both ends counted:
+    the detector keeps the samples no older than the window (with the same 1e-9 tolerance)."""
+    if not (dt > 0 and math.isfinite(dt)):
+        raise ValueError(f"the sample period must be a positive number of seconds, got {dt!r}")
+    return math.floor(window / dt * (1.0 + 1e-9)) + 1
+
+
+def min_window(dt: float) -> float:
+    """The shortest window (s) that holds MIN_WINDOW_SAMPLES samples at one every ``dt`` s."""
+    return (MIN_WINDOW_SAMPLES - 1) * dt
 
 
 class SettleStatus(enum.Enum):
@@ -470,6 +492,8 @@ def resolving_span(n: int, dt: float, span: float, limit: float, u_p: float, cap
     target = limit / RESOLVE
 
     def noise_se(m: int) -> float:
+        if m < 2:  # one sample has no slope at all (a window shorter than the sample period)
+            return math.inf
         own = u_p / (dt * math.sqrt(m * (m * m - 1) / 12.0))
         return own if extra is None else math.hypot(own, extra((m - 1) * dt))
 
@@ -701,7 +725,7 @@ class SettleDetector:
             self._resync()
 
         elapsed = t - self.t0
-        window_full = elapsed >= self._span * (1.0 - 1e-9) and self._n >= 3
+        window_full = elapsed >= self._span * (1.0 - 1e-9) and self._n >= MIN_WINDOW_SAMPLES
         if window_full and not self._span_set:
             self._span_set = True
             span = self._resolving_span()
@@ -1110,6 +1134,18 @@ class SettleDetector:
     @property
     def n_window(self) -> int:
         return len(self._bt)
+
+    @property
+    def shortfall(self) -> str | None:
+        """Why the drift test has nothing to judge: 'not settled: too few samples' while the window holds
+        fewer than MIN_WINDOW_SAMPLES (a window shorter than two sample periods never holds more, nor does
+        one whose readings were invalid), else None.  Why a sentence: the slope and its error are then NaN,
+        and a time-out that said 'drift nan Pa/s' told the operator nothing."""
+        n = len(self._bt)
+        if n >= MIN_WINDOW_SAMPLES:
+            return None
+        return (f"not settled: too few samples ({n} in the {self._span:g} s window; the drift test needs at "
+                f"least {MIN_WINDOW_SAMPLES})")
 
     @property
     def fit(self) -> ExpFit | None:

@@ -24,7 +24,7 @@ from pycnoctl.controller.domain.states import TERMINAL as STATES_TERMINAL
 from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.maths import results
 from pycnoctl.controller.maths.cycle import AmbientModel, CycleData, CycleMeasurer, CyclePlan
-from pycnoctl.controller.maths.settle import SettleCriteria, SettleStatus
+from pycnoctl.controller.maths.settle import SettleCriteria, SettleStatus, min_window
 from pycnoctl.drivers.instrument import Instrument
 
 log = logging.getLogger(__name__)
@@ -391,6 +391,7 @@ class RunEngine:
         if leaking_in:
             pass  # the leak hold measures that rise and fails the check
         elif status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
+            self._refuse_few("the vented system", settle)
             self._refuse_slow("the vented system", settle, "giving back gas it took up")
             raise SequenceFault("settle_timeout", f"the vented system did not settle within {settle.max_time:g} s "
                                 f"(drift {self.meter.drift:.3g} Pa/s) - a leaking inlet or a thermal transient"
@@ -446,6 +447,7 @@ class RunEngine:
                 return
             status = SettleStatus.TIMED_OUT  # no valid samples at all
         if status is SettleStatus.TIMED_OUT and (settle.on_timeout != "accept" or not self.meter.give_up()):
+            self._refuse_few("pressure", settle)
             self._refuse_slow("pressure", settle, "filling")
             raise SequenceFault("settle_timeout", f"pressure did not settle within {settle.max_time:g} s "
                                 f"(drift {self.meter.drift:.3g} Pa/s) - a leak, a porous sample still filling, "
@@ -456,6 +458,18 @@ class RunEngine:
                               "u_relax": val.u_relax, "t": self._now, "temp_k": val.t, "time": val.time,
                               "drift": val.drift, "window": val.window, "model": val.model})
         self._fire("settled")
+
+    def _refuse_few(self, what: str, settle: Any) -> None:
+        """A settle out of time whose window never held the samples its drift test needs: refused saying
+        so, with the window the sample period needs.  Why: its drift is NaN, and 'drift nan Pa/s - a
+        leak, ...' sent the operator looking for a leak when the window was shorter than two samples
+        (prepare() refuses such a sequence; readings that went invalid for a window end here too)."""
+        short = self.meter.shortfall
+        if short is None:
+            return
+        dt = self.instrument.sample_period
+        raise SequenceFault("settle_timeout", f"{what} did not settle within {settle.max_time:g} s - {short}; at "
+                            f"one sample every {dt:g} s the window must be at least {min_window(dt):g} s")
 
     def _refuse_slow(self, what: str, settle: Any, pores: str) -> None:
         """A settle out of time whose trace is a relaxation slower than its window: refused naming it.
