@@ -121,6 +121,22 @@ def test_sequence_text_is_accepted_and_problems_are_positioned(client: TestClien
     assert any(p.startswith(f"<submitted>:{line}:") for p in problems), problems
 
 
+def test_a_settle_window_too_short_for_the_sample_period_is_refused_at_submit(client: TestClient,
+                                                                            daemon: Daemon) -> None:
+    """The daemon prepares a run as the command line does: a window holding fewer than three samples at
+    the instrument's period is refused, positioned, before anything is queued (was: 500 Internal Server
+    Error, a ZeroDivisionError in prepare's advisor arithmetic for quick-demo's automatic volume choice
+    under a fixed max_drift; with a named volume, queued and faulted after max_time with 'drift nan')."""
+    text = list_shipped()["quick-demo"].read_text(encoding="utf-8").replace("  window: 4 s", "  window: 0.05 s")
+    r = client.post("/api/runs", json={"sequence_text": text})
+    assert r.status_code == 422, r.text
+    line = next(i for i, ln in enumerate(text.splitlines(), 1) if "window: 0.05 s" in ln)
+    [problem] = r.json()["problems"]
+    assert problem.startswith(f"<submitted>:{line}:3: settle.window 0.05 s holds 1 sample at this instrument's "
+                              "sample period of 0.1 s;") and problem.endswith("make the window at least 0.2 s")
+    assert daemon.catalog.list_runs() == [] and daemon.catalog.queue_list() == []
+
+
 @pytest.mark.parametrize("name", ["/etc/passwd", "../sequences/quick-demo", "quick-demo/../x", "catalog.sqlite",
                                   "no-such-sequence"])
 def test_sequence_names_are_never_paths(client: TestClient, name: str) -> None:

@@ -576,6 +576,49 @@ def test_instrument_check_rejects_nonsense_limits(tmp_path: Path) -> None:
             sq.check_against_instrument(seq, expansion_volumes=["small"], max_pressure=bad, gas=None)
 
 
+def test_a_settle_window_of_fewer_than_three_samples_is_refused_at_its_key(tmp_path: Path) -> None:
+    """The drift test fits a line to the window: its slope has a standard error from three samples on.
+    At 0.1 s a 0.15 s window holds two (the base settle serves the zero and P1; P2 has its own 20 s)."""
+    text = edit("  window: 10 s", "  window: 0.15 s")
+    seq = sq.load_sequence(write(tmp_path, text))
+    probs, _ = _check(seq, sample_period=0.1)
+    assert [(p.line, p.col) for p in probs] == [pos(text, "window: 0.15")]
+    assert probs[0].message == (
+        "settle.window 0.15 s holds 2 samples at this instrument's sample period of 0.1 s; the settle's drift "
+        "test fits a straight line and needs at least 3 samples for its slope to have a standard error: make "
+        "the window at least 0.2 s")
+    assert _check(seq)[0] == []  # without a sample period nothing says how many a window holds
+
+
+def test_an_override_window_is_blamed_at_the_override(tmp_path: Path) -> None:
+    # at one sample every 12 s the base 10 s window holds 1 sample and settle_expanded's 20 s holds 2
+    seq = sq.load_sequence(write(tmp_path, GOOD))
+    probs, _ = _check(seq, sample_period=12.0)
+    assert [(p.line, p.col) for p in probs] == [pos(GOOD, "window: 10 s"), pos(GOOD, "window: 20 s")]
+    assert probs[0].message.startswith("settle.window 10 s holds 1 sample at ")
+    assert probs[1].message.startswith("settle_expanded.window 20 s holds 2 samples at ")
+    assert all(p.message.endswith("make the window at least 24 s") for p in probs)
+
+
+def test_a_window_of_two_sample_periods_passes(tmp_path: Path) -> None:
+    seq = sq.load_sequence(write(tmp_path, edit("  window: 10 s", "  window: 0.2 s")))
+    assert _check(seq, sample_period=0.1)[0] == []
+    assert len(_check(seq, sample_period=0.11)[0]) == 1  # 0.2 s then holds 2
+
+
+def test_only_the_settles_a_kind_runs_are_checked(tmp_path: Path) -> None:
+    # a short base window that every override replaces is never used
+    text = edit("  window: 10 s", "  window: 0.05 s")
+    text = edit("settle_filled: {}", "settle_filled: {window: 1 s}\nsettle_baseline: {window: 1 s}", text)
+    assert _check(sq.load_sequence(write(tmp_path, text)), sample_period=0.1)[0] == []
+    # a leak check has no P2: a short settle_expanded is not its problem; a purge settles nothing
+    leak = edit("kind: measure", "kind: leak_check", edit("  window: 20 s", "  window: 0.05 s"))
+    leak += "leak_check:\n  pressure: 1.0 bar\n  hold: 60 s\n  max_rate: 1 Pa/s\n"
+    assert _check(sq.load_sequence(write(tmp_path, leak, "leak.yaml")), sample_period=0.1)[0] == []
+    purge = edit("kind: measure", "kind: purge", text)
+    assert _check(sq.load_sequence(write(tmp_path, purge, "purge.yaml")), sample_period=10.0)[0] == []
+
+
 # ----------------------------------------------------------------------------- duration, names
 
 

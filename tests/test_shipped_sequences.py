@@ -115,9 +115,10 @@ def test_shipped_file_fits_the_clean_simulator(name: str) -> None:
     simulated = pytest.importorskip("pycnoctl.drivers.simulated")
     inst = simulated.build_sim_instrument(None)  # the clean demo instrument
     try:
-        names, max_p, gas = list(inst.roles.expansion), inst.limits.max_pressure, inst.gas
+        names, max_p, gas, period = list(inst.roles.expansion), inst.limits.max_pressure, inst.gas, inst.sample_period
     finally:
         inst.close()
     assert set(DEMO_VOLUMES) <= set(names)
     seq = sq.load_sequence(sq.resolve_sequence(name))
-    assert sq.check_against_instrument(seq, expansion_volumes=names, max_pressure=max_p, gas=gas) == ([], [])
+    assert sq.check_against_instrument(seq, expansion_volumes=names, max_pressure=max_p, gas=gas,
+                                       sample_period=period) == ([], [])

@@ -45,14 +45,15 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 
 
 def static_check(seq_ref: str, *, expansion_volumes: list[str], max_pressure: float,
-                 gas: str | None) -> tuple[Any, list[str]]:
-    """Load the sequence and check it against the instrument's names and limits (ConfigError on problems)."""
+                 gas: str | None, sample_period: float | None = None) -> tuple[Any, list[str]]:
+    """Load the sequence and check it against the instrument's names, limits and sample period
+    (ConfigError on problems)."""
     from pycnoctl.controller.domain.yamlio import ConfigError
     from pycnoctl.controller.run.sequence import check_against_instrument, load_sequence, resolve_sequence
 
     seq = load_sequence(resolve_sequence(seq_ref))
     problems, warnings = check_against_instrument(seq, expansion_volumes=expansion_volumes,
-                                                  max_pressure=max_pressure, gas=gas)
+                                                  max_pressure=max_pressure, gas=gas, sample_period=sample_period)
     if problems:
         raise ConfigError(problems)
     return seq, warnings
@@ -90,9 +91,9 @@ def _simulated_only(cfg: Any) -> bool:
                for d in (cfg.valves, cfg.pressure, cfg.thermometer, cfg.barometer))
 
 
-def _facts(inst: Instrument) -> tuple[list[str], float, str]:
+def _facts(inst: Instrument) -> tuple[list[str], float, str, float]:
     try:
-        return list(inst.roles.expansion), inst.limits.max_pressure, inst.gas
+        return list(inst.roles.expansion), inst.limits.max_pressure, inst.gas, inst.sample_period
     finally:
         inst.close()
 
@@ -119,15 +120,17 @@ def main(args: argparse.Namespace) -> int:
                     return build_instrument(cfg)
 
                 where = f"simulator of {args.instrument}"
-                names, max_p, gas = _facts(factory())
+                names, max_p, gas, period = _facts(factory())
             else:  # real hardware: read the config only, never open a port
                 real_hardware = True
                 names = list(cfg.chambers.expansion) if cfg.chambers else []
                 max_p = cfg.limits.max_pressure if cfg.limits else 0.0
                 gas = cfg.gas
+                period = cfg.sample_period
         else:
-            names, max_p, gas = _facts(make())
-        seq, warnings = static_check(args.sequence, expansion_volumes=names, max_pressure=max_p, gas=gas)
+            names, max_p, gas, period = _facts(make())
+        seq, warnings = static_check(args.sequence, expansion_volumes=names, max_pressure=max_p, gas=gas,
+                                     sample_period=period)
     except SequenceNotFound as exc:
         raise UsageError(str(exc)) from None
     earliest = earliest_cycles(seq)

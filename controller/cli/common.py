@@ -245,7 +245,7 @@ def check_before_opening(args: argparse.Namespace, sequence: str | Path | None,
                          expansion_volume: str | None = None, *, one_volume: bool = True) -> None:
     """Everything that can be proved without a device, proved before any device is opened: the
     instrument config, the ports it names, the sequence file and the sequence against the config's
-    names and limits.  A refusal after opening would already have commanded the valves (closing an
+    names, limits and sample period.  A refusal after opening would already have commanded the valves (closing an
     instrument asserts the safe state).  one_volume: the run uses the sequence's (or the given)
     expansion volume, so it must be one the instrument has."""
     from pycnoctl.controller.run.sequence import (
@@ -255,7 +255,7 @@ def check_before_opening(args: argparse.Namespace, sequence: str | Path | None,
         resolve_sequence,
     )
 
-    facts: tuple[list[str], float, str] | None = None
+    facts: tuple[list[str], float, str, float] | None = None
     if getattr(args, "instrument", None):
         from pycnoctl.drivers.config import load_instrument_config
 
@@ -264,7 +264,7 @@ def check_before_opening(args: argparse.Namespace, sequence: str | Path | None,
         if problems:
             raise ConfigError(problems)
         if cfg.chambers is not None and cfg.limits is not None:
-            facts = list(cfg.chambers.expansion), cfg.limits.max_pressure, cfg.gas
+            facts = list(cfg.chambers.expansion), cfg.limits.max_pressure, cfg.gas, cfg.sample_period
     elif getattr(args, "sim", None):  # a simulator config file: its problems too, before the data folder
         from pycnoctl.sim.config import load_sim_config
 
@@ -280,8 +280,9 @@ def check_before_opening(args: argparse.Namespace, sequence: str | Path | None,
         raise UsageError(str(exc)) from None
     if facts is None:  # a simulated instrument: prepare() checks against it once it is built
         return
-    names, max_pressure, gas = facts
-    problems, _ = check_against_instrument(seq, expansion_volumes=names, max_pressure=max_pressure, gas=gas)
+    names, max_pressure, gas, sample_period = facts
+    problems, _ = check_against_instrument(seq, expansion_volumes=names, max_pressure=max_pressure, gas=gas,
+                                           sample_period=sample_period)
     if problems:
         raise ConfigError(problems)
     choice = expansion_volume or seq.expand.volume

@@ -110,7 +110,8 @@ def prepare(request: RunRequest, instrument: Instrument, catalog: Catalog | None
     seq = load_sequence(resolve_sequence(request.sequence))
     names = list(instrument.roles.expansion)
     problems, warnings = check_against_instrument(
-        seq, expansion_volumes=names, max_pressure=instrument.limits.max_pressure, gas=instrument.gas
+        seq, expansion_volumes=names, max_pressure=instrument.limits.max_pressure, gas=instrument.gas,
+        sample_period=instrument.sample_period,
     )
     if problems:
         raise ConfigError(problems)

@@ -625,10 +625,12 @@ def check_against_instrument(
     expansion_volumes: Iterable[str],
     max_pressure: float,
     gas: str | None,
+    sample_period: float | None = None,
     doc: Document | None = None,
     margin: float = DEFAULT_MARGIN,
 ) -> tuple[list[Problem], list[str]]:
-    """Rules that need the instrument: expansion-volume names, pressures under the trip, the gas.
+    """Rules that need the instrument: expansion-volume names, pressures under the trip, the gas, and
+    settle windows that hold enough samples at the instrument's ``sample_period`` (s; None: not checked).
 
     Every pressurising setpoint plus ``fill.overshoot`` (the overshoot allowance applies to every
     fill: the measurement fill, each purge pulse and the leak-check fill) must stay at or below
@@ -673,6 +675,9 @@ def check_against_instrument(
                 f"{limit / 1e5:.4g} bar (max_pressure {max_pressure / 1e5:.4g} bar less a "
                 f"{margin * 100:g} % margin)")))
 
+    if sample_period is not None:
+        problems.extend(problem(loc, msg) for loc, msg in window_rules(seq, sample_period))
+
     if gas is not None:
         try:
             inst_gas = get_gas(gas).name
@@ -684,6 +689,49 @@ def check_against_instrument(
                                         f"plumbed for {inst_gas}: change the instrument's gas (and calibrate "
                                         "in it) or use a sequence written for it"))
     return problems, warnings
+
+
+def _settles_used(seq: Sequence) -> tuple[str, ...]:
+    """The effective settles a run of ``seq`` goes through (a purge has none; a leak check no P2)."""
+    if seq.expands:
+        return ("settle_baseline", "settle_filled", "settle_expanded")
+    if seq.kind == "leak_check":
+        return ("settle_baseline", "settle_filled")
+    return ()
+
+
+def window_rules(seq: Sequence, sample_period: float) -> list[Rule]:
+    """Each settle window that holds fewer samples than the drift test needs, at the key that sets it.
+
+    Why here and not in the file's own rules: a window is in seconds and the samples come at the
+    instrument's period, so only the two together say how many a window holds.  The detector fits a
+    straight line to the window and tests its slope, which has a standard error only from three samples
+    on (controller.maths.settle.MIN_WINDOW_SAMPLES); below that a settle can never decide, and the run
+    ended in a time-out (or, with a fixed max_drift, in a ZeroDivisionError before it started).
+    An override's window is blamed at the override, the base settle's once, at settle.window."""
+    from pycnoctl.controller.maths.settle import MIN_WINDOW_SAMPLES, min_window, window_samples
+
+    if not (sample_period > 0 and math.isfinite(sample_period)):
+        raise ValueError(f"sample_period must be a positive number of seconds, got {sample_period!r}")
+    raw = seq.doc.data if seq.doc is not None and isinstance(seq.doc.data, dict) else {}
+    out: list[Rule] = []
+    seen: set[Loc] = set()
+    for key in _settles_used(seq):
+        window = getattr(seq, key).window
+        n = window_samples(window, sample_period)
+        if n >= MIN_WINDOW_SAMPLES:
+            continue
+        over = raw.get(key)
+        source = key if isinstance(over, dict) and "window" in over else "settle"
+        loc: Loc = (source, "window")
+        if loc in seen:
+            continue
+        seen.add(loc)
+        out.append((loc, f"{source}.window {window:g} s holds {n} sample{'s' if n != 1 else ''} at this "
+                         f"instrument's sample period of {sample_period:g} s; the settle's drift test fits a "
+                         f"straight line and needs at least {MIN_WINDOW_SAMPLES} samples for its slope to have a "
+                         f"standard error: make the window at least {min_window(sample_period):g} s"))
+    return out
 
 
 # --------------------------------------------------------------------------- shipped files
