@@ -16,7 +16,7 @@ from typing import Annotated, Any, Literal
 from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
 
 from pycnoctl.controller.domain.gas import get_gas
-from pycnoctl.controller.domain.gaspath import Limits
+from pycnoctl.controller.domain.gaspath import Limits, stale_problem
 from pycnoctl.controller.domain.text import plain
 from pycnoctl.controller.domain.units import (
     UnitError,
@@ -380,6 +380,12 @@ class SimConfig(_Strict):
                             f"limits.relief_setting: {limits.relief_setting:.6g} Pa is above the simulated relief "
                             f"valve's set pressure {self.relief.set_pressure:.6g} Pa: the limits would be "
                             "checked against a relief that does not exist"))
+            stale = stale_problem(self.sample_period, limits.stale_after,
+                                  note="" if "stale_after" in self.limits else "its default")
+            if stale is not None:  # at the key the file gives (the sample period where both are given)
+                blame: Loc = ("sample_period",) if "sample_period" in self.model_fields_set or \
+                    "stale_after" not in self.limits else ("limits", "stale_after")
+                out.append((blame, stale))
         except ValidationError as exc:
             derived_from: Loc = ("relief", "set_pressure") if self.relief else ("instruments", "pressure", "full_scale")
             for err in exc.errors():

@@ -103,3 +103,39 @@ def test_a_lab_pressure_or_temperature_in_the_wrong_unit_is_refused_at_its_line(
         load_sim_config(path)
     [problem] = exc.value.problems
     assert str(problem).startswith(f"{path}:{at + 1}:") and "give the unit" in str(problem)
+
+
+# -- the transducer's sample period against the stale-reading limit ---------------------------------
+
+STALE_WORDS = "is not shorter than the stale-reading limit, limits.stale_after"
+
+
+def test_a_sample_period_longer_than_the_stale_limit_is_refused_naming_both(tmp_path):
+    """The stale interlock trips once no valid sample has come for longer than stale_after: a transducer
+    read every 2 s under the default 1 s faulted with a stale-reading trip at the first tick."""
+    [p] = _problems(tmp_path, BASE + "sample_period: 2 s\n")
+    assert (p.line, p.col) == (9, 1)
+    assert p.message == ("sample_period 2 s is not shorter than the stale-reading limit, limits.stale_after 1 s "
+                         "(its default): the stale interlock trips when no valid pressure sample has come for "
+                         "longer than 1 s, so every sample would trip it (the instrument faults at its first "
+                         "tick); make sample_period shorter, or limits.stale_after longer (at most 10 s)")
+
+
+def test_an_equal_sample_period_is_refused_too(tmp_path):
+    # no margin: a sample late by any amount is a gap over the limit
+    [p] = _problems(tmp_path, BASE + "sample_period: 0.5 s\nlimits: {stale_after: 0.5 s}\n")
+    assert p.line == 9 and "sample_period 0.5 s" in p.message and "limits.stale_after 0.5 s:" in p.message
+    assert "any sample that comes late would trip it" in p.message
+
+
+def test_a_stale_limit_under_the_default_period_is_blamed_at_the_limit(tmp_path):
+    [p] = _problems(tmp_path, BASE + "limits:\n  stale_after: 50 ms\n")  # sample_period: its default 0.1 s
+    assert (p.line, p.col) == (10, 3) and p.message.startswith("sample_period 0.1 s " + STALE_WORDS + " 0.05 s:")
+
+
+def test_a_sample_period_under_the_stale_limit_loads(tmp_path):
+    p = tmp_path / "ok.yaml"
+    p.write_text(BASE + "sample_period: 0.9 s\n", encoding="utf-8")
+    assert load_sim_config(p).sample_period == pytest.approx(0.9)
+    p.write_text(BASE + "sample_period: 2 s\nlimits: {stale_after: 5 s}\n", encoding="utf-8")
+    assert load_sim_config(p).instrument_limits().stale_after == 5.0

@@ -171,7 +171,8 @@ RiseRate = Annotated[float, _bounded("rate", "50 kPa/s", MAX_RATE)]
 # Time-outs, each with the longest that still protects (s): a sensor silent for over 10 s while
 # pressurised, a reading frozen or a leak judged over more than a minute, a vent taking more than
 # ten minutes are no longer watched.
-StaleTime = Annotated[float, _bounded("duration", "1 s", 10.0)]
+MAX_STALE_AFTER = 10.0  # s
+StaleTime = Annotated[float, _bounded("duration", "1 s", MAX_STALE_AFTER)]
 WatchTime = Annotated[float, _bounded("duration", "5 s", 60.0)]
 VentTime = Annotated[float, _bounded("duration", "60 s", 600.0)]
 
@@ -226,3 +227,22 @@ class Limits(BaseModel):
                                  f"{info.data[above]:.6g} Pa (the software trip comes first)")
             raise ValueError(f"{info.field_name} {value:.6g} Pa must be below max_pressure {info.data[above]:.6g} Pa")
         return value
+
+
+def stale_problem(sample_period: float, stale_after: float, *, note: str = "") -> str | None:
+    """Why a transducer read every ``sample_period`` s cannot run under the stale-reading limit
+    ``limits.stale_after`` of ``stale_after`` s (``note``: where that value comes from, e.g. 'its
+    default'), or None.
+
+    The stale interlock trips once no valid pressure sample has come for longer than stale_after; one
+    sample period apart from the last, every sample of a longer period is such a gap, so the instrument
+    faulted at its first tick.  An equal period leaves no margin: any sample late by a millisecond
+    trips it.  The interlock layer cannot know the period, so the loaders refuse it, naming both values."""
+    if sample_period < stale_after:
+        return None
+    return (f"sample_period {sample_period:g} s is not shorter than the stale-reading limit, limits.stale_after "
+            f"{stale_after:g} s{f' ({note})' if note else ''}: the stale interlock trips when no valid pressure "
+            f"sample has come for longer than {stale_after:g} s, so "
+            + ("every sample would trip it (the instrument faults at its first tick)"
+               if sample_period > stale_after else "any sample that comes late would trip it")
+            + f"; make sample_period shorter, or limits.stale_after longer (at most {MAX_STALE_AFTER:g} s)")
