@@ -24,14 +24,14 @@ from pycnoctl.controller.domain import yamlio
 from pycnoctl.controller.domain.clock import WallClock
 from pycnoctl.controller.domain.devices import PressureSensor, Thermometer, ValveBank
 from pycnoctl.controller.domain.gas import get_gas
-from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
+from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles, stale_problem
 from pycnoctl.controller.domain.text import plain
 from pycnoctl.controller.domain.units import lab_pressure_problem
 from pycnoctl.drivers import registry
 from pycnoctl.drivers.fields import Pressure, PressureRate, Seconds, Strict, Temperature
 from pycnoctl.drivers.guarded import GuardedValveBank, violations
 from pycnoctl.drivers.instrument import Instrument
-from pycnoctl.drivers.simulated import SIM, SimDevice
+from pycnoctl.drivers.simulated import SIM, SimDevice, sim_config_limits
 
 log = logging.getLogger(__name__)
 
@@ -156,6 +156,11 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
             errors.append((("chambers",), "volumes must be positive"))
     lim = cfg.limits
     if lim is not None:
+        stale = stale_problem(cfg.sample_period, lim.stale_after,
+                              note="" if "stale_after" in lim.model_fields_set else "its default")
+        if stale is not None:  # at the key the file gives (the sample period where both are given)
+            given = "sample_period" in cfg.model_fields_set or "stale_after" not in lim.model_fields_set
+            errors.append((("sample_period",) if given else ("limits", "stale_after"), stale))
         span = getattr(cfg.pressure, "span", None)
         if span is not None:
             lo, hi = span()
@@ -198,7 +203,25 @@ def load_instrument_config(path: str | Path) -> InstrumentConfig:
         dev = getattr(cfg, role)
         if isinstance(dev, SimDevice) and dev.config and not Path(dev.config).is_absolute():
             updates[role] = dev.model_copy(update={"config": str(base / dev.config)})
-    return cfg.model_copy(update=updates) if updates else cfg
+    cfg = cfg.model_copy(update=updates) if updates else cfg
+    stale = _simulated_stale(cfg)
+    if stale is not None:
+        raise yamlio.ConfigError([doc.problem(("sample_period",), stale)])
+    return cfg
+
+
+def _simulated_stale(cfg: InstrumentConfig) -> str | None:
+    """Where the limits come from the simulator config (none here, simulated valves), its stale-reading
+    limit against this file's sample period, which the built instrument reads at (build_instrument).
+    A simulator config that does not load is left to the build, which says why."""
+    if cfg.limits is not None or not isinstance(cfg.valves, SimDevice):
+        return None
+    found = sim_config_limits(cfg.valves.config)
+    if found is None:
+        return None
+    limits, source, given = found
+    return stale_problem(cfg.sample_period, limits.stale_after,
+                         note=f"{'set in' if given else 'the default of'} the simulator config {source}")
 
 
 # -- building ---------------------------------------------------------------------------------------

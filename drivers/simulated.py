@@ -21,13 +21,14 @@ from typing import Any, Literal
 
 from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, Reading, Validity
 from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles
+from pycnoctl.controller.domain.yamlio import ConfigError
 from pycnoctl.drivers import registry
 from pycnoctl.drivers.fields import Strict
 from pycnoctl.drivers.guarded import GuardedValveBank
 from pycnoctl.drivers.instrument import Instrument
 from pycnoctl.sim.bench import SensorSample, SimBench
 from pycnoctl.sim.clock import SimClock
-from pycnoctl.sim.config import SimConfig, load_sim_config
+from pycnoctl.sim.config import DEFAULT_CONFIG, SimConfig, load_sim_config
 
 _VALIDITY = {
     "ok": Validity.VALID,
@@ -189,6 +190,18 @@ def _chambers(cfg: SimConfig) -> Chambers:
 def sim_limits(cfg: SimConfig) -> Limits:
     """Limits of the derived instrument (see SimConfig.instrument_limits)."""
     return cfg.instrument_limits()
+
+
+def sim_config_limits(config: str | Path | None) -> tuple[Limits, str, bool] | None:
+    """(the interlock limits a simulator config file gives the instrument built on it, the file read,
+    whether it sets stale_after itself), or None where the file does not load (its build then says why):
+    what an instrument config with simulated valves and no limits of its own runs under."""
+    path = DEFAULT_CONFIG if config is None else Path(config)
+    try:
+        cfg = load_sim_config(path)
+    except (ConfigError, OSError, ValueError):
+        return None
+    return sim_limits(cfg), str(path), "stale_after" in cfg.limits
 
 
 def _paced_limits(limits: Limits, realtime: bool, speed: float) -> Limits:

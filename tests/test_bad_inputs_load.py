@@ -1,7 +1,7 @@
 """Inputs that used to load without a word and would misread or switch off a protection: a gauge reply
 pattern without its 'value' group or not a regex at all, an unknown gas in the instrument config, a
 simulator that starts with the inlet and the vent open together, a fill time-out of 1e12 s, a transducer
-read less often than its stale-reading limit allows. Each is
+read less often than its stale-reading limit allows (simulator, hardware, simulated instrument). Each is
 refused at load with file:line:col, so by `check` and by `run` alike (exit 2, no traceback)."""
 
 from __future__ import annotations
@@ -46,6 +46,8 @@ def cases(tmp_path: Path) -> list[tuple[str, list[str], Path, str, str]]:
                   "initial_open: [inlet, vent]", "sim.yaml")
     fill = variant(tmp_path, QUICK, "  timeout: 30 s\n  overshoot", "  timeout: 1e12 s\n  overshoot", "fill.yaml")
     slow_sim = variant(tmp_path, DEFAULT_CONFIG, "sample_period: 0.1 s", "sample_period: 2 s", "slow-sim.yaml")
+    slow_gauge = variant(tmp_path, GAUGE, "sample_period: 0.1 s", "sample_period: 2 s", "slow-gauge.yaml")
+    slow_simulated = variant(tmp_path, SIMULATED, "sample_period: 0.1 s", "sample_period: 2 s", "slow-simulated.yaml")
     stale = "is not shorter than the stale-reading limit, limits.stale_after 1 s"
     return [
         ("gauge pattern without its group", ["--instrument", str(nogroup)], nogroup, "regex: '^P",
@@ -56,11 +58,15 @@ def cases(tmp_path: Path) -> list[tuple[str, list[str], Path, str, str]]:
         ("fill time-out of 1e12 s", [], fill, "timeout: 1e12", "less than or equal to 3600"),
         # each used to load and fault with a stale-reading trip at the first tick
         ("simulator sampled slower than its stale limit", ["--sim", str(slow_sim)], slow_sim, "sample_period:", stale),
+        ("hardware sampled slower than its stale limit", ["--instrument", str(slow_gauge)], slow_gauge,
+         "sample_period:", stale),
+        ("simulated instrument sampled slower than its simulator's stale limit", ["--instrument", str(slow_simulated)],
+         slow_simulated, "sample_period:", stale),
     ]
 
 
 @pytest.mark.parametrize("verb", ["check", "run"])
-@pytest.mark.parametrize("index", range(6))
+@pytest.mark.parametrize("index", range(8))
 def test_refused_at_load_with_file_line_col(tmp_path, capsys, verb, index):
     name, opts, bad, key, words = cases(tmp_path)[index]
     seq = str(bad) if bad.name == "fill.yaml" else "quick-demo"

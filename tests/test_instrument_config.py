@@ -13,6 +13,7 @@ from pycnoctl.controller.domain.devices import ForbiddenValveState, Reading, Val
 from pycnoctl.controller.domain.yamlio import ConfigError
 from pycnoctl.drivers.config import build_instrument, load_instrument_config, reconnect_instrument
 from pycnoctl.drivers.guarded import GuardedValveBank
+from pycnoctl.sim.config import load_sim_config
 from pycnoctl.sim.fakedev import FakeDevice, GaugeFirmware, MemoryValveBank, RelayFirmware
 
 EXAMPLES = files("pycnoctl.drivers") / "instruments"
@@ -202,3 +203,56 @@ def test_an_ambient_pressure_that_no_lab_has_is_refused(tmp_path):
     assert any("ambient_nominal" in str(p) and "give the unit" in str(p) for p in exc.value.problems)
     path.write_text(text + "ambient_nominal: 1013 hPa\n")
     assert load_instrument_config(path).ambient_nominal == pytest.approx(101300.0)
+
+
+# -- the sample period against the stale-reading limit ---------------------------------------------
+
+SIMULATED = Path(str(EXAMPLES / "simulated.yaml"))
+
+
+def _refused(path: Path) -> list:
+    with pytest.raises(ConfigError) as info:
+        load_instrument_config(path)
+    return info.value.problems
+
+
+def test_a_sample_period_over_the_stale_limit_is_refused_at_its_line(tmp_path):
+    """The hardware example read every 2 s under its default 1 s stale-reading limit: every tick a stale trip."""
+    p = write_variant(tmp_path, "sample_period: 0.1 s", "sample_period: 2 s")
+    [problem] = _refused(p)
+    assert (problem.line, problem.col) == (line_of(p, "sample_period:"), 1)
+    assert problem.message.startswith("sample_period 2 s is not shorter than the stale-reading limit, "
+                                      "limits.stale_after 1 s (its default): ")
+
+
+def test_a_stale_limit_given_with_the_period_names_both_values(tmp_path):
+    p = write_variant(tmp_path, "sample_period: 0.1 s", "sample_period: 0.5 s")
+    limit = "  max_rise_rate: 60 kPa/s\n"
+    p.write_text(p.read_text().replace(limit, limit + "  stale_after: 0.4 s\n"))
+    [problem] = _refused(p)
+    assert problem.line == line_of(p, "sample_period:")  # both given: the period is blamed, the limit named
+    assert problem.message.startswith("sample_period 0.5 s is not shorter than the stale-reading limit, "
+                                      "limits.stale_after 0.4 s: ")
+    p.write_text(p.read_text().replace("stale_after: 0.4 s", "stale_after: 0.6 s"))
+    assert load_instrument_config(p).limits.stale_after == pytest.approx(0.6)
+
+
+def test_a_simulated_instrument_is_held_to_its_simulator_configs_stale_limit(tmp_path):
+    """With simulated valves and no limits of its own the instrument runs under the simulator config's
+    limits, at this file's sample period: the same hole, closed with the simulator config named."""
+    p = tmp_path / "sim-instrument.yaml"
+    p.write_text(SIMULATED.read_text().replace("sample_period: 0.1 s", "sample_period: 2 s"))
+    [problem] = _refused(p)
+    assert (problem.line, problem.col) == (line_of(p, "sample_period:"), 1)
+    assert "sample_period 2 s is not shorter than the stale-reading limit, limits.stale_after 1 s (the default " \
+           "of the simulator config " in problem.message
+    # a simulator config whose own limit is longer lets the same period load
+    sim = tmp_path / "slow-sim.yaml"
+    clean = Path(str(files("pycnoctl.sim") / "configs" / "clean.yaml")).read_text()
+    sim.write_text(clean.replace("sample_period: 0.1 s", "sample_period: 2 s\nlimits: {stale_after: 5 s}"))
+    assert load_sim_config(sim).instrument_limits().stale_after == 5.0  # it loads: the check did read it
+    p.write_text(p.read_text().replace("valves: {kind: sim}", "valves: {kind: sim, config: slow-sim.yaml}")
+                 .replace("pressure: {kind: sim}", "pressure: {kind: sim, config: slow-sim.yaml}")
+                 .replace("thermometer: {kind: sim}", "thermometer: {kind: sim, config: slow-sim.yaml}")
+                 .replace("barometer: {kind: sim}", "barometer: {kind: sim, config: slow-sim.yaml}"))
+    assert load_instrument_config(p).sample_period == 2.0
