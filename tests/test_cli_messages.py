@@ -32,9 +32,10 @@ def test_a_report_that_cannot_be_written_beside_the_run_points_to_out(
 
     monkeypatch.setattr(report, "render_report", refuse)
     run_id = next((data / "runs").iterdir()).name
-    assert cli.main(["report", run_id, "--data", str(data)]) == code
-    message = capsys.readouterr().err
-    assert "give --out FILE to write it elsewhere" in message and "report.html" in message
+    for pdf in ([], ["--pdf"]):  # the PDF's default place is beside the run too
+        assert cli.main(["report", run_id, "--data", str(data), *pdf]) == code
+        message = capsys.readouterr().err
+        assert "give --out FILE to write it elsewhere" in message and "report.html" in message
 
 
 def test_data_naming_a_file_says_so(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

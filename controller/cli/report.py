@@ -45,7 +45,7 @@ def main(args: argparse.Namespace) -> int:
         out = Path(args.out) if args.out else (folder / "report.pdf" if args.pdf else None)
         if args.pdf and out is not None and out.suffix.lower() != ".pdf":
             raise UsageError("--pdf: give an --out FILE ending in .pdf, or none")
-        with _elsewhere_hint(out is None and not args.out):
+        with _elsewhere_hint(not args.out):  # the default place, beside the run (HTML or PDF)
             print(render_report(folder, out).absolute())
         return 0
     if args.run:
