@@ -75,25 +75,20 @@ NonNegPressure = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_pressu
 Temperature = Annotated[float, BeforeValidator(lambda v: parse_temperature(v))]
 
 
-def _lab_pressure(v: Any) -> float:
-    out = parse_pressure(v)
-    problem = lab_pressure_problem(v, out)
-    if problem is not None:
-        raise ValueError(problem)
-    return out
-
-
-def _lab_temperature(v: Any) -> float:
-    out = parse_temperature(v)
-    problem = lab_temperature_problem(v, out)
-    if problem is not None:
-        raise ValueError(problem)
-    return out
+def _plausible(parse: Any, problem: Any) -> Any:
+    """A validator that parses a value and refuses it where ``problem`` says no lab has it."""
+    def check(v: Any) -> float:
+        out = parse(v)
+        why = problem(v, out)
+        if why is not None:
+            raise ValueError(why)
+        return float(out)
+    return check
 
 
 # a lab's air pressure and temperature: a bare number in the wrong unit (1013 for hPa, 295 for K) is refused
-LabPressure = Annotated[float, BeforeValidator(_lab_pressure)]
-LabTemperature = Annotated[float, BeforeValidator(_lab_temperature)]
+LabPressure = Annotated[float, BeforeValidator(_plausible(parse_pressure, lab_pressure_problem))]
+LabTemperature = Annotated[float, BeforeValidator(_plausible(parse_temperature, lab_temperature_problem))]
 TempDiff = Annotated[float, BeforeValidator(lambda v: parse_temperature_difference(v))]
 NonNegTempDiff = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_temperature_difference(v)))]
 PosVolume = Annotated[float, BeforeValidator(_pos(lambda v: parse_volume(v)))]
