@@ -381,6 +381,15 @@ class SimConfig(_Strict):
                 blame: Loc = ("sample_period",) if "sample_period" in self.model_fields_set or \
                     "stale_after" not in self.limits else ("limits", "stale_after")
                 out.append((blame, stale))
+            p_in = self.instruments.pressure
+            if 1.0 / p_in.update_rate >= limits.frozen_after:
+                # a reading that changes only every 1/update_rate s is bit-identical for that long, which
+                # the frozen-reading interlock takes for a dead transducer while valves move gas
+                out.append((("instruments", "pressure", "update_rate"),
+                            f"instruments.pressure.update_rate {p_in.update_rate:g} Hz gives a new reading every "
+                            f"{1.0 / p_in.update_rate:g} s, not sooner than the frozen-reading limit "
+                            f"limits.frozen_after {limits.frozen_after:g} s: the frozen interlock would trip at the "
+                            "first fill; make the update rate faster, or limits.frozen_after longer"))
         except ValidationError as exc:
             derived_from: Loc = ("relief", "set_pressure") if self.relief else ("instruments", "pressure", "full_scale")
             for err in exc.errors():

@@ -139,3 +139,22 @@ def test_a_sample_period_under_the_stale_limit_loads(tmp_path):
     assert load_sim_config(p).sample_period == pytest.approx(0.9)
     p.write_text(BASE + "sample_period: 2 s\nlimits: {stale_after: 5 s}\n", encoding="utf-8")
     assert load_sim_config(p).instrument_limits().stale_after == 5.0
+
+
+def test_a_pressure_reading_slower_than_the_frozen_limit_is_refused_at_its_line(tmp_path):
+    # a reading that changes only every 10 s is bit-identical for 10 s, which the frozen-reading
+    # interlock (5 s by default) takes for a dead transducer: the run tripped 5 s into the purge
+    line = "pressure:    {node: cell, kind: gauge, full_scale: 3.5 bar, update_rate: 100 Hz}"
+    text = Path(shipped_configs()["clean"]).read_text()
+    assert line in text
+    for rate, refused in (("0.1 Hz", True), ("0.2 Hz", True), ("0.5 Hz", False)):
+        path = tmp_path / "slow.yaml"
+        path.write_text(text.replace(line, line.replace("100 Hz", rate)))
+        at = 1 + path.read_text().splitlines().index("  " + line.replace("100 Hz", rate))
+        if not refused:
+            load_sim_config(path)
+            continue
+        with pytest.raises(ConfigError) as exc:
+            load_sim_config(path)
+        [problem] = exc.value.problems
+        assert str(problem).startswith(f"{path}:{at}:") and "frozen_after" in str(problem)
