@@ -100,3 +100,26 @@ def test_the_command_line_refuses_what_the_daemon_refuses_about_the_specimen(
     assert cli.main(["run", "quick-demo", "--sim", "--quiet", "--data", str(tmp_path), *args]) == 2
     assert capsys.readouterr().err.startswith(f"pycnoctl run: error: {field}:")
     assert not (tmp_path / "runs").exists()
+
+
+def test_a_result_that_is_not_a_measurement_stays_out_of_the_sample_mean_and_analyze_says_so(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # found by a sweep: the sample-set report averaged a -5.5 cm3 run into its sample's mean (-0.25 cm3),
+    # and analyze of such a run with a mass ended in "failed: ValueError" (a density of a negative volume)
+    data = str(tmp_path / "data")
+    assert cli.main(["run", "quick-demo", "--sim", "--seed", "3", "--quiet", "--sample", "MIX", "--mass", "12 g",
+                     "--data", data]) == 0
+    wrong = _sim(tmp_path, "wrong", CLEAN + "nominal:\n  cell: 6 cm^3\n  u: 0.01\n")
+    code, summary = _run(tmp_path, wrong, capsys, "--sample", "MIX", "--mass", "12 g")
+    assert code == 7
+    from pycnoctl.controller.record.catalog import Catalog
+    from pycnoctl.controller.record.report import sample_set
+
+    with Catalog(tmp_path / "data" / "catalog.sqlite") as catalog:
+        [mix] = sample_set(catalog, prefix="MIX")
+    assert mix.n == 1 and mix.left_out == [summary["run_id"]]
+    assert mix.as_dict()["mean_volume_cm3"] == pytest.approx(5.0, rel=1e-3)
+    capsys.readouterr()
+    assert cli.main(["analyze", summary["run_id"], "--data", data, "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert any(f.startswith("NOT A MEASUREMENT") for f in out["flags"]) and "density_g_cm3" not in out

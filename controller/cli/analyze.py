@@ -200,6 +200,11 @@ def main(args: argparse.Namespace) -> int:
     flags = list(re.flags)
     if seq.expands and not re.cycles:
         flags.append(NO_COMPLETE_CYCLE)
+    from pycnoctl.controller.maths.results import outside_cell
+
+    impossible = outside_cell(res.volume_m3, res.U_volume_m3, chambers.vc) if res else None
+    if impossible:  # as the run says it (exit 7): these volumes give a result no specimen can have
+        flags.append(f"NOT A MEASUREMENT: {impossible}")
     out: dict[str, Any] = {
         "run_id": rec.run_id, "interrupted": rec.interrupted, "sequence": seq.name, "gas": gas,
         "chambers": {"vc_cm3": chambers.vc * 1e6, "vr_cm3": chambers.vr * 1e6, "source": chambers.record_id},
@@ -211,7 +216,7 @@ def main(args: argparse.Namespace) -> int:
         "flags": flags,
     }
     mass = rec.mass_g
-    if res and mass:
+    if res and mass and res.volume_m3 > 0:  # no density of a volume at or below zero (NOT A MEASUREMENT)
         from pycnoctl.controller.maths.uncertainty import density
 
         rho, u_rho = density(res.volume_m3, res.u_volume_m3, mass * 1e-3, 0.0)

@@ -315,6 +315,8 @@ class SampleStats:
     volumes: list[float] = field(default_factory=list)  # cm3
     # each run's own result with its expanded U (k = 2), for the plot: (run, density, U, volume, U)
     points: list[dict[str, Any]] = field(default_factory=list)
+    # runs whose result no specimen can have ("NOT A MEASUREMENT", run exit 7): not in the means
+    left_out: list[str] = field(default_factory=list)
 
     @property
     def n(self) -> int:
@@ -331,7 +333,7 @@ class SampleStats:
     def as_dict(self) -> dict[str, Any]:
         d, v = self.densities, self.volumes
         return {"sample_id": self.sample_id, "n_runs": self.n, "run_ids": self.run_ids,
-                "mean_density_g_cm3": self._mean(d), "sd_density_g_cm3": self._sd(d),
+                "mean_density_g_cm3": self._mean(d), "sd_density_g_cm3": self._sd(d), "left_out": self.left_out,
                 "range_density_g_cm3": (max(d) - min(d)) if d else None,
                 "mean_volume_cm3": self._mean(v), "sd_volume_cm3": self._sd(v)}
 
@@ -348,6 +350,9 @@ def sample_set(catalog: Any, *, prefix: str | None = None, run_ids: Sequence[str
         if r.status != "completed" or r.kind != "measure":
             continue
         g = groups.setdefault(r.sample_id or "", SampleStats(r.sample_id or ""))
+        if str(r.message or "").startswith("NOT A MEASUREMENT"):  # a wrong volume must not move the mean
+            g.left_out.append(r.id)
+            continue
         g.run_ids.append(r.id)
         if r.density is not None:
             g.densities.append(r.density / 1e3)
@@ -373,7 +378,7 @@ def render_sample_set(stats: Sequence[SampleStats], out: Path, *, title: str = "
         d = s.as_dict()
         row = [s.sample_id or "(none)", str(s.n), _num(d["mean_density_g_cm3"]), _num(d["sd_density_g_cm3"]),
                _num(d["range_density_g_cm3"]), _num(d["mean_volume_cm3"]), _num(d["sd_volume_cm3"]),
-               ", ".join(s.run_ids)]
+               ", ".join([*s.run_ids, *(f"{i} (left out: not a measurement)" for i in s.left_out)])]
         rows.append(row)
         table.append({"sample": row[0], "runs": row[1], "mean_density": row[2], "sd_density": row[3],
                       "mean_volume": row[5], "sd_volume": row[6]})
