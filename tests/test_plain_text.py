@@ -91,3 +91,20 @@ def test_an_older_record_is_shown_escaped_in_the_table_and_the_csv(tmp_path: Pat
         out = capsys.readouterr().out
         assert "\x1b" not in out and "\x07" not in out
         assert "AB\\x1b[31mRED\\x07" in out
+
+
+@pytest.mark.parametrize("argv", [["run", "quick-demo", "--sim", "--quiet", "--operator", "op\udcff"],
+                                  ["run", "quick-demo", "--sim", "--quiet", "--sample", "\udcff\udcfe"],
+                                  ["calibrations", "import", "--sim", "--expansion-volume", "small",
+                                   "--cell-volume", "12 cm3", "--u-cell-volume", "0.01 cm3", "--volume", "8 cm3",
+                                   "--u-volume", "0.01 cm3", "--note", "bad \udcff byte"]],
+                         ids=["operator", "sample", "import-note"])
+def test_bytes_that_are_not_utf8_are_refused_where_they_come_in(argv: list[str], tmp_path: Path,
+                                                                capsys: pytest.CaptureFixture[str]) -> None:
+    # the command line hands such bytes over as lone surrogates: a run failed with a UnicodeEncodeError
+    # writing its record and left its catalog row 'running'; an imported note was stored with them
+    with pytest.raises(SystemExit) as exc:
+        cli.main([*argv, "--data", str(tmp_path)])
+    assert exc.value.code == 2
+    assert "not valid UTF-8" in capsys.readouterr().err
+    assert not (tmp_path / "catalog.sqlite").exists()

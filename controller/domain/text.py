@@ -15,8 +15,15 @@ _CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
 _CONTROL_IN_NOTE = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")  # a note may run over lines and hold tabs
 
 
+_SURROGATE = re.compile("[\ud800-\udfff]")  # bytes that were not UTF-8, as the command line passes them
+
+
 def control_problem(text: str, *, note: bool = False) -> str | None:
-    """Why this text is not plain (its first control character and where), or None."""
+    """Why this text is not plain (its first control character and where, or bytes that are not UTF-8),
+    or None."""
+    bad = _SURROGATE.search(text)
+    if bad is not None:  # written to a record, such text failed with a UnicodeEncodeError mid-run
+        return f"is not valid UTF-8 text (a byte that is not UTF-8 at character {bad.start() + 1})"
     m = (_CONTROL_IN_NOTE if note else _CONTROL).search(text)
     if m is None:
         return None
