@@ -167,3 +167,10 @@ def test_a_lab_pressure_or_temperature_with_its_unit_is_taken(capsys):
     b = run_json(capsys, "--cell-volume", "10", "--expansion-volume", "7", "--p1", "1.4", "--p2", "0.58",
                  "--ambient", "1.01325", "--temperature", "22")
     assert a["volume_cm3"] == pytest.approx(b["volume_cm3"], rel=1e-12)
+
+
+@pytest.mark.parametrize("edge", ["-40 degC", "-40", "233.15 K", "80 degC", "176 degF"])
+def test_the_ends_of_a_labs_temperature_range_are_in_it(capsys, edge):
+    # -40 degC came back from the unit conversion as 233.14999999999998 K and was refused (a sweep found it)
+    run_json(capsys, "--cell-volume", "10", "--expansion-volume", "7", "--p1", "1.4", "--p2", "0.58",
+             "--temperature", edge)

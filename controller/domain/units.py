@@ -222,23 +222,29 @@ def lab_pressure_problem(value: Any, pa: float, *, default_unit: str = "bar") ->
     """Why an absolute lab pressure read from ``value`` (``pa`` in Pa) cannot be one, or None.
 
     Why: a bare 1013 meant as hPa is read as 1013 bar, and a bare 295 meant as kelvin as degC; each gave
-    a result with no word of the mistake."""
-    if LAB_PRESSURE[0] <= pa <= LAB_PRESSURE[1]:
+    a result with no word of the mistake.  The ends are in the range (to a micro-pascal: a value given
+    in another unit comes back through a float conversion)."""
+    lo, hi = LAB_PRESSURE
+    if lo - 1e-6 <= pa <= hi + 1e-6:
         return None
-    read = f" (a bare number is {default_unit})" if _bare(value) else ""
-    return (f"{_show(value)} reads as {pa / 1e3:.6g} kPa absolute{read}; a lab's air pressure lies between "
-            f"{LAB_PRESSURE[0] / 1e3:g} and {LAB_PRESSURE[1] / 1e3:g} kPa: give the unit, e.g. '1013 hPa' or "
-            "'101.3 kPa'")
+    return (f"{_show(value)} reads as {pa / 1e3:.7g} kPa absolute{_bare_note(value, default_unit)}; a lab's air "
+            f"pressure lies between {lo / 1e3:g} and {hi / 1e3:g} kPa: "
+            + ("give the unit, e.g. '1013 hPa' or '101.3 kPa'" if _bare(value) else "check the value and its unit"))
 
 
 def lab_temperature_problem(value: Any, kelvin: float, *, default_unit: str = "degC") -> str | None:
-    """Why a lab or gas temperature read from ``value`` (``kelvin``) cannot be one, or None."""
-    if LAB_TEMPERATURE[0] <= kelvin <= LAB_TEMPERATURE[1]:
+    """Why a lab or gas temperature read from ``value`` (``kelvin``) cannot be one, or None (the ends
+    are in the range, to a micro-kelvin: -40 degC comes back as 233.14999999999998 K)."""
+    lo, hi = LAB_TEMPERATURE
+    if lo - 1e-6 <= kelvin <= hi + 1e-6:
         return None
-    read = f" (a bare number is {default_unit})" if _bare(value) else ""
-    return (f"{_show(value)} reads as {kelvin - 273.15:.6g} degC{read}; a lab's temperature lies between "
-            f"{LAB_TEMPERATURE[0] - 273.15:g} and {LAB_TEMPERATURE[1] - 273.15:g} degC: give the unit, e.g. "
-            "'22 degC' or '295.15 K'")
+    return (f"{_show(value)} reads as {kelvin - 273.15:.7g} degC{_bare_note(value, default_unit)}; a lab's "
+            f"temperature lies between {lo - 273.15:g} and {hi - 273.15:g} degC: "
+            + ("give the unit, e.g. '22 degC' or '295.15 K'" if _bare(value) else "check the value and its unit"))
+
+
+def _bare_note(value: Any, default_unit: str) -> str:
+    return f" (a bare number is {default_unit})" if _bare(value) else ""
 
 
 def parse_pressure(value: Any, *, default_unit: str = "bar") -> float:
