@@ -273,6 +273,8 @@ def test_a_kill_or_a_closed_terminal_ends_a_calibration_in_the_safe_state_and_st
     outcome = json.loads(out)
     assert outcome["status"] == "aborted"
     assert signal.Signals(sig).name in outcome["message"]
+    # the aborted step's run is named for the volume it was calibrating only (both named it before)
+    assert sum(" aborted" in (v["reason"] or "") and "run R" in (v["reason"] or "") for v in outcome["volumes"]) <= 1
     con = sqlite3.connect(tmp_path / "catalog.sqlite")
     rows = dict(con.execute("SELECT id, status FROM runs").fetchall())
     assert con.execute("SELECT COUNT(*) FROM calibrations").fetchone()[0] == 0

@@ -148,5 +148,6 @@ def print_outcome(outcome: Any) -> None:
         if o.accepted:
             con.print(f"{o.expansion_volume}: calibration {o.record_id} stored (runs {', '.join(o.run_ids)})",
                       markup=False)
-        else:
-            con.print(f"{o.expansion_volume}: refused: {o.reason}", style="red", markup=False)
+        else:  # 'refused' is the residual test's word; a stopped or faulted calibration was never fitted
+            word = "refused" if outcome.status == "refused" else "not calibrated"
+            con.print(f"{o.expansion_volume}: {word}: {o.reason}", style="red", markup=False)

@@ -387,8 +387,10 @@ def calibrate(
                 run_ids.setdefault(name, []).append(summary["run_id"])
                 if summary["status"] != "completed":
                     why = (summary.get("fault") or {}).get("message") or summary.get("abort_reason") or ""
-                    return CalibrationOutcome(
-                        [VolumeOutcome(n, None, False, f"run {summary['run_id']} {summary['status']}: {why}",
+                    ended = f"run {summary['run_id']} {summary['status']}: {why}"
+                    return CalibrationOutcome(  # the run named only where it ran; the others never got there
+                        [VolumeOutcome(n, None, False, ended if n == name else
+                                       f"the calibration ended at {name}, {sphere.label} ({summary['status']})",
                                        run_ids=run_ids.get(n, [])) for n in names],
                         "fault" if summary["status"] == "fault" else "aborted",
                         f"{name}, {sphere.label}: run {summary['run_id']} ended {summary['status']}: {why}")
