@@ -221,7 +221,7 @@ def load_file(path: str | Path, max_bytes: int = MAX_BYTES, *, collect: list[Pro
 
 def _message(err: dict[str, Any]) -> str:
     loc = ".".join(str(x) for x in err["loc"])
-    msg = err["msg"]
+    msg = err["msg"].removeprefix("Value error, ")  # pydantic's tag on a validator's own sentence
     if err["type"] == "extra_forbidden" and err["loc"]:
         return f"unknown key {err['loc'][-1]!r}"
     if err["type"] == "missing":

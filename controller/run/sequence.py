@@ -525,7 +525,8 @@ def _positioned(doc: Document, exc: ValidationError) -> list[Problem]:
             msg = f"{dotted}: expected one name, got {what}; write a single value, e.g. {dotted.split('.')[-1]}: " \
                   f"{got[0] if isinstance(got, list) and got else 'NAME'}"
         else:
-            msg = f"{dotted}: {err['msg']}" if dotted else err["msg"]
+            text = err["msg"].removeprefix("Value error, ")  # pydantic's tag on a validator's own sentence
+            msg = f"{dotted}: {text}" if dotted else text
         out.append(doc.problem(loc, msg))
     return out
 
