@@ -320,3 +320,44 @@ def test_a_run_killed_before_its_summary_is_analysed_from_its_trace(tmp_path, ca
     assert main(["analyze", folder.name, "--data", str(tmp_path), "--cell-volume", "12 cm^3",
                  "--expansion-volume", "8 cm^3"]) == 0
     assert "INTERRUPTED" in capsys.readouterr().out
+
+
+def _damage(folder: Path, how: str) -> None:
+    meta = folder / "meta.json"
+    if how == "meta cut short":
+        meta.write_text(meta.read_text()[:100])
+    elif how == "meta a list":
+        meta.write_text("[]")
+    elif how in ("cov one number", "negative Vc", "unknown gas"):
+        doc = json.loads(meta.read_text())
+        if how == "cov one number":
+            doc["meta"]["calibration"]["cov"] = [[1]]
+        elif how == "negative Vc":
+            doc["meta"]["calibration"]["vc"] = -1e-5
+        else:
+            doc["meta"]["gas"] = "xenonium"
+        meta.write_text(json.dumps(doc))
+    elif how == "trace garbage":
+        (folder / "trace.csv").write_bytes(bytes(range(256)) * 12)
+        (folder / "trace.npz").unlink(missing_ok=True)
+
+
+@pytest.mark.parametrize("how", ["meta cut short", "meta a list", "cov one number", "negative Vc", "unknown gas",
+                                 "trace garbage"])
+def test_analyze_of_a_damaged_record_is_one_line_naming_it(tmp_path, capsys, how):
+    # found by a sweep: each ended "failed: JSONDecodeError / AttributeError / ValueError / UnknownGas"
+    # (exit 3), and a negative Vc reached the settle maths ("remainder_gain must be a finite factor")
+    _code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
+    folder = tmp_path / "runs" / out["run_id"]
+    (folder / "summary.json").unlink()  # an interrupted run: meta.json is what is read
+    _damage(folder, how)
+    assert main(["analyze", folder.name, "--data", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and "failed" not in err and str(folder) in err, err
+
+
+def test_analyze_refuses_a_negative_volume_uncertainty(tmp_path, capsys):
+    _code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
+    assert main(["analyze", out["run_id"], "--data", str(tmp_path), "--cell-volume", "12 cm3", "--expansion-volume",
+                 "8 cm3", "--u-cell-volume", "-1 cm3"]) == 2  # was taken by its magnitude
+    assert "zero or positive" in capsys.readouterr().err

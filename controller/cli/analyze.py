@@ -123,6 +123,8 @@ def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path
             raise UsageError(f"--cell-volume/--expansion-volume: {exc}") from None
         if vc <= 0 or vr <= 0:
             raise UsageError("--cell-volume/--expansion-volume: volumes must be positive")
+        if not (uc >= 0 and ur >= 0):  # was taken by its magnitude
+            raise UsageError("--u-cell-volume/--u-expansion-volume: an uncertainty is zero or positive")
         return ChamberCalibration(vc, vr, ((uc * uc, 0.0), (0.0, ur * ur)), "command line"), None
     give = ("the chamber volumes: --cell-volume V and --expansion-volume V (their uncertainties with "
             "--u-cell-volume and --u-expansion-volume), or --calibration ID")
@@ -144,6 +146,12 @@ def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path
             "cannot be looked up: there is no catalog beside this run folder"
         return None, f"{give} (the calibration {rec.calibration_id} that meta.json names {why})"
     return _from_record(found), None
+
+
+def _usable(c: ChamberCalibration) -> bool:
+    """Volumes a recomputation can take: positive, finite, with variances zero or positive."""
+    (a, _), (_, d) = c.cov
+    return all(math.isfinite(x) for x in (c.vc, c.vr, a, d)) and c.vc > 0 and c.vr > 0 and a >= 0 and d >= 0
 
 
 def _from_record(found: CalibrationRecord) -> ChamberCalibration:
@@ -171,17 +179,29 @@ def main(args: argparse.Namespace) -> int:
     units = parse_units(args.units)
     root = data_dir(args.data)
     folder = resolve_run_folder(root, args.run)
-    run = load_run(folder, trace_columns=REPLAY_COLUMNS)
-    if run.n_samples == 0:
-        raise UsageError(f"{folder / 'trace.csv'}: the trace has no samples (an empty file, or its header only); "
-                         "there is nothing to analyze")
-    rec = Recorded.from_run(run, folder)
+    try:  # a record damaged or edited by hand: one line naming it, never a traceback
+        run = load_run(folder, trace_columns=REPLAY_COLUMNS)
+        if run.n_samples == 0:
+            raise UsageError(f"{folder / 'trace.csv'}: the trace has no samples (an empty file, or its header "
+                             "only); there is nothing to analyze")
+        rec = Recorded.from_run(run, folder)
+    except (ValueError, KeyError, TypeError, AttributeError) as exc:
+        raise UsageError(f"{folder}: the run's record cannot be read ({type(exc).__name__}: {exc}); its trace.csv, "
+                         "meta.json or summary.json is damaged") from None
     cut = f"{folder}: no summary.json (the run was interrupted before it was written)"
     if rec.instrument is None:
         raise UsageError(f"{cut}, and its meta.json does not keep the instrument's facts a recomputation needs "
                          "(gauge or absolute pressure, the pressure and temperature uncertainties, the barometer): "
                          "it was written before meta.json kept them, and this run cannot be recomputed")
-    chambers, give_chambers = _chambers(args, rec, root, folder)
+    try:
+        chambers, give_chambers = _chambers(args, rec, root, folder)
+    except (ValueError, KeyError, TypeError, AttributeError) as exc:
+        raise UsageError(f"{folder}: the chamber volumes the record keeps cannot be read ({type(exc).__name__}: "
+                         f"{exc}); pass --cell-volume and --expansion-volume, or --calibration ID") from None
+    if chambers is not None and not _usable(chambers):
+        raise UsageError(f"{folder}: the chamber volumes the record keeps are not usable (Vc {chambers.vc!r}, Vr "
+                         f"{chambers.vr!r} m3, covariance {chambers.cov!r}: volumes must be positive, variances "
+                         "zero or positive); pass --cell-volume and --expansion-volume, or --calibration ID")
     give = [g for g in ("the sequence: --sequence FILE (meta.json keeps no sequence text)"
                         if not (args.sequence or rec.sequence_text) else None, give_chambers) if g]
     if give or chambers is None:
@@ -190,6 +210,15 @@ def main(args: argparse.Namespace) -> int:
         sequence_from_text(rec.sequence_text or "", rec.sequence_source)
     inst = rec.instrument
     gas = args.gas or rec.gas or "helium"
+    from pycnoctl.controller.domain.gas import UnknownGas, get_gas
+
+    try:
+        get_gas(gas)
+    except UnknownGas as exc:
+        raise UsageError(f"{'--gas' if args.gas else f'{folder}: the gas the record names'}: {exc}") from None
+    if not all(isinstance(inst.get(k), int | float) for k in ("pressure_u", "temperature_u")):
+        raise UsageError(f"{folder}: the instrument facts the record keeps lack a number for pressure_u or "
+                         "temperature_u; the record is damaged")
     re = reanalyze(run, seq, chambers=chambers, gas=gas, pressure_is_gauge=bool(inst["pressure_is_gauge"]),
                    pressure_u=float(inst["pressure_u"]), temperature_u=float(inst["temperature_u"]),
                    pressure_u_linearity=inst.get("pressure_u_linearity"),
