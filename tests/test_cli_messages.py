@@ -56,3 +56,29 @@ def test_a_vent_tolerance_under_1_pa_is_printed_as_given(tmp_path: Path, capsys:
     assert cli.main(["run", str(seq), "--sim", "--quiet", "--json", "--data", str(tmp_path / "d")]) == 3
     summary = json.loads(capsys.readouterr().out)
     assert "tolerance 0.001 Pa" in summary["fault"]["message"]  # was 'tolerance 0 Pa'
+
+
+def test_a_report_out_place_that_cannot_be_written_is_one_line(data: Path, tmp_path: Path,
+                                                               capsys: pytest.CaptureFixture[str]) -> None:
+    # found by a sweep: each ended "failed: NotADirectoryError / IsADirectoryError" (exit 3)
+    run_id = next((data / "runs").iterdir()).name
+    afile = tmp_path / "afile"
+    afile.write_text("x")
+    (tmp_path / "adir").mkdir()
+    for out in (afile / "r.html", tmp_path / "adir"):
+        assert cli.main(["report", run_id, "--data", str(data), "--out", str(out)]) == 2
+        err = capsys.readouterr().err
+        assert len(err.strip().splitlines()) == 1 and "choose another place" in err, err
+
+
+def test_show_report_beside_the_run_points_to_its_option(data: Path, capsys: pytest.CaptureFixture[str],
+                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    from pycnoctl.controller.record import report
+
+    def refuse(folder: Path, out: Path | None = None) -> Path:
+        raise OSError(errno.EROFS, "refused", str(folder / "report.png"))
+
+    monkeypatch.setattr(report, "render_report", refuse)
+    run_id = next((data / "runs").iterdir()).name
+    assert cli.main(["show", run_id, "--data", str(data), "--report"]) == 6
+    assert "give --report PATH to write it elsewhere" in capsys.readouterr().err

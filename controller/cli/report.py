@@ -45,7 +45,7 @@ def main(args: argparse.Namespace) -> int:
         out = Path(args.out) if args.out else (folder / "report.pdf" if args.pdf else None)
         if args.pdf and out is not None and out.suffix.lower() != ".pdf":
             raise UsageError("--pdf: give an --out FILE ending in .pdf, or none")
-        with _elsewhere_hint(not args.out):  # the default place, beside the run (HTML or PDF)
+        with elsewhere_hint(not args.out):  # the default place, beside the run (HTML or PDF)
             print(render_report(folder, out).absolute())
         return 0
     if args.run:
@@ -61,25 +61,25 @@ def main(args: argparse.Namespace) -> int:
     out = Path(args.out) if args.out else root / "reports" / ("sample-set.pdf" if args.pdf else "sample-set.html")
     if args.pdf and out.suffix.lower() != ".pdf":
         raise UsageError("--pdf: give an --out FILE ending in .pdf, or none")
-    with _elsewhere_hint(not args.out):
+    with elsewhere_hint(not args.out):
         print(render_sample_set(stats, out, title=title).absolute())
     return 0
 
 
 @contextmanager
-def _elsewhere_hint(default_place: bool) -> Iterator[None]:
+def elsewhere_hint(default_place: bool, option: str = "--out FILE") -> Iterator[None]:
     """A report that cannot be written where it goes by default (a data folder on read-only media, an
-    archive copy without write permission) says how to write it elsewhere: the records are still read."""
+    archive copy without write permission) says how to write it elsewhere: the records are still read.
+    One asked for elsewhere (``--out``) that cannot be written there says why, in one line."""
     try:
         yield
     except OSError as exc:
-        if not default_place:
-            raise
         from pycnoctl.controller.record.storagefault import StorageFault, storage_cause
 
         where = f" {exc.filename}" if exc.filename else ""
         cause = storage_cause(exc)
-        text = f"cannot write the report{where} ({cause or exc.strerror or exc}): give --out FILE to write it elsewhere"
+        hint = f"give {option} to write it elsewhere" if default_place else "choose another place"
+        text = f"cannot write the report{where} ({cause or exc.strerror or exc}): {hint}"
         if cause is not None:  # a condition of the machine: exit 6, as every storage fault
             raise StorageFault(text) from exc
         raise UsageError(text) from exc

@@ -37,9 +37,11 @@ def main(args: argparse.Namespace) -> int:
     folder = resolve_run_folder(data_dir(args.data), args.run)
     run = load_run(folder)
     if args.report is not None:
+        from pycnoctl.controller.cli.report import elsewhere_hint
         from pycnoctl.controller.record.report import render_report
 
-        print(render_report(folder, Path(args.report) if args.report else None))
+        with elsewhere_hint(not args.report, option="--report PATH"):
+            print(render_report(folder, Path(args.report) if args.report else None))
         return 0
     if run.summary is None:
         raise UsageError(f"{folder}: the run has no summary yet (still running, or interrupted)")
