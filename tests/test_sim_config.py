@@ -158,3 +158,18 @@ def test_a_pressure_reading_slower_than_the_frozen_limit_is_refused_at_its_line(
             load_sim_config(path)
         [problem] = exc.value.problems
         assert str(problem).startswith(f"{path}:{at}:") and "frozen_after" in str(problem)
+
+
+def test_a_regulator_set_above_the_relief_valve_is_refused_at_its_line(tmp_path):
+    # found by a sweep: a bare 140 (meant as 1.40 bar?) was read as 140 bar gauge, and the run faulted on
+    # the rise-rate interlock without naming the file's line. A failing regulator is the
+    # regulator_failure fault's to simulate, not its setting's
+    text = Path(shipped_configs()["leaky"]).read_text()
+    assert "supply: {set_pressure: 1.4 bar" in text
+    path = tmp_path / "sup.yaml"
+    path.write_text(text.replace("supply: {set_pressure: 1.4 bar", "supply: {set_pressure: 140"))
+    with pytest.raises(ConfigError) as exc:
+        load_sim_config(path)
+    [problem] = exc.value.problems
+    at = 1 + next(i for i, x in enumerate(path.read_text().splitlines()) if x.startswith("supply:"))
+    assert str(problem).startswith(f"{path}:{at}:") and "relief valve" in str(problem)
