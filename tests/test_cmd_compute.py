@@ -104,6 +104,7 @@ def test_human_output(capsys):
         (["--ambient", "14.7"], "--ambient"),  # psi
         (["--temperature", "295"], "--temperature"),
         (["--ta", "-60 degC"], "--ta"),
+        (["--ambient", "1 bar gauge"], "--ambient"),  # absolute by definition (a sweep found it taken)
     ],
 )
 def test_bad_input_is_one_line_exit_2(capsys, args, flag):

@@ -117,6 +117,11 @@ def compute(args: argparse.Namespace) -> dict[str, Any]:
     """Parse the flags and return the result as a plain dict (SI inside, cm^3 and g/cm^3 out)."""
     vc = _parse("--cell-volume", parse_volume, args.cell_volume, positive=True)
     vr = _parse("--expansion-volume", parse_volume, args.expansion_volume, positive=True)
+    try:
+        if parse_pressure_spec(args.ambient)[1] is True:  # '1 bar gauge': gauge against what?
+            raise UsageError(f"--ambient: {args.ambient!r} is tagged gauge; the ambient pressure is absolute")
+    except UnitError:
+        pass  # said by _pressure, below
     pa = _pressure("--ambient", args.ambient, gauge_default=False, ambient=0.0)
     if (problem := lab_pressure_problem(args.ambient, pa)) is not None:
         raise UsageError(f"--ambient: {problem}")
