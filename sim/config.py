@@ -368,15 +368,15 @@ class SimConfig(_Strict):
                     out.append((("nominal", "expansion", name), f"{name!r} is not an expansion volume"))
         for k, f in enumerate(self.faults):
             out.extend(_fault_problems(self, k, f))
-        # a regulator set at or above the relief valve (or beyond the transducer) is a wrong value - a bare
-        # 140 is read as bar - not a failure to simulate: that is the regulator_failure fault's job
-        ceiling, what = (self.relief.set_pressure, "the relief valve's set pressure") if self.relief is not None \
-            else (ins.pressure.full_scale, "the transducer's full scale")
-        if self.supply.set_pressure >= ceiling:
+        # a regulator set at or above the relief valve is a wrong value - a bare 140 is read as bar - not a
+        # failure to simulate: that is the regulator_failure fault's job. (Above a transducer's range is
+        # allowed: an out-of-range reading is a case to simulate.)
+        if self.relief is not None and self.supply.set_pressure >= self.relief.set_pressure:
             out.append((("supply", "set_pressure"),
                         f"supply.set_pressure {self.supply.set_pressure / 1e5:.6g} bar (gauge; a bare number is bar) "
-                        f"is not below {what}, {ceiling / 1e5:.6g} bar: give the regulator's setting; a regulator "
-                        "that fails open is simulated by a fault, not by its setting"))
+                        f"is not below the relief valve's set pressure, {self.relief.set_pressure / 1e5:.6g} bar: "
+                        "give the regulator's setting; a regulator that fails open is simulated by a fault, not "
+                        "by its setting"))
         try:
             limits = self.instrument_limits()
             if self.relief is not None and limits.relief_setting > self.relief.set_pressure:
