@@ -17,6 +17,7 @@ import pytest
 from pycnoctl.controller.cli.main import main
 from pycnoctl.controller.maths.volume import expansion_ratio
 from pycnoctl.controller.record.runfolder import load_run
+from pycnoctl.controller.run.sequence import resolve_sequence
 from pycnoctl.sim.config import shipped_configs
 
 PYCNOCTL = [sys.executable, "-m", "pycnoctl.controller.cli.main"]
@@ -361,3 +362,19 @@ def test_analyze_refuses_a_negative_volume_uncertainty(tmp_path, capsys):
     assert main(["analyze", out["run_id"], "--data", str(tmp_path), "--cell-volume", "12 cm3", "--expansion-volume",
                  "8 cm3", "--u-cell-volume", "-1 cm3"]) == 2  # was taken by its magnitude
     assert "zero or positive" in capsys.readouterr().err
+
+
+def test_analyze_with_windows_too_short_counts_the_fills(tmp_path, capsys):
+    # found by a sweep: with no zero taken no cycle starts, and the notes said "P1 of cycle 0" and
+    # "baseline before fill 1" for every fill
+    _code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
+    text = resolve_sequence("quick-demo").read_text()
+    assert "  window: 4 s" in text
+    seq = tmp_path / "short.yaml"
+    seq.write_text(text.replace("  window: 4 s", "  window: 0.19 s", 1))
+    assert main(["analyze", out["run_id"], "--data", str(tmp_path), "--sequence", str(seq), "--json"]) == 0
+    flags = json.loads(capsys.readouterr().out)["flags"]
+    assert not any("cycle 0" in f for f in flags)
+    assert [f.split(":")[0] for f in flags if f.startswith("baseline")] == \
+        [f"baseline before fill {n}" for n in range(1, 4)]
+    assert any(f.startswith("P1 of fill 1 (no cycle") for f in flags)

@@ -576,6 +576,7 @@ class CycleMeasurer:
         self.notes: list[str] = []  # settles of the zero that never decided
         self.zero: Zero | None = None
         self.current: CycleData | None = None
+        self._fills = 0  # fills begun: a fill whose zero was not taken starts no cycle, but is counted
         self.last: Settled | None = None  # the settle value taken most recently
         self._state: str | None = None
         self._last_t = math.nan
@@ -749,10 +750,12 @@ class CycleMeasurer:
         self._open = False
         if self._state == RunState.BASELINE:
             self.zero = None
-            self.notes.append(f"baseline before fill {len(self.cycles) + 1}: {short}")
+            self.notes.append(f"baseline before fill {self._fills + 1}: {short}")
         else:
             which = "P1" if self._state == RunState.SETTLE_FILLED else "P2"
-            self.notes.append(f"{which} of cycle {len(self.cycles)}: {short}")
+            where = f"of cycle {len(self.cycles)}" if self.current is not None else \
+                f"of fill {self._fills} (no cycle: the zero before it was not taken)"
+            self.notes.append(f"{which} {where}: {short}")
         return True
 
     @property
@@ -947,6 +950,7 @@ class CycleMeasurer:
             self._wall = self._wall_ref = self._amb0 = math.nan
             self._wall_moves, self._wall_check = False, -math.inf
         elif state == RunState.FILL:
+            self._fills += 1
             self.current = None
             self._taus, self._vents = [], []
             self._tw = {"ta": self._zero_tw} if self._zero_tw is not None else {}
@@ -989,7 +993,7 @@ class CycleMeasurer:
             self._took.setdefault(self._state, []).append(det.elapsed)
         if self._state == RunState.BASELINE:
             if timed_out:
-                self.notes.append(f"baseline before fill {len(self.cycles) + 1}: not settled under these rules")
+                self.notes.append(f"baseline before fill {self._fills + 1}: not settled under these rules")
             recent = self._window[-_LAST:]
             temp, n_temps = self._settled_temperature([w[1] for w in recent if math.isfinite(w[1])])
             self._zero_tw = self._settled_weights
