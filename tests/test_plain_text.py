@@ -109,3 +109,15 @@ def test_bytes_that_are_not_utf8_are_refused_where_they_come_in(argv: list[str],
     assert exc.value.code == 2
     assert "not valid UTF-8" in capsys.readouterr().err
     assert not (tmp_path / "catalog.sqlite").exists()
+
+
+def test_a_name_longer_than_the_daemon_allows_is_refused_on_the_command_line(tmp_path: Path,
+                                                                         capsys: pytest.CaptureFixture[str]) -> None:
+    # the daemon's API takes at most 200 characters; the command line took 5000 (a sweep found it)
+    assert cli.main(["run", "quick-demo", "--sim", "--quiet", "--data", str(tmp_path), "--sample", "S" * 200]) == 0
+    with pytest.raises(SystemExit) as exc:
+        cli.main(["run", "quick-demo", "--sim", "--quiet", "--data", str(tmp_path), "--operator", "o" * 201])
+    assert exc.value.code == 2 and "at most 200" in capsys.readouterr().err
+    from pycnoctl.controller.service.schemas import RunRequest
+
+    assert RunRequest.model_json_schema()["properties"]["operator"]["maxLength"] == 200

@@ -18,14 +18,20 @@ from pycnoctl.drivers.instrument import Instrument
 ROLES = ("valves", "pressure", "thermometer", "barometer")
 
 
+#: characters a sample ID or an operator's name may have, as the daemon's API allows
+MAX_NAME = 200
+
+
 def plain_arg(text: str) -> str:
     """An argparse type for a name or ID: plain text (a control character would reach every terminal and
-    CSV that later shows it)."""
+    CSV that later shows it), at most MAX_NAME characters (5000 were taken, and split the runs table)."""
     from pycnoctl.controller.domain.text import control_problem
 
     problem = control_problem(text)
     if problem is not None:
         raise argparse.ArgumentTypeError(problem)
+    if len(text) > MAX_NAME:
+        raise argparse.ArgumentTypeError(f"{len(text)} characters; at most {MAX_NAME}, as the daemon allows")
     return text
 
 
