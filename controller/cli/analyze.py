@@ -229,11 +229,11 @@ def main(args: argparse.Namespace) -> int:
     flags = list(re.flags)
     if seq.expands and not re.cycles:
         flags.append(NO_COMPLETE_CYCLE)
-    from pycnoctl.controller.maths.results import outside_cell
+    from pycnoctl.controller.maths.results import not_a_measurement, outside_cell
 
     impossible = outside_cell(res.volume_m3, res.U_volume_m3, chambers.vc) if res else None
     if impossible:  # as the run says it (exit 7): these volumes give a result no specimen can have
-        flags.append(f"NOT A MEASUREMENT: {impossible}")
+        flags.append(not_a_measurement(impossible))
     out: dict[str, Any] = {
         "run_id": rec.run_id, "interrupted": rec.interrupted, "sequence": seq.name, "gas": gas,
         "chambers": {"vc_cm3": chambers.vc * 1e6, "vr_cm3": chambers.vr * 1e6, "source": chambers.record_id},

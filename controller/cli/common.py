@@ -25,11 +25,7 @@ MAX_NAME = 200
 def plain_arg(text: str) -> str:
     """An argparse type for a name or ID: plain text (a control character would reach every terminal and
     CSV that later shows it), at most MAX_NAME characters (5000 were taken, and split the runs table)."""
-    from pycnoctl.controller.domain.text import control_problem
-
-    problem = control_problem(text)
-    if problem is not None:
-        raise argparse.ArgumentTypeError(problem)
+    _plain_or_refuse(text, note=False)
     if len(text) > MAX_NAME:
         raise argparse.ArgumentTypeError(f"{len(text)} characters; at most {MAX_NAME}, as the daemon allows")
     return text
@@ -37,12 +33,16 @@ def plain_arg(text: str) -> str:
 
 def note_arg(text: str) -> str:
     """An argparse type for a note: plain text apart from line breaks and tabs."""
+    _plain_or_refuse(text, note=True)
+    return text
+
+
+def _plain_or_refuse(text: str, *, note: bool) -> None:
     from pycnoctl.controller.domain.text import control_problem
 
-    problem = control_problem(text, note=True)
+    problem = control_problem(text, note=note)
     if problem is not None:
         raise argparse.ArgumentTypeError(problem)
-    return text
 
 
 def _seed(text: str) -> int:

@@ -98,14 +98,17 @@ def result_lines(summary: dict[str, Any], units: Units, *, simulated: bool | Non
         lines.append(f"fault ({summary['fault'].get('kind')}): {summary['fault'].get('message')}")
     if summary.get("abort_reason"):
         lines.append(f"aborted: {summary['abort_reason']}")
+    from pycnoctl.controller.maths.results import not_a_measurement
+
+    marked = not_a_measurement(summary["impossible"]) if summary.get("impossible") else None
     k = summary.get("k") or 2.0
     if summary.get("volume_cm3") is not None:
         u_std = summary.get("volume_u_std_cm3")
         std = f"; standard u = {u_std:.5f} cm3" if u_std is not None else ""
         lines.append(f"volume:   {summary['volume_cm3']:.5f} cm3 +/- {summary['volume_u_cm3']:.5f} cm3 "
                      f"(expanded U, k = {k:g}, about 95 % coverage{std})")
-        if summary.get("impossible"):
-            lines.append(f"NOT A MEASUREMENT: {summary['impossible']}")
+        if marked:
+            lines.append(marked)
     if summary.get("density_g_cm3") is not None:
         rho, u_rho = summary["density_g_cm3"] * 1e3, (summary.get("density_u_g_cm3") or 0.0) * 1e3
         lines.append(f"density:  {units.rho(rho)} {units.density} +/- {units.rho(u_rho)} {units.density} "
@@ -147,7 +150,7 @@ def result_lines(summary: dict[str, Any], units: Units, *, simulated: bool | Non
     if sim:
         lines.append("SIMULATED: this result came from the gas-system simulator, not from a specimen")
     for w in summary.get("warnings") or []:
-        if not (summary.get("impossible") and w == f"NOT A MEASUREMENT: {summary['impossible']}"):  # said above
+        if w != marked:  # said above, beside the volume
             lines.append(f"warning: {w}")
     return lines
 
@@ -198,8 +201,10 @@ def print_summary(summary: dict[str, Any], folder: Any, units: Units | None = No
         title = f"run {summary.get('run_id')} - {(summary.get('sequence') or {}).get('name', '')}"
         con.print(title)
         print_table(cycle_columns(units), cycle_rows(summary, units), con=con)
+    from pycnoctl.controller.maths.results import NOT_A_MEASUREMENT
+
     for line in result_lines(summary, units, simulated=simulated):
-        style = "bold red" if line.startswith(("fault", "converged: NO", "SIMULATED", "NOT A MEASUREMENT")) else (
+        style = "bold red" if line.startswith(("fault", "converged: NO", "SIMULATED", NOT_A_MEASUREMENT)) else (
             "yellow" if line.startswith("warning") else None)
         con.print(visible(line), style=style, markup=False, highlight=False)
     con.print(f"record: {folder}", markup=False, soft_wrap=True)  # a path is never folded mid-name

@@ -182,7 +182,9 @@ def notes(r: dict[str, Any]) -> str:
 
 def _impossible(r: dict[str, Any]) -> bool:
     """A result no specimen can have (the run exited 7): its catalog row's message says so."""
-    return str(r.get("message") or "").startswith("NOT A MEASUREMENT")
+    from pycnoctl.controller.maths.results import is_not_a_measurement
+
+    return is_not_a_measurement(r.get("message"))
 
 
 def table_rows(rows: list[dict[str, Any]], units: Any) -> list[list[str]]:

@@ -222,29 +222,28 @@ def lab_pressure_problem(value: Any, pa: float, *, default_unit: str = "bar") ->
     """Why an absolute lab pressure read from ``value`` (``pa`` in Pa) cannot be one, or None.
 
     Why: a bare 1013 meant as hPa is read as 1013 bar, and a bare 295 meant as kelvin as degC; each gave
-    a result with no word of the mistake.  The ends are in the range (to a micro-pascal: a value given
-    in another unit comes back through a float conversion)."""
-    lo, hi = LAB_PRESSURE
-    if lo - 1e-6 <= pa <= hi + 1e-6:
-        return None
-    return (f"{_show(value)} reads as {pa / 1e3:.7g} kPa absolute{_bare_note(value, default_unit)}; a lab's air "
-            f"pressure lies between {lo / 1e3:g} and {hi / 1e3:g} kPa: "
-            + ("give the unit, e.g. '1013 hPa' or '101.3 kPa'" if _bare(value) else "check the value and its unit"))
+    a result with no word of the mistake."""
+    return _out_of_lab(value, pa / 1e3, (LAB_PRESSURE[0] / 1e3, LAB_PRESSURE[1] / 1e3), "kPa absolute",
+                       "a lab's air pressure", "kPa", "'1013 hPa' or '101.3 kPa'", default_unit)
 
 
 def lab_temperature_problem(value: Any, kelvin: float, *, default_unit: str = "degC") -> str | None:
-    """Why a lab or gas temperature read from ``value`` (``kelvin``) cannot be one, or None (the ends
-    are in the range, to a micro-kelvin: -40 degC comes back as 233.14999999999998 K)."""
-    lo, hi = LAB_TEMPERATURE
-    if lo - 1e-6 <= kelvin <= hi + 1e-6:
+    """Why a lab or gas temperature read from ``value`` (``kelvin``) cannot be one, or None."""
+    return _out_of_lab(value, kelvin - 273.15, (LAB_TEMPERATURE[0] - 273.15, LAB_TEMPERATURE[1] - 273.15), "degC",
+                       "a lab's temperature", "degC", "'22 degC' or '295.15 K'", default_unit)
+
+
+def _out_of_lab(value: Any, shown: float, bounds: tuple[float, float], read_as: str, what: str, unit: str,
+                example: str, default_unit: str) -> str | None:
+    """The refusal of a value outside what a lab can have, in the unit it is shown in. The ends are in
+    the range, to a millionth (-40 degC comes back from a conversion as 233.14999999999998 K)."""
+    lo, hi = bounds
+    if lo - 1e-6 <= shown <= hi + 1e-6:
         return None
-    return (f"{_show(value)} reads as {kelvin - 273.15:.7g} degC{_bare_note(value, default_unit)}; a lab's "
-            f"temperature lies between {lo - 273.15:g} and {hi - 273.15:g} degC: "
-            + ("give the unit, e.g. '22 degC' or '295.15 K'" if _bare(value) else "check the value and its unit"))
-
-
-def _bare_note(value: Any, default_unit: str) -> str:
-    return f" (a bare number is {default_unit})" if _bare(value) else ""
+    bare = _bare(value)
+    return (f"{_show(value)} reads as {shown:.7g} {read_as}{f' (a bare number is {default_unit})' if bare else ''}; "
+            f"{what} lies between {lo:g} and {hi:g} {unit}: "
+            + (f"give the unit, e.g. {example}" if bare else "check the value and its unit"))
 
 
 def parse_pressure(value: Any, *, default_unit: str = "bar") -> float:

@@ -319,7 +319,7 @@ def summarize(run_id: str, prepared: PreparedRun, engine: RunEngine, instrument:
         impossible = results.outside_cell(res.volume_m3, res.U_volume_m3, cal.vc)
         out["impossible"] = impossible
         if impossible:
-            out["warnings"].append(f"NOT A MEASUREMENT: {impossible}")
+            out["warnings"].append(results.not_a_measurement(impossible))
         if req.bulk_volume and res.volume_m3 > 0:
             from pycnoctl.controller.maths.uncertainty import porosity
 
@@ -471,7 +471,7 @@ def _store(summary: dict[str, Any], done: Outcome, prepared: PreparedRun, record
                 storage_cause(f) for f in failures) else type(failures[0]).__name__)
     req = prepared.request
     message = (summary["fault"] or {}).get("message") or summary["abort_reason"] or (
-        f"NOT A MEASUREMENT: {summary['impossible']}" if summary.get("impossible") else None)
+        results.not_a_measurement(summary["impossible"]) if summary.get("impossible") else None)
     try:
         res = done.result
         catalog.finish_run(run_id, summary["status"], volume_m3=_si(res.volume_m3) if res else None,

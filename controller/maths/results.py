@@ -178,6 +178,21 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
     )
 
 
+#: How a result no specimen can have (outside_cell) is marked wherever it is shown or stored: the summary's
+#: warnings, the catalog row's message, the views; `run` exits 7 for it.
+NOT_A_MEASUREMENT = "NOT A MEASUREMENT"
+
+
+def not_a_measurement(why: str) -> str:
+    """The line that marks a result as no measurement, with why (outside_cell's sentence)."""
+    return f"{NOT_A_MEASUREMENT}: {why}"
+
+
+def is_not_a_measurement(message: object) -> bool:
+    """Whether a stored message (a catalog row's) marks its result as no measurement."""
+    return str(message or "").startswith(NOT_A_MEASUREMENT)
+
+
 def outside_cell(volume: float, expanded_u: float, cell: float) -> str | None:
     """Why a volume cannot be a specimen's (below zero or above the sample cell's volume by more than its
     expanded uncertainty), or None.  Within its U of either end it can: an empty cell measures about

@@ -24,6 +24,7 @@ import jinja2
 import numpy as np
 
 from pycnoctl.controller.domain.states import RunState, StateLook
+from pycnoctl.controller.maths.results import is_not_a_measurement
 from pycnoctl.controller.record.decimate import decimate_minmax
 from pycnoctl.controller.record.runfolder import StoredRun, load_run
 
@@ -350,7 +351,7 @@ def sample_set(catalog: Any, *, prefix: str | None = None, run_ids: Sequence[str
         if r.status != "completed" or r.kind != "measure":
             continue
         g = groups.setdefault(r.sample_id or "", SampleStats(r.sample_id or ""))
-        if str(r.message or "").startswith("NOT A MEASUREMENT"):  # a wrong volume must not move the mean
+        if is_not_a_measurement(r.message):  # a wrong volume must not move the mean
             g.left_out.append(r.id)
             continue
         g.run_ids.append(r.id)

@@ -38,6 +38,7 @@ from typing import Any
 from pycnoctl.controller.domain.yamlio import ConfigError, Problem
 from pycnoctl.controller.jobs.calibration_use import CalibrationRefused, calibration_brief, find_calibration
 from pycnoctl.controller.jobs.measurement import RunFault, RunRequest, execute, prepare, specimen_problem
+from pycnoctl.controller.maths import results
 from pycnoctl.controller.record.catalog import Catalog, is_run_id
 from pycnoctl.controller.record.storagefault import StorageFault
 from pycnoctl.controller.run.control import Controller
@@ -887,7 +888,7 @@ def brief_result(summary: dict[str, Any]) -> dict[str, Any]:
     out = {k: summary.get(k) for k in keys}
     out["sequence"] = (summary.get("sequence") or {}).get("name")
     out["message"] = (summary.get("fault") or {}).get("message") or summary.get("abort_reason") or (
-        f"NOT A MEASUREMENT: {summary['impossible']}" if summary.get("impossible") else None)
+        results.not_a_measurement(summary["impossible"]) if summary.get("impossible") else None)
     out["impossible"] = summary.get("impossible")  # a result no specimen can have: the dashboard says so
     out["warnings"] = list(summary.get("warnings") or [])
     out["converged"] = summary.get("converged")
