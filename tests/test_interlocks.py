@@ -180,14 +180,20 @@ def test_reset_refuses_a_stale_observation():
 # --------------------------------------------------------------------- rise rate
 
 
-def test_regulator_failure_trips_on_first_sample_of_the_surge_before_overpressure():
+@pytest.mark.parametrize("live", [True, False])
+def test_regulator_failure_trips_on_first_sample_of_the_surge_before_overpressure(live):
+    """A live gauge (a few Pa of noise) trips on the surge's first sample; a bit-identical one at rest
+    (the noise-free simulator, a quiet quantised gauge) one sample later: the first step after a hold
+    cannot tell a surge from a slow transducer's update (see the next test).  Both before overpressure."""
     h = Harness()
     k0 = 30
     step = 50e3  # Pa per 0.1 s sample: 5e5 Pa/s, regulator failing toward cylinder pressure
-    samples = [(k * DT, 100e3 + (step * (k - k0 + 1) if k >= k0 else 0.0), FILLING) for k in range(60)]
+    noise = [5.0 * (-1) ** k if live else 0.0 for k in range(60)]
+    samples = [(k * DT, 100e3 + noise[k] + (step * (k - k0 + 1) if k >= k0 else 0.0), FILLING)
+               for k in range(60)]
     idx, trip = h.run(samples)
     assert trip.kind == "rise_rate"
-    assert idx == k0  # 3-point slope of (0, 0, step) is step / (2 dt) = 2.5e5 > 2e5 Pa/s
+    assert idx == (k0 if live else k0 + 1)  # 3-point slope of (0, 0, step) is step / (2 dt) = 2.5e5 > 2e5 Pa/s
     assert samples[idx][1] <= LIMITS.max_pressure  # tripped before the overpressure limit
     assert h.calls == ["act", "trip:rise_rate"]
 
@@ -198,24 +204,60 @@ def test_regulator_failure_trips_on_first_sample_of_the_surge_before_overpressur
 def test_rise_rate_trips_exactly_where_the_regression_over_the_last_samples_exceeds_the_limit(steps, n):
     """The rule skips its regression while every step of the window is under the limit (a least-squares
     slope is a weighted mean of the step slopes, so it cannot exceed their maximum); the first trip must
-    still come exactly where numpy's least-squares slope (np.polyfit, degree 1) of the last n samples
-    first exceeds max_rise_rate.  Random traces with steps well over and under the 2e5 Pa/s limit."""
+    still come exactly where numpy's least-squares slope (np.polyfit, degree 1) first exceeds
+    max_rise_rate, over either of the rule's two views: the last n samples where each of their steps
+    changed the reading, or the last n new readings at the times they first appeared.  Random traces
+    with steps well over and under the 2e5 Pa/s limit; a step of 0 or a clamp holds the reading."""
     mon = InterlockMonitor(LIMITS, ROLES, lambda: True, rise_samples=n)
     t, g = 0.0, 1.0e5
-    ts, gs = [], []
+    ts, gs, new = [], [], []  # every sample, and whether it changed the reading
+    fresh_t, fresh_g = [], []
     expected = got = None
     for i, (dt, dg) in enumerate(steps):
-        t, g = t + dt, min(max(g + dg, 0.0), 2.9e5)  # under max_pressure: only the rise rule can trip
+        t, g_new = t + dt, min(max(g + dg, 0.0), 2.9e5)  # under max_pressure: only the rise rule can trip
+        new.append(not gs or g_new != g)
         ts.append(t)
-        gs.append(g)
-        if expected is None and len(ts) >= n and np.polyfit(ts[-n:], gs[-n:], 1)[0] > LIMITS.max_rise_rate:
-            expected = i
+        gs.append(g_new)
+        if new[-1]:
+            fresh_t.append(t)
+            fresh_g.append(g_new)
+        g = g_new
+        if expected is None:
+            plain = len(ts) >= n and all(new[-(n - 1):]) and \
+                np.polyfit(ts[-n:], gs[-n:], 1)[0] > LIMITS.max_rise_rate
+            held = new[-1] and len(fresh_t) >= n and \
+                np.polyfit(fresh_t[-n:], fresh_g[-n:], 1)[0] > LIMITS.max_rise_rate
+            if plain or held:
+                expected = i
         trip = mon.observe(obs(t, g, CLOSED))
         if trip is not None:
             assume(trip.kind == "rise_rate")  # a rising closed cell may trip the leak rule first: not this test's
             got = i
             break
     assert got == expected
+
+
+@pytest.mark.parametrize("update_period", [1.0, 2.0, 4.0])
+def test_a_transducer_slower_than_the_sampling_is_judged_by_its_new_readings(update_period):
+    """A 1-4 s transducer read every 0.1 s holds its value, then steps by what the pressure moved meanwhile.
+    On a fill rising at 1.5e5 Pa/s (under the 2e5 limit) the held samples' 3-point regression put a
+    whole update's step into 0.2 s (7.5e5 Pa/s and more) and tripped every fill of a simulated 1 Hz
+    gauge; the rate between new readings is the true one.  A regulator failing at 4e5 Pa/s still trips,
+    at the third new reading."""
+    def fill(rate):
+        h = Harness(Limits(max_pressure=9.0e6, relief_setting=9.5e6))  # the rate rule alone
+        samples = []
+        for k in range(int(4 * update_period / DT)):
+            t = k * DT
+            held = math.floor(t / update_period + 1e-9) * update_period  # the last update's time
+            samples.append((t, 1e3 + rate * held, FILLING))
+        return h.run(samples)
+
+    assert fill(1.5e5) == (None, None)
+    idx, trip = fill(4.0e5)
+    assert trip is not None and trip.kind == "rise_rate"
+    assert idx * DT == pytest.approx(2 * update_period)  # readings at 0, 1 and 2 update periods
+    assert trip.value == pytest.approx(4.0e5)
 
 
 # --------------------------------------------------------------------- invalid readings

@@ -230,7 +230,18 @@ class Stale(Rule):
 
 
 class RiseRate(Rule):
-    """Least-squares dP/dt over the last ``rise_samples`` valid samples above ``max_rise_rate``."""
+    """Least-squares dP/dt over the last ``rise_samples`` samples, or new readings, above ``max_rise_rate``.
+
+    A sample that repeats the last raw reading is not a new look at the pressure: a transducer that
+    updates more slowly than it is sampled holds its value, then steps by what the pressure moved
+    meanwhile.  Regressing the held samples puts that step into one sample period (a 1 Hz gauge read
+    at 10 Hz on a 70 kPa/s fill showed 2e5 Pa/s and tripped every fill).  So two views are judged:
+    the new readings, each at the time it first appeared (a held gauge's true rate), and the plain
+    samples only while every step of their window changed the reading (no hold inside it).  The cost:
+    a surge that starts from a bit-identical reading (a quiet, quantised gauge at rest) trips one
+    sample later than the plain samples alone would - the first step after a hold cannot tell a
+    surge from a slow gauge's update; the next sample can.
+    """
 
     kind = "rise_rate"
     fields = ("max_rise_rate",)
@@ -238,32 +249,55 @@ class RiseRate(Rule):
     def __init__(self, limits: Limits, tuning: Tuning) -> None:
         super().__init__(limits, tuning)
         self.n = tuning.rise_samples
-        self.recent: deque[tuple[float, float]] = deque(maxlen=self.n)
-        # below this step-to-step slope a step is calm (the margin keeps rounding out of the argument)
-        self.calm = limits.max_rise_rate * (1.0 - 1e-6)
-        self.calm_steps = 0  # consecutive calm steps up to this sample
+        self.samples = _Window(self.n, limits.max_rise_rate)  # every valid sample
+        self.fresh = _Window(self.n, limits.max_rise_rate)  # new readings at their first appearance
+        self.last_raw: float | None = None
+        self.changes = 0  # consecutive samples, up to this one, that changed the reading
 
     def check(self, obs: Observation, seen: Seen) -> _Condition | None:
-        t, g = seen.t, float(obs.gauge)
-        recent = self.recent
-        if recent:
-            t_prev, g_prev = recent[-1]
-            dt = t - t_prev
-            self.calm_steps = self.calm_steps + 1 if dt > 0 and g - g_prev < self.calm * dt else 0
-        recent.append((t, g))
-        if len(recent) < self.n:
-            return None
-        # The least-squares slope is a weighted mean of the pairwise slopes (weights (tj - ti)^2), and
-        # each pairwise slope a weighted mean of the step slopes between them (weights tj - ti): with
-        # every step of the window calm it cannot exceed the limit, and the regression is not needed.
-        if self.calm_steps >= self.n - 1:
-            return None
-        rate = _slope_pairs(recent)
+        raw, t, g = obs.reading.value, seen.t, float(obs.gauge)
+        new = raw != self.last_raw
+        self.last_raw = raw
+        self.changes = self.changes + 1 if new else 0
+        rate = self.samples.add(t, g)
+        if self.changes < self.n - 1:  # a hold inside the window: its steps are not the pressure's
+            rate = math.nan
+        if new:
+            fresh = self.fresh.add(t, g)
+            if math.isnan(rate) or fresh > rate:
+                rate = fresh
         limit = self.limits.max_rise_rate
         if not (math.isfinite(rate) and rate > limit):
             return None
         return _Condition(self.kind, f"pressure rising at {rate:.6g} Pa/s over {self.n} samples,"
                           f" limit {limit:.6g} Pa/s (phase {obs.phase})", rate, limit)
+
+
+class _Window:
+    """The last n (t, gauge) points and their least-squares slope, computed only when it could matter.
+
+    The least-squares slope is a weighted mean of the pairwise slopes (weights (tj - ti)^2), and each
+    pairwise slope a weighted mean of the step slopes between them (weights tj - ti): with every step
+    of the window calm it cannot exceed the limit, and the regression is not needed.
+    """
+
+    def __init__(self, n: int, limit: float) -> None:
+        self.n = n
+        self.points: deque[tuple[float, float]] = deque(maxlen=n)
+        self.calm = limit * (1.0 - 1e-6)  # the margin keeps rounding out of the argument
+        self.calm_steps = 0  # consecutive calm steps up to the newest point
+
+    def add(self, t: float, g: float) -> float:
+        """Add a point; the window's slope, or nan when it is not full or every step is calm."""
+        points = self.points
+        if points:
+            t_prev, g_prev = points[-1]
+            dt = t - t_prev
+            self.calm_steps = self.calm_steps + 1 if dt > 0 and g - g_prev < self.calm * dt else 0
+        points.append((t, g))
+        if len(points) < self.n or self.calm_steps >= self.n - 1:
+            return math.nan
+        return _slope_pairs(points)
 
 
 class Frozen(Rule):
