@@ -364,16 +364,34 @@ def test_analyze_refuses_a_negative_volume_uncertainty(tmp_path, capsys):
     assert "zero or positive" in capsys.readouterr().err
 
 
-def test_analyze_with_windows_too_short_counts_the_fills(tmp_path, capsys):
+def test_analyze_refuses_a_settle_window_the_trace_cannot_fill(tmp_path, capsys):
+    # found by a sweep: `run` refused such a window, `analyze --sequence` took it and every settle said
+    # "not settled: too few samples", ending with no volume and exit 0
+    _code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
+    text = resolve_sequence("quick-demo").read_text()
+    seq = tmp_path / "short.yaml"
+    seq.write_text(text.replace("  window: 4 s", "  window: 0.19 s", 1))
+    assert main(["analyze", out["run_id"], "--data", str(tmp_path), "--sequence", str(seq)]) == 2
+    err = capsys.readouterr().err
+    line = 1 + text.splitlines().index("  window: 4 s")
+    assert f"short.yaml:{line}:" in err and "holds 2 samples" in err and "at least 0.2 s" in err
+
+
+def test_a_recomputation_with_windows_too_short_counts_the_fills(tmp_path, capsys):
     # found by a sweep: with no zero taken no cycle starts, and the notes said "P1 of cycle 0" and
-    # "baseline before fill 1" for every fill
+    # "baseline before fill 1" for every fill.  (The command line refuses such windows; a settle can
+    # still hold too few samples where readings drop out, so the recomputation itself is asked.)
+    from pycnoctl.controller.domain.gaspath import ChamberCalibration
+    from pycnoctl.controller.record.replay import REPLAY_COLUMNS, reanalyze
+    from pycnoctl.controller.run.sequence import sequence_from_text
+
     _code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
     text = resolve_sequence("quick-demo").read_text()
     assert "  window: 4 s" in text
-    seq = tmp_path / "short.yaml"
-    seq.write_text(text.replace("  window: 4 s", "  window: 0.19 s", 1))
-    assert main(["analyze", out["run_id"], "--data", str(tmp_path), "--sequence", str(seq), "--json"]) == 0
-    flags = json.loads(capsys.readouterr().out)["flags"]
+    seq = sequence_from_text(text.replace("  window: 4 s", "  window: 0.19 s", 1), "short.yaml")
+    run = load_run(tmp_path / "runs" / out["run_id"], trace_columns=REPLAY_COLUMNS)
+    flags = reanalyze(run, seq, chambers=ChamberCalibration(12e-6, 8e-6), gas="helium", pressure_is_gauge=True,
+                      pressure_u=1.0, temperature_u=0.01).flags
     assert not any("cycle 0" in f for f in flags)
     assert [f.split(":")[0] for f in flags if f.startswith("baseline")] == \
         [f"baseline before fill {n}" for n in range(1, 4)]

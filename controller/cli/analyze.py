@@ -35,6 +35,7 @@ if TYPE_CHECKING:  # the modules themselves are imported where they are used, af
     from pycnoctl.controller.domain.gaspath import ChamberCalibration
     from pycnoctl.controller.record.catalog import CalibrationRecord
     from pycnoctl.controller.record.runfolder import StoredRun
+    from pycnoctl.controller.run.sequence import Sequence
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
@@ -169,6 +170,27 @@ def _cov(rows: Any) -> tuple[tuple[float, float], tuple[float, float]]:
     return (float(a), float(b)), (float(c), float(d))
 
 
+def _refuse_short_windows(seq: Sequence, t: Any) -> None:
+    """A settle window the trace's samples cannot fill is refused at its line, as `run` refuses it.
+
+    Without this every settle of the recomputation said "not settled: too few samples" and the
+    command ended with no volume and exit 0.  The sample period is the trace's own (its median step):
+    the record is what the windows are applied to, whatever instrument wrote it."""
+    import numpy as np
+
+    from pycnoctl.controller.domain.yamlio import ConfigError, Problem
+    from pycnoctl.controller.run.sequence import window_rules
+
+    steps = np.diff(np.asarray(t, dtype=float))
+    steps = steps[np.isfinite(steps) & (steps > 0)]
+    if steps.size == 0:
+        return
+    rules = window_rules(seq, float(np.median(steps)))
+    if rules:
+        raise ConfigError([seq.doc.problem(loc, msg) if seq.doc is not None else Problem(seq.name, 1, 1, msg)
+                           for loc, msg in rules])
+
+
 def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.jobs.measurement import data_dir, jsonable
     from pycnoctl.controller.maths.cycle import AmbientModel
@@ -208,6 +230,7 @@ def main(args: argparse.Namespace) -> int:
         raise UsageError(f"{cut}; to analyze its trace, pass {'; and '.join(give)}")
     seq = load_sequence(resolve_sequence(args.sequence)) if args.sequence else \
         sequence_from_text(rec.sequence_text or "", rec.sequence_source)
+    _refuse_short_windows(seq, run.trace["t"])
     inst = rec.instrument
     gas = args.gas or rec.gas or "helium"
     from pycnoctl.controller.domain.gas import UnknownGas, get_gas
