@@ -88,6 +88,30 @@ def test_runs_never_cuts_an_id_or_a_figure(data: Path, capsys: pytest.CaptureFix
         assert "left out to fit 80 columns" in text
 
 
+@pytest.mark.parametrize("width", [80, 100])
+def test_a_long_sample_id_is_folded_and_never_cuts_the_run_ids(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                                                monkeypatch: pytest.MonkeyPatch, width: int) -> None:
+    """A 190-character sample ID (the command line allows 200) took the table's width: rich then split
+    every run ID over two lines and squeezed the status and volume out.  It is folded at its own column's
+    width, every character kept."""
+    long_id = "TILE-" + "0123456789" * 18 + "-END"
+    for sample in ("AL-0417", long_id):
+        assert cli.main(["run", "quick-demo", "--sim", "--sample", sample, "--data", str(tmp_path), "--quiet",
+                         "--json"]) == 0
+    monkeypatch.setenv("COLUMNS", str(width))
+    rows = json.loads(_out(capsys, "runs", "--data", str(tmp_path), "--json"))
+    text = _out(capsys, "runs", "--data", str(tmp_path))
+    assert all(len(line) <= width for line in text.splitlines())
+    for r in rows:
+        assert r["run_id"] in text and f"{r['volume_cm3']:.5f}" in text and "completed" in text
+    # the folded ID, read down its column, is the whole ID
+    start = next(line for line in text.splitlines() if "TILE-" in line).index("TILE-")
+    folded = "".join(line[start:].split(" ")[0] for line in text.splitlines()
+                     if len(line) > start and line[start] != " " and "run" not in line[:start] and
+                     not line.startswith("(") and line[start - 1] == " ")
+    assert long_id in folded
+
+
 @pytest.mark.parametrize("width", [80, 120])
 def test_show_at_terminal_widths(data: Path, capsys: pytest.CaptureFixture[str],
                                  monkeypatch: pytest.MonkeyPatch, width: int) -> None:

@@ -178,14 +178,15 @@ def _list(args: argparse.Namespace, catalog: Any) -> int:
 
         write_csv(rows, CSV_COLUMNS, sys.stdout)
         return 0
-    from pycnoctl.controller.cli.display import Column, console, print_table
+    from pycnoctl.controller.cli.display import NAME_FOLD, Column, console, print_table
 
     con = console()
     if not rows:
         con.print("no calibrations on record" + (f" for instrument {who.identity}" if who else ""), markup=False)
         return 0
-    cols = [Column("id"), Column("use"), Column("created", priority=2), Column("instrument", priority=3),
-            Column("volume"), Column("gas", priority=1), Column("source", priority=4), Column("Vc / cm3", True),
+    cols = [Column("id"), Column("use"), Column("created", priority=2),
+            Column("instrument", priority=3, fold=NAME_FOLD), Column("volume"), Column("gas", priority=1),
+            Column("source", priority=4, fold=NAME_FOLD), Column("Vc / cm3", True),
             Column("u(Vc)", True, 1), Column("Vr / cm3", True), Column("u(Vr)", True, 1),
             Column("retired", priority=5, wrap=True)]
     table = [[r["id"], "*" if r["in_use"] else "", str(r["created"])[:16], r["instrument"] or "(unbound)",

@@ -128,13 +128,13 @@ def compare(docs: list[dict[str, Any]]) -> list[dict[str, Any]]:
 
 # ----------------------------------------------------------------------------------------- people
 def print_comparison(rows: list[dict[str, Any]]) -> None:
-    from pycnoctl.controller.cli.display import Column, console, print_table
+    from pycnoctl.controller.cli.display import NAME_FOLD, Column, console, print_table
 
     def f(x: Any, fmt: str) -> str:
         return "-" if x is None else format(x, fmt)
 
     con = console()
-    cols = [Column("run"), Column("sample", priority=2), Column("volume / cm3", True),
+    cols = [Column("run"), Column("sample", priority=2, fold=NAME_FOLD), Column("volume / cm3", True),
             Column("U / cm3", True), Column("density g/cm3", True, 3), Column("d / cm3", True),
             Column("U(d) / cm3", True), Column("En", True), Column("calibration", priority=4)]
     table = [[r["run_id"] or "-", r["sample_id"] or "-", f(r["volume_cm3"], ".5f"), f(r["U_volume_cm3"], ".5f"),

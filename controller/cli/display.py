@@ -110,33 +110,47 @@ def add_output_args(p: argparse.ArgumentParser, *, what: str) -> None:
 
 
 # ----------------------------------------------------------------------------------------- tables
+#: The columns a typed name (sample ID, sequence, instrument) asks for at most: a generated sample ID
+#: such as 'TILE-2026-0417-B' and a little more fit whole; a 200-character one is folded over lines
+NAME_FOLD = 24
+
+
 class Column(Value):
     """A table column: its header, whether it is numeric (right-aligned) and how much it matters
     (0 = never dropped; higher numbers are dropped first when the terminal is narrow)."""
 
-    _FIELDS = ("header", "numeric", "priority", "wrap")
+    _FIELDS = ("header", "numeric", "priority", "wrap", "fold")
     header: str
     numeric: bool
     priority: int
     wrap: bool  # free text that may wrap between words (never an ID or a figure)
+    # a name typed by a person (a sample ID, up to 200 characters): it asks for at most this many
+    # columns and a longer one is folded over lines, every character kept, so that it cannot crowd
+    # the run IDs and figures out of the table
+    fold: int | None
 
-    def __init__(self, header: str, numeric: bool = False, priority: int = 0, wrap: bool = False) -> None:
+    def __init__(self, header: str, numeric: bool = False, priority: int = 0, wrap: bool = False,
+                 fold: int | None = None) -> None:
         self.header = header
         self.numeric = numeric
         self.priority = priority
         self.wrap = wrap
+        self.fold = fold
 
 
 class Fitted(Value):
     """A table fitted to a width: the columns kept (their indices) and the headers left out."""
 
-    _FIELDS = ("keep", "dropped")
+    _FIELDS = ("keep", "dropped", "widths")
     keep: list[int]
     dropped: list[str]
+    widths: dict[int, int]  # the width each kept column is given (its need, or a folded name's less)
 
-    def __init__(self, keep: list[int], dropped: list[str] | None = None) -> None:
+    def __init__(self, keep: list[int], dropped: list[str] | None = None,
+                 widths: dict[int, int] | None = None) -> None:
         self.keep = keep
         self.dropped = [] if dropped is None else dropped
+        self.widths = {} if widths is None else widths
 
 
 def _cell_width(text: str) -> int:
@@ -161,19 +175,27 @@ def fit_columns(columns: Sequence[Column], rows: Sequence[Sequence[str]], width:
     while total() > width:
         candidates = [i for i in keep if columns[i].priority > 0]
         if not candidates:
-            break  # only essential columns left: they stay whole and the terminal wraps the line
+            break  # only essential columns left
         worst = max(candidates, key=lambda i: (columns[i].priority, i))
         keep.remove(worst)
         dropped.append(columns[worst].header)
-    return Fitted(keep, dropped)
+    # still too wide: a folded name gives up columns (down to its header's longest word, and 8) before
+    # the IDs and figures would be cut; past that the terminal wraps the line
+    for i in keep:
+        if columns[i].fold is not None and total() > width:
+            floor = max([8, *(_cell_width(w) for w in columns[i].header.split())])
+            need[i] = max(min(need[i], floor), need[i] - (total() - width))
+    return Fitted(keep, dropped, {i: need[i] for i in keep})
 
 
 def _need(col: Column, cells: Sequence[str]) -> int:
     """The narrowest a column can be with no value cut: its widest cell (its longest word for wrapping
     text), and the longest word of its header, which wraps."""
     words = [w for c in cells for w in c.split()] if col.wrap else list(cells)
-    words += col.header.split()
-    return max((_cell_width(w) for w in words), default=1)
+    widest = max((_cell_width(w) for w in words), default=1)
+    if col.fold is not None:
+        widest = min(widest, col.fold)
+    return max([widest, *(_cell_width(w) for w in col.header.split())])
 
 
 def console(file: Any = None) -> Any:
@@ -195,10 +217,11 @@ def print_table(columns: Sequence[Column], rows: Sequence[Sequence[str]], *, tit
     table = Table(title=title, box=box.SIMPLE_HEAD, title_justify="left")
     for i in fitted.keep:
         col = columns[i]
-        # as wide as its widest cell, fixed: the header may wrap between words, a value never
-        width = None if col.wrap else _need(col, [r[i] for r in rows])
+        # as wide as its widest cell (a folded name's cap), fixed: the header may wrap between words, a
+        # value never but a folded name
+        width = None if col.wrap else fitted.widths[i]
         table.add_column(col.header, justify="right" if col.numeric else "left", width=width,
-                         min_width=_need(col, [r[i] for r in rows]), overflow="fold")
+                         min_width=fitted.widths[i], overflow="fold")
     for r in rows:
         table.add_row(*(r[i] for i in fitted.keep))
     con.print(table)

@@ -155,9 +155,10 @@ def main(args: argparse.Namespace) -> int:
 
 
 def table_columns(units: Any) -> list[Any]:
-    from pycnoctl.controller.cli.display import Column
+    from pycnoctl.controller.cli.display import NAME_FOLD, Column
 
-    return [Column("run"), Column("created (UTC)", priority=4), Column("sample"), Column("sequence", priority=3),
+    return [Column("run"), Column("created (UTC)", priority=4), Column("sample", fold=NAME_FOLD),
+            Column("sequence", priority=3, fold=NAME_FOLD),
             Column("status"), Column("volume / cm3", True), Column("U / cm3 (k=2)", True, 1),
             Column(f"density / {units.density}", True, 2), Column("notes", priority=5, wrap=True)]
 
