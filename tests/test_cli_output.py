@@ -170,6 +170,22 @@ def test_result_words_for_cycles_left_out_before_the_agreeing_ones() -> None:
     assert [why(c, 0, []) for c in summary["cycles"]] == ["no (warm-up)"] * 2 + ["yes"] * 3
 
 
+def test_result_words_for_a_run_whose_cycles_were_all_left_out() -> None:
+    # noticed in a sweep: such a run said only "(discarded)" per cycle and nothing where the volume goes
+    summary = {"status": "completed", "expansion_volume": "small", "gas": "helium", "k": 2.0,
+               "volume_cm3": None, "n_kept": 0,
+               "sequence": {"parsed": {"cycles": {"discard": 1}}},
+               "cycles": [{"index": 1, "kept": False, "volume_cm3": 5.0, "flags": []},
+                          {"index": 2, "kept": False, "volume_cm3": None, "flags": ["unsettled_p2"]}],
+               "calibration": {"record": None}}
+    text = " ".join("\n".join(result_lines(summary, Units(), simulated=False)).split())
+    assert "volume: NONE - none of the 2 cycles was kept (the cycles table says why each was left out), so " \
+           "this run gives no result" in text
+    assert [why(c, 1, []) for c in summary["cycles"]] == ["no (warm-up)", "no (no volume); unsettled_p2"]
+    summary["status"] = "fault"  # a run that stopped early says why in its fault line instead
+    assert "volume: NONE" not in " ".join(result_lines(summary, Units(), simulated=False))
+
+
 def test_runs_csv_carries_the_record(data: Path, capsys: pytest.CaptureFixture[str]) -> None:
     rows = list(csv.DictReader(io.StringIO(_out(capsys, "runs", "--data", str(data), "--csv"))))
     assert len(rows) == 2

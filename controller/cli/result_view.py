@@ -109,6 +109,9 @@ def result_lines(summary: dict[str, Any], units: Units, *, simulated: bool | Non
                      f"(expanded U, k = {k:g}, about 95 % coverage{std})")
         if marked:
             lines.append(marked)
+    elif status == "completed" and summary.get("cycles"):  # every cycle ended, none counts: no result
+        lines.append(f"volume:   NONE - none of the {len(summary['cycles'])} cycles was kept (the cycles table "
+                     "says why each was left out), so this run gives no result")
     if summary.get("density_g_cm3") is not None:
         rho, u_rho = summary["density_g_cm3"] * 1e3, (summary.get("density_u_g_cm3") or 0.0) * 1e3
         lines.append(f"density:  {units.rho(rho)} {units.density} +/- {units.rho(u_rho)} {units.density} "
