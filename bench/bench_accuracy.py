@@ -18,10 +18,14 @@ realisation (its own simulator seed).  Printed per instrument and pooled:
 - the cycle-to-cycle SD against what the pressure readings' noise alone allows (each kept cycle's
   settle-window regression errors of P1, P2 and the zero, propagated through the volume equation,
   nothing else): the share of the scatter the software's own settling, zeroing and drift handling
-  add on top of the transducer.
+  add on top of the transducer;
+- with --floor, the time to a result against its physical floor: the same runs' instrument time with
+  each settle cut to the moment the instrument's noise-free relaxation came within the pressure error
+  worth 0.05 % of the volume (bench/settle_floor.py; purge, fills and vents as they were).
 
 Targets (issue): pooled coverage >= 95 %, >= 90 % per instrument; |bias| < U/2; random u / SD in
-0.8-1.25; calibrated Vc, Vr within U in >= 95 % of calibrations; cycle SD within 1.5x the noise-only u.
+0.8-1.25; calibrated Vc, Vr within U in >= 95 % of calibrations; cycle SD within 1.5x the noise-only u;
+time to a result within 2x the floor.
 
 How the instruments were chosen: to span what home-built pycnometers are (helium, nitrogen and
 argon; lab 15-30 degC; cells of 12-60 cm^3 with one to three expansion volumes; specimens filling
@@ -31,7 +35,7 @@ whose pressure and temperature drift during the run; an absolute transducer with
 All are invented; none is a shipped config.
 
     python bench/bench_accuracy.py [--quick] [--edges] [--runs N] [--calibrations N] [--jobs N] [--only NAME]
-                                   [--demo-runs N]
+                                   [--demo-runs N] [--floor]
 
 The last line is the time to a result of the shipped grain-volume on the shipped clean and noisy
 simulators (uncalibrated; their nominal volumes are their true ones).
@@ -57,11 +61,14 @@ from pycnoctl.controller.jobs.calibration import SimCellLoader, Sphere, calibrat
 from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
 from pycnoctl.controller.maths.uncertainty import cycle_volume_budget
 from pycnoctl.controller.record.catalog import Catalog
+from pycnoctl.controller.record.runfolder import load_run
 from pycnoctl.controller.run.control import Controller
 from pycnoctl.drivers.simulated import build_sim_instrument
 from pycnoctl.sim.config import SimConfig, check, config_from_dict
 
 ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(Path(__file__).resolve().parent))  # its sibling module, however the bench is started
+from settle_floor import floor_run_seconds, floor_seconds, settle_times  # noqa: E402
 
 
 @dataclasses.dataclass(frozen=True)
@@ -121,8 +128,10 @@ EDGES: tuple[Spec, ...] = (
 )
 
 
-def sim_config(spec: Spec, seed: int, solid_cm3: float) -> SimConfig:
-    """The instrument's simulator config (its truth), built on the shipped clean bench's layout."""
+def sim_config(spec: Spec, seed: int, solid_cm3: float, *, still: bool = False) -> SimConfig:
+    """The instrument's simulator config (its truth), built on the shipped clean bench's layout.
+
+    still: no sensor noise and no lab drift (its physics otherwise the same), for the settle floor."""
     vols = {"cell": {"volume": f"{spec.cell_cm3} cm^3", "thermal_tau": f"{spec.thermal_tau_s} s"}}
     valves: dict[str, Any] = {
         # the metering inlet scaled with the cell, so that a fill takes about as long on every instrument
@@ -155,6 +164,12 @@ def sim_config(spec: Spec, seed: int, solid_cm3: float) -> SimConfig:
         "initial_open": ["vent", *[f"exp_x{i}" for i in range(len(spec.expansions))]],
         "sample_period": "0.1 s",
     }
+    if still:
+        lab.update(pressure_drift="0 Pa/s", temperature_drift="0 K/s")
+        lab.pop("pressure_wave", None)
+        pressure["noise"] = "0 Pa"
+        data["instruments"]["thermometer"]["noise"] = "0 K"
+        data["instruments"]["barometer"]["noise"] = "0 Pa"
     return check(config_from_dict(data))
 
 
@@ -247,11 +262,13 @@ def one_calibration(spec: Spec, cal_index: int, runs: int) -> dict[str, Any]:
             s = execute(prepare(RunRequest(seq, sample_id=f"{spec.name}-{r}"), inst), Controller(inst),
                         root=d / "runs", catalog=cat)
             inst.close()
+            spent, count = settle_times(load_run(d / "runs" / s["run_id"], trace_columns=("t", "state")).trace)
             cyc = [c for c in s["cycles"] if c.get("kept")]
             rep = next((row for row in s.get("budget") or [] if row["kind"] == "repeatability"), None)
             out["runs"].append({
                 "status": s["status"], "truth": truth * 1e6, "v": s["volume_cm3"], "U": s["volume_u_cm3"],
                 "u": s["volume_u_std_cm3"], "n": len(cyc), "time_s": s["instrument_time_s"],
+                "settle_s": spent, "settles": count,
                 "cycle_v": [c["volume_cm3"] for c in cyc],
                 "cycle_u_random": [c["u_random_m3"] * 1e6 for c in cyc],
                 "cycle_u_noise": [_noise_only_u(c, vc_true, vr_true, spec.gas) for c in cyc],
@@ -283,7 +300,7 @@ def _pooled_dof(groups: list[list[float]]) -> int:
     return sum(len(g) - 1 for g in groups if len(g) > 1)
 
 
-def summarise(spec: str, cals: list[dict[str, Any]]) -> dict[str, Any]:
+def summarise(spec: str, cals: list[dict[str, Any]], floor: dict[str, float] | None = None) -> dict[str, Any]:
     runs = [r for c in cals for r in c["runs"] if r["v"] is not None]
     failed = sum(1 for c in cals for r in c["runs"] if r["v"] is None) + sum(1 for c in cals if "cal_message" in c)
     z = [(c["vc_z"], c["vr_z"]) for c in cals if "vc_z" in c]
@@ -312,6 +329,8 @@ def summarise(spec: str, cals: list[dict[str, Any]]) -> dict[str, Any]:
                cycle_u_over_sd=cyc_u / cyc_sd if cyc_sd > 0 else math.nan,
                cycle_sd_over_noise=cyc_sd / cyc_noise if cyc_noise > 0 else math.nan,
                minutes=float(np.mean([r["time_s"] for r in runs])) / 60.0,
+               floor_minutes=float(np.mean([floor_run_seconds(r["time_s"], r["settle_s"], r["settles"], floor)
+                                            for r in runs])) / 60.0 if floor else math.nan,
                warnings=sorted({w.split(":")[0][:60] for r in runs for w in r["warnings"]}))
     return row
 
@@ -336,6 +355,9 @@ def main() -> None:
     ap.add_argument("--all-cycles", action="store_true",
                     help="measurement runs go through all 8 cycles (default: the shipped sequence's rule, which "
                          "stops once the last cycles agree)")
+    ap.add_argument("--floor", action="store_true",
+                    help="also the physical floor of each instrument's settles and the time to a result against "
+                         "it (one noise-free run per instrument, held ten time constants per settle)")
     args = ap.parse_args()
     global SETTLE_RULE, ALL_CYCLES, REMAINDER, WINDOW, EXTRAPOLATE
     SETTLE_RULE = args.drift  # read by the workers, which fork from here
@@ -348,20 +370,28 @@ def main() -> None:
     t0 = time.monotonic()
     tasks = [(s, c) for s in specs for c in range(n_cal)]
     with ProcessPoolExecutor(max_workers=args.jobs) as pool:
+        floors = dict(zip([s.name for s in specs], pool.map(_floor, specs), strict=True)) if args.floor else {}
         done = list(pool.map(one_calibration, [t[0] for t in tasks], [t[1] for t in tasks], [n_run] * len(tasks)))
-    rows = [summarise(s.name, [d for d in done if d["spec"] == s.name]) for s in specs]
+    rows = [summarise(s.name, [d for d in done if d["spec"] == s.name], floors.get(s.name)) for s in specs]
     print(f"== accuracy on {len(specs)} simulated instruments, {n_cal} calibration(s) x {n_run} runs each "
           f"({time.monotonic() - t0:.0f} s wall)")
     head = f"{'instrument':18s} {'bias %':>8s} {'bias/U':>7s} {'SD %':>7s} {'U %':>7s} {'cover':>6s} " \
            f"{'u/SD run':>8s} {'u/SD cyc':>8s} {'SD/noise':>8s} {'cal in U':>8s} {'min/run':>7s}"
-    print(head)
+    print(head + (f" {'floor':>6s} {'x floor':>7s}" if floors else ""))
     for r in rows:
         if "coverage" not in r:
             print(f"{r['instrument']:18s} no result ({r['failed']} failed)")
             continue
+        floor_cols = f" {r['floor_minutes']:6.1f} {r['minutes'] / r['floor_minutes']:7.2f}" if floors else ""
         print(f"{r['instrument']:18s} {r['bias_pct']:+8.4f} {r['bias_over_U']:+7.2f} {r['sd_pct']:7.4f} "
               f"{r['U_pct']:7.4f} {r['coverage']:6.0%} {r['random_u_over_sd']:8.2f} {r['cycle_u_over_sd']:8.2f} "
-              f"{r['cycle_sd_over_noise']:8.2f} {r['cal_within_U']:>4d}/{r['cals']:<3d} {r['minutes']:7.1f}")
+              f"{r['cycle_sd_over_noise']:8.2f} {r['cal_within_U']:>4d}/{r['cals']:<3d} {r['minutes']:7.1f}"
+              + floor_cols)
+    if floors:
+        print("   floor: min/run with each settle cut to the moment its noise-free relaxation came within the "
+              "pressure error worth 0.05 % of the volume (bench/settle_floor.py); zero / P1 / P2 floors s: "
+              + "; ".join(f"{n} {f['baseline']:.0f}/{f['settle_filled']:.0f}/{f['settle_expanded']:.0f}"
+                          for n, f in floors.items()))
     for r in rows:
         print(f"   {r['instrument']}: calibration z(Vc) {r['z_vc']}, z(Vr) {r['z_vr']}, chi-square {r['chi2']}; "
               f"failed {r['failed']}"
@@ -390,6 +420,10 @@ def main() -> None:
         print(_random_u_line(ratios))
     if args.demo_runs > 0 and not args.edges and not args.only:
         print(_demo_line(args.demo_runs))
+
+
+def _floor(spec: Spec) -> dict[str, float]:
+    return floor_seconds(spec, sim_config, _sequence)
 
 
 def demo_run(config: str, seed: int) -> dict[str, float]:
