@@ -34,6 +34,12 @@ log = logging.getLogger(__name__)
 #: thermometer read twice a second has two readings in a second, and a noisy one's means wander
 GAS_THERMOMETER_K = 0.3
 GAS_THERMOMETER_BLOCK = 5.0
+#: A fill in which at least this share of the pressure samples repeat the one before while the pressure
+#: rises HELD_RISE Pa a sample on average holds its readings (RunEngine._watch_held): any transducer whose
+#: resolution is finer than that changes its reading on every sample of such a fill
+HELD_SHARE = 0.4  # a transducer updating every second sample repeats half of them
+HELD_RISE = 100.0
+HELD_MIN_SAMPLES = 20
 
 #: Run states (controller.domain.states.RunState). ``settle_filled`` and ``settle_expanded`` are the two
 #: settles of a cycle; ``baseline`` is the closed, vented system settling to the wall temperature before
@@ -118,6 +124,7 @@ class RunEngine:
         self._warned: set[str] = set()
         self._tblock: tuple[int, float, int] | None = None  # (block, sum, count) of thermometer readings
         self._tmeans = (math.inf, -math.inf)  # the lowest and highest 5-second mean since the fill began
+        self._held = (0, 0, math.nan, math.nan, math.nan)  # this fill's samples, repeats, first/last raw, gauge
         self._purge_pulse = 0
         self._status: SettleStatus | None = None  # the measurer's answer on the current sample
         self.converged_early = False
@@ -222,6 +229,7 @@ class RunEngine:
         return {v: v == self.exp_valve for v in self.roles.expansion.values()}
 
     def on_enter_purge_fill(self) -> None:
+        self._held = (0, 0, math.nan, math.nan, math.nan)
         self._set(**{self.roles.vent: False}, **self._expansions_for_run())
         self._check_supply()
         self._set(**{self.roles.inlet: True})
@@ -259,6 +267,7 @@ class RunEngine:
 
     def on_enter_fill(self) -> None:
         self._tblock, self._tmeans = None, (math.inf, -math.inf)  # _watch_thermometer: this fill's means
+        self._held = (0, 0, math.nan, math.nan, math.nan)
         self.cycle_number += 1
         zero = self.meter.zero
         self.emit("cycle", {"cycle": self.cycle_number, "baseline": zero.value if zero else math.nan})
@@ -294,7 +303,31 @@ class RunEngine:
             self._status = self.meter.take_sample(state, s.t, s.gauge, s.ambient, temp)
             if state in (S.FILL, S.SETTLE_FILLED) and math.isfinite(temp):
                 self._watch_thermometer(s.t, temp)
+            if (state == S.FILL or state == S.PURGE_FILL) and s.pressure.valid:
+                n, repeats, first, last, g0 = self._held
+                self._held = (n + 1, repeats + (s.pressure.value == last), first if n else s.pressure.value,
+                              s.pressure.value, g0 if n else s.gauge)
             step(s)
+
+    def _watch_held(self, gauge: float) -> None:
+        """At a fill's end: a transducer that updates more slowly than it is read holds its reading, then
+        steps.  The settle rules take every sample as a new look at the pressure, so held readings read
+        as steps and as fewer noise-free samples than there are: on the simulator a 1 Hz gauge read every
+        0.1 s never saw its zero settle in 600 s, and a settle taken on such samples states too small an
+        uncertainty.  Refused at the first fill that shows it, naming the cure, before any cycle."""
+        n, repeats, _first, _last, g0 = self._held
+        rise = gauge - g0
+        if n < HELD_MIN_SAMPLES or repeats < HELD_SHARE * n or not rise >= HELD_RISE * n:
+            return
+        dt = self.instrument.sample_period
+        period = (n - 1) * dt / max(n - repeats - 1, 1)  # the first sample of the fill is not a change
+        raise SequenceFault("held_readings", (
+            f"the pressure reading repeated the one before in {repeats} of {n} samples while the fill raised it "
+            f"{rise / 1e3:.3g} kPa: the transducer gives a new reading about every {period:.2g} s but is read "
+            f"every {dt:g} s (or its resolution is coarser than {rise / n:.3g} Pa, the fill's mean rise per "
+            f"sample). Held readings look like steps to the settle rules (a zero that never settles, or a "
+            f"pressure taken with too small an uncertainty). Set the instrument's sample_period to at least "
+            f"{period:.2g} s, or the transducer to a faster output rate"))
 
     def _watch_thermometer(self, t: float, temp: float) -> None:
         """Say once when the thermometer reads the gas rather than the wall: its 5-second means move
@@ -332,6 +365,7 @@ class RunEngine:
     def _step_purge_fill(self, s: Sample) -> None:
         purge = self.seq.purge
         if math.isfinite(s.gauge) and s.gauge >= purge.pressure:
+            self._watch_held(s.gauge)
             self._fire("purge_filled")
         elif self._elapsed() > self.seq.fill.timeout:
             raise SequenceFault("fill_timeout", f"purge pulse did not reach {purge.pressure:.0f} Pa in "
@@ -426,6 +460,7 @@ class RunEngine:
     def _step_fill(self, s: Sample) -> None:
         target = self._fill_target()  # gauge above ambient, as the sequence states it
         if math.isfinite(s.gauge) and s.gauge >= target:
+            self._watch_held(s.gauge)
             cyc = self.current
             if cyc is not None:
                 cyc.fill_s = self._elapsed()

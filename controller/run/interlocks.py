@@ -15,7 +15,8 @@ can trip at all (``armed``, asked only when the valves change).  Adding an inter
 place in ``RULES``, its limit field(s) in ``Limits``.
 
 Engine-raised kinds go through ``trip_external`` with the same order: fill_timeout,
-vent_timeout, valve_command_failed, device_error, exception, write_error, supply_pressure.
+vent_timeout, valve_command_failed, device_error, exception, write_error, supply_pressure,
+held_readings.
 """
 
 from __future__ import annotations
@@ -43,6 +44,7 @@ EXTERNAL_KINDS = (
     "exception",
     "write_error",
     "supply_pressure",
+    "held_readings",
 )
 #: Limits fields read by the engine rather than by a rule on the cell's samples.
 ENGINE_LIMITS = ("max_supply_pressure",)
