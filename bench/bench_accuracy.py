@@ -68,7 +68,7 @@ from pycnoctl.sim.config import SimConfig, check, config_from_dict
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(Path(__file__).resolve().parent))  # its sibling module, however the bench is started
-from settle_floor import floor_run_seconds, floor_seconds, settle_times  # noqa: E402
+from settle_floor import SETTLES, floor_run_seconds, floor_seconds, settle_times  # noqa: E402
 
 
 @dataclasses.dataclass(frozen=True)
@@ -331,6 +331,7 @@ def summarise(spec: str, cals: list[dict[str, Any]], floor: dict[str, float] | N
                minutes=float(np.mean([r["time_s"] for r in runs])) / 60.0,
                floor_minutes=float(np.mean([floor_run_seconds(r["time_s"], r["settle_s"], r["settles"], floor)
                                             for r in runs])) / 60.0 if floor else math.nan,
+               runs_raw=runs,
                warnings=sorted({w.split(":")[0][:60] for r in runs for w in r["warnings"]}))
     return row
 
@@ -392,6 +393,7 @@ def main() -> None:
               "pressure error worth 0.05 % of the volume (bench/settle_floor.py); zero / P1 / P2 floors s: "
               + "; ".join(f"{n} {f['baseline']:.0f}/{f['settle_filled']:.0f}/{f['settle_expanded']:.0f}"
                           for n, f in floors.items()))
+        print(_fixed_wait_line(rows, floors))
     for r in rows:
         print(f"   {r['instrument']}: calibration z(Vc) {r['z_vc']}, z(Vr) {r['z_vr']}, chi-square {r['chi2']}; "
               f"failed {r['failed']}"
@@ -420,6 +422,31 @@ def main() -> None:
         print(_random_u_line(ratios))
     if args.demo_runs > 0 and not args.edges and not args.only:
         print(_demo_line(args.demo_runs))
+
+
+def _fixed_wait_line(rows: list[dict[str, Any]], floors: dict[str, dict[str, float]]) -> str:
+    """The settle rule's time against fixed waits held as long as the floors demand: each instrument's own
+    slowest floor (the shortest fixed wait that reaches 0.05 % there, knowing its physics; a fixed wait that
+    matched the rule's smaller bias would be longer), and the slowest floor of the whole set (one wait for
+    every instrument and specimen, as a lab without an adaptive rule must choose).  Same runs, same
+    purge, fills and vents; only the settles' length changes."""
+    worst = max((f for f in floors.values() if all(math.isfinite(f[k]) for k in SETTLES)),
+                key=lambda f: max(f[k] for k in SETTLES))
+    lab_wait = max(worst[k] for k in SETTLES)
+    own, lab = [], []
+    for r in rows:
+        f = floors.get(r["instrument"])
+        if "runs_raw" not in r or f is None:
+            continue
+        wait = max(f[k] for k in SETTLES)
+        flat = [(rr["time_s"], rr["settle_s"], rr["settles"]) for rr in r["runs_raw"]]
+        t_own = np.mean([floor_run_seconds(t, s, c, dict.fromkeys(SETTLES, wait)) for t, s, c in flat])
+        t_lab = np.mean([floor_run_seconds(t, s, c, dict.fromkeys(SETTLES, lab_wait)) for t, s, c in flat])
+        own.append(f"{r['instrument']} {r['minutes'] * 60 / t_own:.2f}")
+        lab.append(f"{r['minutes'] * 60 / t_lab:.2f}")
+    return ("   the rule's time / a fixed wait's, every settle held for the instrument's own slowest floor: "
+            + "; ".join(own) + f"; held for the set's slowest floor ({lab_wait:.0f} s, one wait for all): "
+            + ", ".join(lab))
 
 
 def _floor(spec: Spec) -> dict[str, float]:
