@@ -63,6 +63,14 @@ def line_of(path: Path, needle: str) -> int:
     ("  unit: kPa\n", "  unit: furlong\n", "unit: furlong", "not a pressure unit"),
     ("large: {channel: 4", "large: {channel: 3", "  valves:", "both on relay 3"),
     ("kind: ascii_gauge", "kind: ascii_gauje", "pressure:", "kind must be"),
+    # found by a sweep: these passed, and an expansion volume on the inlet valve opened the inlet in the
+    # safe state and during the vented zero (a run filled its cell to 1.4 bar there, no interlock tripped)
+    ("expansion: {small: small, large: large}", "expansion: {small: inlet, large: large}", "valve_roles:",
+     "expansion.small: valve 'inlet' is already the inlet valve"),
+    ("expansion: {small: small, large: large}", "expansion: {small: vent, large: large}", "valve_roles:",
+     "expansion.small: valve 'vent' is already the vent valve"),
+    ("expansion: {small: small, large: large}", "expansion: {small: small, large: small}", "valve_roles:",
+     "expansion.large: valve 'small' is already the expansion.small valve"),
 ])
 def test_config_errors_point_at_the_line(tmp_path, old, new, needle, message):
     p = write_variant(tmp_path, old, new)

@@ -10,7 +10,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Annotated, Any
 
-from pydantic import BaseModel, BeforeValidator, ConfigDict, ValidationInfo, field_validator
+from pydantic import BaseModel, BeforeValidator, ConfigDict, ValidationInfo, field_validator, model_validator
 
 from pycnoctl.controller.domain.units import (
     UnitError,
@@ -37,6 +37,22 @@ class ValveRoles(BaseModel):
     vent: str
     expansion: dict[str, str] = {}  # expansion-volume name -> its valve name
     other: tuple[str, ...] = ()
+
+    @model_validator(mode="after")
+    def _one_valve_one_role(self) -> ValveRoles:
+        """Each role its own valve.  Why: an expansion volume mapped to the inlet valve opened the inlet in
+        every phase that opens the expansion volumes - the safe state and the vented zero among them (a
+        run on such a config filled its cell to 1.4 bar during the zero, and no interlock tripped) - and
+        one valve for two volumes measured each with the other's volume open."""
+        taken: dict[str, str] = {self.inlet: "inlet"}
+        wanted = [("vent", self.vent), *((f"expansion.{vol}", valve) for vol, valve in self.expansion.items()),
+                  *((f"other[{i}]", valve) for i, valve in enumerate(self.other))]
+        for role, valve in wanted:
+            if valve in taken:
+                raise ValueError(f"{role}: valve {valve!r} is already the {taken[valve]} valve; each role needs "
+                                 "a valve of its own")
+            taken[valve] = role
+        return self
 
     def safe_state(self) -> dict[str, bool]:
         """Inlet closed, every path to vent open, so no volume holds trapped gas."""
