@@ -137,6 +137,21 @@ def test_a_settle_window_too_short_for_the_sample_period_is_refused_at_submit(cl
     assert daemon.catalog.list_runs() == [] and daemon.catalog.queue_list() == []
 
 
+@pytest.mark.parametrize("how", ["name", "text"])
+def test_a_calibration_sequence_is_refused_as_a_run(client: TestClient, daemon: Daemon, how: str) -> None:
+    """Found by a sweep: submitted as a run it measured the empty cell with the nominal volumes (10 cycles) and
+    stored no calibration, while the operator may have believed the instrument calibrated."""
+    body = {"sequence": "calibration"} if how == "name" else \
+        {"sequence_text": list_shipped()["calibration"].read_text(encoding="utf-8")}
+    r = client.post("/api/runs", json=body)
+    assert r.status_code == 422, r.text
+    assert "calibration sequence (kind: calibrate): run it with pycnoctl calibrate" in r.json()["error"]
+    assert r.json().get("field") == "sequence"
+    assert daemon.catalog.list_runs() == [] and daemon.catalog.queue_list() == []
+    names = client.get("/api/sequences").json()["sequences"]
+    assert "calibration" not in names and {"grain-volume", "quick-demo"} <= set(names)  # nor offered as one
+
+
 @pytest.mark.parametrize("name", ["/etc/passwd", "../sequences/quick-demo", "quick-demo/../x", "catalog.sqlite",
                                   "no-such-sequence"])
 def test_sequence_names_are_never_paths(client: TestClient, name: str) -> None:

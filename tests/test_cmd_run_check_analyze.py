@@ -364,6 +364,13 @@ def test_analyze_refuses_a_negative_volume_uncertainty(tmp_path, capsys):
     assert "zero or positive" in capsys.readouterr().err
 
 
+def test_run_refuses_a_calibration_sequence(tmp_path, capsys):
+    # found by a sweep: it ran as a measurement of the empty cell and stored no calibration (exit 0)
+    assert main(["run", "calibration", "--sim", "--data", str(tmp_path)]) == 2
+    assert "calibration sequence (kind: calibrate): run it with pycnoctl calibrate" in capsys.readouterr().err
+    assert not (tmp_path / "runs").exists()
+
+
 def test_analyze_refuses_a_settle_window_the_trace_cannot_fill(tmp_path, capsys):
     # found by a sweep: `run` refused such a window, `analyze --sequence` took it and every settle said
     # "not settled: too few samples", ending with no volume and exit 0

@@ -752,6 +752,20 @@ def list_shipped() -> dict[str, Path]:
     return dict(sorted(out.items()))
 
 
+def not_for_a_run(seq: Sequence) -> str | None:
+    """Why ``seq`` cannot be a run of its own (None when it can).
+
+    A calibration sequence measures spheres of known volume, one run per sphere, and fits the chamber
+    volumes from all of them: only ``calibrate`` does that.  Started as a run it measured the empty cell
+    with the nominal volumes and stored no calibration (found by a sweep: an operator may then believe
+    the instrument calibrated)."""
+    if seq.kind == "calibrate":
+        return (f"sequence {seq.name!r} is a calibration sequence (kind: calibrate): run it with pycnoctl "
+                "calibrate, which measures each sphere with it and fits and stores the chamber volumes; as a "
+                "run of its own it would store no calibration")
+    return None
+
+
 def resolve_sequence(name_or_path: str | Path) -> Path:
     """An existing file path is used as is; a bare name ('quick-demo' or 'quick-demo.yaml') is shipped."""
     p = Path(name_or_path)

@@ -42,7 +42,7 @@ from pycnoctl.controller.maths import results
 from pycnoctl.controller.record.catalog import Catalog, is_run_id
 from pycnoctl.controller.record.storagefault import StorageFault
 from pycnoctl.controller.run.control import Controller
-from pycnoctl.controller.run.sequence import estimate_duration, list_shipped
+from pycnoctl.controller.run.sequence import estimate_duration, list_shipped, not_for_a_run
 from pycnoctl.drivers.instrument import Instrument
 
 log = logging.getLogger(__name__)
@@ -54,6 +54,10 @@ TRACE_POINTS = 3000  # decimated (t, gauge) points kept for a dashboard that con
 
 #: What a specimen can weigh and occupy in a home-built pycnometer (common practice: cells of about
 #: 1-500 cm^3): a value outside is a unit mistake, refused with the field named.
+
+
+class _NotARun(Exception):
+    """A sequence that is sound but cannot be a run of its own (run.sequence.not_for_a_run)."""
 
 
 class SubmitError(Exception):
@@ -370,6 +374,7 @@ class Daemon:
         # history with its phase shading from it
         self.trace: deque[tuple[float, float | None, str]] = deque(maxlen=TRACE_POINTS)
         self._lock = threading.Lock()
+        self._runnable: list[str] | None = None  # shipped_sequences, read once
         self._commands: deque[_Command] = deque()
         self._wake = threading.Event()
         self._stop = threading.Event()
@@ -584,7 +589,13 @@ class Daemon:
 
     # ------------------------------------------------------------------ queue
     def shipped_sequences(self) -> list[str]:
-        return list(list_shipped())
+        """The shipped sequences a run may name: a calibration sequence is calibrate's (not_for_a_run)."""
+        from pycnoctl.controller.run.sequence import load_sequence
+
+        if self._runnable is None:  # the shipped files do not change while the daemon runs
+            self._runnable = [name for name, path in list_shipped().items()
+                              if not_for_a_run(load_sequence(path)) is None]
+        return list(self._runnable)
 
     def submit(self, *, sequence: str | None = None, sequence_text: str | None = None, sample_id: str = "",
                mass: float | None = None, u_mass: float = 0.0, bulk_volume: float | None = None,
@@ -647,14 +658,19 @@ class Daemon:
                         note=request.get("note") or "")
         try:
             prepared = prepare(rr, self.instrument, self.catalog)
+            why = not_for_a_run(prepared.sequence)
+            if why is not None:
+                raise _NotARun(why)
             if prepared.sequence.kind == "measure":  # no calibration and no stated nominal u: refused now
                 find_calibration(self.instrument, self.catalog, expansion_volume=prepared.expansion_volume,
                                  gas=prepared.sequence.gas)
             return prepared
-        except (ConfigError, ValueError, RecursionError) as exc:
+        except (ConfigError, ValueError, RecursionError, _NotARun) as exc:
             if request.get("sequence") is None:  # submitted text that will never run leaves no file behind
                 with contextlib.suppress(OSError):
                     path.unlink()
+            if isinstance(exc, _NotARun):
+                raise SubmitError(str(exc), field="sequence") from None
             if isinstance(exc, ConfigError):
                 raise SubmitError("the sequence has problems",
                                   [_problem_text(p, path) for p in exc.problems]) from None
