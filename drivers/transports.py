@@ -123,12 +123,20 @@ class SerialTransport(_LineQuery):
         with self.lock:
             if self._port is not None:
                 return
+            # exclusive: a second program (another run, a daemon on another data folder) opening the same
+            # port is refused; shared, two processes drove one relay board (found by a sweep: both runs
+            # faulted 'relays disagree', or, without read-back, one opened the inlet during the other's zero
+            # and the other blamed an inlet leak).  An advisory lock (flock) on a device path; socket://
+            # and loop:// ignore it.
+            kwargs = {"exclusive": True, **self._kwargs}
             try:
                 self._port = serial.serial_for_url(
                     self.url, baudrate=self.baudrate, timeout=self.timeout,
-                    write_timeout=self.timeout, **self._kwargs)
+                    write_timeout=self.timeout, **kwargs)
             except (serial.SerialException, OSError, ValueError) as exc:
-                raise DeviceDisconnected(self.name, f"cannot open {self.url}: {exc}") from exc
+                busy = "exclusively lock" in str(exc)
+                why = "it is in use by another program (another pycnoctl run or daemon?)" if busy else str(exc)
+                raise DeviceDisconnected(self.name, f"cannot open {self.url}: {why}") from exc
             log.debug("%s: opened %s", self.name, self.url)
 
     def reopen(self) -> None:

@@ -50,6 +50,19 @@ def test_cannot_open_is_disconnected(tmp_path):
         SerialTransport(str(tmp_path / "no-such-tty"))
 
 
+def test_a_port_another_program_holds_is_refused_until_it_lets_go():
+    """Found by a sweep: two pycnoctl processes (two data folders) opened one relay board's port and drove
+    its valves at once.  A serial device is now opened exclusively (pyserial's flock on the device path)."""
+    with FakeDevice(GaugeFirmware(ScriptedSensor(1e5)), link="pty") as dev:
+        first = SerialTransport(dev.url, timeout=0.3)
+        with pytest.raises(DeviceDisconnected, match="in use by another program"):
+            SerialTransport(dev.url, timeout=0.3)
+        first.close()
+        second = SerialTransport(dev.url, timeout=0.3)
+        assert second.query(b"P?\n").startswith(b"P ")
+        second.close()
+
+
 def test_closed_port_is_disconnected():
     t = SerialTransport("loop://")
     t.close()
