@@ -24,7 +24,7 @@ from pycnoctl.controller.domain import yamlio
 from pycnoctl.controller.domain.clock import WallClock
 from pycnoctl.controller.domain.devices import PressureSensor, Thermometer, ValveBank
 from pycnoctl.controller.domain.gas import get_gas
-from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles, stale_problem
+from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles, sample_period_problem, stale_problem
 from pycnoctl.controller.domain.text import plain
 from pycnoctl.controller.domain.units import lab_pressure_problem
 from pycnoctl.drivers import registry
@@ -154,6 +154,9 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
                            f"do not match valve_roles.expansion {sorted(roles.expansion)}"))
         if cfg.chambers.cell <= 0 or any(v <= 0 for v in cfg.chambers.expansion.values()):
             errors.append((("chambers",), "volumes must be positive"))
+    short = sample_period_problem(cfg.sample_period)
+    if short is not None:
+        errors.append((("sample_period",), short))
     lim = cfg.limits
     if lim is not None:
         stale = stale_problem(cfg.sample_period, lim.stale_after,

@@ -16,7 +16,7 @@ from typing import Annotated, Any, Literal
 from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
 
 from pycnoctl.controller.domain.gas import get_gas
-from pycnoctl.controller.domain.gaspath import Limits, stale_problem
+from pycnoctl.controller.domain.gaspath import Limits, sample_period_problem, stale_problem
 from pycnoctl.controller.domain.text import plain
 from pycnoctl.controller.domain.units import (
     UnitError,
@@ -377,6 +377,9 @@ class SimConfig(_Strict):
                         f"is not below the relief valve's set pressure, {self.relief.set_pressure / 1e5:.6g} bar: "
                         "give the regulator's setting; a regulator that fails open is simulated by a fault, not "
                         "by its setting"))
+        short = sample_period_problem(self.sample_period)
+        if short is not None:
+            out.append((("sample_period",), short))
         try:
             limits = self.instrument_limits()
             if self.relief is not None and limits.relief_setting > self.relief.set_pressure:

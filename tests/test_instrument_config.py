@@ -65,6 +65,7 @@ def line_of(path: Path, needle: str) -> int:
     ("kind: ascii_gauge", "kind: ascii_gauje", "pressure:", "kind must be"),
     # found by a sweep: these passed, and an expansion volume on the inlet valve opened the inlet in the
     # safe state and during the vented zero (a run filled its cell to 1.4 bar there, no interlock tripped)
+    ("sample_period: 0.1 s", "sample_period: 1 us", "sample_period:", "is shorter than 0.01 s"),
     ("expansion: {small: small, large: large}", "expansion: {small: inlet, large: large}", "valve_roles:",
      "expansion.small: valve 'inlet' is already the inlet valve"),
     ("expansion: {small: small, large: large}", "expansion: {small: vent, large: large}", "valve_roles:",

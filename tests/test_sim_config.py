@@ -121,6 +121,13 @@ def test_a_sample_period_longer_than_the_stale_limit_is_refused_naming_both(tmp_
                          "tick); make sample_period shorter, or limits.stale_after longer (at most 10 s)")
 
 
+@pytest.mark.parametrize("period", ["1 us", "5 ms"])
+def test_a_sample_period_no_transducer_answers_in_is_refused(tmp_path, period):
+    # found by a sweep: 1 us passed the loaders, and check's dry run at it ran for minutes without an end
+    [p] = _problems(tmp_path, BASE + f"sample_period: {period}\n")
+    assert (p.line, p.col) == (9, 1) and "is shorter than 0.01 s" in p.message
+
+
 def test_an_equal_sample_period_is_refused_too(tmp_path):
     # no margin: a sample late by any amount is a gap over the limit
     [p] = _problems(tmp_path, BASE + "sample_period: 0.5 s\nlimits: {stale_after: 0.5 s}\n")

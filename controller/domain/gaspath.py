@@ -245,6 +245,21 @@ class Limits(BaseModel):
         return value
 
 
+#: s: the shortest sample period a config may give.  Every tick reads each device once and writes a trace
+#: row; at 9600 baud one ten-character exchange with a gauge takes about 10 ms, so nothing real answers
+#: faster, and the simulator's dry run (check) at 1 us ran for minutes without an end (found by a sweep).
+MIN_SAMPLE_PERIOD = 0.01
+
+
+def sample_period_problem(sample_period: float) -> str | None:
+    """Why ``sample_period`` is too short to be an instrument's (None when it is not)."""
+    if sample_period >= MIN_SAMPLE_PERIOD:
+        return None
+    return (f"sample_period {sample_period:g} s is shorter than {MIN_SAMPLE_PERIOD:g} s: every sample reads each "
+            "device once and writes a trace row, and no transducer on a serial or network link answers that fast "
+            "(one short exchange at 9600 baud takes about 10 ms); give the period the transducer updates at")
+
+
 def stale_problem(sample_period: float, stale_after: float, *, note: str = "") -> str | None:
     """Why a transducer read every ``sample_period`` s cannot run under the stale-reading limit
     ``limits.stale_after`` of ``stale_after`` s (``note``: where that value comes from, e.g. 'its
