@@ -98,6 +98,9 @@ Duration = Annotated[float, BeforeValidator(_adapter(units.parse_duration))]  # 
 # Pa, bare number = Pa: a few pascals, and a settle block is validated again when its overrides merge
 SmallPressure = Annotated[float, BeforeValidator(_adapter(lambda v: units.parse_pressure(v, default_unit="Pa")))]
 MAX_TIMEOUT = 3600.0  # s: the longest fill or vent time-out that still protects
+# s: the longest a settle may wait.  Beyond four hours what the pressure does is a leak, a specimen taking
+# up gas or a drifting lab, not gas settling; a run given 1e9 s on a drifting lab never ended (a sweep)
+MAX_SETTLE_TIME = 4 * 3600.0
 Volume = Annotated[float, BeforeValidator(_adapter(units.parse_volume))]  # m^3, bare number = cm^3
 Rate = Annotated[float, BeforeValidator(_adapter(units.parse_rate))]  # Pa/s, bare number = Pa/s
 Fraction = Annotated[float, BeforeValidator(_adapter(units.parse_fraction))]  # 1, '0.05 %' = 5e-4
@@ -173,7 +176,7 @@ class Settle(_Strict):
     # the remainder rule, which replaces max_drift when given: Pa of relaxation still to come
     max_remainder: SmallPressure | None = Field(None, gt=0)
     min_time: Duration = Field(5.0, ge=0)
-    max_time: Duration = Field(300.0, gt=0)
+    max_time: Duration = Field(300.0, gt=0, le=MAX_SETTLE_TIME)
     extrapolate: StrictBool = False
     on_timeout: Literal["fault", "accept"] = "fault"
 
@@ -207,7 +210,7 @@ class SettleOverride(_Strict):
     max_drift: DriftLimit | None = None
     max_remainder: SmallPressure | None = Field(None, gt=0)
     min_time: Duration | None = Field(None, ge=0)
-    max_time: Duration | None = Field(None, gt=0)
+    max_time: Duration | None = Field(None, gt=0, le=MAX_SETTLE_TIME)
     extrapolate: StrictBool | None = None
     on_timeout: Literal["fault", "accept"] | None = None
 
@@ -524,11 +527,22 @@ def _positioned(doc: Document, exc: ValidationError) -> list[Problem]:
             what = (f"a list ({', '.join(map(str, got))[:60]})" if isinstance(got, list) else "a mapping of keys")
             msg = f"{dotted}: expected one name, got {what}; write a single value, e.g. {dotted.split('.')[-1]}: " \
                   f"{got[0] if isinstance(got, list) and got else 'NAME'}"
+        elif err["type"] in _BOUNDS and loc and isinstance(err.get("input"), int | float):
+            word, key = _BOUNDS[err["type"]]
+            unit = " s" if loc[-1] in _SECONDS else ""
+            msg = f"{dotted}: {err['input']:g}{unit} must be {word} {err['ctx'][key]:g}{unit}"
         else:
             text = err["msg"].removeprefix("Value error, ")  # pydantic's tag on a validator's own sentence
             msg = f"{dotted}: {text}" if dotted else text
         out.append(doc.problem(loc, msg))
     return out
+
+
+# pydantic's bound errors in words with the unit: 'Input should be less than or equal to 14400' did not say
+# 14400 what (a duration was given in hours or ms, and compared in seconds)
+_BOUNDS = {"less_than_equal": ("at most", "le"), "less_than": ("below", "lt"),
+           "greater_than_equal": ("at least", "ge"), "greater_than": ("above", "gt")}
+_SECONDS = frozenset({"timeout", "max_time", "min_time", "window", "hold", "time"})
 
 
 def _fields_at(loc: Loc) -> list[str]:
