@@ -524,6 +524,10 @@ def test_an_inlet_stuck_open_near_supply_trips_inlet_leak_one_window_after_the_f
     h = Harness()
     _, trip = h.run(_after_fill(lambda t: 10e3 * (1 - math.exp(-t / 4.0))))
     assert trip is not None and trip.kind == "inlet_leak" and "after the fill" in trip.message
+    # and it names the limits that tripped, where to change them (a sweep: a 2 kPa-noisy transducer tripped
+    # this at rest, and nothing said which key governs it)
+    assert trip.message.endswith("; limits: limits.closed_inlet_rise, limits.closed_inlet_window in the "
+                                 "instrument config")
     assert trip.t == pytest.approx(5.0 + LIMITS.closed_inlet_window, abs=0.15)  # one window after
 
 

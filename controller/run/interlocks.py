@@ -491,6 +491,11 @@ class VentTimeout(Rule):
 #: The order in which the rules are asked; the first to trip on an observation wins.
 RULES: tuple[type[Rule], ...] = (InvalidPressurised, Overpressure, Stale, RiseRate, Frozen, InletLeak, VentTimeout)
 SAMPLE_KINDS = tuple(r.kind for r in RULES)
+#: What a trip's message ends with: the instrument-config keys of the limits its rule read.  Why: a
+#: transducer noisier than a limit trips it (2 kPa of noise against the inlet-leak rule's 2 kPa in 5 s
+#: tripped at rest, and a reset was refused), and the message named neither key nor file (a sweep)
+_LIMIT_KEYS = {r.kind: "; limits: " + ", ".join(f"limits.{f}" for f in r.fields) + " in the instrument config"
+               for r in RULES}
 
 
 # -------------------------------------------------------------------------------------- monitor
@@ -680,5 +685,6 @@ class InterlockMonitor:
         for check in checks:
             cond = check(obs, seen)
             if cond is not None:
+                cond.message += _LIMIT_KEYS[cond.kind]
                 return cond
         return None
