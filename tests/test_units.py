@@ -113,6 +113,19 @@ def test_gauge_tags():
     assert u.parse_pressure_spec("1.4 bar(g)") == (pytest.approx(1.4e5), True)
     assert u.parse_pressure_spec("2.4 bar abs") == (pytest.approx(2.4e5), False)
     assert u.parse_pressure_spec("2.4 bar") == (pytest.approx(2.4e5), None)
+    # the trade's glued tags (found by a sweep: '1.3 barg' was an unknown unit); 1 psi = 6894.757 Pa (NIST SP 811)
+    assert u.parse_pressure_spec("1.3 barg") == (pytest.approx(1.3e5), True)
+    assert u.parse_pressure_spec("19 psig") == (pytest.approx(19 * 6894.757, rel=1e-6), True)
+    assert u.parse_pressure_spec("2.3 bara") == (pytest.approx(2.3e5), False)
+    assert u.parse_pressure_spec("1013 mbar") == (pytest.approx(1.013e5), None)
+    assert u.parse_pressure_spec("1.3 Pa") == (pytest.approx(1.3), None)  # 'Pa' is not P + 'a'
+
+
+def test_a_gauge_key_takes_a_gauge_tag_and_refuses_an_absolute_one():
+    assert u.parse_gauge_pressure("1.3 barg") == pytest.approx(1.3e5)
+    assert u.parse_gauge_pressure("1.3 bar gauge") == u.parse_gauge_pressure("1.3") == pytest.approx(1.3e5)
+    with pytest.raises(UnitError, match="tagged absolute, but this pressure is gauge"):
+        u.parse_gauge_pressure("2.3 bara")
 
 
 def test_formatting_round_trip():

@@ -299,8 +299,10 @@ def parse_fraction(value: Any) -> float:
     return parse_quantity(value, "fraction", default_unit="")
 
 
-_GAUGE_SUFFIX = re.compile(r"\s*(?:\((?P<g1>g|gauge|a|abs|absolute)\)|\b(?P<g2>gauge|absolute|abs))\s*$",
-                           re.IGNORECASE)
+# the tag after the unit: '(g)', 'gauge', 'abs', or glued to bar or psi as the trade writes it ('1.3 barg',
+# '19 psia'; a bare '1.3 barg' was an unknown unit with no word that the key is gauge already)
+_GAUGE_SUFFIX = re.compile(r"\s*(?:\((?P<g1>g|gauge|a|abs|absolute)\)|\b(?P<g2>gauge|absolute|abs)|"
+                           r"(?<=bar|psi)(?P<g3>g|a))\s*$", re.IGNORECASE)
 
 
 def parse_pressure_spec(value: Any, *, default_unit: str = "bar") -> tuple[float, bool | None]:
@@ -313,9 +315,19 @@ def parse_pressure_spec(value: Any, *, default_unit: str = "bar") -> tuple[float
     m = _GAUGE_SUFFIX.search(value)
     if not m:
         return parse_pressure(value, default_unit=default_unit), None
-    tag = (m.group("g1") or m.group("g2")).lower()
+    tag = (m.group("g1") or m.group("g2") or m.group("g3")).lower()
     gauge = tag in ("g", "gauge")
     return parse_pressure(value[: m.start()], default_unit=default_unit), gauge
+
+
+def parse_gauge_pressure(value: Any, *, default_unit: str = "bar") -> float:
+    """A pressure above the lab's (Pa), where the key says gauge: a 'gauge' tag is welcome ('1.3 barg'),
+    an absolute one refused, since it would be read as gauge."""
+    pa, gauge = parse_pressure_spec(value, default_unit=default_unit)
+    if gauge is False:
+        raise UnitError(f"{_show(value)} is tagged absolute, but this pressure is gauge (above the lab's "
+                        "pressure): give it as gauge, e.g. '1.3 bar'")
+    return pa
 
 
 def format_quantity(value_si: float, dimension: str, unit: str, *, digits: int = 6) -> str:

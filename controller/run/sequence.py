@@ -93,7 +93,7 @@ def _adapter(parse: Callable[[Any], float]) -> Callable[[Any], float]:
     return convert
 
 
-Pressure = Annotated[float, BeforeValidator(_adapter(units.parse_pressure))]  # Pa, bare number = bar
+Pressure = Annotated[float, BeforeValidator(_adapter(units.parse_gauge_pressure))]  # Pa gauge, bare number = bar
 Duration = Annotated[float, BeforeValidator(_adapter(units.parse_duration))]  # s, bare number = s
 # Pa, bare number = Pa: a few pascals, and a settle block is validated again when its overrides merge
 SmallPressure = Annotated[float, BeforeValidator(_adapter(lambda v: units.parse_pressure(v, default_unit="Pa")))]
