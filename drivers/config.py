@@ -104,6 +104,10 @@ class InstrumentConfig(Strict):
 Finding = tuple[yamlio.Loc, str]
 
 
+#: m^3: the largest chamber volume a config may give (100 litres; the largest cells hold cores of a few litres)
+MAX_CHAMBER = 0.1
+
+
 def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
     errors: list[Finding] = []
     warnings: list[Finding] = []
@@ -152,8 +156,14 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
         if set(roles.expansion) != set(cfg.chambers.expansion):
             errors.append((("chambers", "expansion"), f"expansion volumes {sorted(cfg.chambers.expansion)} "
                            f"do not match valve_roles.expansion {sorted(roles.expansion)}"))
-        if cfg.chambers.cell <= 0 or any(v <= 0 for v in cfg.chambers.expansion.values()):
-            errors.append((("chambers",), "volumes must be positive"))
+        for loc, v in [(("chambers", "cell"), cfg.chambers.cell),
+                       *((("chambers", "expansion", name), v) for name, v in cfg.chambers.expansion.items())]:
+            where = ".".join(loc)
+            if not v > 0:
+                errors.append((loc, f"{where}: a chamber volume must be positive, got {v * 1e6:g} cm^3"))
+            elif v > MAX_CHAMBER:  # '12 m^3' for '12 cm^3' (1e30 cm^3 passed, found by a sweep)
+                errors.append((loc, f"{where}: {v * 1e6:g} cm^3 is more than {MAX_CHAMBER * 1e3:g} litres, "
+                                    "beyond any gas pycnometer's chamber: give the volume in cm^3"))
     short = sample_period_problem(cfg.sample_period)
     if short is not None:
         errors.append((("sample_period",), short))

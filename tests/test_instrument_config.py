@@ -66,6 +66,9 @@ def line_of(path: Path, needle: str) -> int:
     # found by a sweep: these passed, and an expansion volume on the inlet valve opened the inlet in the
     # safe state and during the vented zero (a run filled its cell to 1.4 bar there, no interlock tripped)
     ("sample_period: 0.1 s", "sample_period: 1 us", "sample_period:", "is shorter than 0.01 s"),
+    ("cell: 12.0 cm^3", "cell: -12.0 cm^3", "cell:", "chambers.cell: a chamber volume must be positive"),
+    ("    large: 22.0 cm^3", "    large: 22.0 m^3", "large: 22.0 m^3",
+     "chambers.expansion.large: 2.2e+07 cm^3 is more than 100 litres"),
     ("expansion: {small: small, large: large}", "expansion: {small: inlet, large: large}", "valve_roles:",
      "expansion.small: valve 'inlet' is already the inlet valve"),
     ("expansion: {small: small, large: large}", "expansion: {small: vent, large: large}", "valve_roles:",
