@@ -26,6 +26,8 @@ BAD = [
     ("  closed_inlet_rise: 2.9 bar\n", "below max_pressure"),
     ("  invalid_trip_pressure: -1 kPa\n", "must be above 0"),
     ("  vent_baseline_tolerance: 2.9 bar\n", "below max_pressure"),
+    # a sweep: 170 kPa under a 180 kPa max_pressure passed, and a cell at 1.6 bar counted as vented
+    ("  vent_baseline_tolerance: 170 kPa\n", "at most a tenth of max_pressure"),
     ("  stale_after: forever\n", "not a number with a unit"),
 ]
 

@@ -242,7 +242,17 @@ class Limits(BaseModel):
                 raise ValueError(f"max_pressure {value:.6g} Pa must be below the relief valve's setting "
                                  f"{info.data[above]:.6g} Pa (the software trip comes first)")
             raise ValueError(f"{info.field_name} {value:.6g} Pa must be below max_pressure {info.data[above]:.6g} Pa")
+        if info.field_name == "vent_baseline_tolerance" and value > VENTED_SHARE * info.data[above]:
+            # found by a sweep: 170 kPa under a 180 kPa max_pressure was accepted; a cell at 1.6 bar then
+            # counted as vented (a reset allowed, a vent stuck shut unseen)
+            raise ValueError(f"vent_baseline_tolerance {value:.6g} Pa would call a cell that far above the lab's "
+                             f"pressure vented; it must be at most a tenth of max_pressure "
+                             f"({VENTED_SHARE * info.data[above]:.6g} Pa)")
         return value
+
+
+#: The largest share of max_pressure the vented-baseline tolerance may be (Limits._below)
+VENTED_SHARE = 0.1
 
 
 #: s: the shortest sample period a config may give.  Every tick reads each device once and writes a trace
