@@ -137,3 +137,31 @@ def test_sigkill_mid_run_then_restart(data_dir: Path) -> None:
     assert last == SAFE  # the record ends in the safe state
     with contextlib.suppress(FileNotFoundError):
         (data_dir / "catalog.sqlite-wal").stat()
+
+
+def test_sigterm_after_an_abort_then_restart_stays_paused(data_dir: Path) -> None:
+    """The sweep's case: abort (the queue pauses with a run waiting), SIGTERM, start again: nothing starts."""
+    port = free_port()
+    a = Serve(data_dir, port, speed=20.0)
+    try:
+        first = a.http.post("/api/runs", json={"sequence": "grain-volume"}).json()["run_id"]
+        second = a.http.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
+        a.wait(lambda s: s["current_run"] and s["current_run"]["run_id"] == first)
+        assert a.http.post("/api/abort").status_code == 202
+        a.wait(lambda s: s["queue"]["paused"] and s["current_run"] is None)
+        a.proc.send_signal(signal.SIGTERM)
+        assert a.proc.wait(15) == 0
+    finally:
+        a.close()
+    b = Serve(data_dir, port, speed=20.0)
+    try:
+        time.sleep(1.0)  # every chance to (wrongly) start the waiting run
+        s = b.status()
+        assert s["current_run"] is None and s["queue"]["paused"] and s["queue"]["length"] == 1
+        assert first in s["queue"]["paused_reason"]
+        assert b.http.get(f"/api/runs/{second}").json()["status"] == "queued"
+        b.log.seek(0)
+        said = b.log.read()
+        assert "queue paused:" in said and first in said  # said at start, on stderr
+    finally:
+        b.close()

@@ -104,6 +104,8 @@ def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
             if srv.started:
                 print(f"pycnoctl serve: listening on http://{_url_host(args.host)}:{args.port}/ "
                       f"(instrument {instrument.name}, data {root})", file=sys.stderr, flush=True)
+                for line in _held_on_start(daemon.snapshot()):
+                    print(f"pycnoctl serve: {line}", file=sys.stderr, flush=True)
                 sd_notify("READY=1")
 
         threading.Thread(target=announce, name="announce", daemon=True).start()
@@ -126,6 +128,19 @@ def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
               file=sys.stderr)
         return 1
     return 130 if signal.SIGINT in caught else 0
+
+
+def _held_on_start(snap: dict[str, Any]) -> list[str]:
+    """What keeps the daemon from starting the next run, said once at start (the operator clears it)."""
+    out = []
+    il = snap.get("interlock") or {}
+    if il.get("latched"):
+        out.append(f"interlock {il.get('kind')} latched: {il.get('message')}; "
+                   "an operator reset (pycnoctl reset) clears it")
+    q = snap.get("queue") or {}
+    if q.get("paused"):
+        out.append(f"queue paused: {q.get('paused_reason')}; pycnoctl queue --resume starts it")
+    return out
 
 
 def _url_host(host: str) -> str:

@@ -186,7 +186,8 @@ def _fsync_dir(path: Path) -> None:
         os.close(fd)
 
 
-def _atomic_write(path: Path, data: bytes) -> None:
+def atomic_write(path: Path, data: bytes) -> None:
+    """Replace ``path`` with ``data`` so that a reader or a power loss sees the old file or the new one."""
     tmp = path.with_name(f".{path.name}.tmp")
     with open(tmp, "wb") as fh:
         fh.write(data)
@@ -404,7 +405,7 @@ class RunRecorder:
     def _write_atomic(self, name: str, data: bytes) -> None:
         path = self.folder / name
         try:
-            _atomic_write(path, data)
+            atomic_write(path, data)
         except OSError as exc:
             with contextlib.suppress(OSError):
                 path.with_name(f".{name}.tmp").unlink()

@@ -572,6 +572,18 @@ class InterlockMonitor:
             raise ValueError(f"unknown external trip kind {kind!r}; expected one of {EXTERNAL_KINDS}")
         return self._raise(_Condition(kind, message, value, limit), t)
 
+    def restore_latch(self, kind: str, t: float, message: str, value: float | None = None,
+                      limit: float | None = None) -> Trip:
+        """Latch again a trip that was latched before a restart: only an operator reset may clear it.
+
+        Nothing acts here (whoever made this monitor has just asserted the safe state) and nothing is
+        recorded as a new trip; ``t`` is a time on this process's clock, so a reset can follow it.
+        """
+        trip = Trip(kind, float(t), message, value, limit, self._index, None)
+        self._latched = trip
+        log.error("INTERLOCK %s still latched from before a restart: %s", kind, message)
+        return trip
+
     def reset(self, now_obs: Observation) -> bool:
         """Clear the latch if a fresh observation shows the condition gone. Never restarts anything.
 

@@ -40,6 +40,7 @@ from pycnoctl.controller.jobs.calibration_use import CalibrationRefused, calibra
 from pycnoctl.controller.jobs.measurement import RunFault, RunRequest, execute, prepare, specimen_problem
 from pycnoctl.controller.maths import results
 from pycnoctl.controller.record.catalog import Catalog, is_run_id
+from pycnoctl.controller.record.runfolder import atomic_write
 from pycnoctl.controller.record.storagefault import StorageFault
 from pycnoctl.controller.run.control import Controller
 from pycnoctl.controller.run.sequence import estimate_duration, list_shipped, not_for_a_run
@@ -349,6 +350,32 @@ def describe_instrument(instrument: Instrument) -> dict[str, Any]:
     }
 
 
+STATE_FILE = "daemon-state.json"  # the queue's pause and the interlock latch, kept over a restart
+_BEFORE_RESTART = "before the daemon restarted: "
+
+
+def load_daemon_state(path: Path) -> tuple[dict[str, Any], str | None]:
+    """The saved pause and latch, and a problem when the file is there but cannot be trusted.
+
+    A missing file is a first start (nothing saved); anything unreadable is reported, and the caller
+    starts paused, because what it said is not known.
+    """
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        return {}, None
+    except OSError as exc:
+        return {}, f"{type(exc).__name__}: {exc.strerror or exc}"
+    try:
+        state = json.loads(raw)
+    except (ValueError, UnicodeDecodeError) as exc:
+        return {}, f"not JSON ({type(exc).__name__})"
+    if not isinstance(state, dict) or state.get("version") != 1 or not isinstance(state.get("paused"), bool) \
+            or not (state.get("latched") is None or isinstance(state.get("latched"), dict)):
+        return {}, "not a version 1 state"
+    return state, None
+
+
 @dataclasses.dataclass
 class _Command:
     fn: Callable[[Controller], Any]
@@ -395,6 +422,10 @@ class Daemon:
         self.controller.listeners.append(self._on_event)
         interrupted = self.catalog.mark_interrupted_on_startup()
         orphans = self._orphaned_queued()
+        self._state_lock = threading.Lock()  # one writer of the saved queue state at a time
+        self._saved_state: dict[str, Any] | None = None
+        saved, state_problem = load_daemon_state(self.data / STATE_FILE)
+        self._saved_state = saved
         self._snap: dict[str, Any] = {
             "state": "idle",
             "activity": "starting",
@@ -405,18 +436,41 @@ class Daemon:
             "interlock": {"latched": False},
             "current_run": None,
             "last_run": None,
-            "queue": {"length": 0, "paused": bool(interrupted or orphans), "paused_reason": None},
+            "queue": {"length": 0, "paused": False, "paused_reason": None},
             "interrupted_on_start": interrupted + orphans,
         }
+        reasons: list[str] = []
         if interrupted or orphans:
-            self._snap["queue"]["paused_reason"] = (
-                f"run {', '.join(interrupted + orphans)} was interrupted when the daemon stopped; "
-                "it is not resumed - check the instrument, then resume the queue")
+            reasons.append(f"run {', '.join(interrupted + orphans)} was interrupted when the daemon stopped; "
+                           "it is not resumed - check the instrument, then resume the queue")
             log.warning("runs interrupted by the previous daemon: %s; queue paused",
                         ", ".join(interrupted + orphans),
                         extra={"data": {"event": "interrupted_on_start", "runs": interrupted + orphans}})
+        if state_problem is not None:
+            reasons.append(f"the saved queue state ({STATE_FILE}) is damaged: {state_problem}; paused to be safe - "
+                           "check the instrument and reset any interlock, then resume the queue")
+        if saved.get("paused"):
+            why = str(saved.get("paused_reason") or "paused by the operator")
+            reasons.append(why if why.startswith(_BEFORE_RESTART) else _BEFORE_RESTART + why)
+        latch = saved.get("latched")
+        if isinstance(latch, dict):
+            trip = self.controller.monitor.restore_latch(
+                str(latch.get("kind") or "unknown"), self.instrument.clock.now(),
+                str(latch.get("message") or ""), _num(latch.get("value")), _num(latch.get("limit")))
+            self._refresh_interlock(save=False)
+            log.warning("interlock %s latched before the restart is still latched: %s; an operator reset clears it",
+                        trip.kind, trip.message, extra={"data": {"event": "latched_on_start", "interlock": trip.kind}})
+        waiting = len(self.catalog.queue_list())
+        if waiting and not reasons:  # no run starts after a restart without an operator's go-ahead
+            reasons.append(f"{waiting} run{'s' if waiting != 1 else ''} waiting from before the daemon restarted; "
+                           "resume the queue to start them")
+        if reasons:
+            self._snap["queue"].update(paused=True, paused_reason="; ".join(reasons))
+            log.warning("queue paused on start: %s", "; ".join(reasons),
+                        extra={"data": {"event": "paused_on_start"}})
         log.info("safe state asserted on start", extra={"data": {"event": "safe_state", "why": "start"}})
         self._refresh_queue_len()
+        self._save_state()
 
     def _orphaned_queued(self) -> list[str]:
         """Runs still 'queued' but gone from the queue table (popped just before a crash): interrupted."""
@@ -450,7 +504,7 @@ class Daemon:
 
     def _main(self) -> None:
         try:
-            self._set(activity="idle")
+            self._set(activity="tripped" if self.controller.monitor.latched is not None else "idle")
             while not self._stop.is_set():
                 self._drain_commands()
                 if self._next_run_allowed():
@@ -577,12 +631,14 @@ class Daemon:
         with self._lock:
             self._snap["queue"]["paused"] = True
             self._snap["queue"]["paused_reason"] = reason
+        self._save_state()
         self.bus.publish("queue", self._queue_event())
 
     def resume(self) -> None:
         with self._lock:
             self._snap["queue"]["paused"] = False
             self._snap["queue"]["paused_reason"] = None
+        self._save_state()
         log.info("queue resumed", extra={"data": {"event": "queue_resume"}})
         self.bus.publish("queue", self._queue_event())
         self._wake.set()
@@ -858,7 +914,7 @@ class Daemon:
             self.bus.publish("sample", {"t": t, "gauge_pa": gauge, "valid": data.get("valid"),
                                         "state": data.get("state"), "valves": dict(data.get("valves") or {})})
 
-    def _refresh_interlock(self) -> None:
+    def _refresh_interlock(self, *, save: bool = True) -> None:
         trip = self.controller.monitor.latched
         info: dict[str, Any] = {"latched": trip is not None}
         if trip is not None:
@@ -870,6 +926,33 @@ class Daemon:
                 self._snap["activity"] = "tripped"
             elif trip is None and self._snap["activity"] == "tripped":
                 self._snap["activity"] = "idle"
+        if save:
+            self._save_state()
+
+    # ------------------------------------------------------------------ saved queue state
+    def _save_state(self) -> None:
+        """Write the pause and the latch to the data folder when they changed, so a restart keeps them.
+
+        Never raises: a state that cannot be written is logged, and the daemon goes on with it in memory
+        (the next start then finds the runs waiting and comes up paused all the same).
+        """
+        with self._state_lock:
+            with self._lock:
+                q = self._snap["queue"]
+                il = self._snap["interlock"]
+                state: dict[str, Any] = {
+                    "version": 1, "paused": bool(q["paused"]), "paused_reason": q["paused_reason"],
+                    "latched": ({k: il.get(k) for k in ("kind", "message", "value", "limit")}
+                                if il.get("latched") else None)}
+            if state == self._saved_state:
+                return
+            try:
+                atomic_write(self.data / STATE_FILE, (json.dumps(state, indent=1) + "\n").encode("utf-8"))
+            except Exception as exc:
+                log.error("queue state not saved: %s: %s", type(exc).__name__, exc,
+                          extra={"data": {"event": "state_not_saved"}})
+                return
+            self._saved_state = state
 
     # ------------------------------------------------------------------ snapshot
     def _set(self, **kv: Any) -> None:

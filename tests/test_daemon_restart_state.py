@@ -1,0 +1,147 @@
+"""A clean restart (the daemon stopped as on SIGTERM, then started again on the same data folder) keeps
+what an operator must clear: a latched interlock and a paused queue.  A daemon that finds runs
+waiting from before its restart starts none of them until the operator resumes the queue.
+
+In process, on the simulator's clock: ``Daemon.stop`` is what ``serve`` runs on SIGTERM.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+
+import pytest
+
+from pycnoctl.controller.service.daemon import Daemon, attach_json_log
+from pycnoctl.drivers.instrument import Instrument
+from pycnoctl.drivers.simulated import build_sim_instrument
+
+STATE_FILE = "daemon-state.json"  # where the daemon keeps its pause and latch (daemon.STATE_FILE)
+QUICK = Path(__file__).parents[1] / "sequences" / "quick-demo.yaml"
+
+
+class Started:
+    """Daemons made on one data folder, each stopped (safe state) and closed at the end."""
+
+    def __init__(self, data: Path) -> None:
+        self.data = data
+        self.made: list[tuple[Daemon, Instrument]] = []
+
+    def __call__(self, *, start: bool = True) -> Daemon:
+        inst = build_sim_instrument(None)
+        d = Daemon(inst, self.data)
+        self.made.append((d, inst))
+        if start:
+            d.start()
+        return d
+
+    def stop(self, d: Daemon) -> None:
+        d.stop()
+        d.catalog.close()
+
+    def close(self) -> None:
+        for d, inst in self.made:
+            if d.running:
+                d.stop()
+            d.catalog.close()
+            inst.close()
+
+
+@pytest.fixture
+def daemons(tmp_path: Path) -> Iterator[Started]:
+    s = Started(tmp_path / "data")
+    try:
+        yield s
+    finally:
+        s.close()
+
+
+def wait_for(pred: Callable[[], bool], timeout: float = 10.0) -> None:
+    t_end = time.monotonic() + timeout
+    while not pred():
+        if time.monotonic() > t_end:
+            raise AssertionError("condition not met in time")
+        time.sleep(0.02)
+
+
+def test_a_latch_and_a_pause_survive_a_clean_restart(daemons: Started) -> None:
+    a = daemons()
+    text = QUICK.read_text().replace("timeout: 30 s\n  overshoot", "timeout: 0.5 s\n  overshoot")  # fill faults
+    first = a.submit(sequence_text=text)["run_id"]
+    second = a.submit(sequence="quick-demo")["run_id"]
+    wait_for(lambda: a.catalog.get_run(first).status == "fault")
+    wait_for(lambda: a.snapshot()["queue"]["paused"] and a.snapshot()["interlock"]["latched"])
+    kind = a.snapshot()["interlock"]["kind"]
+    daemons.stop(a)
+
+    handler = attach_json_log(daemons.data / "daemon.log.jsonl")  # as serve does
+    try:
+        b = daemons()
+    finally:
+        logging.getLogger("pycnoctl").removeHandler(handler)
+        handler.close()
+    s = b.snapshot()
+    assert s["interlock"]["latched"] and s["interlock"]["kind"] == kind
+    assert s["queue"]["paused"] and first in s["queue"]["paused_reason"]
+    assert "before the daemon restarted" in s["queue"]["paused_reason"]
+    time.sleep(0.5)  # every chance to (wrongly) start the waiting run
+    assert b.catalog.get_run(second).status == "queued" and b.snapshot()["current_run"] is None
+    assert b.snapshot()["activity"] == "tripped"
+    said = [json.loads(x) for x in (daemons.data / "daemon.log.jsonl").read_text().splitlines()]
+    assert any(x.get("event") == "latched_on_start" and x.get("interlock") == kind for x in said)
+    assert any(x.get("event") == "paused_on_start" and first in x["message"] for x in said)
+
+    # the operator resets (the simulator is vented) and resumes: only then does the next run start
+    ok, why = b.submit_reset().result(5)
+    assert ok, why
+    assert not b.snapshot()["interlock"]["latched"]
+    time.sleep(0.3)
+    assert b.catalog.get_run(second).status == "queued"  # a reset never starts anything
+    b.resume()
+    wait_for(lambda: b.catalog.get_run(second).status not in ("queued",))
+
+
+def test_the_operators_pause_survives_a_clean_restart_with_an_empty_queue(daemons: Started) -> None:
+    a = daemons()
+    a.pause()
+    daemons.stop(a)
+    b = daemons()
+    s = b.snapshot()
+    assert s["queue"]["paused"] and "paused by the operator" in s["queue"]["paused_reason"]
+    b.submit(sequence="quick-demo")  # queued after the restart: still waits for the operator
+    time.sleep(0.5)
+    assert b.snapshot()["current_run"] is None and b.snapshot()["queue"]["length"] == 1
+    b.resume()
+    daemons.stop(b)
+    c = daemons(start=False)
+    # resumed before the stop, but a run is waiting from before this start: paused all the same
+    s = c.snapshot()
+    assert s["queue"]["paused"] and "1 run waiting from before the daemon restarted" in s["queue"]["paused_reason"]
+
+
+def test_an_abort_then_a_clean_restart_starts_nothing(daemons: Started) -> None:
+    a = daemons()
+    first = a.submit(sequence="quick-demo")["run_id"]
+    second = a.submit(sequence="quick-demo")["run_id"]
+    wait_for(lambda: a.snapshot()["current_run"] is not None)
+    assert a.abort()
+    wait_for(lambda: a.catalog.get_run(first).status == "aborted")
+    wait_for(lambda: a.snapshot()["queue"]["paused"])
+    daemons.stop(a)
+    b = daemons()
+    time.sleep(0.5)
+    s = b.snapshot()
+    assert s["queue"]["paused"] and first in s["queue"]["paused_reason"]
+    assert s["current_run"] is None and b.catalog.get_run(second).status == "queued"
+
+
+def test_a_damaged_state_file_starts_paused(daemons: Started) -> None:
+    daemons.data.mkdir(parents=True)
+    (daemons.data / STATE_FILE).write_text('{"version": 1, "paus')
+    b = daemons(start=False)
+    s = b.snapshot()
+    assert s["queue"]["paused"] and STATE_FILE in s["queue"]["paused_reason"]
+    assert "damaged" in s["queue"]["paused_reason"]
