@@ -133,6 +133,11 @@ def test_sigkill_mid_run_then_restart(data_dir: Path) -> None:
         b.close()
     stored = load_run(data_dir / "runs" / second)
     assert stored.summary is not None and stored.summary["results"]["status"] == "aborted"
+    # the record says the daemon's shutdown stopped it, not an operator who asked nothing
+    assert stored.summary["results"]["abort_reason"] == "the daemon shut down on SIGTERM"
+    log_lines = [json.loads(x) for x in (data_dir / "daemon.log.jsonl").read_text().splitlines()]
+    stops = [x for x in log_lines if x.get("event") == "safe_state" and x.get("why") == "stop"]
+    assert stops and "SIGTERM" in stops[-1]["message"]
     last = {v: bool(stored.trace[f"valve_{v}"][-1]) for v in SAFE}
     assert last == SAFE  # the record ends in the safe state
     with contextlib.suppress(FileNotFoundError):

@@ -115,7 +115,7 @@ def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
             previous[sig] = signal.signal(sig, lambda signum, frame: caught.append(signum))
         srv.run()
         close_workers(app)
-        daemon.stop()
+        daemon.stop(reason=_shutdown_reason(caught, failure.get("exc")))
         daemon.catalog.close()
     finally:
         instrument.close()  # safe state, then release the devices
@@ -128,6 +128,16 @@ def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
               file=sys.stderr)
         return 1
     return 130 if signal.SIGINT in caught else 0
+
+
+def _shutdown_reason(caught: list[int], failed: BaseException | None) -> str:
+    """Why the daemon stops, for an active run's abort reason and the log: the signal, else the failure."""
+    if caught:
+        name = signal.Signals(caught[0]).name
+        return f"the daemon shut down on {name}" + (" (Ctrl-C)" if name == "SIGINT" else "")
+    if failed is not None:
+        return f"the daemon shut down: control loop failed ({type(failed).__name__})"
+    return "the daemon shut down"
 
 
 def _held_on_start(snap: dict[str, Any]) -> list[str]:

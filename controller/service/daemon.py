@@ -405,6 +405,7 @@ class Daemon:
         self._commands: deque[_Command] = deque()
         self._wake = threading.Event()
         self._stop = threading.Event()
+        self._stop_reason = "the daemon shut down"
         self._abort = threading.Event()
         self._thread: threading.Thread | None = None
         self._next_sample_pub = -math.inf
@@ -487,15 +488,21 @@ class Daemon:
         self._thread = threading.Thread(target=self._main, name="pycnoctl-control", daemon=True)
         self._thread.start()
 
-    def stop(self, timeout: float = 10.0) -> None:
-        """Abort any run, leave the instrument in the safe state and end the control thread."""
+    def stop(self, timeout: float = 10.0, reason: str = "the daemon shut down") -> None:
+        """Abort any run, leave the instrument in the safe state and end the control thread.
+
+        ``reason`` (what stopped the daemon: a signal, say) becomes an active run's abort reason and is
+        logged with the safe state, so the record does not blame an operator who asked nothing.
+        """
+        self._stop_reason = reason
         self._stop.set()
         self._abort.set()
         self._wake.set()
         if self._thread is not None:
             self._thread.join(timeout)
         if self.instrument.safe_state():
-            log.info("safe state asserted on stop", extra={"data": {"event": "safe_state", "why": "stop"}})
+            log.info("safe state asserted on stop (%s)", reason,
+                     extra={"data": {"event": "safe_state", "why": "stop", "reason": reason}})
         sd_notify("STOPPING=1")
 
     @property
@@ -840,11 +847,13 @@ class Daemon:
         except CalibrationRefused:
             return None  # execute() refuses it with the reason
 
-    def _should_stop(self) -> bool:
+    def _should_stop(self) -> bool | str:
         # Called by the tick loop on every tick of a run: answer waiting commands (a reset is refused
-        # while running) and honour abort / shutdown.
+        # while running) and honour abort / shutdown (a shutdown gives its reason for the record).
         self._drain_commands()
-        return self._abort.is_set() or self._stop.is_set()
+        if self._stop.is_set():
+            return self._stop_reason
+        return self._abort.is_set()
 
     # ------------------------------------------------------------------ listener (control thread)
     def _on_event(self, kind: str, data: dict[str, Any]) -> None:
