@@ -360,3 +360,39 @@ def test_the_operator_sees_calibration_warnings_and_provenance(client: TestClien
     names = {st["name"] for st in client.get("/api/states").json()}
     # at most 10 points a wall second: this fast simulator leaves few, but each carries its state
     assert len(tr["state"]) == len(tr["t"]) and set(tr["state"]) <= names and set(tr["state"]) - {"idle"}
+
+
+def _report(client: TestClient, rid: str) -> object:
+    r = client.get(f"/api/runs/{rid}/report")
+    t_end = time.monotonic() + 60.0
+    while r.status_code == 202 and time.monotonic() < t_end:  # the worker is still rendering
+        time.sleep(0.2)
+        r = client.get(f"/api/runs/{rid}/report")
+    return r
+
+
+def test_a_damaged_record_is_named_without_server_paths(client: TestClient, daemon: Daemon) -> None:
+    rid = client.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
+    wait_status(client, rid, {"completed"})
+    folder = daemon.data / "runs" / rid
+    where = str(daemon.data.resolve())
+
+    (folder / "trace.csv").write_text("t,gauge,not,the,header\n1,2,3,4,5\n")
+    r = _report(client, rid)
+    assert r.status_code == 409, r.text
+    body = r.json()
+    assert rid in body["error"] and "trace.csv is damaged" in body["error"]
+    assert body["problems"] == ["trace.csv: header does not match meta.json trace_columns"]
+    assert where not in r.text and str(daemon.data) not in r.text
+
+    (folder / "trace.csv").unlink()
+    r = _report(client, rid)
+    assert r.status_code == 200 and "trace.csv is missing" in r.text
+
+    (folder / "summary.json").write_text('{"results": {"status": "compl')
+    r = _report(client, rid)
+    assert r.status_code == 409 and "summary.json is damaged" in r.json()["error"]
+    assert where not in r.text and str(daemon.data) not in r.text
+    run = client.get(f"/api/runs/{rid}").json()
+    assert run.get("summary") is None
+    assert run["record_problems"][0].startswith("summary.json is damaged: not JSON")

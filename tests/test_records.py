@@ -217,3 +217,31 @@ def test_free_text_in_a_trace_row_round_trips_as_csv(tmp_path):
     run = load_run(rec.folder)
     assert list(run.trace["note"]) == ['operator said: "ok, go" next', ""]
     assert list(run.trace["pressure_pa"]) == [1.5e5, 1.4e5]
+
+
+def test_a_damaged_file_is_named_apart_from_its_path(tmp_path):
+    import pickle
+
+    rec = make(tmp_path)
+    for k in range(5):
+        rec.sample(k * 0.1, "idle", None, {}, Reading(1e5, "Pa", k * 0.1))
+    rec.close()
+    folder = rec.folder
+    lines = (folder / "trace.csv").read_text().splitlines(keepends=True)
+    header = lines[0].rstrip("\n").split(",")
+    row = lines[2].rstrip("\n").split(",")
+    row[header.index("t")] = "garbage"
+    lines[2] = ",".join(row) + "\n"
+    (folder / "trace.csv").write_text("".join(lines))
+    with pytest.raises(records.DamagedFile) as caught:
+        load_run(folder)
+    assert caught.value.name == "trace.csv" and "'t'" in caught.value.detail
+    assert str(tmp_path) not in caught.value.detail
+    again = pickle.loads(pickle.dumps(caught.value))  # it crosses the report worker's process boundary
+    assert (again.name, again.detail) == (caught.value.name, caught.value.detail)
+
+    (folder / "summary.json").write_text("[1, 2]")
+    (folder / "trace.csv").write_text("".join(lines[:2]))
+    with pytest.raises(records.DamagedFile) as caught:
+        load_run(folder)
+    assert caught.value.name == "summary.json" and caught.value.detail == "not a JSON object (a list)"

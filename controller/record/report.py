@@ -264,6 +264,18 @@ def _calibration_rows(rec: dict[str, Any]) -> list[list[str]]:
     ]
 
 
+def record_problems(run: StoredRun) -> list[str]:
+    """What the run folder lacks that the report would show: said on the report, never drawn as empty."""
+    out = []
+    if not (run.folder / "trace.csv").exists():
+        out.append("trace.csv is missing from the run folder: there is no pressure trace to draw")
+    elif run.n_samples == 0:
+        out.append("trace.csv holds no samples: there is no pressure trace to draw")
+    if run.torn_tail:
+        out.append("the trace's last line was cut short (the run was stopped mid-write) and is left out")
+    return out
+
+
 def report_html(run: StoredRun, png_name: str, png_bytes: bytes) -> str:
     """The run report as one HTML page (the figure embedded)."""
     doc = run.summary or {}
@@ -278,6 +290,7 @@ def report_html(run: StoredRun, png_name: str, png_bytes: bytes) -> str:
         rsd_percent=100 * rsd if rsd is not None else None, choice=_choice_text(res, seq),
         warnings=res["warnings"] or [], png_name=png_name,
         png_data=base64.b64encode(png_bytes).decode("ascii"), cycles=_cycle_rows(res["cycles"] or []),
+        record_problems=record_problems(run),
         budget=budget_rows(res["budget"] or []), calibration=_calibration_rows(rec) if rec else None,
         nominal={"vc": cal.get("vc", 0) * 1e6, "vr": cal.get("vr", 0) * 1e6,
                  "u_percent": 100 * (cal["cov"][0][0] ** 0.5) / cal["vc"] if cal.get("cov") and cal.get("vc") else None}

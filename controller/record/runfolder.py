@@ -499,6 +499,42 @@ class _Syncer:
 # ---------------------------------------------------------------------------- reading back
 
 
+class DamagedFile(ValueError):
+    """A run-folder file that is there but cannot be read as what it should be.
+
+    The file's name and what is wrong are kept apart from its path, so that a server can say which
+    file of which run is damaged without showing a path on its machine.
+    """
+
+    def __init__(self, path: Path | str, detail: str) -> None:
+        super().__init__(str(path), detail)  # both in args: the exception pickles (report worker)
+        self.path = Path(path)
+        self.name = self.path.name
+        self.detail = detail
+
+    def __str__(self) -> str:
+        return f"{self.path}: {self.detail}"
+
+
+def _read_json(path: Path) -> dict | None:
+    """A JSON object file of the run folder; None when it is absent, DamagedFile when it is not one."""
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        return None
+    except UnicodeDecodeError:
+        raise DamagedFile(path, "not UTF-8 text") from None
+    try:
+        doc = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise DamagedFile(path, f"not JSON ({exc.msg} at line {exc.lineno} column {exc.colno})") from None
+    except RecursionError:
+        raise DamagedFile(path, "JSON nested too deeply to read") from None
+    if not isinstance(doc, dict):
+        raise DamagedFile(path, f"not a JSON object (a {type(doc).__name__})")
+    return doc
+
+
 @dataclass
 class StoredRun:
     """A run folder read back: raw trace as numpy arrays (one per column), events, cycles, summary."""
@@ -583,7 +619,7 @@ def _read_trace(path: Path, columns: list[str] | None, chunk_rows: int = CHUNK_R
             return {}, bool(first)  # no header, or a torn one
         header = next(csv.reader([first]))
         if columns is not None and header != columns:
-            raise ValueError(f"{path}: header does not match meta.json trace_columns")
+            raise DamagedFile(path, "header does not match meta.json trace_columns")
         cols = [_Column(name) for name in header]
         torn = False
         row_no = 1  # of the header; rows are numbered as lines of the file
@@ -603,12 +639,16 @@ def _read_trace(path: Path, columns: list[str] | None, chunk_rows: int = CHUNK_R
                 torn = True
             for i, r in enumerate(rows):
                 if len(r) != len(header):
-                    raise ValueError(f"{path}: malformed row {row_no + i + 1}")
+                    raise DamagedFile(path, f"malformed row {row_no + i + 1}")
             row_no += len(rows)
             if rows:
                 for c, col in zip(cols, zip(*rows, strict=True), strict=True):
                     if only is None or c.name in only:
-                        c.add(col)
+                        try:
+                            c.add(col)
+                        except ValueError:
+                            raise DamagedFile(path, f"column {c.name!r} has a value that is not a number in "
+                                                    f"rows {row_no - len(rows) + 1}-{row_no}") from None
             del rows
             chunk = nxt
     size = path.stat().st_size
@@ -725,7 +765,7 @@ def load_run(folder: Path | str, trace_columns: Collection[str] | None = None) -
     only = None if trace_columns is None else frozenset(trace_columns)
     folder = Path(folder)
     meta_path = folder / "meta.json"
-    meta = json.loads(meta_path.read_text(encoding="utf-8")) if meta_path.exists() else {}
+    meta = _read_json(meta_path) or {}
     summary_path = folder / "summary.json"
     columns = meta.get("trace_columns")
     trace_path, side = folder / "trace.csv", folder / SIDE_FILE
@@ -736,5 +776,5 @@ def load_run(folder: Path | str, trace_columns: Collection[str] | None = None) -
         trace, torn = _read_trace(trace_path, columns, side=side if summary_path.exists() else None, only=only)
     events, torn_ev = _read_events(folder / "events.jsonl")
     cycles = _read_cycles(folder / "cycles.csv")
-    summary = json.loads(summary_path.read_text(encoding="utf-8")) if summary_path.exists() else None
+    summary = _read_json(summary_path)
     return StoredRun(folder, meta, trace, events, cycles, summary, torn, torn_ev)

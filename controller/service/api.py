@@ -39,6 +39,7 @@ from starlette.staticfiles import StaticFiles
 
 from pycnoctl.controller.domain.states import vocabulary
 from pycnoctl.controller.record.catalog import CatalogError, RunRow, is_run_id
+from pycnoctl.controller.record.runfolder import DamagedFile
 from pycnoctl.controller.service import schemas as s
 from pycnoctl.controller.service.daemon import Daemon, SubmitError
 from pycnoctl.controller.service.security import COOKIE, Policy, SecurityMiddleware, token_matches
@@ -233,14 +234,32 @@ def get_run(run_id: RunId, d: DaemonDep) -> Any:
     folder = _folder(d, row)
     summary = folder / "summary.json" if folder else None
     if summary is not None and summary.exists():
-        with contextlib.suppress(OSError, ValueError, RecursionError):
-            out["summary"] = json.loads(summary.read_text(encoding="utf-8")).get("results", {})
+        try:
+            doc = json.loads(summary.read_text(encoding="utf-8"))
+            if not isinstance(doc, dict):
+                raise ValueError(f"not a JSON object (a {type(doc).__name__})")
+            out["summary"] = doc.get("results", {})
+        except (OSError, ValueError, RecursionError) as exc:  # said, not left as a silent null
+            out["record_problems"] = [f"summary.json is damaged: {_unreadable(exc)}"]
     # links only to what exists: a run cancelled in the queue, or refused before it started, has no record
     have = {"trace.csv": folder is not None and (folder / "trace.csv").exists(),
             "summary.json": summary is not None and summary.exists()}
     have["report"] = have["summary.json"]
     out["links"] = {k: f"/api/runs/{row.id}/{k}" for k, ok in have.items() if ok}
     return out
+
+
+def _unreadable(exc: BaseException) -> str:
+    """What is wrong with a run file, in words that carry no path of this machine."""
+    if isinstance(exc, json.JSONDecodeError):
+        return f"not JSON ({exc.msg} at line {exc.lineno} column {exc.colno})"
+    if isinstance(exc, UnicodeDecodeError):
+        return "not UTF-8 text"
+    if isinstance(exc, RecursionError):
+        return "nested too deeply to read"
+    if isinstance(exc, OSError):
+        return f"cannot be read ({exc.strerror or type(exc).__name__})"
+    return str(exc)
 
 
 def _missing(row: RunRow, what: str) -> Response:
@@ -322,8 +341,12 @@ async def report(run_id: RunId, d: DaemonDep, request: Request) -> Response:
     except BrokenProcessPool:
         request.app.state.report_worker = None
         return _error(503, "the report worker stopped; ask again")
-    except Exception as exc:
-        return _error(500, f"report failed: {type(exc).__name__}: {exc}")
+    except DamagedFile as exc:  # the run's record, not the daemon, is at fault: say which file, not where
+        return _error(409, f"run {row.id}: {exc.name} is damaged ({exc.detail}); no report can be made from it",
+                      problems=[f"{exc.name}: {exc.detail}"])
+    except Exception as exc:  # a bug: said without the server's paths
+        text = str(exc).replace(str(folder), f"<run {row.id}>").replace(str(d.data.resolve()), "<data>")
+        return _error(500, f"report failed: {type(exc).__name__}: {text}")
     if not out.is_file() or not out.is_relative_to(folder):
         return _error(500, "report was not written inside the run folder")
     return FileResponse(out, media_type="text/html; charset=utf-8")

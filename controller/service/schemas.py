@@ -130,6 +130,7 @@ class Run(BaseModel):
     mass_g: float | None
     message: str | None
     summary: dict[str, Any] | None = None
+    record_problems: list[str] | None = None  # e.g. a damaged summary.json: why ``summary`` is missing
     links: dict[str, str] | None = None
 
 
