@@ -49,3 +49,24 @@ def test_serve_stopped_by_sigterm_puts_back_what_it_found(tmp_path: Path, monkey
     assert logging.getLogger("pycnoctl").handlers == handlers
     v = seen["sim"].actual_valves()
     assert v["inlet"] is False and v["vent"] is True
+
+
+def test_serve_on_a_taken_port_touches_nothing(tmp_path: Path, capsys: Any) -> None:
+    """Bound before the data folder's lock is taken: no runs marked interrupted, no instrument opened."""
+    from pycnoctl.controller.record.catalog import Catalog
+
+    data = tmp_path / "data"
+    data.mkdir()
+    with Catalog(data / "catalog.sqlite") as cat:
+        running = cat.create_run(kind="measure", status="running")  # as a live writer would leave it
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        port = taken.getsockname()[1]
+        rc = main(["serve", "--sim", "--data", str(data), "--port", str(port)])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert rc == 2
+    assert len(err) == 1 and f"127.0.0.1:{port}" in err[0] and "in use" in err[0]
+    with Catalog(data / "catalog.sqlite") as cat:
+        assert cat.get_run(running).status == "running"
+    assert not (data / "daemon.log.jsonl").exists() and not (data / "pycnoctl.lock").exists()

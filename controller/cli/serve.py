@@ -14,6 +14,7 @@ from __future__ import annotations
 import argparse
 import logging
 import signal
+import socket
 import sys
 import threading
 import time
@@ -55,14 +56,34 @@ def main(args: argparse.Namespace) -> int:
     except TokenError as exc:
         raise UsageError(str(exc)) from None
     root = data_dir(args.data)
-    lock = lock_data_folder(root, "serve", mark_interrupted=False)  # the daemon marks them and pauses
+    # the port first: a daemon that cannot listen must leave the data folder, its runs and the valves alone
+    sock = _bind(args.host, args.port)
     try:
-        return _serve(args, root, policy)
+        lock = lock_data_folder(root, "serve", mark_interrupted=False)  # the daemon marks them and pauses
+        try:
+            return _serve(args, root, policy, sock)
+        finally:
+            lock.release()
     finally:
-        lock.release()
+        sock.close()
 
 
-def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
+def _bind(host: str, port: int) -> socket.socket:
+    """The listening address, bound before anything else is touched (uvicorn is handed this socket)."""
+    family = socket.AF_INET6 if ":" in host else socket.AF_INET
+    sock = socket.socket(family, socket.SOCK_STREAM)
+    try:
+        sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)  # as uvicorn does: no wait after a restart
+        sock.bind((host, port))
+    except OSError as exc:
+        sock.close()
+        why = exc.strerror or str(exc)
+        raise UsageError(f"cannot listen on {_url_host(host)}:{port}: {why[:1].lower() + why[1:]}"
+                         " (another daemon on that port? --port chooses another); nothing was started") from None
+    return sock
+
+
+def _serve(args: argparse.Namespace, root: Any, policy: Any, sock: socket.socket) -> int:
     import uvicorn
 
     from pycnoctl.controller.service.api import close_workers, create_app
@@ -113,7 +134,7 @@ def _serve(args: argparse.Namespace, root: Any, policy: Any) -> int:
         # shutdown; ours only note it, so the safe-state shutdown below always runs.
         for sig in (signal.SIGTERM, signal.SIGINT):
             previous[sig] = signal.signal(sig, lambda signum, frame: caught.append(signum))
-        srv.run()
+        srv.run(sockets=[sock])
         close_workers(app)
         daemon.stop(reason=_shutdown_reason(caught, failure.get("exc")))
         daemon.catalog.close()
