@@ -118,6 +118,15 @@ def submit(args: argparse.Namespace) -> int:
                            "bulk_volume": args.bulk_volume, "u_bulk_volume": args.u_bulk_volume,
                            "operator": args.operator,
                            "expansion_volume": args.expansion_volume, "note": args.note or None}
+    from pycnoctl.controller.domain.units import UnitError, parse_mass, parse_volume
+
+    try:  # read here as `run` reads them: a value that is no quantity is bad input (exit 2), not a refusal
+        for text, parse in ((args.mass, parse_mass), (args.u_mass, parse_mass), (args.bulk_volume, parse_volume),
+                            (args.u_bulk_volume, parse_volume)):
+            if text:
+                parse(text)
+    except UnitError as exc:
+        raise UsageError(f"--mass/--u-mass/--bulk-volume/--u-bulk-volume: {exc}") from None
     path = Path(args.sequence)
     if path.is_file():  # a local file: its text travels, the daemon never sees our path
         try:
@@ -132,6 +141,11 @@ def submit(args: argparse.Namespace) -> int:
         try:
             out = c.submit(**req)
         except DaemonError as exc:
+            field = exc.body.get("field")
+            if exc.status in (400, 422) and field == "sequence":  # neither a file here nor shipped there
+                raise UsageError(f"no sequence file {args.sequence!r}, and the daemon says: {exc}") from None
+            if exc.status in (400, 422) and field:  # one value the daemon cannot take: bad input, as for `run`
+                raise UsageError(f"--{str(field).replace('_', '-')}: {exc}") from None
             return _fail(exc)
     if args.json:
         print(json.dumps(out, indent=2))

@@ -674,7 +674,8 @@ class Daemon:
             shipped = list_shipped()
             stem = sequence[:-5] if sequence.endswith(".yaml") else sequence
             if stem not in shipped:
-                raise SubmitError(f"no shipped sequence {sequence!r}; shipped: {', '.join(shipped)}")
+                raise SubmitError(f"no shipped sequence {sequence!r}; shipped: {', '.join(shipped)}",
+                                  field="sequence")
             sequence = stem
         elif len(sequence_text.encode("utf-8")) > MAX_SEQUENCE_TEXT:  # type: ignore[union-attr]
             raise SubmitError(f"sequence text over {MAX_SEQUENCE_TEXT} bytes", status=413)
