@@ -171,6 +171,9 @@ def test_bad_requests_are_refused_before_anything_is_queued(client: TestClient, 
         r = client.post("/api/runs", json=body)
         assert r.status_code == code, (body, r.text)
     assert daemon.catalog.list_runs() == []
+    # the refusal names its field, so a form can put it beside the box (a sweep: it had none)
+    r = client.post("/api/runs", json={"sequence": "quick-demo", "expansion_volume": "huge"})
+    assert r.json().get("field") == "expansion_volume" and "unknown expansion volume 'huge'" in r.json()["error"]
 
 
 def test_queue_removal_and_pause(client: TestClient, daemon: Daemon) -> None:

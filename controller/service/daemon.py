@@ -682,6 +682,10 @@ class Daemon:
         problem = specimen_problem(mass, u_mass, bulk_volume, u_bulk_volume)
         if problem is not None:
             raise SubmitError(problem[1], field=problem[0])
+        names = list(self.instrument.roles.expansion)
+        if expansion_volume is not None and expansion_volume not in names:  # at its field, for a form
+            raise SubmitError(f"unknown expansion volume {expansion_volume!r}; the instrument has: "
+                              f"{', '.join(names)}", field="expansion_volume")
         request = {"sequence": sequence, "sequence_text": sequence_text, "sample_id": sample_id, "mass": mass,
                    "u_mass": u_mass, "bulk_volume": bulk_volume, "u_bulk_volume": u_bulk_volume,
                    "operator": operator,
