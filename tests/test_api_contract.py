@@ -190,6 +190,11 @@ def test_queue_removal_and_pause(client: TestClient, daemon: Daemon) -> None:
     assert client.delete(f"/api/queue/{rid}").status_code == 409
     assert client.get("/api/queue").json()["items"] == []
     rid2 = client.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
+    rid3 = client.post("/api/runs", json={"sequence": "quick-demo"}).json()["run_id"]
+    # the positions are the order they start in, from 1, whatever came and went before (a sweep: the only
+    # waiting run showed as 15)
+    assert [(i["position"], i["run_id"]) for i in client.get("/api/queue").json()["items"]] == [(1, rid2), (2, rid3)]
+    assert client.delete(f"/api/queue/{rid3}").status_code == 200
     assert client.post("/api/queue/resume").json()["paused"] is False
     assert wait_status(client, rid2, {"completed"})["status"] == "completed"
 

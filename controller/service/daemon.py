@@ -748,9 +748,11 @@ class Daemon:
 
     def queue(self) -> list[dict[str, Any]]:
         out = []
-        for e in self.catalog.queue_list():
+        # position: 1 for the next to start (the catalog's row number only orders them: it grew without end,
+        # and the only waiting run showed as 15 - a sweep)
+        for position, e in enumerate(self.catalog.queue_list(), 1):
             r = e.request
-            out.append({"position": e.position, "run_id": e.run_id,
+            out.append({"position": position, "run_id": e.run_id,
                         "sequence": r.get("sequence") or "(submitted text)", "sample_id": r.get("sample_id"),
                         "operator": r.get("operator"), "mass_g": r["mass"] * 1e3 if r.get("mass") else None})
         return out

@@ -139,7 +139,7 @@ class RunList(BaseModel):
 
 
 class QueueItem(BaseModel):
-    position: int
+    position: int  # 1 for the run that starts next
     run_id: str
     sequence: str
     sample_id: str | None
