@@ -428,11 +428,13 @@ def _fixed_wait_line(rows: list[dict[str, Any]], floors: dict[str, dict[str, flo
     """The settle rule's time against fixed waits held as long as the floors demand: each instrument's own
     slowest floor (the shortest fixed wait that reaches 0.05 % there, knowing its physics; a fixed wait that
     matched the rule's smaller bias would be longer), and the slowest floor of the whole set (one wait for
-    every instrument and specimen, as a lab without an adaptive rule must choose).  Same runs, same
+    instrument measured and specimen, as a lab without an adaptive rule must choose).  Same runs, same
     purge, fills and vents; only the settles' length changes."""
-    worst = max((f for f in floors.values() if all(math.isfinite(f[k]) for k in SETTLES)),
-                key=lambda f: max(f[k] for k in SETTLES))
-    lab_wait = max(worst[k] for k in SETTLES)
+    measured = [floors[r["instrument"]] for r in rows if "runs_raw" in r and r["instrument"] in floors]
+    if not measured:
+        return "   (no instrument gave a result to compare with fixed waits)"
+    # the set's slowest floor among the instruments measured: one the rule refuses (pores) sets no wait
+    lab_wait = max(max(f[k] for k in SETTLES) for f in measured)
     own, lab = [], []
     for r in rows:
         f = floors.get(r["instrument"])
