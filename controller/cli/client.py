@@ -142,10 +142,18 @@ def submit(args: argparse.Namespace) -> int:
             out = c.submit(**req)
         except DaemonError as exc:
             field = exc.body.get("field")
-            if exc.status in (400, 422) and field == "sequence":  # neither a file here nor shipped there
-                raise UsageError(f"no sequence file {args.sequence!r}, and the daemon says: {exc}") from None
+            if exc.status in (400, 422) and field == "sequence":
+                if "no shipped sequence" in str(exc):  # neither a file here nor shipped there
+                    raise UsageError(f"no sequence file {args.sequence!r}, and the daemon says: {exc}") from None
+                raise UsageError(f"{args.sequence}: {exc}") from None  # e.g. a calibration sequence
             if exc.status in (400, 422) and field:  # one value the daemon cannot take: bad input, as for `run`
                 raise UsageError(f"--{str(field).replace('_', '-')}: {exc}") from None
+            if exc.status == 422 and "sequence_text" in req and exc.body.get("problems"):
+                # the local file's problems, each at its line in it: bad input (exit 2), as `run` says them
+                print(f"pycnoctl: {exc}", file=sys.stderr)
+                for line in exc.body["problems"]:
+                    print(str(line).replace("<submitted>", str(path), 1), file=sys.stderr)
+                return 2
             return _fail(exc)
     if args.json:
         print(json.dumps(out, indent=2))
