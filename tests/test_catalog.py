@@ -112,6 +112,26 @@ def test_mark_interrupted_on_startup_never_resumes(tmp_path):
     c2.close()
 
 
+def test_an_interrupted_run_ends_when_its_trace_was_last_written(tmp_path):
+    """Found by a sweep: a run interrupted by a killed daemon got the restart's time as its end (the
+    restart may come days later).  Its trace file's time is taken; without a trace, the restart's."""
+    import os
+
+    c = Catalog(tmp_path / "c.sqlite")
+    a = c.create_run(kind="measurement", status="running")
+    b = c.create_run(kind="measurement", status="running")
+    (tmp_path / "runs" / a).mkdir(parents=True)
+    trace = tmp_path / "runs" / a / "trace.csv"
+    trace.write_text("t,state\n0.0,fill\n")
+    last = dt.datetime(2026, 11, 28, 17, 30, 5, tzinfo=dt.UTC)
+    os.utime(trace, (last.timestamp(), last.timestamp()))
+    before = dt.datetime.now(dt.UTC)
+    assert c.mark_interrupted_on_startup(runs_dir=tmp_path / "runs") == [a, b]
+    assert c.get_run(a).ended.startswith("2026-11-28T17:30:05")
+    assert c.get_run(b).ended >= before.strftime("%Y-%m-%dT%H:%M:%S")  # no folder: the restart's time
+    c.close()
+
+
 def test_calibrations(cat):
     older = cat.put_calibration(CalibrationRecord(
         "small", "He", 12.0e-6, 8.0e-6, 130e3, 296.0, "tech-a",

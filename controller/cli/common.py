@@ -222,7 +222,8 @@ def lock_data_folder(root: Path, verb: str, *, mark_interrupted: bool = True) ->
         prev = lock.stale or {}
         who = f"pid {prev.get('pid', '?')}, {prev.get('command', 'an earlier writer')}" if prev else "an earlier writer"
         with Catalog(catalog_path) as catalog:
-            ids = catalog.mark_interrupted_on_startup(f"{who} stopped while running; not resumed")
+            ids = catalog.mark_interrupted_on_startup(f"{who} stopped while running; not resumed",
+                                                      runs_dir=root / "runs")
         if ids:
             print(f"pycnoctl {verb}: run {', '.join(ids)} was left running by {who}; marked interrupted",
                   file=sys.stderr)

@@ -151,6 +151,18 @@ class CatalogError(Exception):
     """A request the catalog refuses (unknown run, bad status change, foreign ID)."""
 
 
+def _last_written(runs_dir: Path | None, run_id: str) -> str | None:
+    """When a run folder's trace (or, before any row, the folder) was last written, as a catalog time."""
+    if runs_dir is None:
+        return None
+    for path in (runs_dir / run_id / "trace.csv", runs_dir / run_id):
+        try:
+            return _utc(_dt.datetime.fromtimestamp(path.stat().st_mtime, _dt.UTC))
+        except (OSError, ValueError, OverflowError):
+            continue
+    return None
+
+
 def _utc(dt: _dt.datetime | None = None) -> str:
     dt = dt or _dt.datetime.now(_dt.UTC)
     if dt.tzinfo is None:
@@ -623,16 +635,18 @@ class Catalog:
         args.append(BROAD_PREFIX)
         return bool(self._read(sql + " LIMIT ?)", args)[0][0] >= BROAD_PREFIX)
 
-    def mark_interrupted_on_startup(self, message: str = "daemon stopped while running; not resumed") -> list[str]:
-        """Runs left 'running' by a dead daemon become 'interrupted'; nothing is resumed."""
+    def mark_interrupted_on_startup(self, message: str = "daemon stopped while running; not resumed",
+                                    runs_dir: Path | None = None) -> list[str]:
+        """Runs left 'running' by a dead daemon become 'interrupted'; nothing is resumed.
+
+        Their end is when their trace was last written (its file's time, under ``runs_dir``), else now.
+        Why: the restart may come days later, and 'ended' at the restart misdated the run (a sweep)."""
         now = _utc()
         with self._write() as con:
             ids = [r[0] for r in con.execute("SELECT id FROM runs WHERE status = 'running' ORDER BY created")]
-            con.execute(
-                "UPDATE runs SET status = 'interrupted', ended = COALESCE(ended, ?),"
-                " message = ? WHERE status = 'running'",
-                (now, message),
-            )
+            for rid in ids:
+                con.execute("UPDATE runs SET status = 'interrupted', ended = COALESCE(ended, ?), message = ?"
+                            " WHERE id = ? AND status = 'running'", (_last_written(runs_dir, rid) or now, message, rid))
         return ids
 
     # ------------------------------------------------------------------ calibrations

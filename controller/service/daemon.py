@@ -421,7 +421,7 @@ class Daemon:
         # safe state first, before anything else is looked at (Controller() asserts it too)
         self.controller = Controller(instrument)
         self.controller.listeners.append(self._on_event)
-        interrupted = self.catalog.mark_interrupted_on_startup()
+        interrupted = self.catalog.mark_interrupted_on_startup(runs_dir=self.data / "runs")
         orphans = self._orphaned_queued()
         self._state_lock = threading.Lock()  # one writer of the saved queue state at a time
         self._saved_state: dict[str, Any] | None = None
