@@ -341,6 +341,17 @@ class SimConfig(_Strict):
             if len(roles[role]) != 1:
                 out.append((("valves",), f"exactly one valve with role {role!r} is needed, "
                                          f"found {len(roles[role])}"))
+        # one expansion valve per volume: the expansion volumes are named by their far end, so a second
+        # valve into the same volume hid a volume and measured with both open (found by a sweep: exit 0,
+        # -23 million cm3, no expansion at all)
+        into: dict[str, str] = {}
+        for vname in roles["expansion"]:
+            a, b = self.valves[vname].between
+            far = b if a == self.cell else a
+            if far in into:
+                out.append((("valves", vname, "between"), f"expansion valves {into[far]!r} and {vname!r} both "
+                            f"open into {far!r}: give each expansion volume its own valve"))
+            into.setdefault(far, vname)
         for k, lk in enumerate(self.links):
             for j, end in enumerate(lk.between):
                 if end not in self.volumes:

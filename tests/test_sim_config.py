@@ -105,6 +105,13 @@ def test_a_lab_pressure_or_temperature_in_the_wrong_unit_is_refused_at_its_line(
     assert str(problem).startswith(f"{path}:{at + 1}:") and "give the unit" in str(problem)
 
 
+def test_two_expansion_valves_into_one_volume_are_refused(tmp_path):
+    # found by a sweep: the second valve hid a volume, both opened at every expansion, and a run measured
+    # -23 million cm3 with exit 0
+    [p] = _problems(tmp_path, BASE + "  exp2: {role: expansion, between: [small, cell]}\n")
+    assert p.line == 9 and "expansion valves 'exp' and 'exp2' both open into 'small'" in p.message
+
+
 # -- the transducer's sample period against the stale-reading limit ---------------------------------
 
 STALE_WORDS = "is not shorter than the stale-reading limit, limits.stale_after"
