@@ -75,6 +75,24 @@ def test_check_dry_run_fault_and_static_only(capsys):
     assert "dry run" not in capsys.readouterr().out
 
 
+@pytest.mark.parametrize(("roles", "says"), [
+    ("{inlet: inlet, vent: vent, expansion: {small: exp_large, large: exp_small}}", "9.1997"),
+    ("{inlet: inlet, vent: vent, expansion: {small: exp_small}, other: [exp_large]}", "NOT A MEASUREMENT"),
+])
+def test_check_fails_a_dry_run_that_misses_the_simulated_specimen(tmp_path, capsys, roles, says):
+    """Found by a sweep: a simulated instrument whose expansion valves were swapped against its simulator's
+    passed check with 'simulated result: 9.1997 cm3' for the simulator's 5 cm3 specimen, and one that listed
+    an expansion valve under 'other' (open in every state) passed while its own dry run said NOT A
+    MEASUREMENT.  The simulator knows its specimen: a result beyond its U from it is exit 7."""
+    cfg = tmp_path / "inst.yaml"
+    cfg.write_text(Path(__file__).resolve().parents[1].joinpath("drivers", "instruments", "simulated.yaml")
+                   .read_text() + f"valve_roles: {roles}\n")
+    assert main(["check", "quick-demo", "--instrument", str(cfg)]) == 7
+    out = capsys.readouterr().out
+    assert says in out and "disagree with the simulator it runs on" in out
+    assert main(["check", "quick-demo", "--sim"]) == 0  # the consistent one passes
+
+
 def test_check_against_a_hardware_config_opens_no_port(capsys):
     root = Path(__file__).resolve().parents[1]
     cfg = root / "drivers" / "instruments" / "usb-relay-serial-gauge.yaml"

@@ -6,7 +6,8 @@ dry run of the whole sequence on the simulator, as fast as the CPU allows, which
 expected duration and shows whether the settle rules and time limits hold.  No valve on real
 hardware is touched: with --instrument the config is only read, and the dry run uses the
 simulator (the config's own when it names one, else the clean default).
-Exit codes: 0 sound, 2 problems in a file, 3 the dry run faulted.
+Exit codes: 0 sound, 2 problems in a file, 3 the dry run faulted, 7 the dry run's result is not the
+simulated specimen's (NOT A MEASUREMENT, or beyond its U from the specimen the simulator holds).
 """
 
 from __future__ import annotations
@@ -75,13 +76,30 @@ def dry_run(seq_ref: str, make_instrument: Callable[[], Instrument], keep: Path 
             root = keep if keep is not None else Path(tmp)
             catalog = Catalog(root / "catalog.sqlite")
             try:
-                return execute(prepared, Controller(instrument), root=root / "runs", catalog=catalog)
+                summary = execute(prepared, Controller(instrument), root=root / "runs", catalog=catalog)
             finally:
                 catalog.close()
+        sim = instrument.extras.get("sim")
+        truth = getattr(getattr(getattr(sim, "config", None), "sample", None), "solid_volume", None)
+        summary["sim_truth_cm3"] = truth * 1e6 if isinstance(truth, int | float) else None
+        return summary
     finally:
         instrument.close()
         if lock is not None:
             lock.release()
+
+
+def _off_the_specimen(summary: dict[str, Any]) -> str | None:
+    """Why a completed dry run's volume cannot be the simulated specimen's, or None.
+
+    Found by a sweep: an instrument config whose expansion valves were swapped against its simulator's
+    passed check with 'simulated result: 9.1997 cm3' for a 5 cm3 specimen, and one listing an expansion
+    valve under 'other' passed with its own dry run saying NOT A MEASUREMENT."""
+    v, U, truth = summary.get("volume_cm3"), summary.get("volume_u_cm3"), summary.get("sim_truth_cm3")
+    if summary.get("status") != "completed" or v is None or U is None or truth is None or abs(v - truth) <= U:
+        return None
+    return (f"the dry run measured {v:.4f} cm3 +/- {U:.4f} cm3 where the simulator's specimen is {truth:.4f} cm3: "
+            "the instrument's chamber volumes or valve roles disagree with the simulator it runs on")
 
 
 def _simulated_only(cfg: Any) -> bool:
@@ -160,8 +178,15 @@ def main(args: argparse.Namespace) -> int:
             "volume_cm3": summary["volume_cm3"], "volume_u_cm3": summary["volume_u_cm3"],
             "fault": summary["fault"], "warnings": summary["warnings"],
             "record": str(keep / "runs" / summary["run_id"]) if keep is not None else None,
+            "not_a_measurement": summary.get("impossible"), "simulated_specimen_cm3": summary.get("sim_truth_cm3"),
         }
         code = 0 if summary["status"] == "completed" else 3
+        off = _off_the_specimen(summary)
+        if off:  # the simulator knows its specimen: a dry run that misses it says the configs disagree
+            report["dry_run"]["warnings"] = [*summary["warnings"], off]
+            code = code or 7
+        if summary.get("impossible"):
+            code = code or 7
     if args.json:
         print(json.dumps(report, indent=2))
     else:
