@@ -145,3 +145,34 @@ def test_a_damaged_state_file_starts_paused(daemons: Started) -> None:
     s = b.snapshot()
     assert s["queue"]["paused"] and STATE_FILE in s["queue"]["paused_reason"]
     assert "damaged" in s["queue"]["paused_reason"]
+
+
+def test_a_trip_while_idle_pauses_the_queue_so_the_reset_starts_nothing(daemons: Started) -> None:
+    """Found by a sweep: a trip with no run going only latched the interlock; a run submitted meanwhile
+    waited for the latch alone, and the operator's reset started it at once ('a reset never restarts
+    anything').  The trip pauses the queue; only a resume after the reset starts a run."""
+    a = daemons()
+    wait_for(lambda: a.running and a.snapshot()["activity"] == "idle")
+    a.call(lambda c: c.monitor.trip_external("device_error", c.instrument.clock.now(), "injected while idle"))
+    wait_for(lambda: a.snapshot()["interlock"]["latched"])
+    wait_for(lambda: a.snapshot()["queue"]["paused"])
+    assert "interlock device_error tripped" in a.snapshot()["queue"]["paused_reason"]
+    rid = a.submit(sequence="quick-demo")["run_id"]
+    ok, why = a.submit_reset().result(5)
+    assert ok, why
+    time.sleep(0.5)  # every chance to (wrongly) start it
+    assert a.catalog.get_run(rid).status == "queued"
+    a.resume()
+    wait_for(lambda: a.catalog.get_run(rid).status != "queued")
+
+
+def test_a_saved_latch_without_a_pause_starts_paused(daemons: Started) -> None:
+    """A state file that says latched but not paused (written before trips paused the queue, or by hand)."""
+    daemons.data.mkdir(parents=True, exist_ok=True)
+    (daemons.data / STATE_FILE).write_text(json.dumps({
+        "version": 1, "paused": False, "paused_reason": None,
+        "latched": {"kind": "inlet_leak", "message": "pressure rose", "value": 2500.0, "limit": 2000.0}}))
+    b = daemons()
+    s = b.snapshot()
+    assert s["interlock"]["latched"] and s["queue"]["paused"]
+    assert "interlock inlet_leak latched before the daemon restarted" in s["queue"]["paused_reason"]

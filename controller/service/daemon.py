@@ -459,6 +459,9 @@ class Daemon:
                 str(latch.get("kind") or "unknown"), self.instrument.clock.now(),
                 str(latch.get("message") or ""), _num(latch.get("value")), _num(latch.get("limit")))
             self._refresh_interlock(save=False)
+            if not saved.get("paused"):  # latched but not paused (a file from before trips paused): paused now
+                reasons.append(f"interlock {trip.kind} latched before the daemon restarted: reset it, then resume "
+                               "the queue")
             log.warning("interlock %s latched before the restart is still latched: %s; an operator reset clears it",
                         trip.kind, trip.message, extra={"data": {"event": "latched_on_start", "interlock": trip.kind}})
         waiting = len(self.catalog.queue_list())
@@ -937,12 +940,22 @@ class Daemon:
             info.update({"kind": trip.kind, "message": trip.message, "t": trip.t,
                          "value": _num(trip.value), "limit": _num(trip.limit)})
         with self._lock:
+            newly = trip is not None and not self._snap["interlock"].get("latched")
             self._snap["interlock"] = info
             if trip is not None and self._snap["activity"] == "idle":
                 self._snap["activity"] = "tripped"
             elif trip is None and self._snap["activity"] == "tripped":
                 self._snap["activity"] = "idle"
-        if save:
+            unpaused = not self._snap["queue"]["paused"]
+        if newly and unpaused and save:
+            # a trip pauses the queue too, so that the reset that clears it starts nothing (found by a sweep:
+            # a trip while idle left the queue running, and the operator's reset started the next run at once)
+            assert trip is not None
+            self.pause(f"interlock {trip.kind} tripped: check the instrument, reset the interlock, then resume "
+                       "the queue")
+            log.warning("queue paused by interlock %s", trip.kind,
+                        extra={"data": {"event": "queue_pause", "interlock": trip.kind}})
+        elif save:
             self._save_state()
 
     # ------------------------------------------------------------------ saved queue state
