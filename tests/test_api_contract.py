@@ -404,3 +404,16 @@ def test_a_damaged_record_is_named_without_server_paths(client: TestClient, daem
     run = client.get(f"/api/runs/{rid}").json()
     assert run.get("summary") is None
     assert run["record_problems"][0].startswith("summary.json is damaged: not JSON")
+
+    # JSON, but not shaped as a summary (a sweep: the run's answer and the report were 500s)
+    for doc, says in [('{"results": 5}', "'results' is not a JSON object"),
+                      ('{"results": {"cycles": 5}}', "'results.cycles' is not a list"),
+                      ('{"results": {"volume_cm3": "x"}}', "'results.volume_cm3' is not a number")]:
+        (folder / "summary.json").write_text(doc)
+        r = _report(client, rid)
+        assert r.status_code == 409 and "summary.json is damaged" in r.json()["error"], (doc, r.text)
+        assert says in " ".join(r.json().get("problems") or [r.json()["error"]]), (doc, r.text)
+        got = client.get(f"/api/runs/{rid}")
+        assert got.status_code == 200, got.text  # the run itself is always shown
+        if doc == '{"results": 5}':
+            assert got.json().get("summary") is None and says in got.json()["record_problems"][0]

@@ -777,4 +777,29 @@ def load_run(folder: Path | str, trace_columns: Collection[str] | None = None) -
     events, torn_ev = _read_events(folder / "events.jsonl")
     cycles = _read_cycles(folder / "cycles.csv")
     summary = _read_json(summary_path)
+    if summary is not None:
+        bad = _summary_shape(summary)
+        if bad is not None:
+            raise DamagedFile(summary_path, bad)
     return StoredRun(folder, meta, trace, events, cycles, summary, torn, torn_ev)
+
+
+#: results keys that hold a figure (number or null): their names end so
+_FIGURES = ("_cm3", "_pa", "_s", "_k", "_m3", "_g", "_pa_s", "rsd", "porosity")
+
+
+def _summary_shape(doc: dict) -> str | None:
+    """What is wrong with a summary that parses but is not shaped as one, or None.  Found by a sweep: a
+    summary.json of {"results": 5} (or cycles: 5, or a volume that is text) sent the report and the run's
+    API answer into a 500 instead of naming the damaged file."""
+    results = doc.get("results", {})
+    if not isinstance(results, dict):
+        return f"its 'results' is not a JSON object (a {type(results).__name__})"
+    cycles = results.get("cycles", [])
+    if not isinstance(cycles, list) or not all(isinstance(c, dict) for c in cycles):
+        return "its 'results.cycles' is not a list of JSON objects"
+    for key, value in results.items():
+        if key.endswith(_FIGURES) and value is not None and (isinstance(value, bool)
+                                                            or not isinstance(value, int | float)):
+            return f"its 'results.{key}' is not a number ({type(value).__name__})"
+    return None

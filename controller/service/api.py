@@ -238,7 +238,10 @@ def get_run(run_id: RunId, d: DaemonDep) -> Any:
             doc = json.loads(summary.read_text(encoding="utf-8"))
             if not isinstance(doc, dict):
                 raise ValueError(f"not a JSON object (a {type(doc).__name__})")
-            out["summary"] = doc.get("results", {})
+            results = doc.get("results", {})
+            if not isinstance(results, dict):  # {"results": 5} failed the response model: a 500 (a sweep)
+                raise ValueError(f"its 'results' is not a JSON object (a {type(results).__name__})")
+            out["summary"] = results
         except (OSError, ValueError, RecursionError) as exc:  # said, not left as a silent null
             out["record_problems"] = [f"summary.json is damaged: {_unreadable(exc)}"]
     # links only to what exists: a run cancelled in the queue, or refused before it started, has no record
