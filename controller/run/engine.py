@@ -325,9 +325,9 @@ class RunEngine:
             f"the pressure reading repeated the one before in {repeats} of {n} samples while the fill raised it "
             f"{rise / 1e3:.3g} kPa: the transducer gives a new reading about every {period:.2g} s but is read "
             f"every {dt:g} s (or its resolution is coarser than {rise / n:.3g} Pa, the fill's mean rise per "
-            f"sample). Held readings look like steps to the settle rules (a zero that never settles, or a "
-            f"pressure taken with too small an uncertainty). Set the instrument's sample_period to at least "
-            f"{period:.2g} s, or the transducer to a faster output rate"))
+            f"sample). Held readings look like steps to the interlocks and the settle rules (a zero that never "
+            f"settles, or a pressure taken with too small an uncertainty). Set the instrument's sample_period to at "
+            f"least {period:.2g} s (with limits.stale_after above it), or the transducer to a faster output rate"))
 
     def _watch_thermometer(self, t: float, temp: float) -> None:
         """Say once when the thermometer reads the gas rather than the wall: its 5-second means move
