@@ -51,6 +51,8 @@ def cases(tmp_path: Path) -> list[tuple[str, list[str], Path, str, str]]:
     stale = "is not shorter than the stale-reading limit, limits.stale_after 1 s"
     # found by a sweep: a settle given 1e9 s on a drifting lab never ended; a bound with no unit
     endless = variant(tmp_path, QUICK, "  max_time: 30 s", "  max_time: 1e9 s", "endless.yaml")
+    # a sweep: a vented band of 50 kPa passed against the instrument's 270 kPa trip
+    wide = variant(tmp_path, QUICK, "  baseline_tolerance: 1 kPa", "  baseline_tolerance: 50 kPa", "wide.yaml")
     return [
         ("gauge pattern without its group", ["--instrument", str(nogroup)], nogroup, "regex: '^P",
          "no group named 'value'"),
@@ -59,6 +61,7 @@ def cases(tmp_path: Path) -> list[tuple[str, list[str], Path, str, str]]:
         ("inlet and vent open at start", ["--sim", str(sim)], sim, "initial_open:", "inlet and the vent"),
         ("fill time-out of 1e12 s", [], fill, "timeout: 1e12", "fill.timeout: 1e+12 s must be at most 3600 s"),
         ("settle of 1e9 s", [], endless, "max_time: 1e9", "settle.max_time: 1e+09 s must be at most 14400 s"),
+        ("a vented band of 50 kPa", [], wide, "baseline_tolerance: 50", "at most a tenth of the instrument's"),
         # each used to load and fault with a stale-reading trip at the first tick
         ("simulator sampled slower than its stale limit", ["--sim", str(slow_sim)], slow_sim, "sample_period:", stale),
         ("hardware sampled slower than its stale limit", ["--instrument", str(slow_gauge)], slow_gauge,
@@ -69,10 +72,10 @@ def cases(tmp_path: Path) -> list[tuple[str, list[str], Path, str, str]]:
 
 
 @pytest.mark.parametrize("verb", ["check", "run"])
-@pytest.mark.parametrize("index", range(9))
+@pytest.mark.parametrize("index", range(10))
 def test_refused_at_load_with_file_line_col(tmp_path, capsys, verb, index):
     name, opts, bad, key, words = cases(tmp_path)[index]
-    seq = str(bad) if bad.name in ("fill.yaml", "endless.yaml") else "quick-demo"
+    seq = str(bad) if bad.name in ("fill.yaml", "endless.yaml", "wide.yaml") else "quick-demo"
     if verb == "run" and not opts:
         opts = ["--sim"]
     tail = ["--no-dry-run"] if verb == "check" else ["--quiet", "--data", str(tmp_path / "d")]
