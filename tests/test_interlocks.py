@@ -527,7 +527,7 @@ def test_an_inlet_stuck_open_near_supply_trips_inlet_leak_one_window_after_the_f
     # and it names the limits that tripped, where to change them (a sweep: a 2 kPa-noisy transducer tripped
     # this at rest, and nothing said which key governs it)
     assert trip.message.endswith("; limits: limits.closed_inlet_rise, limits.closed_inlet_window in the "
-                                 "instrument config")
+                                 "instrument config (a simulated one's: its simulator config)")
     assert trip.t == pytest.approx(5.0 + LIMITS.closed_inlet_window, abs=0.15)  # one window after
 
 

@@ -494,8 +494,8 @@ SAMPLE_KINDS = tuple(r.kind for r in RULES)
 #: What a trip's message ends with: the instrument-config keys of the limits its rule read.  Why: a
 #: transducer noisier than a limit trips it (2 kPa of noise against the inlet-leak rule's 2 kPa in 5 s
 #: tripped at rest, and a reset was refused), and the message named neither key nor file (a sweep)
-_LIMIT_KEYS = {r.kind: "; limits: " + ", ".join(f"limits.{f}" for f in r.fields) + " in the instrument config"
-               for r in RULES}
+_LIMIT_KEYS = {r.kind: "; limits: " + ", ".join(f"limits.{f}" for f in r.fields)
+               + " in the instrument config (a simulated one's: its simulator config)" for r in RULES}
 
 
 # -------------------------------------------------------------------------------------- monitor
