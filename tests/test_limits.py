@@ -86,6 +86,14 @@ def test_simulator_limits_default_from_its_relief_valve_and_take_overrides(tmp_p
     assert lim.frozen_after == 4.0 and lim.vent_timeout == Limits.model_fields["vent_timeout"].default
 
 
+def test_a_limit_takes_a_gauge_tag_and_refuses_an_absolute_one():
+    # found by a sweep: '1.8 barg' was an unknown unit in an instrument config's limits
+    assert Limits.model_validate({"max_pressure": "1.8 barg", "relief_setting": "2.5 bar"}).max_pressure == \
+        pytest.approx(1.8e5)
+    with pytest.raises(ValueError, match="tagged absolute, but this pressure is gauge"):
+        Limits.model_validate({"max_pressure": "2.8 bara", "relief_setting": "3.5 bar"})
+
+
 def test_limits_from_code_are_si_and_bounded_too():
     assert Limits(max_pressure=2e5, relief_setting=3e5).max_pressure == 2e5  # plain floats are SI in code
     with pytest.raises(ValueError, match="below the relief"):

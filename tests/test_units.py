@@ -119,6 +119,7 @@ def test_gauge_tags():
     assert u.parse_pressure_spec("2.3 bara") == (pytest.approx(2.3e5), False)
     assert u.parse_pressure_spec("1013 mbar") == (pytest.approx(1.013e5), None)
     assert u.parse_pressure_spec("1.3 Pa") == (pytest.approx(1.3), None)  # 'Pa' is not P + 'a'
+    assert u.parse_pressure_spec("130 kPag") == (pytest.approx(1.3e5), True)  # as '130 kPa(g)' was
 
 
 def test_a_gauge_key_takes_a_gauge_tag_and_refuses_an_absolute_one():

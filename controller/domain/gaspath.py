@@ -16,7 +16,7 @@ from pycnoctl.controller.domain.units import (
     UnitError,
     parse_duration,
     parse_fraction,
-    parse_pressure,
+    parse_gauge_pressure,
     parse_rate,
     parse_volume,
 )
@@ -178,7 +178,8 @@ MAX_RATE = 1.0e9  # Pa/s: 200 x the fastest regulator failure the tests inject (
 
 
 def _bounded(dimension: str, example: str, hi: float) -> Any:
-    parse = {"pressure": parse_pressure, "rate": parse_rate, "duration": parse_duration}[dimension]
+    # a limit's pressure is gauge: '1.8 barg' is welcome, '2.8 bara' refused (it would be read as gauge)
+    parse = {"pressure": parse_gauge_pressure, "rate": parse_rate, "duration": parse_duration}[dimension]
     return BeforeValidator(_quantity(parse, example, 0.0, hi, dimension))
 
 

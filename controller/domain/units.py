@@ -302,7 +302,7 @@ def parse_fraction(value: Any) -> float:
 # the tag after the unit: '(g)', 'gauge', 'abs', or glued to bar or psi as the trade writes it ('1.3 barg',
 # '19 psia'; a bare '1.3 barg' was an unknown unit with no word that the key is gauge already)
 _GAUGE_SUFFIX = re.compile(r"\s*(?:\((?P<g1>g|gauge|a|abs|absolute)\)|\b(?P<g2>gauge|absolute|abs)|"
-                           r"(?<=bar|psi)(?P<g3>g|a))\s*$", re.IGNORECASE)
+                           r"(?<=bar|psi)(?P<g3>g|a)|(?<=kPa|MPa)(?P<g4>g))\s*$", re.IGNORECASE)
 
 
 def parse_pressure_spec(value: Any, *, default_unit: str = "bar") -> tuple[float, bool | None]:
@@ -315,7 +315,7 @@ def parse_pressure_spec(value: Any, *, default_unit: str = "bar") -> tuple[float
     m = _GAUGE_SUFFIX.search(value)
     if not m:
         return parse_pressure(value, default_unit=default_unit), None
-    tag = (m.group("g1") or m.group("g2") or m.group("g3")).lower()
+    tag = (m.group("g1") or m.group("g2") or m.group("g3") or m.group("g4")).lower()
     gauge = tag in ("g", "gauge")
     return parse_pressure(value[: m.start()], default_unit=default_unit), gauge
 
