@@ -161,7 +161,7 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
             where = ".".join(loc)
             if not v > 0:
                 errors.append((loc, f"{where}: a chamber volume must be positive, got {v * 1e6:g} cm^3"))
-            elif v > MAX_CHAMBER:  # '12 m^3' for '12 cm^3' (1e30 cm^3 passed, found by a sweep)
+            elif v > MAX_CHAMBER * (1.0 + 1e-9):  # '12 m^3' for '12 cm^3' (1e30 cm^3 passed, found by a sweep)
                 errors.append((loc, f"{where}: {v * 1e6:g} cm^3 is more than {MAX_CHAMBER * 1e3:g} litres, "
                                     "beyond any gas pycnometer's chamber: give the volume in cm^3"))
     short = sample_period_problem(cfg.sample_period)
