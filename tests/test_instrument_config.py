@@ -268,3 +268,9 @@ def test_a_simulated_instrument_is_held_to_its_simulator_configs_stale_limit(tmp
                  .replace("thermometer: {kind: sim}", "thermometer: {kind: sim, config: slow-sim.yaml}")
                  .replace("barometer: {kind: sim}", "barometer: {kind: sim, config: slow-sim.yaml}"))
     assert load_instrument_config(p).sample_period == 2.0
+
+
+def test_a_chamber_of_exactly_the_largest_volume_loads(tmp_path):
+    # '100 L' was refused as "more than 100 litres": the unit conversion rounds it a hair above 0.1 m^3
+    cfg = load_instrument_config(write_variant(tmp_path, "    large: 22.0 cm^3", "    large: 100 L"))
+    assert cfg.chambers.expansion["large"] == pytest.approx(0.1)
