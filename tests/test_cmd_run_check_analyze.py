@@ -93,6 +93,23 @@ def test_check_fails_a_dry_run_that_misses_the_simulated_specimen(tmp_path, caps
     assert main(["check", "quick-demo", "--sim"]) == 0  # the consistent one passes
 
 
+def test_check_of_a_hardware_config_says_when_the_sequence_opens_a_forbidden_pair(tmp_path, capsys):
+    """Found by a sweep: 'forbidden: [[inlet, small]]' passed check (its dry run is on the built-in simulator,
+    whose valves have other names), and every real run faulted at its first purge pulse, which opens the
+    inlet with the run's expansion valve.  The dry run's valve sets are named again by role."""
+    root = Path(__file__).resolve().parents[1]
+    text = (root / "drivers" / "instruments" / "usb-relay-serial-gauge.yaml").read_text()
+    assert "  - [inlet, vent]\n" in text
+    cfg = tmp_path / "lab.yaml"
+    cfg.write_text(text.replace("  - [inlet, vent]\n", "  - [inlet, vent]\n  - [inlet, small]\n"))
+    assert main(["check", "quick-demo", "--instrument", str(cfg), "--json"]) == 3
+    out = json.loads(capsys.readouterr().out)
+    assert out["dry_run"]["forbidden"] == ["the sequence opens inlet and small together (purge_fill), which "
+                                           "forbidden: lists"]
+    cfg.write_text(text.replace("  - [inlet, vent]\n", "  - [inlet, vent]\n  - [inlet, large]\n"))
+    assert main(["check", "quick-demo", "--instrument", str(cfg)]) == 0  # the run uses 'small': no clash
+
+
 def test_check_against_a_hardware_config_opens_no_port(capsys):
     root = Path(__file__).resolve().parents[1]
     cfg = root / "drivers" / "instruments" / "usb-relay-serial-gauge.yaml"

@@ -79,6 +79,8 @@ def dry_run(seq_ref: str, make_instrument: Callable[[], Instrument], keep: Path 
                 summary = execute(prepared, Controller(instrument), root=root / "runs", catalog=catalog)
             finally:
                 catalog.close()
+            summary["valve_sets"] = _open_together(root / "runs" / summary["run_id"])
+        summary["sim_roles"] = instrument.roles
         sim = instrument.extras.get("sim")
         truth = getattr(getattr(getattr(sim, "config", None), "sample", None), "solid_volume", None)
         summary["sim_truth_cm3"] = truth * 1e6 if isinstance(truth, int | float) else None
@@ -87,6 +89,43 @@ def dry_run(seq_ref: str, make_instrument: Callable[[], Instrument], keep: Path 
         instrument.close()
         if lock is not None:
             lock.release()
+
+
+def _open_together(folder: Path) -> list[tuple[str, frozenset[str]]]:
+    """Each distinct (state, valves open together) the dry run commanded, from its record's trace."""
+    from pycnoctl.controller.record.runfolder import load_run
+
+    run = load_run(folder)
+    cols = [c for c in run.trace if c.startswith("valve_")]
+    seen: dict[tuple[str, frozenset[str]], None] = {}
+    for i, state in enumerate(run.trace["state"]):
+        opened = frozenset(c.removeprefix("valve_") for c in cols if float(run.trace[c][i]) > 0.5)
+        seen.setdefault((str(state), opened), None)
+    return list(seen)
+
+
+def forbidden_on_hardware(summary: dict[str, Any], cfg: Any) -> list[str]:
+    """The hardware config's forbidden valve pairs that the sequence's own commands would open together.
+
+    The dry run of a hardware config runs on the built-in simulator, whose valves have other names: each
+    set it opened is named again by role (inlet, vent, the expansion volume's valve) in the config.
+    Found by a sweep: a pair every run opens (the inlet and the run's expansion valve, in every purge
+    pulse) passed check, and the first real purge faulted on it."""
+    from pycnoctl.drivers.guarded import violations
+
+    forbidden, hw, sim = cfg.forbidden_sets(), cfg.valve_roles, summary.get("sim_roles")
+    if not forbidden or hw is None or sim is None:
+        return []
+    name = {sim.inlet: hw.inlet, sim.vent: hw.vent}
+    name.update({valve: hw.expansion[vol] for vol, valve in sim.expansion.items() if vol in hw.expansion})
+    out = []
+    for state, opened in summary.get("valve_sets") or []:
+        mine = {name[v]: True for v in opened if v in name}
+        for combo in violations(mine, forbidden):
+            line = f"the sequence opens {' and '.join(sorted(combo))} together ({state}), which forbidden: lists"
+            if line not in out:
+                out.append(line)
+    return out
 
 
 def _off_the_specimen(summary: dict[str, Any]) -> str | None:
@@ -181,6 +220,13 @@ def main(args: argparse.Namespace) -> int:
             "not_a_measurement": summary.get("impossible"), "simulated_specimen_cm3": summary.get("sim_truth_cm3"),
         }
         code = 0 if summary["status"] == "completed" else 3
+        if real_hardware:
+            clash = forbidden_on_hardware(summary, cfg)
+            if clash:  # every run would fault there (the guard refuses the command): a fault before any
+                report["dry_run"]["forbidden"] = clash
+                report["dry_run"]["warnings"] = [*report["dry_run"]["warnings"],
+                                                 *(f"{c}: every run would fault there" for c in clash)]
+                code = 3
         off = _off_the_specimen(summary)
         if off:  # the simulator knows its specimen: a dry run that misses it says the configs disagree
             report["dry_run"]["warnings"] = [*summary["warnings"], off]
