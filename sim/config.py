@@ -345,9 +345,7 @@ class SimConfig(_Strict):
         # valve into the same volume hid a volume and measured with both open (found by a sweep: exit 0,
         # -23 million cm3, no expansion at all)
         into: dict[str, str] = {}
-        for vname in roles["expansion"]:
-            a, b = self.valves[vname].between
-            far = b if a == self.cell else a
+        for vname, far in self.expansion_volumes().items():
             if far in into:
                 out.append((("valves", vname, "between"), f"expansion valves {into[far]!r} and {vname!r} both "
                             f"open into {far!r}: give each expansion volume its own valve"))

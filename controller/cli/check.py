@@ -60,9 +60,11 @@ def static_check(seq_ref: str, *, expansion_volumes: list[str], max_pressure: fl
     return seq, warnings
 
 
-def dry_run(seq_ref: str, make_instrument: Callable[[], Instrument], keep: Path | None = None) -> dict[str, Any]:
+def dry_run(seq_ref: str, make_instrument: Callable[[], Instrument], keep: Path | None = None, *,
+            valve_sets: bool = False) -> dict[str, Any]:
     """Run the sequence on a fresh simulated instrument at full speed; the record goes to a temporary
-    folder, or to the data folder ``keep`` (under its writer lock, like any run)."""
+    folder, or to the data folder ``keep`` (under its writer lock, like any run).  valve_sets: also the
+    valves it opened together, read back from the record (forbidden_on_hardware)."""
     from pycnoctl.controller.cli.common import lock_data_folder
     from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
     from pycnoctl.controller.record.catalog import Catalog
@@ -79,7 +81,10 @@ def dry_run(seq_ref: str, make_instrument: Callable[[], Instrument], keep: Path 
                 summary = execute(prepared, Controller(instrument), root=root / "runs", catalog=catalog)
             finally:
                 catalog.close()
-            summary["valve_sets"] = _open_together(root / "runs" / summary["run_id"])
+            if valve_sets:
+                roles = instrument.roles
+                summary["valve_sets"] = _open_together(root / "runs" / summary["run_id"],
+                                                       [roles.inlet, roles.vent, *roles.expansion.values()])
         summary["sim_roles"] = instrument.roles
         sim = instrument.extras.get("sim")
         truth = getattr(getattr(getattr(sim, "config", None), "sample", None), "solid_volume", None)
@@ -91,11 +96,11 @@ def dry_run(seq_ref: str, make_instrument: Callable[[], Instrument], keep: Path 
             lock.release()
 
 
-def _open_together(folder: Path) -> list[tuple[str, frozenset[str]]]:
-    """Each distinct (state, valves open together) the dry run commanded, from its record's trace."""
+def _open_together(folder: Path, valves: list[str]) -> list[tuple[str, frozenset[str]]]:
+    """Each distinct (state, these valves open together) the dry run commanded, from its record's trace."""
     from pycnoctl.controller.record.runfolder import load_run
 
-    run = load_run(folder)
+    run = load_run(folder, trace_columns=["state", *(f"valve_{v}" for v in valves)])
     cols = [c for c in run.trace if c.startswith("valve_")]
     seen: dict[tuple[str, frozenset[str]], None] = {}
     for i, state in enumerate(run.trace["state"]):
@@ -209,7 +214,7 @@ def main(args: argparse.Namespace) -> int:
             from pycnoctl.controller.jobs.measurement import data_dir
 
             keep = data_dir(args.data)
-        summary = dry_run(args.sequence, factory, keep)
+        summary = dry_run(args.sequence, factory, keep, valve_sets=real_hardware)
         report["dry_run"] = {
             "simulator": where,
             "status": summary["status"], "expected_duration_s": summary["instrument_time_s"],
@@ -229,7 +234,7 @@ def main(args: argparse.Namespace) -> int:
                 code = 3
         off = _off_the_specimen(summary)
         if off:  # the simulator knows its specimen: a dry run that misses it says the configs disagree
-            report["dry_run"]["warnings"] = [*summary["warnings"], off]
+            report["dry_run"]["warnings"] = [*report["dry_run"]["warnings"], off]
             code = code or 7
         if summary.get("impossible"):
             code = code or 7

@@ -249,16 +249,19 @@ def absent_ports(path: str | Path, cfg: Any) -> list[Problem]:
 
 
 def check_before_opening(args: argparse.Namespace, sequence: str | Path | None,
-                         expansion_volume: str | None = None, *, one_volume: bool = True) -> None:
+                         expansion_volume: str | None = None, *, one_volume: bool = True,
+                         a_run: bool = False) -> None:
     """Everything that can be proved without a device, proved before any device is opened: the
     instrument config, the ports it names, the sequence file and the sequence against the config's
     names, limits and sample period.  A refusal after opening would already have commanded the valves (closing an
     instrument asserts the safe state).  one_volume: the run uses the sequence's (or the given)
-    expansion volume, so it must be one the instrument has."""
+    expansion volume, so it must be one the instrument has.  a_run: the sequence is a run of its own
+    (`run`), which a calibration sequence is not (run.sequence.not_for_a_run)."""
     from pycnoctl.controller.run.sequence import (
         SequenceNotFound,
         check_against_instrument,
         load_sequence,
+        not_for_a_run,
         resolve_sequence,
     )
 
@@ -285,6 +288,9 @@ def check_before_opening(args: argparse.Namespace, sequence: str | Path | None,
         seq = load_sequence(resolve_sequence(sequence))
     except SequenceNotFound as exc:
         raise UsageError(str(exc)) from None
+    why = not_for_a_run(seq) if a_run else None
+    if why is not None:
+        raise UsageError(why)
     if facts is None:  # a simulated instrument: prepare() checks against it once it is built
         return
     names, max_pressure, gas, sample_period = facts
@@ -293,8 +299,12 @@ def check_before_opening(args: argparse.Namespace, sequence: str | Path | None,
     if problems:
         raise ConfigError(problems)
     choice = expansion_volume or seq.expand.volume
-    if one_volume and choice != "auto" and choice not in names:
-        raise UsageError(f"unknown expansion volume {choice!r}; the instrument has: {', '.join(names)}")
+    if one_volume and choice != "auto":
+        from pycnoctl.controller.jobs.measurement import unknown_volume
+
+        unknown = unknown_volume(choice, names)
+        if unknown is not None:
+            raise UsageError(unknown)
 
 
 def _open_failure(path: str | Path, exc: Exception) -> ConfigError:

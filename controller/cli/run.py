@@ -78,22 +78,13 @@ def main(args: argparse.Namespace) -> int:
     sim_pace(args)
     request = request_from_args(args)
     # every input proved before the data folder is touched or any device opened
-    check_before_opening(args, request.sequence, request.expansion_volume)
-    _refuse_a_calibration_sequence(request.sequence)
+    check_before_opening(args, request.sequence, request.expansion_volume, a_run=True)
     root = data_dir(args.data)
     lock = lock_data_folder(root, "run")  # before any device is opened: a second writer touches nothing
     try:
         return _run(args, request, root)
     finally:
         lock.release()
-
-
-def _refuse_a_calibration_sequence(sequence: Any) -> None:
-    from pycnoctl.controller.run.sequence import load_sequence, not_for_a_run, resolve_sequence
-
-    why = not_for_a_run(load_sequence(resolve_sequence(sequence)))  # proved loadable just before
-    if why is not None:
-        raise UsageError(why)
 
 
 def _run(args: argparse.Namespace, request: Any, root: Any) -> int:

@@ -103,6 +103,13 @@ class PreparedRun:
     warnings: list[str] = field(default_factory=list)
 
 
+def unknown_volume(name: str, names: list[str]) -> str | None:
+    """Why ``name`` is no expansion volume of an instrument that has ``names``, or None."""
+    if name in names:
+        return None
+    return f"unknown expansion volume {name!r}; the instrument has: {', '.join(names)}"
+
+
 def prepare(request: RunRequest, instrument: Instrument, catalog: Catalog | None = None) -> PreparedRun:
     """Load and check the sequence against the instrument; ConfigError lists every problem.
 
@@ -133,8 +140,8 @@ def prepare(request: RunRequest, instrument: Instrument, catalog: Catalog | None
         else:
             choice = advise(estimate, cell, volumes, p1_gauge=seq.fill.target, u_p=_settled_u(seq, instrument),
                             cov_cal={n: np.asarray(c.cov, dtype=float) for n, c in cal.items()}).best
-    elif choice not in names:
-        raise ValueError(f"unknown expansion volume {choice!r}; the instrument has: {', '.join(names)}")
+    elif (unknown := unknown_volume(choice, names)) is not None:
+        raise ValueError(unknown)
     defaults = seq.sample_defaults  # what the command line did not give, the sequence file may
     if request.mass is None and defaults.mass is not None:
         request = dataclasses.replace(request, mass=defaults.mass)

@@ -776,12 +776,18 @@ def load_run(folder: Path | str, trace_columns: Collection[str] | None = None) -
         trace, torn = _read_trace(trace_path, columns, side=side if summary_path.exists() else None, only=only)
     events, torn_ev = _read_events(folder / "events.jsonl")
     cycles = _read_cycles(folder / "cycles.csv")
-    summary = _read_json(summary_path)
+    summary = read_summary(summary_path)
+    return StoredRun(folder, meta, trace, events, cycles, summary, torn, torn_ev)
+
+
+def read_summary(path: Path) -> dict | None:
+    """A run's summary.json: None when absent, DamagedFile when it is not JSON or not shaped as a summary."""
+    summary = _read_json(path)
     if summary is not None:
         bad = _summary_shape(summary)
         if bad is not None:
-            raise DamagedFile(summary_path, bad)
-    return StoredRun(folder, meta, trace, events, cycles, summary, torn, torn_ev)
+            raise DamagedFile(path, bad)
+    return summary
 
 
 #: results keys that hold a figure (number or null): their names end so

@@ -40,6 +40,7 @@ GAS_THERMOMETER_BLOCK = 5.0
 HELD_SHARE = 0.4  # a transducer updating every second sample repeats half of them
 HELD_RISE = 100.0
 HELD_MIN_SAMPLES = 20
+_NO_FILL = (0, 0, math.nan, math.nan)  # RunEngine._held before a fill's first sample
 
 #: Run states (controller.domain.states.RunState). ``settle_filled`` and ``settle_expanded`` are the two
 #: settles of a cycle; ``baseline`` is the closed, vented system settling to the wall temperature before
@@ -124,7 +125,7 @@ class RunEngine:
         self._warned: set[str] = set()
         self._tblock: tuple[int, float, int] | None = None  # (block, sum, count) of thermometer readings
         self._tmeans = (math.inf, -math.inf)  # the lowest and highest 5-second mean since the fill began
-        self._held = (0, 0, math.nan, math.nan, math.nan)  # this fill's samples, repeats, first/last raw, gauge
+        self._held = _NO_FILL  # this fill's valid samples, those repeating the one before, last raw, first gauge
         self._purge_pulse = 0
         self._status: SettleStatus | None = None  # the measurer's answer on the current sample
         self.converged_early = False
@@ -229,7 +230,7 @@ class RunEngine:
         return {v: v == self.exp_valve for v in self.roles.expansion.values()}
 
     def on_enter_purge_fill(self) -> None:
-        self._held = (0, 0, math.nan, math.nan, math.nan)
+        self._held = _NO_FILL
         self._set(**{self.roles.vent: False}, **self._expansions_for_run())
         self._check_supply()
         self._set(**{self.roles.inlet: True})
@@ -267,7 +268,7 @@ class RunEngine:
 
     def on_enter_fill(self) -> None:
         self._tblock, self._tmeans = None, (math.inf, -math.inf)  # _watch_thermometer: this fill's means
-        self._held = (0, 0, math.nan, math.nan, math.nan)
+        self._held = _NO_FILL
         self.cycle_number += 1
         zero = self.meter.zero
         self.emit("cycle", {"cycle": self.cycle_number, "baseline": zero.value if zero else math.nan})
@@ -304,9 +305,8 @@ class RunEngine:
             if state in (S.FILL, S.SETTLE_FILLED) and math.isfinite(temp):
                 self._watch_thermometer(s.t, temp)
             if (state == S.FILL or state == S.PURGE_FILL) and s.pressure.valid:
-                n, repeats, first, last, g0 = self._held
-                self._held = (n + 1, repeats + (s.pressure.value == last), first if n else s.pressure.value,
-                              s.pressure.value, g0 if n else s.gauge)
+                n, repeats, last, g0 = self._held
+                self._held = (n + 1, repeats + (s.pressure.value == last), s.pressure.value, g0 if n else s.gauge)
             step(s)
 
     def _watch_held(self, gauge: float) -> None:
@@ -315,7 +315,7 @@ class RunEngine:
         as steps and as fewer noise-free samples than there are: on the simulator a 1 Hz gauge read every
         0.1 s never saw its zero settle in 600 s, and a settle taken on such samples states too small an
         uncertainty.  Refused at the first fill that shows it, naming the cure, before any cycle."""
-        n, repeats, _first, _last, g0 = self._held
+        n, repeats, _last, g0 = self._held
         rise = gauge - g0
         if n < HELD_MIN_SAMPLES or repeats < HELD_SHARE * n or not rise >= HELD_RISE * n:
             return

@@ -261,9 +261,8 @@ class RiseRate(Rule):
         new = raw != self.last_raw
         self.last_raw = raw
         self.changes = self.changes + 1 if new else 0
-        rate = self.samples.add(t, g)
-        if self.changes < self.n - 1:  # a hold inside the window: its steps are not the pressure's
-            rate = math.nan
+        # a hold inside the window: its steps are not the pressure's, and its slope is not asked for
+        rate = self.samples.add(t, g, judge=self.changes >= self.n - 1)
         if new:
             fresh = self.fresh.add(t, g)
             if math.isnan(rate) or fresh > rate:
@@ -289,15 +288,16 @@ class _Window:
         self.calm = limit * (1.0 - 1e-6)  # the margin keeps rounding out of the argument
         self.calm_steps = 0  # consecutive calm steps up to the newest point
 
-    def add(self, t: float, g: float) -> float:
-        """Add a point; the window's slope, or nan when it is not full or every step is calm."""
+    def add(self, t: float, g: float, *, judge: bool = True) -> float:
+        """Add a point; the window's slope, or nan when it is not full, every step is calm or it is not
+        to be judged (the point is kept either way)."""
         points = self.points
         if points:
             t_prev, g_prev = points[-1]
             dt = t - t_prev
             self.calm_steps = self.calm_steps + 1 if dt > 0 and g - g_prev < self.calm * dt else 0
         points.append((t, g))
-        if len(points) < self.n or self.calm_steps >= self.n - 1:
+        if not judge or len(points) < self.n or self.calm_steps >= self.n - 1:
             return math.nan
         return _slope_pairs(points)
 

@@ -49,7 +49,7 @@ from pydantic_core import PydanticCustomError
 
 from pycnoctl.controller.domain import units
 from pycnoctl.controller.domain.gas import GASES, UnknownGas, get_gas
-from pycnoctl.controller.domain.gaspath import VENTED_SHARE
+from pycnoctl.controller.domain.gaspath import vented_band_problem
 from pycnoctl.controller.domain.text import plain
 from pycnoctl.controller.domain.yamlio import MAX_BYTES, ConfigError, Document, Loc, Problem, load_file, parse_text
 
@@ -691,13 +691,10 @@ def check_against_instrument(
                 f"{limit / 1e5:.4g} bar (max_pressure {max_pressure / 1e5:.4g} bar less a "
                 f"{margin * 100:g} % margin)")))
 
-    # the vent's 'vented' band against the instrument's trip, as the instrument's own limit is held (found by a
-    # sweep: 50 kPa passed against a 180 kPa max_pressure, so a cell at half a bar counted as vented)
-    tolerance = seq.vent.baseline_tolerance
-    if tolerance > VENTED_SHARE * max_pressure:
-        problems.append(problem(("vent", "baseline_tolerance"), (
-            f"vent.baseline_tolerance {tolerance / 1e3:.4g} kPa would call a cell that far above the lab's pressure "
-            f"vented; at most a tenth of the instrument's max_pressure ({VENTED_SHARE * max_pressure / 1e3:.4g} kPa)")))
+    wide = vented_band_problem("vent.baseline_tolerance", seq.vent.baseline_tolerance, max_pressure,
+                               "the instrument's max_pressure")
+    if wide is not None:  # the vent's band against the instrument's trip, as the instrument's own is held
+        problems.append(problem(("vent", "baseline_tolerance"), wide))
 
     if sample_period is not None:
         problems.extend(problem(loc, msg) for loc, msg in window_rules(seq, sample_period))

@@ -39,7 +39,7 @@ from starlette.staticfiles import StaticFiles
 
 from pycnoctl.controller.domain.states import vocabulary
 from pycnoctl.controller.record.catalog import CatalogError, RunRow, is_run_id
-from pycnoctl.controller.record.runfolder import DamagedFile
+from pycnoctl.controller.record.runfolder import DamagedFile, read_summary
 from pycnoctl.controller.service import schemas as s
 from pycnoctl.controller.service.daemon import Daemon, SubmitError
 from pycnoctl.controller.service.security import COOKIE, Policy, SecurityMiddleware, token_matches
@@ -234,15 +234,9 @@ def get_run(run_id: RunId, d: DaemonDep) -> Any:
     folder = _folder(d, row)
     summary = folder / "summary.json" if folder else None
     if summary is not None and summary.exists():
-        try:
-            doc = json.loads(summary.read_text(encoding="utf-8"))
-            if not isinstance(doc, dict):
-                raise ValueError(f"not a JSON object (a {type(doc).__name__})")
-            results = doc.get("results", {})
-            if not isinstance(results, dict):  # {"results": 5} failed the response model: a 500 (a sweep)
-                raise ValueError(f"its 'results' is not a JSON object (a {type(results).__name__})")
-            out["summary"] = results
-        except (OSError, ValueError, RecursionError) as exc:  # said, not left as a silent null
+        try:  # the run folder's own reader: damage is named as the report names it
+            out["summary"] = (read_summary(summary) or {}).get("results", {})
+        except (OSError, ValueError) as exc:  # said, not left as a silent null
             out["record_problems"] = [f"summary.json is damaged: {_unreadable(exc)}"]
     # links only to what exists: a run cancelled in the queue, or refused before it started, has no record
     have = {"trace.csv": folder is not None and (folder / "trace.csv").exists(),
@@ -254,15 +248,11 @@ def get_run(run_id: RunId, d: DaemonDep) -> Any:
 
 def _unreadable(exc: BaseException) -> str:
     """What is wrong with a run file, in words that carry no path of this machine."""
-    if isinstance(exc, json.JSONDecodeError):
-        return f"not JSON ({exc.msg} at line {exc.lineno} column {exc.colno})"
-    if isinstance(exc, UnicodeDecodeError):
-        return "not UTF-8 text"
-    if isinstance(exc, RecursionError):
-        return "nested too deeply to read"
+    if isinstance(exc, DamagedFile):
+        return exc.detail
     if isinstance(exc, OSError):
         return f"cannot be read ({exc.strerror or type(exc).__name__})"
-    return str(exc)
+    return type(exc).__name__
 
 
 def _missing(row: RunRow, what: str) -> Response:

@@ -37,7 +37,14 @@ from typing import Any
 
 from pycnoctl.controller.domain.yamlio import ConfigError, Problem
 from pycnoctl.controller.jobs.calibration_use import CalibrationRefused, calibration_brief, find_calibration
-from pycnoctl.controller.jobs.measurement import RunFault, RunRequest, execute, prepare, specimen_problem
+from pycnoctl.controller.jobs.measurement import (
+    RunFault,
+    RunRequest,
+    execute,
+    prepare,
+    specimen_problem,
+    unknown_volume,
+)
 from pycnoctl.controller.maths import results
 from pycnoctl.controller.record.catalog import Catalog, is_run_id
 from pycnoctl.controller.record.runfolder import atomic_write
@@ -685,10 +692,10 @@ class Daemon:
         problem = specimen_problem(mass, u_mass, bulk_volume, u_bulk_volume)
         if problem is not None:
             raise SubmitError(problem[1], field=problem[0])
-        names = list(self.instrument.roles.expansion)
-        if expansion_volume is not None and expansion_volume not in names:  # at its field, for a form
-            raise SubmitError(f"unknown expansion volume {expansion_volume!r}; the instrument has: "
-                              f"{', '.join(names)}", field="expansion_volume")
+        unknown = None if expansion_volume is None else \
+            unknown_volume(expansion_volume, list(self.instrument.roles.expansion))
+        if unknown is not None:  # as prepare says it, at its field, for a form
+            raise SubmitError(unknown, field="expansion_volume")
         request = {"sequence": sequence, "sequence_text": sequence_text, "sample_id": sample_id, "mass": mass,
                    "u_mass": u_mass, "bulk_volume": bulk_volume, "u_bulk_volume": u_bulk_volume,
                    "operator": operator,
