@@ -122,6 +122,18 @@ def test_gauge_tags():
     assert u.parse_pressure_spec("130 kPag") == (pytest.approx(1.3e5), True)  # as '130 kPa(g)' was
 
 
+def test_pressure_units_in_capitals_as_gauges_print_them():
+    # found by a sweep: '1.3 BARG' was refused quoting '1.3 BAR' (the unit registry is case-sensitive)
+    assert u.parse_pressure_spec("1.3 BARG") == (pytest.approx(1.3e5), True)
+    assert u.parse_pressure_spec("19 PSIG") == (pytest.approx(19 * 6894.757, rel=1e-6), True)
+    assert u.parse_pressure_spec("2.3 BARA") == (pytest.approx(2.3e5), False)
+    assert u.parse_pressure("500 MBAR") == pytest.approx(5e4)
+    assert u.parse_pressure("2 MPA") == pytest.approx(2e6)  # megapascal, as industry capitalises it
+    assert u.parse_pressure("130 KPA") == pytest.approx(1.3e5)
+    with pytest.raises(UnitError, match="unknown unit"):  # lower-case 'mpa' is not guessed
+        u.parse_pressure("1 mpa")
+
+
 def test_a_gauge_key_takes_a_gauge_tag_and_refuses_an_absolute_one():
     assert u.parse_gauge_pressure("1.3 barg") == pytest.approx(1.3e5)
     assert u.parse_gauge_pressure("1.3 bar gauge") == u.parse_gauge_pressure("1.3") == pytest.approx(1.3e5)

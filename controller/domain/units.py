@@ -246,9 +246,25 @@ def _out_of_lab(value: Any, shown: float, bounds: tuple[float, float], read_as: 
             + (f"give the unit, e.g. {example}" if bare else "check the value and its unit"))
 
 
+# pressure units as gauges' faces and labels print them in capitals ('1.3 BAR', '19 PSI'); pint's names
+# are case-sensitive and know none of these.  Only whole upper-case spellings are mapped: 'MPA' is megapascal
+# as industry writes it, a lower-case 'mpa' stays unknown rather than guessed.
+_UPPER_PRESSURE = {"PA": "Pa", "HPA": "hPa", "KPA": "kPa", "MPA": "MPa", "BAR": "bar", "MBAR": "mbar",
+                   "PSI": "psi", "TORR": "torr", "ATM": "atm"}
+
+
+def _lower_pressure_unit(value: Any) -> Any:
+    if not isinstance(value, str):
+        return value
+    m = _NUMBER_UNIT.match(value)
+    if m is None or m.group("unit") not in _UPPER_PRESSURE:
+        return value
+    return f"{m.group('num')} {_UPPER_PRESSURE[m.group('unit')]}"
+
+
 def parse_pressure(value: Any, *, default_unit: str = "bar") -> float:
     """Pressure in Pa (as given: absolute or gauge is the caller's business)."""
-    return parse_quantity(value, "pressure", default_unit=default_unit)
+    return parse_quantity(_lower_pressure_unit(value), "pressure", default_unit=default_unit)
 
 
 def parse_volume(value: Any, *, default_unit: str = "cm**3") -> float:
