@@ -24,7 +24,14 @@ from pycnoctl.controller.domain import yamlio
 from pycnoctl.controller.domain.clock import WallClock
 from pycnoctl.controller.domain.devices import PressureSensor, Thermometer, ValveBank
 from pycnoctl.controller.domain.gas import get_gas
-from pycnoctl.controller.domain.gaspath import Chambers, Limits, ValveRoles, sample_period_problem, stale_problem
+from pycnoctl.controller.domain.gaspath import (
+    Chambers,
+    Limits,
+    ValveRoles,
+    chamber_problem,
+    sample_period_problem,
+    stale_problem,
+)
 from pycnoctl.controller.domain.text import plain
 from pycnoctl.controller.domain.units import lab_pressure_problem
 from pycnoctl.drivers import registry
@@ -104,10 +111,6 @@ class InstrumentConfig(Strict):
 Finding = tuple[yamlio.Loc, str]
 
 
-#: m^3: the largest chamber volume a config may give (100 litres; the largest cells hold cores of a few litres)
-MAX_CHAMBER = 0.1
-
-
 def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
     errors: list[Finding] = []
     warnings: list[Finding] = []
@@ -158,12 +161,9 @@ def _cross_check(cfg: InstrumentConfig) -> tuple[list[Finding], list[Finding]]:
                            f"do not match valve_roles.expansion {sorted(roles.expansion)}"))
         for loc, v in [(("chambers", "cell"), cfg.chambers.cell),
                        *((("chambers", "expansion", name), v) for name, v in cfg.chambers.expansion.items())]:
-            where = ".".join(loc)
-            if not v > 0:
-                errors.append((loc, f"{where}: a chamber volume must be positive, got {v * 1e6:g} cm^3"))
-            elif v > MAX_CHAMBER * (1.0 + 1e-9):  # '12 m^3' for '12 cm^3' (1e30 cm^3 passed, found by a sweep)
-                errors.append((loc, f"{where}: {v * 1e6:g} cm^3 is more than {MAX_CHAMBER * 1e3:g} litres, "
-                                    "beyond any gas pycnometer's chamber: give the volume in cm^3"))
+            problem = chamber_problem(".".join(loc), v)
+            if problem is not None:  # 1e30 cm^3 passed once (found by a sweep)
+                errors.append((loc, problem))
     short = sample_period_problem(cfg.sample_period)
     if short is not None:
         errors.append((("sample_period",), short))

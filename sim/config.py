@@ -16,13 +16,14 @@ from typing import Annotated, Any, Literal
 from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
 
 from pycnoctl.controller.domain.gas import get_gas
-from pycnoctl.controller.domain.gaspath import Limits, sample_period_problem, stale_problem
+from pycnoctl.controller.domain.gaspath import Limits, chamber_problem, sample_period_problem, stale_problem
 from pycnoctl.controller.domain.text import plain
 from pycnoctl.controller.domain.units import (
     UnitError,
     lab_pressure_problem,
     lab_temperature_problem,
     parse_duration,
+    parse_gauge_pressure,
     parse_length,
     parse_pressure,
     parse_rate,
@@ -72,6 +73,9 @@ def _pos(f):  # type: ignore[no-untyped-def]
 Pressure = Annotated[float, BeforeValidator(lambda v: parse_pressure(v))]
 PosPressure = Annotated[float, BeforeValidator(_pos(lambda v: parse_pressure(v)))]
 NonNegPressure = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_pressure(v)))]
+# a pressure above the lab's: the trade's gauge tags are welcome ('1.4 barg'), an absolute one refused
+GaugePressure = Annotated[float, BeforeValidator(lambda v: parse_gauge_pressure(v))]
+PosGaugePressure = Annotated[float, BeforeValidator(_pos(lambda v: parse_gauge_pressure(v)))]
 Temperature = Annotated[float, BeforeValidator(lambda v: parse_temperature(v))]
 
 
@@ -91,8 +95,10 @@ LabPressure = Annotated[float, BeforeValidator(_plausible(parse_pressure, lab_pr
 LabTemperature = Annotated[float, BeforeValidator(_plausible(parse_temperature, lab_temperature_problem))]
 TempDiff = Annotated[float, BeforeValidator(lambda v: parse_temperature_difference(v))]
 NonNegTempDiff = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_temperature_difference(v)))]
-PosVolume = Annotated[float, BeforeValidator(_pos(lambda v: parse_volume(v)))]
-NonNegVolume = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_volume(v)))]
+# a chamber's volume, or a specimen's: '12 m^3' for '12 cm^3' is refused as the instrument config refuses it
+ChamberVolume = Annotated[float, BeforeValidator(_plausible(parse_volume, lambda v, out: chamber_problem("", out)))]
+SpecimenVolume = Annotated[float, BeforeValidator(
+    _plausible(_nonneg(lambda v: parse_volume(v)), lambda v, out: chamber_problem("", out) if out else None))]
 PosDuration = Annotated[float, BeforeValidator(_pos(lambda v: parse_duration(v)))]
 NonNegDuration = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_duration(v)))]
 PosLength = Annotated[float, BeforeValidator(_pos(lambda v: parse_length(v)))]
@@ -135,19 +141,19 @@ class Lab(_Strict):
 
 
 class Supply(_Strict):
-    set_pressure: PosPressure = 1.4e5  # gauge, what the regulator delivers
-    cylinder_pressure: PosPressure = 150e5  # gauge, the ceiling of a failed regulator
+    set_pressure: PosGaugePressure = 1.4e5  # what the regulator delivers
+    cylinder_pressure: PosGaugePressure = 150e5  # the ceiling of a failed regulator
     temperature: LabTemperature | None = None  # default: lab temperature
 
 
 class Volume(_Strict):
-    volume: PosVolume
+    volume: ChamberVolume
     thermal_tau: PosDuration | None = 3.0  # None (null) = adiabatic walls
 
 
 class Sample(_Strict):
-    solid_volume: NonNegVolume = 0.0
-    pore_volume: NonNegVolume = 0.0  # open pores that fill slowly
+    solid_volume: SpecimenVolume = 0.0
+    pore_volume: SpecimenVolume = 0.0  # open pores that fill slowly
     pore_tau: PosDuration = 60.0  # pore pressure relaxes to a steady cell pressure with this time constant
     pore_thermal_tau: PosDuration = 0.5
 
@@ -169,8 +175,8 @@ class Valve(Restriction):
 
 class Relief(_Strict):
     node: str = "cell"
-    set_pressure: PosPressure  # gauge
-    reseat: PosPressure | None = None  # gauge, where it starts to lift; default 0.95 x set (full lift at set)
+    set_pressure: PosGaugePressure
+    reseat: PosGaugePressure | None = None  # where it starts to lift; default 0.95 x set (full lift at set)
     diameter: PosLength = 1.5e-3
     cd: Fraction = 0.7
 
@@ -226,7 +232,7 @@ class OnOpening(_Strict):
 
 class OnPressure(_Strict):
     node: str = "cell"
-    pressure: Pressure  # gauge
+    pressure: GaugePressure
 
 
 FaultKind = Literal[
@@ -260,8 +266,8 @@ class Fault(_Strict):
 class Nominal(_Strict):
     """Volumes the instrument believes in (e.g. a deliberately wrong calibration); default: the truth."""
 
-    cell: PosVolume | None = None
-    expansion: dict[str, PosVolume] = {}
+    cell: ChamberVolume | None = None
+    expansion: dict[str, ChamberVolume] = {}
     # relative standard uncertainty the build states for its nominal volumes (k = 1); e.g. 0.005
     u: Annotated[float, Field(gt=0.0, le=0.5)] = 0.005
 
@@ -432,7 +438,7 @@ class SimConfig(_Strict):
         derived: dict[str, Any] = {"relief_setting": f"{relief!r} Pa"}
         given = self.limits.get("relief_setting", derived["relief_setting"])
         try:
-            derived["max_pressure"] = f"{0.9 * parse_pressure(given)!r} Pa"
+            derived["max_pressure"] = f"{0.9 * parse_gauge_pressure(given)!r} Pa"
         except (UnitError, TypeError):
             derived["max_pressure"] = None  # the section's relief_setting is refused on its own
         return Limits.model_validate({**derived, **self.limits}, context={DOCUMENT: True})

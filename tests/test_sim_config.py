@@ -187,3 +187,44 @@ def test_a_regulator_set_above_the_relief_valve_is_refused_at_its_line(tmp_path)
     [problem] = exc.value.problems
     at = 1 + next(i for i, x in enumerate(path.read_text().splitlines()) if x.startswith("supply:"))
     assert str(problem).startswith(f"{path}:{at}:") and "relief valve" in str(problem)
+
+
+@pytest.mark.parametrize("where", ["cell: {volume: 12 m^3}", "small: {volume: 8 m^3}"])
+def test_a_chamber_in_cubic_metres_is_refused_at_its_line_as_an_instrument_config_refuses_it(tmp_path, where):
+    # found by a sweep: a simulator's own volumes had no upper bound ('12 m^3' for '12 cm^3' loaded); the
+    # instrument config refuses a chamber over 100 litres, and so does this one now
+    name = where.split(":")[0]
+    probs = _problems(tmp_path, BASE.replace(f"{name}: {{volume: {'12' if name == 'cell' else '8'} cm^3}}", where))
+    [problem] = probs
+    assert problem.line == (3 if name == "cell" else 4) and "more than 100 litres" in problem.message
+
+
+def test_a_specimen_in_cubic_metres_is_refused_at_its_line(tmp_path):
+    probs = _problems(tmp_path, BASE + "sample: {solid_volume: 5 cm^3, pore_volume: 2 m^3}\n")
+    assert probs[0].line == 9 and "more than 100 litres" in probs[0].message
+
+
+def test_exactly_100_litres_loads_in_a_simulator_config(tmp_path):
+    p = tmp_path / "big.yaml"
+    p.write_text(BASE.replace("small: {volume: 8 cm^3}", "small: {volume: 100 L}"), encoding="utf-8")
+    assert load_sim_config(p).volumes["small"].volume == pytest.approx(0.1)
+
+
+def test_gauge_pressures_take_the_trades_tags_and_refuse_an_absolute_one(tmp_path):
+    # found by a sweep: '1.4 barg' for the regulator was an unknown unit here while the instrument config took it
+    p = tmp_path / "tags.yaml"
+    p.write_text(BASE + "supply: {set_pressure: 1.4 barg, cylinder_pressure: 200 PSIG}\n"
+                 "relief: {set_pressure: 2.5 bar(g)}\n", encoding="utf-8")
+    cfg = load_sim_config(p)
+    assert cfg.supply.set_pressure == pytest.approx(1.4e5)
+    assert cfg.supply.cylinder_pressure == pytest.approx(200 * 6894.757, rel=1e-6)  # 1 psi: NIST SP 811
+    assert cfg.relief is not None and cfg.relief.set_pressure == pytest.approx(2.5e5)
+    probs = _problems(tmp_path, BASE + "supply: {set_pressure: 2.4 bara}\n")
+    assert probs[0].line == 9 and "tagged absolute" in probs[0].message
+
+
+def test_a_relief_setting_limit_with_a_gauge_tag_derives_the_maximum_from_it(tmp_path):
+    p = tmp_path / "lim.yaml"
+    p.write_text(BASE + "limits: {relief_setting: 2 barg}\n", encoding="utf-8")
+    limits = load_sim_config(p).instrument_limits()
+    assert limits.relief_setting == pytest.approx(2e5) and limits.max_pressure == pytest.approx(1.8e5)

@@ -269,6 +269,23 @@ def vented_band_problem(key: str, tolerance: float, max_pressure: float,
 #: s: the shortest sample period a config may give.  Every tick reads each device once and writes a trace
 #: row; at 9600 baud one ten-character exchange with a gauge takes about 10 ms, so nothing real answers
 #: faster, and the simulator's dry run (check) at 1 us ran for minutes without an end (found by a sweep).
+#: m^3: the largest chamber volume a config may give (100 litres; the largest cells hold cores of a few litres)
+MAX_CHAMBER = 0.1
+
+
+def chamber_problem(where: str, volume: float) -> str | None:
+    """Why ``volume`` (m^3) cannot be a pycnometer chamber's (None when it can): '12 m^3' for '12 cm^3'.
+
+    ``where`` names the key ('chambers.cell') where the message does not already stand at it ('')."""
+    at = f"{where}: " if where else ""
+    if not volume > 0:
+        return f"{at}a chamber volume must be positive, got {volume * 1e6:g} cm^3"
+    if volume > MAX_CHAMBER * (1.0 + 1e-9):  # the unit conversion's rounding: exactly 100 litres loads
+        return (f"{at}{volume * 1e6:g} cm^3 is more than {MAX_CHAMBER * 1e3:g} litres, "
+                "beyond any gas pycnometer's chamber: give the volume in cm^3")
+    return None
+
+
 MIN_SAMPLE_PERIOD = 0.01
 
 
