@@ -147,6 +147,27 @@ def test_a_damaged_state_file_starts_paused(daemons: Started) -> None:
     assert "damaged" in s["queue"]["paused_reason"]
 
 
+def test_a_damaged_state_file_latches_since_the_latch_it_held_is_not_known(daemons: Started) -> None:
+    """Found by a sweep: a state file damaged by hand lost the latch it may have held (the daemon started
+    paused, and `reset` said nothing was latched).  Now it starts latched: only an operator's reset, on a
+    vented instrument, clears it, and the latch is saved again so a second restart keeps it."""
+    daemons.data.mkdir(parents=True)
+    (daemons.data / STATE_FILE).write_text('{"version": 1, "paused": true, "latched": {"kind": "overpr')
+    b = daemons()
+    s = b.snapshot()
+    assert s["queue"]["paused"] and s["interlock"]["latched"]
+    assert s["interlock"]["kind"] == "saved_state_damaged" and STATE_FILE in s["interlock"]["message"]
+    daemons.stop(b)
+    c = daemons()  # the damaged file was replaced by one that keeps the latch
+    assert c.snapshot()["interlock"]["latched"]
+    wait_for(lambda: c.running and c.snapshot()["pressure"]["gauge_pa"] is not None)
+    ok, why = c.submit_reset().result(5)
+    assert ok, why
+    assert not c.snapshot()["interlock"]["latched"]
+    daemons.stop(c)
+    assert json.loads((daemons.data / STATE_FILE).read_text())["latched"] is None
+
+
 def test_a_trip_while_idle_pauses_the_queue_so_the_reset_starts_nothing(daemons: Started) -> None:
     """Found by a sweep: a trip with no run going only latched the interlock; a run submitted meanwhile
     waited for the latch alone, and the operator's reset started it at once ('a reset never restarts

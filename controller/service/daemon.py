@@ -358,6 +358,7 @@ def describe_instrument(instrument: Instrument) -> dict[str, Any]:
 
 
 STATE_FILE = "daemon-state.json"  # the queue's pause and the interlock latch, kept over a restart
+DAMAGED_STATE_TRIP = "saved_state_damaged"  # the latch a damaged state file leaves: it may have held one
 _BEFORE_RESTART = "before the daemon restarted: "
 
 
@@ -461,12 +462,17 @@ class Daemon:
             why = str(saved.get("paused_reason") or "paused by the operator")
             reasons.append(why if why.startswith(_BEFORE_RESTART) else _BEFORE_RESTART + why)
         latch = saved.get("latched")
+        if state_problem is not None:  # it may have held a latch: what it said is not known, so it is latched
+            latch = {"kind": DAMAGED_STATE_TRIP,
+                     "message": f"the saved daemon state ({STATE_FILE}) is damaged ({state_problem}), so an "
+                                "interlock it may have held is not known: check the instrument, then reset"}
         if isinstance(latch, dict):
             trip = self.controller.monitor.restore_latch(
                 str(latch.get("kind") or "unknown"), self.instrument.clock.now(),
                 str(latch.get("message") or ""), _num(latch.get("value")), _num(latch.get("limit")))
             self._refresh_interlock(save=False)
-            if not saved.get("paused"):  # latched but not paused (a file from before trips paused): paused now
+            # latched but not paused (a file from before trips paused the queue): paused now
+            if not saved.get("paused") and state_problem is None:
                 reasons.append(f"interlock {trip.kind} latched before the daemon restarted: reset it, then resume "
                                "the queue")
             log.warning("interlock %s latched before the restart is still latched: %s; an operator reset clears it",
