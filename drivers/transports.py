@@ -26,6 +26,7 @@ except ImportError:  # pragma: no cover - not on POSIX
         pass
 
 from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, DeviceTimeout
+from pycnoctl.drivers.claims import ResourceClaim
 
 log = logging.getLogger(__name__)
 
@@ -115,6 +116,9 @@ class SerialTransport(_LineQuery):
         self._kwargs = serial_kwargs
         self.lock = threading.RLock()
         self._port: serial.SerialBase | None = None
+        # a network bridge (socket://, rfc2217://) has no flock: a claim keeps pycnoctl processes apart there
+        networked = "://" in url and not url.startswith("loop://")
+        self._claim = ResourceClaim("serial", url, self.name) if networked else None
         if open_now:
             self.open()
 
@@ -127,13 +131,18 @@ class SerialTransport(_LineQuery):
             # port is refused; shared, two processes drove one relay board (found by a sweep: both runs
             # faulted 'relays disagree', or, without read-back, one opened the inlet during the other's zero
             # and the other blamed an inlet leak).  An advisory lock (flock) on a device path; socket://
-            # and loop:// ignore it.
+            # and loop:// ignore it (a network bridge takes a claim instead).
             kwargs = {"exclusive": True, **self._kwargs}
+            fresh = self._claim is not None and not self._claim.held
+            if self._claim is not None:
+                self._claim.take()
             try:
                 self._port = serial.serial_for_url(
                     self.url, baudrate=self.baudrate, timeout=self.timeout,
                     write_timeout=self.timeout, **kwargs)
             except (serial.SerialException, OSError, ValueError) as exc:
+                if fresh and self._claim is not None:  # a first open that failed keeps nothing
+                    self._claim.release()
                 busy = "exclusively lock" in str(exc)
                 why = "it is in use by another program (another pycnoctl run or daemon?)" if busy else str(exc)
                 raise DeviceDisconnected(self.name, f"cannot open {self.url}: {why}") from exc
@@ -148,6 +157,8 @@ class SerialTransport(_LineQuery):
     def close(self) -> None:
         with self.lock:
             self._drop()
+            if self._claim is not None:
+                self._claim.release()
 
     def _drop(self) -> None:
         port, self._port = self._port, None
@@ -246,6 +257,9 @@ class VisaTransport(_LineQuery):
         self.lock = threading.RLock()
         self._rm: Any = None
         self._inst: Any = None
+        # VISA does not keep a second program off the resource (found by a sweep): a claim does, among
+        # pycnoctl processes; held from the first open to close, over reopens
+        self._claim = ResourceClaim("visa", resource, self.name)
         if open_now:
             self.open()
 
@@ -255,6 +269,8 @@ class VisaTransport(_LineQuery):
         with self.lock:
             if self._inst is not None:
                 return
+            fresh = not self._claim.held
+            self._claim.take()
             try:
                 if self._rm is None:
                     self._rm = pyvisa.ResourceManager(self.backend)
@@ -262,6 +278,8 @@ class VisaTransport(_LineQuery):
                     self.resource, read_termination=self.read_termination,
                     write_termination=self.write_termination, timeout=int(self.timeout * 1000))
             except (pyvisa.Error, OSError, ValueError) as exc:
+                if fresh:  # a first open that failed keeps nothing (a reopen keeps the claim it had)
+                    self._claim.release()
                 raise DeviceDisconnected(self.name, f"cannot open {self.resource}: {exc}") from exc
             log.debug("%s: opened %s (%s)", self.name, self.resource, self.backend)
 
@@ -273,6 +291,7 @@ class VisaTransport(_LineQuery):
     def close(self) -> None:
         with self.lock:
             self._drop()
+            self._claim.release()
             rm, self._rm = self._rm, None
             if rm is not None:
                 try:

@@ -20,9 +20,11 @@ def _suite_environment(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Non
 
     The simulator draws fresh noise for every instrument unless pinned; the suite pins it, so its
     figures are the same on every run (tests/test_sim_seed.py checks the fresh draws themselves).
-    No test writes into the user's real data folder (~/.local/share/pycnoctl)."""
+    No test writes into the user's real data folder (~/.local/share/pycnoctl), nor claims a device
+    in the user's runtime folder (drivers/claims.py)."""
     with pytest.MonkeyPatch.context() as mp:
         mp.setenv("PYCNOCTL_SIM_SEED", "1")
+        mp.setenv("PYCNOCTL_CLAIMS", str(tmp_path_factory.mktemp("device-claims")))
         mp.setenv("XDG_DATA_HOME", str(tmp_path_factory.mktemp("xdg-data-session")))
         yield
 

@@ -13,7 +13,7 @@ from pymodbus.server import ModbusTcpServer
 from pymodbus.simulator import DataType, SimData, SimDevice
 
 from pycnoctl.controller.domain.clock import ManualClock
-from pycnoctl.controller.domain.devices import Validity
+from pycnoctl.controller.domain.devices import DeviceDisconnected, Validity
 from pycnoctl.drivers.modbus_gauge import ModbusGauge, RegisterMap, decode
 
 
@@ -140,3 +140,17 @@ def test_decode_matches_struct():
     regs = list(struct.unpack(">HH", struct.pack(">i", -123456)))
     assert decode(regs, RegisterMap(address=0, datatype="int32")) == -123456
     assert decode(regs[::-1], RegisterMap(address=0, datatype="int32", word_order="little")) == -123456
+
+
+def test_one_gauge_per_device_on_a_gateway_until_it_is_closed(server):
+    # a Modbus gateway on the network refuses no second program: a claim on host, port and device id
+    # keeps a second pycnoctl run off the same gauge (found by a sweep, on VISA); another device id on
+    # the same gateway is another gauge
+    first = gauge(server, address=10)
+    with pytest.raises(DeviceDisconnected, match="in use by another pycnoctl run or daemon"):
+        gauge(server, address=10)
+    neighbour = gauge(server, address=10, device_id=2)
+    first.close()
+    again = gauge(server, address=10)
+    again.close()
+    neighbour.close()

@@ -63,6 +63,24 @@ def test_a_port_another_program_holds_is_refused_until_it_lets_go():
         second.close()
 
 
+def test_a_network_bridge_another_run_holds_is_refused_until_it_lets_go():
+    """A serial link over a TCP bridge (socket://) has no flock: a claim per URL keeps a second pycnoctl
+    run off it (one program per device, as on a device path); loop:// is per process and takes none."""
+    with FakeDevice(GaugeFirmware(ScriptedSensor(1e5)), link="tcp") as dev:
+        assert dev.url.startswith("socket://")
+        first = SerialTransport(dev.url, timeout=0.3)
+        with pytest.raises(DeviceDisconnected, match="in use by another pycnoctl run or daemon"):
+            SerialTransport(dev.url, timeout=0.3)
+        first.close()
+        second = SerialTransport(dev.url, timeout=0.3)
+        assert second.query(b"P?\n").startswith(b"P ")
+        second.close()
+    SerialTransport("loop://").close()
+    a, b = SerialTransport("loop://"), SerialTransport("loop://")
+    a.close()
+    b.close()
+
+
 def test_closed_port_is_disconnected():
     t = SerialTransport("loop://")
     t.close()

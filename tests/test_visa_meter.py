@@ -7,7 +7,7 @@ from importlib.resources import files
 import pytest
 
 from pycnoctl.controller.domain.clock import ManualClock
-from pycnoctl.controller.domain.devices import Validity
+from pycnoctl.controller.domain.devices import DeviceDisconnected, Validity
 from pycnoctl.drivers.transports import VisaTransport
 from pycnoctl.drivers.visa_meter import LoopScaling, VisaTransducerMeter
 
@@ -88,3 +88,35 @@ def test_voltage_output():
     t.write(b"SIM:VOLT 2.5")
     assert m.read().value == pytest.approx(2.5e5)
     m.close()
+
+
+def test_a_second_program_on_one_visa_resource_is_refused_until_the_first_closes():
+    # found by a sweep: two runs on two data folders opened one VISA meter at once (VISA does not refuse
+    # it); a claim per resource now keeps pycnoctl processes apart, as the serial port's flock does
+    first = VisaTransport("TCPIP::127.0.0.1::INSTR", backend=SIM, timeout=0.2)
+    with pytest.raises(DeviceDisconnected, match="in use by another pycnoctl run or daemon"):
+        VisaTransport("tcpip::127.0.0.1::instr", backend=SIM, timeout=0.2)  # names are case-insensitive
+    other = VisaTransport("TCPIP::127.0.0.2::INSTR", backend=SIM, timeout=0.2, open_now=False)
+    first.reopen()  # a reconnect keeps its own claim
+    first.close()
+    again = VisaTransport("TCPIP::127.0.0.1::INSTR", backend=SIM, timeout=0.2)
+    again.close()
+    assert not other.is_open
+
+
+def test_the_claim_keeps_another_process_off_and_goes_with_it():
+    import subprocess
+    import sys
+
+    holder = subprocess.Popen(
+        [sys.executable, "-c", "import sys, time; from pycnoctl.drivers.claims import ResourceClaim; "
+         "ResourceClaim('visa', 'TCPIP::127.0.0.1::INSTR', 'meter').take(); print('held', flush=True); time.sleep(60)"],
+        stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout is not None and holder.stdout.readline().strip() == "held"
+        with pytest.raises(DeviceDisconnected, match="in use by another pycnoctl"):
+            VisaTransport("TCPIP::127.0.0.1::INSTR", backend=SIM, timeout=0.2)
+    finally:
+        holder.kill()
+        holder.wait()
+    VisaTransport("TCPIP::127.0.0.1::INSTR", backend=SIM, timeout=0.2).close()  # a killed holder leaves none
