@@ -25,6 +25,7 @@ from pycnoctl.controller.domain.states import RunState
 from pycnoctl.controller.maths import results
 from pycnoctl.controller.maths.cycle import AmbientModel, CycleData, CycleMeasurer, CyclePlan
 from pycnoctl.controller.maths.settle import SettleCriteria, SettleStatus, min_window
+from pycnoctl.controller.run.heldwatch import FillWatch
 from pycnoctl.drivers.instrument import Instrument
 
 log = logging.getLogger(__name__)
@@ -34,13 +35,6 @@ log = logging.getLogger(__name__)
 #: thermometer read twice a second has two readings in a second, and a noisy one's means wander
 GAS_THERMOMETER_K = 0.3
 GAS_THERMOMETER_BLOCK = 5.0
-#: A fill in which at least this share of the pressure samples repeat the one before while the pressure
-#: rises HELD_RISE Pa a sample on average holds its readings (RunEngine._watch_held): any transducer whose
-#: resolution is finer than that changes its reading on every sample of such a fill
-HELD_SHARE = 0.4  # a transducer updating every second sample repeats half of them
-HELD_RISE = 100.0
-HELD_MIN_SAMPLES = 20
-_NO_FILL = (0, 0, math.nan, math.nan)  # RunEngine._held before a fill's first sample
 
 #: Run states (controller.domain.states.RunState). ``settle_filled`` and ``settle_expanded`` are the two
 #: settles of a cycle; ``baseline`` is the closed, vented system settling to the wall temperature before
@@ -125,7 +119,7 @@ class RunEngine:
         self._warned: set[str] = set()
         self._tblock: tuple[int, float, int] | None = None  # (block, sum, count) of thermometer readings
         self._tmeans = (math.inf, -math.inf)  # the lowest and highest 5-second mean since the fill began
-        self._held = _NO_FILL  # this fill's valid samples, those repeating the one before, last raw, first gauge
+        self._held = FillWatch()  # this fill's pressure readings: does the transducer hold them?
         self._purge_pulse = 0
         self._status: SettleStatus | None = None  # the measurer's answer on the current sample
         self.converged_early = False
@@ -230,7 +224,7 @@ class RunEngine:
         return {v: v == self.exp_valve for v in self.roles.expansion.values()}
 
     def on_enter_purge_fill(self) -> None:
-        self._held = _NO_FILL
+        self._held = FillWatch()
         self._set(**{self.roles.vent: False}, **self._expansions_for_run())
         self._check_supply()
         self._set(**{self.roles.inlet: True})
@@ -268,7 +262,7 @@ class RunEngine:
 
     def on_enter_fill(self) -> None:
         self._tblock, self._tmeans = None, (math.inf, -math.inf)  # _watch_thermometer: this fill's means
-        self._held = _NO_FILL
+        self._held = FillWatch()
         self.cycle_number += 1
         zero = self.meter.zero
         self.emit("cycle", {"cycle": self.cycle_number, "baseline": zero.value if zero else math.nan})
@@ -305,29 +299,15 @@ class RunEngine:
             if state in (S.FILL, S.SETTLE_FILLED) and math.isfinite(temp):
                 self._watch_thermometer(s.t, temp)
             if (state == S.FILL or state == S.PURGE_FILL) and s.pressure.valid:
-                n, repeats, last, g0 = self._held
-                self._held = (n + 1, repeats + (s.pressure.value == last), s.pressure.value, g0 if n else s.gauge)
+                self._held.add(s.pressure.value, s.gauge)
             step(s)
 
     def _watch_held(self, gauge: float) -> None:
-        """At a fill's end: a transducer that updates more slowly than it is read holds its reading, then
-        steps.  The settle rules take every sample as a new look at the pressure, so held readings read
-        as steps and as fewer noise-free samples than there are: on the simulator a 1 Hz gauge read every
-        0.1 s never saw its zero settle in 600 s, and a settle taken on such samples states too small an
-        uncertainty.  Refused at the first fill that shows it, naming the cure, before any cycle."""
-        n, repeats, _last, g0 = self._held
-        rise = gauge - g0
-        if n < HELD_MIN_SAMPLES or repeats < HELD_SHARE * n or not rise >= HELD_RISE * n:
-            return
-        dt = self.instrument.sample_period
-        period = (n - 1) * dt / max(n - repeats - 1, 1)  # the first sample of the fill is not a change
-        raise SequenceFault("held_readings", (
-            f"the pressure reading repeated the one before in {repeats} of {n} samples while the fill raised it "
-            f"{rise / 1e3:.3g} kPa: the transducer gives a new reading about every {period:.2g} s but is read "
-            f"every {dt:g} s (or its resolution is coarser than {rise / n:.3g} Pa, the fill's mean rise per "
-            f"sample). Held readings look like steps to the interlocks and the settle rules (a zero that never "
-            f"settles, or a pressure taken with too small an uncertainty). Set the instrument's sample_period to at "
-            f"least {period:.2g} s (with limits.stale_after above it), or the transducer to a faster output rate"))
+        """At a fill's end: refuse a transducer that updates more slowly than it is read, at the first fill
+        that shows it, naming the cure, before any cycle (controller/run/heldwatch.py says why)."""
+        why = self._held.verdict(gauge, self.instrument.sample_period)
+        if why is not None:
+            raise SequenceFault("held_readings", why)
 
     def _watch_thermometer(self, t: float, temp: float) -> None:
         """Say once when the thermometer reads the gas rather than the wall: its 5-second means move
