@@ -197,3 +197,32 @@ def test_a_saved_latch_without_a_pause_starts_paused(daemons: Started) -> None:
     s = b.snapshot()
     assert s["interlock"]["latched"] and s["queue"]["paused"]
     assert "interlock inlet_leak latched before the daemon restarted" in s["queue"]["paused_reason"]
+
+
+def test_the_state_is_written_off_the_control_thread_and_flushed_at_stop(daemons: Started,
+                                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    """Found by a sweep: a trip's latch was written (with fsync) on the control thread; on a slow card that
+    holds a tick.  The control thread now hands the write to a writer thread, and stop() writes what is
+    left, so the saved latch is the same."""
+    import threading
+
+    from pycnoctl.controller.service import daemon as daemon_module
+
+    writers: list[str] = []
+    real = daemon_module.atomic_write
+
+    def slow_write(path: Path, data: bytes) -> None:
+        writers.append(threading.current_thread().name)
+        time.sleep(0.3)  # a slow card
+        real(path, data)
+
+    monkeypatch.setattr(daemon_module, "atomic_write", slow_write)
+    a = daemons()
+    wait_for(lambda: a.running and a.snapshot()["activity"] == "idle")
+    writers.clear()
+    a.call(lambda c: c.monitor.trip_external("device_error", c.instrument.clock.now(), "injected while idle"))
+    wait_for(lambda: a.snapshot()["interlock"]["latched"] and a.snapshot()["queue"]["paused"])
+    daemons.stop(a)
+    assert writers and "pycnoctl-control" not in writers, writers
+    saved = json.loads((daemons.data / STATE_FILE).read_text())
+    assert saved["latched"]["kind"] == "device_error" and saved["paused"]

@@ -416,6 +416,9 @@ class Daemon:
         self._stop_reason = "the daemon shut down"
         self._abort = threading.Event()
         self._thread: threading.Thread | None = None
+        # the saved state is written off the control thread (an fsync on a slow card must not hold a tick)
+        self._state_due = threading.Event()
+        self._state_writer: threading.Thread | None = None
         self._next_sample_pub = -math.inf
         self._last_trace_t = -math.inf
         self._watchdog = watchdog_interval()
@@ -501,8 +504,16 @@ class Daemon:
 
     # ------------------------------------------------------------------ lifecycle
     def start(self) -> None:
+        self._state_writer = threading.Thread(target=self._write_state_when_due, name="pycnoctl-state", daemon=True)
+        self._state_writer.start()
         self._thread = threading.Thread(target=self._main, name="pycnoctl-control", daemon=True)
         self._thread.start()
+
+    def _write_state_when_due(self) -> None:
+        while not self._stop.is_set():
+            if self._state_due.wait(0.5):
+                self._state_due.clear()
+                self._save_state()
 
     def stop(self, timeout: float = 10.0, reason: str = "the daemon shut down") -> None:
         """Abort any run, leave the instrument in the safe state and end the control thread.
@@ -516,6 +527,9 @@ class Daemon:
         self._wake.set()
         if self._thread is not None:
             self._thread.join(timeout)
+        if self._state_writer is not None:
+            self._state_writer.join(timeout)
+        self._save_state()  # whatever the control thread left for the writer
         if self.instrument.safe_state():
             log.info("safe state asserted on stop (%s)", reason,
                      extra={"data": {"event": "safe_state", "why": "stop", "reason": reason}})
@@ -976,8 +990,13 @@ class Daemon:
         """Write the pause and the latch to the data folder when they changed, so a restart keeps them.
 
         Never raises: a state that cannot be written is logged, and the daemon goes on with it in memory
-        (the next start then finds the runs waiting and comes up paused all the same).
+        (the next start then finds the runs waiting and comes up paused all the same). On the control
+        thread it only asks the writer thread, after the safe state, so no tick waits on the disk.
         """
+        writer = self._state_writer
+        if threading.current_thread() is self._thread and writer is not None and writer.is_alive():
+            self._state_due.set()
+            return
         with self._state_lock:
             with self._lock:
                 q = self._snap["queue"]
