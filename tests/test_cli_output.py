@@ -112,6 +112,30 @@ def test_a_long_sample_id_is_folded_and_never_cuts_the_run_ids(tmp_path: Path, c
     assert long_id in folded
 
 
+@pytest.mark.parametrize("width", [40, 50, 60])
+def test_a_terminal_too_narrow_for_the_table_gets_each_run_as_a_block(tmp_path: Path,
+                                                                      capsys: pytest.CaptureFixture[str],
+                                                                      monkeypatch: pytest.MonkeyPatch,
+                                                                      width: int) -> None:
+    """Found by a sweep: at 40-60 columns with a long sample ID the runs table folded run IDs and figures
+    ('4.' over '99' over '99'). Where even the essential columns cannot fit, each run is a block of
+    'header: value' lines: an ID or a figure whole on its line, a long name folded, nothing left out."""
+    long_id = "TILE-" + "0123456789" * 18 + "-END"
+    for sample in ("AL-0417", long_id):
+        assert cli.main(["run", "quick-demo", "--sim", "--sample", sample, "--data", str(tmp_path), "--quiet",
+                         "--json"]) == 0
+    monkeypatch.setenv("COLUMNS", str(width))
+    rows = json.loads(_out(capsys, "runs", "--data", str(tmp_path), "--json"))
+    text = _out(capsys, "runs", "--data", str(tmp_path))
+    lines = text.splitlines()
+    assert all(len(line) <= width for line in lines)
+    for r in rows:
+        assert f"run: {r['run_id']}" in lines
+        assert f"volume / cm3: {r['volume_cm3']:.5f}" in lines
+    assert lines.count("status: completed") == 2
+    assert long_id in "".join(line for line in lines if ":" not in line or line.startswith("sample:"))
+
+
 @pytest.mark.parametrize("width", [80, 120])
 def test_show_at_terminal_widths(data: Path, capsys: pytest.CaptureFixture[str],
                                  monkeypatch: pytest.MonkeyPatch, width: int) -> None:

@@ -141,16 +141,18 @@ class Column(Value):
 class Fitted(Value):
     """A table fitted to a width: the columns kept (their indices) and the headers left out."""
 
-    _FIELDS = ("keep", "dropped", "widths")
+    _FIELDS = ("keep", "dropped", "widths", "fits")
     keep: list[int]
     dropped: list[str]
     widths: dict[int, int]  # the width each kept column is given (its need, or a folded name's less)
+    fits: bool  # False: even the essential columns are wider than the terminal
 
     def __init__(self, keep: list[int], dropped: list[str] | None = None,
-                 widths: dict[int, int] | None = None) -> None:
+                 widths: dict[int, int] | None = None, fits: bool = True) -> None:
         self.keep = keep
         self.dropped = [] if dropped is None else dropped
         self.widths = {} if widths is None else widths
+        self.fits = fits
 
 
 def _cell_width(text: str) -> int:
@@ -185,7 +187,7 @@ def fit_columns(columns: Sequence[Column], rows: Sequence[Sequence[str]], width:
         if columns[i].fold is not None and total() > width:
             floor = max([8, *(_cell_width(w) for w in columns[i].header.split())])
             need[i] = max(min(need[i], floor), need[i] - (total() - width))
-    return Fitted(keep, dropped, {i: need[i] for i in keep})
+    return Fitted(keep, dropped, {i: need[i] for i in keep}, fits=total() <= width)
 
 
 def _need(col: Column, cells: Sequence[str]) -> int:
@@ -214,6 +216,9 @@ def print_table(columns: Sequence[Column], rows: Sequence[Sequence[str]], *, tit
     # older records may hold control characters: shown escaped (and measured so), never sent to the terminal
     rows = [[visible(cell) for cell in r] for r in rows]
     fitted = fit_columns(columns, rows, con.width)
+    if not fitted.fits:  # a narrow terminal (a phone's, a split pane): no table would keep its figures whole
+        print_stacked(columns, rows, title=title, con=con)
+        return []
     table = Table(title=title, box=box.SIMPLE_HEAD, title_justify="left")
     for i in fitted.keep:
         col = columns[i]
@@ -229,6 +234,24 @@ def print_table(columns: Sequence[Column], rows: Sequence[Sequence[str]], *, tit
         con.print(f"(left out to fit {con.width} columns: {', '.join(fitted.dropped)}; a wider terminal, "
                   "--csv or --json shows every column)")
     return fitted.dropped
+
+
+def print_stacked(columns: Sequence[Column], rows: Sequence[Sequence[str]], *, title: str | None = None,
+                  con: Any = None) -> None:
+    """Each row as a block of 'header: value' lines, for a terminal too narrow for the table's essential
+    columns: a figure or an ID is never split (at 40-60 columns the table folded both), a long name folds
+    at the terminal's width, every character kept, and no column is left out."""
+    from rich.text import Text
+
+    con = con or console()
+    if title:
+        con.print(title)
+    for n, r in enumerate(rows):
+        if n:
+            con.print()
+        for col, cell in zip(columns, r, strict=True):
+            if cell.strip():
+                con.print(Text(f"{col.header}: {cell}", overflow="fold"), soft_wrap=False)
 
 
 def write_csv(rows: Sequence[dict[str, Any]], columns: Sequence[str], out: Any) -> None:
