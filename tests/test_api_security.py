@@ -129,6 +129,19 @@ def test_body_must_be_json(local: TestClient) -> None:
     assert r.status_code == 400
 
 
+def test_a_body_giving_a_key_twice_is_422_naming_it(local: TestClient, daemon: Daemon) -> None:
+    # found by a sweep: a JSON parser keeps the last of two values silently, and the run was queued under
+    # the second sample ID; which one the sender meant is not known, so nothing is queued
+    before = len(daemon.catalog.list_runs(limit=1000))
+    body = b'{"sequence": "quick-demo", "sample_id": "AL-0417", "operator": "ops", "sample_id": "AL-0418"}'
+    r = local.post("/api/runs", content=body, headers={"content-type": "application/json"})
+    assert r.status_code == 422 and "'sample_id' more than once" in r.json()["error"]
+    nested = b'{"sequence": "quick-demo", "sample_id": "AL-0417", "note": {"a": 1, "a": 2}}'
+    r = local.post("/api/runs", content=nested, headers={"content-type": "application/json"})
+    assert r.status_code == 422 and "'a' more than once" in r.json()["error"]
+    assert len(daemon.catalog.list_runs(limit=1000)) == before
+
+
 @pytest.mark.parametrize("path", ["/api/runs/..%2F..%2Fcatalog.sqlite", "/api/runs/catalog.sqlite",
                                   "/api/runs/R20250101T000000Z-abcdef", "/api/runs/%2Fetc%2Fpasswd/trace.csv",
                                   "/api/runs/R20251399T000000Z-abcdef/trace.csv", "/static/../catalog.sqlite",

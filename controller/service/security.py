@@ -9,7 +9,9 @@ Why each check (safety.md, "Daemon API"):
 * A token, when configured (always on a non-loopback bind), is required on every request as
   ``Authorization: Bearer`` or the HttpOnly SameSite=Strict cookie that the /login form POST sets
   (never in a URL, where histories and logs keep it); compared in constant time -> 401.
-* Bodies are capped -> 413; a body must be JSON -> 415 (the /login form alone is form-encoded).
+* Bodies are capped -> 413; a body must be JSON -> 415 (the /login form alone is form-encoded); a JSON
+  body that gives one key twice -> 422 (a parser keeps the last silently: '"sample_id"' twice ran the
+  run under the second, which the sender may not have meant).
 """
 
 from __future__ import annotations
@@ -181,6 +183,11 @@ class SecurityMiddleware:
                 if len(body) > pol.max_body:
                     await _reply(send, 413, f"request body over {pol.max_body} bytes")
                     return
+            if body and headers.get("content-type", "").split(";")[0].strip().lower() == "application/json":
+                twice = duplicate_key(body)
+                if twice is not None:  # a JSON parser takes the last silently: which one the sender meant is unknown
+                    await _reply(send, 422, f"the request body gives {twice!r} more than once")
+                    return
             sent = False
 
             async def replay() -> Message:
@@ -242,6 +249,30 @@ async def _no_body() -> Message:
 
 
 async def _discard(message: Message) -> None:
+    return None
+
+
+class _Twice(Exception):
+    pass
+
+
+def duplicate_key(body: bytes) -> str | None:
+    """The first key an object in this JSON gives twice, or None (also for text that is not JSON: the
+    route's own validation says what is wrong with it)."""
+    def pairs(items: list[tuple[str, Any]]) -> dict[str, Any]:
+        seen: dict[str, Any] = {}
+        for key, value in items:
+            if key in seen:
+                raise _Twice(key)
+            seen[key] = value
+        return seen
+
+    try:
+        json.loads(body, object_pairs_hook=pairs)
+    except _Twice as twice:
+        return str(twice.args[0])
+    except (ValueError, RecursionError):
+        return None
     return None
 
 
