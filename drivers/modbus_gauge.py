@@ -26,7 +26,7 @@ from pymodbus.exceptions import ConnectionException, ModbusException, ModbusIOEx
 from pycnoctl.controller.domain.clock import Clock, WallClock
 from pycnoctl.controller.domain.devices import Reading, Validity
 from pycnoctl.drivers import registry
-from pycnoctl.drivers.claims import ResourceClaim
+from pycnoctl.drivers.claims import ResourceClaim, modbus_tcp_key
 from pycnoctl.drivers.fields import RangeModel, Seconds, Strict, pressure_unit
 from pycnoctl.drivers.gauge_ascii import pascal_per
 
@@ -74,10 +74,10 @@ class ModbusGauge:
 
     def __init__(self, client: Any, regmap: RegisterMap, *, name: str = "pressure",
                  clock: Clock | None = None, late_window: float = 0.0,
-                 claim: tuple[str, str] | None = None) -> None:
+                 claim: ResourceClaim | None = None) -> None:
         # a gateway on the network or a shared bus refuses no second program: a claim on the device keeps
         # pycnoctl processes apart (found by a sweep, on VISA); released by close()
-        self._claim = ResourceClaim(*claim, name) if claim is not None else None
+        self._claim = claim
         if self._claim is not None:
             self._claim.take()
         self.client = client
@@ -91,14 +91,17 @@ class ModbusGauge:
     @classmethod
     def tcp(cls, host: str, port: int, regmap: RegisterMap, *, timeout: float = 1.0,
             **kw: Any) -> ModbusGauge:
-        kw.setdefault("claim", ("modbus-tcp", f"{host}:{port} device {regmap.device_id}"))
+        kw.setdefault("claim", ResourceClaim("modbus-tcp", f"{host}:{port} device {regmap.device_id}",
+                                             kw.get("name", "pressure"),
+                                             key=modbus_tcp_key(host, port, regmap.device_id)))
         return cls(ModbusTcpClient(host, port=port, timeout=timeout, retries=0), regmap, **kw)
 
     @classmethod
     def rtu(cls, port: str, regmap: RegisterMap, *, baudrate: int = 19200, timeout: float = 1.0,
             **kw: Any) -> ModbusGauge:
         kw.setdefault("late_window", timeout)
-        kw.setdefault("claim", ("modbus-rtu", f"{port} device {regmap.device_id}"))
+        kw.setdefault("claim", ResourceClaim("modbus-rtu", f"{port} device {regmap.device_id}",
+                                             kw.get("name", "pressure")))
         return cls(ModbusSerialClient(port, baudrate=baudrate, timeout=timeout, retries=0), regmap, **kw)
 
     def _wait_out_late_reply(self) -> None:

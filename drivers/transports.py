@@ -26,7 +26,7 @@ except ImportError:  # pragma: no cover - not on POSIX
         pass
 
 from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceError, DeviceTimeout
-from pycnoctl.drivers.claims import ResourceClaim
+from pycnoctl.drivers.claims import ResourceClaim, networked
 
 log = logging.getLogger(__name__)
 
@@ -117,8 +117,7 @@ class SerialTransport(_LineQuery):
         self.lock = threading.RLock()
         self._port: serial.SerialBase | None = None
         # a network bridge (socket://, rfc2217://) has no flock: a claim keeps pycnoctl processes apart there
-        networked = "://" in url and not url.startswith("loop://")
-        self._claim = ResourceClaim("serial", url, self.name) if networked else None
+        self._claim = ResourceClaim("serial", url, self.name) if networked(url) else None
         if open_now:
             self.open()
 

@@ -14,7 +14,9 @@ from pymodbus.simulator import DataType, SimData, SimDevice
 
 from pycnoctl.controller.domain.clock import ManualClock
 from pycnoctl.controller.domain.devices import DeviceDisconnected, Validity
+from pycnoctl.drivers.claims import modbus_tcp_key
 from pycnoctl.drivers.modbus_gauge import ModbusGauge, RegisterMap, decode
+from tests.claim_holder import held_elsewhere
 
 
 class RegisterServer:
@@ -144,13 +146,12 @@ def test_decode_matches_struct():
 
 def test_one_gauge_per_device_on_a_gateway_until_it_is_closed(server):
     # a Modbus gateway on the network refuses no second program: a claim on host, port and device id
-    # keeps a second pycnoctl run off the same gauge (found by a sweep, on VISA); another device id on
-    # the same gateway is another gauge
-    first = gauge(server, address=10)
-    with pytest.raises(DeviceDisconnected, match="in use by another pycnoctl run or daemon"):
-        gauge(server, address=10)
-    neighbour = gauge(server, address=10, device_id=2)
-    first.close()
+    # keeps a second pycnoctl run off the same gauge (found by a sweep, on VISA), under any spelling of the
+    # host; another device id on the same gateway is another gauge
+    for host in ("127.0.0.1", "localhost"):
+        with held_elsewhere("modbus-tcp", "gauge", key=modbus_tcp_key(host, server.port, 1)):
+            with pytest.raises(DeviceDisconnected, match="in use by another pycnoctl run or daemon"):
+                gauge(server, address=10)
+            gauge(server, address=10, device_id=2).close()
     again = gauge(server, address=10)
     again.close()
-    neighbour.close()

@@ -10,6 +10,7 @@ import pytest
 from pycnoctl.controller.domain.devices import DeviceDisconnected, DeviceTimeout
 from pycnoctl.drivers.transports import SerialTransport, Transport, VisaTransport
 from pycnoctl.sim.fakedev import FakeDevice, GaugeFirmware, ScriptedSensor
+from tests.claim_holder import held_elsewhere
 
 
 def test_loop_query_and_log(caplog):
@@ -64,21 +65,23 @@ def test_a_port_another_program_holds_is_refused_until_it_lets_go():
 
 
 def test_a_network_bridge_another_run_holds_is_refused_until_it_lets_go():
-    """A serial link over a TCP bridge (socket://) has no flock: a claim per URL keeps a second pycnoctl
-    run off it (one program per device, as on a device path); loop:// is per process and takes none."""
+    """A serial link over a TCP bridge (socket://) has no flock: a claim per host and port keeps a second
+    pycnoctl run off it (one program per device, as on a device path), whatever the URL's options or the
+    host's spelling; loop:// is per process and takes none, in any case."""
     with FakeDevice(GaugeFirmware(ScriptedSensor(1e5)), link="tcp") as dev:
         assert dev.url.startswith("socket://")
-        first = SerialTransport(dev.url, timeout=0.3)
-        with pytest.raises(DeviceDisconnected, match="in use by another pycnoctl run or daemon"):
-            SerialTransport(dev.url, timeout=0.3)
-        first.close()
+        port = dev.url.rsplit(":", 1)[1]
+        for spelling in (dev.url, f"SOCKET://localhost:{port}?logging=debug"):
+            with held_elsewhere("serial", spelling), \
+                    pytest.raises(DeviceDisconnected, match="in use by another pycnoctl run or daemon"):
+                SerialTransport(dev.url, timeout=0.3)
         second = SerialTransport(dev.url, timeout=0.3)
         assert second.query(b"P?\n").startswith(b"P ")
         second.close()
-    SerialTransport("loop://").close()
-    a, b = SerialTransport("loop://"), SerialTransport("loop://")
-    a.close()
-    b.close()
+    for url in ("loop://", "LOOP://"):
+        a, b = SerialTransport(url), SerialTransport(url)
+        a.close()
+        b.close()
 
 
 def test_closed_port_is_disconnected():

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import subprocess
+import sys
 from importlib.resources import files
 
 import pytest
@@ -10,6 +12,7 @@ from pycnoctl.controller.domain.clock import ManualClock
 from pycnoctl.controller.domain.devices import DeviceDisconnected, Validity
 from pycnoctl.drivers.transports import VisaTransport
 from pycnoctl.drivers.visa_meter import LoopScaling, VisaTransducerMeter
+from tests.claim_holder import held_elsewhere
 
 SIM = f"{files('pycnoctl.drivers') / 'visa' / 'loop_meter.yaml'}@sim"
 SCALE = LoopScaling(4e-3, 20e-3, 0.0, 3.5e5)  # 4 mA -> 0 bar, 20 mA -> 3.5 bar (gauge)
@@ -90,33 +93,30 @@ def test_voltage_output():
     m.close()
 
 
-def test_a_second_program_on_one_visa_resource_is_refused_until_the_first_closes():
+def test_a_second_program_on_one_visa_resource_is_refused_until_the_first_lets_go():
     # found by a sweep: two runs on two data folders opened one VISA meter at once (VISA does not refuse
-    # it); a claim per resource now keeps pycnoctl processes apart, as the serial port's flock does
-    first = VisaTransport("TCPIP::127.0.0.1::INSTR", backend=SIM, timeout=0.2)
-    with pytest.raises(DeviceDisconnected, match="in use by another pycnoctl run or daemon"):
-        VisaTransport("tcpip::127.0.0.1::instr", backend=SIM, timeout=0.2)  # names are case-insensitive
-    other = VisaTransport("TCPIP::127.0.0.2::INSTR", backend=SIM, timeout=0.2, open_now=False)
-    first.reopen()  # a reconnect keeps its own claim
-    first.close()
-    again = VisaTransport("TCPIP::127.0.0.1::INSTR", backend=SIM, timeout=0.2)
-    again.close()
-    assert not other.is_open
-
-
-def test_the_claim_keeps_another_process_off_and_goes_with_it():
-    import subprocess
-    import sys
-
-    holder = subprocess.Popen(
-        [sys.executable, "-c", "import sys, time; from pycnoctl.drivers.claims import ResourceClaim; "
-         "ResourceClaim('visa', 'TCPIP::127.0.0.1::INSTR', 'meter').take(); print('held', flush=True); time.sleep(60)"],
-        stdout=subprocess.PIPE, text=True)
-    try:
-        assert holder.stdout is not None and holder.stdout.readline().strip() == "held"
-        with pytest.raises(DeviceDisconnected, match="in use by another pycnoctl"):
+    # it); a claim per resource now keeps pycnoctl processes apart, as the serial port's flock does, under
+    # any spelling of the resource's name
+    for spelling in ("TCPIP::127.0.0.1::INSTR", "tcpip0::localhost::inst0::instr"):
+        with held_elsewhere("visa", spelling), \
+                pytest.raises(DeviceDisconnected, match="in use by another pycnoctl run or daemon"):
             VisaTransport("TCPIP::127.0.0.1::INSTR", backend=SIM, timeout=0.2)
-    finally:
-        holder.kill()
-        holder.wait()
     VisaTransport("TCPIP::127.0.0.1::INSTR", backend=SIM, timeout=0.2).close()  # a killed holder leaves none
+
+
+def test_one_process_shares_its_claim_so_one_config_may_read_two_channels_of_one_meter():
+    # found by a sweep: a config reading the cell pressure and the supply from one meter refused itself
+    pressure = VisaTransport("TCPIP::127.0.0.1::INSTR", backend=SIM, timeout=0.2)
+    supply = VisaTransport("TCPIP::127.0.0.1::INSTR", backend=SIM, timeout=0.2)
+    pressure.reopen()  # a reconnect keeps its claim
+    pressure.close()
+    probe = subprocess.run([sys.executable, "-c", _TRY], capture_output=True, text=True, check=False)
+    assert "in use by another pycnoctl" in probe.stdout  # the supply's channel still holds it
+    supply.close()
+    probe = subprocess.run([sys.executable, "-c", _TRY], capture_output=True, text=True, check=False)
+    assert probe.stdout.strip() == "opened", probe.stdout + probe.stderr
+
+
+_TRY = (f"from pycnoctl.drivers.transports import VisaTransport\n"
+        f"try:\n    VisaTransport('TCPIP::127.0.0.1::INSTR', backend={SIM!r}, timeout=0.2).close(); print('opened')\n"
+        f"except Exception as exc:\n    print(exc)\n")
