@@ -135,6 +135,51 @@ def test_analyze_reproduces_the_stored_run_and_applies_a_new_calibration(tmp_pat
     assert main(["analyze", "R20990101T000000Z-000000", "--data", str(tmp_path)]) == 2
 
 
+def _imported(tmp_path: Path, capsys, *extra: str, volume: str = "small", sim: str | None = None) -> str:
+    args = ["calibrations", "import", "--sim", *([sim] if sim else []), "--expansion-volume", volume,
+            "--cell-volume", "11.5 cm3", "--u-cell-volume", "0.002 cm3", "--volume", "8.2 cm3",
+            "--u-volume", "0.002 cm3", "--note", "volumes from elsewhere", "--data", str(tmp_path), *extra]
+    assert main(args) == 0
+    capsys.readouterr()
+    assert main(["calibrations", "list", "--all", "--json", "--data", str(tmp_path)]) == 0
+    return json.loads(capsys.readouterr().out)[0]["id"]
+
+
+@pytest.mark.parametrize("case", ["another instrument", "another volume", "another gas", "retired"])
+def test_analyze_refuses_a_calibration_the_run_itself_would_refuse(tmp_path, capsys, case):
+    """Found by a sweep: 'analyze --calibration ID' took a calibration of another instrument, another
+    expansion volume or a retired one, and stated 4.325 cm3 +/- 0.008 for a 5.000 specimen (exit 0); a run
+    refuses all of these.  The run's own calibration, retired since, still re-analyses it."""
+    code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path), "--expansion-volume", "small")
+    assert code == 0
+    if case == "another instrument":
+        cal = _imported(tmp_path, capsys, sim=str(shipped_configs()["noisy"]))
+        want = "was made on instrument"
+    elif case == "another volume":
+        cal = _imported(tmp_path, capsys, volume="large")
+        want = "is of expansion volume 'large', and this run expanded into 'small'"
+    elif case == "another gas":
+        cal = _imported(tmp_path, capsys, "--gas", "nitrogen")
+        want = "was made in nitrogen, and this run is in helium"
+    else:
+        cal = _imported(tmp_path, capsys)
+        assert main(["calibrations", "retire", cal, "--reason", "valve replaced", "--data", str(tmp_path)]) == 0
+        want = "is retired"
+    capsys.readouterr()
+    assert main(["analyze", out["run_id"], "--calibration", cal, "--data", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert f"calibration {cal} {want}" in err, err
+
+
+def test_analyze_takes_the_retired_calibration_the_run_computed_with(tmp_path, capsys):
+    out, _folder = _calibrated_run(tmp_path, capsys)
+    cal = out["calibration"]["record_id"]
+    assert main(["calibrations", "retire", cal, "--reason", "superseded", "--data", str(tmp_path)]) == 0
+    capsys.readouterr()
+    assert main(["analyze", out["run_id"], "--calibration", cal, "--data", str(tmp_path), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["volume_cm3"] == pytest.approx(out["volume_cm3"], rel=1e-12)
+
+
 #: what a recomputation takes of the instrument (the arguments of record/replay.py's reanalyze)
 INSTRUMENT_FACTS = ("gas", "pressure_is_gauge", "pressure_u", "pressure_u_linearity", "temperature_u", "barometer",
                     "barometer_u", "ambient_drift_rate")

@@ -80,6 +80,7 @@ class Recorded:
     calibration: dict[str, Any] | None  # the chambers as the run computed with them (summary, else meta.json)
     calibration_id: str | None  # the calibration record an interrupted run computed with (None: nominal)
     stored_volume_cm3: float | None  # the result the run stored (None: it stored none)
+    expansion_volume: str | None = None  # the expansion volume the run expanded into (None: not recorded)
 
     @classmethod
     def from_run(cls, run: StoredRun, folder: Path) -> Recorded:
@@ -88,7 +89,7 @@ class Recorded:
             inst, results = doc["instrument"], doc["results"]
             return cls(doc["run_id"], False, inst, doc["sequence_text"], f"{folder}/summary.json: sequence_text",
                        results.get("gas") or inst.get("gas"), results.get("mass_g"), doc.get("calibration") or {},
-                       None, results.get("volume_cm3"))
+                       None, results.get("volume_cm3"), results.get("expansion_volume"))
         meta = run.meta.get("meta") or {}
         facts = meta.get("instrument")
         if not (isinstance(facts, dict) and all(k in facts for k in _NEEDED_FACTS)):
@@ -96,7 +97,7 @@ class Recorded:
         return cls(run.meta.get("run_id") or folder.name, True, facts, meta.get("sequence_text") or None,
                    f"{folder}/meta.json: sequence_text", meta.get("gas") or (facts or {}).get("gas"),
                    meta.get("mass_g"), meta.get("calibration") if isinstance(meta.get("calibration"), dict) else None,
-                   meta.get("calibration_id"), None)
+                   meta.get("calibration_id"), None, meta.get("expansion_volume"))
 
 
 def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path
@@ -113,6 +114,9 @@ def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path
             found = cat.get_calibration(args.calibration)
         if found is None:
             raise UsageError(f"--calibration: no calibration {args.calibration!r} in the catalog")
+        wrong = _not_for_this_run(found, rec, args.gas)
+        if wrong is not None:
+            raise UsageError(f"--calibration: calibration {found.id} {wrong}")
         return _from_record(found), None
     if args.cell_volume or args.expansion_volume:
         if not (args.cell_volume and args.expansion_volume):
@@ -147,6 +151,34 @@ def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path
             "cannot be looked up: there is no catalog beside this run folder"
         return None, f"{give} (the calibration {rec.calibration_id} that meta.json names {why})"
     return _from_record(found), None
+
+
+def _not_for_this_run(found: CalibrationRecord, rec: Recorded, gas: str | None) -> str | None:
+    """Why a calibration named on the command line cannot give this run's volumes, or None: made on
+    another instrument, of another expansion volume or in another gas (the run itself refuses these:
+    found by a sweep, 'analyze --calibration' took another instrument's and stated 4.325 cm3 for 5.000),
+    or retired, unless it is the one the run computed with."""
+    from pycnoctl.controller.domain.gas import UnknownGas, get_gas
+
+    identity = (rec.instrument or {}).get("identity")
+    if found.instrument is not None and identity is not None and found.instrument != identity:
+        return f"was made on instrument {found.instrument!r}, and this run on {identity!r}"
+    if rec.expansion_volume is not None and found.expansion_volume != rec.expansion_volume:
+        return (f"is of expansion volume {found.expansion_volume!r}, and this run expanded into "
+                f"{rec.expansion_volume!r}")
+    run_gas = gas or rec.gas
+    if run_gas is not None:
+        try:
+            same = get_gas(found.gas).name == get_gas(run_gas).name
+        except UnknownGas:
+            same = found.gas.strip().lower() == run_gas.strip().lower()
+        if not same:
+            return f"was made in {found.gas}, and this run is in {run_gas}"
+    used = (rec.calibration or {}).get("record_id") or rec.calibration_id
+    if found.retired is not None and found.id != used:
+        return (f"is retired ({found.retired}); a retired calibration re-analyses only the runs that computed "
+                "with it")
+    return None
 
 
 def _usable(c: ChamberCalibration) -> bool:
