@@ -182,7 +182,7 @@ def test_analyze_takes_the_retired_calibration_the_run_computed_with(tmp_path, c
 
 #: what a recomputation takes of the instrument (the arguments of record/replay.py's reanalyze)
 INSTRUMENT_FACTS = ("gas", "pressure_is_gauge", "pressure_u", "pressure_u_linearity", "temperature_u", "barometer",
-                    "barometer_u", "ambient_drift_rate")
+                    "barometer_u", "ambient_drift_rate", "thermometer")
 
 
 def _calibrated_run(tmp_path: Path, capsys) -> tuple[dict, Path]:

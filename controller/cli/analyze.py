@@ -279,7 +279,8 @@ def main(args: argparse.Namespace) -> int:
                    pressure_u_linearity=inst.get("pressure_u_linearity"),
                    ambient=AmbientModel(bool(inst.get("barometer")), float(inst.get("barometer_u") or 0.0),
                                         float(inst.get("ambient_drift_rate") or 0.0),
-                                        bool(inst["pressure_is_gauge"])))
+                                        bool(inst["pressure_is_gauge"])),
+                   thermometer=bool(inst.get("thermometer")))
     res = re.result
     flags = list(re.flags)
     if seq.expands and not re.cycles:

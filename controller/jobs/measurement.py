@@ -203,6 +203,7 @@ def instrument_description(instrument: Instrument) -> dict[str, Any]:
         "pressure_u_linearity": instrument.pressure_u_linearity,
         "temperature_u": instrument.temperature_u,
         "barometer": instrument.barometer is not None,
+        "thermometer": instrument.thermometer is not None,
         "barometer_u": instrument.barometer_u,
         "ambient_drift_rate": instrument.ambient_drift_rate,
         "sample_period": instrument.sample_period,
@@ -216,7 +217,7 @@ def instrument_description(instrument: Instrument) -> dict[str, Any]:
 #: meta.json from the run's start as well as in summary.json at its end, so that a run killed before its
 #: summary was written can still be recomputed.
 REPLAY_FACTS = ("gas", "pressure_is_gauge", "pressure_u", "pressure_u_linearity", "temperature_u", "barometer",
-                "barometer_u", "ambient_drift_rate")
+                "barometer_u", "ambient_drift_rate", "thermometer")
 
 
 def replay_facts(instrument: Instrument) -> dict[str, Any]:

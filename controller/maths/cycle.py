@@ -164,6 +164,9 @@ class CyclePlan:
     #: cancels in the pressure ratio and the zero is taken every cycle); the same in every cycle.
     u_p_sys: float = 0.0
     ambient: AmbientModel | None = None  # how the lab pressure is known; None: constant, unbudgeted
+    #: the instrument reads a thermometer: a cycle that got no temperature for its zero, P1 or P2 (the
+    #: thermometer stopped answering) is left out, not computed as if the gas kept one temperature
+    thermometer: bool = False
 
 
 @dataclass(frozen=True)
@@ -1109,7 +1112,8 @@ class CycleMeasurer:
         self.results.append(results.cycle_result(
             cyc, p.chambers, gas=p.gas, u_p_sys=p.u_p_sys, u_t=p.u_t, discard=p.discard,
             barometer=amb is not None and amb.barometer, u_barometer=amb.u_barometer if amb else 0.0,
-            ambient_drift_rate=amb.drift_rate if amb else 0.0, u_lab=amb.u_followed if amb else None))
+            ambient_drift_rate=amb.drift_rate if amb else 0.0, u_lab=amb.u_followed if amb else None,
+            thermometer=p.thermometer))
         self._doubt_first()
 
     def _doubt_first(self) -> None:

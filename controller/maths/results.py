@@ -102,6 +102,11 @@ class CycleResult:
         return d
 
 
+#: the flag of a cycle left out because the thermometer gave no reading for its zero, P1 or P2
+NO_TEMPERATURE = ("no temperature: the thermometer gave no valid reading for the zero, P1 or P2, so the cycle "
+                  "is left out (without it the gas would be taken as keeping one temperature)")
+
+
 def _temp(x: float) -> float | None:
     return x if math.isfinite(x) else None
 
@@ -117,7 +122,8 @@ def _u_mean(u_t: float, n: int) -> float:
 
 def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str, u_p_sys: float, u_t: float,
                  discard: int, barometer: bool = False, u_barometer: float = 0.0,
-                 ambient_drift_rate: float = 0.0, u_lab: float | None = None) -> CycleResult:
+                 ambient_drift_rate: float = 0.0, u_lab: float | None = None,
+                 thermometer: bool = False) -> CycleResult:
     """Volume of one cycle and its GUM budget.
 
     Each random input is counted once: a settled pressure's noise is in its window regression's
@@ -148,6 +154,12 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
     u_pa, u_pa_sys = math.hypot(_fin(cyc.u_baseline_pa), u_baro), _fin(cyc.u_baseline_relax_pa)
     t1, t2, ta = _temp(cyc.t1_k), _temp(cyc.t2_k), _temp(cyc.ta_k)
     flags = list(cyc.flags)
+    # an instrument with a thermometer that gave no reading for one of the cycle's three pressures: without
+    # its temperatures the cycle would be computed as if the gas kept one temperature, its temperature terms
+    # dropped from the budget - a smaller U for a lost sensor (found by a sweep); it is left out instead
+    unread = thermometer and None in (t1, t2, ta)
+    if unread:
+        flags.append(NO_TEMPERATURE)
     u_t1 = _u_mean(u_t, cyc.n_t1) if t1 is not None else 0.0
     u_t2 = _u_mean(u_t, cyc.n_t2) if t2 is not None else 0.0
     u_ta = _u_mean(u_t, cyc.n_ta) if ta is not None else 0.0
@@ -167,7 +179,8 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
     return CycleResult(
         index=cyc.index, volume_name=cyc.volume_name, baseline_pa=cyc.baseline_pa, ambient_pa=pa,
         p1_gauge_pa=cyc.p1_gauge_pa, p2_gauge_pa=cyc.p2_gauge_pa, u_p1_pa=u_p1, u_p2_pa=u_p2, t1_k=t1, t2_k=t2,
-        ta_k=ta, volume_m3=volume, u_volume_m3=u_volume, kept=cyc.index > discard and math.isfinite(volume),
+        ta_k=ta, volume_m3=volume, u_volume_m3=u_volume,
+        kept=cyc.index > discard and math.isfinite(volume) and not unread,
         flags=flags, budget=budget, settle1_s=cyc.settle1_s, settle2_s=cyc.settle2_s,
         drift1_pa_s=cyc.drift1_pa_s, drift2_pa_s=cyc.drift2_pa_s, fill_s=cyc.fill_s,
         u_baseline_pa=u_pa, u_p1_sys_pa=u_p1_sys, u_p2_sys_pa=u_p2_sys, u_baseline_relax_pa=u_pa_sys,

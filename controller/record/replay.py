@@ -74,11 +74,12 @@ def rows(run: StoredRun, pressure_is_gauge: bool) -> Iterator[tuple[str, Row]]:
 
 def reanalyze(run: StoredRun, sequence: Sequence, *, chambers: ChamberCalibration, gas: str,
               pressure_is_gauge: bool, pressure_u: float, temperature_u: float,
-              pressure_u_linearity: float | None = None, ambient: AmbientModel | None = None) -> Reanalysis:
+              pressure_u_linearity: float | None = None, ambient: AmbientModel | None = None,
+              thermometer: bool = False) -> Reanalysis:
     """Cycle volumes and the run result recomputed from the raw trace."""
     meter = CycleMeasurer(cycle_plan(sequence, chambers=chambers, gas=gas, u_p=pressure_u, u_t=temperature_u,
                                      volume_name="", u_p_sys=linearity_u(pressure_u, pressure_u_linearity),
-                                     ambient=ambient))
+                                     ambient=ambient, thermometer=thermometer))
     for state, row in rows(run, pressure_is_gauge):
         meter.feed(state, row)
     out = results.agreeing_only(meter.results, sequence.cycles.converge if sequence.expands else None)

@@ -143,7 +143,8 @@ class RunEngine:
                           u_p_sys=linearity_u(instrument.pressure_u, instrument.pressure_u_linearity),
                           volume_name=expansion_volume,
                           ambient=AmbientModel(instrument.barometer is not None, instrument.barometer_u,
-                                               instrument.ambient_drift_rate, instrument.pressure_is_gauge))
+                                               instrument.ambient_drift_rate, instrument.pressure_is_gauge),
+                          thermometer=instrument.thermometer is not None)
 
     # ----- machine plumbing -------------------------------------------------------------------
     state: str  # set by transitions
@@ -584,7 +585,7 @@ def linearity_u(pressure_u: float, pressure_u_linearity: float | None) -> float:
 
 
 def cycle_plan(sequence: Any, *, chambers: Any, gas: str, u_p: float, u_t: float, volume_name: str,
-               u_p_sys: float = 0.0, ambient: AmbientModel | None = None) -> CyclePlan:
+               u_p_sys: float = 0.0, ambient: AmbientModel | None = None, thermometer: bool = False) -> CyclePlan:
     """The measurer's plan from a sequence: the live engine and replay both build it here.
 
     Where the settles cannot follow the lab pressure (a gauge transducer and no barometer), the
@@ -597,4 +598,4 @@ def cycle_plan(sequence: Any, *, chambers: Any, gas: str, u_p: float, u_t: float
                      filled=criteria(sequence.settle_filled, u_p, steady),
                      expanded=criteria(sequence.settle_expanded, u_p, steady), chambers=chambers, gas=gas, u_p=u_p,
                      u_p_sys=u_p_sys, ambient=ambient, u_t=u_t, discard=sequence.cycles.discard,
-                     volume_name=volume_name)
+                     volume_name=volume_name, thermometer=thermometer)
