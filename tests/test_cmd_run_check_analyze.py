@@ -137,7 +137,8 @@ def test_analyze_reproduces_the_stored_run_and_applies_a_new_calibration(tmp_pat
 
 def _imported(tmp_path: Path, capsys, *extra: str, volume: str = "small", sim: str | None = None) -> str:
     args = ["calibrations", "import", "--sim", *([sim] if sim else []), "--expansion-volume", volume,
-            "--cell-volume", "11.5 cm3", "--u-cell-volume", "0.002 cm3", "--volume", "8.2 cm3",
+            "--cell-volume", "11.98 cm3", "--u-cell-volume", "0.002 cm3",
+            "--volume", "8.02 cm3" if volume == "small" else "20.05 cm3",
             "--u-volume", "0.002 cm3", "--note", "volumes from elsewhere", "--data", str(tmp_path), *extra]
     assert main(args) == 0
     capsys.readouterr()

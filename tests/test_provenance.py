@@ -216,6 +216,33 @@ def test_sample_defaults_of_the_sequence_are_used(tmp_path: Path) -> None:
     assert p.request.mass == pytest.approx(1e-3)
 
 
+@pytest.mark.parametrize(("cell", "volume", "key"), [("12 m^3", "8 cm3", "--cell-volume"),
+                                                     ("13.2 cm3", "8 cm3", "--cell-volume"),
+                                                     ("12 cm3", "0.008 cm3", "--volume")])
+def test_an_import_far_from_the_configs_nominal_volumes_is_refused_unless_said(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str], cell: str, volume: str, key: str) -> None:
+    """Found by a sweep: '12 m^3' for the cell was stored and the next run stated 11999993 cm3 for a 5 cm3
+    specimen (exit 0, no word without a mass); 13.2 cm3 for the clean simulator's 12 cm3 cell, whose config
+    states its nominal volumes to 0.5 %, gave 6.2 cm3 for 5.  Beyond 5 of the config's stated
+    uncertainties (and 2 %) an import is refused; --far-from-nominal records it (a rebuilt chamber)."""
+    args = ["calibrations", "import", "--sim", "--expansion-volume", "small", "--cell-volume", cell,
+            "--u-cell-volume", "0.002 cm3", "--volume", volume, "--u-volume", "0.00002 cm3",
+            "--note", "volumes from elsewhere", "--data", str(tmp_path)]
+    assert cli.main(args) == 2
+    err = capsys.readouterr().err
+    assert f"{key}: " in err and "from the instrument config's" in err and "--far-from-nominal" in err
+    assert cli.main([*args, "--far-from-nominal"]) == 0
+    assert "imported" in capsys.readouterr().out
+
+
+def test_an_import_near_the_configs_nominal_volumes_is_taken(tmp_path: Path,
+                                                              capsys: pytest.CaptureFixture[str]) -> None:
+    # 2.0 % off a 12 cm3 cell stated to 0.5 %: within 5 of its uncertainties (the floor is 2 %)
+    assert cli.main(["calibrations", "import", "--sim", "--expansion-volume", "small", "--cell-volume", "12.24 cm3",
+                     "--u-cell-volume", "0.002 cm3", "--volume", "7.85 cm3", "--u-volume", "0.002 cm3",
+                     "--note", "volumes from elsewhere", "--data", str(tmp_path)]) == 0
+
+
 def test_the_calibrations_verb(tmp_path: Path, capsys: pytest.CaptureFixture[str],
                                monkeypatch: pytest.MonkeyPatch) -> None:
     data = ["--data", str(tmp_path)]
