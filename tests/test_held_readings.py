@@ -41,17 +41,29 @@ def _held(k: int, rise_per_sample: float, noise: float, n: int = 1500, seed: int
     return out
 
 
-@pytest.mark.parametrize(("k", "noise"), [(10, 8.0), (10, 20.0), (2, 8.0), (4, 30.0)])
+@pytest.mark.parametrize(("k", "noise"), [(10, 8.0), (10, 20.0), (10, 0.5), (2, 8.0), (4, 30.0)])
 def test_a_held_transducer_on_a_fill_slower_than_the_first_sign_is_refused(k, noise):
     # 60 Pa a sample: under HELD_RISE, so only the rhythm of the changes can tell (found by a sweep: a 1 Hz
-    # gauge read every 0.1 s on a slow metered fill got through).  Its limit: a nearly noise-free held
-    # transducer on a fill of constant rate changes in equal steps, as a coarse one does (under about 1.5 %
-    # of its step in noise here), and only a fill's changing rate (as on the bench below) or its speed tells
+    # gauge read every 0.1 s on a slow metered fill got through); a nearly noise-free one on a fill of
+    # constant rate changes in equal steps, as a coarse one does, but on the beat of its updates
     assert HELD_RISE > 60.0
     values = _held(k, 60.0, noise)
     why = _fill(values).verdict(values[-1], 0.1)
     assert why is not None and f"a new reading about every {k * 0.1:.2g} s" in why
-    assert "not whole steps of a resolution" in why
+
+
+@pytest.mark.parametrize(("k", "step", "noise"), [(2, 100.0, 10.0), (10, 500.0, 100.0), (5, 500.0, 10.0)])
+def test_a_coarse_transducer_that_also_holds_its_readings_is_refused(k, step, noise):
+    # found by a sweep: a 1 mbar (100 Pa) display gauge updating at 5 Hz, read at 10 Hz on a slow fill, passed:
+    # its changes are whole steps of its resolution, as a coarse one's are, but they keep the beat of its updates
+    rng = random.Random(7)
+    values, value = [], 0.0
+    for i in range(1500):
+        if i % k == 0:
+            value = step * round((45.0 * i + rng.gauss(0.0, noise)) / step)
+        values.append(value)
+    why = _fill(values).verdict(values[-1], 0.1)
+    assert why is not None and "as updates do" in why and "a new reading about every" in why
 
 
 def test_a_coarse_transducer_on_a_slow_fill_is_not_taken_for_a_held_one():

@@ -10,7 +10,9 @@ nearly every sample.  Two signs, either enough:
   HELD_RISE Pa a sample on average: any transducer whose resolution is finer than that changes on every
   sample of such a fill;
 * **any fill** - as many repeats, and the changes almost never come on consecutive samples (under
-  HELD_QUICK of them) and are not whole multiples of one step.  A held transducer changes once per update
+  HELD_QUICK of them) and either are not whole multiples of one step or keep one beat (nearly every
+  gap between them a whole multiple of the shortest, 2 samples or more: a coarse transducer held too,
+  found by a sweep: 1 mbar steps at 5 Hz read at 10 Hz passed).  A held transducer changes once per update
   (every k samples, k >= 2) whatever the pressure does, by what the pressure did meanwhile plus its noise;
   a coarse but fast one that repeats because the fill moves less than its step per sample changes by whole
   steps of its resolution; a fine one read as fast as it updates changes on consecutive samples.  Found by a sweep: a
@@ -40,6 +42,20 @@ HELD_MIN_SAMPLES = 20
 HELD_MIN_CHANGES = 10
 
 
+def _beat(gaps: list[int]) -> int | None:
+    """The update interval, in samples, where the changes keep one (nearly every gap between them a whole
+    multiple of one interval of 2 samples or more: an update that moved the reading less than its step
+    shows as a gap of two intervals), or None.  A held transducer changes on its updates only, whatever
+    its resolution; a coarse one read as fast as it updates changes when the pressure crosses a step,
+    which a fill's changing rate puts at gaps of no common beat (8, 9, 9, 10, ...)."""
+    if not gaps:
+        return None
+    for k in range(min(gaps), 1, -1):
+        if sum(g % k == 0 for g in gaps) >= LATTICE_SHARE * len(gaps):
+            return k
+    return None
+
+
 def _whole_steps(steps: list[float]) -> bool:
     """Are the changes whole multiples of the smallest one, as a coarse transducer's are?"""
     q = min(steps)
@@ -60,6 +76,7 @@ class FillWatch:
         self._last_change: int | None = None  # the sample index of the last change seen
         self.quick = 0  # changes one sample after the previous change
         self.steps: list[float] = []  # the size of every change
+        self.gaps: list[int] = []  # samples from each change to the next
 
     def add(self, raw: float, gauge: float) -> None:
         if self.n == 0:
@@ -70,6 +87,7 @@ class FillWatch:
             self.steps.append(abs(raw - self._last))
             if self._last_change is not None:
                 self.quick += self.n - self._last_change == 1
+                self.gaps.append(self.n - self._last_change)
             self._last_change = self.n
         self.n += 1
         self._last = raw
@@ -83,11 +101,15 @@ class FillWatch:
         fast = rise >= HELD_RISE * n
         changes = len(self.steps)
         rhythm = (changes >= HELD_MIN_CHANGES and self.quick < HELD_QUICK * (changes - 1)
-                  and not _whole_steps(self.steps))
+                  and (not _whole_steps(self.steps) or _beat(self.gaps) is not None))
         if not (fast or rhythm):
             return None
-        period = (n - 1) * sample_period / max(n - repeats - 1, 1)  # the first sample of the fill is not a change
+        beat = _beat(self.gaps) if not fast else None
+        # the beat where one shows (an update that moved a coarse reading less than its step changed nothing),
+        # else from the changes (the fill's first sample is not a change)
+        period = beat * sample_period if beat else (n - 1) * sample_period / max(n - repeats - 1, 1)
         why = (f"the fill raised it {rise / 1e3:.3g} kPa" if fast else
+               f"its changes came every {beat} samples or a whole multiple of that, as updates do" if beat else
                f"its changes came one sample apart {self.quick} times in {changes - 1}, by {min(self.steps):.3g} to "
                f"{max(self.steps):.3g} Pa, not whole steps of a resolution")
         coarse = f" (or its resolution is coarser than {rise / n:.3g} Pa, the fill's mean rise per sample)" \
