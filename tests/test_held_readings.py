@@ -144,3 +144,15 @@ def test_the_verdict_near_its_threshold_does_not_depend_on_the_noise(tmp_path, r
         summary, *_ = measure(tmp_path / str(seed), "quick-demo", config_from_dict(data))
         seen.append((summary["status"], (summary.get("fault") or {}).get("kind"), len(summary["cycles"])))
     assert seen == [("fault", "held_readings", 0) if refused else ("completed", None, 3)] * 4
+
+
+def test_a_coarse_transducer_on_a_fast_fill_is_told_its_resolution_not_a_sample_period():
+    # found by a sweep: a 50 Hz gauge in 5 mbar steps on a fill of 190 Pa a sample was refused and told to be
+    # read every 0.21 s; its changes are whole steps, often on consecutive samples, on no beat: too coarse
+    rng = random.Random(11)
+    values = [500.0 * round((190.0 * i + rng.gauss(0.0, 200.0)) / 500.0) for i in range(528)]
+    w = _fill(values)
+    assert w.repeats >= 0.45 * w.n
+    why = w.verdict(values[-1], 0.1)
+    assert why is not None and "every change was a whole step of 500 Pa" in why
+    assert "sample_period" not in why and "finer resolution" in why

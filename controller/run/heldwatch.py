@@ -112,6 +112,17 @@ class FillWatch:
                f"its changes came every {beat} samples or a whole multiple of that, as updates do" if beat else
                f"its changes came one sample apart {self.quick} times in {changes - 1}, by {min(self.steps):.3g} to "
                f"{max(self.steps):.3g} Pa, not whole steps of a resolution")
+        if fast and changes >= HELD_MIN_CHANGES and _whole_steps(self.steps) and _beat(self.gaps) is None \
+                and self.quick >= HELD_QUICK * (changes - 1):
+            # every change a whole step of one size, on no beat and often on consecutive samples: a coarse
+            # transducer read as fast as it updates, not a held one (found by a sweep: a 50 Hz gauge in 5 mbar
+            # steps was told to be read every 0.21 s)
+            q = min(self.steps)
+            return (f"the pressure reading repeated the one before in {repeats} of {n} samples while the fill raised "
+                    f"it {rise / 1e3:.3g} kPa, and every change was a whole step of {q:.3g} Pa: the transducer's "
+                    f"resolution is coarser than the fill's rise per sample ({rise / n:.3g} Pa), too coarse for the "
+                    f"settle rules and a volume (a settled pressure is known to no better than its step). Use a "
+                    f"transducer or an output with a finer resolution")
         coarse = f" (or its resolution is coarser than {rise / n:.3g} Pa, the fill's mean rise per sample)" \
             if fast else ""
         return (f"the pressure reading repeated the one before in {repeats} of {n} samples while {why}: the "
