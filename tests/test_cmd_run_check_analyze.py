@@ -181,6 +181,24 @@ def test_analyze_takes_the_retired_calibration_the_run_computed_with(tmp_path, c
     assert json.loads(capsys.readouterr().out)["volume_cm3"] == pytest.approx(out["volume_cm3"], rel=1e-12)
 
 
+def test_re_analysis_under_a_sequence_that_stops_at_an_unsettled_pressure_keeps_no_such_cycle(tmp_path, capsys):
+    """Found by a sweep: 'analyze R --sequence grain-volume' of a quick-demo run (4 s windows, settles cut at
+    30 s) stated 5.00081 +/- 0.00351 cm3 from three cycles flagged unsettled_p1 unsettled_p2, kept; the
+    grain-volume sequence (on_timeout: fault) would have stopped the run at the first of them."""
+    from pycnoctl.controller.record.replay import NOT_SETTLED_HERE
+
+    _code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
+    assert main(["analyze", out["run_id"], "--data", str(tmp_path), "--sequence", "grain-volume", "--json"]) == 0
+    re = json.loads(capsys.readouterr().out)
+    unsettled = [c for c in re["cycles"] if "unsettled_p1" in c["flags"] or "unsettled_p2" in c["flags"]]
+    assert unsettled and all(NOT_SETTLED_HERE in c["flags"] and not c["kept"] for c in unsettled)
+    assert re["volume_cm3"] is None or len(unsettled) < len(re["cycles"])
+    # its own sequence (on_timeout: accept) keeps what the run kept
+    assert main(["analyze", out["run_id"], "--data", str(tmp_path), "--json"]) == 0
+    own = json.loads(capsys.readouterr().out)
+    assert [c["kept"] for c in own["cycles"]] == [c["kept"] for c in out["cycles"]]
+
+
 #: what a recomputation takes of the instrument (the arguments of record/replay.py's reanalyze)
 INSTRUMENT_FACTS = ("gas", "pressure_is_gauge", "pressure_u", "pressure_u_linearity", "temperature_u", "barometer",
                     "barometer_u", "ambient_drift_rate", "thermometer")

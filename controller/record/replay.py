@@ -10,7 +10,7 @@ run did, the phase's estimate at its end is used and the cycle is flagged.
 from __future__ import annotations
 
 from collections.abc import Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -55,6 +55,25 @@ REPLAY_COLUMNS = ("t", "state", "pressure_pa", "pressure_valid", "ambient_pa", "
 _CHUNK = 65536  # rows turned into Python objects at a time: memory stays flat however long the trace
 
 
+#: the flag of a cycle whose P1 or P2 did not settle under the re-analysing sequence's rules before the
+#: recorded phase ended, where that sequence stops a run at such a settle (on_timeout: fault)
+NOT_SETTLED_HERE = ("not settled under these rules before the recorded phase ended; this sequence "
+                    "(on_timeout: fault) would have stopped the run there, so the cycle is left out")
+
+
+def _under_these_rules(c: results.CycleResult, sequence: Sequence) -> results.CycleResult:
+    """A cycle the re-analysing sequence would not have kept: a P1 or P2 that its rules had not decided when
+    the recorded phase ended is taken (the trace holds no more) and flagged; where the sequence says
+    ``on_timeout: fault`` the run would have stopped there, so the cycle is left out rather than stated
+    (found by a sweep: re-analysis with such a sequence stated a result from three unsettled cycles)."""
+    faults = [f"unsettled_{which}" for which, settle in (("p1", sequence.settle_filled),
+                                                         ("p2", sequence.settle_expanded))
+              if settle.on_timeout == "fault"]
+    if not any(f in c.flags for f in faults):
+        return c
+    return replace(c, kept=False, flags=[*c.flags, NOT_SETTLED_HERE])
+
+
 def rows(run: StoredRun, pressure_is_gauge: bool) -> Iterator[tuple[str, Row]]:
     """The trace as the engine saw it: (state, row) with the gauge pressure, NaN where invalid; made
     a chunk at a time from the numpy columns, so a 16-hour trace never exists as 577k Python rows."""
@@ -82,6 +101,7 @@ def reanalyze(run: StoredRun, sequence: Sequence, *, chambers: ChamberCalibratio
                                      ambient=ambient, thermometer=thermometer))
     for state, row in rows(run, pressure_is_gauge):
         meter.feed(state, row)
-    out = results.agreeing_only(meter.results, sequence.cycles.converge if sequence.expands else None)
+    out = results.agreeing_only([_under_these_rules(c, sequence) for c in meter.results],
+                                sequence.cycles.converge if sequence.expands else None)
     res = results.run_result(out, converge=sequence.cycles.converge) if sequence.expands else None
     return Reanalysis(out, res, chambers, gas, list(meter.notes))
