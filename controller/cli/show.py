@@ -55,8 +55,18 @@ def main(args: argparse.Namespace) -> int:
 
         write_csv(cycle_records(_result(run.summary), units), cycle_csv_columns(units), sys.stdout)
     else:
+        problem = _disagreement(folder, run.summary)
+        if problem is not None:
+            print(problem)
         print_run(run.summary, folder, units, retired=_retired_since(folder, run.summary))
     return 0
+
+
+def _disagreement(folder: Path, doc: dict[str, Any]) -> str | None:
+    """The record-disagrees line for a summary edited after the run (record/integrity.py), or None."""
+    from pycnoctl.controller.record.integrity import disagreement_line, folder_disagreements
+
+    return disagreement_line(folder_disagreements(folder, doc))
 
 
 def _retired_since(folder: Path, doc: dict[str, Any]) -> str | None:

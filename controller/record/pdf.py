@@ -97,6 +97,11 @@ def run_report_pdf(run_folder: Path, out: Path | None = None) -> Path:
         page.line(f"status {res.get('status')}; sequence {seq.get('name')} ({seq.get('kind')}); gas {res.get('gas')}; "
                   f"started {res.get('started_utc')}; operator {res.get('operator') or '-'}")
         page.gap()
+        from pycnoctl.controller.record.integrity import disagreement_line, folder_disagreements
+
+        disagrees = disagreement_line(folder_disagreements(run_folder, doc)) if run.summary is not None else None
+        if disagrees is not None:
+            page.line(disagrees, bold=True, color="darkred")
         if res.get("simulated"):
             page.line("SIMULATED: this result came from the gas-system simulator, not from a specimen", bold=True,
                       color="darkred")

@@ -273,6 +273,12 @@ def record_problems(run: StoredRun) -> list[str]:
         out.append("trace.csv holds no samples: there is no pressure trace to draw")
     if run.torn_tail:
         out.append("the trace's last line was cut short (the run was stopped mid-write) and is left out")
+    if run.summary is not None:
+        from pycnoctl.controller.record.integrity import disagreement_line, folder_disagreements
+
+        line = disagreement_line(folder_disagreements(run.folder, run.summary))
+        if line is not None:
+            out.append(line)
     return out
 
 

@@ -238,6 +238,12 @@ def get_run(run_id: RunId, d: DaemonDep) -> Any:
             out["summary"] = (read_summary(summary) or {}).get("results", {})
         except (OSError, ValueError) as exc:  # said, not left as a silent null
             out["record_problems"] = [f"summary.json is damaged: {_unreadable(exc)}"]
+        else:  # a summary or catalog row changed after the run disagrees with the other: said, not served as fact
+            from pycnoctl.controller.record.integrity import disagreement_line, disagreements
+
+            line = disagreement_line(disagreements(out["summary"], row))
+            if line is not None:
+                out["record_problems"] = [line]
     # links only to what exists: a run cancelled in the queue, or refused before it started, has no record
     have = {"trace.csv": folder is not None and (folder / "trace.csv").exists(),
             "summary.json": summary is not None and summary.exists()}

@@ -1,0 +1,69 @@
+"""A stored result that disagrees with itself or with the catalog is never shown as fact.
+
+Found by a sweep: with summary.json's volume edited to 5.5 and its U to 0, `show` printed 5.50000 cm3 +/-
+0.00000 and the report '± 0.00000 cm³ (expanded, k = 2; standard 0.00114 cm³)', while the run's own cycles,
+its density and the catalog still said 4.99979.  The checks (record/integrity.py): the volume is the mean of
+the kept cycles (as maths.uncertainty.combine_run takes it), U is k times the standard u, and the catalog
+row keeps the same volume and U (both are written from one float at the run's end)."""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+from pathlib import Path
+
+import pytest
+
+from pycnoctl.controller.cli.main import main
+from pycnoctl.controller.record.integrity import disagreements
+
+
+@pytest.fixture
+def run(tmp_path: Path, capsys) -> tuple[Path, str]:
+    assert main(["run", "quick-demo", "--sim", "--data", str(tmp_path), "--quiet", "--json"]) == 0
+    rid = json.loads(capsys.readouterr().out)["run_id"]
+    return tmp_path, rid
+
+
+def _edit_summary(data: Path, rid: str, **results) -> None:
+    path = data / "runs" / rid / "summary.json"
+    doc = json.loads(path.read_text())
+    doc["results"].update(results)
+    path.write_text(json.dumps(doc))
+
+
+def _show(data: Path, rid: str, capsys) -> str:
+    assert main(["show", rid, "--data", str(data)]) == 0
+    return capsys.readouterr().out
+
+
+def test_a_run_as_written_agrees_with_itself_and_its_catalog(run, capsys):
+    data, rid = run
+    assert "RECORD DISAGREES" not in _show(data, rid, capsys)
+    assert main(["report", rid, "--data", str(data)]) == 0
+    assert "RECORD DISAGREES" not in (data / "runs" / rid / "report.html").read_text()
+
+
+def test_an_edited_summary_is_flagged_in_show_and_the_report(run, capsys):
+    data, rid = run
+    _edit_summary(data, rid, volume_cm3=5.5, volume_u_cm3=0.0)
+    text = " ".join(_show(data, rid, capsys).split())
+    assert "RECORD DISAGREES: the stored volume (5.5) is not the mean of its kept cycles" in text
+    assert "the stored U (0.0 cm3) is not k = 2 times its standard uncertainty" in text
+    assert "the catalog keeps another volume for this run" in text
+    assert main(["report", rid, "--data", str(data)]) == 0
+    capsys.readouterr()
+    assert "RECORD DISAGREES" in (data / "runs" / rid / "report.html").read_text()
+
+
+def test_an_edited_catalog_row_is_flagged(run, capsys):
+    data, rid = run
+    with sqlite3.connect(data / "catalog.sqlite") as con:
+        con.execute("UPDATE runs SET volume_m3 = volume_m3 * 1.01 WHERE id = ?", (rid,))
+    text = " ".join(_show(data, rid, capsys).split())
+    assert "RECORD DISAGREES: the catalog keeps another volume for this run" in text
+
+
+def test_the_checks_take_a_result_with_no_volume_as_agreeing():
+    assert disagreements({"volume_cm3": None, "cycles": [{"kept": False, "volume_cm3": 5.0}]}) == []
+    assert disagreements({}) == []
