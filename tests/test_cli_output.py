@@ -19,6 +19,7 @@ from pycnoctl.controller.cli.display import (
     Units,
     fit_columns,
     parse_units,
+    print_table,
 )
 from pycnoctl.controller.cli.main import UsageError
 from pycnoctl.controller.cli.result_view import result_lines, why
@@ -133,7 +134,56 @@ def test_a_terminal_too_narrow_for_the_table_gets_each_run_as_a_block(tmp_path: 
         assert f"run: {r['run_id']}" in lines
         assert f"volume / cm3: {r['volume_cm3']:.5f}" in lines
     assert lines.count("status: completed") == 2
-    assert long_id in "".join(line for line in lines if ":" not in line or line.startswith("sample:"))
+    assert long_id in "".join(line.strip() for line in lines if ":" not in line or line.startswith("sample:"))
+
+
+def _stacked(width: int, columns: list[Column], rows: list[list[str]]) -> list[str]:
+    from rich.console import Console
+
+    buf = io.StringIO()
+    print_table(columns, rows, title="calibrations", con=Console(file=buf, width=width, highlight=False))
+    return buf.getvalue().splitlines()
+
+
+CAL_COLUMNS = [Column("id"), Column("created (UTC)"), Column("Vc / cm3", True), Column("u(Vc)", True),
+               Column("retired", priority=5, wrap=True), Column("source", fold=24)]
+
+
+@pytest.mark.parametrize("width", [30, 40])
+def test_a_line_break_in_a_stacked_value_cannot_pass_for_a_figure_or_a_row_end(width: int) -> None:
+    """Found by a sweep: in the narrow-terminal blocks an old retire reason 'valve swapped' + line break +
+    'Vc / cm3: 99.99999' printed a line just like the row's own Vc figure (and a blank line inside a value
+    looked like the next row). Only a header starts at the left margin; a value's line breaks show escaped."""
+    rows = [["C0007", "2026-12-05 22:42", "12.34567", "0.00120", "valve swapped\nVc / cm3: 99.99999",
+             "OLD-7\nid: C0001"],
+            ["C0008", "2026-12-05 22:43", "12.34561", "0.00118", "two lines\n\nthen a gap", "S-8"]]
+    lines = _stacked(width, CAL_COLUMNS, rows)
+    assert all(len(line) <= width for line in lines)
+    headers = tuple(f"{c.header}:" for c in CAL_COLUMNS)
+    body = lines[1:]  # after the title
+    assert [line for line in body if line.startswith("Vc / cm3:")] == ["Vc / cm3: 12.34567",
+                                                                        "Vc / cm3: 12.34561"]
+    assert [line for line in body if line.startswith("id:")] == ["id: C0007", "id: C0008"]
+    for line in body:  # a value's own lines are indented: no header starts with a space
+        assert line == "" or line.startswith(headers) or line.startswith("  "), line
+    assert body.count("") == 1  # the one row boundary
+    text = "".join(line.strip() for line in body)
+    assert "valve swapped\\nVc / cm3: 99.99999".replace(" ", "") in text.replace(" ", "")
+    assert "OLD-7\\nid: C0001".replace(" ", "") in text.replace(" ", "")
+
+
+@pytest.mark.parametrize("width", [18, 24, 30])
+def test_a_short_stacked_value_is_never_split(width: int) -> None:
+    """Found by a sweep: at 30 columns 'created (UTC): 2026-12-05 22:42' was folded between the date and
+    the time. A value that does not fit beside its header goes whole on its own indented line."""
+    rows = [["C0007", "2026-12-05 22:42", "12.34567", "0.00120", "", "TILE-" + "0123456789" * 4]]
+    lines = _stacked(width, CAL_COLUMNS, rows)
+    assert all(len(line) <= width for line in lines)
+    i = lines.index("created (UTC):")
+    assert lines[i + 1] == "  2026-12-05 22:42"
+    assert "Vc / cm3: 12.34567" in lines
+    j = lines.index("source:")  # longer than a line: folded, indented, every character kept
+    assert "".join(line.strip() for line in lines[j + 1:]) == rows[0][5]
 
 
 @pytest.mark.parametrize("width", [80, 120])

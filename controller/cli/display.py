@@ -236,11 +236,23 @@ def print_table(columns: Sequence[Column], rows: Sequence[Sequence[str]], *, tit
     return fitted.dropped
 
 
+#: How far a value's own lines are indented under its header in a stacked block: no header starts with a
+#: space, so a line that does is always part of the value above it
+STACK_INDENT = "  "
+_BREAKS = {"\n": "\\n", "\t": "\\t"}
+
+
 def print_stacked(columns: Sequence[Column], rows: Sequence[Sequence[str]], *, title: str | None = None,
                   con: Any = None) -> None:
     """Each row as a block of 'header: value' lines, for a terminal too narrow for the table's essential
     columns: a figure or an ID is never split (at 40-60 columns the table folded both), a long name folds
-    at the terminal's width, every character kept, and no column is left out."""
+    at the terminal's width, every character kept, and no column is left out.
+
+    Only a header starts a line at the left margin. A value that does not fit beside its header goes on
+    its own indented line (a date and its time stay together), a longer one folds over indented lines,
+    and its line breaks and tabs are shown escaped (\\n, \\t) as the table shows other control
+    characters: an old retire reason 'valve swapped' + line break + 'Vc / cm3: 99.99999' must not print a
+    line that reads like one of the row's own figures (nor a blank line that reads like a row's end)."""
     from rich.text import Text
 
     con = con or console()
@@ -251,7 +263,50 @@ def print_stacked(columns: Sequence[Column], rows: Sequence[Sequence[str]], *, t
             con.print()
         for col, cell in zip(columns, r, strict=True):
             if cell.strip():
-                con.print(Text(f"{col.header}: {cell}", overflow="fold"), soft_wrap=False)
+                for line in stacked_lines(col, cell, con.width):
+                    con.print(Text(line), soft_wrap=True)
+
+
+def stacked_lines(col: Column, cell: str, width: int) -> list[str]:
+    """One 'header: value' entry as lines of at most ``width`` cells (past a header that alone is wider)."""
+    from rich.cells import cell_len
+
+    value = "".join(_BREAKS.get(ch, ch) for ch in visible(cell))
+    first = f"{col.header}: {value}"
+    if cell_len(first) <= width:
+        return [first]
+    room = max(1, width - len(STACK_INDENT))
+    return [f"{col.header}:", *(STACK_INDENT + part for part in _fold(value, room, words=col.wrap))]
+
+
+def _fold(text: str, width: int, *, words: bool) -> list[str]:
+    """The text in pieces of at most ``width`` cells: free text between words where it can, anything
+    else (an ID, a figure, a name) character by character, no character lost."""
+    from rich.cells import cell_len
+
+    if words:
+        out: list[str] = []
+        line = ""
+        for word in text.split(" "):
+            joined = f"{line} {word}" if line else word
+            if cell_len(joined) <= width:
+                line = joined
+                continue
+            if line:
+                out.append(line)
+            line = word
+            if cell_len(line) > width:  # a word longer than the line is folded like an ID
+                *head, line = _fold(line, width, words=False)
+                out.extend(head)
+        return [*out, line] if line or not out else out
+    pieces: list[str] = []
+    line = ""
+    for ch in text:
+        if line and cell_len(line + ch) > width:
+            pieces.append(line)
+            line = ""
+        line += ch
+    return [*pieces, line]
 
 
 def write_csv(rows: Sequence[dict[str, Any]], columns: Sequence[str], out: Any) -> None:
