@@ -226,3 +226,80 @@ def test_the_state_is_written_off_the_control_thread_and_flushed_at_stop(daemons
     assert writers and "pycnoctl-control" not in writers, writers
     saved = json.loads((daemons.data / STATE_FILE).read_text())
     assert saved["latched"]["kind"] == "device_error" and saved["paused"]
+
+
+def _load_within(path: Path, seconds: float = 10.0) -> tuple[dict[str, object], str | None, bool]:
+    """load_daemon_state(path) in a thread; if it blocks (an open of a FIFO waits for a writer), a writer
+    end is opened and closed to let it go, and the third item says it had blocked."""
+    import os
+    import threading
+
+    from pycnoctl.controller.service.daemon import load_daemon_state
+
+    out: list[tuple[dict[str, object], str | None]] = []
+    t = threading.Thread(target=lambda: out.append(load_daemon_state(path)), daemon=True)
+    t.start()
+    t.join(seconds)
+    blocked = t.is_alive()
+    if blocked:
+        os.close(os.open(path, os.O_WRONLY | os.O_NONBLOCK))
+        t.join(seconds)
+    return (*out[0], blocked)
+
+
+def test_a_fifo_in_place_of_the_state_file_is_not_opened(tmp_path: Path) -> None:
+    """Found by a sweep: a FIFO at <data>/daemon-state.json made `serve` hang at start, its open waiting
+    for a writer. Only a regular file is opened; anything else is a damaged state naming its path."""
+    import os
+
+    path = tmp_path / STATE_FILE
+    os.mkfifo(path)
+    state, problem, blocked = _load_within(path, 3.0)
+    assert not blocked
+    assert state == {} and problem is not None and "FIFO" in problem
+    assert f"remove or replace {path}" in problem
+
+
+@pytest.mark.parametrize("what", ["directory", "device"])
+def test_what_the_daemon_cannot_save_over_is_named_with_its_path(daemons: Started, what: str) -> None:
+    """Found by a sweep: a directory in place of the state file started latched, but no state could ever be
+    saved there again (IsADirectoryError at every save) and every restart latched again with no hint.
+    The latch and the pause say what is there and to remove or replace that path."""
+    daemons.data.mkdir(parents=True)
+    path = daemons.data / STATE_FILE
+    if what == "directory":
+        path.mkdir()
+    else:  # a device is never opened (opening a serial port, say, may reset what hangs on it)
+        path.symlink_to("/dev/null")
+    b = daemons(start=False)
+    s = b.snapshot()
+    assert s["interlock"]["latched"] and s["interlock"]["kind"] == "saved_state_damaged"
+    assert s["queue"]["paused"]
+    for said in (s["interlock"]["message"], s["queue"]["paused_reason"]):
+        assert f"a {what}, not a file" in said and f"remove or replace {path}" in said
+
+
+@pytest.mark.parametrize("saved", [
+    {"version": True, "paused": False, "paused_reason": None, "latched": None},
+    {"version": 1.0, "paused": False, "paused_reason": None, "latched": None},
+])
+def test_a_state_whose_version_is_not_the_int_1_is_damaged(tmp_path: Path, saved: dict[str, object]) -> None:
+    """Found by a sweep: {"version": true, ...} was read as version 1 (True == 1 in Python)."""
+    from pycnoctl.controller.service.daemon import load_daemon_state
+
+    (tmp_path / STATE_FILE).write_text(json.dumps(saved))
+    assert load_daemon_state(tmp_path / STATE_FILE) == ({}, "not a version 1 state")
+
+
+@pytest.mark.parametrize("latched", [{}, {"kind": ""}, {"kind": None, "message": "x"}, {"kind": 7}])
+def test_a_saved_latch_without_a_kind_latches_as_damaged(daemons: Started, latched: dict[str, object]) -> None:
+    """Found by a sweep: {"latched": {}} started latched as 'interlock unknown latched: ;'. A latch that
+    does not say which rule latched is a damaged state: latched, with the damaged state's kind and why."""
+    daemons.data.mkdir(parents=True)
+    (daemons.data / STATE_FILE).write_text(json.dumps(
+        {"version": 1, "paused": False, "paused_reason": None, "latched": latched}))
+    b = daemons(start=False)
+    s = b.snapshot()
+    assert s["interlock"]["latched"] and s["interlock"]["kind"] == "saved_state_damaged"
+    assert "a latch without its kind" in s["interlock"]["message"]
+    assert s["queue"]["paused"] and "unknown" not in s["queue"]["paused_reason"]

@@ -28,6 +28,7 @@ import logging
 import math
 import os
 import socket
+import stat
 import threading
 import time
 from collections import deque
@@ -366,22 +367,57 @@ def load_daemon_state(path: Path) -> tuple[dict[str, Any], str | None]:
     """The saved pause and latch, and a problem when the file is there but cannot be trusted.
 
     A missing file is a first start (nothing saved); anything unreadable is reported, and the caller
-    starts paused, because what it said is not known.
+    starts paused, because what it said is not known.  Only a regular file is opened: opening a FIFO
+    in its place blocked ``serve`` before it listened, and opening a device may act on the device.  What
+    is not a readable file is reported with its path to remove or replace: a directory above all, which
+    no save can replace, so until it goes every start latches again.
     """
     try:
-        raw = path.read_bytes()
+        st = os.stat(path)
     except FileNotFoundError:
         return {}, None
     except OSError as exc:
-        return {}, f"{type(exc).__name__}: {exc.strerror or exc}"
+        return {}, f"{type(exc).__name__}: {exc.strerror or exc}; remove or replace {path}"
+    if stat.S_ISDIR(st.st_mode):  # a rename cannot replace it: no state is ever saved until it goes
+        return {}, (f"it is a directory, not a file, and the daemon cannot save its state over a directory, "
+                    f"so every start would latch again; remove or replace {path}")
+    if not stat.S_ISREG(st.st_mode):
+        return {}, f"it is {_file_kind(st.st_mode)}, not a file, and was not opened; remove or replace {path}"
+    try:
+        fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | getattr(os, "O_NOCTTY", 0))
+        with os.fdopen(fd, "rb") as f:
+            if not stat.S_ISREG(os.fstat(f.fileno()).st_mode):  # replaced between the stat and the open
+                return {}, f"it is not a file; remove or replace {path}"
+            raw = f.read()
+    except FileNotFoundError:
+        return {}, None
+    except OSError as exc:
+        return {}, f"{type(exc).__name__}: {exc.strerror or exc}; remove or replace {path}"
     try:
         state = json.loads(raw)
     except (ValueError, UnicodeDecodeError) as exc:
         return {}, f"not JSON ({type(exc).__name__})"
-    if not isinstance(state, dict) or state.get("version") != 1 or not isinstance(state.get("paused"), bool) \
+    version = state.get("version") if isinstance(state, dict) else None
+    # true == 1 in Python: a version must be the int 1 itself, not a bool (nor 1.0)
+    if not isinstance(state, dict) or type(version) is not int or version != 1 \
+            or not isinstance(state.get("paused"), bool) \
             or not (state.get("latched") is None or isinstance(state.get("latched"), dict)):
         return {}, "not a version 1 state"
+    latch = state.get("latched")
+    if latch is not None and not (isinstance(latch.get("kind"), str) and latch["kind"].strip()):
+        return {}, "a latch without its kind"  # it said latched, but not which rule: not known
     return state, None
+
+
+def _file_kind(mode: int) -> str:
+    """What is at a path that is not a regular file, in words."""
+    if stat.S_ISFIFO(mode):
+        return "a named pipe (FIFO)"
+    if stat.S_ISCHR(mode) or stat.S_ISBLK(mode):
+        return "a device"
+    if stat.S_ISSOCK(mode):
+        return "a socket"
+    return "a special file"
 
 
 @dataclasses.dataclass
