@@ -9,6 +9,7 @@ See sim/README.md for the format with examples.
 
 from __future__ import annotations
 
+import contextlib
 import math
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -362,6 +363,14 @@ class SimConfig(_Strict):
                     out.append((("links", k, "between", j), f"unknown volume {end!r}"))
         if self.relief is not None and self.relief.node not in self.volumes:
             out.append((("relief", "node"), f"unknown volume {self.relief.node!r}"))
+        # the valve lifts from reseat to full bore at set_pressure: a reseat at or above it is a slip (the
+        # cell then rose to the reseat, past the set pressure the limits are checked against)
+        if self.relief is not None and self.relief.reseat is not None \
+                and self.relief.reseat >= self.relief.set_pressure:
+            out.append((("relief", "reseat"),
+                        f"relief.reseat {self.relief.reseat / 1e5:.6g} bar (gauge) is not below the relief's "
+                        f"set_pressure {self.relief.set_pressure / 1e5:.6g} bar: the valve starts to lift at "
+                        "reseat and is fully open at set_pressure; leave reseat out for 0.95 x set_pressure"))
         ins = self.instruments
         if ins.pressure.node not in self.volumes:
             out.append((("instruments", "pressure", "node"), f"unknown volume {ins.pressure.node!r}"))
@@ -419,7 +428,11 @@ class SimConfig(_Strict):
                             "first fill; make the update rate faster, or limits.frozen_after longer"))
         except ValidationError as exc:
             derived_from: Loc = ("relief", "set_pressure") if self.relief else ("instruments", "pressure", "full_scale")
-            for err in exc.errors():
+            errors = exc.errors()
+            refused_relief = any(err["loc"] == ("relief_setting",) for err in errors)
+            for err in errors:
+                if refused_relief and err["loc"] == ("max_pressure",) and "max_pressure" not in self.limits:
+                    continue  # not derived from a relief setting that is refused at its own line
                 loc: Loc = ("limits", *err["loc"])
                 unknown = err["type"] == "extra_forbidden"
                 msg = f"limits.{loc[-1]}: " + err["msg"].removeprefix("Value error, ")
@@ -432,15 +445,16 @@ class SimConfig(_Strict):
         """The derived instrument's interlock limits: the ``limits`` section over defaults.
 
         The relief setting defaults to the relief valve's (or the transducer's full scale), the
-        maximum pressure to 90 % of it; the rest to the Limits defaults.
+        maximum pressure to 90 % of it; the rest to the Limits defaults.  A relief setting the section
+        gives that is not a gauge pressure derives nothing: it is refused at its own line, and a
+        max_pressure made up in its place would be a second, spurious refusal.
         """
         relief = self.relief.set_pressure if self.relief is not None else self.instruments.pressure.full_scale
         derived: dict[str, Any] = {"relief_setting": f"{relief!r} Pa"}
         given = self.limits.get("relief_setting", derived["relief_setting"])
-        try:
+        # refused at limits.relief_setting: max_pressure stays unset unless the section gives it
+        with contextlib.suppress(UnitError, TypeError):
             derived["max_pressure"] = f"{0.9 * parse_gauge_pressure(given)!r} Pa"
-        except (UnitError, TypeError):
-            derived["max_pressure"] = None  # the section's relief_setting is refused on its own
         return Limits.model_validate({**derived, **self.limits}, context={DOCUMENT: True})
 
     def expansion_volumes(self) -> dict[str, str]:

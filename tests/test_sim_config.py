@@ -228,3 +228,28 @@ def test_a_relief_setting_limit_with_a_gauge_tag_derives_the_maximum_from_it(tmp
     p.write_text(BASE + "limits: {relief_setting: 2 barg}\n", encoding="utf-8")
     limits = load_sim_config(p).instrument_limits()
     assert limits.relief_setting == pytest.approx(2e5) and limits.max_pressure == pytest.approx(1.8e5)
+
+
+@pytest.mark.parametrize("reseat", ["3 bar", "3.5 barg", "350 kPa"])
+def test_a_relief_reseat_not_below_its_set_pressure_is_refused_at_its_line(tmp_path, reseat):
+    # found by a sweep: reseat 3.5 bar over a 3 bar set pressure loaded, and the cell peaked at 4.02 bar
+    # against the 2.87 bar of the default reseat (the valve stayed shut past its set pressure)
+    probs = _problems(tmp_path, BASE + f"relief:\n  set_pressure: 3 bar\n  reseat: {reseat}\n")
+    assert [(p.line, p.col) for p in probs] == [(11, 3)]
+    assert "relief.reseat" in probs[0].message and "not below" in probs[0].message
+    p = tmp_path / "ok.yaml"
+    p.write_text(BASE + "relief: {set_pressure: 3 bar, reseat: 2.85 bar}\n", encoding="utf-8")
+    relief = load_sim_config(p).relief
+    assert relief is not None and relief.reseat == pytest.approx(2.85e5)
+
+
+@pytest.mark.parametrize("setting", ["3 bara", "3 bananas", "0 bar", "200 bar"])
+def test_a_refused_relief_setting_is_the_only_problem(tmp_path, setting):
+    # found by a sweep: after the relief setting's own refusal came a second one, "limits.max_pressure:
+    # 'None' is not a number with a unit (derived from here ...)", at the relief valve's line
+    probs = _problems(tmp_path, BASE + "relief: {set_pressure: 3 bar}\n" + f"limits:\n  relief_setting: {setting}\n")
+    assert len(probs) == 1, [p.message for p in probs]
+    assert (probs[0].line, probs[0].col) == (11, 3) and probs[0].message.startswith("limits.relief_setting: ")
+    # a max_pressure the file gives is still checked on its own
+    probs = _problems(tmp_path, BASE + f"limits:\n  relief_setting: {setting}\n  max_pressure: 2 bananas\n")
+    assert sorted(p.line for p in probs) == [10, 11]
