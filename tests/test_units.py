@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 import pint
 import pytest
 from hypothesis import given
@@ -139,6 +141,43 @@ def test_a_gauge_key_takes_a_gauge_tag_and_refuses_an_absolute_one():
     assert u.parse_gauge_pressure("1.3 bar gauge") == u.parse_gauge_pressure("1.3") == pytest.approx(1.3e5)
     with pytest.raises(UnitError, match="tagged absolute, but this pressure is gauge"):
         u.parse_gauge_pressure("2.3 bara")
+
+
+@pytest.mark.parametrize(("fn", "text", "quoted"), [
+    (u.parse_gauge_pressure, "1.3 Barg", "'1.3 Barg': unknown unit 'Bar'"),  # was quoted as '1.3 Bar'
+    (u.parse_pressure_spec, "2 Mpa(g)", "'2 Mpa(g)': unknown unit 'Mpa'"),
+    (u.parse_pressure, "1e400 PSI", "'1e400 PSI' is not a finite number"),  # was '1e400 psi'
+    (u.parse_gauge_pressure, "1e400 PSIG", "'1e400 PSIG' is not a finite number"),
+    (u.parse_gauge_pressure, "5 mBarg", "'5 mBarg': unknown unit 'mBar'"),
+])
+def test_a_refused_pressure_is_quoted_as_the_user_typed_it(fn, text, quoted):
+    """Found by a sweep: '1.3 Barg' was refused as "'1.3 Bar': unknown unit 'Bar'", text nobody typed."""
+    with pytest.raises(UnitError) as ei:
+        fn(text)
+    assert str(ei.value).startswith(quoted), str(ei.value)
+
+
+@pytest.mark.parametrize(("text", "spellings"), [
+    ("1.3 bar g", "write '1.3 barg' or '1.3 bar(g)'"),
+    ("2 kPa g", "write '2 kPag' or '2 kPa(g)'"),
+    ("19 PSI G", "write '19 PSIg' or '19 PSI(g)'"),
+    ("50 hPa g", "write '50 hPa(g)'"),  # 'hPag' is not a spelling the tags know: not offered
+])
+def test_a_g_apart_from_a_pressure_unit_is_told_how_to_write_the_gauge_tag(text, spellings):
+    """Found by a sweep: '1.3 bar g' was refused as 'not a pressure' (the unit library reads g as gram),
+    with no word of how to write the tag; each spelling offered is one the parser takes."""
+    with pytest.raises(UnitError, match=r"is not a pressure|unknown unit") as ei:
+        u.parse_gauge_pressure(text)
+    said = str(ei.value)
+    assert said.startswith(repr(text)) and "read as gram" in said and said.endswith(spellings), said
+    for offered in re.findall(r"'([^']+)'", said.split("write ")[1]):
+        assert u.parse_pressure_spec(offered)[1] is True
+    # a key that takes no tag says so rather than offer one
+    with pytest.raises(UnitError, match="takes no gauge tag"):
+        u.parse_pressure(text)
+    with pytest.raises(UnitError) as ei:  # a 'g' after something that is no pressure unit: no hint
+        u.parse_gauge_pressure("1.3 foo g")
+    assert "gram" not in str(ei.value)
 
 
 def test_formatting_round_trip():

@@ -133,8 +133,12 @@ def _dim_key(dimension: str) -> str:
     return key
 
 
-def to_quantity(value: Any, default_unit: str, *, difference: bool = False) -> pint.Quantity[Any]:
-    """Text, number or Quantity -> Quantity of this registry (bare numbers get ``default_unit``)."""
+def to_quantity(value: Any, default_unit: str, *, difference: bool = False, said: Any = None) -> pint.Quantity[Any]:
+    """Text, number or Quantity -> Quantity of this registry (bare numbers get ``default_unit``).
+
+    ``said``: what the user typed, when ``value`` is a rewriting of it ('1.3 BAR' -> '1.3 bar', a tag cut
+    off): messages quote the user's own text, not one they never wrote."""
+    shown = value if said is None else said
     import tokenize  # with pint: its parser raises tokenize errors on some garbage
 
     import pint
@@ -153,16 +157,16 @@ def to_quantity(value: Any, default_unit: str, *, difference: bool = False) -> p
         text = str(value)
         m = _NUMBER_UNIT.match(text)
         if not m:
-            raise UnitError(f"{text!r} is not a number with a unit")
+            raise UnitError(f"{shown!r} is not a number with a unit")
         magnitude = float(m.group("num"))
         unit = _clean_unit(m.group("unit")) or default_unit
     if not math.isfinite(magnitude):
-        raise UnitError(f"{value!r} is not a finite number")
+        raise UnitError(f"{shown!r} is not a finite number")
     try:
         units = ureg.parse_units(unit) if unit else ureg.dimensionless
     except (pint.UndefinedUnitError, pint.errors.DefinitionSyntaxError, AttributeError, TypeError,
             ValueError, SyntaxError, ArithmeticError, tokenize.TokenError) as exc:
-        raise UnitError(f"{value!r}: unknown unit {unit!r}") from exc
+        raise UnitError(f"{shown!r}: unknown unit {unit!r}") from exc
     if difference:
         # a temperature step in degC is a step in K; map offset units onto their delta units
         name = str(units)
@@ -171,13 +175,14 @@ def to_quantity(value: Any, default_unit: str, *, difference: bool = False) -> p
     return Q_(magnitude, units)
 
 
-def parse_quantity(value: Any, dimension: str, *, default_unit: str | None = None) -> float:
+def parse_quantity(value: Any, dimension: str, *, default_unit: str | None = None, said: Any = None) -> float:
     """Parse ``value`` as the named dimension and return the SI magnitude.
 
     ``dimension`` is one of: pressure, volume, temperature, temperature_difference, mass, duration
     (time), rate (Pa/s), length, density, fraction.  ``default_unit`` applies to bare numbers
-    (SI when not given).
+    (SI when not given); ``said`` is the user's text when ``value`` rewrites it (see to_quantity).
     """
+    shown = value if said is None else said
     key = _dim_key(dimension)
     dimensionality, si_unit, noun = _DIMENSIONS[key]
     fast = _fast_si(value, key, default_unit if default_unit is not None else si_unit)
@@ -186,15 +191,15 @@ def parse_quantity(value: Any, dimension: str, *, default_unit: str | None = Non
     import pint
 
     q = to_quantity(value, default_unit if default_unit is not None else si_unit,
-                    difference=(key == "temperature_difference"))
+                    difference=(key == "temperature_difference"), said=shown)
     if not q.check(dimensionality):
-        raise UnitError(f"{_show(value)} is not {noun}")
+        raise UnitError(f"{_show(shown)} is not {noun}")
     try:
         out = float(q.to(si_unit).magnitude) if si_unit else float(q.to("").magnitude)
     except pint.DimensionalityError as exc:  # pragma: no cover - check() already guards this
-        raise UnitError(f"{_show(value)} is not {noun}") from exc
+        raise UnitError(f"{_show(shown)} is not {noun}") from exc
     if not math.isfinite(out):
-        raise UnitError(f"{_show(value)} is not a finite number")
+        raise UnitError(f"{_show(shown)} is not a finite number")
     return out
 
 
@@ -264,7 +269,45 @@ def _lower_pressure_unit(value: Any) -> Any:
 
 def parse_pressure(value: Any, *, default_unit: str = "bar") -> float:
     """Pressure in Pa (as given: absolute or gauge is the caller's business)."""
-    return parse_quantity(_lower_pressure_unit(value), "pressure", default_unit=default_unit)
+    return _pressure(value, default_unit, said=value, tags=False)
+
+
+def _pressure(value: Any, default_unit: str, *, said: Any, tags: bool) -> float:
+    """parse_pressure, quoting ``said`` (the user's text) in its messages; ``tags``: whether the key takes
+    a gauge tag, which decides what a lone 'g' after the unit is told to become."""
+    try:
+        return parse_quantity(_lower_pressure_unit(value), "pressure", default_unit=default_unit, said=said)
+    except UnitError as exc:
+        hint = _lone_g_hint(said, default_unit, tags=tags)
+        if hint is None:
+            raise
+        raise UnitError(f"{exc}{hint}") from None
+
+
+# '1.3 bar g', '2 kPa G': pint reads the lone g as gram and says 'not a pressure', with no word of the tag
+_LONE_G = re.compile(r"^\s*(?P<num>\S+?)\s*(?P<unit>[A-Za-z]+)\s+g\s*$", re.IGNORECASE)
+
+
+def _lone_g_hint(said: Any, default_unit: str, *, tags: bool) -> str | None:
+    """What to write instead of a 'g' standing apart after a pressure unit, or None when it is not that."""
+    m = _LONE_G.match(said) if isinstance(said, str) else None
+    if m is None:
+        return None
+    num, unit = m.group("num"), m.group("unit")
+    try:
+        parse_quantity(_lower_pressure_unit(f"{num} {unit}"), "pressure", default_unit=default_unit)
+    except UnitError:
+        return None  # the unit itself is wrong: its own message says so
+    if not tags:
+        return " (a 'g' apart from the unit is read as gram; this value takes no gauge tag)"
+    spellings = []
+    for text in (f"{num} {unit}g", f"{num} {unit}(g)"):
+        try:
+            if parse_pressure_spec(text, default_unit=default_unit)[1] is True:
+                spellings.append(repr(text))
+        except UnitError:
+            pass
+    return f" (a 'g' apart from the unit is read as gram): write {' or '.join(spellings)}"
 
 
 def parse_volume(value: Any, *, default_unit: str = "cm**3") -> float:
@@ -330,10 +373,11 @@ def parse_pressure_spec(value: Any, *, default_unit: str = "bar") -> tuple[float
         return parse_pressure(value, default_unit=default_unit), None
     m = _GAUGE_SUFFIX.search(value)
     if not m:
-        return parse_pressure(value, default_unit=default_unit), None
+        return _pressure(value, default_unit, said=value, tags=True), None
     tag = (m.group("g1") or m.group("g2") or m.group("g3") or m.group("g4")).lower()
     gauge = tag in ("g", "gauge")
-    return parse_pressure(value[: m.start()], default_unit=default_unit), gauge
+    # the messages quote what was typed ('1.3 Barg'), not the text left when the tag is cut off ('1.3 Bar')
+    return _pressure(value[: m.start()], default_unit, said=value, tags=True), gauge
 
 
 def parse_gauge_pressure(value: Any, *, default_unit: str = "bar") -> float:
