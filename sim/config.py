@@ -14,7 +14,16 @@ import math
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    ValidationError,
+    ValidationInfo,
+    field_validator,
+)
 
 from pycnoctl.controller.domain.gas import get_gas
 from pycnoctl.controller.domain.gaspath import Limits, chamber_problem, sample_period_problem, stale_problem
@@ -27,6 +36,8 @@ from pycnoctl.controller.domain.units import (
     parse_gauge_pressure,
     parse_length,
     parse_pressure,
+    parse_pressure_on,
+    parse_pressure_spec,
     parse_rate,
     parse_temperature,
     parse_temperature_difference,
@@ -78,6 +89,20 @@ NonNegPressure = Annotated[float, BeforeValidator(_nonneg(lambda v: parse_pressu
 GaugePressure = Annotated[float, BeforeValidator(lambda v: parse_gauge_pressure(v))]
 PosGaugePressure = Annotated[float, BeforeValidator(_pos(lambda v: parse_gauge_pressure(v)))]
 Temperature = Annotated[float, BeforeValidator(lambda v: parse_temperature(v))]
+
+
+def _pressure_step(value: Any) -> float:
+    """A step of the lab's pressure (Pa): a change, the same on the gauge and the absolute scale, so a
+    gauge tag ('5 mbarg', as a gauge shows the change) changes nothing and is accepted; an absolute tag
+    names a level ('1013 hPa abs'), which this key is not, so it is refused rather than taken as a change."""
+    pa, gauge = parse_pressure_spec(value)
+    if gauge is False:
+        raise ValueError(f"{value!r} is tagged absolute, but pressure_step is a change of the lab's pressure, not "
+                         "the level it steps to: give the change, e.g. '5 mbar' (a gauge tag is accepted)")
+    return pa
+
+
+PressureStep = Annotated[float, BeforeValidator(_pressure_step)]
 
 
 def _plausible(parse: Any, problem: Any) -> Any:
@@ -193,11 +218,23 @@ class SensorBase(_Strict):
 class PressureInstrument(SensorBase):
     node: str = "cell"
     kind: Literal["gauge", "absolute"] = "gauge"
-    full_scale: PosPressure = 3.5e5
-    range_min: Pressure = 0.0
+    # the range's ends are on the transducer's own scale: its tag is welcome ('3.5 barg' on a gauge
+    # transducer, as its label says), the other scale's refused (it would be read on this one)
+    full_scale: float = 3.5e5
+    range_min: float = 0.0
     noise: NonNegPressure = 0.0
     zero_offset: Pressure = 0.0
     resolution: NonNegPressure = 0.0
+
+    @field_validator("full_scale", "range_min", mode="before")
+    @classmethod
+    def _on_its_scale(cls, value: Any, info: ValidationInfo) -> float:
+        kind = info.data.get("kind")  # absent when refused on its own: no tag is checked against it
+        pa = parse_pressure_spec(value)[0] if kind is None else parse_pressure_on(value, kind)
+        if info.field_name == "full_scale" and pa <= 0.0:
+            raise ValueError(f"must be positive, got {value!r}")
+        return pa
+
     # terminal-based non-linearity: the largest deviation from the straight line through the range's ends,
     # at mid-range, as a fraction of the span (a parabola: 0 at both ends).  Calibrated datasheets of
     # thin-film gauges state 0.05-0.25 % (from memory); 0 is a perfectly linear transducer.
@@ -260,7 +297,7 @@ class Fault(_Strict):
     mode: TransducerMode | None = None  # transducer
     drift_rate: Rate = 0.0  # transducer 'drifting': zero drift
     device: Literal["valves", "pressure", "thermometer", "barometer"] | None = None  # disconnect
-    pressure_step: Pressure | None = None  # ambient_step
+    pressure_step: PressureStep | None = None  # ambient_step
     temperature_step: TempDiff | None = None  # lab_temperature_step
 
 

@@ -253,3 +253,31 @@ def test_a_refused_relief_setting_is_the_only_problem(tmp_path, setting):
     # a max_pressure the file gives is still checked on its own
     probs = _problems(tmp_path, BASE + f"limits:\n  relief_setting: {setting}\n  max_pressure: 2 bananas\n")
     assert sorted(p.line for p in probs) == [10, 11]
+
+
+def test_a_gauge_transducers_range_takes_a_gauge_tag_and_an_absolute_one_its_own(tmp_path):
+    # found by a sweep: full_scale '3.5 barg' (as a gauge transducer's label says) was an unknown unit
+    p = tmp_path / "fs.yaml"
+    p.write_text(BASE + "instruments: {pressure: {full_scale: 3.5 BARG, range_min: -1 bar(g)}}\n", encoding="utf-8")
+    pressure = load_sim_config(p).instruments.pressure
+    assert pressure.full_scale == pytest.approx(3.5e5) and pressure.range_min == pytest.approx(-1e5)
+    p.write_text(BASE + "instruments: {pressure: {kind: absolute, full_scale: 4.5 bara}}\n", encoding="utf-8")
+    assert load_sim_config(p).instruments.pressure.full_scale == pytest.approx(4.5e5)
+    # the other scale's tag would be read on this one: refused at its line
+    probs = _problems(tmp_path, BASE + "instruments: {pressure: {full_scale: 3.5 bara}}\n")
+    assert probs[0].line == 9 and "tagged absolute, but this pressure is gauge" in probs[0].message
+    probs = _problems(tmp_path, BASE + "instruments: {pressure: {kind: absolute, full_scale: 4.5 barg}}\n")
+    assert probs[0].line == 9 and "tagged gauge, but this pressure is absolute" in probs[0].message
+    probs = _problems(tmp_path, BASE + "instruments: {pressure: {full_scale: 0 barg}}\n")
+    assert "must be positive" in probs[0].message
+
+
+def test_a_pressure_step_takes_a_gauge_tag_and_refuses_an_absolute_one(tmp_path):
+    # found by a sweep: an ambient step of '5 BARG' was an unknown unit. A step is a change, the same on
+    # either scale, so a gauge tag changes nothing; an absolute tag names a level, which the key is not.
+    p = tmp_path / "step.yaml"
+    p.write_text(BASE + "faults: [{kind: ambient_step, at: 1 s, pressure_step: 5 MBARG},\n"
+                 "         {kind: ambient_step, at: 2 s, pressure_step: -3 mbar(g)}]\n", encoding="utf-8")
+    assert [f.pressure_step for f in load_sim_config(p).faults] == [pytest.approx(500.0), pytest.approx(-300.0)]
+    probs = _problems(tmp_path, BASE + "faults: [{kind: ambient_step, at: 1 s, pressure_step: 1013 hPa abs}]\n")
+    assert probs[0].line == 9 and "not the level it steps to" in probs[0].message

@@ -180,6 +180,16 @@ def test_a_g_apart_from_a_pressure_unit_is_told_how_to_write_the_gauge_tag(text,
     assert "gram" not in str(ei.value)
 
 
+def test_a_transducers_range_takes_its_own_scales_tag():
+    assert u.parse_pressure_on("3.5 barg", "gauge") == pytest.approx(3.5e5)
+    assert u.parse_pressure_on("4.5 bara", "absolute") == pytest.approx(4.5e5)
+    assert u.parse_pressure_on("4.5 bar", "absolute") == pytest.approx(4.5e5)
+    with pytest.raises(UnitError, match="tagged gauge, but this pressure is absolute"):
+        u.parse_pressure_on("4.5 barg", "absolute")
+    with pytest.raises(UnitError, match="tagged absolute, but this pressure is gauge"):
+        u.parse_pressure_on("4.5 bar(a)", "gauge")
+
+
 def test_formatting_round_trip():
     assert u.format_quantity(1.2345678e-5, "volume", "cm^3") == "12.3457 cm³"
     assert u.format_quantity(298.15, "temperature", "degC") == "25 °C"

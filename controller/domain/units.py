@@ -383,10 +383,20 @@ def parse_pressure_spec(value: Any, *, default_unit: str = "bar") -> tuple[float
 def parse_gauge_pressure(value: Any, *, default_unit: str = "bar") -> float:
     """A pressure above the lab's (Pa), where the key says gauge: a 'gauge' tag is welcome ('1.3 barg'),
     an absolute one refused, since it would be read as gauge."""
+    return parse_pressure_on(value, "gauge", default_unit=default_unit)
+
+
+def parse_pressure_on(value: Any, scale: str, *, default_unit: str = "bar") -> float:
+    """A pressure (Pa) on a scale the key already fixes, 'gauge' or 'absolute' (a gauge or an absolute
+    transducer's range): that scale's tag is welcome ('3.5 barg' on a gauge transducer), the other one
+    refused, since the value would be read on this scale whatever its tag said."""
     pa, gauge = parse_pressure_spec(value, default_unit=default_unit)
-    if gauge is False:
+    if scale == "gauge" and gauge is False:
         raise UnitError(f"{_show(value)} is tagged absolute, but this pressure is gauge (above the lab's "
                         "pressure): give it as gauge, e.g. '1.3 bar'")
+    if scale == "absolute" and gauge is True:
+        raise UnitError(f"{_show(value)} is tagged gauge, but this pressure is absolute (above vacuum): give it "
+                        "as absolute, e.g. '2.3 bar'")
     return pa
 
 
