@@ -142,6 +142,34 @@ def test_a_body_giving_a_key_twice_is_422_naming_it(local: TestClient, daemon: D
     assert len(daemon.catalog.list_runs(limit=1000)) == before
 
 
+def test_a_duplicate_key_refusal_has_the_documented_shape(local: TestClient) -> None:
+    """Found by a sweep: the 422 was {"error", "status"} alone, while refusals are documented (docs/daemon.md)
+    as {"error", "status", "problems"} with `field` naming the body's field a refusal is about."""
+    from pycnoctl.controller.service.schemas import Error
+
+    body = b'{"sequence": "quick-demo", "sample_id": "AL-0417", "sample_id": "AL-0418"}'
+    r = local.post("/api/runs", content=body, headers={"content-type": "application/json"})
+    assert r.status_code == 422
+    said = r.json()
+    Error.model_validate(said)
+    assert said["status"] == 422 and said["field"] == "sample_id"
+    assert said["problems"] == ["body.sample_id: given more than once"]
+    nested = b'{"sequence": "quick-demo", "note": {"a": 1, "a": 2}}'  # the field is the body's own key
+    said = local.post("/api/runs", content=nested, headers={"content-type": "application/json"}).json()
+    assert said["field"] == "note" and said["problems"] == ["body.note.a: given more than once"]
+
+
+@pytest.mark.parametrize("body", [b'{"a": 1, "a": 2} xx', b'{"sequence": "quick-demo", "x": {"k": 1, "k": 2}',
+                                  b'[{"a": 1, "a": 2}]]'])
+def test_text_that_is_not_json_is_400_even_with_a_key_twice(local: TestClient, body: bytes) -> None:
+    """Found by a sweep: '{"a":1,"a":2} xx' (not JSON at all) was refused as giving 'a' more than once
+    (422); it gets the 400 that any text which is not JSON gets."""
+    plain = local.post("/api/runs", content=b"{not json", headers={"content-type": "application/json"})
+    r = local.post("/api/runs", content=body, headers={"content-type": "application/json"})
+    assert r.status_code == plain.status_code == 400
+    assert r.json()["error"] == plain.json()["error"] == "the body is not valid JSON"
+
+
 @pytest.mark.parametrize("path", ["/api/runs/..%2F..%2Fcatalog.sqlite", "/api/runs/catalog.sqlite",
                                   "/api/runs/R20250101T000000Z-abcdef", "/api/runs/%2Fetc%2Fpasswd/trace.csv",
                                   "/api/runs/R20251399T000000Z-abcdef/trace.csv", "/static/../catalog.sqlite",

@@ -11,7 +11,8 @@ Why each check (safety.md, "Daemon API"):
   (never in a URL, where histories and logs keep it); compared in constant time -> 401.
 * Bodies are capped -> 413; a body must be JSON -> 415 (the /login form alone is form-encoded); a JSON
   body that gives one key twice -> 422 (a parser keeps the last silently: '"sample_id"' twice ran the
-  run under the second, which the sender may not have meant).
+  run under the second, which the sender may not have meant), shaped as the routes' refusals
+  (``problems``, ``field``); text that is not JSON is left to the route's 400.
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ import ipaddress
 import json
 import os
 import urllib.parse
+from collections import deque
 from collections.abc import Awaitable, Callable, MutableMapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -186,7 +188,12 @@ class SecurityMiddleware:
             if body and headers.get("content-type", "").split(";")[0].strip().lower() == "application/json":
                 twice = duplicate_key(body)
                 if twice is not None:  # a JSON parser takes the last silently: which one the sender meant is unknown
-                    await _reply(send, 422, f"the request body gives {twice!r} more than once")
+                    where = ".".join(str(p) for p in ("body", *twice))
+                    # shaped as the routes' refusals: the problem at its path, the body's field in `field`
+                    fields: dict[str, Any] = {"problems": [f"{where}: given more than once"]}
+                    if isinstance(twice[0], str):
+                        fields["field"] = twice[0]
+                    await _reply(send, 422, f"the request body gives {twice[-1]!r} more than once", fields=fields)
                     return
             sent = False
 
@@ -252,32 +259,44 @@ async def _discard(message: Message) -> None:
     return None
 
 
-class _Twice(Exception):
-    pass
+class _Object(dict[str, Any]):
+    """A parsed JSON object that remembers the first key it was given twice (a dict keeps the last)."""
+
+    twice: str | None = None
 
 
-def duplicate_key(body: bytes) -> str | None:
-    """The first key an object in this JSON gives twice, or None (also for text that is not JSON: the
-    route's own validation says what is wrong with it)."""
-    def pairs(items: list[tuple[str, Any]]) -> dict[str, Any]:
-        seen: dict[str, Any] = {}
-        for key, value in items:
-            if key in seen:
-                raise _Twice(key)
-            seen[key] = value
-        return seen
+def _object(items: list[tuple[str, Any]]) -> _Object:
+    out = _Object()
+    for key, value in items:
+        if key in out and out.twice is None:
+            out.twice = key
+        out[key] = value
+    return out
 
+
+def duplicate_key(body: bytes) -> tuple[str | int, ...] | None:
+    """Where this JSON first gives one key twice (the path to it: keys and list indices, the key last),
+    or None; also None for text that is not JSON at all, which the route refuses as such (400): a
+    duplicate is only worth naming in an otherwise valid body."""
     try:
-        json.loads(body, object_pairs_hook=pairs)
-    except _Twice as twice:
-        return str(twice.args[0])
+        doc = json.loads(body, object_pairs_hook=_object)
     except (ValueError, RecursionError):
         return None
+    todo: deque[tuple[tuple[str | int, ...], Any]] = deque([((), doc)])
+    while todo:  # breadth first (the shallowest is named), without recursion (a body may nest deep)
+        path, node = todo.popleft()
+        if isinstance(node, _Object):
+            if node.twice is not None:
+                return (*path, node.twice)
+            todo.extend(((*path, k), v) for k, v in node.items())
+        elif isinstance(node, list):
+            todo.extend(((*path, i), v) for i, v in enumerate(node))
     return None
 
 
-async def _reply(send: Send, status: int, message: str, extra: list[tuple[bytes, bytes]] | None = None) -> None:
-    body = json.dumps({"error": message, "status": status}).encode("utf-8")
+async def _reply(send: Send, status: int, message: str, extra: list[tuple[bytes, bytes]] | None = None,
+                 fields: dict[str, Any] | None = None) -> None:
+    body = json.dumps({"error": message, "status": status, **(fields or {})}).encode("utf-8")
     headers = [(b"content-type", b"application/json"), (b"content-length", str(len(body)).encode()),
                *(extra or [])]
     await send({"type": "http.response.start", "status": status, "headers": headers})
