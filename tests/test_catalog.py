@@ -208,3 +208,23 @@ def test_one_catalog_from_many_threads(cat):
         t.join()
     assert errors == []
     assert len(cat.list_runs(status="running", limit=1000)) == 80
+
+
+def test_a_damaged_catalog_is_named_and_the_way_out_said(tmp_path):
+    # found by a sweep: 'failed: DatabaseError: database disk image is malformed' with no file named
+    import sqlite3 as _sqlite3
+
+    from pycnoctl.controller.record.catalog import CatalogError, _opening_problem
+
+    good = tmp_path / "good.sqlite"
+    with Catalog(good) as cat:
+        for i in range(40):
+            cat.create_run(kind="measurement", sample_id=f"AL-{i:04d}", sequence_name="quick-demo")
+    cut = tmp_path / "catalog.sqlite"
+    cut.write_bytes(good.read_bytes()[:3000])
+    with pytest.raises(CatalogError, match=r"is damaged \(.*\); every run's record is still in its folder") as exc:
+        Catalog.for_reading(cut)
+    assert str(cut) in str(exc.value)
+    locked = _sqlite3.OperationalError("database is locked")
+    assert "is locked by another process" in str(_opening_problem(cut, locked))
+    assert _opening_problem(cut, _sqlite3.OperationalError("database or disk is full")) is None  # a storage fault

@@ -326,6 +326,22 @@ def _refused_write(exc: sqlite3.Error) -> bool:
     return (isinstance(code, int) and code & 0xFF in (8, 14)) or "readonly" in str(exc).lower()
 
 
+def _opening_problem(path: Path, exc: sqlite3.Error) -> CatalogError | None:
+    """What a catalog that cannot be opened says: locked, damaged, or the database's own words, with the
+    file named (found by a sweep: 'failed: DatabaseError: database disk image is malformed', no path).
+    None for anything else: a full disk or an I/O error is the machine's condition, told as a storage fault."""
+    code = getattr(exc, "sqlite_errorcode", None)
+    primary = code & 0xFF if isinstance(code, int) else None
+    text = str(exc)
+    if primary == 5 or "locked" in text:  # SQLITE_BUSY
+        return CatalogError(f"the catalog {path} is locked by another process (a write held for over 5 s); try "
+                            "again, and if it stays locked look for a program holding it open")
+    if primary in (11, 26) or "malformed" in text or "not a database" in text:  # SQLITE_CORRUPT, SQLITE_NOTADB
+        return CatalogError(f"the catalog {path} is damaged ({text}); every run's record is still in its folder "
+                            f"under {path.parent / 'runs'}: move the damaged catalog aside to start a new one")
+    return None
+
+
 def _connect_readonly(path: Path) -> sqlite3.Connection:
     """A connection that never writes.  ``mode=ro`` reads a WAL catalog when its -shm file exists or
     can be made; on media where neither holds, ``immutable=1`` (nothing can change it there anyway)."""
@@ -354,6 +370,15 @@ class Catalog:
         self.readonly = readonly
         self._lock = threading.RLock()
         self._before_commit: Callable[[], None] | None = None  # test hook: runs inside the held section
+        try:
+            self._open(readonly)
+        except sqlite3.Error as exc:
+            problem = None if not readonly and _refused_write(exc) else _opening_problem(self.path, exc)
+            if problem is None:  # for_reading opens read-only where the media refuses a write
+                raise
+            raise problem from None
+
+    def _open(self, readonly: bool) -> None:
         if readonly:
             self._con = _connect_readonly(self.path)
             self._con.row_factory = sqlite3.Row
