@@ -80,3 +80,34 @@ def test_show_and_report(tmp_path: Path, capsys: pytest.CaptureFixture[str], mon
     args = parser.parse_args(["report", "--samples", "TILE-", "--data", str(tmp_path),
                               "--out", str(tmp_path / "set.html")])
     assert args.func(args) == 0 and "TILE-3" in (tmp_path / "set.html").read_text()
+
+
+def test_a_run_whose_folder_is_gone_and_a_folder_no_row_names_are_said(tmp_path: Path,
+                                                                        capsys: pytest.CaptureFixture[str],
+                                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    """Found by a sweep: a run folder deleted while its catalog row remained was listed as completed with
+    its volume; a zero-byte catalog listed '0 run(s)' while runs/ held ten folders, with no word."""
+    import shutil
+
+    data = tmp_path / "data"
+    ids = []
+    for _ in range(2):
+        assert cli.main(["run", "quick-demo", "--sim", "--data", str(data), "--quiet", "--json"]) == 0
+        ids.append(json.loads(capsys.readouterr().out)["run_id"])
+    shutil.rmtree(data / "runs" / ids[0])
+    monkeypatch.setenv("COLUMNS", "120")
+    assert cli.main(["runs", "--data", str(data)]) == 0
+    text = capsys.readouterr().out
+    line = next(x for x in text.splitlines() if ids[0] in x)
+    assert "completed (NO RECORD)" in line and "NO RECORD" not in next(x for x in text.splitlines() if ids[1] in x)
+    assert cli.main(["runs", "--data", str(data), "--json"]) == 0
+    assert {r["run_id"]: r["record_missing"] for r in json.loads(capsys.readouterr().out)} == {ids[0]: True,
+                                                                                               ids[1]: False}
+    # a catalog from before the second run (here: a new one): its folder is named
+    (data / "catalog.sqlite").unlink()
+    for extra in ("-wal", "-shm"):
+        (data / f"catalog.sqlite{extra}").unlink(missing_ok=True)
+    Catalog(data / "catalog.sqlite").close()
+    assert cli.main(["runs", "--data", str(data)]) == 0
+    text = " ".join(capsys.readouterr().out.split())
+    assert f"the runs folder holds 1 run folder the catalog does not list, e.g. {ids[1]}" in text

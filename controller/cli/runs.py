@@ -18,6 +18,7 @@ import argparse
 import contextlib
 import datetime as _dt
 import json
+import os
 import sys
 from collections.abc import Callable
 from pathlib import Path
@@ -31,7 +32,7 @@ CSV_COLUMNS = ["run_id", "created", "sample_id", "sequence", "kind", "status", "
                "U_volume_cm3", "density_g_cm3", "mass_g", "calibration_id", "message",
                # from the run's record (summary.json) unless the catalog row has the field itself
                "gas", "instrument", "operator", "expansion_volume", "rsd", "cycles", "cycles_kept", "converged",
-               "porosity", "U_porosity", "simulated", "calibrated", "warnings"]
+               "porosity", "U_porosity", "simulated", "calibrated", "warnings", "record_missing"]
 
 
 def _flat(doc: dict[str, Any]) -> dict[str, Any]:
@@ -107,6 +108,9 @@ def with_record(row: dict[str, Any], r: Any, runs_dir: Path) -> dict[str, Any]:
     out = dict(row)
     for col, get in FROM_RECORD.items():
         out[col] = getattr(r, col) if hasattr(r, col) else get(doc)
+    # a run that started keeps a folder; without it the catalog's figures stand alone, unverifiable (found by
+    # a sweep: a deleted run folder still listed as completed, its volume shown)
+    out["record_missing"] = r.started is not None and not folder.is_dir()
     return out
 
 
@@ -151,7 +155,26 @@ def main(args: argparse.Namespace) -> int:
         write_csv(rows, CSV_COLUMNS, sys.stdout)
     else:
         print_table([with_record(row, r, root / "runs") for row, r in zip(rows, found, strict=True)], units)
+        unlisted = _unlisted_folders(root / "runs", path)
+        if unlisted:
+            print(f"(the runs folder holds {len(unlisted)} run folder{'s' if len(unlisted) != 1 else ''} the catalog "
+                  f"does not list, e.g. {sorted(unlisted)[0]}: a catalog replaced or restored from before them? "
+                  "pycnoctl show and analyze read a run folder directly)")
     return 0
+
+
+def _unlisted_folders(runs_dir: Path, catalog_path: Path) -> set[str]:
+    """Run folders under runs/ that no catalog row names."""
+    from pycnoctl.controller.record.catalog import Catalog, is_run_id
+
+    try:
+        names = {e.name for e in os.scandir(runs_dir) if e.is_dir() and is_run_id(e.name)}
+    except OSError:
+        return set()
+    if not names:
+        return set()
+    with Catalog.for_reading(catalog_path) as catalog:
+        return names - catalog.folder_names()
 
 
 def table_columns(units: Any) -> list[Any]:
@@ -192,7 +215,7 @@ def table_rows(rows: list[dict[str, Any]], units: Any) -> list[list[str]]:
     # the volume cell itself carries an impossible result's mark: the notes column is the first a
     # narrow terminal leaves out
     return [[r["run_id"], (r["created"] or "")[:16].replace("T", " "), r["sample_id"] or "-",
-             r["sequence"] or "-", r["status"],
+             r["sequence"] or "-", r["status"] + (" (NO RECORD)" if r.get("record_missing") else ""),
              _f(r["volume_cm3"]) + (" (not a measurement)" if _impossible(r) else ""), _f(r["U_volume_cm3"]),
              units.rho(None if r["density_g_cm3"] is None else r["density_g_cm3"] * 1e3), notes(r)] for r in rows]
 

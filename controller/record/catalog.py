@@ -660,6 +660,10 @@ class Catalog:
         args.append(BROAD_PREFIX)
         return bool(self._read(sql + " LIMIT ?)", args)[0][0] >= BROAD_PREFIX)
 
+    def folder_names(self) -> set[str]:
+        """The run folder name of every run the catalog lists (to find folders it does not)."""
+        return {str(r[0]) for r in self._read("SELECT COALESCE(folder, id) FROM runs")}
+
     def mark_interrupted_on_startup(self, message: str = "daemon stopped while running; not resumed",
                                     runs_dir: Path | None = None) -> list[str]:
         """Runs left 'running' by a dead daemon become 'interrupted'; nothing is resumed.
