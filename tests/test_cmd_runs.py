@@ -111,3 +111,29 @@ def test_a_run_whose_folder_is_gone_and_a_folder_no_row_names_are_said(tmp_path:
     assert cli.main(["runs", "--data", str(data)]) == 0
     text = " ".join(capsys.readouterr().out.split())
     assert f"the runs folder holds 1 run folder the catalog does not list, e.g. {ids[1]}" in text
+
+
+def test_a_running_row_whose_writer_is_gone_says_so(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                                    monkeypatch: pytest.MonkeyPatch) -> None:
+    """Found by a sweep: a run killed with SIGKILL stayed 'running' in `runs` until the next writer came.
+    Readers take no lock; the lock file names the writer, and a writer whose process is gone is said."""
+    import json as _json
+    import subprocess
+    import sys
+
+    from pycnoctl.controller.record.datalock import LOCK_NAME
+
+    data = tmp_path / "data"
+    data.mkdir()
+    with Catalog(data / "catalog.sqlite") as cat:
+        rid = cat.create_run(kind="measurement", sample_id="AL-0417", sequence_name="quick-demo", status="running")
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True,
+                          check=True)
+    monkeypatch.setenv("COLUMNS", "140")
+    for pid, gone in ((int(dead.stdout), True), (__import__("os").getpid(), False)):
+        (data / LOCK_NAME).write_text(_json.dumps({"pid": pid, "command": "pycnoctl run"}) + "\n")
+        assert cli.main(["runs", "--data", str(data)]) == 0
+        line = next(x for x in capsys.readouterr().out.splitlines() if rid in x)
+        assert ("no process: killed?" in line) is gone, line
+        assert cli.main(["runs", "--data", str(data), "--json"]) == 0
+        assert _json.loads(capsys.readouterr().out)[0]["process_gone"] is gone

@@ -32,7 +32,8 @@ CSV_COLUMNS = ["run_id", "created", "sample_id", "sequence", "kind", "status", "
                "U_volume_cm3", "density_g_cm3", "mass_g", "calibration_id", "message",
                # from the run's record (summary.json) unless the catalog row has the field itself
                "gas", "instrument", "operator", "expansion_volume", "rsd", "cycles", "cycles_kept", "converged",
-               "porosity", "U_porosity", "simulated", "calibrated", "warnings", "record_missing"]
+               "porosity", "U_porosity", "simulated", "calibrated", "warnings", "record_missing",
+               "process_gone"]
 
 
 def _flat(doc: dict[str, Any]) -> dict[str, Any]:
@@ -145,6 +146,13 @@ def main(args: argparse.Namespace) -> int:
         found = query(catalog, sample=args.sample, since=since, until=until, status=args.status,
                       limit=args.limit, before=args.before)
     rows = [row_dict(r) for r in found]
+    if any(r["status"] == "running" for r in rows):
+        from pycnoctl.controller.record.datalock import live_writer
+
+        gone = live_writer(root) is None  # killed: the next writer marks it interrupted (found by a sweep)
+        for r in rows:
+            if r["status"] == "running":
+                r["process_gone"] = gone
     if args.json or args.csv:
         rows = [with_record(row, r, root / "runs") for row, r in zip(rows, found, strict=True)]
     if args.json:
@@ -215,7 +223,8 @@ def table_rows(rows: list[dict[str, Any]], units: Any) -> list[list[str]]:
     # the volume cell itself carries an impossible result's mark: the notes column is the first a
     # narrow terminal leaves out
     return [[r["run_id"], (r["created"] or "")[:16].replace("T", " "), r["sample_id"] or "-",
-             r["sequence"] or "-", r["status"] + (" (NO RECORD)" if r.get("record_missing") else ""),
+             r["sequence"] or "-", r["status"] + (" (NO RECORD)" if r.get("record_missing") else "")
+             + (" (no process: killed?)" if r.get("process_gone") else ""),
              _f(r["volume_cm3"]) + (" (not a measurement)" if _impossible(r) else ""), _f(r["U_volume_cm3"]),
              units.rho(None if r["density_g_cm3"] is None else r["density_g_cm3"] * 1e3), notes(r)] for r in rows]
 

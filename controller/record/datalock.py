@@ -87,6 +87,29 @@ def acquire(root: Path, command: str) -> DataLock:
     return DataLock(root, handle, owner, previous or None)
 
 
+def live_writer(root: Path) -> dict[str, Any] | None:
+    """Who writes this data folder now, as its lock file says, if that process is alive; None when none is.
+
+    For readers, which take no lock (and must not: a reader's lock would refuse a writer starting that
+    instant): a run the catalog calls 'running' with no live writer was killed, and stays 'running' until the
+    next writer marks it interrupted."""
+    try:
+        with open(root / LOCK_NAME, encoding="utf-8") as handle:
+            owner = _read(handle)
+    except OSError:
+        return None
+    pid = owner.get("pid")
+    if not isinstance(pid, int) or pid <= 0:
+        return None
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return None
+    except PermissionError:  # alive, another user's
+        pass
+    return owner
+
+
 def _read(handle: IO[str]) -> dict[str, Any]:
     handle.seek(0)
     text = handle.read(4096).strip()
