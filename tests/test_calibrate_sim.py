@@ -206,3 +206,20 @@ def test_the_shipped_calibration_sequence_serves_any_volume_names(tmp_path: Path
 
     out = json.loads(capsys.readouterr().out)
     assert rc == 0 and out["status"] == "stored" and out["volumes"][0]["expansion_volume"] == "bulb_a"
+
+
+def test_one_certificate_twice_and_a_sphere_larger_than_the_cell_are_refused_before_any_step():
+    """Found by a sweep: the same sphere spec given twice lowered u(Vc) from 0.00288 to 0.00205 cm3 with no
+    word (its certificate's error counted as two independent ones); a 40 mm sphere in a 12 cm3 cell was
+    refused only by the simulator's own 'solid plus pore volume must be smaller than the cell volume'."""
+    from pycnoctl.controller.cli.main import main as cli_main
+    from pycnoctl.controller.jobs.calibration import parse_sphere, sphere_problem
+
+    twice = [parse_sphere("V=5 cm3,u=0.001 cm3", "sphere 1"), parse_sphere("V=5 cm3,u=0.001 cm3", "sphere 2")]
+    assert "sphere 2 repeats sphere 1's certificate" in (sphere_problem(twice, 12e-6) or "")
+    named = [parse_sphere("V=5 cm3,u=0.001 cm3,name=ball A", "sphere 1"),
+             parse_sphere("V=5 cm3,u=0.001 cm3,name=ball B", "sphere 2")]
+    assert sphere_problem(named, 12e-6) is None  # two spheres that share a certificate value, named apart
+    big = [parse_sphere("D=40 mm,u=0.002 mm", "sphere 1")]  # 33.5 cm3 (pi d^3 / 6)
+    assert "does not fit the sample cell (12 cm3)" in (sphere_problem(big, 12e-6) or "")
+    assert cli_main(["calibrate", "--sim", "--sphere", "D=40 mm,u=0.002 mm", "--yes"]) == 2

@@ -231,6 +231,11 @@ class SimCellLoader:
         self._rng = np.random.default_rng(self.seed if self.seed is not None else fresh_seed())
         self.placed: dict[str, float] = {}  # label -> the volume really in the cell (the truth)
 
+    @property
+    def cell_volume(self) -> float:
+        """m^3: the simulated sample cell's true volume (what a sphere must fit)."""
+        return float(self.config.volumes[self.config.cell].volume)
+
     def load(self, index: int, sphere: Sphere) -> Instrument:
         from pycnoctl.drivers.simulated import build_sim_instrument
         from pycnoctl.sim.config import Sample, check
@@ -265,6 +270,11 @@ class OperatorCellLoader:
 
     def unload(self, instrument: Instrument) -> None:
         """The instrument stays open for the next step."""
+
+    @property
+    def cell_volume(self) -> float:
+        """m^3: the sample cell as the instrument config gives it (what a sphere must fit)."""
+        return float(self.instrument.chambers.cell)
 
 
 # ----------------------------------------------------------------------------- the workflow
@@ -328,6 +338,32 @@ def record_for(fit: CalibrationFit, name: str, spheres: Sequence[Sphere], points
     )
 
 
+def _named(sphere: Sphere) -> bool:
+    return any(part.strip().lower().startswith("name") for part in (sphere.spec or "").split(","))
+
+
+def sphere_problem(spheres: Sequence[Sphere], cell_volume: float | None) -> str | None:
+    """Why these spheres cannot calibrate this cell, or None (found by a sweep):
+
+    * one certificate given twice, unnamed: the same sphere measured twice, its certificate's error taken
+      as two independent ones (u(Vc) fell from 0.00288 to 0.00205 cm3 with no word); two spheres that
+      share a certificate value are named apart (name=...);
+    * a sphere that does not fit the cell (the simulator said only 'solid plus pore volume must be smaller
+      than the cell volume'; on hardware the operator would be asked to load it)."""
+    for i, a in enumerate(spheres):
+        for b in spheres[i + 1:]:
+            if (a.volume, a.u_volume) == (b.volume, b.u_volume) and not (_named(a) and _named(b)):
+                return (f"{b.label} repeats {a.label}'s certificate ({a.spec}): the same sphere measured twice "
+                        "takes its certificate's error as two independent ones, a smaller uncertainty than it has. "
+                        "Give each sphere once, or name two spheres that share a certificate value (name=...)")
+    if cell_volume is not None and cell_volume > 0:
+        for sph in spheres:
+            if sph.volume >= cell_volume:
+                return (f"{sph.label} ({sph.volume * 1e6:.5g} cm3) does not fit the sample cell "
+                        f"({cell_volume * 1e6:.5g} cm3): a calibration sphere is smaller than the cell")
+    return None
+
+
 def calibrate(
     spheres: Sequence[Sphere],
     loader: CellLoader,
@@ -355,6 +391,9 @@ def calibrate(
     labels = [s.label for s in steps]
     if len(set(labels)) != len(labels):
         raise CalibrationError("sphere names must differ")
+    problem = sphere_problem(steps[1:], getattr(loader, "cell_volume", None))
+    if problem is not None:
+        raise CalibrationError(problem)
     points: dict[str, list[Point]] = {}
     run_ids: dict[str, list[str]] = {}
     seq_model: Any = None
