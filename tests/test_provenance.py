@@ -353,3 +353,18 @@ def test_show_says_when_the_calibration_a_run_used_was_retired_since(tmp_path: P
     assert cli.main(["show", run_id, *data]) == 0
     out = " ".join(capsys.readouterr().out.split())
     assert f"RETIRED since this run: calibration {cid}" in out and "expansion valve replaced" in out
+
+
+def test_calibrations_show_gives_each_sphere_in_cm3(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # found by a sweep: each sphere was printed as the stored dict, its volume in m^3
+    data = ["--data", str(tmp_path)]
+    assert cli.main(["calibrate", "--sim", "--sphere", "V=5 cm3,u=0.001 cm3", "--sphere", "V=8 cm3,u=0.001 cm3",
+                     "--expansion-volume", "small", "--yes", "--json", *data]) == 0
+    capsys.readouterr()
+    assert cli.main(["calibrations", "list", "--all", "--json", *data]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert rows, "the calibration was not stored"
+    assert cli.main(["calibrations", "show", rows[0]["id"], *data]) == 0
+    text = capsys.readouterr().out
+    assert "sphere 1: 5.00000 cm3, u = 0.00100 cm3 (k = 1); certificate 'V=5 cm3,u=0.001 cm3'" in text
+    assert "empty cell: nothing in the cell" in text and "{'label'" not in text

@@ -234,7 +234,7 @@ def _show(args: argparse.Namespace, catalog: Any) -> int:
         lines.append(f"fill pressure {rec.fill_pressure / 1e5:.4f} bar (gauge), gas {rec.temperature - 273.15:.2f} degC"
                      if rec.temperature else f"fill pressure {rec.fill_pressure / 1e5:.4f} bar (gauge)")
     for s in rec.spheres or []:
-        lines.append(f"sphere: {s}")
+        lines.append(_sphere_line(s))
     if payload.get("note"):
         lines.append(f"note: {payload['note']}")
     if rec.operator:
@@ -243,6 +243,20 @@ def _show(args: argparse.Namespace, catalog: Any) -> int:
         lines.append(f"RETIRED {rec.retired}")
     print("\n".join(lines))
     return 0
+
+
+def _sphere_line(s: Any) -> str:
+    """One insert of the calibration as a person reads it (was the stored dict, in m^3)."""
+    if not isinstance(s, dict):
+        return f"insert: {s}"
+    label = s.get("label") or "sphere"
+    volume, u = s.get("volume"), s.get("u_volume")
+    if not isinstance(volume, int | float) or volume == 0:
+        return f"{label}: nothing in the cell"
+    text = f"{label}: {volume * 1e6:.5f} cm3"
+    if isinstance(u, int | float):
+        text += f", u = {u * 1e6:.5f} cm3 (k = 1)"
+    return text + (f"; certificate '{s['spec']}'" if s.get("spec") else "")
 
 
 def _select(args: argparse.Namespace, catalog: Any) -> int:
