@@ -160,6 +160,11 @@ def main(argv: Sequence[str] | None = None) -> int:
             for problem in exc.problems:
                 print(problem, file=sys.stderr)
             return 2
+        # a run record damaged or edited by hand is bad input too (as `analyze` says it): one line naming the file
+        runfolder = sys.modules.get("pycnoctl.controller.record.runfolder")
+        if runfolder is not None and isinstance(exc, runfolder.DamagedFile):
+            print(f"pycnoctl {args.verb}: error: the run's record cannot be read: {exc}", file=sys.stderr)
+            return 2
         # never a traceback to the user: one line, exit 3 (PYCNOCTL_DEBUG=1 shows it)
         if os.environ.get("PYCNOCTL_DEBUG"):
             raise

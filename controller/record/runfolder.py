@@ -761,6 +761,9 @@ def _read_cycles(path: Path) -> list[dict]:
 def load_run(folder: Path | str, trace_columns: Collection[str] | None = None) -> StoredRun:
     """Read a run folder back; tolerant of a torn last trace row or event line (crash mid-write).
 
+    DamagedFile names a file that is there but cannot be read as what it should be; a trace whose times are
+    not finite and strictly increasing is one.
+
     ``trace_columns``: only these columns of the trace are kept (a plot needs five of a dozen)."""
     only = None if trace_columns is None else frozenset(trace_columns)
     folder = Path(folder)
@@ -774,10 +777,32 @@ def load_run(folder: Path | str, trace_columns: Collection[str] | None = None) -
         trace, torn = side_trace, False
     else:  # the side file only for a finished run: its trace will not grow again
         trace, torn = _read_trace(trace_path, columns, side=side if summary_path.exists() else None, only=only)
+    if "t" in trace:
+        _check_time(trace_path, trace["t"])
     events, torn_ev = _read_events(folder / "events.jsonl")
     cycles = _read_cycles(folder / "cycles.csv")
     summary = read_summary(summary_path)
     return StoredRun(folder, meta, trace, events, cycles, summary, torn, torn_ev)
+
+
+def _check_time(path: Path, t: np.ndarray) -> None:
+    """DamagedFile unless the sample times are finite and strictly increasing.
+
+    The recorder writes them so, and every reader relies on it: a trace with rows appended twice, reversed
+    or shuffled was read as extra or missing cycles (and a result stated), or failed deep in the settle
+    maths with a ValueError.  Rows are numbered as lines of the file (the header is line 1)."""
+    if t.size == 0:
+        return
+    bad = np.flatnonzero(~np.isfinite(t))
+    first_bad = int(bad[0]) if bad.size else t.size
+    with np.errstate(invalid="ignore"):
+        stuck = np.flatnonzero(~(np.diff(t[:first_bad]) > 0))
+    if stuck.size:
+        i = int(stuck[0]) + 1
+        raise DamagedFile(path, f"column 't' does not increase at row {i + 2} ({float(t[i])!r} after "
+                                f"{float(t[i - 1])!r}): rows repeated, reordered or edited")
+    if bad.size:
+        raise DamagedFile(path, f"column 't' is not a finite number at row {first_bad + 2} ({float(t[first_bad])!r})")
 
 
 def read_summary(path: Path) -> dict | None:
