@@ -335,9 +335,12 @@ def main(args: argparse.Namespace) -> int:
     from pycnoctl.controller.maths.results import WARM_UP
 
     for c in out["cycles"]:
-        mark = "" if c["kept"] else " (warm-up)" if WARM_UP in c["flags"] else " (discarded)"
+        volume = c["volume_cm3"]  # None: the cycle gave no volume (its flags say why)
+        mark = ("" if c["kept"] else " (warm-up)" if WARM_UP in c["flags"] else
+                " (no volume)" if volume is None else " (discarded)")
+        shown = "V —" if volume is None else f"V {volume:.5f} cm3"
         print(f"  cycle {c['index']}: P1 {units.p(c['p1_gauge_pa'])}, P2 {units.p(c['p2_gauge_pa'])} {units.p_label}, "
-              f"V {c['volume_cm3']:.5f} cm3{mark} {' '.join(c['flags'])}")
+              f"{shown}{mark} {' '.join(c['flags'])}")
     if out["volume_cm3"] is not None:
         print(f"volume: {out['volume_cm3']:.5f} cm3 +/- {out['volume_u_cm3']:.5f} cm3 (expanded U, k = {out['k']:g})")
         if out["stored_volume_cm3"] is not None and math.isfinite(out["stored_volume_cm3"]):

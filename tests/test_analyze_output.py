@@ -1,0 +1,65 @@
+"""What `analyze` prints and returns for recomputations that keep no cycle, or lose one: found by a sweep."""
+
+from __future__ import annotations
+
+import csv
+import json
+import shutil
+from collections.abc import Callable
+from pathlib import Path
+
+import pytest
+
+from pycnoctl.controller.cli.main import main
+
+Row = dict[str, str]
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A finished quick-demo run (3 cycles, the first discarded as warm-up) on the simulator."""
+    data = tmp_path_factory.mktemp("data")
+    assert main(["run", "quick-demo", "--sim", "--data", str(data), "--quiet", "--json"]) == 0
+    (folder,) = (data / "runs").iterdir()
+    return folder
+
+
+def edited_copy(demo_run: Path, tmp_path: Path, edit: Callable[[Row], Row | None]) -> Path:
+    """A copy of the run in tmp_path/runs whose trace rows are passed through edit (None drops the row)."""
+    folder = tmp_path / "runs" / demo_run.name
+    shutil.copytree(demo_run, folder)
+    (folder / "trace.npz").unlink(missing_ok=True)
+    with open(folder / "trace.csv", newline="") as fh:
+        reader = csv.DictReader(fh)
+        header, rows = list(reader.fieldnames or []), list(reader)
+    with open(folder / "trace.csv", "w", newline="") as fh:
+        writer = csv.DictWriter(fh, header, lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(r for r in (edit(row) for row in rows) if r is not None)
+    return folder
+
+
+def analyze(capsys: pytest.CaptureFixture[str], folder: Path, *extra: str) -> tuple[int, str, str]:
+    capsys.readouterr()
+    code = main(["analyze", str(folder), "--data", str(folder.parent.parent), *extra])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def _no_ambient_before_fill(n: int) -> Callable[[Row], Row]:
+    """No lab pressure in the baseline before fill n (the trace numbers it with the cycle before)."""
+    def edit(row: Row) -> Row:
+        return {**row, "ambient_pa": "nan"} if (row["state"], row["cycle"]) == ("baseline", str(n - 1)) else row
+    return edit
+
+
+def test_a_cycle_without_a_volume_is_printed_with_its_flag(demo_run, tmp_path, capsys):
+    # found by a sweep: "failed: TypeError: unsupported format string passed to NoneType.__format__" (exit 3),
+    # after --save had written reanalysis.json
+    folder = edited_copy(demo_run, tmp_path, _no_ambient_before_fill(2))
+    code, out, err = analyze(capsys, folder, "--save")
+    assert (code, err) == (0, ""), err
+    (line,) = [ln for ln in out.splitlines() if ln.startswith("  cycle 2:")]
+    assert "V —" in line and "(no volume)" in line and "no volume: pa must be a positive" in line
+    saved = json.loads((folder / "reanalysis.json").read_text())
+    assert saved["cycles"][1]["volume_cm3"] is None and saved["cycles"][2]["volume_cm3"] is not None
