@@ -152,5 +152,7 @@ def _run(args: argparse.Namespace, request: Any, root: Any) -> int:
     if summary["status"] == "completed" and summary.get("leak_ok") is False:
         return 5
     if summary["status"] == "completed" and summary.get("impossible"):
-        return 7
+        from pycnoctl.controller.maths.verdict import EXIT_NOT_A_MEASUREMENT
+
+        return EXIT_NOT_A_MEASUREMENT
     return EXIT.get(summary["status"], 3)

@@ -13,6 +13,10 @@ import numpy as np
 
 from pycnoctl.controller.domain.gaspath import ChamberCalibration
 from pycnoctl.controller.maths import stats, uncertainty
+from pycnoctl.controller.maths.verdict import NOT_A_MEASUREMENT as NOT_A_MEASUREMENT
+from pycnoctl.controller.maths.verdict import is_not_a_measurement as is_not_a_measurement
+from pycnoctl.controller.maths.verdict import not_a_measurement as not_a_measurement
+from pycnoctl.controller.maths.verdict import outside_cell
 from pycnoctl.controller.maths.volume import VolumeError
 
 
@@ -189,38 +193,6 @@ def cycle_result(cyc: CyclePressures, chambers: ChamberCalibration, *, gas: str,
         p1_ambient_pa=amb1, p2_ambient_pa=amb2,
         u_random_m3=math.sqrt(budget.random_variance) if budget is not None else math.nan,
     )
-
-
-#: How a result no specimen can have (outside_cell) is marked wherever it is shown or stored: the summary's
-#: warnings, the catalog row's message, the views; `run` exits 7 for it.
-NOT_A_MEASUREMENT = "NOT A MEASUREMENT"
-
-
-def not_a_measurement(why: str) -> str:
-    """The line that marks a result as no measurement, with why (outside_cell's sentence)."""
-    return f"{NOT_A_MEASUREMENT}: {why}"
-
-
-def is_not_a_measurement(message: object) -> bool:
-    """Whether a stored message (a catalog row's) marks its result as no measurement."""
-    return str(message or "").startswith(NOT_A_MEASUREMENT)
-
-
-def outside_cell(volume: float, expanded_u: float, cell: float) -> str | None:
-    """Why a volume cannot be a specimen's (below zero or above the sample cell's volume by more than its
-    expanded uncertainty), or None.  Within its U of either end it can: an empty cell measures about
-    zero, and a run must not be called impossible for its noise.  Such a result says the chamber volumes
-    or the readings are wrong, not something about the specimen."""
-    if not (math.isfinite(volume) and math.isfinite(expanded_u)):
-        return None
-    if volume + expanded_u < 0.0:
-        return (f"the volume {volume * 1e6:.5g} cm3 is below zero by more than its U ({expanded_u * 1e6:.3g} cm3): "
-                "the chamber volumes (calibration) or the pressure readings are wrong")
-    if volume - expanded_u > cell:
-        return (f"the volume {volume * 1e6:.5g} cm3 exceeds the sample cell's {cell * 1e6:.5g} cm3 by more than "
-                f"its U ({expanded_u * 1e6:.3g} cm3): the chamber volumes (calibration) or the pressure readings "
-                "are wrong")
-    return None
 
 
 @dataclass
