@@ -63,3 +63,23 @@ def test_a_cycle_without_a_volume_is_printed_with_its_flag(demo_run, tmp_path, c
     assert "V —" in line and "(no volume)" in line and "no volume: pa must be a positive" in line
     saved = json.loads((folder / "reanalysis.json").read_text())
     assert saved["cycles"][1]["volume_cm3"] is None and saved["cycles"][2]["volume_cm3"] is not None
+
+
+def test_an_impossible_volume_is_not_a_measurement_with_runs_exit_code(demo_run, capsys):
+    # found by a sweep: exit 0 with the verdict as the last 'note:', where `run` exits 7 for it and shows it
+    # under the number.  Vc 3 cm3 with Vr 8 cm3 make the recorded pressures give about -4 cm3.
+    volumes = ["--cell-volume", "3 cm3", "--expansion-volume", "8 cm3", "--u-cell-volume", "0.001 cm3",
+               "--u-expansion-volume", "0.001 cm3"]
+    code, out, _err = analyze(capsys, demo_run, *volumes)
+    assert code == 7
+    lines = out.splitlines()
+    (at,) = [i for i, ln in enumerate(lines) if ln.startswith("volume: -")]
+    assert lines[at + 1].startswith("NOT A MEASUREMENT: the volume -")
+    assert not any(ln.startswith("note: NOT A MEASUREMENT") for ln in lines)
+    code, out, _err = analyze(capsys, demo_run, *volumes, "--json")
+    doc = json.loads(out)
+    assert code == 7 and any(f.startswith("NOT A MEASUREMENT") for f in doc["flags"])
+    code, _out, err = analyze(capsys, demo_run, *volumes, "--csv")
+    assert code == 7 and "NOT A MEASUREMENT" in err
+    code, out, _err = analyze(capsys, demo_run)  # the run's own volumes: a result
+    assert code == 0 and "NOT A MEASUREMENT" not in out

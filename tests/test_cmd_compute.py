@@ -123,11 +123,30 @@ def test_bad_input_is_one_line_exit_2(capsys, args, flag):
     assert len(lines) == 1 and flag in lines[0] and "Traceback" not in err
 
 
-def test_out_of_range_volume_warns(capsys):
-    rc = main(["compute", "--cell-volume", "10", "--expansion-volume", "7", "--p1", "1.4", "--p2", "1.3",
-               "--gauge"])
+def test_a_volume_below_zero_within_its_uncertainty_warns(capsys):
+    # ideal gas: 10 - 7 / (1.0 / 0.6 - 1) = -0.5 cm3, with U about 2 cm3: an empty cell can measure so
+    rc = main(["compute", "--cell-volume", "10", "--expansion-volume", "7", "--p1", "1.0", "--p2", "0.6",
+               "--gauge", "--gas", "ideal", "--u-cell-volume", "1"])
     out = capsys.readouterr().out
-    assert rc == 0 and "warning" in out
+    assert rc == 0 and "warning: sample volume -0.5 cm^3 lies outside" in out and "NOT A MEASUREMENT" not in out
+
+
+def test_an_impossible_volume_is_not_a_measurement_with_runs_exit_code(capsys):
+    # found by a sweep: a volume below zero beyond its U was printed as a result with a warning, exit 0,
+    # where `run` exits 7 and marks it under the number
+    args = ["compute", "--cell-volume", "10", "--expansion-volume", "7", "--p1", "1.4", "--p2", "1.3", "--gauge",
+            "--mass", "5 g"]
+    assert main(args) == 7
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0].startswith("sample volume   -") and lines[1].startswith("  ideal-gas form")
+    assert lines[2].startswith("NOT A MEASUREMENT: the volume -")
+    assert not any(ln.startswith(("density", "warning")) for ln in lines)  # said once, and no density of it
+    assert main([*args, "--json"]) == 7
+    captured = capsys.readouterr()
+    out = json.loads(captured.out)
+    assert out["impossible"] and out["warnings"] == [f"NOT A MEASUREMENT: {out['impossible']}"]
+    assert "density_g_cm3" not in out and "NOT A MEASUREMENT" in captured.err
+    assert main([*args, "--csv"]) == 7
 
 
 def test_huge_pressure_uncertainty_warns(capsys):

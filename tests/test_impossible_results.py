@@ -120,6 +120,6 @@ def test_a_result_that_is_not_a_measurement_stays_out_of_the_sample_mean_and_ana
     assert mix.n == 1 and mix.left_out == [summary["run_id"]]
     assert mix.as_dict()["mean_volume_cm3"] == pytest.approx(5.0, rel=1e-3)
     capsys.readouterr()
-    assert cli.main(["analyze", summary["run_id"], "--data", data, "--json"]) == 0
+    assert cli.main(["analyze", summary["run_id"], "--data", data, "--json"]) == 7  # as `run` exits for it
     out = json.loads(capsys.readouterr().out)
     assert any(f.startswith("NOT A MEASUREMENT") for f in out["flags"]) and "density_g_cm3" not in out

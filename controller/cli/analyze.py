@@ -16,6 +16,9 @@ compare with. A run folder from before meta.json kept these facts cannot be reco
 summary.
 
 A trace with no samples is refused; one cut before its first cycle ended gives no volume and says so.
+
+Exit codes: 0 recomputed, 2 bad input or a damaged record, 7 a result no specimen can have (NOT A
+MEASUREMENT: below zero or above the sample cell's volume beyond its U), as `pycnoctl run` says it.
 """
 
 from __future__ import annotations
@@ -285,11 +288,13 @@ def main(args: argparse.Namespace) -> int:
     flags = list(re.flags)
     if seq.expands and not re.cycles:
         flags.append(NO_COMPLETE_CYCLE)
-    from pycnoctl.controller.maths.results import not_a_measurement, outside_cell
+    from pycnoctl.controller.maths.verdict import EXIT_NOT_A_MEASUREMENT, not_a_measurement, outside_cell
 
     impossible = outside_cell(res.volume_m3, res.U_volume_m3, chambers.vc) if res else None
-    if impossible:  # as the run says it (exit 7): these volumes give a result no specimen can have
-        flags.append(not_a_measurement(impossible))
+    verdict = not_a_measurement(impossible) if impossible else None
+    if verdict:  # as the run says it, with its exit code: these volumes give a result no specimen can have
+        flags.append(verdict)
+    code = EXIT_NOT_A_MEASUREMENT if verdict else 0
     out: dict[str, Any] = {
         "run_id": rec.run_id, "interrupted": rec.interrupted, "sequence": seq.name, "gas": gas,
         "chambers": {"vc_cm3": chambers.vc * 1e6, "vr_cm3": chambers.vr * 1e6, "source": chambers.record_id},
@@ -317,7 +322,7 @@ def main(args: argparse.Namespace) -> int:
                 lock.release()
     if args.json:
         print(json.dumps(out, indent=2))
-        return 0
+        return code
     if args.csv:
         import sys
 
@@ -326,7 +331,9 @@ def main(args: argparse.Namespace) -> int:
 
         parsed = {"cycles": {"discard": seq.cycles.discard}}
         write_csv(cycle_records({**out, "sequence": {"parsed": parsed}}, units), cycle_csv_columns(units), sys.stdout)
-        return 0
+        if verdict:  # the cycles table does not carry it
+            print(f"pycnoctl analyze: {verdict}", file=sys.stderr)
+        return code
     print(f"run {out['run_id']} re-analysed with sequence {seq.name!r}, gas {gas}, "
           f"Vc {out['chambers']['vc_cm3']:.5f} cm3, Vr {out['chambers']['vr_cm3']:.5f} cm3")
     if rec.interrupted:
@@ -343,8 +350,11 @@ def main(args: argparse.Namespace) -> int:
               f"{shown}{mark} {' '.join(c['flags'])}")
     if out["volume_cm3"] is not None:
         print(f"volume: {out['volume_cm3']:.5f} cm3 +/- {out['volume_u_cm3']:.5f} cm3 (expanded U, k = {out['k']:g})")
+        if verdict:  # right under the number, as `run` shows it, never only as a note further down
+            print(verdict)
         if out["stored_volume_cm3"] is not None and math.isfinite(out["stored_volume_cm3"]):
             print(f"stored result: {out['stored_volume_cm3']:.5f} cm3")
     for f in out["flags"]:
-        print(f"note: {f}")
-    return 0
+        if f != verdict:
+            print(f"note: {f}")
+    return code

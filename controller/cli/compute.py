@@ -12,6 +12,8 @@ lab's (-40 to 80 degC): a bare 1013 (read as bar) or 295 (read as degC) is refus
 the unit.
 Uncertainties: U is expanded (k = 2 unless --k says otherwise), u standard (k = 1); in --json the
 fields named *_u_* are expanded (with the factor in the field k) and *_u_std_* standard.
+Exit codes: 0 a result, 2 bad input, 7 a volume no specimen can have (NOT A MEASUREMENT: below zero
+or above Vc beyond its U), as `pycnoctl run` says it.
 """
 
 from __future__ import annotations
@@ -34,6 +36,7 @@ from pycnoctl.controller.domain.units import (
     parse_volume,
 )
 from pycnoctl.controller.maths.uncertainty import cycle_volume_budget, density, specific_gravity
+from pycnoctl.controller.maths.verdict import EXIT_NOT_A_MEASUREMENT, not_a_measurement, outside_cell
 from pycnoctl.controller.maths.volume import MODES, VolumeError, sample_volume, sample_volume_ideal
 
 # typing.TYPE_CHECKING without importing typing (3 ms of the command's start; the annotations are
@@ -179,15 +182,23 @@ def compute(args: argparse.Namespace) -> dict[str, Any]:
             f"--u-p is {u_p:.6g} Pa, more than 10 % of the fill pressure above ambient; bare numbers are "
             "bar (write e.g. '50 Pa')"
         )
-    if not 0.0 < vs <= vc:
+    impossible = outside_cell(vs, budget.expanded, vc)
+    out["impossible"] = impossible
+    if impossible:  # as `run` says it, and with its exit code
+        out["warnings"].append(not_a_measurement(impossible))
+    elif not 0.0 < vs <= vc:
         out["warnings"].append(
             f"sample volume {vs / CM3:.6g} cm^3 lies outside (0, Vc = {vc / CM3:.6g} cm^3]: "
             "check the calibration, the pressures and for leaks"
         )
+    if args.water_temperature is not None and args.mass is None:
+        raise UsageError("--water-temperature: needs --mass")
     if args.mass is not None:
         m = _parse("--mass", parse_mass, args.mass, positive=True)
         u_m = _parse("--u-mass", parse_mass, args.u_mass, nonneg=True)
         if vs <= 0.0:
+            if impossible:  # no density of a volume below zero; the verdict says why
+                return out
             raise UsageError("--mass: density needs a positive sample volume")
         rho, u_rho = density(vs, budget.combined, m, u_m)
         out.update(density_g_cm3=rho / G_CM3, density_u_g_cm3=budget.k * u_rho / G_CM3,
@@ -199,8 +210,6 @@ def compute(args: argparse.Namespace) -> dict[str, Any]:
             except ValueError as exc:
                 raise UsageError(f"--water-temperature: {exc}") from None
             out.update(specific_gravity=sg, specific_gravity_u=budget.k * u_sg, water_temperature_k=tw)
-    elif args.water_temperature is not None:
-        raise UsageError("--water-temperature: needs --mass")
     return out
 
 
@@ -224,6 +233,9 @@ def _text(out: dict[str, Any], units: Units | None = None) -> str:
         f"sample volume   {out['volume_cm3']:.5f} cm^3  +/- {out['volume_u_cm3']:.5f} cm^3 (expanded U, k = {k:g})",
         f"  ideal-gas form {out['ideal_gas_volume_cm3']:.5f} cm^3  (gas: {out['gas']}, mode: {out['mode']})",
     ]
+    verdict = not_a_measurement(out["impossible"]) if out.get("impossible") else None
+    if verdict:  # right under the number, as `run` shows it
+        lines.append(verdict)
     if "density_g_cm3" in out:
         rho, u_rho = out["density_g_cm3"] * G_CM3, out["density_u_g_cm3"] * G_CM3
         lines.append(f"density         {units.rho(rho)} {units.density} +/- {units.rho(u_rho)} {units.density} "
@@ -238,7 +250,7 @@ def _text(out: dict[str, Any], units: Units | None = None) -> str:
             has_u = r["std_u"] is not None and not math.isnan(r["std_u"])
             u = f"{r['std_u_display']:.4g} {r['unit']}" if has_u else ""
             lines.append(f"  {r['name']:<24}{u:>14}{r['contribution_cm3']:>14.3e}{100 * r['share']:>7.1f}%")
-    lines += [f"warning: {w}" for w in out["warnings"]]
+    lines += [f"warning: {w}" for w in out["warnings"] if w != verdict]
     return "\n".join(lines)
 
 
@@ -260,7 +272,7 @@ def run(args: argparse.Namespace) -> int:
     for w in out["warnings"]:
         if args.json or args.csv:
             print(f"warning: {w}", file=sys.stderr)
-    return 0
+    return EXIT_NOT_A_MEASUREMENT if out["impossible"] else 0
 
 
 def _clean(obj: Any) -> Any:
