@@ -83,3 +83,46 @@ def test_an_impossible_volume_is_not_a_measurement_with_runs_exit_code(demo_run,
     assert code == 7 and "NOT A MEASUREMENT" in err
     code, out, _err = analyze(capsys, demo_run)  # the run's own volumes: a result
     assert code == 0 and "NOT A MEASUREMENT" not in out
+
+
+def _before_cycle(n: int) -> Callable[[Row], Row | None]:
+    """The trace cut where cycle n's fill began (the rows of cycle n and later dropped)."""
+    def edit(row: Row) -> Row | None:
+        return row if row["cycle"] in ("", *map(str, range(n))) else None
+    return edit
+
+
+def test_a_trace_that_keeps_no_cycle_says_there_is_no_volume(demo_run, tmp_path, capsys):
+    # found by a sweep: a trace cut after the warm-up cycle printed that cycle's line and stopped: no volume
+    # line, no note, flags []
+    folder = edited_copy(demo_run, tmp_path, _before_cycle(2))
+    code, out, _err = analyze(capsys, folder)
+    assert code == 0 and "volume:" not in out
+    assert "note: no kept cycle: no volume" in out
+    assert "note: this recomputation keeps 0 cycles where the run kept 2" in out
+    code, out, _err = analyze(capsys, folder, "--json")
+    doc = json.loads(out)
+    assert doc["volume_cm3"] is None and [c["kept"] for c in doc["cycles"]] == [False]
+    assert any(f.startswith("no kept cycle: no volume") for f in doc["flags"])
+    assert (doc["n_kept"], doc["stored_n_kept"]) == (0, 2)
+
+
+def test_a_result_from_fewer_cycles_than_the_run_kept_says_so(demo_run, tmp_path, capsys):
+    # found by a sweep: a trace cut after cycle 2 gave a volume from 1 kept cycle where the stored one is
+    # the mean of 2, without a word
+    code, out, _err = analyze(capsys, edited_copy(demo_run, tmp_path, _before_cycle(3)))
+    assert code == 0 and "volume: " in out
+    assert ("note: this recomputation keeps 1 cycle where the run kept 2: its volume is not the mean of the same "
+            "cycles as the stored result") in out
+    assert "no kept cycle" not in out
+    code, out, _err = analyze(capsys, demo_run)  # the whole trace: the same cycles, nothing to say
+    assert code == 0 and "note:" not in out
+
+
+def test_an_interrupted_run_has_no_stored_count_to_compare_with(demo_run, tmp_path, capsys):
+    folder = edited_copy(demo_run, tmp_path, _before_cycle(3))
+    (folder / "summary.json").unlink()
+    code, out, _err = analyze(capsys, folder, "--json")
+    doc = json.loads(out)
+    assert code == 0 and doc["stored_n_kept"] is None and doc["n_kept"] == 1
+    assert not any("where the run kept" in f for f in doc["flags"])

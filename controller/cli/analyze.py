@@ -66,6 +66,8 @@ _NEEDED_FACTS = ("pressure_is_gauge", "pressure_u", "temperature_u")
 
 #: What the output says when the trace holds no complete cycle of an expanding sequence
 NO_COMPLETE_CYCLE = "no complete cycle was found in the trace, so there is no volume"
+#: ... and when cycles ended but none of them counts
+NO_KEPT_CYCLE = "no kept cycle: no volume (each cycle's line says why it was left out)"
 
 
 @dataclass
@@ -84,6 +86,7 @@ class Recorded:
     calibration_id: str | None  # the calibration record an interrupted run computed with (None: nominal)
     stored_volume_cm3: float | None  # the result the run stored (None: it stored none)
     expansion_volume: str | None = None  # the expansion volume the run expanded into (None: not recorded)
+    stored_n_kept: int | None = None  # how many cycles that result is the mean of (None: not stored)
 
     @classmethod
     def from_run(cls, run: StoredRun, folder: Path) -> Recorded:
@@ -92,7 +95,7 @@ class Recorded:
             inst, results = doc["instrument"], doc["results"]
             return cls(doc["run_id"], False, inst, doc["sequence_text"], f"{folder}/summary.json: sequence_text",
                        results.get("gas") or inst.get("gas"), results.get("mass_g"), doc.get("calibration") or {},
-                       None, results.get("volume_cm3"), results.get("expansion_volume"))
+                       None, results.get("volume_cm3"), results.get("expansion_volume"), _n_kept(results))
         meta = run.meta.get("meta") or {}
         facts = meta.get("instrument")
         if not (isinstance(facts, dict) and all(k in facts for k in _NEEDED_FACTS)):
@@ -101,6 +104,15 @@ class Recorded:
                    f"{folder}/meta.json: sequence_text", meta.get("gas") or (facts or {}).get("gas"),
                    meta.get("mass_g"), meta.get("calibration") if isinstance(meta.get("calibration"), dict) else None,
                    meta.get("calibration_id"), None, meta.get("expansion_volume"))
+
+
+def _n_kept(results: dict[str, Any]) -> int | None:
+    """How many cycles the stored result is the mean of: its n_kept, else counted from its cycles."""
+    n = results.get("n_kept")
+    if isinstance(n, int) and not isinstance(n, bool):
+        return n
+    cycles = results.get("cycles")
+    return sum(1 for c in cycles if c.get("kept") is True) if isinstance(cycles, list) and cycles else None
 
 
 def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path
@@ -288,6 +300,14 @@ def main(args: argparse.Namespace) -> int:
     flags = list(re.flags)
     if seq.expands and not re.cycles:
         flags.append(NO_COMPLETE_CYCLE)
+    elif seq.expands and res is None:
+        flags.append(NO_KEPT_CYCLE)
+    n_kept = sum(1 for c in re.cycles if c.kept)
+    if seq.expands and rec.stored_n_kept is not None and n_kept != rec.stored_n_kept:
+        # a trace cut short (or other rules) gives a mean of other cycles than the stored result's
+        same = ": its volume is not the mean of the same cycles as the stored result" if res else ""
+        flags.append(f"this recomputation keeps {n_kept} cycle{'s' * (n_kept != 1)} where the run kept "
+                     f"{rec.stored_n_kept}{same}")
     from pycnoctl.controller.maths.verdict import EXIT_NOT_A_MEASUREMENT, not_a_measurement, outside_cell
 
     impossible = outside_cell(res.volume_m3, res.U_volume_m3, chambers.vc) if res else None
@@ -298,7 +318,7 @@ def main(args: argparse.Namespace) -> int:
     out: dict[str, Any] = {
         "run_id": rec.run_id, "interrupted": rec.interrupted, "sequence": seq.name, "gas": gas,
         "chambers": {"vc_cm3": chambers.vc * 1e6, "vr_cm3": chambers.vr * 1e6, "source": chambers.record_id},
-        "stored_volume_cm3": rec.stored_volume_cm3,
+        "stored_volume_cm3": rec.stored_volume_cm3, "stored_n_kept": rec.stored_n_kept, "n_kept": n_kept,
         "volume_cm3": res.volume_m3 * 1e6 if res else None,
         "volume_u_cm3": res.U_volume_m3 * 1e6 if res else None,
         "k": res.k if res else None,
