@@ -126,3 +126,31 @@ def test_an_interrupted_run_has_no_stored_count_to_compare_with(demo_run, tmp_pa
     doc = json.loads(out)
     assert code == 0 and doc["stored_n_kept"] is None and doc["n_kept"] == 1
     assert not any("where the run kept" in f for f in doc["flags"])
+
+
+def test_volumes_given_without_their_uncertainties_are_said_to_be_taken_as_exact(demo_run, capsys):
+    # found by a sweep: --cell-volume/--expansion-volume alone took u = 0 for both, silently
+    volumes = ["--cell-volume", "12 cm3", "--expansion-volume", "8 cm3"]
+    code, out, _err = analyze(capsys, demo_run, *volumes)
+    lines = out.splitlines()
+    (at,) = [i for i, ln in enumerate(lines) if ln.startswith("volume: ")]
+    assert code == 0
+    assert lines[at + 1] == "note: chamber volumes taken as exact: give --u-cell-volume and --u-expansion-volume"
+    code, out, _err = analyze(capsys, demo_run, *volumes, "--json")
+    assert "chamber volumes taken as exact: give --u-cell-volume and --u-expansion-volume" in json.loads(out)["flags"]
+    code, out, _err = analyze(capsys, demo_run, *volumes, "--u-cell-volume", "0.002 cm3")
+    assert "note: expansion volume Vr taken as exact: give --u-expansion-volume" in out
+    code, out, _err = analyze(capsys, demo_run, *volumes, "--u-cell-volume", "0.002 cm3", "--u-expansion-volume",
+                              "0.002 cm3")
+    assert "taken as exact" not in out
+    code, out, _err = analyze(capsys, demo_run)  # the run's nominal volumes, each with its 0.5 %
+    assert "taken as exact" not in out
+
+
+def test_a_stored_calibration_without_uncertainties_is_said_to_be_taken_as_exact(demo_run, tmp_path, capsys):
+    folder = edited_copy(demo_run, tmp_path, lambda row: row)
+    doc = json.loads((folder / "summary.json").read_text())
+    doc["calibration"]["cov"] = [[0.0, 0.0], [0.0, 0.0]]
+    (folder / "summary.json").write_text(json.dumps(doc))
+    code, out, _err = analyze(capsys, folder)
+    assert code == 0 and "note: chamber volumes taken as exact: the run's record keeps no uncertainty" in out

@@ -135,7 +135,7 @@ def test_an_impossible_volume_is_not_a_measurement_with_runs_exit_code(capsys):
     # found by a sweep: a volume below zero beyond its U was printed as a result with a warning, exit 0,
     # where `run` exits 7 and marks it under the number
     args = ["compute", "--cell-volume", "10", "--expansion-volume", "7", "--p1", "1.4", "--p2", "1.3", "--gauge",
-            "--mass", "5 g"]
+            "--mass", "5 g", "--u-cell-volume", "0.001", "--u-expansion-volume", "0.001"]
     assert main(args) == 7
     lines = capsys.readouterr().out.splitlines()
     assert lines[0].startswith("sample volume   -") and lines[1].startswith("  ideal-gas form")
@@ -194,3 +194,24 @@ def test_the_ends_of_a_labs_temperature_range_are_in_it(capsys, edge):
     # -40 degC came back from the unit conversion as 233.14999999999998 K and was refused (a sweep found it)
     run_json(capsys, "--cell-volume", "10", "--expansion-volume", "7", "--p1", "1.4", "--p2", "0.58",
              "--temperature", edge)
+
+
+EXACT = "chamber volumes taken as exact: give --u-cell-volume and --u-expansion-volume"
+
+
+def test_volumes_without_their_uncertainties_are_said_to_be_taken_as_exact(capsys):
+    # found by a sweep: '+/- 0.00000 cm^3 (expanded U, k = 2)' printed with no word that the budget is empty
+    args = ["compute", "--cell-volume", "12", "--expansion-volume", "8", "--p1", "1.09", "--p2", "0.5085",
+            "--mass", "12.5"]
+    assert main(args) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert "+/- 0.00000 cm^3 (expanded U" in lines[0]
+    assert lines[2] == f"warning: {EXACT}"  # next to the result, once
+    assert sum(EXACT in ln for ln in lines) == 1
+    assert main([*args, "--json"]) == 0
+    captured = capsys.readouterr()
+    assert json.loads(captured.out)["warnings"] == [EXACT] and EXACT in captured.err
+    assert main([*args, "--u-expansion-volume", "0.001"]) == 0
+    assert "warning: cell volume Vc taken as exact: give --u-cell-volume" in capsys.readouterr().out
+    assert main([*args, "--u-expansion-volume", "0.001", "--u-cell-volume", "0.001"]) == 0
+    assert "taken as exact" not in capsys.readouterr().out

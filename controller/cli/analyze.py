@@ -196,6 +196,20 @@ def _not_for_this_run(found: CalibrationRecord, rec: Recorded, gas: str | None) 
     return None
 
 
+def _exact_note(c: ChamberCalibration) -> str | None:
+    """What to say next to a result whose chamber volumes carry no uncertainty, or None: the U would
+    leave the calibration out and look smaller than it is."""
+    from pycnoctl.controller.cli.exactness import exact_volumes
+
+    (a, _), (_, d) = c.cov
+    if c.record_id == "command line":
+        return exact_volumes(a, d)
+    if a <= 0.0 and d <= 0.0:
+        whose = f"calibration {c.record_id}" if c.record_id else "the run's record"
+        return f"chamber volumes taken as exact: {whose} keeps no uncertainty for them"
+    return None
+
+
 def _usable(c: ChamberCalibration) -> bool:
     """Volumes a recomputation can take: positive, finite, with variances zero or positive."""
     (a, _), (_, d) = c.cov
@@ -315,6 +329,9 @@ def main(args: argparse.Namespace) -> int:
     if verdict:  # as the run says it, with its exit code: these volumes give a result no specimen can have
         flags.append(verdict)
     code = EXIT_NOT_A_MEASUREMENT if verdict else 0
+    exact = _exact_note(chambers) if res else None
+    if exact:
+        flags.append(exact)
     out: dict[str, Any] = {
         "run_id": rec.run_id, "interrupted": rec.interrupted, "sequence": seq.name, "gas": gas,
         "chambers": {"vc_cm3": chambers.vc * 1e6, "vr_cm3": chambers.vr * 1e6, "source": chambers.record_id},
@@ -372,9 +389,11 @@ def main(args: argparse.Namespace) -> int:
         print(f"volume: {out['volume_cm3']:.5f} cm3 +/- {out['volume_u_cm3']:.5f} cm3 (expanded U, k = {out['k']:g})")
         if verdict:  # right under the number, as `run` shows it, never only as a note further down
             print(verdict)
+        if exact:  # next to the U it concerns
+            print(f"note: {exact}")
         if out["stored_volume_cm3"] is not None and math.isfinite(out["stored_volume_cm3"]):
             print(f"stored result: {out['stored_volume_cm3']:.5f} cm3")
     for f in out["flags"]:
-        if f != verdict:
+        if f not in (verdict, exact):
             print(f"note: {f}")
     return code

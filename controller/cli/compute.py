@@ -23,6 +23,7 @@ import math
 import sys
 
 from pycnoctl.controller.cli.display import Units, add_output_args, add_units_arg, parse_units
+from pycnoctl.controller.cli.exactness import exact_volumes, is_exact_volumes
 from pycnoctl.controller.cli.main import RawDescriptionHelpFormatter, UsageError
 from pycnoctl.controller.domain.gas import GASES, UnknownGas, get_gas
 from pycnoctl.controller.domain.units import (
@@ -177,6 +178,9 @@ def compute(args: argparse.Namespace) -> dict[str, Any]:
         "budget": [_row(row) for row in budget.as_table()],
         "warnings": [],
     }
+    exact = exact_volumes(u_vc, u_vr)
+    if exact:  # the budget leaves them out: its U is not the result's
+        out["warnings"].append(exact)
     if u_p > 0.1 * abs(p1 - pa):
         out["warnings"].append(
             f"--u-p is {u_p:.6g} Pa, more than 10 % of the fill pressure above ambient; bare numbers are "
@@ -236,6 +240,8 @@ def _text(out: dict[str, Any], units: Units | None = None) -> str:
     verdict = not_a_measurement(out["impossible"]) if out.get("impossible") else None
     if verdict:  # right under the number, as `run` shows it
         lines.append(verdict)
+    beside = [w for w in out["warnings"] if is_exact_volumes(w)]
+    lines += [f"warning: {w}" for w in beside]  # next to the U it concerns, not after the budget
     if "density_g_cm3" in out:
         rho, u_rho = out["density_g_cm3"] * G_CM3, out["density_u_g_cm3"] * G_CM3
         lines.append(f"density         {units.rho(rho)} {units.density} +/- {units.rho(u_rho)} {units.density} "
@@ -250,7 +256,7 @@ def _text(out: dict[str, Any], units: Units | None = None) -> str:
             has_u = r["std_u"] is not None and not math.isnan(r["std_u"])
             u = f"{r['std_u_display']:.4g} {r['unit']}" if has_u else ""
             lines.append(f"  {r['name']:<24}{u:>14}{r['contribution_cm3']:>14.3e}{100 * r['share']:>7.1f}%")
-    lines += [f"warning: {w}" for w in out["warnings"] if w != verdict]
+    lines += [f"warning: {w}" for w in out["warnings"] if w != verdict and w not in beside]
     return "\n".join(lines)
 
 
