@@ -78,6 +78,7 @@ def run_report_pdf(run_folder: Path, out: Path | None = None) -> Path:
         _choice_text,
         _cycle_rows,
         budget_rows,
+        not_drawn,
         render_figure,
     )
 
@@ -164,6 +165,8 @@ def run_report_pdf(run_folder: Path, out: Path | None = None) -> Path:
         ax.imshow(mpimg.imread(png))
         ax.set_axis_off()
         fig.text(0.07, 0.31, "pressure trace shaded by phase; cycle volumes with their u", fontsize=9)
+        for i, line in enumerate(not_drawn(doc.get("results") or {})):
+            fig.text(0.07, 0.28 - 0.025 * i, f"NOT DRAWN: {line}", fontsize=9, color="darkorange")
         pdf.savefig(fig)
 
         page = _Page(pdf)

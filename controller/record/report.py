@@ -82,6 +82,29 @@ def gauge_trace(run: StoredRun) -> tuple[np.ndarray, np.ndarray]:
     return tr["t"] - tr["t"][0], p
 
 
+def _finite(x: Any) -> bool:
+    return isinstance(x, int | float) and not isinstance(x, bool) and math.isfinite(x)
+
+
+def not_drawn(res: dict[str, Any]) -> list[str]:
+    """The volumes of the results block that are there but are not finite numbers, and so are left out of
+    the figure (a NaN volume in summary.json ended the report in matplotlib's 'Axis limits cannot be NaN
+    or Inf'): said on the report, never dropped without a word."""
+    out = []
+    v, u = res.get("volume_cm3"), res.get("volume_u_cm3")
+    if v is not None and not _finite(v):
+        out.append(f"the run's volume is not a finite number ({v!r}): it is not drawn")
+    elif v is not None and u is not None and not _finite(u):
+        out.append(f"the run's expanded U is not a finite number ({u!r}): the mean is drawn without its band")
+    for c in res.get("cycles") or []:
+        cv, cu = c.get("volume_cm3"), c.get("u_volume_cm3")
+        if cv is not None and not _finite(cv):
+            out.append(f"cycle {c.get('index')}: its volume is not a finite number ({cv!r}): it is not drawn")
+        elif cv is not None and cu is not None and not _finite(cu):
+            out.append(f"cycle {c.get('index')}: its u is not a finite number ({cu!r}): drawn without its error bar")
+    return out
+
+
 def render_figure(run: StoredRun, png: Path) -> Path:
     """The pressure trace shaded by phase, and the cycle volumes with their uncertainties."""
     import matplotlib
@@ -123,8 +146,9 @@ def render_figure(run: StoredRun, png: Path) -> Path:
                    title="phase", title_fontsize=8)
     cx = fig.add_axes(CYCLE_AXES)
     cycles = res.get("cycles") or []
-    pts = [(c["index"], c.get("volume_cm3"), c.get("u_volume_cm3"), c.get("kept")) for c in cycles
-           if c.get("volume_cm3") is not None]
+    # only finite numbers are drawn (not_drawn says which are left out); a u that is not one draws no bar
+    pts = [(c.get("index"), c["volume_cm3"], c.get("u_volume_cm3") if _finite(c.get("u_volume_cm3")) else 0.0,
+            c.get("kept")) for c in cycles if _finite(c.get("volume_cm3"))]
     if pts:
         kept = [q for q in pts if q[3]]
         drop = [q for q in pts if not q[3]]
@@ -132,8 +156,8 @@ def render_figure(run: StoredRun, png: Path) -> Path:
             if group:
                 cx.errorbar([q[0] for q in group], [q[1] for q in group], yerr=[q[2] or 0.0 for q in group],
                             fmt="o", mfc=face, mec=TRACE_COLOUR, ecolor=TRACE_COLOUR, capsize=3, label=label)
-        if res.get("volume_cm3") is not None:
-            v, u = res["volume_cm3"], res.get("volume_u_cm3") or 0.0
+        if _finite(res.get("volume_cm3")):
+            v, u = res["volume_cm3"], res.get("volume_u_cm3") if _finite(res.get("volume_u_cm3")) else 0.0
             cx.axhline(v, color="#b03030", linewidth=1, label="run mean")
             cx.axhspan(v - u, v + u, color="#b03030", alpha=0.12, linewidth=0,
                        label=f"± U (k = {res.get('k') or 2:g})")
@@ -144,6 +168,10 @@ def render_figure(run: StoredRun, png: Path) -> Path:
     from matplotlib.ticker import MaxNLocator
 
     cx.xaxis.set_major_locator(MaxNLocator(integer=True))
+    left_out = not_drawn(res)
+    if left_out:  # the PNG is also read on its own, beside the report
+        fig.text(0.76, 0.04, f"not drawn: {len(left_out)} volume(s) or u\nthat are not finite numbers",
+                 fontsize=8, color="darkorange")
     cx.set_xlabel("cycle")
     cx.set_ylabel("volume / cm³")
     png.parent.mkdir(parents=True, exist_ok=True)
@@ -296,7 +324,7 @@ def report_html(run: StoredRun, png_name: str, png_bytes: bytes) -> str:
         rsd_percent=100 * rsd if rsd is not None else None, choice=_choice_text(res, seq),
         warnings=res["warnings"] or [], png_name=png_name,
         png_data=base64.b64encode(png_bytes).decode("ascii"), cycles=_cycle_rows(res["cycles"] or []),
-        record_problems=record_problems(run),
+        record_problems=record_problems(run), not_drawn=not_drawn(doc.get("results") or {}),
         budget=budget_rows(res["budget"] or []), calibration=_calibration_rows(rec) if rec else None,
         nominal={"vc": cal.get("vc", 0) * 1e6, "vr": cal.get("vr", 0) * 1e6,
                  "u_percent": 100 * (cal["cov"][0][0] ** 0.5) / cal["vc"] if cal.get("cov") and cal.get("vc") else None}
