@@ -47,11 +47,19 @@ def main(args: argparse.Namespace) -> int:
         raise UsageError("give at least two runs")
     root = data_dir(args.data)
     runs = []
+    seen: dict[Any, str] = {}
     for ref in args.runs:
         folder = resolve_run_folder(root, ref)
         run = load_run(folder)
         if run.summary is None:
             raise UsageError(f"{folder}: no summary (still running, or interrupted)")
+        # a run against itself gives d = 0 with U(d) = 0 (its errors all shared): no comparison at all
+        for key in (folder.resolve(), run.summary.get("run_id")):
+            if key is not None and key in seen:
+                raise UsageError(f"{seen[key]!r} and {ref!r} are the same run ({run.summary.get('run_id') or folder}):"
+                                 " a run is not compared with itself; give different runs")
+            if key is not None:
+                seen[key] = ref
         runs.append((folder, run))
     rows = compare([r.summary for _, r in runs])
     if args.plot:
