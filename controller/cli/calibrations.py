@@ -66,7 +66,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     rt = act.add_parser("retire", help="take a calibration out of use for good",
                         description="Take ID out of use; it stays on record with the reason.")
     rt.add_argument("id", help="calibration ID (C...)")
-    rt.add_argument("--reason", required=True, help="why, for the record (e.g. 'expansion valve replaced')")
+    rt.add_argument("--reason", required=True, type=_said, help="why, for the record (e.g. 'expansion valve replaced')")
     add_data_arg(rt)
 
     im = act.add_parser("import", help="record volumes determined elsewhere, with their uncertainties",
@@ -82,12 +82,34 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     im.add_argument("--correlation", type=float, default=0.0, metavar="R",
                     help="correlation of the two errors, from -1 to 1 (default 0)")
     im.add_argument("--operator", default="", type=plain_arg, help="who recorded it")
-    im.add_argument("--note", required=True, type=note_arg, help="how the volumes were determined, for the record")
+    im.add_argument("--note", required=True, type=_note, help="how the volumes were determined, for the record")
     im.add_argument("--far-from-nominal", action="store_true",
                     help="record volumes far from the config's nominal ones (a rebuilt chamber; update the "
                          "config's nominal volumes too)")
     add_data_arg(im)
     p.set_defaults(func=main)
+
+
+def _said(text: str) -> str:
+    """An argparse type for a required free text (--reason, --note): one of blanks only is no answer."""
+    if not text.strip():
+        raise argparse.ArgumentTypeError("must not be blank: say it, for the record")
+    return text
+
+
+def _note(text: str) -> str:
+    return _said(note_arg(text))
+
+
+def _gas(flag: str, name: str) -> str:
+    """The gas by the name the project gives it ('He' is 'helium'), or bad input: a calibration is
+    found by its gas name, so one stored as 'He' or 'xenon' was never used by any run."""
+    from pycnoctl.controller.domain.gas import UnknownGas, get_gas
+
+    try:
+        return get_gas(name).name
+    except UnknownGas as exc:
+        raise UsageError(f"{flag}: {exc}") from None
 
 
 def _instrument_args(p: argparse.ArgumentParser, *, required: bool) -> None:
@@ -268,15 +290,9 @@ def _select(args: argparse.Namespace, catalog: Any) -> int:
     if rec.expansion_volume not in who.volumes:
         raise UsageError(f"calibration {rec.id} is of expansion volume {rec.expansion_volume!r}; instrument "
                          f"{who.identity} has {', '.join(who.volumes)}")
-    if args.gas:
-        from pycnoctl.controller.domain.gas import get_gas
-
-        try:
-            get_gas(args.gas)
-        except ValueError as exc:
-            raise UsageError(f"--gas: {exc}") from None
-    catalog.choose_calibration(rec.id, who.identity, gas=args.gas)
-    print(f"calibration {rec.id} is in use for {rec.expansion_volume!r} in {args.gas or rec.gas} on {who.identity}")
+    gas = _gas("--gas", args.gas) if args.gas else None
+    catalog.choose_calibration(rec.id, who.identity, gas=gas)
+    print(f"calibration {rec.id} is in use for {rec.expansion_volume!r} in {gas or rec.gas} on {who.identity}")
     return 0
 
 
@@ -341,7 +357,7 @@ def _import(args: argparse.Namespace, catalog: Any) -> int:
             far = far_from_nominal(values[key], nominal, who.chambers.nominal_u)
             if far is not None:
                 raise UsageError(f"--{key.replace('_', '-')}: {far}")
-    gas = args.gas or who.gas
+    gas = _gas("--gas", args.gas) if args.gas else who.gas
     uc, ur = values["u_cell_volume"], values["u_volume"]
     cov = [[uc * uc, args.correlation * uc * ur], [args.correlation * uc * ur, ur * ur]]
     cid = catalog.put_calibration(CalibrationRecord(
