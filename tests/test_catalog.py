@@ -228,3 +228,19 @@ def test_a_damaged_catalog_is_named_and_the_way_out_said(tmp_path):
     locked = _sqlite3.OperationalError("database is locked")
     assert "is locked by another process" in str(_opening_problem(cut, locked))
     assert _opening_problem(cut, _sqlite3.OperationalError("database or disk is full")) is None  # a storage fault
+
+
+
+def test_a_damaged_catalog_is_one_line_and_exit_2_for_a_reading_verb(tmp_path, capsys):
+    from pycnoctl.controller.cli.main import main
+
+    assert main(["run", "quick-demo", "--sim", "--data", str(tmp_path), "--quiet"]) == 0
+    path = tmp_path / "catalog.sqlite"
+    raw = path.read_bytes()
+    for extra in ("-wal", "-shm"):
+        (tmp_path / f"catalog.sqlite{extra}").unlink(missing_ok=True)
+    path.write_bytes(raw[:2048] + b"\0" * 100)
+    capsys.readouterr()
+    assert main(["runs", "--data", str(tmp_path)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "is damaged" in err[0] and str(path) in err[0]

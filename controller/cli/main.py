@@ -165,6 +165,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         if runfolder is not None and isinstance(exc, runfolder.DamagedFile):
             print(f"pycnoctl {args.verb}: error: the run's record cannot be read: {exc}", file=sys.stderr)
             return 2
+        # so is a catalog refused as damaged or locked (its message names the file and the way out)
+        catalog = sys.modules.get("pycnoctl.controller.record.catalog")
+        if catalog is not None and isinstance(exc, catalog.CatalogError):
+            print(f"pycnoctl {args.verb}: error: {exc}", file=sys.stderr)
+            return 2
         # never a traceback to the user: one line, exit 3 (PYCNOCTL_DEBUG=1 shows it)
         if os.environ.get("PYCNOCTL_DEBUG"):
             raise
