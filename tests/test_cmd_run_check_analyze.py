@@ -199,6 +199,21 @@ def test_re_analysis_under_a_sequence_that_stops_at_an_unsettled_pressure_keeps_
     assert [c["kept"] for c in own["cycles"]] == [c["kept"] for c in out["cycles"]]
 
 
+@pytest.mark.parametrize(("extra", "want"), [
+    (["--calibration", "C20990101T000000Z-000000", "--cell-volume", "12 cm3", "--expansion-volume", "8 cm3"],
+     "not both"),
+    (["--u-cell-volume", "0.002 cm3"], "--u-cell-volume go with --cell-volume and --expansion-volume"),
+    (["--cell-volume", "12 cm3", "--expansion-volume", "8 cm3", "--u-cell-volume", "1000 cm3"],
+     "is not an uncertainty of a 12 cm3 volume"),
+])
+def test_analyze_refuses_volume_options_it_would_ignore_or_that_cannot_be(tmp_path, capsys, extra, want):
+    # found by a sweep: volumes beside --calibration and an uncertainty without its volume were silently
+    # ignored, and --u-cell-volume 1000 cm3 on a 12 cm3 cell was taken (calibrations import refuses it)
+    _code, out = run_json(capsys, "quick-demo", "--sim", "--data", str(tmp_path))
+    assert main(["analyze", out["run_id"], "--data", str(tmp_path), *extra]) == 2
+    assert want in capsys.readouterr().err
+
+
 #: what a recomputation takes of the instrument (the arguments of record/replay.py's reanalyze)
 INSTRUMENT_FACTS = ("gas", "pressure_is_gauge", "pressure_u", "pressure_u_linearity", "temperature_u", "barometer",
                     "barometer_u", "ambient_drift_rate", "thermometer")

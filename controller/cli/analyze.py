@@ -41,6 +41,9 @@ if TYPE_CHECKING:  # the modules themselves are imported where they are used, af
     from pycnoctl.controller.run.sequence import Sequence
 
 
+_NO_U = "0 cm^3"  # the volume uncertainties' default: volumes given without them are taken as exact (and said so)
+
+
 def add_parser(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("analyze", help="recompute a stored run from its raw trace", description=__doc__,
                        formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -50,9 +53,9 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--calibration", metavar="ID", help="a calibration record from the catalog")
     p.add_argument("--cell-volume", metavar="V", help="cell volume Vc, e.g. '12.003 cm^3'")
     p.add_argument("--expansion-volume", metavar="V", help="expansion volume Vr, e.g. '8.001 cm^3'")
-    p.add_argument("--u-cell-volume", metavar="V", default="0 cm^3",
+    p.add_argument("--u-cell-volume", metavar="V", default=_NO_U,
                    help="standard uncertainty of --cell-volume (default 0 cm^3)")
-    p.add_argument("--u-expansion-volume", metavar="V", default="0 cm^3",
+    p.add_argument("--u-expansion-volume", metavar="V", default=_NO_U,
                    help="standard uncertainty of --expansion-volume (default 0 cm^3)")
     p.add_argument("--gas", help="gas model for the real-gas correction (default: the run's)")
     add_units_arg(p)
@@ -122,6 +125,14 @@ def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path
     from pycnoctl.controller.domain.gaspath import ChamberCalibration
     from pycnoctl.controller.domain.units import UnitError, parse_volume
 
+    given_u = [f"--{k.replace('_', '-')}" for k in ("u_cell_volume", "u_expansion_volume")
+               if getattr(args, k) != _NO_U]
+    if args.calibration and (args.cell_volume or args.expansion_volume or given_u):
+        # found by a sweep: the volumes were silently ignored beside a calibration
+        raise UsageError("--calibration gives the chamber volumes and their uncertainties: give it, or "
+                         "--cell-volume and --expansion-volume (with their --u-...), not both")
+    if given_u and not (args.cell_volume or args.expansion_volume):
+        raise UsageError(f"{' and '.join(given_u)} go with --cell-volume and --expansion-volume (were ignored)")
     if args.calibration:
         from pycnoctl.controller.record.catalog import Catalog
 
@@ -145,6 +156,9 @@ def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path
             raise UsageError("--cell-volume/--expansion-volume: volumes must be positive")
         if not (uc >= 0 and ur >= 0):  # was taken by its magnitude
             raise UsageError("--u-cell-volume/--u-expansion-volume: an uncertainty is zero or positive")
+        for flag, v, u in (("--u-cell-volume", vc, uc), ("--u-expansion-volume", vr, ur)):
+            if u >= 0.5 * v:  # as `calibrations import` refuses it (1000 cm3 on a 12 cm3 cell was taken)
+                raise UsageError(f"{flag}: {u * 1e6:g} cm3 is not an uncertainty of a {v * 1e6:g} cm3 volume")
         return ChamberCalibration(vc, vr, ((uc * uc, 0.0), (0.0, ur * ur)), "command line"), None
     give = ("the chamber volumes: --cell-volume V and --expansion-volume V (their uncertainties with "
             "--u-cell-volume and --u-expansion-volume), or --calibration ID")
