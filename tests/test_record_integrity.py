@@ -67,3 +67,22 @@ def test_an_edited_catalog_row_is_flagged(run, capsys):
 def test_the_checks_take_a_result_with_no_volume_as_agreeing():
     assert disagreements({"volume_cm3": None, "cycles": [{"kept": False, "volume_cm3": 5.0}]}) == []
     assert disagreements({}) == []
+
+
+@pytest.mark.parametrize(("change", "want"), [
+    ({"cov": [[-1e-15, 0.0], [0.0, 1e-15]]}, "a negative variance"),
+    ({"vc": "12 cm3"}, "'calibration.vc' is not a positive volume"),
+    ({"cov": "exact"}, "not a 2 x 2 matrix"),
+])
+def test_a_summary_whose_chamber_volumes_are_damaged_is_a_damaged_record(run, capsys, change, want):
+    # found by a sweep: the report failed on a complex square root (a negative variance) or on multiplying
+    # text (exit 3, 'failed: TypeError'); a damaged record is one line, exit 2, naming the file
+    data, rid = run
+    path = data / "runs" / rid / "summary.json"
+    doc = json.loads(path.read_text())
+    doc["calibration"].update(change)
+    path.write_text(json.dumps(doc))
+    for verb in (["report", rid], ["show", rid]):
+        assert main([*verb, "--data", str(data)]) == 2
+        err = capsys.readouterr().err
+        assert "summary.json" in err and want in err, err

@@ -833,4 +833,28 @@ def _summary_shape(doc: dict) -> str | None:
         if key.endswith(_FIGURES) and value is not None and (isinstance(value, bool)
                                                             or not isinstance(value, int | float)):
             return f"its 'results.{key}' is not a number ({type(value).__name__})"
+    return _calibration_shape(doc.get("calibration"))
+
+
+def _number(x: object) -> bool:
+    return isinstance(x, int | float) and not isinstance(x, bool) and math.isfinite(x)
+
+
+def _calibration_shape(cal: object) -> str | None:
+    """What is wrong with a summary's chamber volumes (found by a sweep: a negative variance made the
+    report fail on a complex square root, a volume given as text on a multiplication)."""
+    if cal is None or cal == {}:
+        return None
+    if not isinstance(cal, dict):
+        return f"its 'calibration' is not a JSON object (a {type(cal).__name__})"
+    for key in ("vc", "vr"):
+        if key in cal and not (_number(cal[key]) and cal[key] > 0):
+            return f"its 'calibration.{key}' is not a positive volume ({cal[key]!r})"
+    cov = cal.get("cov")
+    if cov is not None:
+        if not (isinstance(cov, list) and len(cov) == 2 and all(isinstance(r, list) and len(r) == 2 for r in cov)
+                and all(_number(x) for r in cov for x in r)):
+            return "its 'calibration.cov' is not a 2 x 2 matrix of numbers"
+        if cov[0][0] < 0 or cov[1][1] < 0:
+            return "its 'calibration.cov' has a negative variance"
     return None
