@@ -214,6 +214,33 @@ def test_analyze_refuses_volume_options_it_would_ignore_or_that_cannot_be(tmp_pa
     assert want in capsys.readouterr().err
 
 
+def test_check_of_simulated_valves_with_a_real_meter_takes_limits_and_volumes_from_the_simulator(tmp_path, capsys):
+    """Found by a sweep: a config of simulated valves and a VISA meter (here on a pyvisa-sim file) gave no
+    limits or chambers of its own, as simulated valves allow, and check failed with 'max_pressure must be
+    a positive pressure in Pa, got 0.0' (exit 3); no port is opened by the static check."""
+    from importlib.resources import files
+
+    meter = f"{files('pycnoctl.drivers') / 'visa' / 'loop_meter.yaml'}@sim"
+    cfg = tmp_path / "station.yaml"
+    cfg.write_text(f"""name: teaching-station
+valves: {{kind: sim}}
+pressure:
+  kind: visa_meter
+  resource: TCPIP::127.0.0.1::INSTR
+  backend: "{meter}"
+  timeout: 1 s
+  query: "MEAS:CURR:DC?"
+  scale: {{signal_low: 4 mA, signal_high: 20 mA, pressure_low: 0 bar, pressure_high: 3.5 bar}}
+  reference: gauge
+thermometer: {{kind: sim}}
+barometer: {{kind: sim}}
+sample_period: 0.2 s
+""", encoding="utf-8")
+    assert main(["check", "quick-demo", "--instrument", str(cfg), "--no-dry-run", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["problems"] == []
+
+
 #: what a recomputation takes of the instrument (the arguments of record/replay.py's reanalyze)
 INSTRUMENT_FACTS = ("gas", "pressure_is_gauge", "pressure_u", "pressure_u_linearity", "temperature_u", "barometer",
                     "barometer_u", "ambient_drift_rate", "thermometer")

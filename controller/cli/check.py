@@ -45,6 +45,29 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=main)
 
 
+def _hardware_facts(cfg: Any) -> tuple[list[str], float]:
+    """The expansion volumes and the trip pressure of a config with real devices, read without opening any.
+    With simulated valves the config may leave both to its simulator config (found by a sweep: a config of
+    simulated valves and a VISA meter failed check with 'max_pressure ... got 0.0', exit 3)."""
+    from pycnoctl.drivers.simulated import SimDevice, sim_config_limits
+
+    names = list(cfg.chambers.expansion) if cfg.chambers else []
+    max_p = cfg.limits.max_pressure if cfg.limits else None
+    if isinstance(cfg.valves, SimDevice) and (max_p is None or not names):
+        from pycnoctl.sim.config import DEFAULT_CONFIG, load_sim_config
+
+        found = sim_config_limits(cfg.valves.config)
+        if max_p is None and found is not None:
+            max_p = found[0].max_pressure
+        if not names:
+            path = DEFAULT_CONFIG if cfg.valves.config is None else Path(cfg.valves.config)
+            names = list(load_sim_config(path).expansion_volumes().values())
+    if max_p is None:
+        raise UsageError("the instrument config gives no limits (limits.max_pressure): a sequence cannot be "
+                         "checked against them")
+    return names, max_p
+
+
 def static_check(seq_ref: str, *, expansion_volumes: list[str], max_pressure: float,
                  gas: str | None, sample_period: float | None = None) -> tuple[Any, list[str]]:
     """Load the sequence and check it against the instrument's names, limits and sample period
@@ -185,8 +208,7 @@ def main(args: argparse.Namespace) -> int:
                 names, max_p, gas, period = _facts(factory())
             else:  # real hardware: read the config only, never open a port
                 real_hardware = True
-                names = list(cfg.chambers.expansion) if cfg.chambers else []
-                max_p = cfg.limits.max_pressure if cfg.limits else 0.0
+                names, max_p = _hardware_facts(cfg)
                 gas = cfg.gas
                 period = cfg.sample_period
         else:
