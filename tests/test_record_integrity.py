@@ -86,3 +86,14 @@ def test_a_summary_whose_chamber_volumes_are_damaged_is_a_damaged_record(run, ca
         assert main([*verb, "--data", str(data)]) == 2
         err = capsys.readouterr().err
         assert "summary.json" in err and want in err, err
+
+
+def test_a_folder_without_its_meta_json_is_named_not_blamed_on_the_report_place(run, tmp_path, capsys):
+    # found by a sweep: 'cannot write the report (... not a run folder (no meta.json)): choose another place'
+    data, rid = run
+    (data / "runs" / rid / "meta.json").unlink()
+    out = tmp_path / "elsewhere.html"
+    assert main(["report", str(data / "runs" / rid), "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "meta.json: missing: this is not a run folder" in err and "choose another place" not in err
+    assert not out.exists()

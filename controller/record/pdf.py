@@ -15,7 +15,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
-from pycnoctl.controller.record.runfolder import load_run
+from pycnoctl.controller.record.runfolder import DamagedFile, load_run
 
 A4 = (8.27, 11.69)  # inches
 _WRAP = 96  # characters per line of body text at 9 pt
@@ -85,7 +85,8 @@ def run_report_pdf(run_folder: Path, out: Path | None = None) -> Path:
     run_folder = Path(run_folder)
     run = load_run(run_folder, trace_columns=FIGURE_COLUMNS)
     if not run.meta:
-        raise FileNotFoundError(f"{run_folder}: not a run folder (no meta.json)")
+        # the record is not there, which is not a place the report cannot be written (found by a sweep)
+        raise DamagedFile(run_folder / "meta.json", "missing: this is not a run folder")
     out = Path(out) if out is not None else run_folder / "report.pdf"
     doc = run.summary or {}
     res = {**doc, **(doc.get("results") or {})}

@@ -26,7 +26,7 @@ import numpy as np
 from pycnoctl.controller.domain.states import RunState, StateLook
 from pycnoctl.controller.maths.results import is_not_a_measurement
 from pycnoctl.controller.record.decimate import decimate_minmax
-from pycnoctl.controller.record.runfolder import StoredRun, load_run
+from pycnoctl.controller.record.runfolder import DamagedFile, StoredRun, load_run
 
 TRACE_COLOUR = "#1f1f7a"
 FIGSIZE = (10.0, 6.0)  # inches
@@ -342,7 +342,8 @@ def render_report(run_folder: Path, out: Path | None = None) -> Path:
         return run_report_pdf(run_folder, Path(out))
     run = load_run(run_folder, trace_columns=FIGURE_COLUMNS)
     if not run.meta:
-        raise FileNotFoundError(f"{run_folder}: not a run folder (no meta.json)")
+        # the record is not there, which is not a place the report cannot be written (found by a sweep)
+        raise DamagedFile(run_folder / "meta.json", "missing: this is not a run folder")
     out = Path(out) if out is not None else run_folder / "report.html"
     png = out.with_suffix(".png")
     render_figure(run, png)
