@@ -11,7 +11,7 @@ import pytest
 from pycnoctl.controller.domain.devices import Reading
 from pycnoctl.controller.jobs.measurement import RunRequest, execute, prepare
 from pycnoctl.controller.record.catalog import Catalog
-from pycnoctl.controller.record.runfolder import RunRecorder
+from pycnoctl.controller.record.runfolder import DamagedFile, RunRecorder
 from pycnoctl.controller.record.worker import ReportWorker, report_key
 from pycnoctl.controller.run.control import Controller
 from pycnoctl.drivers.simulated import build_sim_instrument
@@ -60,7 +60,7 @@ def test_failed_render_reported_and_tried_again(tmp_path: Path, worker: ReportWo
     missing = tmp_path / "R-none"
     missing.mkdir()
     fut = worker.submit(missing)
-    with pytest.raises(FileNotFoundError):
+    with pytest.raises(DamagedFile, match="not a run folder"):
         fut.result(timeout=120)
     assert worker.status(missing) == "failed"
     assert worker.submit(missing) is not fut
