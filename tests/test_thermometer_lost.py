@@ -56,6 +56,19 @@ def test_a_thermometer_lost_mid_run_costs_only_the_cycles_it_missed(tmp_path, ca
     assert out["volume_cm3"] is not None
 
 
+def test_a_thermometer_gone_for_the_end_of_a_settle_leaves_that_cycle_out(tmp_path, capsys):
+    # found by a sweep: a thermometer that stopped answering 1.6 s into a P1 settle (and came back after it)
+    # left the settle the readings from before the gap, and the cycle was kept with a temperature 300 s old.
+    # Here: the third cycle's fill takes 5.4 s and its P1 settle 23 s; the thermometer goes 8 s after the
+    # fill began (2.6 s into the settle) for 25 s
+    out = _run(tmp_path, capsys, _sim(tmp_path, faults=[
+        {"kind": "disconnect", "device": "thermometer", "on_opening": {"valve": "inlet", "count": 5},
+         "delay": "8 s", "duration": "25 s"}]))
+    third = next(c for c in out["cycles"] if c["index"] == 3)
+    assert NO_TEMPERATURE in third["flags"] and not third["kept"]
+    assert next(c for c in out["cycles"] if c["index"] == 2)["kept"]
+
+
 def test_an_instrument_without_a_thermometer_computes_as_before(tmp_path, capsys):
     data = yaml.safe_load(shipped_configs()["clean"].read_text(encoding="utf-8"))
     data["instruments"]["thermometer"] = None

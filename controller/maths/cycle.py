@@ -60,6 +60,10 @@ WALL_SPAN = 120.0
 #: empty cell in 600 s)
 WALL_SLOPE_Z = 3.0
 LAB_READ_EVERY = 1.0  # s between barometer readings (the controller reads it once a second)
+#: s: a settled P1 or P2 takes a temperature only where the thermometer gave a valid reading this recently
+#: before it (a zero takes its last rows' readings, which are as recent); a thermometer read once a second
+#: is well inside it, one that stopped answering is not
+TEMPERATURE_RECENT = 5.0
 
 
 @dataclass(slots=True)  # made on every tick: slots, not frozen (a frozen __init__ is markedly slower)
@@ -587,6 +591,7 @@ class CycleMeasurer:
         self._open = False  # a settle phase still waiting for its decision
         self._window: list[tuple[float, float]] = []  # (ambient, temp K) of valid-pressure rows: the zero
         self._temps: list[float] = []  # valid temperatures of a P1 / P2 phase
+        self._temp_t = math.nan  # s, when the phase's last valid temperature was read
         self._ambients: list[float] = []  # lab pressure of the valid rows of a P1 / P2 phase
         self._trace: tuple[list[float], list[float]] = ([], [])  # valid (t, cell pressure) of a P1 / P2 phase
         amb = plan.ambient
@@ -650,6 +655,7 @@ class CycleMeasurer:
             else:
                 if math.isfinite(temp_k):
                     self._temps.append(temp_k)
+                    self._temp_t = t
                 if finite:
                     self._ambients.append(ambient)
             status = det.feed(t, gauge) if finite else SettleStatus.WAITING
@@ -948,6 +954,7 @@ class CycleMeasurer:
                 self._det.slope_noise = functools.partial(frame_slope_u, amb.u_barometer)
             self._open = True
             self._window, self._temps, self._ambients = [], [], []
+            self._temp_t = math.nan
             self._trace = ([], [])
             self._lab = self._lab_ref = self._frame = math.nan  # the lines run on: the lab is the lab throughout
             self._wall = self._wall_ref = self._amb0 = math.nan
@@ -1013,7 +1020,11 @@ class CycleMeasurer:
         cyc = self.current
         if cyc is None:
             return
-        temp, n_temps = self._settled_temperature(self._temps[-_LAST:])
+        # a thermometer that stopped answering during the settle gives no temperature for its end: the
+        # readings from before the gap are not the gas's now (found by a sweep: a thermometer gone for 300 s
+        # over a P1 left it the readings of the settle's first 1.6 s, and the cycle was kept)
+        fresh = self._last_t - self._temp_t <= TEMPERATURE_RECENT
+        temp, n_temps = self._settled_temperature(self._temps[-_LAST:] if fresh else [])
         key = "t1" if self._state == RunState.SETTLE_FILLED else "t2"
         if self._settled_weights is None:
             self._tw.pop(key, None)
