@@ -217,6 +217,8 @@ def test_one_certificate_twice_and_a_sphere_larger_than_the_cell_are_refused_bef
 
     twice = [parse_sphere("V=5 cm3,u=0.001 cm3", "sphere 1"), parse_sphere("V=5 cm3,u=0.001 cm3", "sphere 2")]
     assert "sphere 2 repeats sphere 1's certificate" in (sphere_problem(twice, 12e-6) or "")
+    respelt = [parse_sphere("V=5 cm3,u=0.001 cm3", "sphere 1"), parse_sphere("V=5000 mm3,u=1 mm3", "sphere 2")]
+    assert "repeats" in (sphere_problem(respelt, 12e-6) or "")  # one certificate in other units
     named = [parse_sphere("V=5 cm3,u=0.001 cm3,name=ball A", "sphere 1"),
              parse_sphere("V=5 cm3,u=0.001 cm3,name=ball B", "sphere 2")]
     assert sphere_problem(named, 12e-6) is None  # two spheres that share a certificate value, named apart

@@ -338,6 +338,12 @@ def record_for(fit: CalibrationFit, name: str, spheres: Sequence[Sphere], points
     )
 
 
+def _same(a: float, b: float) -> bool:
+    """One certificate figure however it was spelt: 'u=1 mm3' and 'u=0.001 cm3' differ by the unit
+    conversion's rounding (found by a sweep: exact equality let one certificate in twice)."""
+    return math.isclose(a, b, rel_tol=1e-9, abs_tol=0.0)
+
+
 def _named(sphere: Sphere) -> bool:
     return any(part.strip().lower().startswith("name") for part in (sphere.spec or "").split(","))
 
@@ -352,7 +358,7 @@ def sphere_problem(spheres: Sequence[Sphere], cell_volume: float | None) -> str 
       than the cell volume'; on hardware the operator would be asked to load it)."""
     for i, a in enumerate(spheres):
         for b in spheres[i + 1:]:
-            if (a.volume, a.u_volume) == (b.volume, b.u_volume) and not (_named(a) and _named(b)):
+            if _same(a.volume, b.volume) and _same(a.u_volume, b.u_volume) and not (_named(a) and _named(b)):
                 return (f"{b.label} repeats {a.label}'s certificate ({a.spec}): the same sphere measured twice "
                         "takes its certificate's error as two independent ones, a smaller uncertainty than it has. "
                         "Give each sphere once, or name two spheres that share a certificate value (name=...)")
