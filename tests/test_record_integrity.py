@@ -73,6 +73,8 @@ def test_the_checks_take_a_result_with_no_volume_as_agreeing():
     ({"cov": [[-1e-15, 0.0], [0.0, 1e-15]]}, "a negative variance"),
     ({"vc": "12 cm3"}, "'calibration.vc' is not a positive volume"),
     ({"cov": "exact"}, "not a 2 x 2 matrix"),
+    ({"cov": [[1e-15, 5e-15], [5e-15, 1e-15]]}, "a correlation beyond +/-1"),
+    ({"cov": [[1e-15, 5e-16], [-5e-16, 1e-15]]}, "is not symmetric"),
 ])
 def test_a_summary_whose_chamber_volumes_are_damaged_is_a_damaged_record(run, capsys, change, want):
     # found by a sweep: the report failed on a complex square root (a negative variance) or on multiplying

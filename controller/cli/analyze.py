@@ -225,9 +225,11 @@ def _exact_note(c: ChamberCalibration) -> str | None:
 
 
 def _usable(c: ChamberCalibration) -> bool:
-    """Volumes a recomputation can take: positive, finite, with variances zero or positive."""
-    (a, _), (_, d) = c.cov
-    return all(math.isfinite(x) for x in (c.vc, c.vr, a, d)) and c.vc > 0 and c.vr > 0 and a >= 0 and d >= 0
+    """Volumes a recomputation can take: positive, finite, with variances zero or positive and a symmetric
+    covariance whose correlation lies within +/-1."""
+    (a, b), (b2, d) = c.cov
+    return (all(math.isfinite(x) for x in (c.vc, c.vr, a, b, b2, d)) and c.vc > 0 and c.vr > 0 and a >= 0
+            and d >= 0 and math.isclose(b, b2, rel_tol=1e-9, abs_tol=1e-300) and b * b <= a * d * (1.0 + 1e-9))
 
 
 def _from_record(found: CalibrationRecord) -> ChamberCalibration:

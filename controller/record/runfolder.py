@@ -857,4 +857,10 @@ def _calibration_shape(cal: object) -> str | None:
             return "its 'calibration.cov' is not a 2 x 2 matrix of numbers"
         if cov[0][0] < 0 or cov[1][1] < 0:
             return "its 'calibration.cov' has a negative variance"
+        # a covariance is symmetric with |correlation| <= 1 (found by a sweep: a correlation of 5 gave U = 0)
+        scale = max(abs(cov[0][1]), abs(cov[1][0]), 1e-300)
+        if abs(cov[0][1] - cov[1][0]) > 1e-9 * scale:
+            return "its 'calibration.cov' is not symmetric"
+        if cov[0][1] ** 2 > cov[0][0] * cov[1][1] * (1.0 + 1e-9):
+            return "its 'calibration.cov' has a correlation beyond +/-1"
     return None
