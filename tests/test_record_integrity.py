@@ -99,3 +99,26 @@ def test_a_folder_without_its_meta_json_is_named_not_blamed_on_the_report_place(
     err = capsys.readouterr().err
     assert "meta.json: missing: this is not a run folder" in err and "choose another place" not in err
     assert not out.exists()
+
+
+def test_compare_and_the_sample_set_report_do_not_take_an_edited_result(tmp_path, capsys):
+    """Found by a sweep: with one run's summary edited to 4.9 cm3, compare gave En 1.50 and 'differs ... by
+    more than the uncertainties allow' with no alarm; with a catalog volume edited to 5.2 cm3 the sample-set
+    report's mean took it.  compare now says RECORD DISAGREES for that run; the sample set leaves it out."""
+    data = tmp_path / "data"
+    ids = []
+    for _ in range(2):
+        assert main(["run", "quick-demo", "--sim", "--sample", "CER-1", "--data", str(data), "--quiet", "--json"]) == 0
+        ids.append(json.loads(capsys.readouterr().out)["run_id"])
+    _edit_summary(data, ids[1], volume_cm3=4.9)
+    assert main(["compare", *ids, "--data", str(data), "--json"]) == 0
+    captured = capsys.readouterr()
+    rows = json.loads(captured.out)
+    assert f"{ids[1]}: RECORD DISAGREES" in captured.err
+    assert [r["record_disagrees"] is not None for r in rows] == [False, True]
+    with sqlite3.connect(data / "catalog.sqlite") as con:
+        con.execute("UPDATE runs SET volume_m3 = 5.2e-6 WHERE id = ?", (ids[0],))
+    out = tmp_path / "set.html"
+    assert main(["report", "--samples", "CER", "--data", str(data), "--out", str(out)]) == 0
+    text = out.read_text()
+    assert f"{ids[0]} (left out: record disagrees)" in text and f"{ids[1]} (left out: record disagrees)" in text

@@ -124,6 +124,7 @@ def test_sample_set_mean_and_spread(tmp_path: Path) -> None:
     out = render_sample_set(sample_set(cat), tmp_path / "set.html")
     text = out.read_text()
     assert "AL-1" in text and "QZ-1" in text and f"{statistics.fmean(data['QZ-1']):.5f}" in text
+    assert "(no record to check)" in text  # catalog rows only here: their figures stand, said unchecked
 
 
 def test_record_text_is_escaped_never_markup(run_folder: Path, tmp_path: Path) -> None:

@@ -25,7 +25,7 @@ from pycnoctl.controller.cli.main import UsageError
 
 K = 2.0  # coverage factor of the expanded uncertainties compared
 CSV_COLUMNS = ["run_id", "sample_id", "status", "calibration_id", "volume_cm3", "U_volume_cm3", "density_g_cm3",
-               "U_density_g_cm3", "difference_cm3", "U_difference_cm3", "En", "shared_calibration"]
+               "U_density_g_cm3", "difference_cm3", "U_difference_cm3", "En", "shared_calibration", "record_disagrees"]
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
@@ -62,6 +62,14 @@ def main(args: argparse.Namespace) -> int:
                 seen[key] = ref
         runs.append((folder, run))
     rows = compare([r.summary for _, r in runs])
+    from pycnoctl.controller.record.integrity import disagreement_line, folder_disagreements
+
+    # a result edited after its run is not compared as if it were one (found by a sweep: En 1.50 on an edit)
+    for row, (folder, run) in zip(rows, runs, strict=True):
+        line = disagreement_line(folder_disagreements(folder, run.summary or {}))
+        row["record_disagrees"] = line
+        if line is not None:
+            print(f"{row.get('run_id') or folder.name}: {line}", file=sys.stderr)
     if args.plot:
         overlay([r for _, r in runs], Path(args.plot))
     if args.json:

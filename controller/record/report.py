@@ -26,7 +26,7 @@ import numpy as np
 from pycnoctl.controller.domain.states import RunState, StateLook
 from pycnoctl.controller.maths.results import is_not_a_measurement
 from pycnoctl.controller.record.decimate import decimate_minmax
-from pycnoctl.controller.record.runfolder import DamagedFile, StoredRun, load_run
+from pycnoctl.controller.record.runfolder import DamagedFile, StoredRun, load_run, read_summary
 
 TRACE_COLOUR = "#1f1f7a"
 FIGSIZE = (10.0, 6.0)  # inches
@@ -364,8 +364,11 @@ class SampleStats:
     volumes: list[float] = field(default_factory=list)  # cm3
     # each run's own result with its expanded U (k = 2), for the plot: (run, density, U, volume, U)
     points: list[dict[str, Any]] = field(default_factory=list)
-    # runs whose result no specimen can have ("NOT A MEASUREMENT", run exit 7): not in the means
+    # runs whose result no specimen can have ("NOT A MEASUREMENT", run exit 7), whose record is gone, or
+    # whose record disagrees with the catalog's figures: not in the means
     left_out: list[str] = field(default_factory=list)
+    why_left_out: dict[str, str] = field(default_factory=dict)  # run -> why (default: not a measurement)
+    unchecked: list[str] = field(default_factory=list)  # runs in the means whose folder is not here to check
 
     @property
     def n(self) -> int:
@@ -387,6 +390,30 @@ class SampleStats:
                 "mean_volume_cm3": self._mean(v), "sd_volume_cm3": self._sd(v)}
 
 
+NO_RECORD = "no record"
+
+
+def _record_doubt(catalog: Any, row: Any) -> str | None:
+    """Why a completed run's catalog figures cannot be taken for a sample's mean: its run folder is gone,
+    or its record disagrees with them (record/integrity.py), or None."""
+    from pycnoctl.controller.record.integrity import disagreements
+
+    path = getattr(catalog, "path", None)
+    if path is None:
+        return None
+    folder = Path(path).parent / "runs" / (row.folder or row.id)
+    if not folder.is_dir():
+        return NO_RECORD
+    try:
+        summary = read_summary(folder / "summary.json")
+    except (OSError, ValueError):
+        return "record damaged"
+    if summary is None:
+        return "no summary"
+    results = summary.get("results") if isinstance(summary.get("results"), dict) else {}
+    return "record disagrees" if disagreements(results, row) else None
+
+
 def sample_set(catalog: Any, *, prefix: str | None = None, run_ids: Sequence[str] | None = None) -> list[SampleStats]:
     """Completed measurement runs grouped by sample: those whose sample ID starts with ``prefix``, or
     the runs listed."""
@@ -401,6 +428,13 @@ def sample_set(catalog: Any, *, prefix: str | None = None, run_ids: Sequence[str
         g = groups.setdefault(r.sample_id or "", SampleStats(r.sample_id or ""))
         if is_not_a_measurement(r.message):  # a wrong volume must not move the mean
             g.left_out.append(r.id)
+            continue
+        unsure = _record_doubt(catalog, r)
+        if unsure == NO_RECORD:  # archived elsewhere, say: its figures stand, said to be unchecked
+            g.unchecked.append(r.id)
+        elif unsure is not None:  # found by a sweep: an edited catalog volume moved a sample's mean unseen
+            g.left_out.append(r.id)
+            g.why_left_out[r.id] = unsure
             continue
         g.run_ids.append(r.id)
         if r.density is not None:
@@ -427,7 +461,8 @@ def render_sample_set(stats: Sequence[SampleStats], out: Path, *, title: str = "
         d = s.as_dict()
         row = [s.sample_id or "(none)", str(s.n), _num(d["mean_density_g_cm3"]), _num(d["sd_density_g_cm3"]),
                _num(d["range_density_g_cm3"]), _num(d["mean_volume_cm3"]), _num(d["sd_volume_cm3"]),
-               ", ".join([*s.run_ids, *(f"{i} (left out: not a measurement)" for i in s.left_out)])]
+               ", ".join([*(f"{i} (no record to check)" if i in s.unchecked else i for i in s.run_ids),
+                          *(f"{i} (left out: {s.why_left_out.get(i, 'not a measurement')})" for i in s.left_out)])]
         rows.append(row)
         table.append({"sample": row[0], "runs": row[1], "mean_density": row[2], "sd_density": row[3],
                       "mean_volume": row[5], "sd_volume": row[6]})
