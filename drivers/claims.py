@@ -23,8 +23,10 @@ from __future__ import annotations
 import contextlib
 import fcntl
 import hashlib
+import ipaddress
 import os
 import re
+import socket
 import stat
 import tempfile
 import threading
@@ -45,8 +47,28 @@ class ClaimFolderError(OSError):
 
 
 def _host(host: str) -> str:
-    host = host.strip().lower().strip("[]")
-    return "127.0.0.1" if host in ("localhost", "localhost.localdomain") else host
+    """A host as one spelling: case and a trailing dot folded, brackets dropped, 'localhost', 127.0.0.1 and
+    ::1 one key, an IP address in its normal form (as the socket calls read '127.1' or '010.0.0.5')."""
+    host = host.strip().lower().strip("[]").rstrip(".")
+    if host in ("localhost", "localhost.localdomain"):
+        return "loopback"
+    try:
+        ip = ipaddress.ip_address(host)
+    except ValueError:
+        try:  # the old dotted forms ('127.1', '010.000.000.005') the socket calls still take
+            ip = ipaddress.ip_address(socket.inet_ntoa(socket.inet_aton(host)))
+        except OSError:
+            return host
+    # 'localhost' reaches 127.0.0.1 or ::1; another 127.x address is another listener
+    return "loopback" if str(ip) in ("127.0.0.1", "::1") else str(ip)
+
+
+def _number(text: str) -> str:
+    """A USB id as one spelling: '0x1AB1' and '6833' are one vendor."""
+    try:
+        return str(int(text, 0))
+    except ValueError:
+        return text.lower()
 
 
 _VISA_CLASSES = ("INSTR", "SOCKET", "RAW", "INTFC", "BACKPLANE", "SERVANT", "MEMACC")
@@ -54,7 +76,7 @@ _VISA_CLASSES = ("INSTR", "SOCKET", "RAW", "INTFC", "BACKPLANE", "SERVANT", "MEM
 
 def claim_key(kind: str, resource: str) -> str:
     """One key for every spelling of one device: VISA names in their canonical form, network URLs by
-    scheme, host and port (options dropped), 'localhost' as 127.0.0.1, case folded."""
+    scheme, host and port (options dropped), every loopback spelling one, case folded."""
     text = resource.strip()
     if kind == "visa":
         parts = text.split("::")  # the interface and the class in capitals, as the parser wants them
@@ -65,13 +87,19 @@ def claim_key(kind: str, resource: str) -> str:
         try:
             from pyvisa import rname
 
-            text = rname.to_canonical_name(text)
+            parsed = rname.parse_resource_name(text)
         except Exception:  # not a name pyvisa parses: claimed as written (pyvisa will refuse it anyway)
-            pass
-        parts = text.split("::")
-        if len(parts) > 1 and parts[0].upper().startswith("TCPIP"):
-            parts[1] = _host(parts[1])
-        return f"visa:{'::'.join(parts).lower()}"
+            return f"visa:{text.lower()}"
+        fields = {k: str(getattr(parsed, k)) for k in ("interface_type", "board", "host_address", "lan_device_name",
+                                                        "port", "manufacturer_id", "model_code", "serial_number",
+                                                        "usb_interface_number", "resource_class")
+                  if getattr(parsed, k, None) not in (None, "")}
+        if "host_address" in fields:
+            fields["host_address"] = _host(fields["host_address"])
+        for k in ("manufacturer_id", "model_code"):
+            if k in fields:
+                fields[k] = _number(fields[k])
+        return "visa:" + "::".join(f"{k}={v.lower()}" for k, v in sorted(fields.items()))
     if kind == "serial":
         u = urllib.parse.urlsplit(text)
         try:

@@ -18,6 +18,9 @@ from pycnoctl.drivers.claims import ResourceClaim, claim_key, modbus_tcp_key
     ("TCPIP::127.0.0.1::INSTR", "TCPIP0::127.0.0.1::inst0::INSTR"),  # pyvisa's canonical form
     ("TCPIP::localhost::INSTR", "tcpip::127.0.0.1::instr"),
     ("ASRL/dev/ttyUSB0::INSTR", "asrl/dev/ttyUSB0::INSTR"),
+    # found by a later sweep: a USB id in hex or decimal, and a trailing dot, got a second claim
+    ("USB0::0x1AB1::0x04CE::DS1ZA1::INSTR", "USB0::6833::1230::DS1ZA1::INSTR"),
+    ("TCPIP0::localhost.::inst0::INSTR", "TCPIP::127.0.0.1::INSTR"),
 ])
 def test_one_visa_device_under_any_spelling_is_one_key(a, b):
     # found by a sweep: pyvisa's own canonical spelling of a held meter's name got a second claim
@@ -30,6 +33,8 @@ def test_one_network_bridge_under_any_spelling_is_one_key():
                                               "socket://127.0.0.1:5020/")}
     assert len(same) == 1
     assert claim_key("serial", "socket://127.0.0.1:5021") not in same
+    # every loopback spelling is one host: '127.1' (the short dotted form), '[::1]'
+    assert claim_key("serial", "socket://127.1:5020") in same and claim_key("serial", "socket://[::1]:5020") in same
     assert modbus_tcp_key("localhost", 502, 1) == modbus_tcp_key("127.0.0.1", 502, 1) != modbus_tcp_key(
         "127.0.0.1", 502, 2)
     assert claims.networked("RFC2217://host:1") and claims.networked("socket://h:1")
