@@ -504,6 +504,13 @@ class SimConfig(_Strict):
         return out
 
 
+#: the fault keys that belong to one kind or another
+_KIND_KEYS = frozenset({"valve", "open", "conductance", "rate", "mode", "drift_rate", "device", "pressure_step",
+                        "temperature_step"})
+_ACTS_ON = {"transducer": "the pressure transducer", "regulator_failure": "the supply's regulator",
+            "ambient_step": "the lab's pressure", "lab_temperature_step": "the lab's temperature"}
+
+
 def _fault_problems(cfg: SimConfig, k: int, f: Fault) -> list[tuple[Loc, str]]:
     loc: Loc = ("faults", k)
     out: list[tuple[Loc, str]] = []
@@ -522,6 +529,12 @@ def _fault_problems(cfg: SimConfig, k: int, f: Fault) -> list[tuple[Loc, str]]:
     for key in need[f.kind]:
         if getattr(f, key) is None:
             out.append((loc, f"a {f.kind} fault needs {key!r}"))
+    # a key another kind uses is refused, not ignored (found by a sweep: a transducer fault with device:
+    # thermometer loaded and made the pressure transducer read NaN)
+    uses = {**need, "valve_stuck": ("valve", "open"), "transducer": ("mode", "drift_rate")}
+    for key in sorted(_KIND_KEYS - set(uses[f.kind]) & f.model_fields_set):
+        out.append(((*loc, key), f"a {f.kind} fault takes no {key!r} (it acts on "
+                                 f"{_ACTS_ON.get(f.kind, 'what its own keys name')})"))
     if f.valve is not None and f.valve not in cfg.valves:
         out.append(((*loc, "valve"), f"unknown valve {f.valve!r}"))
     return out

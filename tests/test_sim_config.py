@@ -281,3 +281,11 @@ def test_a_pressure_step_takes_a_gauge_tag_and_refuses_an_absolute_one(tmp_path)
     assert [f.pressure_step for f in load_sim_config(p).faults] == [pytest.approx(500.0), pytest.approx(-300.0)]
     probs = _problems(tmp_path, BASE + "faults: [{kind: ambient_step, at: 1 s, pressure_step: 1013 hPa abs}]\n")
     assert probs[0].line == 9 and "not the level it steps to" in probs[0].message
+
+
+def test_a_fault_key_its_kind_does_not_use_is_refused_at_its_line(tmp_path):
+    # found by a sweep: {kind: transducer, mode: nan, device: thermometer} loaded and made the pressure
+    # transducer read NaN: the device key belongs to a disconnect
+    probs = _problems(tmp_path, BASE + "faults:\n  - {kind: transducer, mode: nan, device: thermometer, at: 5 s}\n")
+    assert any(p.line == 10 and "a transducer fault takes no 'device' (it acts on the pressure transducer)"
+               in p.message for p in probs), probs
