@@ -202,7 +202,8 @@ def _not_for_this_run(found: CalibrationRecord, rec: Recorded, gas: str | None) 
         except UnknownGas:
             same = found.gas.strip().lower() == run_gas.strip().lower()
         if not same:
-            return f"was made in {found.gas}, and this run is in {run_gas}"
+            return (f"was made in {found.gas}, and this run is analysed in {run_gas}" if gas else
+                    f"was made in {found.gas}, and this run is in {run_gas}")
     used = (rec.calibration or {}).get("record_id") or rec.calibration_id
     if found.retired is not None and found.id != used:
         return (f"is retired ({found.retired}); a retired calibration re-analyses only the runs that computed "

@@ -400,7 +400,8 @@ def kind_rules(data: Any) -> list[Rule]:
     if kind in EXPANDING_KINDS:
         for key in ("fill", "expand", "cycles"):
             if data.get(key) is None:
-                out.append((("kind",), f"kind {kind} needs a '{key}' section"))
+                article = "an" if key[:1] in "aeiou" else "a"
+                out.append((("kind",), f"kind {kind} needs {article} '{key}' section"))
         expand = data.get("expand")
         # a calibration runs every expansion volume in turn (pycnoctl calibrate names each), so its
         # 'auto' needs no estimate of a sample it does not have
