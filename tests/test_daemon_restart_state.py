@@ -114,8 +114,12 @@ def test_the_operators_pause_survives_a_clean_restart_with_an_empty_queue(daemon
     b.submit(sequence="quick-demo")  # queued after the restart: still waits for the operator
     time.sleep(0.5)
     assert b.snapshot()["current_run"] is None and b.snapshot()["queue"]["length"] == 1
-    b.resume()
     daemons.stop(b)
+    # resumed, then stopped before it could start the run: on a daemon whose control loop is not running
+    # (a running one may start the run between the resume and the stop, as it should)
+    b2 = daemons(start=False)
+    b2.resume()
+    daemons.stop(b2)
     c = daemons(start=False)
     # resumed before the stop, but a run is waiting from before this start: paused all the same
     s = c.snapshot()
