@@ -89,19 +89,26 @@ def test_runs_never_cuts_an_id_or_a_figure(data: Path, capsys: pytest.CaptureFix
         assert "left out to fit 80 columns" in text
 
 
-@pytest.mark.parametrize("width", [80, 100])
-def test_a_long_sample_id_is_folded_and_never_cuts_the_run_ids(tmp_path: Path, capsys: pytest.CaptureFixture[str],
-                                                                monkeypatch: pytest.MonkeyPatch, width: int) -> None:
-    """A 190-character sample ID (the command line allows 200) took the table's width: rich then split
-    every run ID over two lines and squeezed the status and volume out.  It is folded at its own column's
-    width, every character kept."""
+def _runs_with_a_long_sample_id(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                monkeypatch: pytest.MonkeyPatch, width: int) -> tuple[str, list[dict], str]:
+    """Two runs, one with a 190-character sample ID (the command line allows 200): (the ID, the runs as
+    --json gives them, the runs table at ``width`` columns)."""
     long_id = "TILE-" + "0123456789" * 18 + "-END"
     for sample in ("AL-0417", long_id):
         assert cli.main(["run", "quick-demo", "--sim", "--sample", sample, "--data", str(tmp_path), "--quiet",
                          "--json"]) == 0
     monkeypatch.setenv("COLUMNS", str(width))
     rows = json.loads(_out(capsys, "runs", "--data", str(tmp_path), "--json"))
-    text = _out(capsys, "runs", "--data", str(tmp_path))
+    return long_id, rows, _out(capsys, "runs", "--data", str(tmp_path))
+
+
+@pytest.mark.parametrize("width", [80, 100])
+def test_a_long_sample_id_is_folded_and_never_cuts_the_run_ids(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                                                monkeypatch: pytest.MonkeyPatch, width: int) -> None:
+    """A 190-character sample ID (the command line allows 200) took the table's width: rich then split
+    every run ID over two lines and squeezed the status and volume out.  It is folded at its own column's
+    width, every character kept."""
+    long_id, rows, text = _runs_with_a_long_sample_id(tmp_path, capsys, monkeypatch, width)
     assert all(len(line) <= width for line in text.splitlines())
     for r in rows:
         assert r["run_id"] in text and f"{r['volume_cm3']:.5f}" in text and "completed" in text
@@ -121,13 +128,7 @@ def test_a_terminal_too_narrow_for_the_table_gets_each_run_as_a_block(tmp_path: 
     """Found by a sweep: at 40-60 columns with a long sample ID the runs table folded run IDs and figures
     ('4.' over '99' over '99'). Where even the essential columns cannot fit, each run is a block of
     'header: value' lines: an ID or a figure whole on its line, a long name folded, nothing left out."""
-    long_id = "TILE-" + "0123456789" * 18 + "-END"
-    for sample in ("AL-0417", long_id):
-        assert cli.main(["run", "quick-demo", "--sim", "--sample", sample, "--data", str(tmp_path), "--quiet",
-                         "--json"]) == 0
-    monkeypatch.setenv("COLUMNS", str(width))
-    rows = json.loads(_out(capsys, "runs", "--data", str(tmp_path), "--json"))
-    text = _out(capsys, "runs", "--data", str(tmp_path))
+    long_id, rows, text = _runs_with_a_long_sample_id(tmp_path, capsys, monkeypatch, width)
     lines = text.splitlines()
     assert all(len(line) <= width for line in lines)
     for r in rows:
