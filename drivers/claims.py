@@ -126,7 +126,7 @@ def networked(url: str) -> bool:
 def _usable(folder: Path, *, own: bool) -> Path:
     """The folder, checked: a directory, not replaceable by others, and (``own``) this user's."""
     try:
-        if own:
+        if own or not folder.exists():  # a folder named in PYCNOCTL_CLAIMS that is not there yet: made, as its user's
             folder.mkdir(mode=0o700, parents=True, exist_ok=True)
         st = folder.stat()
     except OSError as exc:

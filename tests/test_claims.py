@@ -131,3 +131,12 @@ def test_the_shipped_service_may_write_the_shared_lock_folder():
     service = unit["Service"]
     assert service["ProtectSystem"] == "strict" and service["PrivateTmp"] == "yes"
     assert str(claims.SYSTEM_LOCKS) in service["ReadWritePaths"].split()
+
+
+def test_a_claims_folder_named_but_not_there_yet_is_made(tmp_path, monkeypatch):
+    where = tmp_path / "lab" / "claims"
+    monkeypatch.setenv(claims.ENV, str(where))
+    c = ResourceClaim("visa", "TCPIP::127.0.0.8::INSTR", "pressure")
+    c.take()
+    assert where.is_dir() and len(list(where.iterdir())) == 1
+    c.release()
