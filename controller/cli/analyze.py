@@ -168,15 +168,17 @@ def _chambers(args: argparse.Namespace, rec: Recorded, root: Path, folder: Path
     if rec.calibration_id is None:
         return None, f"{give} (meta.json names no calibration record: the run computed with the nominal volumes)"
     # the record the run named lives in the catalog of the data folder the run is in
-    catalog_path = folder.parent.parent / "catalog.sqlite" if folder.parent.name == "runs" else None
+    from pycnoctl.controller.record.runfolder import catalog_beside
+
+    catalog_path = catalog_beside(folder)
     found = None
-    if catalog_path is not None and catalog_path.exists():
+    if catalog_path is not None:
         from pycnoctl.controller.record.catalog import Catalog
 
         with Catalog.for_reading(catalog_path) as cat:
             found = cat.get_calibration(rec.calibration_id)
     if found is None:
-        why = f"is not in {catalog_path}" if catalog_path is not None and catalog_path.exists() else \
+        why = f"is not in {catalog_path}" if catalog_path is not None else \
             "cannot be looked up: there is no catalog beside this run folder"
         return None, f"{give} (the calibration {rec.calibration_id} that meta.json names {why})"
     return _from_record(found), None
@@ -226,11 +228,11 @@ def _exact_note(c: ChamberCalibration) -> str | None:
 
 
 def _usable(c: ChamberCalibration) -> bool:
-    """Volumes a recomputation can take: positive, finite, with variances zero or positive and a symmetric
-    covariance whose correlation lies within +/-1."""
-    (a, b), (b2, d) = c.cov
-    return (all(math.isfinite(x) for x in (c.vc, c.vr, a, b, b2, d)) and c.vc > 0 and c.vr > 0 and a >= 0
-            and d >= 0 and math.isclose(b, b2, rel_tol=1e-9, abs_tol=1e-300) and b * b <= a * d * (1.0 + 1e-9))
+    """Volumes a recomputation can take: positive, finite, with a covariance that can be one
+    (domain.gaspath.covariance_problem, the rule a stored summary is read by)."""
+    from pycnoctl.controller.domain.figures import covariance_problem, is_number
+
+    return is_number(c.vc) and is_number(c.vr) and c.vc > 0 and c.vr > 0 and covariance_problem(c.cov) is None
 
 
 def _from_record(found: CalibrationRecord) -> ChamberCalibration:

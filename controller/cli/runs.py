@@ -145,7 +145,8 @@ def main(args: argparse.Namespace) -> int:
     with Catalog.for_reading(path) as catalog:
         found = query(catalog, sample=args.sample, since=since, until=until, status=args.status,
                       limit=args.limit, before=args.before)
-    rows = [row_dict(r) for r in found]
+        unlisted = set() if args.json or args.csv else _unlisted_folders(root / "runs", catalog)
+    rows = [with_record(row_dict(r), r, root / "runs") for r in found]
     if any(r["status"] == "running" for r in rows):
         from pycnoctl.controller.record.datalock import live_writer
 
@@ -153,8 +154,6 @@ def main(args: argparse.Namespace) -> int:
         for r in rows:
             if r["status"] == "running":
                 r["process_gone"] = gone
-    if args.json or args.csv:
-        rows = [with_record(row, r, root / "runs") for row, r in zip(rows, found, strict=True)]
     if args.json:
         print(json.dumps(rows, indent=2))
     elif args.csv:
@@ -162,8 +161,7 @@ def main(args: argparse.Namespace) -> int:
 
         write_csv(rows, CSV_COLUMNS, sys.stdout)
     else:
-        print_table([with_record(row, r, root / "runs") for row, r in zip(rows, found, strict=True)], units)
-        unlisted = _unlisted_folders(root / "runs", path)
+        print_table(rows, units)
         if unlisted:
             print(f"(the runs folder holds {len(unlisted)} run folder{'s' if len(unlisted) != 1 else ''} the catalog "
                   f"does not list, e.g. {sorted(unlisted)[0]}: a catalog replaced or restored from before them? "
@@ -171,18 +169,15 @@ def main(args: argparse.Namespace) -> int:
     return 0
 
 
-def _unlisted_folders(runs_dir: Path, catalog_path: Path) -> set[str]:
+def _unlisted_folders(runs_dir: Path, catalog: Any) -> set[str]:
     """Run folders under runs/ that no catalog row names."""
-    from pycnoctl.controller.record.catalog import Catalog, is_run_id
+    from pycnoctl.controller.record.catalog import is_run_id
 
     try:
         names = {e.name for e in os.scandir(runs_dir) if e.is_dir() and is_run_id(e.name)}
     except OSError:
         return set()
-    if not names:
-        return set()
-    with Catalog.for_reading(catalog_path) as catalog:
-        return names - catalog.folder_names()
+    return names - catalog.folder_names() if names else set()
 
 
 def table_columns(units: Any) -> list[Any]:

@@ -55,18 +55,13 @@ def main(args: argparse.Namespace) -> int:
 
         write_csv(cycle_records(_result(run.summary), units), cycle_csv_columns(units), sys.stdout)
     else:
-        problem = _disagreement(folder, run.summary)
+        from pycnoctl.controller.record.integrity import disagreement_line, folder_disagreements
+
+        problem = disagreement_line(folder_disagreements(folder, run.summary))
         if problem is not None:
             print(problem)
         print_run(run.summary, folder, units, retired=_retired_since(folder, run.summary))
     return 0
-
-
-def _disagreement(folder: Path, doc: dict[str, Any]) -> str | None:
-    """The record-disagrees line for a summary edited after the run (record/integrity.py), or None."""
-    from pycnoctl.controller.record.integrity import disagreement_line, folder_disagreements
-
-    return disagreement_line(folder_disagreements(folder, doc))
 
 
 def _retired_since(folder: Path, doc: dict[str, Any]) -> str | None:
@@ -75,9 +70,11 @@ def _retired_since(folder: Path, doc: dict[str, Any]) -> str | None:
     Why: `calibrations retire` changes only the catalog (one transaction, no lock, so it works while the
     daemon serves); a run keeps the calibration it started with, and its record must not read as if that
     calibration were still trusted."""
+    from pycnoctl.controller.record.runfolder import catalog_beside
+
     rec = (doc.get("calibration") or {}).get("record") or {}
-    catalog_path = folder.parent.parent / "catalog.sqlite" if folder.parent.name == "runs" else None
-    if not rec.get("id") or catalog_path is None or not catalog_path.exists():
+    catalog_path = catalog_beside(folder)
+    if not rec.get("id") or catalog_path is None:
         return None
     from pycnoctl.controller.record.catalog import Catalog
 

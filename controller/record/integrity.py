@@ -10,10 +10,12 @@ any disagreement between these says one was changed after the run (found by a sw
 
 from __future__ import annotations
 
-import math
 from pathlib import Path
 from statistics import fmean
 from typing import Any
+
+from pycnoctl.controller.domain.figures import is_number
+from pycnoctl.controller.record.runfolder import catalog_beside
 
 #: relative difference beyond which two copies of one stored number disagree (they are written from one
 #: float, so only JSON's round trip separates them: 1e-12 would do; 1e-9 leaves room for any reader)
@@ -21,7 +23,7 @@ TOLERANCE = 1e-9
 
 
 def _num(x: Any) -> float | None:
-    return float(x) if isinstance(x, int | float) and not isinstance(x, bool) and math.isfinite(x) else None
+    return float(x) if is_number(x) else None
 
 
 def _differ(a: float | None, b: float | None) -> bool:
@@ -64,8 +66,8 @@ def folder_disagreements(folder: Path, doc: dict[str, Any]) -> list[str]:
     """disagreements() of a run folder's summary, with the catalog beside it where there is one."""
     results = doc.get("results") if isinstance(doc.get("results"), dict) else {}
     row = None
-    catalog_path = folder.parent.parent / "catalog.sqlite" if folder.parent.name == "runs" else None
-    if catalog_path is not None and catalog_path.exists():
+    catalog_path = catalog_beside(folder)
+    if catalog_path is not None:
         from pycnoctl.controller.record.catalog import Catalog
 
         with Catalog.for_reading(catalog_path) as catalog:

@@ -23,6 +23,7 @@ from typing import Any
 import jinja2
 import numpy as np
 
+from pycnoctl.controller.domain.figures import is_number
 from pycnoctl.controller.domain.states import RunState, StateLook
 from pycnoctl.controller.maths.results import is_not_a_measurement
 from pycnoctl.controller.record.decimate import decimate_minmax
@@ -82,25 +83,21 @@ def gauge_trace(run: StoredRun) -> tuple[np.ndarray, np.ndarray]:
     return tr["t"] - tr["t"][0], p
 
 
-def _finite(x: Any) -> bool:
-    return isinstance(x, int | float) and not isinstance(x, bool) and math.isfinite(x)
-
-
 def not_drawn(res: dict[str, Any]) -> list[str]:
     """The volumes of the results block that are there but are not finite numbers, and so are left out of
     the figure (a NaN volume in summary.json ended the report in matplotlib's 'Axis limits cannot be NaN
     or Inf'): said on the report, never dropped without a word."""
     out = []
     v, u = res.get("volume_cm3"), res.get("volume_u_cm3")
-    if v is not None and not _finite(v):
+    if v is not None and not is_number(v):
         out.append(f"the run's volume is not a finite number ({v!r}): it is not drawn")
-    elif v is not None and u is not None and not _finite(u):
+    elif v is not None and u is not None and not is_number(u):
         out.append(f"the run's expanded U is not a finite number ({u!r}): the mean is drawn without its band")
     for c in res.get("cycles") or []:
         cv, cu = c.get("volume_cm3"), c.get("u_volume_cm3")
-        if cv is not None and not _finite(cv):
+        if cv is not None and not is_number(cv):
             out.append(f"cycle {c.get('index')}: its volume is not a finite number ({cv!r}): it is not drawn")
-        elif cv is not None and cu is not None and not _finite(cu):
+        elif cv is not None and cu is not None and not is_number(cu):
             out.append(f"cycle {c.get('index')}: its u is not a finite number ({cu!r}): drawn without its error bar")
     return out
 
@@ -147,8 +144,8 @@ def render_figure(run: StoredRun, png: Path) -> Path:
     cx = fig.add_axes(CYCLE_AXES)
     cycles = res.get("cycles") or []
     # only finite numbers are drawn (not_drawn says which are left out); a u that is not one draws no bar
-    pts = [(c.get("index"), c["volume_cm3"], c.get("u_volume_cm3") if _finite(c.get("u_volume_cm3")) else 0.0,
-            c.get("kept")) for c in cycles if _finite(c.get("volume_cm3"))]
+    pts = [(c.get("index"), c["volume_cm3"], c.get("u_volume_cm3") if is_number(c.get("u_volume_cm3")) else 0.0,
+            c.get("kept")) for c in cycles if is_number(c.get("volume_cm3"))]
     if pts:
         kept = [q for q in pts if q[3]]
         drop = [q for q in pts if not q[3]]
@@ -156,8 +153,8 @@ def render_figure(run: StoredRun, png: Path) -> Path:
             if group:
                 cx.errorbar([q[0] for q in group], [q[1] for q in group], yerr=[q[2] or 0.0 for q in group],
                             fmt="o", mfc=face, mec=TRACE_COLOUR, ecolor=TRACE_COLOUR, capsize=3, label=label)
-        if _finite(res.get("volume_cm3")):
-            v, u = res["volume_cm3"], res.get("volume_u_cm3") if _finite(res.get("volume_u_cm3")) else 0.0
+        if is_number(res.get("volume_cm3")):
+            v, u = res["volume_cm3"], res.get("volume_u_cm3") if is_number(res.get("volume_u_cm3")) else 0.0
             cx.axhline(v, color="#b03030", linewidth=1, label="run mean")
             cx.axhspan(v - u, v + u, color="#b03030", alpha=0.12, linewidth=0,
                        label=f"± U (k = {res.get('k') or 2:g})")

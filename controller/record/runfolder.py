@@ -51,6 +51,7 @@ from typing import Any
 import numpy as np
 
 from pycnoctl.controller.domain.devices import Reading, Validity
+from pycnoctl.controller.domain.figures import covariance_problem, is_number
 
 __all__ = [
     "CYCLE_COLUMNS",
@@ -805,6 +806,12 @@ def _check_time(path: Path, t: np.ndarray) -> None:
         raise DamagedFile(path, f"column 't' is not a finite number at row {first_bad + 2} ({float(t[first_bad])!r})")
 
 
+def catalog_beside(folder: Path) -> Path | None:
+    """The catalog of the data folder a run folder lies in (``<data>/runs/<run>``), where there is one."""
+    path = folder.parent.parent / "catalog.sqlite" if folder.parent.name == "runs" else None
+    return path if path is not None and path.exists() else None
+
+
 def read_summary(path: Path) -> dict | None:
     """A run's summary.json: None when absent, DamagedFile when it is not JSON or not shaped as a summary."""
     summary = _read_json(path)
@@ -836,10 +843,6 @@ def _summary_shape(doc: dict) -> str | None:
     return _calibration_shape(doc.get("calibration"))
 
 
-def _number(x: object) -> bool:
-    return isinstance(x, int | float) and not isinstance(x, bool) and math.isfinite(x)
-
-
 def _calibration_shape(cal: object) -> str | None:
     """What is wrong with a summary's chamber volumes (found by a sweep: a negative variance made the
     report fail on a complex square root, a volume given as text on a multiplication)."""
@@ -848,19 +851,8 @@ def _calibration_shape(cal: object) -> str | None:
     if not isinstance(cal, dict):
         return f"its 'calibration' is not a JSON object (a {type(cal).__name__})"
     for key in ("vc", "vr"):
-        if key in cal and not (_number(cal[key]) and cal[key] > 0):
+        if key in cal and not (is_number(cal[key]) and cal[key] > 0):
             return f"its 'calibration.{key}' is not a positive volume ({cal[key]!r})"
     cov = cal.get("cov")
-    if cov is not None:
-        if not (isinstance(cov, list) and len(cov) == 2 and all(isinstance(r, list) and len(r) == 2 for r in cov)
-                and all(_number(x) for r in cov for x in r)):
-            return "its 'calibration.cov' is not a 2 x 2 matrix of numbers"
-        if cov[0][0] < 0 or cov[1][1] < 0:
-            return "its 'calibration.cov' has a negative variance"
-        # a covariance is symmetric with |correlation| <= 1 (found by a sweep: a correlation of 5 gave U = 0)
-        scale = max(abs(cov[0][1]), abs(cov[1][0]), 1e-300)
-        if abs(cov[0][1] - cov[1][0]) > 1e-9 * scale:
-            return "its 'calibration.cov' is not symmetric"
-        if cov[0][1] ** 2 > cov[0][0] * cov[1][1] * (1.0 + 1e-9):
-            return "its 'calibration.cov' has a correlation beyond +/-1"
-    return None
+    why = covariance_problem(cov) if cov is not None else None
+    return f"its 'calibration.cov' {why}" if why is not None else None

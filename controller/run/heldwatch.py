@@ -100,11 +100,22 @@ class FillWatch:
         rise = gauge - self.first_gauge
         fast = rise >= HELD_RISE * n
         changes = len(self.steps)
-        rhythm = (changes >= HELD_MIN_CHANGES and self.quick < HELD_QUICK * (changes - 1)
-                  and (not _whole_steps(self.steps) or _beat(self.gaps) is not None))
-        if not (fast or rhythm):
+        judged = changes >= HELD_MIN_CHANGES  # enough changes to see their sizes and their rhythm
+        whole = judged and _whole_steps(self.steps)
+        beat = _beat(self.gaps) if judged else None  # the updates' interval, where the changes keep one
+        seldom = judged and self.quick < HELD_QUICK * (changes - 1)  # hardly ever on consecutive samples
+        if not (fast or (seldom and (not whole or beat is not None))):
             return None
-        beat = _beat(self.gaps) if not fast else None
+        if fast and whole and beat is None and not seldom:
+            # every change a whole step of one size, on no beat and often on consecutive samples: a coarse
+            # transducer read as fast as it updates, not a held one (found by a sweep: a 50 Hz gauge in 5 mbar
+            # steps was told to be read every 0.21 s)
+            return (f"the pressure reading repeated the one before in {repeats} of {n} samples while the fill raised "
+                    f"it {rise / 1e3:.3g} kPa, and every change was a whole step of {min(self.steps):.3g} Pa: the "
+                    f"transducer's resolution is coarser than the fill's rise per sample ({rise / n:.3g} Pa), too "
+                    f"coarse for the settle rules and a volume (a settled pressure is known to no better than its "
+                    f"step). Use a transducer or an output with a finer resolution")
+        beat = None if fast else beat  # a fast fill's message says its rise, as before
         # the beat where one shows (an update that moved a coarse reading less than its step changed nothing),
         # else from the changes (the fill's first sample is not a change)
         period = beat * sample_period if beat else (n - 1) * sample_period / max(n - repeats - 1, 1)
@@ -112,17 +123,6 @@ class FillWatch:
                f"its changes came every {beat} samples or a whole multiple of that, as updates do" if beat else
                f"its changes came one sample apart {self.quick} times in {changes - 1}, by {min(self.steps):.3g} to "
                f"{max(self.steps):.3g} Pa, not whole steps of a resolution")
-        if fast and changes >= HELD_MIN_CHANGES and _whole_steps(self.steps) and _beat(self.gaps) is None \
-                and self.quick >= HELD_QUICK * (changes - 1):
-            # every change a whole step of one size, on no beat and often on consecutive samples: a coarse
-            # transducer read as fast as it updates, not a held one (found by a sweep: a 50 Hz gauge in 5 mbar
-            # steps was told to be read every 0.21 s)
-            q = min(self.steps)
-            return (f"the pressure reading repeated the one before in {repeats} of {n} samples while the fill raised "
-                    f"it {rise / 1e3:.3g} kPa, and every change was a whole step of {q:.3g} Pa: the transducer's "
-                    f"resolution is coarser than the fill's rise per sample ({rise / n:.3g} Pa), too coarse for the "
-                    f"settle rules and a volume (a settled pressure is known to no better than its step). Use a "
-                    f"transducer or an output with a finer resolution")
         coarse = f" (or its resolution is coarser than {rise / n:.3g} Pa, the fill's mean rise per sample)" \
             if fast else ""
         return (f"the pressure reading repeated the one before in {repeats} of {n} samples while {why}: the "

@@ -471,9 +471,8 @@ class Daemon:
         interrupted = self.catalog.mark_interrupted_on_startup(runs_dir=self.data / "runs")
         orphans = self._orphaned_queued()
         self._state_lock = threading.Lock()  # one writer of the saved queue state at a time
-        self._saved_state: dict[str, Any] | None = None
         saved, state_problem = load_daemon_state(self.data / STATE_FILE)
-        self._saved_state = saved
+        self._saved_state: dict[str, Any] | None = saved  # what the file holds: a save that changes nothing is skipped
         self._snap: dict[str, Any] = {
             "state": "idle",
             "activity": "starting",
